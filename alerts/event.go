@@ -1,0 +1,99 @@
+package alerts
+
+import (
+	"encoding/json"
+	"fmt"
+	"time"
+)
+
+// EventSchema is the version of the alert event contract.
+const EventSchema = 1
+
+// State is where an alarm condition is in its lifecycle.
+type State string
+
+const (
+	// Raised: the condition has held for its delay; a new id is issued.
+	Raised State = "raised"
+	// Escalated: the condition persisted or worsened; priority went up.
+	Escalated State = "escalated"
+	// Acknowledged: someone acknowledged the alarm.
+	Acknowledged State = "acknowledged"
+	// Cleared: the condition is gone (after hysteresis, or reset when latched).
+	Cleared State = "cleared"
+)
+
+// Priority is an IEC 60601-1-8 alarm priority: high calls for an immediate
+// response, medium for a prompt one, low for awareness.
+type Priority string
+
+const (
+	// High priority: immediate response required.
+	High Priority = "high"
+	// Medium priority: prompt response required.
+	Medium Priority = "medium"
+	// Low priority: awareness required.
+	Low Priority = "low"
+)
+
+// Event is the alert event contract: one state change of one alarm
+// condition. ID is stable across the states of one raise and, with State,
+// is the de-duplication id on JetStream.
+type Event struct {
+	Type      string             `json:"type"`
+	Schema    int                `json:"schema"`
+	ID        string             `json:"id"`
+	Stream    string             `json:"stream"`
+	Condition string             `json:"condition"`
+	Class     string             `json:"class"`
+	Priority  Priority           `json:"priority"`
+	State     State              `json:"state"`
+	Time      time.Time          `json:"time"`
+	TS        float64            `json:"t_s"`
+	BreathSeq *int               `json:"breath_seq"`
+	Evidence  map[string]float64 `json:"evidence"`
+	Message   string             `json:"message"`
+	Predict   map[string]float64 `json:"predict,omitempty"`
+}
+
+// DedupID is the JetStream message id of the event: the alert id plus its
+// state, so that every state change is delivered exactly once.
+func (e *Event) DedupID() string {
+	return e.ID + "#" + string(e.State)
+}
+
+// Validate checks the fields that the contract requires.
+func (e *Event) Validate() error {
+	switch {
+	case e.ID == "":
+		return fmt.Errorf("alert event: empty id")
+	case e.Condition == "":
+		return fmt.Errorf("alert event %s: empty condition", e.ID)
+	}
+	switch e.State {
+	case Raised, Escalated, Acknowledged, Cleared:
+	default:
+		return fmt.Errorf("alert event %s: unknown state %q", e.ID, e.State)
+	}
+	switch e.Priority {
+	case High, Medium, Low:
+	default:
+		return fmt.Errorf("alert event %s: unknown priority %q", e.ID, e.Priority)
+	}
+	return nil
+}
+
+// Marshal encodes the event as one line of JSON (no newline), with the
+// contract's fixed type and schema filled in.
+func (e Event) Marshal() ([]byte, error) {
+	e.Type = "alert"
+	e.Schema = EventSchema
+	if e.Evidence == nil {
+		e.Evidence = map[string]float64{}
+	}
+	b, err := json.Marshal(e)
+	if err != nil {
+		return nil, fmt.Errorf("encode alert %s: %w", e.ID, err)
+	}
+	return b, nil
+}

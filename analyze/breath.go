@@ -1,0 +1,218 @@
+package analyze
+
+import (
+	"encoding/json"
+	"fmt"
+	"math"
+	"strconv"
+)
+
+// BreathSchema is the version of the breath record contract.
+const BreathSchema = 1
+
+// Breath is the per-breath record (the breath record contract). A value that
+// is unknown or unreliable is NaN in Go and null in JSON, never 0.
+type Breath struct {
+	Stream string
+	Seq    int
+
+	StartS  float64 // time of the start of inspiration
+	EndS    float64 // time of the start of the next inspiration
+	TiS     float64 // inspiratory time (flow in plus any end-inspiratory pause)
+	TeS     float64 // expiratory time
+	RateBPM float64
+
+	VtiML float64 // inspired volume
+	VteML float64 // expired volume (magnitude)
+
+	PeakCmH2O    float64 // peak inspiratory pressure
+	PlateauCmH2O float64 // end-inspiratory pause pressure; NaN when there is no pause
+	PEEPCmH2O    float64 // airway pressure at end-expiration
+	MeanCmH2O    float64 // mean airway pressure over the breath
+
+	PeakInspFlowLPM float64 // peak inspiratory flow
+	PeakExpFlowLPM  float64 // peak expiratory flow (magnitude)
+	EndExpFlowLPM   float64 // expiratory flow just before the next breath (magnitude)
+
+	TauS      float64 // expiratory time constant
+	TeOverTau float64
+
+	// Least-squares fit of the equation of motion over the breath.
+	RCmH2OSPerL float64
+	CMLPerCmH2O float64
+	PTot0CmH2O  float64 // fitted total PEEP (P0)
+	FitR2       float64
+
+	// Occlusion (end-inspiratory pause) method, when a pause exists.
+	ROccCmH2OSPerL  float64
+	CStatMLPerCmH2O float64
+
+	// Air trapping: the reported estimate and the two independent ones.
+	TrappedML     float64
+	PEEPiCmH2O    float64
+	TrappedEEFML  float64 // end-expiratory flow × τ
+	PEEPiEEFCmH2O float64 // end-expiratory flow × R
+	PEEPiFitCmH2O float64 // P0 − end-expiratory pressure
+
+	Flags []string
+}
+
+// NewBreath returns a breath record with every measured value unknown (NaN).
+func NewBreath() Breath {
+	n := math.NaN()
+	return Breath{
+		StartS: n, EndS: n, TiS: n, TeS: n, RateBPM: n, VtiML: n, VteML: n,
+		PeakCmH2O: n, PlateauCmH2O: n, PEEPCmH2O: n, MeanCmH2O: n,
+		PeakInspFlowLPM: n, PeakExpFlowLPM: n, EndExpFlowLPM: n,
+		TauS: n, TeOverTau: n, RCmH2OSPerL: n, CMLPerCmH2O: n, PTot0CmH2O: n, FitR2: n,
+		ROccCmH2OSPerL: n, CStatMLPerCmH2O: n,
+		TrappedML: n, PEEPiCmH2O: n, TrappedEEFML: n, PEEPiEEFCmH2O: n, PEEPiFitCmH2O: n,
+	}
+}
+
+// HasFlag reports whether the breath carries flag f.
+func (b *Breath) HasFlag(f string) bool {
+	for _, g := range b.Flags {
+		if g == f {
+			return true
+		}
+	}
+	return false
+}
+
+// breathField ties a JSON key to a numeric field; the order is the order of
+// the keys in the record.
+type breathField struct {
+	key string
+	get func(*Breath) *float64
+	// digits after the decimal point; enough for the precision of the method.
+	prec int
+}
+
+var breathFields = []breathField{
+	{"t_start_s", func(b *Breath) *float64 { return &b.StartS }, 3},
+	{"t_end_s", func(b *Breath) *float64 { return &b.EndS }, 3},
+	{"ti_s", func(b *Breath) *float64 { return &b.TiS }, 3},
+	{"te_s", func(b *Breath) *float64 { return &b.TeS }, 3},
+	{"rr_bpm", func(b *Breath) *float64 { return &b.RateBPM }, 2},
+	{"vti_ml", func(b *Breath) *float64 { return &b.VtiML }, 1},
+	{"vte_ml", func(b *Breath) *float64 { return &b.VteML }, 1},
+	{"pip_cmh2o", func(b *Breath) *float64 { return &b.PeakCmH2O }, 2},
+	{"pplat_cmh2o", func(b *Breath) *float64 { return &b.PlateauCmH2O }, 2},
+	{"peep_cmh2o", func(b *Breath) *float64 { return &b.PEEPCmH2O }, 2},
+	{"pmean_cmh2o", func(b *Breath) *float64 { return &b.MeanCmH2O }, 2},
+	{"pif_lpm", func(b *Breath) *float64 { return &b.PeakInspFlowLPM }, 2},
+	{"pef_lpm", func(b *Breath) *float64 { return &b.PeakExpFlowLPM }, 2},
+	{"eef_lpm", func(b *Breath) *float64 { return &b.EndExpFlowLPM }, 2},
+	{"tau_s", func(b *Breath) *float64 { return &b.TauS }, 3},
+	{"te_over_tau", func(b *Breath) *float64 { return &b.TeOverTau }, 3},
+	{"r_cmh2o_s_per_l", func(b *Breath) *float64 { return &b.RCmH2OSPerL }, 2},
+	{"c_ml_per_cmh2o", func(b *Breath) *float64 { return &b.CMLPerCmH2O }, 2},
+	{"ptot0_cmh2o", func(b *Breath) *float64 { return &b.PTot0CmH2O }, 2},
+	{"fit_r2", func(b *Breath) *float64 { return &b.FitR2 }, 4},
+	{"r_occ_cmh2o_s_per_l", func(b *Breath) *float64 { return &b.ROccCmH2OSPerL }, 2},
+	{"c_stat_ml_per_cmh2o", func(b *Breath) *float64 { return &b.CStatMLPerCmH2O }, 2},
+	{"trapped_ml", func(b *Breath) *float64 { return &b.TrappedML }, 1},
+	{"peepi_cmh2o", func(b *Breath) *float64 { return &b.PEEPiCmH2O }, 2},
+	{"trapped_eef_ml", func(b *Breath) *float64 { return &b.TrappedEEFML }, 1},
+	{"peepi_eef_cmh2o", func(b *Breath) *float64 { return &b.PEEPiEEFCmH2O }, 2},
+	{"peepi_fit_cmh2o", func(b *Breath) *float64 { return &b.PEEPiFitCmH2O }, 2},
+}
+
+// AppendJSON appends the breath as one JSON object (no newline) to dst. It is
+// the encoder behind MarshalJSON, written by hand so that unknown values come
+// out as null and publishing a breath does not go through reflection.
+func (b *Breath) AppendJSON(dst []byte) []byte {
+	dst = append(dst, `{"type":"breath","schema":`...)
+	dst = strconv.AppendInt(dst, BreathSchema, 10)
+	dst = append(dst, `,"stream":`...)
+	dst = strconv.AppendQuote(dst, b.Stream)
+	dst = append(dst, `,"seq":`...)
+	dst = strconv.AppendInt(dst, int64(b.Seq), 10)
+	for _, f := range breathFields {
+		dst = append(dst, ',', '"')
+		dst = append(dst, f.key...)
+		dst = append(dst, '"', ':')
+		dst = appendNumber(dst, *f.get(b), f.prec)
+	}
+	dst = append(dst, `,"flags":[`...)
+	for i, f := range b.Flags {
+		if i > 0 {
+			dst = append(dst, ',')
+		}
+		dst = strconv.AppendQuote(dst, f)
+	}
+	return append(dst, ']', '}')
+}
+
+// appendNumber writes v rounded to prec decimals, or null when v is not finite.
+func appendNumber(dst []byte, v float64, prec int) []byte {
+	if math.IsNaN(v) || math.IsInf(v, 0) {
+		return append(dst, "null"...)
+	}
+	dst = strconv.AppendFloat(dst, v, 'f', prec, 64)
+	// Trim trailing zeros of the fraction so records stay short and read well.
+	if prec > 0 {
+		i := len(dst)
+		for dst[i-1] == '0' {
+			i--
+		}
+		if dst[i-1] == '.' {
+			i--
+		}
+		dst = dst[:i]
+		if len(dst) == 2 && dst[0] == '-' && dst[1] == '0' {
+			dst = append(dst[:0], '0')
+		}
+	}
+	return dst
+}
+
+// MarshalJSON encodes the breath record contract.
+func (b Breath) MarshalJSON() ([]byte, error) {
+	return b.AppendJSON(make([]byte, 0, 768)), nil
+}
+
+// UnmarshalJSON decodes a breath record; null becomes NaN.
+func (b *Breath) UnmarshalJSON(data []byte) error {
+	var raw map[string]json.RawMessage
+	if err := json.Unmarshal(data, &raw); err != nil {
+		return fmt.Errorf("decode breath: %w", err)
+	}
+	*b = NewBreath()
+	if v, ok := raw["type"]; ok {
+		var typ string
+		if err := json.Unmarshal(v, &typ); err != nil || typ != "breath" {
+			return fmt.Errorf("decode breath: type is %s, want \"breath\"", v)
+		}
+	}
+	if v, ok := raw["stream"]; ok {
+		if err := json.Unmarshal(v, &b.Stream); err != nil {
+			return fmt.Errorf("decode breath: stream: %w", err)
+		}
+	}
+	if v, ok := raw["seq"]; ok {
+		if err := json.Unmarshal(v, &b.Seq); err != nil {
+			return fmt.Errorf("decode breath: seq: %w", err)
+		}
+	}
+	for _, f := range breathFields {
+		v, ok := raw[f.key]
+		if !ok {
+			continue
+		}
+		var p *float64
+		if err := json.Unmarshal(v, &p); err != nil {
+			return fmt.Errorf("decode breath: %s: %w", f.key, err)
+		}
+		if p != nil {
+			*f.get(b) = *p
+		}
+	}
+	if v, ok := raw["flags"]; ok {
+		if err := json.Unmarshal(v, &b.Flags); err != nil {
+			return fmt.Errorf("decode breath: flags: %w", err)
+		}
+	}
+	return nil
+}
