@@ -1,0 +1,405 @@
+package daemon
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/rs/zerolog"
+	"golang.org/x/sync/errgroup"
+
+	"trapline/alerts"
+	"trapline/analyze"
+	"trapline/ingest"
+)
+
+// stageOutput is what one step of a stream's analysis produced.
+type stageOutput struct {
+	Breaths []analyze.Breath
+	Alerts  []alerts.Event
+}
+
+// streamPipeline is the per-stream analysis as the stream runner drives it:
+// samples and status changes in, breaths and alert events out. It is used
+// from one goroutine only (the stream's analysis goroutine), so it needs no
+// locks.
+type streamPipeline interface {
+	// Samples analyses a batch of samples in time order.
+	Samples(ss []ingest.Sample) stageOutput
+	// Status reports a change of the source's condition at wall time now.
+	Status(ev ingest.Event, now time.Time) stageOutput
+	// Tick lets time-based conditions (signal lost) advance at wall time now.
+	Tick(now time.Time) stageOutput
+	// Ack acknowledges the alarm with the given id.
+	Ack(id, by string, now time.Time) (stageOutput, error)
+	// Flush finishes what is pending at shutdown.
+	Flush() stageOutput
+}
+
+// alertSink makes alert events durable and delivers them; Publish returns
+// once the event cannot be lost any more (it is in the spool or acknowledged
+// by JetStream).
+type alertSink interface {
+	Publish(ctx context.Context, ev alerts.Event) error
+}
+
+// bulletinSink publishes breaths and status heartbeats without blocking;
+// what it cannot send is counted and dropped.
+type bulletinSink interface {
+	Breath(b *analyze.Breath)
+	Status(stream string, data []byte)
+}
+
+// streamSpec is what the runner needs to start one stream.
+type streamSpec struct {
+	ID         string
+	OpenSource func() (ingest.Source, error)
+	// NewPipeline builds fresh analysis state; a restart begins anew.
+	NewPipeline func() (streamPipeline, error)
+	// QueueLen bounds the batches waiting between source and analysis.
+	QueueLen int
+	// TickEvery is the period of Tick.
+	TickEvery time.Duration
+	// StatusEvery is the period of the status heartbeat on NATS.
+	StatusEvery time.Duration
+	// Backoff is the restart policy; zero means defaultBackoff.
+	Backoff backoff
+}
+
+// ackRequest carries an acknowledgement to the goroutine that owns the
+// stream's pipeline.
+type ackRequest struct {
+	ID, By string
+	Reply  chan error
+}
+
+// stream is one configured stream and its live state, shared with the
+// health checks, the metrics and the ack handler.
+type stream struct {
+	spec   streamSpec
+	log    zerolog.Logger
+	m      *metrics
+	alerts alertSink
+	bull   bulletinSink
+
+	up        atomic.Bool // pipeline running
+	connected atomic.Bool // source reading
+	breaths   atomic.Uint64
+	active    atomic.Int64
+	restarts  atomic.Uint64
+	lastErr   atomic.Pointer[string]
+
+	// acks is nil while the pipeline is down; the ack handler then answers
+	// "not running".
+	ackMu sync.RWMutex
+	acks  chan ackRequest
+
+	dropEpisode bool // touched by the source goroutine only
+}
+
+func newStream(spec streamSpec, log zerolog.Logger, m *metrics, a alertSink, b bulletinSink) *stream {
+	if spec.QueueLen <= 0 {
+		spec.QueueLen = 1024
+	}
+	if spec.TickEvery <= 0 {
+		spec.TickEvery = time.Second
+	}
+	if spec.Backoff.Min <= 0 {
+		spec.Backoff = defaultBackoff
+	}
+	if spec.StatusEvery <= 0 {
+		spec.StatusEvery = 5 * time.Second
+	}
+	s := &stream{spec: spec, log: log.With().Str("stream", spec.ID).Logger(), m: m, alerts: a, bull: b}
+	m.streamUp.WithLabelValues(spec.ID).Set(0)
+	m.sourceUp.WithLabelValues(spec.ID).Set(0)
+	m.alertsActive.WithLabelValues(spec.ID).Set(0)
+	return s
+}
+
+// Run supervises the stream until ctx is cancelled.
+func (s *stream) Run(ctx context.Context) error {
+	return supervise(ctx, s.log, s.spec.Backoff, s.runOnce,
+		func(up bool) {
+			s.up.Store(up)
+			v := 0.0
+			if up {
+				v = 1
+			}
+			s.m.streamUp.WithLabelValues(s.spec.ID).Set(v)
+		},
+		func(err error, _ time.Duration) {
+			msg := err.Error()
+			s.lastErr.Store(&msg)
+			s.restarts.Add(1)
+			s.m.restarts.WithLabelValues(s.spec.ID).Inc()
+		})
+}
+
+// ready reports why the stream is not ready, or nil.
+func (s *stream) ready() error {
+	switch {
+	case !s.up.Load():
+		if e := s.lastErr.Load(); e != nil {
+			return fmt.Errorf("pipeline restarting after: %s", *e)
+		}
+		return errors.New("pipeline not running")
+	case !s.connected.Load():
+		return errors.New("source not connected")
+	}
+	return nil
+}
+
+// ack hands an acknowledgement to the running pipeline and waits for its
+// answer, at most until ctx ends.
+func (s *stream) ack(ctx context.Context, id, by string) error {
+	s.ackMu.RLock()
+	ch := s.acks
+	s.ackMu.RUnlock()
+	if ch == nil {
+		return fmt.Errorf("stream %s is not running", s.spec.ID)
+	}
+	req := ackRequest{ID: id, By: by, Reply: make(chan error, 1)}
+	select {
+	case ch <- req:
+	case <-ctx.Done():
+		return fmt.Errorf("ack %s: %w", id, ctx.Err())
+	}
+	select {
+	case err := <-req.Reply:
+		return err
+	case <-ctx.Done():
+		return fmt.Errorf("ack %s: %w", id, ctx.Err())
+	}
+}
+
+// runOnce runs the stream's source and analysis until ctx is cancelled or
+// either fails. The source goroutine is the only sender on the queue and
+// closes it when it stops; the analysis goroutine drains the queue, flushes
+// the pipeline and returns. That gives the shutdown order inside a stream:
+// the source stops first, then analysis finishes what was read.
+func (s *stream) runOnce(ctx context.Context) error {
+	src, err := s.spec.OpenSource()
+	if err != nil {
+		return fmt.Errorf("open source: %w", err)
+	}
+	pl, err := s.spec.NewPipeline()
+	if err != nil {
+		return fmt.Errorf("new pipeline: %w", err)
+	}
+	s.m.addSource(s.spec.ID, src.Stats)
+	// The new pipeline starts with no alarm raised.
+	s.active.Store(0)
+	s.m.alertsActive.WithLabelValues(s.spec.ID).Set(0)
+
+	queue := make(chan ingest.Event, s.spec.QueueLen)
+	acks := make(chan ackRequest)
+	s.ackMu.Lock()
+	s.acks = acks
+	s.ackMu.Unlock()
+	defer func() {
+		s.ackMu.Lock()
+		s.acks = nil
+		s.ackMu.Unlock()
+		s.connected.Store(false)
+		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(0)
+	}()
+
+	// srcCtx stops the source on shutdown or when analysis fails;
+	// analysis itself ends when the queue is closed.
+	srcCtx, stopSource := context.WithCancel(ctx)
+	defer stopSource()
+	analysisDone := make(chan struct{})
+
+	g := new(errgroup.Group)
+	g.Go(func() error {
+		defer close(queue)
+		err := protect(srcCtx, func(c context.Context) error {
+			return src.Run(c, func(ev ingest.Event) { s.enqueue(queue, analysisDone, ev) })
+		})
+		if err != nil && srcCtx.Err() == nil {
+			return fmt.Errorf("source: %w", err)
+		}
+		if err == nil && srcCtx.Err() == nil {
+			return errors.New("source ended")
+		}
+		return nil
+	})
+	g.Go(func() error {
+		defer close(analysisDone)
+		err := protect(ctx, func(context.Context) error { return s.analyse(ctx, pl, queue, acks) })
+		if err != nil {
+			stopSource()
+			return fmt.Errorf("analysis: %w", err)
+		}
+		return nil
+	})
+	return g.Wait()
+}
+
+// enqueue copies the event (its samples are only valid during the call) and
+// queues it without blocking the source for long. A full queue means the
+// analysis fell behind: the batch is dropped and counted, with one warning
+// per episode. Status events are never dropped.
+func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}, ev ingest.Event) {
+	if ev.Status == ingest.StatusConnected {
+		s.connected.Store(true)
+		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(1)
+	} else if ev.Status == ingest.StatusDisconnected {
+		s.connected.Store(false)
+		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(0)
+	}
+	if len(ev.Samples) > 0 {
+		// A source that delivers samples is reading, whether or not it
+		// announced it.
+		if !s.connected.Load() {
+			s.connected.Store(true)
+			s.m.sourceUp.WithLabelValues(s.spec.ID).Set(1)
+		}
+		ev.Samples = append([]ingest.Sample(nil), ev.Samples...)
+	}
+	if ev.Status != ingest.StatusNone {
+		select {
+		case queue <- ev:
+		case <-analysisDone:
+		}
+		return
+	}
+	select {
+	case queue <- ev:
+		if s.dropEpisode {
+			s.dropEpisode = false
+			s.log.Info().Msg("analysis caught up; no longer dropping samples")
+		}
+	case <-analysisDone:
+	default:
+		s.m.queueDropped.WithLabelValues(s.spec.ID).Add(float64(len(ev.Samples)))
+		if !s.dropEpisode {
+			s.dropEpisode = true
+			s.log.Warn().Int("queue", cap(queue)).Msg("analysis is behind its source; dropping samples")
+		}
+	}
+}
+
+// analyse is the stream's analysis loop: it owns the pipeline.
+func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan ingest.Event, acks <-chan ackRequest) error {
+	tick := time.NewTicker(s.spec.TickEvery)
+	defer tick.Stop()
+	var lastStatus time.Time
+	// pubCtx outlives ctx: alerts found while draining the queue at
+	// shutdown are still written to the spool.
+	pubCtx := context.WithoutCancel(ctx)
+	for {
+		select {
+		case ev, ok := <-queue:
+			if !ok {
+				return s.emit(pubCtx, pl.Flush(), time.Time{})
+			}
+			arrived := time.Now()
+			if ev.Status != ingest.StatusNone {
+				if err := s.emit(pubCtx, pl.Status(ev, arrived), time.Time{}); err != nil {
+					return err
+				}
+			}
+			if len(ev.Samples) > 0 {
+				if err := s.emit(pubCtx, pl.Samples(ev.Samples), arrived); err != nil {
+					return err
+				}
+			}
+		case now := <-tick.C:
+			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
+				return err
+			}
+			if now.Sub(lastStatus) >= s.spec.StatusEvery {
+				lastStatus = now
+				s.heartbeat(now)
+			}
+		case req := <-acks:
+			out, err := pl.Ack(req.ID, req.By, time.Now())
+			if err == nil {
+				err = s.emit(pubCtx, out, time.Time{})
+			}
+			req.Reply <- err
+		}
+	}
+}
+
+// emit delivers what a step produced: alerts through the durable publisher
+// (an error here stops the stream so that the supervisor restarts it rather
+// than losing an alert), breaths through the non-blocking bulletin.
+func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) error {
+	for i := range out.Alerts {
+		ev := out.Alerts[i]
+		if err := s.alerts.Publish(ctx, ev); err != nil {
+			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
+		}
+		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
+		switch ev.State {
+		case alerts.Raised:
+			s.active.Add(1)
+		case alerts.Cleared:
+			s.active.Add(-1)
+		}
+		s.m.alertsActive.WithLabelValues(s.spec.ID).Set(float64(s.active.Load()))
+	}
+	for i := range out.Breaths {
+		b := &out.Breaths[i]
+		if b.Stream == "" {
+			b.Stream = s.spec.ID
+		}
+		s.bull.Breath(b)
+		s.breaths.Add(1)
+		s.m.breaths.WithLabelValues(s.spec.ID).Inc()
+		if !arrived.IsZero() {
+			s.m.breathLatency.Observe(time.Since(arrived).Seconds())
+		}
+	}
+	return nil
+}
+
+// heartbeat publishes the stream's status message.
+func (s *stream) heartbeat(now time.Time) {
+	st := streamStatus{
+		Type:      "status",
+		Schema:    1,
+		Stream:    s.spec.ID,
+		Time:      now.UTC(),
+		Running:   s.up.Load(),
+		Connected: s.connected.Load(),
+		Breaths:   s.breaths.Load(),
+		Active:    s.active.Load(),
+		Restarts:  s.restarts.Load(),
+	}
+	b, err := st.marshal()
+	if err != nil {
+		return
+	}
+	s.bull.Status(s.spec.ID, b)
+}
+
+// streamStatus is the status heartbeat published on
+// <prefix>.status.<stream>: whether the stream runs and reads, and its
+// counters so far.
+type streamStatus struct {
+	Type      string    `json:"type"`
+	Schema    int       `json:"schema"`
+	Stream    string    `json:"stream"`
+	Time      time.Time `json:"time"`
+	Running   bool      `json:"running"`
+	Connected bool      `json:"connected"`
+	Breaths   uint64    `json:"breaths"`
+	Active    int64     `json:"alerts_active"`
+	Restarts  uint64    `json:"restarts"`
+}
+
+func (st streamStatus) marshal() ([]byte, error) {
+	b, err := json.Marshal(st)
+	if err != nil {
+		return nil, fmt.Errorf("encode status of %s: %w", st.Stream, err)
+	}
+	return b, nil
+}

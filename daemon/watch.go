@@ -1,0 +1,467 @@
+package daemon
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"sort"
+	"strings"
+	"sync"
+	"time"
+
+	"github.com/mattn/go-isatty"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+	"github.com/rs/zerolog"
+	"github.com/spf13/cobra"
+	"golang.org/x/term"
+
+	"trapline/alerts"
+	"trapline/analyze"
+)
+
+// defaultNATSURL is where the embedded server listens by default.
+const defaultNATSURL = "nats://127.0.0.1:4222"
+
+// watchOptions configures the live view.
+type watchOptions struct {
+	Prefix string
+	Since  time.Duration
+	JSON   bool
+	// Plain forces line output even on a terminal.
+	Plain bool
+	// Streams limits the view to these stream ids; empty means all.
+	Streams []string
+	// PlainEvery is the period of the per-stream lines in plain output.
+	PlainEvery time.Duration
+	// RedrawEvery is the period of the terminal redraw.
+	RedrawEvery time.Duration
+}
+
+func (a *app) watchCommand() *cobra.Command {
+	var (
+		url  string
+		opts = watchOptions{Prefix: "trapline", Since: time.Hour}
+	)
+	cmd := &cobra.Command{
+		Use:   "watch",
+		Short: "Show live breaths and alerts from NATS (a terminal view, or NDJSON with --json)",
+		Long: "watch subscribes to the breath, status and alert subjects of a running trapline and shows\n" +
+			"one line per stream with its latest breath figures and active alerts, and a log of alert\n" +
+			"events. On start it replays the alerts of the last --since from JetStream.\n" +
+			"With --json it prints every message as one line of JSON, for scripts.\n\n" + Caution,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			if opts.Since < 0 {
+				return usageErrorf("--since %v: must not be negative", opts.Since)
+			}
+			if opts.Prefix == "" || strings.ContainsAny(opts.Prefix, " *>") {
+				return usageErrorf("--prefix %q: want a subject prefix without spaces or wildcards", opts.Prefix)
+			}
+			ctx := cmd.Context()
+			nc, err := nats.Connect(url,
+				nats.Name("trapline watch"),
+				nats.MaxReconnects(-1),
+				nats.RetryOnFailedConnect(true),
+				nats.ReconnectWait(time.Second),
+				nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
+					if err != nil {
+						a.log.Warn().Err(err).Msg("disconnected from NATS; reconnecting")
+					}
+				}),
+				nats.ReconnectHandler(func(*nats.Conn) { a.log.Info().Msg("reconnected to NATS") }),
+			)
+			if err != nil {
+				return fmt.Errorf("connect to %s: %w", url, err)
+			}
+			defer nc.Close()
+			return runWatch(ctx, nc, opts, cmd.OutOrStdout(), a.log.Warn)
+		},
+	}
+	f := cmd.Flags()
+	f.StringVar(&url, "nats-url", defaultNATSURL, "NATS server to read from")
+	f.StringVar(&opts.Prefix, "prefix", opts.Prefix, "subject prefix of the daemon (nats.prefix)")
+	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
+	f.BoolVar(&opts.JSON, "json", false, "print every message as one line of JSON (NDJSON) instead of the view")
+	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
+	f.StringSliceVar(&opts.Streams, "stream", nil, "show only these streams (repeat or comma-separate)")
+	return cmd
+}
+
+// runWatch shows what arrives on nc until ctx is cancelled. warn logs
+// problems that do not stop the view.
+func runWatch(ctx context.Context, nc *nats.Conn, opts watchOptions, out io.Writer, warn logFunc) error {
+	v := newWatchView(out, opts)
+	subs, err := v.subscribe(ctx, nc, warn)
+	if err != nil {
+		return err
+	}
+	defer func() {
+		for _, s := range subs {
+			s()
+		}
+	}()
+	v.loop(ctx)
+	return nil
+}
+
+// logFunc starts a log event; zerolog's Logger.Warn has this shape.
+type logFunc = func() *zerolog.Event
+
+// watchView is the state behind the live view: the latest breath and the
+// active alarms of every stream, and the log of alert events. It is safe
+// for concurrent use by the NATS callbacks and the render loop.
+type watchView struct {
+	opts     watchOptions
+	out      io.Writer
+	terminal bool
+	width    func() int
+
+	mu      sync.Mutex
+	streams map[string]*streamView
+	log     []string
+	seen    map[string]bool // alert DedupIDs, so a replayed event is shown once
+	tally   map[string]map[alerts.State]int
+	dirty   bool
+	err     error
+}
+
+type streamView struct {
+	breath    analyze.Breath
+	hasBreath bool
+	status    *streamStatus
+	active    map[string]alerts.Event
+}
+
+// maxLogLines is how many alert events the terminal view keeps on screen.
+const maxLogLines = 12
+
+func newWatchView(out io.Writer, opts watchOptions) *watchView {
+	if opts.PlainEvery <= 0 {
+		opts.PlainEvery = 10 * time.Second
+	}
+	if opts.RedrawEvery <= 0 {
+		opts.RedrawEvery = 250 * time.Millisecond
+	}
+	v := &watchView{
+		opts:    opts,
+		out:     out,
+		streams: map[string]*streamView{},
+		seen:    map[string]bool{},
+		tally:   map[string]map[alerts.State]int{},
+		width:   func() int { return 120 },
+	}
+	if f, ok := out.(*os.File); ok && !opts.JSON && !opts.Plain && isatty.IsTerminal(f.Fd()) {
+		v.terminal = true
+		v.width = func() int {
+			if w, _, err := term.GetSize(int(f.Fd())); err == nil && w > 20 {
+				return w
+			}
+			return 80
+		}
+	}
+	return v
+}
+
+// subscribe starts the subscriptions and returns their stop functions.
+func (v *watchView) subscribe(ctx context.Context, nc *nats.Conn, warn logFunc) ([]func(), error) {
+	var stops []func()
+	for _, kind := range []string{"breath", "status"} {
+		sub, err := nc.Subscribe(v.opts.Prefix+"."+kind+".>", func(m *nats.Msg) { v.handle(kind, m.Data) })
+		if err != nil {
+			return nil, fmt.Errorf("subscribe %s.%s.>: %w", v.opts.Prefix, kind, err)
+		}
+		stops = append(stops, func() { _ = sub.Unsubscribe() })
+	}
+	stop, err := v.subscribeAlerts(ctx, nc, warn)
+	if err != nil {
+		for _, s := range stops {
+			s()
+		}
+		return nil, err
+	}
+	return append(stops, stop), nil
+}
+
+// subscribeAlerts reads alerts through an ordered consumer over the
+// JetStream stream that holds them, starting --since ago, so that the view
+// opens with the recent history and then follows live. Without JetStream
+// (or no stream for the subject) it falls back to a plain subscription.
+func (v *watchView) subscribeAlerts(ctx context.Context, nc *nats.Conn, warn logFunc) (func(), error) {
+	subject := v.opts.Prefix + ".alert.>"
+	plain := func() (func(), error) {
+		sub, err := nc.Subscribe(subject, func(m *nats.Msg) { v.handle("alert", m.Data) })
+		if err != nil {
+			return nil, fmt.Errorf("subscribe %s: %w", subject, err)
+		}
+		return func() { _ = sub.Unsubscribe() }, nil
+	}
+	js, err := jetstream.New(nc)
+	if err != nil {
+		return plain()
+	}
+	lctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+	defer cancel()
+	name, err := js.StreamNameBySubject(lctx, subject)
+	if err != nil {
+		warn().Err(err).Str("subject", subject).Msg("no JetStream stream for alerts; showing live alerts only")
+		return plain()
+	}
+	cfg := jetstream.OrderedConsumerConfig{FilterSubjects: []string{subject}, DeliverPolicy: jetstream.DeliverNewPolicy}
+	if v.opts.Since > 0 {
+		start := time.Now().Add(-v.opts.Since)
+		cfg.DeliverPolicy = jetstream.DeliverByStartTimePolicy
+		cfg.OptStartTime = &start
+	}
+	cons, err := js.OrderedConsumer(lctx, name, cfg)
+	if err != nil {
+		return nil, fmt.Errorf("ordered consumer on %s: %w", name, err)
+	}
+	cc, err := cons.Consume(func(m jetstream.Msg) { v.handle("alert", m.Data()) })
+	if err != nil {
+		return nil, fmt.Errorf("consume %s: %w", name, err)
+	}
+	return cc.Stop, nil
+}
+
+// wanted reports whether the stream passes the --stream filter.
+func (v *watchView) wanted(stream string) bool {
+	if len(v.opts.Streams) == 0 {
+		return true
+	}
+	for _, s := range v.opts.Streams {
+		if s == stream {
+			return true
+		}
+	}
+	return false
+}
+
+func (v *watchView) stream(id string) *streamView {
+	s := v.streams[id]
+	if s == nil {
+		s = &streamView{active: map[string]alerts.Event{}}
+		v.streams[id] = s
+	}
+	return s
+}
+
+// handle takes one message of the given kind (breath, status, alert).
+func (v *watchView) handle(kind string, data []byte) {
+	v.mu.Lock()
+	defer v.mu.Unlock()
+	switch kind {
+	case "breath":
+		var b analyze.Breath
+		if err := json.Unmarshal(data, &b); err != nil || !v.wanted(b.Stream) {
+			return
+		}
+		s := v.stream(b.Stream)
+		s.breath, s.hasBreath = b, true
+	case "status":
+		var st streamStatus
+		if err := json.Unmarshal(data, &st); err != nil || !v.wanted(st.Stream) {
+			return
+		}
+		v.stream(st.Stream).status = &st
+	case "alert":
+		var ev alerts.Event
+		if err := json.Unmarshal(data, &ev); err != nil || !v.wanted(ev.Stream) {
+			return
+		}
+		if v.seen[ev.DedupID()] {
+			return
+		}
+		v.seen[ev.DedupID()] = true
+		s := v.stream(ev.Stream)
+		if ev.State == alerts.Cleared {
+			delete(s.active, ev.ID)
+		} else {
+			s.active[ev.ID] = ev
+		}
+		if v.tally[ev.Condition] == nil {
+			v.tally[ev.Condition] = map[alerts.State]int{}
+		}
+		v.tally[ev.Condition][ev.State]++
+		line := alertLine(&ev)
+		v.log = append(v.log, line)
+		if len(v.log) > maxLogLines {
+			v.log = v.log[len(v.log)-maxLogLines:]
+		}
+		if !v.opts.JSON && !v.terminal {
+			v.write(line + "\n")
+		}
+	}
+	if v.opts.JSON {
+		v.write(string(data) + "\n")
+	}
+	v.dirty = true
+}
+
+// write writes to the output and remembers the first error (a closed pipe
+// ends the view).
+func (v *watchView) write(s string) {
+	if v.err != nil {
+		return
+	}
+	if _, err := io.WriteString(v.out, s); err != nil {
+		v.err = err
+	}
+}
+
+// loop redraws the view until ctx is cancelled or the output fails.
+func (v *watchView) loop(ctx context.Context) {
+	every := v.opts.RedrawEvery
+	if !v.terminal {
+		every = v.opts.PlainEvery
+	}
+	t := time.NewTicker(every)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			if v.terminal {
+				v.mu.Lock()
+				v.redraw()
+				v.mu.Unlock()
+			}
+			return
+		case <-t.C:
+		}
+		v.mu.Lock()
+		switch {
+		case v.opts.JSON:
+		case v.terminal:
+			if v.dirty {
+				v.redraw()
+			}
+		default:
+			for _, l := range v.streamLines() {
+				v.write(l + "\n")
+			}
+		}
+		v.dirty = false
+		failed := v.err != nil
+		v.mu.Unlock()
+		if failed {
+			return
+		}
+	}
+}
+
+// redraw paints the whole terminal view: a title, one line per stream, the
+// alert log. Caller holds v.mu.
+func (v *watchView) redraw() {
+	w := v.width()
+	var b strings.Builder
+	b.WriteString("\x1b[H\x1b[2J")
+	b.WriteString(clip(fmt.Sprintf("trapline watch  %s  (research use only; not a medical device)", time.Now().Format(time.TimeOnly)), w) + "\n\n")
+	lines := v.streamLines()
+	if len(lines) == 0 {
+		b.WriteString("waiting for breaths...\n")
+	}
+	for _, l := range lines {
+		b.WriteString(clip(l, w) + "\n")
+	}
+	b.WriteString("\nalert events:\n")
+	for _, l := range v.log {
+		b.WriteString(clip(l, w) + "\n")
+	}
+	v.write(b.String())
+}
+
+// streamLines renders one line per stream, sorted by id. Caller holds v.mu.
+func (v *watchView) streamLines() []string {
+	ids := make([]string, 0, len(v.streams))
+	for id := range v.streams {
+		ids = append(ids, id)
+	}
+	sort.Strings(ids)
+	out := make([]string, 0, len(ids))
+	for _, id := range ids {
+		out = append(out, streamLine(id, v.streams[id]))
+	}
+	return out
+}
+
+// streamLine is one stream's figures: the latest breath and the active
+// alarms, with "-" for a value the analysis could not give.
+func streamLine(id string, s *streamView) string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "%-10s", id)
+	if s.status != nil && !s.status.Connected {
+		b.WriteString(" [no signal]")
+	}
+	if s.hasBreath {
+		br := &s.breath
+		fmt.Fprintf(&b, " #%-5d RR %s  VTe %s mL  PIP %s  PEEP %s  PEEPi %s  trapped %s mL  EEF %s L/min  Te/tau %s",
+			br.Seq, num(br.RateBPM, 0), num(br.VteML, 0), num(br.PeakCmH2O, 1), num(br.PEEPCmH2O, 1),
+			num(br.PEEPiCmH2O, 1), num(br.TrappedML, 0), num(br.EndExpFlowLPM, 1), num(br.TeOverTau, 2))
+	} else {
+		b.WriteString(" no breath yet")
+	}
+	if len(s.active) == 0 {
+		b.WriteString("  | no alerts")
+		return b.String()
+	}
+	act := make([]string, 0, len(s.active))
+	for _, ev := range s.active {
+		tag := ev.Condition + "(" + string(ev.Priority)
+		if ev.State == alerts.Acknowledged {
+			tag += ",ack"
+		}
+		act = append(act, tag+")")
+	}
+	sort.Strings(act)
+	b.WriteString("  | ALERTS: " + strings.Join(act, " "))
+	return b.String()
+}
+
+// alertLine is one entry of the alert log.
+func alertLine(ev *alerts.Event) string {
+	ts := ev.Time.Local().Format(time.TimeOnly)
+	if ev.Time.IsZero() {
+		ts = "--:--:--"
+	}
+	return fmt.Sprintf("%s %-10s %-12s %-22s %-6s %s [%s]", ts, ev.Stream, strings.ToUpper(string(ev.State)),
+		ev.Condition, ev.Priority, ev.Message, ev.ID)
+}
+
+// summary returns, per condition, how many alarms were raised and cleared
+// (and escalated or acknowledged), sorted by condition.
+func (v *watchView) summary() []string {
+	v.mu.Lock()
+	defer v.mu.Unlock()
+	conds := make([]string, 0, len(v.tally))
+	for c := range v.tally {
+		conds = append(conds, c)
+	}
+	sort.Strings(conds)
+	var out []string
+	for _, c := range conds {
+		t := v.tally[c]
+		out = append(out, fmt.Sprintf("%-24s raised %d, escalated %d, acknowledged %d, cleared %d",
+			c, t[alerts.Raised], t[alerts.Escalated], t[alerts.Acknowledged], t[alerts.Cleared]))
+	}
+	return out
+}
+
+// num formats v with the given decimals, or "-" when unknown.
+func num(v float64, prec int) string {
+	if math.IsNaN(v) || math.IsInf(v, 0) {
+		return "-"
+	}
+	return fmt.Sprintf("%.*f", prec, v)
+}
+
+// clip cuts s to w runes so that a redraw never wraps.
+func clip(s string, w int) string {
+	r := []rune(s)
+	if len(r) <= w {
+		return s
+	}
+	return string(r[:w])
+}
