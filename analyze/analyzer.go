@@ -1,0 +1,374 @@
+package analyze
+
+import (
+	"math"
+
+	"trapline/ingest"
+)
+
+// Flags that a breath record may carry, each naming why a value may be
+// unreliable or what was found.
+const (
+	// FlagPause: an end-inspiratory pause was found; the plateau and the
+	// occlusion-method values are present.
+	FlagPause = "pause"
+	// FlagNoPause: no end-inspiratory pause; plateau and occlusion values are null.
+	FlagNoPause = "no-pause"
+	// FlagEffort: the breath was not passive (trigger dip or a pressure dip
+	// below the passive model); mechanics are not trend-worthy.
+	FlagEffort = "effort"
+	// FlagShort: inspired volume below the minimum breath volume.
+	FlagShort = "short"
+	// FlagArtifact: non-finite samples were dropped inside the breath.
+	FlagArtifact = "artifact"
+	// FlagLeak: expired volume falls short of inspired volume.
+	FlagLeak = "leak"
+	// FlagFitSingular: flow and volume were collinear or constant; the
+	// equation of motion could not be solved and R, C, P0 are null.
+	FlagFitSingular = "fit-singular"
+	// FlagFitImplausible: the fit gave a non-physical or out-of-range R or C,
+	// or too low an r²; R, C, P0 are null.
+	FlagFitImplausible = "fit-implausible"
+	// FlagFlowReversed: pressure falls with inflow and volume (both fitted R
+	// and E negative): the flow sign of the input is probably reversed.
+	FlagFlowReversed = "flow-reversed"
+	// FlagTauUnreliable: the expiratory flow–volume curve gave no usable
+	// time constant.
+	FlagTauUnreliable = "tau-unreliable"
+	// FlagPEEPiMismatch: the two intrinsic PEEP estimates disagree beyond
+	// the configured tolerance (flow limitation, heterogeneity or effort).
+	FlagPEEPiMismatch = "peepi-mismatch"
+)
+
+// phase is the segmentation state.
+type phase uint8
+
+const (
+	phaseWait phase = iota // no breath open: waiting for an inspiration
+	phaseInsp              // inspiration, including an end-inspiratory pause
+	phaseExp               // expiration, including an end-expiratory pause
+)
+
+// flowSmoothS is the time constant of the exponential smoothing applied to
+// flow for pause detection only; segmentation and volumes use raw flow.
+const flowSmoothS = 0.01
+
+// Analyzer segments one stream into breaths and computes the breath record.
+// It is a streaming state machine: Push does O(1) amortised work and keeps
+// bounded memory (a 1024-sample ring and a 256-point decimated breath), and
+// allocates only when a breath completes. It is not safe for concurrent use.
+//
+// Segmentation follows common practice (zero crossings of flow confirmed by
+// hysteresis: the flow must stay beyond TriggerFlowLPM for HoldS, phases at
+// least MinPhaseS long). The start of a breath is the interpolated zero
+// crossing of flow before the confirmed inspiration, so an expiratory flow
+// still present at that moment (the waveform sign of intrinsic PEEP; Nguyen,
+// Pastor, L'Her, BioMed Eng OnLine 2012) is measured, not smoothed away.
+type Analyzer struct {
+	stream string
+	cfg    Config
+
+	trigLPS      float64
+	pauseFlowLPS float64
+	seq          int
+
+	ph       phase
+	havePrev bool
+	prevT    float64
+	prevF    float64
+	fs       float64 // smoothed flow
+	skipped  uint64
+
+	// The open breath.
+	startT   float64
+	vol      float64 // volume since the start of the breath (L)
+	cur      segment
+	artifact bool
+	effort   bool // trigger dip seen at the start of this breath
+	buf      decimator
+
+	// End of inspiration.
+	expCand     bool
+	expCandT    float64
+	expCandV    float64
+	expHoldT    float64 // NaN until flow is beyond the trigger
+	expStartT   float64
+	expStartV   float64
+	pauseStartT float64 // NaN when not in a pause
+	plateau     float64
+	pauseLen    float64
+
+	// Tentative start of the next inspiration.
+	inCand  bool
+	candT   float64
+	candV   float64 // volume of the open breath at the crossing
+	pend    segment
+	pendVol float64
+	inHoldT float64
+
+	ring ring
+}
+
+// NewAnalyzer returns an analyzer for stream with cfg. cfg should have passed
+// Validate; out-of-range values are not checked again here.
+func NewAnalyzer(stream string, cfg Config) *Analyzer {
+	a := &Analyzer{stream: stream, cfg: cfg}
+	a.trigLPS = cfg.TriggerFlowLPM / 60
+	a.pauseFlowLPS = cfg.PauseFlowLPM / 60
+	a.Reset()
+	return a
+}
+
+// Stream returns the stream id the analyzer labels its breaths with.
+func (a *Analyzer) Stream() string { return a.stream }
+
+// Skipped returns how many samples were ignored so far because their time
+// was not finite or did not increase.
+func (a *Analyzer) Skipped() uint64 { return a.skipped }
+
+// Reset forgets the open breath and the sample history, so that no breath
+// spans a gap or a reconnection. Breath numbering continues.
+func (a *Analyzer) Reset() {
+	a.ph = phaseWait
+	a.havePrev = false
+	a.inCand = false
+	a.ring.reset()
+	a.resetBreath()
+}
+
+func (a *Analyzer) resetBreath() {
+	a.cur.reset()
+	a.pend.reset()
+	a.buf.reset()
+	a.vol = 0
+	a.artifact = false
+	a.effort = false
+	a.expCand = false
+	a.expHoldT = math.NaN()
+	a.expStartT = math.NaN()
+	a.expStartV = math.NaN()
+	a.pauseStartT = math.NaN()
+	a.plateau = math.NaN()
+	a.pauseLen = math.NaN()
+}
+
+// Push feeds one sample and returns the breath that it completed, if any. A
+// breath completes when the next inspiration is confirmed, HoldS after it
+// started. Samples with non-finite values are dropped (the open breath is
+// flagged "artifact"); samples whose time does not increase are skipped; a
+// step in time longer than MaxGapS resets the analyzer.
+func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
+	t, p, f := s.TimeS, s.PressureCmH2O, s.FlowLPS
+	if math.IsNaN(t) || math.IsInf(t, 0) {
+		a.skipped++
+		return Breath{}, false
+	}
+	if math.IsNaN(p) || math.IsInf(p, 0) || math.IsNaN(f) || math.IsInf(f, 0) {
+		a.artifact = a.ph != phaseWait
+		a.skipped++
+		return Breath{}, false
+	}
+	if !a.havePrev {
+		a.havePrev = true
+		a.prevT, a.prevF, a.fs = t, f, f
+		a.ring.push(t, p, f)
+		return Breath{}, false
+	}
+	dt := t - a.prevT
+	if !(dt > 0) {
+		a.skipped++
+		return Breath{}, false
+	}
+	if dt > a.cfg.MaxGapS {
+		a.Reset()
+		a.havePrev = true
+		a.prevT, a.prevF, a.fs = t, f, f
+		a.ring.push(t, p, f)
+		return Breath{}, false
+	}
+	a.ring.push(t, p, f)
+	a.fs += (f - a.fs) * dt / (flowSmoothS + dt)
+
+	var out Breath
+	done := false
+	switch a.ph {
+	case phaseWait:
+		a.stepWait(t, f, p, dt)
+	case phaseInsp:
+		a.stepInsp(t, f, p, dt)
+	case phaseExp:
+		out, done = a.stepExp(t, f, p, dt)
+	}
+	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {
+		// Apnea, a flat line or a stuck sensor: drop the open breath rather
+		// than report one that spans it.
+		a.ph = phaseWait
+		a.inCand = false
+		a.resetBreath()
+	}
+	a.prevT, a.prevF = t, f
+	return out, done
+}
+
+// crossing returns the linearly interpolated time at which flow passes zero
+// between the previous sample and (t, f), and the volume accrued from the
+// previous sample to that time (trapezoid of the line through zero).
+func (a *Analyzer) crossing(t, f float64) (tc, dv float64) {
+	f0 := a.prevF
+	tc = a.prevT
+	if f0 != f {
+		tc = a.prevT + (t-a.prevT)*f0/(f0-f)
+	}
+	return tc, 0.5 * f0 * (tc - a.prevT)
+}
+
+// track handles a tentative start of inspiration: it returns true when the
+// inspiration is confirmed. While tentative, samples accumulate apart in
+// a.pend; if the flow falls back to zero they are merged into the open breath.
+func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
+	if !a.inCand {
+		if a.prevF <= 0 && f > 0 {
+			tc, dv := a.crossing(t, f)
+			a.candT = tc
+			a.candV = a.vol + dv
+			a.pendVol = 0.5 * f * (t - tc)
+			a.pend.reset()
+			a.pend.add(f, a.pendVol, p)
+			a.inCand = true
+			a.inHoldT = math.NaN()
+			if f > a.trigLPS {
+				a.inHoldT = t
+			}
+			return a.cfg.HoldS == 0 && f > a.trigLPS
+		}
+		if a.ph != phaseWait {
+			a.vol += 0.5 * (a.prevF + f) * dt
+			a.cur.add(f, a.vol, p)
+			a.buf.add(t, f, a.vol, p)
+		}
+		return false
+	}
+	a.pendVol += 0.5 * (a.prevF + f) * dt
+	if f <= 0 {
+		a.inCand = false
+		if a.ph != phaseWait {
+			a.cur.merge(&a.pend, a.candV)
+			a.vol = a.candV + a.pendVol
+			a.cur.add(f, a.vol, p)
+			a.buf.add(t, f, a.vol, p)
+		}
+		return false
+	}
+	a.pend.add(f, a.pendVol, p)
+	if a.ph != phaseWait {
+		a.buf.add(t, f, a.candV+a.pendVol, p)
+	}
+	if f <= a.trigLPS {
+		a.inHoldT = math.NaN()
+		return false
+	}
+	if math.IsNaN(a.inHoldT) {
+		a.inHoldT = t
+	}
+	return t-a.inHoldT >= a.cfg.HoldS
+}
+
+// begin opens a breath at the confirmed crossing, taking over the samples
+// accumulated since it.
+func (a *Analyzer) begin(effort bool) {
+	a.resetBreath()
+	a.ph = phaseInsp
+	a.startT = a.candT
+	a.cur = a.pend
+	a.vol = a.pendVol
+	a.effort = effort
+	a.inCand = false
+	a.pend.reset()
+}
+
+func (a *Analyzer) stepWait(t, f, p, dt float64) {
+	if a.track(t, f, p, dt) {
+		a.begin(false)
+	}
+}
+
+func (a *Analyzer) stepInsp(t, f, p, dt float64) {
+	a.vol += 0.5 * (a.prevF + f) * dt
+	a.cur.add(f, a.vol, p)
+	a.buf.add(t, f, a.vol, p)
+
+	// End-inspiratory pause: smoothed |flow| under the pause threshold after
+	// flow has been delivered (common practice: below ~2–5 % of peak flow or
+	// 1–3 L/min).
+	thr := math.Max(a.pauseFlowLPS, a.cfg.PauseFlowFraction*a.cur.maxF)
+	if math.IsNaN(a.pauseStartT) {
+		if a.cur.maxF > a.trigLPS && math.Abs(a.fs) < thr {
+			a.pauseStartT = t
+		}
+	} else if a.fs >= thr {
+		a.pauseStartT = math.NaN()
+	}
+
+	// Start of expiration: the last crossing of zero downwards before the
+	// flow stays below −TriggerFlowLPM for HoldS.
+	if !a.expCand {
+		if a.prevF >= 0 && f < 0 {
+			tc, dv := a.crossing(t, f)
+			a.expCand = true
+			a.expCandT = tc
+			a.expCandV = a.vol - 0.5*(a.prevF+f)*dt + dv
+			a.expHoldT = math.NaN()
+		} else {
+			return
+		}
+	}
+	if f >= 0 {
+		a.expCand = false
+		return
+	}
+	if f >= -a.trigLPS {
+		a.expHoldT = math.NaN()
+		return
+	}
+	if math.IsNaN(a.expHoldT) {
+		a.expHoldT = t
+	}
+	if t-a.expHoldT < a.cfg.HoldS || a.expCandT-a.startT < a.cfg.MinPhaseS {
+		return
+	}
+	a.ph = phaseExp
+	a.expStartT = a.expCandT
+	a.expStartV = a.expCandV
+	a.expCand = false
+	if !math.IsNaN(a.pauseStartT) {
+		a.pauseLen = a.expStartT - a.pauseStartT
+		if a.pauseLen >= a.cfg.MinPauseS {
+			if mp, _, n := a.ring.window(a.expStartT-a.cfg.PlateauWindowS, a.expStartT); n > 0 {
+				a.plateau = mp
+			}
+		}
+	}
+}
+
+func (a *Analyzer) stepExp(t, f, p, dt float64) (Breath, bool) {
+	if !a.track(t, f, p, dt) {
+		return Breath{}, false
+	}
+	if a.candT-a.expStartT < a.cfg.MinPhaseS {
+		// Too soon after the start of expiration: keep treating it as
+		// tentative until the flow falls back (then it merges) or the
+		// expiration is long enough.
+		return Breath{}, false
+	}
+	b := a.finish()
+	// A pressure dip below end-expiratory pressure around the start of the
+	// next inspiration is the trigger effort of the patient.
+	effort := false
+	if !math.IsNaN(b.PEEPCmH2O) {
+		if mp, ok := a.ring.minPressure(a.candT - 0.2); ok && mp < b.PEEPCmH2O-a.cfg.EffortDipCmH2O {
+			effort = true
+		}
+	}
+	a.begin(effort)
+	return b, true
+}

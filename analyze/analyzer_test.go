@@ -1,0 +1,63 @@
+package analyze
+
+import (
+	"math"
+	"testing"
+)
+
+// sig3 reports whether got equals want to three significant figures.
+func sig3(got, want float64) bool {
+	if math.IsNaN(got) {
+		return false
+	}
+	unit := math.Pow(10, math.Floor(math.Log10(math.Abs(want)))-2)
+	return math.Abs(got-want) <= unit/2
+}
+
+// TestCheckCase1 reproduces REFERENCE §11 case 1 (derived from the linear
+// single-compartment model, Bates 2009; trapped volume VT·x/(1 − x) after
+// Marini, Crooke, Truwit 1989): VT 0.6 L, R 25, C 0.06 L/cmH2O, rate 24,
+// Ti 0.8 s square flow without pause, PEEP 5. Samples at 1000 Hz are placed
+// half a sample off the flow edges so that no sample falls on a
+// discontinuity.
+func TestCheckCase1(t *testing.T) {
+	m := linearVC{R: 25, C: 0.06, PEEP: 5, VT: 0.6, Rate: 24, TFlow: 0.8, Fs: 1000, Offset: 0.0005, Steady: true}
+	breaths := run(DefaultConfig(), m.samples(8))
+	if len(breaths) < 6 {
+		t.Fatalf("got %d breaths from 8 cycles, want at least 6", len(breaths))
+	}
+	for _, b := range breaths {
+		checks := []struct {
+			name      string
+			got, want float64
+		}{
+			{"R", b.RCmH2OSPerL, 25.0},
+			{"C", b.CMLPerCmH2O, 60.0},
+			{"P0", b.PTot0CmH2O, 9.748},
+			{"trapped", b.TrappedML, 285},
+			{"trapped_eef", b.TrappedEEFML, 285},
+			{"PEEPi", b.PEEPiCmH2O, 4.748},
+			{"PEEPi_eef", b.PEEPiEEFCmH2O, 4.748},
+			{"EEF", b.EndExpFlowLPM, 11.40},
+			{"Ppeak", b.PeakCmH2O, 38.50},
+			// No pause: the plateau of the model is P0 + VT/C.
+			{"Pplat(fit)", b.PTot0CmH2O + b.VtiML/b.CMLPerCmH2O, 19.75},
+			{"tau", b.TauS, 1.5},
+			{"Te", b.TeS, 1.7},
+			{"rate", b.RateBPM, 24},
+			{"VT", b.VtiML, 600},
+			{"PEEP", b.PEEPCmH2O, 5},
+		}
+		for _, c := range checks {
+			if !sig3(c.got, c.want) {
+				t.Errorf("breath %d: %s = %.5g, want %.4g to 3 significant figures", b.Seq, c.name, c.got, c.want)
+			}
+		}
+		if !math.IsNaN(b.PlateauCmH2O) || !b.HasFlag(FlagNoPause) {
+			t.Errorf("breath %d: no pause, want null plateau and flag no-pause, got %v %v", b.Seq, b.PlateauCmH2O, b.Flags)
+		}
+		if b.HasFlag(FlagEffort) || b.HasFlag(FlagPEEPiMismatch) {
+			t.Errorf("breath %d: passive breath flagged %v", b.Seq, b.Flags)
+		}
+	}
+}

@@ -1,0 +1,133 @@
+package analyze
+
+// ringSize is the number of raw samples kept for the end-of-phase windows
+// (plateau, end-expiratory pressure and flow): about one second at 1000 Hz,
+// enough for the longest window plus the confirmation delay.
+const ringSize = 1024
+
+// rawSample is one accepted sample in the ring.
+type rawSample struct{ t, p, f float64 }
+
+// ring keeps the last ringSize samples; it never allocates.
+type ring struct {
+	s    [ringSize]rawSample
+	next int // index of the next write
+	n    int // number of valid entries
+}
+
+func (r *ring) reset() { r.next, r.n = 0, 0 }
+
+func (r *ring) push(t, p, f float64) {
+	r.s[r.next] = rawSample{t, p, f}
+	r.next = (r.next + 1) & (ringSize - 1)
+	if r.n < ringSize {
+		r.n++
+	}
+}
+
+// window returns the mean pressure and the count of the samples with time in
+// [from, to), and, when at least two are present, the flow at time `to`
+// extrapolated by a straight-line fit over them (at least the last flow).
+func (r *ring) window(from, to float64) (meanP, flowAtTo float64, count int) {
+	var sp, st, sf, stt, stf float64
+	lastF := 0.0
+	for k := 1; k <= r.n; k++ {
+		e := &r.s[(r.next-k)&(ringSize-1)]
+		if e.t >= to {
+			continue
+		}
+		if e.t < from {
+			break
+		}
+		if count == 0 {
+			lastF = e.f
+		}
+		count++
+		dt := e.t - to
+		sp += e.p
+		st += dt
+		sf += e.f
+		stt += dt * dt
+		stf += dt * e.f
+	}
+	if count == 0 {
+		return 0, 0, 0
+	}
+	n := float64(count)
+	meanP = sp / n
+	den := n*stt - st*st
+	if count < 2 || !(den > 0) {
+		return meanP, lastF, count
+	}
+	slope := (n*stf - st*sf) / den
+	return meanP, (sf - slope*st) / n, count
+}
+
+// minPressure returns the lowest pressure of the samples with time >= from.
+func (r *ring) minPressure(from float64) (float64, bool) {
+	minP, ok := 0.0, false
+	for k := 1; k <= r.n; k++ {
+		e := &r.s[(r.next-k)&(ringSize-1)]
+		if e.t < from {
+			break
+		}
+		if !ok || e.p < minP {
+			minP, ok = e.p, true
+		}
+	}
+	return minP, ok
+}
+
+// bufCap is the number of points the decimated breath buffer holds.
+const bufCap = 256
+
+// point is one decimated point of a breath: means of time, flow, volume
+// since the start of the breath, and pressure over its bin.
+type point struct{ t, f, v, p float64 }
+
+// decimator keeps a bounded, evenly decimated copy of the current breath for
+// the computations that need the whole breath after it ends (the
+// flow–volume fit of the time constant over 25–75 % of the exhaled volume,
+// whose limits are known only at the end, and the residual pattern of the
+// mechanics fit). Samples are averaged into bins of `stride` samples; when
+// the buffer fills, neighbouring bins are averaged pairwise and the stride
+// doubles. Memory is fixed (bufCap points), work is O(1) amortised per
+// sample, and a breath of any length keeps between bufCap/2 and bufCap
+// points. Bin means preserve the linear relations the fits rely on.
+type decimator struct {
+	pts    [bufCap]point
+	n      int
+	stride int
+	acc    point
+	accN   int
+}
+
+func (d *decimator) reset() {
+	d.n, d.stride, d.accN = 0, 1, 0
+	d.acc = point{}
+}
+
+func (d *decimator) add(t, f, v, p float64) {
+	d.acc.t += t
+	d.acc.f += f
+	d.acc.v += v
+	d.acc.p += p
+	d.accN++
+	if d.accN < d.stride {
+		return
+	}
+	k := 1 / float64(d.accN)
+	d.pts[d.n] = point{d.acc.t * k, d.acc.f * k, d.acc.v * k, d.acc.p * k}
+	d.n++
+	d.acc = point{}
+	d.accN = 0
+	if d.n < bufCap {
+		return
+	}
+	for i := 0; i < bufCap/2; i++ {
+		a, b := &d.pts[2*i], &d.pts[2*i+1]
+		d.pts[i] = point{(a.t + b.t) / 2, (a.f + b.f) / 2, (a.v + b.v) / 2, (a.p + b.p) / 2}
+	}
+	d.n = bufCap / 2
+	d.stride *= 2
+}

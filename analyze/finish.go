@@ -1,0 +1,228 @@
+package analyze
+
+import "math"
+
+// Plausible range of the expiratory time constant; outside it the
+// flow–volume estimate is discarded.
+const (
+	minTauS = 0.02
+	maxTauS = 20.0
+)
+
+// finish computes the record of the open breath, which ends at the crossing
+// a.candT with volume a.candV.
+func (a *Analyzer) finish() Breath {
+	b := NewBreath()
+	b.Stream = a.stream
+	b.Seq = a.seq
+	a.seq++
+	c := &a.cfg
+	endT := a.candT
+
+	b.StartS = a.startT
+	b.EndS = endT
+	b.TiS = a.expStartT - a.startT
+	b.TeS = endT - a.expStartT
+	b.RateBPM = 60 / (endT - a.startT)
+	b.VtiML = 1000 * a.expStartV
+	b.VteML = 1000 * (a.expStartV - a.candV)
+
+	seg := &a.cur
+	if seg.n > 0 {
+		b.PeakCmH2O = seg.maxP
+		b.MeanCmH2O = seg.p / seg.n
+		b.PeakInspFlowLPM = 60 * math.Max(seg.maxF, 0)
+		b.PeakExpFlowLPM = 60 * math.Max(-seg.minF, 0)
+	}
+
+	// End of expiration: mean pressure, and flow extrapolated to the end by
+	// a line fit so that a still-falling flow is read at the end, not at the
+	// middle of the window.
+	if mp, fe, n := a.ring.window(endT-c.EndExpWindowS, endT); n > 0 {
+		b.PEEPCmH2O = mp
+		b.EndExpFlowLPM = 60 * math.Max(-fe, 0)
+	}
+
+	var flags []string
+	add := func(f string) { flags = append(flags, f) }
+
+	if !math.IsNaN(a.plateau) {
+		add(FlagPause)
+		b.PlateauCmH2O = a.plateau
+	} else {
+		add(FlagNoPause)
+	}
+	if a.artifact {
+		add(FlagArtifact)
+	}
+	if b.VtiML < c.MinBreathVolumeML {
+		add(FlagShort)
+	}
+	if b.VtiML > 0 && (b.VtiML-b.VteML)/b.VtiML > c.LeakFraction {
+		add(FlagLeak)
+	}
+
+	// Equation of motion over the whole breath (Bates 2009): P0 is the total
+	// PEEP of a passive linear single compartment.
+	effort := a.effort
+	fr := seg.fit()
+	fitOK := false
+	switch {
+	case fr.singular:
+		add(FlagFitSingular)
+	case fr.r < 0 && fr.e < 0:
+		add(FlagFlowReversed)
+		add(FlagFitImplausible)
+	case fr.e <= 0:
+		// A negative elastance is what inspiratory muscle effort does to
+		// a passive model (REFERENCE: structured residuals, negative C).
+		effort = true
+		add(FlagFitImplausible)
+	case fr.r < 0 || fr.r > c.MaxRCmH2OSPerL || 1000/fr.e > c.MaxCMLPerCmH2O || fr.r2 < c.MinFitR2:
+		add(FlagFitImplausible)
+	default:
+		fitOK = true
+		b.RCmH2OSPerL = fr.r
+		b.CMLPerCmH2O = 1000 / fr.e
+		b.PTot0CmH2O = fr.p0
+		b.FitR2 = fr.r2
+		if a.residualDip(fr) > c.EffortDipCmH2O {
+			effort = true
+		}
+	}
+	if effort {
+		add(FlagEffort)
+	}
+
+	// Occlusion method over the end-inspiratory pause (Bates, Rossi,
+	// Milic-Emili 1985): R = (Ppeak − Pplat)/V' with the flow at the peak,
+	// Cstat = VT/(Pplat − total PEEP). Total PEEP is the fitted P0 when the
+	// fit holds, else the measured end-expiratory pressure.
+	if !math.IsNaN(b.PlateauCmH2O) {
+		if seg.maxPFlow > a.trigLPS {
+			if r := (b.PeakCmH2O - b.PlateauCmH2O) / seg.maxPFlow; r >= 0 {
+				b.ROccCmH2OSPerL = r
+			}
+		}
+		tot := b.PEEPCmH2O
+		if fitOK {
+			tot = b.PTot0CmH2O
+		}
+		if d := b.PlateauCmH2O - tot; d > 0 && b.VtiML > 0 {
+			b.CStatMLPerCmH2O = b.VtiML / d
+		}
+	}
+
+	// Expiratory time constant from the flow–volume slope over 25–75 % of
+	// the exhaled volume (REFERENCE §2; Lourens' slope method).
+	b.TauS = a.tauFlowVolume(b.VteML / 1000)
+	tau := b.TauS
+	if math.IsNaN(tau) {
+		add(FlagTauUnreliable)
+		if fitOK {
+			tau = fr.r / fr.e
+		}
+	}
+	b.TeOverTau = b.TeS / tau
+
+	// Air trapping, two independent routes (REFERENCE §3):
+	// from end-expiratory flow, V_trap ≈ τ·|EEF| and PEEPi ≈ R·|EEF|;
+	// from the fit, PEEPi = P0 − end-expiratory pressure and V_trap = PEEPi·C.
+	eef := b.EndExpFlowLPM / 60
+	b.TrappedEEFML = 1000 * eef * tau
+	r := math.NaN()
+	if fitOK {
+		r = fr.r
+	} else if !math.IsNaN(b.ROccCmH2OSPerL) {
+		r = b.ROccCmH2OSPerL
+	}
+	b.PEEPiEEFCmH2O = eef * r
+	if fitOK {
+		b.PEEPiFitCmH2O = fr.p0 - b.PEEPCmH2O
+	}
+	if !math.IsNaN(b.PEEPiEEFCmH2O) && !math.IsNaN(b.PEEPiFitCmH2O) {
+		d := math.Abs(b.PEEPiEEFCmH2O - b.PEEPiFitCmH2O)
+		tol := math.Max(c.PEEPiToleranceCmH2O, c.PEEPiToleranceFraction*math.Max(math.Abs(b.PEEPiEEFCmH2O), math.Abs(b.PEEPiFitCmH2O)))
+		if d > tol {
+			add(FlagPEEPiMismatch)
+		}
+	}
+	// The reported estimate: the fit route when the breath is passive and
+	// the fit holds (it uses every sample, so it is the least noisy), else
+	// the end-expiratory-flow route. Negative values from noise around zero
+	// are reported as zero: there is no negative trapped volume.
+	if fitOK && !effort {
+		b.PEEPiCmH2O = math.Max(0, b.PEEPiFitCmH2O)
+		b.TrappedML = b.PEEPiCmH2O * b.CMLPerCmH2O
+	} else {
+		b.PEEPiCmH2O = math.Max(0, b.PEEPiEEFCmH2O)
+		b.TrappedML = math.Max(0, b.TrappedEEFML)
+	}
+	b.Flags = flags
+	return b
+}
+
+// residualDip returns how far the pressure falls below the fitted passive
+// model at its worst point, judged on the decimated breath: inspiratory
+// muscle effort pulls airway pressure below what R, C and P0 predict, in one
+// structured dip, while noise averages out over a bin.
+func (a *Analyzer) residualDip(fr fitResult) float64 {
+	worst := 0.0
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t >= a.candT {
+			break
+		}
+		res := q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
+		if -res > worst {
+			worst = -res
+		}
+	}
+	return worst
+}
+
+// tauFlowVolume fits |V'| = a − V_ex/τ over the decimated expiration points
+// whose exhaled volume V_ex lies between 25 and 75 % of vte (L). In passive
+// mono-exponential emptying the volume still to exhale is τ·|V'|, so the
+// slope of the flow–volume curve is −1/τ; the middle of expiration avoids
+// the valve transient at its start and the noise floor at its end. Returns
+// NaN when fewer than three points qualify or the slope is not plausible.
+func (a *Analyzer) tauFlowVolume(vte float64) float64 {
+	if !(vte > 0) {
+		return math.NaN()
+	}
+	lo, hi := 0.25*vte, 0.75*vte
+	var n, sx, sy, sxx, sxy float64
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t < a.expStartT {
+			continue
+		}
+		if q.t >= a.candT {
+			break
+		}
+		x := a.expStartV - q.v
+		if x < lo || x > hi {
+			continue
+		}
+		y := -q.f
+		n++
+		sx += x
+		sy += y
+		sxx += x * x
+		sxy += x * y
+	}
+	if n < 3 {
+		return math.NaN()
+	}
+	den := n*sxx - sx*sx
+	if !(den > 0) {
+		return math.NaN()
+	}
+	slope := (n*sxy - sx*sy) / den
+	tau := -1 / slope
+	if !(tau >= minTauS && tau <= maxTauS) {
+		return math.NaN()
+	}
+	return tau
+}
