@@ -9,10 +9,10 @@ import "math"
 // start of inspiration can be kept apart and merged back when the start
 // turns out to be noise.
 type segment struct {
-	n                                  float64
-	f, v, p, ff, fv, vv, fp, vp, pp    float64
-	maxP, maxPFlow, minP, maxF, minF   float64
-	hasExtremes                        bool
+	n                                float64
+	f, v, p, ff, fv, vv, fp, vp, pp  float64
+	maxP, maxPFlow, minP, maxF, minF float64
+	hasExtremes                      bool
 }
 
 func (s *segment) reset() { *s = segment{} }
