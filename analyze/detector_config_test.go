@@ -23,7 +23,7 @@ func TestDetectorConfigValidate(t *testing.T) {
 		{"negative eef", func(c *DetectorConfig) { c.AirTrapping.EEFLPM = -1 }, []string{"detectors.air_trapping.eef_lpm: must be a positive number"}},
 		{"high below medium", func(c *DetectorConfig) { c.AirTrapping.HighPEEPiCmH2O = 4 }, []string{"detectors.air_trapping.high_peepi_cmh2o: must be at least medium_peepi_cmh2o (5)"}},
 		{"clear slope above slope", func(c *DetectorConfig) { c.RisingPeak.ClearSlopePctPerMin = 2 }, []string{"detectors.rising_peak_pressure.clear_slope_pct_per_min: must be between 0 and slope_pct_per_min (1.5)"}},
-		{"min breaths above window", func(c *DetectorConfig) { c.RisingPeak.MinBreaths = 100 }, []string{"detectors.rising_peak_pressure.min_breaths: must be between 3 and window_breaths (64)"}},
+		{"min breaths above window", func(c *DetectorConfig) { c.RisingPeak.MinBreaths = 100 }, []string{"detectors.rising_peak_pressure.min_breaths: must be between 3 and window_breaths (96)"}},
 		{"plateau limit zero", func(c *DetectorConfig) { c.Limits.HighPlateau.LimitCmH2O = 0 }, []string{"detectors.limits.high_plateau_pressure.limit_cmh2o: must be a positive number"}},
 		{"pressure range inverted", func(c *DetectorConfig) { c.Signal.PressureMaxCmH2O = -30 }, []string{"detectors.signal.pressure_max_cmh2o: must be above pressure_min_cmh2o (-20)"}},
 		{"several at once", func(c *DetectorConfig) {

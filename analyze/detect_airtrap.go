@@ -1,0 +1,324 @@
+package analyze
+
+import (
+	"fmt"
+	"math"
+)
+
+// maxAirTrappingWindow bounds the N-of-M window (and the validation of M).
+const maxAirTrappingWindow = 64
+
+// AirTrapping detects dynamic hyperinflation from breath records. It
+// combines the waveform sign (expiratory flow not back to zero when the
+// next breath starts; Nguyen, Pastor, L'Her, BioMed Eng OnLine 2012) with
+// the magnitude of the estimated intrinsic PEEP and trapped volume, the
+// ratio of expiratory time to time constant (below 3, expiration cannot be
+// complete: 1 − e⁻³ = 95 %), and the build-up sign: inspired volume above
+// expired volume over the window while the trapped-volume estimate rises.
+type AirTrapping struct {
+	cfg  AirTrappingConfig
+	ring [maxAirTrappingWindow]atBreath
+	next int // index of the next slot to write
+	n    int // breaths in the ring (≤ M)
+	buf  []float64
+}
+
+// atBreath is what the detector keeps of one breath.
+type atBreath struct {
+	seq      int
+	positive bool
+	eefLPM   float64
+	peepi    float64
+	trapped  float64
+	teOvTau  float64
+	tauS     float64
+	teS      float64
+	tiS      float64
+	vtML     float64
+	dVolML   float64 // inspired − expired volume
+}
+
+var _ BreathDetector = (*AirTrapping)(nil)
+
+// NewAirTrapping returns an air-trapping detector; cfg must be valid.
+func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
+	cfg.M = min(max(cfg.M, 1), maxAirTrappingWindow)
+	cfg.N = min(max(cfg.N, 1), cfg.M)
+	return &AirTrapping{cfg: cfg, buf: make([]float64, 0, maxAirTrappingWindow)}
+}
+
+// Conditions implements BreathDetector.
+func (d *AirTrapping) Conditions() []string { return []string{CondAirTrapping} }
+
+// Reset implements BreathDetector.
+func (d *AirTrapping) Reset() { d.next, d.n = 0, 0 }
+
+// detFirstFinite returns the first finite value of vs, or NaN.
+func detFirstFinite(vs ...float64) float64 {
+	for _, v := range vs {
+		if !math.IsNaN(v) && !math.IsInf(v, 0) {
+			return v
+		}
+	}
+	return math.NaN()
+}
+
+// Breath implements BreathDetector.
+func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
+	cfg := &d.cfg
+	cur := atBreath{
+		seq:     b.Seq,
+		eefLPM:  b.EndExpFlowLPM,
+		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
+		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
+		teOvTau: b.TeOverTau,
+		tauS:    b.TauS,
+		teS:     b.TeS,
+		tiS:     b.TiS,
+		vtML:    detFirstFinite(b.VtiML, b.VteML),
+		dVolML:  b.VtiML - b.VteML,
+	}
+	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
+		cur.teOvTau = cur.teS / cur.tauS
+	}
+	idx := d.next
+	d.ring[idx] = cur
+	d.next = (d.next + 1) % cfg.M
+	d.n = min(d.n+1, cfg.M)
+
+	// Build-up over the window: a positive volume balance (inspired minus
+	// expired, which is the change in end-expiratory volume) confirmed by a
+	// rising trapped-volume estimate, two independent measurements.
+	balance, slope := d.buildUp()
+	building := balance >= cfg.BalanceML && slope > 0
+
+	eefHit := cur.eefLPM >= cfg.EEFLPM
+	magHit := cur.peepi >= cfg.PEEPiCmH2O || cur.trapped >= cfg.TrappedML
+	// Unknown Te/τ neither vetoes nor supports.
+	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
+	pos := eefHit && (magHit || building) && tauOK && !b.HasFlag("artifact")
+	d.ring[idx].positive = pos
+
+	count := 0
+	for i := range d.n {
+		if d.ring[d.slot(i)].positive {
+			count++
+		}
+	}
+	present := count >= cfg.N
+
+	f := Finding{
+		Condition: CondAirTrapping,
+		Class:     Physiological,
+		Present:   present,
+		TimeS:     b.EndS,
+		BreathSeq: b.Seq,
+		Evidence: map[string]float64{
+			"positive_breaths": float64(count),
+			"window_breaths":   float64(d.n),
+			"balance_ml":       detRound(balance, 1),
+		},
+	}
+	if math.IsNaN(f.TimeS) {
+		f.TimeS = b.StartS
+	}
+	detPut(f.Evidence, "eef_lpm", cur.eefLPM, 2)
+	detPut(f.Evidence, "te_over_tau", cur.teOvTau, 3)
+	detPut(f.Evidence, "tau_s", cur.tauS, 3)
+	detPut(f.Evidence, "trapped_slope_ml_per_breath", slope, 1)
+
+	// Magnitude: the median over the positive breaths is robust to one
+	// outlying estimate; when absent, report the current breath.
+	peepi, trapped := d.positiveMedians()
+	if !present {
+		peepi, trapped = cur.peepi, cur.trapped
+	}
+	detPut(f.Evidence, "peepi_cmh2o", peepi, 2)
+	detPut(f.Evidence, "trapped_ml", trapped, 1)
+
+	if !present {
+		f.Message = fmt.Sprintf("expiration complete enough: %d of the last %d breaths show air trapping (need %d)", count, d.n, cfg.N)
+		return append(dst, f)
+	}
+	f.Severity = SeverityLow
+	if peepi >= cfg.MediumPEEPiCmH2O || trapped >= cfg.MediumTrappedML {
+		f.Severity = SeverityMedium
+	}
+	if peepi >= cfg.HighPEEPiCmH2O || trapped >= cfg.HighTrappedML {
+		f.Severity = SeverityHigh
+	}
+	f.Message = fmt.Sprintf("expiratory flow has not returned to zero for %d of the last %d breaths", count, d.n)
+	if !math.IsNaN(peepi) {
+		f.Message += fmt.Sprintf("; intrinsic PEEP about %.1f cmH2O", peepi)
+	}
+	if !math.IsNaN(trapped) {
+		f.Message += fmt.Sprintf(", trapped volume about %.0f mL", trapped)
+	}
+
+	// What-if: the expiratory time at which the linear model's steady-state
+	// trapped volume would fall below the target (REFERENCE §3 closed form).
+	if cur.tauS > 0 && cur.vtML > 0 {
+		te := TeForTrappedS(cur.tauS, cur.vtML/1000, cfg.TargetTrappedML/1000)
+		if !math.IsNaN(te) {
+			tgt := fmt.Sprintf("%g", cfg.TargetTrappedML)
+			f.Predict = map[string]float64{"te_s_for_trapped_below_" + tgt + "ml": detRound(te, 2)}
+			if cur.tiS > 0 {
+				f.Predict["rr_bpm_for_trapped_below_"+tgt+"ml"] = detRound(60/(cur.tiS+te), 1)
+			}
+		}
+	}
+	return append(dst, f)
+}
+
+// slot returns the ring index of the i-th oldest breath in the window.
+func (d *AirTrapping) slot(i int) int {
+	return (d.next - d.n + i + 2*d.cfg.M) % d.cfg.M
+}
+
+// buildUp returns the summed volume balance and the Theil–Sen slope of the
+// trapped-volume estimate (mL per breath) over the window.
+func (d *AirTrapping) buildUp() (balanceML, slope float64) {
+	xs := make([]float64, 0, maxAirTrappingWindow)
+	ys := make([]float64, 0, maxAirTrappingWindow)
+	for i := range d.n {
+		b := &d.ring[d.slot(i)]
+		if !math.IsNaN(b.dVolML) {
+			balanceML += b.dVolML
+		}
+		if !math.IsNaN(b.trapped) {
+			xs = append(xs, float64(i))
+			ys = append(ys, b.trapped)
+		}
+	}
+	slope, d.buf = detTheilSen(xs, ys, d.buf[:0])
+	return balanceML, slope
+}
+
+// positiveMedians returns the median intrinsic PEEP and trapped volume of
+// the positive breaths in the window.
+func (d *AirTrapping) positiveMedians() (peepi, trapped float64) {
+	var p, v []float64
+	for i := range d.n {
+		b := &d.ring[d.slot(i)]
+		if !b.positive {
+			continue
+		}
+		if !math.IsNaN(b.peepi) {
+			p = append(p, b.peepi)
+		}
+		if !math.IsNaN(b.trapped) {
+			v = append(v, b.trapped)
+		}
+	}
+	return detMedian(p), detMedian(v)
+}
+
+// TeForTrappedS returns the expiratory time (s) at which the steady-state
+// trapped volume of a passive linear single-compartment lung under volume
+// control falls to targetL: from V_trap = VT·x/(1 − x) with x = e^(−Te/τ),
+// Te = τ·ln(1 + VT/target) (REFERENCE §3; Marini JJ, Crooke PS, Truwit JD,
+// J Appl Physiol 1989;67:1081 for the analogous closed forms). It returns
+// NaN for non-positive inputs.
+func TeForTrappedS(tauS, vtL, targetL float64) float64 {
+	if !(tauS > 0) || !(vtL > 0) || !(targetL > 0) {
+		return math.NaN()
+	}
+	return tauS * math.Log1p(vtL/targetL)
+}
+
+// detMedian returns the median of vs (reordered in place), or NaN when
+// empty. It selects rather than sorts (Hoare's quickselect, expected linear
+// time), because the trend detector takes medians of thousands of pairwise
+// slopes on every breath.
+func detMedian(vs []float64) float64 {
+	n := len(vs)
+	if n == 0 {
+		return math.NaN()
+	}
+	hi := detSelect(vs, n/2)
+	if n%2 == 1 {
+		return hi
+	}
+	// The lower middle is the largest value left of n/2 after selection.
+	lo := vs[0]
+	for _, v := range vs[1 : n/2] {
+		lo = max(lo, v)
+	}
+	return (lo + hi) / 2
+}
+
+// detSelect reorders vs so that vs[k] is the k-th smallest value, with
+// smaller or equal values before it, and returns vs[k].
+func detSelect(vs []float64, k int) float64 {
+	lo, hi := 0, len(vs)-1
+	for lo < hi {
+		// Median of three as the pivot avoids the quadratic case on sorted
+		// input, which trends produce.
+		mid := lo + (hi-lo)/2
+		if vs[mid] < vs[lo] {
+			vs[mid], vs[lo] = vs[lo], vs[mid]
+		}
+		if vs[hi] < vs[lo] {
+			vs[hi], vs[lo] = vs[lo], vs[hi]
+		}
+		if vs[hi] < vs[mid] {
+			vs[hi], vs[mid] = vs[mid], vs[hi]
+		}
+		pivot := vs[mid]
+		i, j := lo, hi
+		for i <= j {
+			for vs[i] < pivot {
+				i++
+			}
+			for vs[j] > pivot {
+				j--
+			}
+			if i <= j {
+				vs[i], vs[j] = vs[j], vs[i]
+				i++
+				j--
+			}
+		}
+		switch {
+		case k <= j:
+			hi = j
+		case k >= i:
+			lo = i
+		default:
+			return vs[k]
+		}
+	}
+	return vs[k]
+}
+
+// detTheilSen returns the Theil–Sen slope of ys against xs: the median of the
+// slopes of all pairs with distinct x (Theil H, 1950; Sen PK, J Am Stat
+// Assoc 1968;63:1379). It is robust to up to about 29 % outliers. buf is
+// scratch space, returned for reuse; the slope is NaN with fewer than two
+// distinct x.
+func detTheilSen(xs, ys, buf []float64) (float64, []float64) {
+	buf = buf[:0]
+	for i := range xs {
+		for j := i + 1; j < len(xs); j++ {
+			if dx := xs[j] - xs[i]; dx != 0 {
+				buf = append(buf, (ys[j]-ys[i])/dx)
+			}
+		}
+	}
+	return detMedian(buf), buf
+}
+
+// detPut stores v rounded to prec decimals under key when it is finite;
+// evidence never carries NaN (JSON has no NaN).
+func detPut(m map[string]float64, key string, v float64, prec int) {
+	if math.IsNaN(v) || math.IsInf(v, 0) {
+		return
+	}
+	m[key] = detRound(v, prec)
+}
+
+// detRound rounds v to prec decimals.
+func detRound(v float64, prec int) float64 {
+	p := math.Pow(10, float64(prec))
+	return math.Round(v*p) / p
+}

@@ -1,0 +1,195 @@
+package analyze
+
+import (
+	"fmt"
+	"math"
+)
+
+// RisingPeak detects a sustained rise of peak inspiratory pressure: the
+// Theil–Sen slope of peak pressure against time over a fixed window,
+// relative to the window's median peak. The evidence splits the rise into
+// its resistive part (peak − plateau, or R × inspiratory flow) and its
+// elastic part (plateau, or VT/C): under constant-flow volume control
+// Ppeak = Pplat + R·V' and Pplat = total PEEP + VT/C (REFERENCE §3), so a
+// widening peak–plateau gap means rising resistance (secretions, kinked
+// tube, bronchospasm) and a rising plateau means falling compliance or
+// rising intrinsic PEEP.
+type RisingPeak struct {
+	cfg     RisingPeakConfig
+	ring    []rpBreath
+	next, n int
+	present bool
+	xs, ys  []float64
+	buf     []float64
+}
+
+type rpBreath struct {
+	tS      float64
+	peak    float64
+	plat    float64 // NaN without a pause
+	resist  float64 // R·V'peak from the fit, cmH2O
+	elastic float64 // VT/C from the fit, cmH2O
+	r, c    float64
+}
+
+var _ BreathDetector = (*RisingPeak)(nil)
+
+// NewRisingPeak returns a rising-peak-pressure detector; cfg must be valid.
+func NewRisingPeak(cfg RisingPeakConfig) *RisingPeak {
+	cfg.WindowBreaths = max(cfg.WindowBreaths, 3)
+	return &RisingPeak{
+		cfg:  cfg,
+		ring: make([]rpBreath, cfg.WindowBreaths),
+		xs:   make([]float64, 0, cfg.WindowBreaths),
+		ys:   make([]float64, 0, cfg.WindowBreaths),
+		buf:  make([]float64, 0, cfg.WindowBreaths*(cfg.WindowBreaths-1)/2),
+	}
+}
+
+// Conditions implements BreathDetector.
+func (d *RisingPeak) Conditions() []string { return []string{CondRisingPeakPressure} }
+
+// Reset implements BreathDetector.
+func (d *RisingPeak) Reset() { d.next, d.n, d.present = 0, 0, false }
+
+// Breath implements BreathDetector.
+func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
+	cfg := &d.cfg
+	t := detFirstFinite(b.EndS, b.StartS)
+	f := Finding{Condition: CondRisingPeakPressure, Class: Physiological, TimeS: t, BreathSeq: b.Seq,
+		Evidence: map[string]float64{}}
+	if math.IsNaN(t) || math.IsNaN(b.PeakCmH2O) || b.HasFlag("artifact") {
+		// Not usable: keep the verdict, add nothing to the window.
+		f.Present = d.present
+		if d.present {
+			f.Severity = SeverityLow
+		}
+		f.Message = "breath without a usable peak pressure; verdict unchanged"
+		return append(dst, f)
+	}
+	if d.n > 0 && t < d.ring[(d.next+len(d.ring)-1)%len(d.ring)].tS {
+		d.Reset() // the stream clock went back: start a new window
+	}
+	e := rpBreath{tS: t, peak: b.PeakCmH2O, plat: b.PlateauCmH2O, r: b.RCmH2OSPerL, c: b.CMLPerCmH2O,
+		resist: math.NaN(), elastic: math.NaN()}
+	if b.RCmH2OSPerL > 0 && b.PeakInspFlowLPM > 0 {
+		e.resist = b.RCmH2OSPerL * b.PeakInspFlowLPM / 60
+	}
+	if vt := detFirstFinite(b.VtiML, b.VteML); b.CMLPerCmH2O > 0 && vt > 0 {
+		e.elastic = vt / b.CMLPerCmH2O
+	}
+	d.ring[d.next] = e
+	d.next = (d.next + 1) % len(d.ring)
+	d.n = min(d.n+1, len(d.ring))
+
+	// The window: the most recent breaths within WindowS of this one.
+	first := d.n
+	for i := d.n - 1; i >= 0; i-- {
+		if t-d.at(i).tS > cfg.WindowS {
+			break
+		}
+		first = i
+	}
+	count := d.n - first
+	spanS := t - d.at(first).tS
+	f.Evidence["window_breaths"] = float64(count)
+	f.Evidence["window_s"] = detRound(spanS, 1)
+	if count < cfg.MinBreaths || spanS < cfg.WindowS/2 {
+		d.present = false
+		f.Message = fmt.Sprintf("not enough history for a trend (%d breaths over %.0f s)", count, spanS)
+		return append(dst, f)
+	}
+
+	slope := d.slope(first, func(e *rpBreath) float64 { return e.peak })
+	med := d.median(first, func(e *rpBreath) float64 { return e.peak })
+	pct := 100 * slope / med
+	detPut(f.Evidence, "peak_slope_cmh2o_per_min", slope, 3)
+	detPut(f.Evidence, "peak_slope_pct_per_min", pct, 2)
+	detPut(f.Evidence, "pip_median_cmh2o", med, 2)
+	if d.present {
+		d.present = pct >= cfg.ClearSlopePctPerMin
+	} else {
+		d.present = pct >= cfg.SlopePctPerMin
+	}
+	f.Present = d.present
+
+	if !f.Present {
+		f.Message = fmt.Sprintf("peak pressure trend %+.2f %%/min over %.0f s", pct, spanS)
+		return append(dst, f)
+	}
+	// Attribution (only for a present rise, to save the work): from the
+	// pause when most breaths have one, otherwise from the least-squares R
+	// and C.
+	var res, ela float64
+	withPause := 0
+	for i := first; i < d.n; i++ {
+		if !math.IsNaN(d.at(i).plat) {
+			withPause++
+		}
+	}
+	if 2*withPause >= count {
+		res = d.slope(first, func(e *rpBreath) float64 { return e.peak - e.plat })
+		ela = d.slope(first, func(e *rpBreath) float64 { return e.plat })
+		f.Evidence["from_pause"] = 1
+	} else {
+		res = d.slope(first, func(e *rpBreath) float64 { return e.resist })
+		ela = d.slope(first, func(e *rpBreath) float64 { return e.elastic })
+		f.Evidence["from_pause"] = 0
+	}
+	detPut(f.Evidence, "resistive_slope_cmh2o_per_min", res, 3)
+	detPut(f.Evidence, "elastic_slope_cmh2o_per_min", ela, 3)
+	detPut(f.Evidence, "r_slope_cmh2o_s_per_l_per_min", d.slope(first, func(e *rpBreath) float64 { return e.r }), 3)
+	detPut(f.Evidence, "c_slope_ml_per_cmh2o_per_min", d.slope(first, func(e *rpBreath) float64 { return e.c }), 3)
+	kind := "of undetermined cause"
+	// Only rises count towards the split; a falling part is not a cause.
+	rp, ep := max(res, 0), max(ela, 0)
+	if frac := rp / (rp + ep); !math.IsNaN(frac) && !math.IsInf(frac, 0) {
+		f.Evidence["resistive_fraction"] = detRound(frac, 2)
+		if frac >= 0.5 {
+			kind = "resistive (peak–plateau gap widening, resistance rising)"
+		} else {
+			kind = "elastic (plateau rising, compliance falling)"
+		}
+	}
+	f.Severity = SeverityLow
+	if pct >= cfg.HighSlopePctPerMin {
+		f.Severity = SeverityMedium
+	}
+	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
+		slope, pct, spanS, kind)
+	return append(dst, f)
+}
+
+// at returns the i-th oldest breath in the ring.
+func (d *RisingPeak) at(i int) *rpBreath {
+	return &d.ring[(d.next-d.n+i+2*len(d.ring))%len(d.ring)]
+}
+
+// slope is the Theil–Sen slope per minute of get over breaths first..n−1,
+// skipping unknown values.
+func (d *RisingPeak) slope(first int, get func(*rpBreath) float64) float64 {
+	d.xs, d.ys = d.xs[:0], d.ys[:0]
+	for i := first; i < d.n; i++ {
+		e := d.at(i)
+		if v := get(e); !math.IsNaN(v) && !math.IsInf(v, 0) {
+			d.xs = append(d.xs, e.tS/60)
+			d.ys = append(d.ys, v)
+		}
+	}
+	if len(d.xs) < 3 {
+		return math.NaN()
+	}
+	var s float64
+	s, d.buf = detTheilSen(d.xs, d.ys, d.buf)
+	return s
+}
+
+func (d *RisingPeak) median(first int, get func(*rpBreath) float64) float64 {
+	d.ys = d.ys[:0]
+	for i := first; i < d.n; i++ {
+		if v := get(d.at(i)); !math.IsNaN(v) {
+			d.ys = append(d.ys, v)
+		}
+	}
+	return detMedian(d.ys)
+}

@@ -1,0 +1,437 @@
+package analyze
+
+import (
+	"math"
+	"math/rand/v2"
+	"slices"
+	"strings"
+	"testing"
+)
+
+// lungModel is a passive linear single-compartment lung under constant-flow
+// volume control without a pause. modelBreath fills a breath record with its
+// steady-state values from the closed forms of REFERENCE §3 (derived from
+// the equation of motion; Bates JHT, Lung Mechanics, 2009; analogous forms in
+// Marini JJ, Crooke PS, Truwit JD, J Appl Physiol 1989;67:1081).
+type lungModel struct {
+	R, CL, VTL, RR, TiS, PEEP float64
+}
+
+func (m lungModel) breath(seq int, startS float64) Breath {
+	b := NewBreath()
+	period := 60 / m.RR
+	te := period - m.TiS
+	tau := m.R * m.CL
+	x := math.Exp(-te / tau)
+	vtrap := m.VTL * x / (1 - x)
+	peepi := vtrap / m.CL
+	flow := m.VTL / m.TiS
+	b.Seq, b.StartS, b.EndS = seq, startS, startS+period
+	b.TiS, b.TeS, b.RateBPM = m.TiS, te, m.RR
+	b.VtiML, b.VteML = 1000*m.VTL, 1000*m.VTL
+	b.PEEPCmH2O = m.PEEP
+	plat := m.PEEP + peepi + m.VTL/m.CL
+	b.PeakCmH2O = plat + m.R*flow
+	b.PeakInspFlowLPM = 60 * flow
+	b.EndExpFlowLPM = 60 * vtrap / tau
+	b.TauS, b.TeOverTau = tau, te/tau
+	b.RCmH2OSPerL, b.CMLPerCmH2O, b.FitR2 = m.R, 1000*m.CL, 0.999
+	b.PTot0CmH2O = m.PEEP + peepi
+	b.TrappedML, b.PEEPiCmH2O = 1000*vtrap, peepi
+	b.TrappedEEFML, b.PEEPiEEFCmH2O = 1000*vtrap, peepi
+	return b
+}
+
+// Check case 1 and case 3 of REFERENCE §11 (derived values).
+var (
+	case1 = lungModel{R: 25, CL: 0.06, VTL: 0.6, RR: 24, TiS: 0.8, PEEP: 5}
+	case3 = lungModel{R: 5, CL: 0.05, VTL: 0.5, RR: 20, TiS: 1, PEEP: 5}
+)
+
+func near(got, want, tol float64) bool { return math.Abs(got-want) <= tol }
+
+func TestLungModelMatchesReferenceCases(t *testing.T) {
+	// REFERENCE §11 case 1: V_trap 0.2849 L, intrinsic PEEP 4.748, EEF 11.40
+	// L/min, Ppeak 38.50; case 3: V_trap 0.17 mL, Ppeak 17.5 (derived).
+	b := case1.breath(0, 0)
+	for _, c := range []struct {
+		name      string
+		got, want float64
+		tol       float64
+	}{
+		{"case1 trapped_ml", b.TrappedML, 284.9, 0.1},
+		{"case1 peepi", b.PEEPiCmH2O, 4.748, 0.001},
+		{"case1 eef_lpm", b.EndExpFlowLPM, 11.40, 0.01},
+		{"case1 peak", b.PeakCmH2O, 38.50, 0.01},
+		{"case3 trapped_ml", case3.breath(0, 0).TrappedML, 0.17, 0.01},
+		{"case3 peak", case3.breath(0, 0).PeakCmH2O, 17.5, 0.01},
+	} {
+		if !near(c.got, c.want, c.tol) {
+			t.Errorf("%s = %.4f, want %.4f", c.name, c.got, c.want)
+		}
+	}
+}
+
+func TestTeForTrappedS(t *testing.T) {
+	// Inverting the closed form at case 1: Te 1.7 s gives V_trap 0.2849 L,
+	// so the Te for a target of 0.2849 L is 1.7 s (REFERENCE §11 case 1).
+	if got := TeForTrappedS(1.5, 0.6, 0.28490); !near(got, 1.7, 0.001) {
+		t.Errorf("TeForTrappedS(case 1) = %.4f, want 1.7", got)
+	}
+	// Te = τ·ln(1 + VT/target): 1.5·ln 13 = 3.8474 s (REFERENCE §3).
+	if got := TeForTrappedS(1.5, 0.6, 0.05); !near(got, 3.8474, 0.0005) {
+		t.Errorf("TeForTrappedS(1.5, 0.6, 0.05) = %.4f, want 3.8474", got)
+	}
+	for _, bad := range [][3]float64{{0, 0.6, 0.05}, {1.5, -1, 0.05}, {1.5, 0.6, 0}, {math.NaN(), 0.6, 0.05}} {
+		if got := TeForTrappedS(bad[0], bad[1], bad[2]); !math.IsNaN(got) {
+			t.Errorf("TeForTrappedS(%v) = %v, want NaN", bad, got)
+		}
+	}
+}
+
+func TestTheilSenIgnoresOutliers(t *testing.T) {
+	// With fewer outliers than the estimator's breakdown point (29.3 %;
+	// Sen PK, J Am Stat Assoc 1968;63:1379), the median of pairwise slopes
+	// of y = 2x + 1 is exactly 2: 105 of the 190 pairs are exact.
+	var xs, ys []float64
+	for i := range 20 {
+		xs = append(xs, float64(i))
+		y := 2*float64(i) + 1
+		if i%4 == 1 {
+			y = 1000 // 5 of 20 outliers
+		}
+		ys = append(ys, y)
+	}
+	got, _ := detTheilSen(xs, ys, nil)
+	if got != 2 {
+		t.Errorf("Theil–Sen slope %v, want 2", got)
+	}
+}
+
+func TestAirTrappingOnReferenceCases(t *testing.T) {
+	cfg := DefaultDetectorConfig().AirTrapping
+	t.Run("case 1 traps", func(t *testing.T) {
+		d := NewAirTrapping(cfg)
+		var f Finding
+		for i := range 10 {
+			b := case1.breath(i, float64(i)*2.5)
+			fs := d.Breath(&b, nil)
+			if len(fs) != 1 {
+				t.Fatalf("breath %d: %d findings, want 1", i, len(fs))
+			}
+			f = fs[0]
+			// N of M = 4 of 6: present from the 4th positive breath.
+			if want := i >= cfg.N-1; f.Present != want {
+				t.Fatalf("breath %d: present %v, want %v (%s)", i, f.Present, want, f.Message)
+			}
+		}
+		// Intrinsic PEEP 4.75 < 5 and trapped 285 mL < 300: low severity.
+		if f.Severity != SeverityLow {
+			t.Errorf("severity %v, want low", f.Severity)
+		}
+		if !near(f.Evidence["peepi_cmh2o"], 4.75, 0.01) || !near(f.Evidence["trapped_ml"], 284.9, 0.1) {
+			t.Errorf("evidence %v", f.Evidence)
+		}
+		// τ·ln(1 + VT/50 mL) = 1.5·ln 13 = 3.85 s; rate 60/(0.8 + 3.85).
+		if got := f.Predict["te_s_for_trapped_below_50ml"]; !near(got, 3.85, 0.005) {
+			t.Errorf("predict te %v, want 3.85", got)
+		}
+		if got := f.Predict["rr_bpm_for_trapped_below_50ml"]; !near(got, 12.9, 0.05) {
+			t.Errorf("predict rr %v, want 12.9", got)
+		}
+		if !strings.Contains(f.Message, "4 of the last 6") && !strings.Contains(f.Message, "6 of the last 6") {
+			t.Errorf("message %q", f.Message)
+		}
+	})
+	t.Run("case 3 never alarms", func(t *testing.T) {
+		d := NewAirTrapping(cfg)
+		for i := range 200 {
+			b := case3.breath(i, float64(i)*3)
+			if f := d.Breath(&b, nil)[0]; f.Present {
+				t.Fatalf("breath %d present: %s", i, f.Message)
+			}
+		}
+	})
+	t.Run("severity grading", func(t *testing.T) {
+		// Same patient at 30 and 40 breaths/min: Te 1.2 s gives V_trap
+		// 0.6·e^-0.8/(1 − e^-0.8) = 0.4896 L (medium); Te 0.7 s gives 1.0
+		// L, intrinsic PEEP 16.7 cmH2O (high) — REFERENCE §3 closed form.
+		for _, c := range []struct {
+			rr   float64
+			want Severity
+		}{{30, SeverityMedium}, {40, SeverityHigh}} {
+			m := case1
+			m.RR = c.rr
+			d := NewAirTrapping(cfg)
+			var f Finding
+			for i := range 6 {
+				b := m.breath(i, float64(i)*2)
+				f = d.Breath(&b, nil)[0]
+			}
+			if !f.Present || f.Severity != c.want {
+				t.Errorf("rr %g: present %v severity %v, want %v (evidence %v)", c.rr, f.Present, f.Severity, c.want, f.Evidence)
+			}
+		}
+	})
+}
+
+func TestAirTrappingCriteria(t *testing.T) {
+	cfg := DefaultDetectorConfig().AirTrapping
+	base := case1.breath(0, 0) // every criterion holds
+	tests := []struct {
+		name   string
+		change func(*Breath)
+		want   bool
+	}{
+		{"all criteria", func(*Breath) {}, true},
+		{"flow back to zero", func(b *Breath) { b.EndExpFlowLPM = 1 }, false},
+		{"eef unknown", func(b *Breath) { b.EndExpFlowLPM = math.NaN() }, false},
+		{"small magnitude", func(b *Breath) { b.PEEPiCmH2O, b.TrappedML = 1, 30 }, false},
+		{"trapped volume alone", func(b *Breath) { b.PEEPiCmH2O = 1 }, true},
+		{"intrinsic PEEP alone", func(b *Breath) { b.TrappedML = 30 }, true},
+		{"fallback to flow estimate", func(b *Breath) { b.PEEPiCmH2O, b.TrappedML = math.NaN(), math.NaN() }, true},
+		{"long expiration", func(b *Breath) { b.TeOverTau = 3.5 }, false},
+		{"te/tau unknown", func(b *Breath) { b.TeOverTau, b.TauS = math.NaN(), math.NaN() }, true},
+		{"artifact", func(b *Breath) { b.Flags = []string{"artifact"} }, false},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			d := NewAirTrapping(cfg)
+			var f Finding
+			for i := range cfg.M {
+				b := base
+				b.Seq, b.EndS = i, float64(i)
+				tt.change(&b)
+				f = d.Breath(&b, nil)[0]
+			}
+			if f.Present != tt.want {
+				t.Errorf("present %v, want %v: %s %v", f.Present, tt.want, f.Message, f.Evidence)
+			}
+		})
+	}
+}
+
+func TestAirTrappingBuildUp(t *testing.T) {
+	// Just after a settings change the trapped volume builds up as
+	// V_ss·(1 − xⁿ) (REFERENCE §3, check case 2: 0.678, 0.896, 0.967 of
+	// steady state), and each breath inspires more than it expires by the
+	// increment. With the magnitude estimates withheld, the build-up alone
+	// (balance plus rising trend) must make the breaths positive.
+	cfg := DefaultDetectorConfig().AirTrapping
+	d := NewAirTrapping(cfg)
+	x := math.Exp(-1.7 / 1.5)
+	vss := 284.9
+	prev := 0.0
+	var f Finding
+	for n := 1; n <= 6; n++ {
+		b := case1.breath(n, float64(n)*2.5)
+		trapped := vss * (1 - math.Pow(x, float64(n)))
+		b.VteML = b.VtiML - (trapped - prev)
+		prev = trapped
+		b.PEEPiCmH2O, b.PEEPiEEFCmH2O = math.NaN(), math.NaN()
+		b.TrappedML = trapped / 10 // an estimate below threshold, but rising
+		b.TrappedEEFML = math.NaN()
+		f = d.Breath(&b, nil)[0]
+	}
+	if !f.Present {
+		t.Errorf("build-up not detected: %s %v", f.Message, f.Evidence)
+	}
+	if f.Evidence["balance_ml"] < 200 {
+		t.Errorf("balance %v mL, want the build-up (≈ 0.967·285 − first breath share)", f.Evidence["balance_ml"])
+	}
+}
+
+func TestAirTrappingNOfM(t *testing.T) {
+	cfg := DefaultDetectorConfig().AirTrapping // 4 of 6
+	d := NewAirTrapping(cfg)
+	pos := case1.breath(0, 0)
+	neg := case3.breath(0, 0)
+	pattern := []bool{true, false, true, false, true, false, true, false, true, true, false, false, false}
+	// Count of positives in the last 6 (or fewer) breaths decides.
+	for i, p := range pattern {
+		b := neg
+		if p {
+			b = pos
+		}
+		b.Seq = i
+		f := d.Breath(&b, nil)[0]
+		count := 0
+		for j := max(0, i-5); j <= i; j++ {
+			if pattern[j] {
+				count++
+			}
+		}
+		if want := count >= 4; f.Present != want {
+			t.Errorf("breath %d: present %v, want %v (%d positives)", i, f.Present, want, count)
+		}
+	}
+}
+
+// risingRun feeds breaths every 3 s whose peak pressure follows peak(t) and
+// plateau plat(t), with noise of sd cmH2O, and returns the time of the first
+// present finding (NaN if none) and the last present finding.
+func risingRun(t *testing.T, durS float64, peak, plat func(float64) float64, sd float64, seed uint64) (float64, Finding) {
+	t.Helper()
+	d := NewRisingPeak(DefaultDetectorConfig().RisingPeak)
+	rng := rand.New(rand.NewPCG(seed, 1))
+	first := math.NaN()
+	var last Finding
+	for i := 0; float64(i)*3 < durS; i++ {
+		ts := float64(i) * 3
+		b := NewBreath()
+		b.Seq, b.StartS, b.EndS = i, ts, ts+3
+		b.PeakCmH2O = peak(ts) + sd*rng.NormFloat64()
+		b.PlateauCmH2O = plat(ts) + sd*rng.NormFloat64()
+		f := d.Breath(&b, nil)[0]
+		if f.Present {
+			if math.IsNaN(first) {
+				first = ts
+			}
+			last = f
+		}
+	}
+	return first, last
+}
+
+func TestRisingPeak(t *testing.T) {
+	// A 25 % rise of a 25 cmH2O peak spread over 10 minutes, starting at
+	// 10 min: the acceptance bound is detection within 3 minutes.
+	const start = 600.0
+	ramp := func(base, rise float64) func(float64) float64 {
+		return func(ts float64) float64 {
+			return base + rise*min(max(ts-start, 0), 600)/600
+		}
+	}
+	flat := func(v float64) func(float64) float64 { return func(float64) float64 { return v } }
+	t.Run("resistive", func(t *testing.T) {
+		// Peak rises, plateau does not: Ppeak − Pplat = R·V' widens.
+		first, f := risingRun(t, 1500, ramp(25, 6.25), flat(18), 0.3, 1)
+		if math.IsNaN(first) || first-start > 180 || first < start {
+			t.Fatalf("first present at %v s, want within 180 s after %v s", first, start)
+		}
+		t.Logf("resistive rise detected %.0f s after its start", first-start)
+		if f.Evidence["resistive_fraction"] < 0.5 || !strings.Contains(f.Message, "resistive") {
+			t.Errorf("want resistive, got %s %v", f.Message, f.Evidence)
+		}
+	})
+	t.Run("elastic", func(t *testing.T) {
+		// Peak and plateau rise together: VT/C grows, compliance falls.
+		first, f := risingRun(t, 1500, ramp(25, 6.25), ramp(18, 6.25), 0.3, 2)
+		if math.IsNaN(first) || first-start > 180 || first < start {
+			t.Fatalf("first present at %v s, want within 180 s after %v s", first, start)
+		}
+		t.Logf("elastic rise detected %.0f s after its start", first-start)
+		if f.Evidence["resistive_fraction"] >= 0.5 || !strings.Contains(f.Message, "elastic") {
+			t.Errorf("want elastic, got %s %v", f.Message, f.Evidence)
+		}
+	})
+	t.Run("stable", func(t *testing.T) {
+		dur := 12 * 3600.0
+		if testing.Short() {
+			dur = 3600
+		}
+		for seed := range uint64(3) {
+			if first, f := risingRun(t, dur, flat(25), flat(18), 0.3, seed+10); !math.IsNaN(first) {
+				t.Errorf("seed %d: present at %v s on a stable peak: %s", seed, first, f.Message)
+			}
+		}
+	})
+}
+
+func TestLimits(t *testing.T) {
+	cfg := DefaultDetectorConfig().Limits
+	find := func(fs []Finding, cond string) Finding {
+		for _, f := range fs {
+			if f.Condition == cond {
+				return f
+			}
+		}
+		t.Fatalf("no finding for %s in %v", cond, fs)
+		return Finding{}
+	}
+	t.Run("case 1 within limits", func(t *testing.T) {
+		// Ppeak 38.5, Pplat 19.75 (estimated from the fit, no pause),
+		// driving pressure VT/C = 10 cmH2O (REFERENCE §11 case 1).
+		d := NewLimits(cfg)
+		b := case1.breath(0, 0)
+		fs := d.Breath(&b, nil)
+		if len(fs) != 3 {
+			t.Fatalf("%d findings, want 3", len(fs))
+		}
+		for _, f := range fs {
+			if f.Present {
+				t.Errorf("%s present: %s", f.Condition, f.Message)
+			}
+		}
+		if got := find(fs, CondHighPlateauPressure).Evidence["pplat_cmh2o"]; !near(got, 19.75, 0.01) {
+			t.Errorf("estimated plateau %v, want 19.75", got)
+		}
+		if got := find(fs, CondHighDrivingPressure).Evidence["driving_cmh2o"]; !near(got, 10, 0.01) {
+			t.Errorf("driving pressure %v, want VT/C = 10", got)
+		}
+	})
+	t.Run("plateau with hysteresis", func(t *testing.T) {
+		// ARDS Network limit 30 cmH2O, hysteresis 1: 31 raises, 29.5 holds,
+		// 28.9 clears; 36 is high (limit + 5).
+		d := NewLimits(cfg)
+		steps := []struct {
+			plat    float64
+			present bool
+			sev     Severity
+		}{{29, false, SeverityNone}, {31, true, SeverityMedium}, {29.5, true, SeverityMedium}, {28.9, false, SeverityNone}, {36, true, SeverityHigh}}
+		for i, s := range steps {
+			b := case1.breath(i, float64(i))
+			b.PlateauCmH2O, b.PEEPCmH2O, b.PEEPiCmH2O = s.plat, 20, 0
+			f := find(d.Breath(&b, nil), CondHighPlateauPressure)
+			if f.Present != s.present || f.Severity != s.sev {
+				t.Errorf("plateau %g: present %v severity %v, want %v %v", s.plat, f.Present, f.Severity, s.present, s.sev)
+			}
+		}
+	})
+	t.Run("stiff lung", func(t *testing.T) {
+		// C 25 mL/cmH2O, VT 0.6 L: driving pressure VT/C = 24 cmH2O,
+		// above 15 + 5: high (Amato 2015 limit, common practice).
+		m := case1
+		m.CL = 0.025
+		d := NewLimits(cfg)
+		b := m.breath(0, 0)
+		f := find(d.Breath(&b, nil), CondHighDrivingPressure)
+		if !f.Present || f.Severity != SeverityHigh || f.Evidence["estimated"] != 1 {
+			t.Errorf("driving: %v %v %s %v", f.Present, f.Severity, f.Message, f.Evidence)
+		}
+		if !near(f.Evidence["driving_cmh2o"], 24, 0.01) {
+			t.Errorf("driving %v, want 24", f.Evidence["driving_cmh2o"])
+		}
+	})
+	t.Run("no estimate when disabled", func(t *testing.T) {
+		c := cfg
+		c.EstimateWithoutPause = false
+		d := NewLimits(c)
+		b := case1.breath(0, 0)
+		f := find(d.Breath(&b, nil), CondHighPlateauPressure)
+		if _, ok := f.Evidence["pplat_cmh2o"]; ok || f.Present {
+			t.Errorf("plateau reported without a pause: %v", f.Evidence)
+		}
+	})
+}
+
+func TestDetMedianMatchesSort(t *testing.T) {
+	// Reference: the middle of the sorted slice (sort from the standard
+	// library), on random lengths including even ones and ties.
+	rng := rand.New(rand.NewPCG(7, 7))
+	for n := 1; n < 200; n++ {
+		vs := make([]float64, n)
+		for i := range vs {
+			vs[i] = math.Round(rng.NormFloat64() * 5) // ties on purpose
+		}
+		ref := append([]float64(nil), vs...)
+		slices.Sort(ref)
+		want := ref[n/2]
+		if n%2 == 0 {
+			want = (ref[n/2-1] + ref[n/2]) / 2
+		}
+		if got := detMedian(vs); got != want {
+			t.Fatalf("n=%d: median %v, want %v", n, got, want)
+		}
+	}
+}
