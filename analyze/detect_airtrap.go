@@ -156,9 +156,10 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	}
 
 	// What-if: the expiratory time at which the linear model's steady-state
-	// trapped volume would fall below the target (REFERENCE §3 closed form).
+	// trapped volume would fall below the target, Te = τ·ln(1 + VT/target),
+	// and the rate that leaves it at the same inspiratory time.
 	if cur.tauS > 0 && cur.vtML > 0 {
-		te := TeForTrappedS(cur.tauS, cur.vtML/1000, cfg.TargetTrappedML/1000)
+		te := TeForTrapped(cur.vtML, cur.tauS, cfg.TargetTrappedML)
 		if !math.IsNaN(te) {
 			tgt := fmt.Sprintf("%g", cfg.TargetTrappedML)
 			f.Predict = map[string]float64{"te_s_for_trapped_below_" + tgt + "ml": detRound(te, 2)}
@@ -211,19 +212,6 @@ func (d *AirTrapping) positiveMedians() (peepi, trapped float64) {
 		}
 	}
 	return detMedian(p), detMedian(v)
-}
-
-// TeForTrappedS returns the expiratory time (s) at which the steady-state
-// trapped volume of a passive linear single-compartment lung under volume
-// control falls to targetL: from V_trap = VT·x/(1 − x) with x = e^(−Te/τ),
-// Te = τ·ln(1 + VT/target) (REFERENCE §3; Marini JJ, Crooke PS, Truwit JD,
-// J Appl Physiol 1989;67:1081 for the analogous closed forms). It returns
-// NaN for non-positive inputs.
-func TeForTrappedS(tauS, vtL, targetL float64) float64 {
-	if !(tauS > 0) || !(vtL > 0) || !(targetL > 0) {
-		return math.NaN()
-	}
-	return tauS * math.Log1p(vtL/targetL)
 }
 
 // detMedian returns the median of vs (reordered in place), or NaN when

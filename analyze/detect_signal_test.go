@@ -148,7 +148,7 @@ func TestSampleGapsAndDecoderErrors(t *testing.T) {
 		t.Errorf("5 bad of 1005 (below the minimum count): present %v", f.Evidence)
 	}
 	s.Decoder(ingest.Stats{Samples: 1000, BadFrames: 20}, 81)
-	if f, _ := findCond(s.Tick(81, nil), CondDecoderErrors); !f.Present || !near(f.Evidence["error_rate"], 25.0/2025, 1e-4) {
+	if f, _ := findCond(s.Tick(81, nil), CondDecoderErrors); !f.Present || !detNear(f.Evidence["error_rate"], 25.0/2025, 1e-4) {
 		t.Errorf("25 bad of 2025: %v %v", f.Present, f.Evidence)
 	}
 	if f, _ := findCond(s.Tick(150, nil), CondDecoderErrors); f.Present {
