@@ -130,7 +130,10 @@ func NewPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publishe
 // the event is on disk and will reach JetStream exactly once, across outages
 // and restarts. An error means the event was not stored (spool full, disk
 // error, invalid event): the caller must log it loudly.
-func (p *Publisher) Publish(ev Event) error {
+//
+// ctx is not consulted: the spool write is local and quick, and an alert
+// raised while the daemon shuts down must still be kept.
+func (p *Publisher) Publish(_ context.Context, ev Event) error {
 	p.mu.Lock()
 	closed := p.closed
 	p.mu.Unlock()

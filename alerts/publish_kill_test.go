@@ -64,7 +64,7 @@ func publishChild(arg string) int {
 	}
 	go func() { _ = p.Run(ctx) }()
 	for i := first; i < first+count && ctx.Err() == nil; i++ {
-		if err := p.Publish(testEvent("bed-k", i, Raised)); err != nil {
+		if err := p.Publish(context.Background(), testEvent("bed-k", i, Raised)); err != nil {
 			fmt.Fprintln(os.Stderr, err)
 			return 3
 		}

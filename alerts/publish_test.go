@@ -235,7 +235,7 @@ func TestPublisherDeliversInOrder(t *testing.T) {
 	for i := range 20 {
 		for _, st := range []State{Raised, Acknowledged, Cleared} {
 			ev := testEvent(fmt.Sprintf("bed-%d", i%3), i, st)
-			if err := p.Publish(ev); err != nil {
+			if err := p.Publish(context.Background(), ev); err != nil {
 				t.Fatal(err)
 			}
 			want = append(want, ev.DedupID())
@@ -251,7 +251,7 @@ func TestPublisherDeliversInOrder(t *testing.T) {
 	if st.Published != uint64(len(want)) || st.Depth != 0 {
 		t.Errorf("stats %+v, want %d published", st, len(want))
 	}
-	if err := p.Publish(testEvent("bed-0", 99, Raised)); !errors.Is(err, ErrPublisherClosed) {
+	if err := p.Publish(context.Background(), testEvent("bed-0", 99, Raised)); !errors.Is(err, ErrPublisherClosed) {
 		t.Errorf("publish after close: %v, want ErrPublisherClosed", err)
 	}
 }
@@ -275,7 +275,7 @@ func TestPublisherOutage(t *testing.T) {
 	raise := func(from, to int) {
 		for i := from; i < to; i++ {
 			ev := testEvent("bed-4", i, Raised)
-			if err := p.Publish(ev); err != nil {
+			if err := p.Publish(context.Background(), ev); err != nil {
 				t.Fatal(err)
 			}
 			want = append(want, ev.DedupID())
@@ -313,7 +313,7 @@ func TestPublisherAbandoned(t *testing.T) {
 	var want []string
 	for i := range 10 {
 		ev := testEvent("bed-5", i, Raised)
-		if err := p1.Publish(ev); err != nil {
+		if err := p1.Publish(context.Background(), ev); err != nil {
 			t.Fatal(err)
 		}
 		want = append(want, ev.DedupID())
@@ -322,7 +322,7 @@ func TestPublisherAbandoned(t *testing.T) {
 	ns.stop()
 	for i := 10; i < 40; i++ {
 		ev := testEvent("bed-5", i, Raised)
-		if err := p1.Publish(ev); err != nil {
+		if err := p1.Publish(context.Background(), ev); err != nil {
 			t.Fatal(err)
 		}
 		want = append(want, ev.DedupID())
@@ -386,7 +386,7 @@ func TestPublisherFindsLandedBeyondWindow(t *testing.T) {
 
 	p := newTestPublisher(t, nc, dir, PublisherOptions{Streams: cfg})
 	next := testEvent("bed-6", 3, Raised)
-	if err := p.Publish(next); err != nil {
+	if err := p.Publish(context.Background(), next); err != nil {
 		t.Fatal(err)
 	}
 	want = append(want, next.DedupID())
@@ -409,7 +409,7 @@ func TestPublisherCreatesMissingStream(t *testing.T) {
 	p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg, Log: zerolog.New(zerolog.NewTestWriter(t))})
 	stop := runPublisher(t, p)
 	ev := testEvent("bench-2", 1, Raised)
-	if err := p.Publish(ev); err != nil {
+	if err := p.Publish(context.Background(), ev); err != nil {
 		t.Fatal(err)
 	}
 	waitFor(t, 10*time.Second, "spool to drain", func() bool { return p.Depth() == 0 })
@@ -444,7 +444,7 @@ func TestPublisherRefuses(t *testing.T) {
 		{"invalid", bad, nil},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			err := p.Publish(tc.ev)
+			err := p.Publish(context.Background(), tc.ev)
 			switch {
 			case tc.name == "invalid" && err == nil:
 				t.Error("invalid event accepted")
@@ -472,7 +472,7 @@ func BenchmarkPublisher(b *testing.B) {
 	defer p.Close()
 	i := 0
 	for b.Loop() {
-		if err := p.Publish(testEvent("bed-b", i, Raised)); err != nil {
+		if err := p.Publish(context.Background(), testEvent("bed-b", i, Raised)); err != nil {
 			b.Fatal(err)
 		}
 		i++

@@ -29,10 +29,10 @@ const (
 // so ten minutes leaves a wide margin; it must not exceed MaxAge.
 const (
 	DefaultAlertsDuplicates = 10 * time.Minute
-	DefaultAlertsMaxAge     = 365 * 24 * time.Hour
-	DefaultAlertsMaxBytes   = 512 << 20
-	DefaultBreathsMaxAge    = 7 * 24 * time.Hour
-	DefaultBreathsMaxBytes  = 2 << 30
+	DefaultAlertsMaxAge     = 30 * 24 * time.Hour
+	DefaultAlertsMaxBytes   = -1 // no cap of its own: alerts are small and precious
+	DefaultBreathsMaxAge    = 24 * time.Hour
+	DefaultBreathsMaxBytes  = 512 << 20
 )
 
 // Subjects builds trapline subjects (`<prefix>.<kind>.<stream>`) under one
@@ -118,7 +118,9 @@ func ValidatePrefix(prefix string) error {
 }
 
 // StreamsConfig describes the JetStream streams trapline keeps. Zero values
-// take the defaults (see WithDefaults).
+// take the defaults (see WithDefaults); a negative MaxAge or MaxBytes means
+// no limit. JetStream reserves a stream's MaxBytes from the server's store
+// limit when the stream is created, so capped streams must fit in it.
 type StreamsConfig struct {
 	// Prefix is the subject prefix (DefaultPrefix when empty).
 	Prefix string
@@ -193,9 +195,6 @@ func (c StreamsConfig) Validate() error {
 	if c.AlertsMaxAge > 0 && c.AlertsDuplicates > c.AlertsMaxAge {
 		errs = append(errs, fmt.Errorf("alerts de-duplication window %v exceeds max age %v", c.AlertsDuplicates, c.AlertsMaxAge))
 	}
-	if c.AlertsMaxAge < 0 || c.BreathsMaxAge < 0 {
-		errs = append(errs, errors.New("stream max age: want >= 0 (0 keeps messages until the size limit)"))
-	}
 	if c.Replicas < 1 || c.Replicas > 5 {
 		errs = append(errs, fmt.Errorf("stream replicas %d: want 1 to 5", c.Replicas))
 	}
@@ -213,8 +212,8 @@ func (c StreamsConfig) AlertsStreamConfig() jetstream.StreamConfig {
 		Storage:     jetstream.FileStorage,
 		Retention:   jetstream.LimitsPolicy,
 		Discard:     jetstream.DiscardOld,
-		MaxAge:      c.AlertsMaxAge,
-		MaxBytes:    c.AlertsMaxBytes,
+		MaxAge:      jsMaxAge(c.AlertsMaxAge),
+		MaxBytes:    jsMaxBytes(c.AlertsMaxBytes),
 		Duplicates:  c.AlertsDuplicates,
 		Replicas:    c.Replicas,
 	}
@@ -232,11 +231,22 @@ func (c StreamsConfig) BreathsStreamConfig() jetstream.StreamConfig {
 		Storage:     jetstream.FileStorage,
 		Retention:   jetstream.LimitsPolicy,
 		Discard:     jetstream.DiscardOld,
-		MaxAge:      c.BreathsMaxAge,
-		MaxBytes:    c.BreathsMaxBytes,
+		MaxAge:      jsMaxAge(c.BreathsMaxAge),
+		MaxBytes:    jsMaxBytes(c.BreathsMaxBytes),
 		Replicas:    c.Replicas,
 		PersistMode: jetstream.AsyncPersistMode,
 	}
+}
+
+// jsMaxAge maps "no limit" (negative) to JetStream's 0.
+func jsMaxAge(d time.Duration) time.Duration { return max(d, 0) }
+
+// jsMaxBytes maps "no limit" (negative) to JetStream's -1.
+func jsMaxBytes(n int64) int64 {
+	if n < 0 {
+		return -1
+	}
+	return n
 }
 
 // EnsureStreams creates the alerts and breaths streams, or updates them to
