@@ -54,6 +54,10 @@ type Event struct {
 	Evidence  map[string]float64 `json:"evidence"`
 	Message   string             `json:"message"`
 	Predict   map[string]float64 `json:"predict,omitempty"`
+	// Supersedes names the id that this raise replaces when an alarm is
+	// announced again under a new id (a second escalation, or after an
+	// acknowledgement); the old id gets no further events.
+	Supersedes string `json:"supersedes,omitempty"`
 }
 
 // DedupID is the JetStream message id of the event: the alert id plus its
