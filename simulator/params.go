@@ -70,10 +70,11 @@ type Patient struct {
 	// compartments of the two-compartment model (the central airway).
 	AirwayResistanceCmH2OSPerL float64 `yaml:"airway_resistance_cmh2o_s_per_l" json:"airway_resistance_cmh2o_s_per_l"`
 
-	// FlowLimitLPS, when positive, caps the expiratory flow (magnitude) at
-	// FlowLimitLPS + FlowLimitSlopePerS·ΔV, where ΔV is the volume above
-	// the relaxation volume at the set PEEP: a cap that falls as the lung
-	// empties, the signature of expiratory flow limitation.
+	// FlowLimitLPS and FlowLimitSlopePerS, when either is positive, cap the
+	// expiratory flow (magnitude) at FlowLimitLPS + FlowLimitSlopePerS·ΔV,
+	// where ΔV is the volume above the relaxation volume at the set PEEP: a
+	// cap that falls as the lung empties, the signature of expiratory flow
+	// limitation.
 	FlowLimitLPS float64 `yaml:"flow_limit_lps" json:"flow_limit_lps"`
 	// FlowLimitSlopePerS is the rise of the expiratory flow cap per litre
 	// above relaxation (L/s per L).

@@ -23,7 +23,8 @@ type lung struct {
 	c          [2]float64 // compliance of each unit
 	r0         float64    // shared airway resistance (two-compartment)
 	peep       float64    // set PEEP, for the relaxation volume of the flow cap
-	capLPS     float64    // expiratory flow cap at relaxation; zero: no cap
+	capOn      bool       // expiratory flow limitation present
+	capLPS     float64    // expiratory flow cap at relaxation
 	capSlope   float64    // rise of the cap per litre above relaxation
 	effortAmp  float64    // peak muscle pressure; zero: passive
 	effortPerS float64    // effort period
@@ -46,8 +47,8 @@ func newLung(p Patient, peep float64) lung {
 		l.r[1], l.c[1] = p.Resistance2CmH2OSPerL, p.Compliance2MLPerCmH2O/1000
 		l.r0 = p.AirwayResistanceCmH2OSPerL
 	}
-	if p.FlowLimitLPS > 0 {
-		l.capLPS, l.capSlope = p.FlowLimitLPS, p.FlowLimitSlopePerS
+	if p.FlowLimitLPS > 0 || p.FlowLimitSlopePerS > 0 {
+		l.capOn, l.capLPS, l.capSlope = true, p.FlowLimitLPS, p.FlowLimitSlopePerS
 	}
 	return l
 }
@@ -75,7 +76,7 @@ func (l *lung) setEffort(p Patient, ventRateBPM float64) {
 // linear reports whether the model is linear and passive, so that a phase
 // can be stepped exactly with exponentials.
 func (l *lung) linear() bool {
-	return !l.two && l.k2 == 0 && l.k2e == 0 && l.k1e == l.k1 && l.capLPS == 0 && l.effortAmp == 0
+	return !l.two && l.k2 == 0 && l.k2e == 0 && l.k1e == l.k1 && !l.capOn && l.effortAmp == 0
 }
 
 // compliance is the total compliance (L/cmH2O).
@@ -100,7 +101,7 @@ func (l *lung) pmus(t float64) float64 {
 // flowCap is the expiratory flow limit (magnitude, L/s) at volume vol, or
 // +Inf when there is none.
 func (l *lung) flowCap(vol float64) float64 {
-	if l.capLPS == 0 {
+	if !l.capOn {
 		return math.Inf(1)
 	}
 	return math.Max(0, l.capLPS+l.capSlope*(vol-l.compliance()*l.peep))

@@ -18,15 +18,18 @@ type Sim struct {
 	k       int64 // next sample slot
 	stepS   float64
 
-	set    params // settings latched by the breath in progress
-	lung   lung
-	exact  bool
-	phases []phase
-	iph    int
-	t      float64    // physics time
-	v      [2]float64 // compartment volumes above zero-pressure relaxation, L
-	acc    accum
-	trig   bool // the patient triggered the next breath
+	set   params // settings latched by the breath in progress
+	lung  lung
+	exact bool
+	// numeric forces the Runge–Kutta path even for the linear model, so
+	// that tests can check the integrator against the closed forms.
+	numeric bool
+	phases  []phase
+	iph     int
+	t       float64    // physics time
+	v       [2]float64 // compartment volumes above zero-pressure relaxation, L
+	acc     accum
+	trig    bool // the patient triggered the next breath
 
 	sensor  sensor
 	linkUp  bool
@@ -226,6 +229,9 @@ func (s *Sim) advanceTo(t1 float64) {
 // It returns true when a patient trigger ended an expiration early, with
 // s.t at the trigger.
 func (s *Sim) integrate(ph *phase, t1 float64) bool {
+	if ph.insp {
+		s.trackInsp(ph) // the start of a decelerating ramp may be the peak
+	}
 	if s.exact {
 		if ph.insp {
 			if p := s.lung.peakInFlowPhase(ph, s.t, t1, s.v[0]); p > s.acc.pip {
@@ -327,7 +333,7 @@ func (s *Sim) startBreath(t float64, triggered bool) {
 	s.set = s.tl.at(t)
 	s.lung = newLung(s.set.Patient, s.set.Ventilator.PEEPCmH2O)
 	s.lung.setEffort(s.set.Patient, s.set.Ventilator.RateBPM)
-	s.exact = s.lung.linear()
+	s.exact = s.lung.linear() && !s.numeric
 	s.phases = plan(s.set.Ventilator, t, s.phases)
 	s.iph = 0
 	s.t = t
