@@ -152,6 +152,23 @@ type Sensor struct {
 	DropProbability float64 `yaml:"drop_probability" json:"drop_probability"`
 }
 
+// expResistance is the expiratory K1: NaN means the inspiratory one, so
+// that a timeline that changes the resistance changes both.
+func (p *Patient) expResistance() float64 {
+	if math.IsNaN(p.ExpResistanceCmH2OSPerL) {
+		return p.ResistanceCmH2OSPerL
+	}
+	return p.ExpResistanceCmH2OSPerL
+}
+
+// expK2 is the expiratory K2: NaN means the inspiratory one.
+func (p *Patient) expK2() float64 {
+	if math.IsNaN(p.ExpK2CmH2OS2PerL2) {
+		return p.K2CmH2OS2PerL2
+	}
+	return p.ExpK2CmH2OS2PerL2
+}
+
 // params is everything a breath latches at its start.
 type params struct {
 	Patient    Patient
@@ -164,12 +181,6 @@ func (p *params) resolve() {
 	pt := &p.Patient
 	if pt.Model == "" {
 		pt.Model = ModelSingle
-	}
-	if math.IsNaN(pt.ExpResistanceCmH2OSPerL) {
-		pt.ExpResistanceCmH2OSPerL = pt.ResistanceCmH2OSPerL
-	}
-	if math.IsNaN(pt.ExpK2CmH2OS2PerL2) {
-		pt.ExpK2CmH2OS2PerL2 = pt.K2CmH2OS2PerL2
 	}
 	v := &p.Ventilator
 	if v.Mode == "" {
@@ -188,7 +199,14 @@ func (p *params) validate() error {
 		rv := reflect.ValueOf(s)
 		for i := range rv.NumField() {
 			f := rv.Field(i)
-			if f.Kind() == reflect.Float64 && (math.IsNaN(f.Float()) || math.IsInf(f.Float(), 0)) {
+			if f.Kind() != reflect.Float64 {
+				continue
+			}
+			name := yamlName(rv.Type().Field(i))
+			if math.IsNaN(f.Float()) && (name == "exp_resistance_cmh2o_s_per_l" || name == "exp_k2_cmh2o_s2_per_l2") {
+				continue // NaN: the same as the inspiratory coefficient
+			}
+			if math.IsNaN(f.Float()) || math.IsInf(f.Float(), 0) {
 				bad("%s.%s: not a finite number", section, yamlName(rv.Type().Field(i)))
 			}
 		}
@@ -211,11 +229,11 @@ func (p *params) validate() error {
 	if pt.ComplianceMLPerCmH2O <= 0 || pt.ComplianceMLPerCmH2O > 5000 {
 		bad("patient.compliance_ml_per_cmh2o: %g out of range (0, 5000]", pt.ComplianceMLPerCmH2O)
 	}
-	if pt.K2CmH2OS2PerL2 < 0 || pt.ExpK2CmH2OS2PerL2 < 0 {
+	if pt.K2CmH2OS2PerL2 < 0 || pt.expK2() < 0 {
 		bad("patient.k2_cmh2o_s2_per_l2, exp_k2_cmh2o_s2_per_l2: must not be negative")
 	}
-	if pt.ExpResistanceCmH2OSPerL <= 0 {
-		bad("patient.exp_resistance_cmh2o_s_per_l: %g must be positive", pt.ExpResistanceCmH2OSPerL)
+	if pt.expResistance() <= 0 || pt.expResistance() > 1000 {
+		bad("patient.exp_resistance_cmh2o_s_per_l: %g out of range (0, 1000]", pt.ExpResistanceCmH2OSPerL)
 	}
 	if pt.Model == ModelTwoCompartment {
 		if pt.Resistance2CmH2OSPerL <= 0 || pt.Resistance2CmH2OSPerL > 1000 {
@@ -224,8 +242,8 @@ func (p *params) validate() error {
 		if pt.Compliance2MLPerCmH2O <= 0 || pt.Compliance2MLPerCmH2O > 5000 {
 			bad("patient.compliance_2_ml_per_cmh2o: %g out of range (0, 5000]", pt.Compliance2MLPerCmH2O)
 		}
-		if pt.K2CmH2OS2PerL2 != 0 || pt.ExpK2CmH2OS2PerL2 != 0 {
-			bad("patient.k2_cmh2o_s2_per_l2: the Rohrer term applies to model %s only", ModelSingle)
+		if pt.K2CmH2OS2PerL2 != 0 || pt.expK2() != 0 || pt.expResistance() != pt.ResistanceCmH2OSPerL {
+			bad("patient.k2_cmh2o_s2_per_l2, exp_*: Rohrer and expiratory coefficients apply to model %s only", ModelSingle)
 		}
 	}
 	if pt.AirwayResistanceCmH2OSPerL < 0 {

@@ -38,8 +38,8 @@ func newLung(p Patient, peep float64) lung {
 		two:  p.Model == ModelTwoCompartment,
 		k1:   p.ResistanceCmH2OSPerL,
 		k2:   p.K2CmH2OS2PerL2,
-		k1e:  p.ExpResistanceCmH2OSPerL,
-		k2e:  p.ExpK2CmH2OS2PerL2,
+		k1e:  p.expResistance(),
+		k2e:  p.expK2(),
 		peep: peep,
 	}
 	l.r[0], l.c[0] = p.ResistanceCmH2OSPerL, p.ComplianceMLPerCmH2O/1000

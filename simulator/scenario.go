@@ -290,7 +290,12 @@ func compile(sc *Scenario) (*timeline, error) {
 					bad("%s.%s.%s: not a finite number", key, name, k)
 					continue
 				}
-				cs.changes = append(cs.changes, change{section: sec, field: f, from: from.field(sec, f), to: m[k]})
+				start := from.field(sec, f)
+				if math.IsNaN(start) { // an expiratory coefficient that followed the inspiratory one
+					start = map[string]float64{"exp_resistance_cmh2o_s_per_l": from.Patient.ResistanceCmH2OSPerL,
+						"exp_k2_cmh2o_s2_per_l2": from.Patient.K2CmH2OS2PerL2}[k]
+				}
+				cs.changes = append(cs.changes, change{section: sec, field: f, from: start, to: m[k]})
 			}
 		}
 		if len(cs.changes) > 0 {
