@@ -1,0 +1,175 @@
+package simulator
+
+import (
+	"context"
+	"fmt"
+	"os"
+	"path/filepath"
+	"sync"
+	"time"
+
+	"github.com/creack/pty"
+	"golang.org/x/sys/unix"
+	"golang.org/x/term"
+)
+
+// ptyOutput writes to a pseudo-terminal, a stand-in for a serial cable: a
+// reader opens the slave path (or the stable symbolic link) like a serial
+// port. A scripted disconnection closes the master, which makes every read
+// on the slave fail, like a pulled cable; the reconnection opens a new
+// pseudo-terminal and points the link at it.
+type ptyOutput struct {
+	link   string
+	status func(string)
+	mu     sync.Mutex
+	master *os.File
+	slave  *os.File
+	path   string
+	closed bool
+	header []byte
+}
+
+// PTYPath returns the slave path of the current pseudo-terminal, or "" when
+// none is open. out must come from ParseOutput("pty", ...).
+func PTYPath(out Output) string {
+	o, ok := out.(*ptyOutput)
+	if !ok {
+		return ""
+	}
+	o.mu.Lock()
+	defer o.mu.Unlock()
+	return o.path
+}
+
+func (o *ptyOutput) Open(_ context.Context, header []byte) error {
+	o.header = header
+	return o.open()
+}
+
+func (o *ptyOutput) open() error {
+	master, slave, err := pty.Open()
+	if err != nil {
+		return fmt.Errorf("open pseudo-terminal: %w", err)
+	}
+	// Raw mode: no echo back into the master, no line editing, no
+	// translation of CR, ^S or ^Q bytes in binary frames. Our slave handle
+	// stays open so the settings hold until a reader opens the port.
+	if _, err := term.MakeRaw(int(slave.Fd())); err != nil {
+		master.Close()
+		slave.Close()
+		return fmt.Errorf("raw mode on %s: %w", slave.Name(), err)
+	}
+	if o.link != "" {
+		tmp := o.link + ".tmp"
+		_ = os.Remove(tmp)
+		if err := os.Symlink(slave.Name(), tmp); err != nil {
+			master.Close()
+			slave.Close()
+			return fmt.Errorf("link %s: %w", o.link, err)
+		}
+		// Rename replaces the old link atomically: a reader never sees the
+		// path missing.
+		if err := os.Rename(tmp, o.link); err != nil {
+			master.Close()
+			slave.Close()
+			return fmt.Errorf("link %s: %w", o.link, err)
+		}
+	}
+	o.mu.Lock()
+	if o.closed {
+		o.mu.Unlock()
+		master.Close()
+		slave.Close()
+		return os.ErrClosed
+	}
+	o.master, o.slave, o.path = master, slave, slave.Name()
+	o.mu.Unlock()
+	msg := "pseudo-terminal " + slave.Name()
+	if o.link != "" {
+		abs, _ := filepath.Abs(o.link)
+		msg += " (link " + abs + ")"
+	}
+	o.status(msg)
+	// The header waits in the terminal's input queue for the reader.
+	return o.Write(o.header)
+}
+
+func (o *ptyOutput) Write(p []byte) error {
+	o.mu.Lock()
+	m := o.master
+	o.mu.Unlock()
+	if m == nil || len(p) == 0 {
+		return nil // disconnected: the samples are lost
+	}
+	if _, err := m.Write(p); err != nil {
+		return fmt.Errorf("write pseudo-terminal: %w", err)
+	}
+	return nil
+}
+
+func (o *ptyOutput) Disconnect() error {
+	o.mu.Lock()
+	m, s := o.master, o.slave
+	o.master, o.slave, o.path = nil, nil, ""
+	o.mu.Unlock()
+	if m != nil {
+		m.Close()
+		s.Close()
+		o.status("pseudo-terminal closed (disconnection)")
+	}
+	return nil
+}
+
+func (o *ptyOutput) Reconnect(_ context.Context) error { return o.open() }
+
+func (o *ptyOutput) Close() error {
+	o.mu.Lock()
+	o.closed = true
+	m, s := o.master, o.slave
+	o.master, o.slave, o.path = nil, nil, ""
+	o.mu.Unlock()
+	if m != nil {
+		m.Close()
+		s.Close()
+	}
+	if o.link != "" {
+		if target, err := os.Readlink(o.link); err == nil && s != nil && target == s.Name() {
+			os.Remove(o.link)
+		}
+	}
+	return nil
+}
+
+func (o *ptyOutput) MaxWrite() int { return 0 }
+
+// drain waits until the reader has taken everything written, or until ctx
+// ends, so that closing the master at the end of a run loses nothing. The
+// input queue must read empty several times in a row: bytes written to the
+// master reach that queue through the kernel's buffer asynchronously, so
+// one empty reading does not mean that nothing is on its way.
+func (o *ptyOutput) drain(ctx context.Context) {
+	o.mu.Lock()
+	s := o.slave
+	o.mu.Unlock()
+	if s == nil {
+		return
+	}
+	tick := time.NewTicker(5 * time.Millisecond)
+	defer tick.Stop()
+	for empty := 0; empty < 4; {
+		n, err := unix.IoctlGetInt(int(s.Fd()), unix.TIOCINQ)
+		if err != nil {
+			return
+		}
+		if n == 0 {
+			empty++
+		} else {
+			empty = 0
+		}
+		select {
+		case <-ctx.Done():
+			return
+		case <-tick.C:
+		}
+	}
+}
