@@ -3,6 +3,9 @@ package config
 import (
 	"path/filepath"
 	"time"
+
+	"trapline/alerts"
+	"trapline/analyze"
 )
 
 // Config is the whole configuration of the trapline daemon. Its mapstructure
@@ -25,6 +28,13 @@ type Config struct {
 	Spool Spool `mapstructure:"spool"`
 	// Streams are the signals to read, one per patient or bench channel.
 	Streams []Stream `mapstructure:"streams"`
+	// Detectors holds the thresholds, windows and N-of-M rules of every
+	// detector (owned by package analyze).
+	Detectors analyze.DetectorConfig `mapstructure:"detectors"`
+	// Alarms is the alarm lifecycle: delays, hysteresis, latching,
+	// escalation and acknowledgement, per condition (owned by package
+	// alerts).
+	Alarms alerts.LifecycleConfig `mapstructure:"alarms"`
 }
 
 // Log configures the daemon's zerolog logger.
@@ -187,7 +197,9 @@ func Default() *Config {
 			},
 			PublishTimeout: 2 * time.Second,
 		},
-		Spool: Spool{MaxEvents: 100000},
+		Spool:     Spool{MaxEvents: 100000},
+		Detectors: analyze.DefaultDetectorConfig(),
+		Alarms:    alerts.DefaultLifecycleConfig(),
 	}
 }
 

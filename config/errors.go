@@ -65,13 +65,18 @@ func (p *problems) addf(key, format string, args ...any) {
 	p.list = append(p.list, &FieldError{Key: key, Msg: fmt.Sprintf(format, args...)})
 }
 
-// add records errors that already carry their key (from other packages'
-// Validate methods).
+// add records errors that already carry their key as "key: message" (from
+// other packages' Validate methods), as FieldErrors.
 func (p *problems) add(errs ...error) {
 	for _, e := range errs {
-		if e != nil {
-			p.list = append(p.list, e)
+		if e == nil {
+			continue
 		}
+		if k, msg, ok := strings.Cut(e.Error(), ": "); ok && !strings.ContainsAny(k, " \t") {
+			p.list = append(p.list, &FieldError{Key: k, Msg: msg})
+			continue
+		}
+		p.list = append(p.list, e)
 	}
 }
 

@@ -100,9 +100,24 @@ func joinKey(path, key string) string {
 }
 
 // walkLeaves calls fn for every scalar setting below v, with its full key.
-// Empty lists and maps are skipped: they have no keys to name.
+// Empty lists and maps are skipped: they have no keys to name. A nil pointer
+// (an optional override) is a key without a default: fn gets the zero
+// reflect.Value for it.
 func walkLeaves(v reflect.Value, path string, fn func(key string, v reflect.Value)) {
 	t := v.Type()
+	if t.Kind() == reflect.Pointer {
+		if v.IsNil() {
+			if isLeaf(t.Elem()) {
+				fn(path, reflect.Value{})
+			} else {
+				walkLeaves(reflect.New(t.Elem()).Elem(), path, func(key string, _ reflect.Value) {
+					fn(key, reflect.Value{})
+				})
+			}
+			return
+		}
+		v, t = v.Elem(), t.Elem()
+	}
 	switch {
 	case isLeaf(t):
 		fn(path, v)
@@ -126,7 +141,9 @@ func walkLeaves(v reflect.Value, path string, fn func(key string, v reflect.Valu
 // checkKeys walks a parsed config tree against type t and reports every key
 // that t does not have to unknown, and every place where a mapping or a list
 // stands where the other (or a scalar) belongs to shape. Scalar type errors
-// are left to the decoder, which names them with the same paths.
+// are left to the decoder, which names them with the same paths. The tree is
+// viper's view of the file, which drops empty mappings: an unknown key whose
+// value is {} goes unreported, and has no effect either.
 func checkKeys(raw any, t reflect.Type, path string, unknown, shape *problems) {
 	p := shape
 	for t.Kind() == reflect.Pointer {
@@ -251,6 +268,9 @@ func editDistance(a, b string) int {
 
 // describeType names what a value of t looks like in a config file.
 func describeType(t reflect.Type) string {
+	for t.Kind() == reflect.Pointer {
+		t = t.Elem()
+	}
 	switch {
 	case t == reflect.TypeFor[time.Duration]():
 		return "a duration with a unit, like 10s or 5m"

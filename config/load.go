@@ -82,7 +82,9 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 	v := viper.New()
 	leaves := map[string]bool{}
 	walkLeaves(reflect.ValueOf(Default()).Elem(), "", func(key string, val reflect.Value) {
-		v.SetDefault(key, val.Interface())
+		if val.IsValid() {
+			v.SetDefault(key, val.Interface())
+		}
 		leaves[key] = true
 	})
 	if err := v.MergeConfigMap(raw); err != nil {

@@ -39,6 +39,8 @@ func (c *Config) validate(p *problems) {
 		p.addf("spool.max_events", "%d is out of range (want 1 to 10000000)", c.Spool.MaxEvents)
 	}
 	c.validateStreams(p)
+	p.add(c.Detectors.Validate("detectors")...)
+	p.add(c.Alarms.Validate("alarms")...)
 }
 
 // validateNATS checks the nats section, including the rule that an embedded
@@ -124,10 +126,10 @@ func (c *Config) validateNATS(p *problems) {
 	durationIn(p, "nats.alerts_stream.duplicates", as.Duplicates, time.Second, 7*24*time.Hour)
 	durationIn(p, "nats.alerts_stream.max_age", as.MaxAge, 0, 100*365*24*time.Hour)
 	if as.MaxAge > 0 && as.Duplicates > as.MaxAge {
-		p.addf("nats.alerts_stream.duplicates", "%v is longer than max_age %v (JetStream requires duplicates <= max_age)", as.Duplicates, as.MaxAge)
+		p.addf("nats.alerts_stream.duplicates", "%s is longer than max_age %s (JetStream requires duplicates <= max_age)", fmtDuration(as.Duplicates), fmtDuration(as.MaxAge))
 	}
 	if as.MaxAge > 0 && as.MaxAge < time.Hour {
-		p.addf("nats.alerts_stream.max_age", "%v is too short to keep alerts (want 0 for forever, or at least 1h)", as.MaxAge)
+		p.addf("nats.alerts_stream.max_age", "%s is too short to keep alerts (want 0 for forever, or at least 1h)", fmtDuration(as.MaxAge))
 	}
 	durationIn(p, "nats.breaths_stream.max_age", bs.MaxAge, 0, 100*365*24*time.Hour)
 	sizeAtLeast(p, "nats.alerts_stream.max_bytes", as.MaxBytes, 0)
@@ -348,8 +350,21 @@ func oneOf(p *problems, key, v string, allowed ...string) {
 // durationIn checks lo <= d <= hi.
 func durationIn(p *problems, key string, d, lo, hi time.Duration) {
 	if d < lo || d > hi {
-		p.addf(key, "%v is out of range (want %v to %v)", d, lo, hi)
+		p.addf(key, "%s is out of range (want %s to %s)", fmtDuration(d), fmtDuration(lo), fmtDuration(hi))
 	}
+}
+
+// fmtDuration writes a duration as a config file would: 2h rather than
+// 2h0m0s.
+func fmtDuration(d time.Duration) string {
+	s := d.String()
+	if strings.HasSuffix(s, "m0s") {
+		s = strings.TrimSuffix(s, "0s")
+	}
+	if strings.HasSuffix(s, "h0m") {
+		s = strings.TrimSuffix(s, "0m")
+	}
+	return s
 }
 
 // sizeAtLeast checks s >= lo.
