@@ -28,6 +28,9 @@ type Config struct {
 	Spool Spool `mapstructure:"spool"`
 	// Streams are the signals to read, one per patient or bench channel.
 	Streams []Stream `mapstructure:"streams"`
+	// Analysis holds the thresholds of breath segmentation and of the
+	// per-breath fits (owned by package analyze).
+	Analysis analyze.Config `mapstructure:"analysis"`
 	// Detectors holds the thresholds, windows and N-of-M rules of every
 	// detector (owned by package analyze).
 	Detectors analyze.DetectorConfig `mapstructure:"detectors"`
@@ -80,6 +83,9 @@ type NATS struct {
 	// server's for the embedded one.
 	TLS TLS `mapstructure:"tls"`
 
+	// Replicas is the number of copies JetStream keeps of each stream: 1 on
+	// a single server (and always on the embedded one), up to 5 on a cluster.
+	Replicas int `mapstructure:"replicas"`
 	// AlertsStream is the JetStream stream that keeps alert events.
 	AlertsStream AlertsStream `mapstructure:"alerts_stream"`
 	// BreathsStream is the JetStream stream that keeps breath records.
@@ -115,29 +121,27 @@ type TLS struct {
 
 // AlertsStream configures the JetStream stream of alert events.
 type AlertsStream struct {
-	// Name is the JetStream stream name.
+	// Name is the JetStream stream name; empty means the subject prefix in
+	// upper case followed by _ALERTS (TRAPLINE_ALERTS).
 	Name string `mapstructure:"name"`
-	// Replicas is 1 for a single server, up to 5 on a cluster.
-	Replicas int `mapstructure:"replicas"`
 	// Duplicates is the de-duplication window; it must cover the longest
 	// gap between a publish that may have landed and its retry, and may not
 	// exceed MaxAge.
 	Duplicates time.Duration `mapstructure:"duplicates"`
-	// MaxAge is how long alerts are kept; 0 keeps them forever.
+	// MaxAge is how long alerts are kept.
 	MaxAge time.Duration `mapstructure:"max_age"`
-	// MaxBytes caps the stream's size; 0 means no cap.
+	// MaxBytes caps the stream's size; the oldest alerts go first.
 	MaxBytes Size `mapstructure:"max_bytes"`
 }
 
 // BreathsStream configures the JetStream stream of breath records.
 type BreathsStream struct {
-	// Name is the JetStream stream name.
+	// Name is the JetStream stream name; empty means the subject prefix in
+	// upper case followed by _BREATHS (TRAPLINE_BREATHS).
 	Name string `mapstructure:"name"`
-	// Replicas is 1 for a single server, up to 5 on a cluster.
-	Replicas int `mapstructure:"replicas"`
-	// MaxAge is how long breath records are kept; 0 keeps them forever.
+	// MaxAge is how long breath records are kept.
 	MaxAge time.Duration `mapstructure:"max_age"`
-	// MaxBytes caps the stream's size; older records go first.
+	// MaxBytes caps the stream's size; the oldest records go first.
 	MaxBytes Size `mapstructure:"max_bytes"`
 }
 
@@ -176,28 +180,27 @@ func Default() *Config {
 		HTTP:            HTTP{Listen: "127.0.0.1:9464"},
 		ShutdownTimeout: 10 * time.Second,
 		NATS: NATS{
-			SubjectPrefix: "trapline",
+			SubjectPrefix: alerts.DefaultPrefix,
 			Embedded: Embedded{
 				Host:      "127.0.0.1",
 				Port:      4222,
-				MaxStore:  1 * GiB,
+				MaxStore:  4 * GiB,
 				MaxMemory: 64 * MiB,
 			},
+			Replicas: 1,
 			AlertsStream: AlertsStream{
-				Name:       "TRAPLINE_ALERTS",
-				Replicas:   1,
-				Duplicates: 10 * time.Minute,
-				MaxAge:     30 * 24 * time.Hour,
+				Duplicates: alerts.DefaultAlertsDuplicates,
+				MaxAge:     alerts.DefaultAlertsMaxAge,
+				MaxBytes:   alerts.DefaultAlertsMaxBytes,
 			},
 			BreathsStream: BreathsStream{
-				Name:     "TRAPLINE_BREATHS",
-				Replicas: 1,
-				MaxAge:   24 * time.Hour,
-				MaxBytes: 512 * MiB,
+				MaxAge:   alerts.DefaultBreathsMaxAge,
+				MaxBytes: alerts.DefaultBreathsMaxBytes,
 			},
 			PublishTimeout: 2 * time.Second,
 		},
-		Spool:     Spool{MaxEvents: 100000},
+		Spool:     Spool{MaxEvents: alerts.DefaultSpoolMaxEvents},
+		Analysis:  analyze.DefaultConfig(),
 		Detectors: analyze.DefaultDetectorConfig(),
 		Alarms:    alerts.DefaultLifecycleConfig(),
 	}
@@ -219,6 +222,22 @@ func (c *Config) SpoolDir() string {
 		return c.Spool.Dir
 	}
 	return filepath.Join(c.DataDir, "spool")
+}
+
+// JetStream returns the settings of the JetStream streams in the form that
+// package alerts creates them from (alerts.EnsureStreams and the publisher).
+func (c *Config) JetStream() alerts.StreamsConfig {
+	return alerts.StreamsConfig{
+		Prefix:           c.NATS.SubjectPrefix,
+		Alerts:           c.NATS.AlertsStream.Name,
+		Breaths:          c.NATS.BreathsStream.Name,
+		AlertsDuplicates: c.NATS.AlertsStream.Duplicates,
+		AlertsMaxAge:     c.NATS.AlertsStream.MaxAge,
+		AlertsMaxBytes:   int64(c.NATS.AlertsStream.MaxBytes),
+		BreathsMaxAge:    c.NATS.BreathsStream.MaxAge,
+		BreathsMaxBytes:  int64(c.NATS.BreathsStream.MaxBytes),
+		Replicas:         c.NATS.Replicas,
+	}.WithDefaults()
 }
 
 // EmbeddedNATS reports whether the daemon runs its own NATS server (nats.url is

@@ -3,6 +3,7 @@ package config
 import (
 	"bytes"
 	"errors"
+	"fmt"
 	"os"
 	"path/filepath"
 	"reflect"
@@ -52,7 +53,9 @@ func TestExampleMatchesDefault(t *testing.T) {
 	}
 	c.Streams = nil
 	if !reflect.DeepEqual(c, Default()) {
-		t.Errorf("example file and Default() differ:\nexample: %+v\ndefault: %+v", c, Default())
+		for _, d := range leafDiff(c, Default()) {
+			t.Errorf("trapline.example.yaml differs from Default(): %s", d)
+		}
 	}
 	if !bytes.Equal(Example(), mustRead(t, "trapline.example.yaml")) {
 		t.Error("Example() is not the embedded example file")
@@ -191,14 +194,14 @@ func TestBadConfigs(t *testing.T) {
 				`http.listen: "localhost" is not host:port (want host:port, or empty to disable)`,
 				`nats.url: "http://broker:4222": unknown scheme "http" (want nats, tls, ws or wss)`,
 				`nats.embedded.port: 70000 is out of range (want -1 for in-process only, 0 for any free port, or 1 to 65535)`,
-				`nats.alerts_stream.replicas: 9 is out of range (want 1 to 5)`,
+				`nats.replicas: 9 is out of range (want 1 to 5)`,
 				`nats.alerts_stream.duplicates: 2h is longer than max_age 1h (JetStream requires duplicates <= max_age)`,
 				`spool.max_events: 0 is out of range (want 1 to 10000000)`,
 				`streams[1].id: "bed-07" is already the id of streams[0]`,
 				`streams[1].source: must not be empty (want a URL such as serial:///dev/ttyUSB0 or tcp://127.0.0.1:5000)`,
-				`streams[2].id: "bad id" is not a valid stream id (want 1 to 64 letters, digits, '-' or '_')`,
+				`streams[2].id: "bad id" is not a valid stream id (want 1 to 32 letters, digits, '-' or '_')`,
 				`streams[2].source: unknown scheme "tpc" (want serial, tcp, tcp-listen, udp, file, stdin, nats)`,
-				`streams[2].columns: column "pressure": unknown unit "psi" (want cmH2O, hPa, mbar, kPa)`,
+				`streams[2].columns: columns "pressure[psi],flow[L/min]": pressure unit "psi": want cmH2O, hPa, mbar, kPa, mmHg`,
 				`detectors.air_trapping.n: must be between 1 and m (6)`,
 				`alarms.conditions.air_trapping.priority: unknown priority "urgent" (want high, medium, low or empty for the finding's severity)`,
 			},
@@ -210,7 +213,7 @@ func TestBadConfigs(t *testing.T) {
 				"detectors: {limits: {high_peak_pressure: {limit: 40}}}\nalarms: {conditions: {air_traping: {n: 1}}}\n",
 			want: []string{
 				`alarms.conditions.air_traping: unknown key (did you mean "air_trapping"?)`,
-				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, nats, spool, streams, detectors, alarms)`,
+				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, nats, spool, streams, analysis, detectors, alarms)`,
 				`detectors.limits.high_peak_pressure.limit: unknown key (want one of enabled, limit_cmh2o, high_margin_cmh2o, hysteresis_cmh2o)`,
 				`nats.embedded.prot: unknown key (did you mean "port"?)`,
 				`nats.embeded: unknown key (did you mean "embedded"?)`,
@@ -250,15 +253,15 @@ func TestBadConfigs(t *testing.T) {
 		},
 		{
 			name: "stream limits",
-			yaml: "nats:\n  embedded: {max_store: 1GiB}\n  breaths_stream: {max_bytes: 1GiB, replicas: 3, name: A.B}\n" +
+			yaml: "nats:\n  embedded: {max_store: 1GiB}\n  replicas: 3\n  breaths_stream: {max_bytes: 1GiB, name: A.B}\n" +
 				"  alerts_stream: {max_age: 10m, duplicates: 0s}\n  subject_prefix: 'trap line.>'\n  publish_timeout: 1h\n",
 			want: []string{
-				`nats.subject_prefix: "trap line.>" is not a valid subject prefix (want dot-separated tokens without spaces, '*' or '>')`,
+				`nats.subject_prefix: subject prefix "trap line.>": token "trap line" holds a wildcard, a dot or white space`,
 				`nats.breaths_stream.name: "A.B" is not a valid stream name (want up to 255 characters without spaces, '.', '*', '>', '/' or '\')`,
-				`nats.breaths_stream.replicas: 3 is more than the embedded server's single node (want 1, or set nats.url to a cluster)`,
+				`nats.replicas: 3 is more than the embedded server's single node (want 1, or set nats.url to a cluster)`,
 				`nats.alerts_stream.duplicates: 0s is out of range (want 1s to 168h)`,
-				`nats.alerts_stream.max_age: 10m is too short to keep alerts (want 0 for forever, or at least 1h)`,
-				`nats.breaths_stream.max_bytes: 1GiB plus alerts_stream.max_bytes 0B leaves no room in nats.embedded.max_store 1GiB (want their sum below max_store)`,
+				`nats.alerts_stream.max_age: 10m is out of range (want 1h to 876000h)`,
+				`nats.embedded.max_store: 1GiB is less than alerts_stream.max_bytes 512MiB plus breaths_stream.max_bytes 1GiB (JetStream reserves both)`,
 				`nats.publish_timeout: 1h is out of range (want 100ms to 1m)`,
 			},
 		},
@@ -275,7 +278,7 @@ func TestBadConfigs(t *testing.T) {
 				`streams[0].source: "tcp://nohost": "nohost" is not host:port (want tcp://host:port)`,
 				`streams[1].source: "serial://" names no path (want serial:///path)`,
 				`streams[2].sample_rate_hz: must be set (1 to 10000) because columns has no time column`,
-				`streams[3].columns: "time[s],flow[L/min]" has no pressure column`,
+				`streams[3].columns: columns "time[s],flow[L/min]": columns must include pressure and flow`,
 				`streams[4].sample_rate_hz: 0.5 is out of range (want 0 when the input has a time column, or 1 to 10000)`,
 				`streams[5].id: must not be empty`,
 			},
@@ -381,6 +384,25 @@ func TestEditDistance(t *testing.T) {
 	}
 }
 
+// leafDiff lists the keys whose values differ between two configurations.
+func leafDiff(a, b *Config) []string {
+	vals := map[string]string{}
+	show := func(v reflect.Value) string {
+		if !v.IsValid() {
+			return "(unset)"
+		}
+		return fmt.Sprint(v.Interface())
+	}
+	walkLeaves(reflect.ValueOf(a).Elem(), "", func(k string, v reflect.Value) { vals[k] = show(v) })
+	var out []string
+	walkLeaves(reflect.ValueOf(b).Elem(), "", func(k string, v reflect.Value) {
+		if vals[k] != show(v) {
+			out = append(out, fmt.Sprintf("%s is %s, want %s", k, vals[k], show(v)))
+		}
+	})
+	return out
+}
+
 func mustRead(t testing.TB, path string) []byte {
 	t.Helper()
 	b, err := os.ReadFile(path)
@@ -388,4 +410,71 @@ func mustRead(t testing.TB, path string) []byte {
 		t.Fatal(err)
 	}
 	return b
+}
+
+func TestValidVariants(t *testing.T) {
+	dir := t.TempDir()
+	for _, f := range []string{"ca.pem", "cert.pem", "key.pem", "edge.creds"} {
+		if err := os.WriteFile(filepath.Join(dir, f), []byte("x"), 0o600); err != nil {
+			t.Fatal(err)
+		}
+	}
+	for _, tc := range []struct {
+		name, yaml string
+		check      func(*Config) error
+	}{
+		{
+			name: "cluster with credentials and three replicas",
+			yaml: "nats: {url: 'nats://n1:4222, tls://n2:4222', replicas: 3, creds_file: " + filepath.Join(dir, "edge.creds") + "}\n",
+			check: func(c *Config) error {
+				js := c.JetStream()
+				if c.EmbeddedNATS() || js.Replicas != 3 || js.Alerts != "TRAPLINE_ALERTS" || js.Breaths != "TRAPLINE_BREATHS" {
+					return fmt.Errorf("got %+v", js)
+				}
+				return nil
+			},
+		},
+		{
+			name: "embedded server on all interfaces with TLS and a token",
+			yaml: fmt.Sprintf("nats: {embedded: {host: 0.0.0.0}, token: s3cret, tls: {ca_file: %s, cert_file: %s, key_file: %s}}\n",
+				filepath.Join(dir, "ca.pem"), filepath.Join(dir, "cert.pem"), filepath.Join(dir, "key.pem")),
+			check: func(c *Config) error {
+				if !c.EmbeddedNATS() || c.NATS.Embedded.Host != "0.0.0.0" {
+					return fmt.Errorf("got %+v", c.NATS)
+				}
+				return nil
+			},
+		},
+		{
+			name: "in-process only server may bind nothing",
+			yaml: "nats: {embedded: {host: 0.0.0.0, port: -1}, subject_prefix: lab.bench-3}\n",
+			check: func(c *Config) error {
+				// Stream names follow the prefix unless set.
+				if js := c.JetStream(); js.Alerts != "LAB_BENCH_3_ALERTS" || js.Prefix != "lab.bench-3" {
+					return fmt.Errorf("got %+v", js)
+				}
+				return nil
+			},
+		},
+		{
+			name: "localhost and headerless input with a rate",
+			yaml: "nats: {embedded: {host: localhost}}\nstreams: [{id: rig-2, source: 'udp://127.0.0.1:5001', columns: 'pressure[kPa],flow[mL/s]', sample_rate_hz: 250}]\n",
+			check: func(c *Config) error {
+				if c.Streams[0].SampleRateHz != 250 {
+					return fmt.Errorf("got %+v", c.Streams)
+				}
+				return nil
+			},
+		},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			c, err := LoadBytes([]byte(tc.yaml), "yaml", nil)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if err := tc.check(c); err != nil {
+				t.Error(err)
+			}
+		})
+	}
 }

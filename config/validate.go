@@ -5,11 +5,13 @@ import (
 	"net"
 	"net/url"
 	"os"
-	"regexp"
 	"slices"
 	"strconv"
 	"strings"
 	"time"
+
+	"trapline/alerts"
+	"trapline/ingest"
 )
 
 // Validate checks every setting and returns all problems at once as an
@@ -39,6 +41,7 @@ func (c *Config) validate(p *problems) {
 		p.addf("spool.max_events", "%d is out of range (want 1 to 10000000)", c.Spool.MaxEvents)
 	}
 	c.validateStreams(p)
+	p.add(c.Analysis.Validate("analysis")...)
 	p.add(c.Detectors.Validate("detectors")...)
 	p.add(c.Alarms.Validate("alarms")...)
 }
@@ -55,8 +58,8 @@ func (c *Config) validateNATS(p *problems) {
 			}
 		}
 	}
-	if !validSubjectPrefix(n.SubjectPrefix) {
-		p.addf("nats.subject_prefix", "%q is not a valid subject prefix (want dot-separated tokens without spaces, '*' or '>')", n.SubjectPrefix)
+	if err := alerts.ValidatePrefix(n.SubjectPrefix); err != nil {
+		p.addf("nats.subject_prefix", "%v", err)
 	}
 
 	e := &n.Embedded
@@ -116,32 +119,33 @@ func (c *Config) validateNATS(p *problems) {
 
 	// JetStream streams.
 	as, bs := &n.AlertsStream, &n.BreathsStream
-	streamName(p, "nats.alerts_stream.name", as.Name)
-	streamName(p, "nats.breaths_stream.name", bs.Name)
-	if as.Name != "" && as.Name == bs.Name {
-		p.addf("nats.breaths_stream.name", "%q is also the alerts stream's name", bs.Name)
+	if as.Name != "" {
+		streamName(p, "nats.alerts_stream.name", as.Name)
 	}
-	replicas(p, "nats.alerts_stream.replicas", as.Replicas, embedded)
-	replicas(p, "nats.breaths_stream.replicas", bs.Replicas, embedded)
+	if bs.Name != "" {
+		streamName(p, "nats.breaths_stream.name", bs.Name)
+	}
+	if js := c.JetStream(); js.Alerts == js.Breaths {
+		p.addf("nats.breaths_stream.name", "%q is also the alerts stream's name", js.Breaths)
+	}
+	switch {
+	case n.Replicas < 1 || n.Replicas > 5:
+		p.addf("nats.replicas", "%d is out of range (want 1 to 5)", n.Replicas)
+	case embedded && n.Replicas != 1:
+		p.addf("nats.replicas", "%d is more than the embedded server's single node (want 1, or set nats.url to a cluster)", n.Replicas)
+	}
 	durationIn(p, "nats.alerts_stream.duplicates", as.Duplicates, time.Second, 7*24*time.Hour)
-	durationIn(p, "nats.alerts_stream.max_age", as.MaxAge, 0, 100*365*24*time.Hour)
-	if as.MaxAge > 0 && as.Duplicates > as.MaxAge {
+	durationIn(p, "nats.alerts_stream.max_age", as.MaxAge, time.Hour, 100*365*24*time.Hour)
+	if as.Duplicates > as.MaxAge && as.MaxAge >= time.Hour {
 		p.addf("nats.alerts_stream.duplicates", "%s is longer than max_age %s (JetStream requires duplicates <= max_age)", fmtDuration(as.Duplicates), fmtDuration(as.MaxAge))
 	}
-	if as.MaxAge > 0 && as.MaxAge < time.Hour {
-		p.addf("nats.alerts_stream.max_age", "%s is too short to keep alerts (want 0 for forever, or at least 1h)", fmtDuration(as.MaxAge))
-	}
-	durationIn(p, "nats.breaths_stream.max_age", bs.MaxAge, 0, 100*365*24*time.Hour)
-	sizeAtLeast(p, "nats.alerts_stream.max_bytes", as.MaxBytes, 0)
-	sizeAtLeast(p, "nats.breaths_stream.max_bytes", bs.MaxBytes, 0)
-	if embedded && e.MaxStore >= MiB {
-		// JetStream reserves each stream's max_bytes from the store; the
-		// breath records must leave room for alerts.
-		if bs.MaxBytes == 0 {
-			p.addf("nats.breaths_stream.max_bytes", "must be set on the embedded server, or breath records could fill nats.embedded.max_store (%v) and block alerts", e.MaxStore)
-		} else if as.MaxBytes+bs.MaxBytes >= e.MaxStore {
-			p.addf("nats.breaths_stream.max_bytes", "%v plus alerts_stream.max_bytes %v leaves no room in nats.embedded.max_store %v (want their sum below max_store)", bs.MaxBytes, as.MaxBytes, e.MaxStore)
-		}
+	durationIn(p, "nats.breaths_stream.max_age", bs.MaxAge, time.Minute, 100*365*24*time.Hour)
+	sizeAtLeast(p, "nats.alerts_stream.max_bytes", as.MaxBytes, MiB)
+	sizeAtLeast(p, "nats.breaths_stream.max_bytes", bs.MaxBytes, MiB)
+	// JetStream reserves each stream's max_bytes from the store, so both
+	// must fit or the streams cannot be created.
+	if embedded && e.MaxStore >= MiB && as.MaxBytes >= MiB && bs.MaxBytes >= MiB && as.MaxBytes+bs.MaxBytes > e.MaxStore {
+		p.addf("nats.embedded.max_store", "%v is less than alerts_stream.max_bytes %v plus breaths_stream.max_bytes %v (JetStream reserves both)", e.MaxStore, as.MaxBytes, bs.MaxBytes)
 	}
 	durationIn(p, "nats.publish_timeout", n.PublishTimeout, 100*time.Millisecond, time.Minute)
 }
@@ -154,8 +158,8 @@ func (c *Config) validateStreams(p *problems) {
 		switch {
 		case s.ID == "":
 			p.addf(key+".id", "must not be empty")
-		case !streamIDPattern.MatchString(s.ID):
-			p.addf(key+".id", "%q is not a valid stream id (want 1 to 64 letters, digits, '-' or '_')", s.ID)
+		case !ingest.ValidStreamID(s.ID):
+			p.addf(key+".id", "%q is not a valid stream id (want 1 to 32 letters, digits, '-' or '_')", s.ID)
 		}
 		if j, dup := seen[s.ID]; dup && s.ID != "" {
 			p.addf(key+".id", "%q is already the id of streams[%d]", s.ID, j)
@@ -167,14 +171,16 @@ func (c *Config) validateStreams(p *problems) {
 		} else if err := checkSource(s.Source); err != nil {
 			p.addf(key+".source", "%v", err)
 		}
-		hasTime := true
-		if s.Columns != "" {
-			var err error
-			if hasTime, err = checkColumns(s.Columns); err != nil {
-				p.addf(key+".columns", "%v", err)
-				hasTime = true // do not also ask for a rate the header may not need
-			}
+		// The text decoder is the authority on column layouts: a layout it
+		// refuses with any rate is a columns problem, one it refuses only
+		// without a rate needs sample_rate_hz.
+		layoutOK := true
+		if _, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns, RateHz: 1}, func(string, ingest.Sample) {}); err != nil {
+			p.addf(key+".columns", "%v", err)
+			layoutOK = false
 		}
+		_, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns}, func(string, ingest.Sample) {})
+		hasTime := !layoutOK || err == nil
 		switch {
 		case s.SampleRateHz != 0 && (s.SampleRateHz < 1 || s.SampleRateHz > 10000):
 			p.addf(key+".sample_rate_hz", "%g is out of range (want 0 when the input has a time column, or 1 to 10000)", s.SampleRateHz)
@@ -183,10 +189,6 @@ func (c *Config) validateStreams(p *problems) {
 		}
 	}
 }
-
-// streamIDPattern is what a stream id may look like: it is a NATS subject
-// token and part of file names, so no dots, spaces or wildcards.
-var streamIDPattern = regexp.MustCompile(`^[A-Za-z0-9_-]{1,64}$`)
 
 // sourceSchemes are the source kinds that ingest reads.
 var sourceSchemes = []string{"serial", "tcp", "tcp-listen", "udp", "file", "stdin", "nats"}
@@ -215,54 +217,6 @@ func checkSource(s string) error {
 		return fmt.Errorf("unknown scheme %q %s", u.Scheme, want)
 	}
 	return nil
-}
-
-// columnUnits are the units each column of the sample line format v1 may
-// carry; the first is the default.
-var columnUnits = map[string][]string{
-	"time":     {"s", "ms"},
-	"pressure": {"cmH2O", "hPa", "mbar", "kPa"},
-	"flow":     {"L/min", "L/s", "mL/s"},
-	"volume":   {"mL", "L"},
-	"stream":   nil,
-}
-
-// checkColumns checks a header of the sample line format v1 and reports
-// whether it has a time column. Unknown column names are allowed (they are
-// ignored), unknown units and duplicate columns are not.
-func checkColumns(h string) (hasTime bool, err error) {
-	seen := map[string]bool{}
-	for _, col := range strings.Split(h, ",") {
-		col = strings.TrimSpace(col)
-		name, unit, hasUnit := strings.Cut(col, "[")
-		name = strings.TrimSpace(name)
-		if hasUnit {
-			var ok bool
-			if unit, ok = strings.CutSuffix(unit, "]"); !ok {
-				return false, fmt.Errorf("column %q: unit not closed with ]", col)
-			}
-		}
-		units, known := columnUnits[name]
-		if !known {
-			continue
-		}
-		if seen[name] {
-			return false, fmt.Errorf("column %q appears twice", name)
-		}
-		seen[name] = true
-		if hasUnit && !slices.Contains(units, unit) {
-			if units == nil {
-				return false, fmt.Errorf("column %q takes no unit", name)
-			}
-			return false, fmt.Errorf("column %q: unknown unit %q (want %s)", name, unit, strings.Join(units, ", "))
-		}
-	}
-	for _, need := range []string{"pressure", "flow"} {
-		if !seen[need] {
-			return false, fmt.Errorf("%q has no %s column", h, need)
-		}
-	}
-	return seen["time"], nil
 }
 
 // checkNATSURL checks one server URL of nats.url.
@@ -308,35 +262,11 @@ func isLoopback(host string) bool {
 	return ip != nil && ip.IsLoopback()
 }
 
-// validSubjectPrefix reports whether s is one or more NATS subject tokens
-// without wildcards.
-func validSubjectPrefix(s string) bool {
-	if s == "" {
-		return false
-	}
-	for _, tok := range strings.Split(s, ".") {
-		if tok == "" || tok == "*" || tok == ">" || strings.ContainsAny(tok, " \t\r\n*>") {
-			return false
-		}
-	}
-	return true
-}
-
 // streamName checks a JetStream stream name: no spaces, dots, wildcards or
 // path separators (the name is a directory on disk).
 func streamName(p *problems, key, name string) {
 	if name == "" || len(name) > 255 || strings.ContainsAny(name, " \t\r\n.*>/\\") {
 		p.addf(key, "%q is not a valid stream name (want up to 255 characters without spaces, '.', '*', '>', '/' or '\\')", name)
-	}
-}
-
-// replicas checks a stream's replica count.
-func replicas(p *problems, key string, n int, embedded bool) {
-	switch {
-	case n < 1 || n > 5:
-		p.addf(key, "%d is out of range (want 1 to 5)", n)
-	case embedded && n != 1:
-		p.addf(key, "%d is more than the embedded server's single node (want 1, or set nats.url to a cluster)", n)
 	}
 }
 
