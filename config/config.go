@@ -128,9 +128,10 @@ type AlertsStream struct {
 	// gap between a publish that may have landed and its retry, and may not
 	// exceed MaxAge.
 	Duplicates time.Duration `mapstructure:"duplicates"`
-	// MaxAge is how long alerts are kept.
+	// MaxAge is how long alerts are kept; 0 keeps them forever.
 	MaxAge time.Duration `mapstructure:"max_age"`
-	// MaxBytes caps the stream's size; the oldest alerts go first.
+	// MaxBytes caps the stream's size, the oldest alerts going first; 0
+	// means no cap.
 	MaxBytes Size `mapstructure:"max_bytes"`
 }
 
@@ -139,9 +140,11 @@ type BreathsStream struct {
 	// Name is the JetStream stream name; empty means the subject prefix in
 	// upper case followed by _BREATHS (TRAPLINE_BREATHS).
 	Name string `mapstructure:"name"`
-	// MaxAge is how long breath records are kept.
+	// MaxAge is how long breath records are kept; 0 keeps them until the
+	// size cap.
 	MaxAge time.Duration `mapstructure:"max_age"`
-	// MaxBytes caps the stream's size; the oldest records go first.
+	// MaxBytes caps the stream's size, the oldest records going first; 0
+	// means no cap (refused for the embedded server).
 	MaxBytes Size `mapstructure:"max_bytes"`
 }
 
@@ -184,18 +187,18 @@ func Default() *Config {
 			Embedded: Embedded{
 				Host:      "127.0.0.1",
 				Port:      4222,
-				MaxStore:  4 * GiB,
+				MaxStore:  1 * GiB,
 				MaxMemory: 64 * MiB,
 			},
 			Replicas: 1,
 			AlertsStream: AlertsStream{
 				Duplicates: alerts.DefaultAlertsDuplicates,
 				MaxAge:     alerts.DefaultAlertsMaxAge,
-				MaxBytes:   alerts.DefaultAlertsMaxBytes,
+				MaxBytes:   limit(alerts.DefaultAlertsMaxBytes),
 			},
 			BreathsStream: BreathsStream{
 				MaxAge:   alerts.DefaultBreathsMaxAge,
-				MaxBytes: alerts.DefaultBreathsMaxBytes,
+				MaxBytes: limit(alerts.DefaultBreathsMaxBytes),
 			},
 			PublishTimeout: 2 * time.Second,
 		},
@@ -232,12 +235,34 @@ func (c *Config) JetStream() alerts.StreamsConfig {
 		Alerts:           c.NATS.AlertsStream.Name,
 		Breaths:          c.NATS.BreathsStream.Name,
 		AlertsDuplicates: c.NATS.AlertsStream.Duplicates,
-		AlertsMaxAge:     c.NATS.AlertsStream.MaxAge,
-		AlertsMaxBytes:   int64(c.NATS.AlertsStream.MaxBytes),
-		BreathsMaxAge:    c.NATS.BreathsStream.MaxAge,
-		BreathsMaxBytes:  int64(c.NATS.BreathsStream.MaxBytes),
+		AlertsMaxAge:     unlimitedAge(c.NATS.AlertsStream.MaxAge),
+		AlertsMaxBytes:   unlimitedBytes(c.NATS.AlertsStream.MaxBytes),
+		BreathsMaxAge:    unlimitedAge(c.NATS.BreathsStream.MaxAge),
+		BreathsMaxBytes:  unlimitedBytes(c.NATS.BreathsStream.MaxBytes),
 		Replicas:         c.NATS.Replicas,
 	}.WithDefaults()
+}
+
+// In the config file 0 means "no limit", as in JetStream; package alerts
+// reads 0 as "default" and a negative value as "no limit". These translate.
+
+// limit turns alerts' negative "no limit" into the file's 0.
+func limit(n int64) Size { return Size(max(n, 0)) }
+
+// unlimitedAge turns the file's 0 into alerts' "no limit".
+func unlimitedAge(d time.Duration) time.Duration {
+	if d == 0 {
+		return -1
+	}
+	return d
+}
+
+// unlimitedBytes turns the file's 0 into alerts' "no limit".
+func unlimitedBytes(s Size) int64 {
+	if s == 0 {
+		return -1
+	}
+	return int64(s)
 }
 
 // EmbeddedNATS reports whether the daemon runs its own NATS server (nats.url is

@@ -260,9 +260,17 @@ func TestBadConfigs(t *testing.T) {
 				`nats.breaths_stream.name: "A.B" is not a valid stream name (want up to 255 characters without spaces, '.', '*', '>', '/' or '\')`,
 				`nats.replicas: 3 is more than the embedded server's single node (want 1, or set nats.url to a cluster)`,
 				`nats.alerts_stream.duplicates: 0s is out of range (want 1s to 168h)`,
-				`nats.alerts_stream.max_age: 10m is out of range (want 1h to 876000h)`,
-				`nats.embedded.max_store: 1GiB is less than alerts_stream.max_bytes 512MiB plus breaths_stream.max_bytes 1GiB (JetStream reserves both)`,
+				`nats.alerts_stream.max_age: 10m is out of range (want 0 for no limit, or 1h to 876000h)`,
+				`nats.breaths_stream.max_bytes: 1GiB leaves no room for alerts in nats.embedded.max_store 1GiB (want less than max_store)`,
 				`nats.publish_timeout: 1h is out of range (want 100ms to 1m)`,
+			},
+		},
+		{
+			name: "capped streams must fit the embedded store",
+			yaml: "nats: {embedded: {max_store: 1GiB}, alerts_stream: {max_bytes: 600MiB}, breaths_stream: {max_bytes: 512MiB, max_age: 10s}}\n",
+			want: []string{
+				`nats.breaths_stream.max_age: 10s is out of range (want 0 for no limit, or 1m to 876000h)`,
+				`nats.embedded.max_store: 1GiB is less than alerts_stream.max_bytes 600MiB plus breaths_stream.max_bytes 512MiB (JetStream reserves both)`,
 			},
 		},
 		{
@@ -428,7 +436,9 @@ func TestValidVariants(t *testing.T) {
 			yaml: "nats: {url: 'nats://n1:4222, tls://n2:4222', replicas: 3, creds_file: " + filepath.Join(dir, "edge.creds") + "}\n",
 			check: func(c *Config) error {
 				js := c.JetStream()
-				if c.EmbeddedNATS() || js.Replicas != 3 || js.Alerts != "TRAPLINE_ALERTS" || js.Breaths != "TRAPLINE_BREATHS" {
+				// 0 (no cap) in the file is alerts' negative "no limit".
+				if c.EmbeddedNATS() || js.Replicas != 3 || js.Alerts != "TRAPLINE_ALERTS" || js.Breaths != "TRAPLINE_BREATHS" ||
+					js.AlertsMaxBytes != -1 || js.BreathsMaxBytes != 512<<20 || js.AlertsMaxAge != 720*time.Hour {
 					return fmt.Errorf("got %+v", js)
 				}
 				return nil

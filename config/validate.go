@@ -135,17 +135,24 @@ func (c *Config) validateNATS(p *problems) {
 		p.addf("nats.replicas", "%d is more than the embedded server's single node (want 1, or set nats.url to a cluster)", n.Replicas)
 	}
 	durationIn(p, "nats.alerts_stream.duplicates", as.Duplicates, time.Second, 7*24*time.Hour)
-	durationIn(p, "nats.alerts_stream.max_age", as.MaxAge, time.Hour, 100*365*24*time.Hour)
+	zeroOrIn(p, "nats.alerts_stream.max_age", as.MaxAge, time.Hour)
 	if as.Duplicates > as.MaxAge && as.MaxAge >= time.Hour {
 		p.addf("nats.alerts_stream.duplicates", "%s is longer than max_age %s (JetStream requires duplicates <= max_age)", fmtDuration(as.Duplicates), fmtDuration(as.MaxAge))
 	}
-	durationIn(p, "nats.breaths_stream.max_age", bs.MaxAge, time.Minute, 100*365*24*time.Hour)
-	sizeAtLeast(p, "nats.alerts_stream.max_bytes", as.MaxBytes, MiB)
-	sizeAtLeast(p, "nats.breaths_stream.max_bytes", bs.MaxBytes, MiB)
-	// JetStream reserves each stream's max_bytes from the store, so both
-	// must fit or the streams cannot be created.
-	if embedded && e.MaxStore >= MiB && as.MaxBytes >= MiB && bs.MaxBytes >= MiB && as.MaxBytes+bs.MaxBytes > e.MaxStore {
-		p.addf("nats.embedded.max_store", "%v is less than alerts_stream.max_bytes %v plus breaths_stream.max_bytes %v (JetStream reserves both)", e.MaxStore, as.MaxBytes, bs.MaxBytes)
+	zeroOrIn(p, "nats.breaths_stream.max_age", bs.MaxAge, time.Minute)
+	zeroOrAtLeast(p, "nats.alerts_stream.max_bytes", as.MaxBytes, MiB)
+	zeroOrAtLeast(p, "nats.breaths_stream.max_bytes", bs.MaxBytes, MiB)
+	// JetStream reserves each capped stream's max_bytes from the store, so
+	// they must fit; an uncapped alerts stream needs room beside the breaths.
+	if embedded && e.MaxStore >= MiB && bs.MaxBytes >= 0 && as.MaxBytes >= 0 {
+		switch {
+		case bs.MaxBytes == 0:
+			p.addf("nats.breaths_stream.max_bytes", "must be set for the embedded server, or breath records could fill nats.embedded.max_store (%v) and crowd out alerts", e.MaxStore)
+		case as.MaxBytes == 0 && bs.MaxBytes >= e.MaxStore:
+			p.addf("nats.breaths_stream.max_bytes", "%v leaves no room for alerts in nats.embedded.max_store %v (want less than max_store)", bs.MaxBytes, e.MaxStore)
+		case as.MaxBytes > 0 && as.MaxBytes+bs.MaxBytes > e.MaxStore:
+			p.addf("nats.embedded.max_store", "%v is less than alerts_stream.max_bytes %v plus breaths_stream.max_bytes %v (JetStream reserves both)", e.MaxStore, as.MaxBytes, bs.MaxBytes)
+		}
 	}
 	durationIn(p, "nats.publish_timeout", n.PublishTimeout, 100*time.Millisecond, time.Minute)
 }
@@ -295,6 +302,20 @@ func fmtDuration(d time.Duration) string {
 		s = strings.TrimSuffix(s, "0m")
 	}
 	return s
+}
+
+// zeroOrIn checks that d is 0 (no limit) or at least lo.
+func zeroOrIn(p *problems, key string, d, lo time.Duration) {
+	if d != 0 && (d < lo || d > 100*365*24*time.Hour) {
+		p.addf(key, "%s is out of range (want 0 for no limit, or %s to 876000h)", fmtDuration(d), fmtDuration(lo))
+	}
+}
+
+// zeroOrAtLeast checks that s is 0 (no limit) or at least lo.
+func zeroOrAtLeast(p *problems, key string, s, lo Size) {
+	if s != 0 && s < lo {
+		p.addf(key, "%v is too small (want 0 for no limit, or at least %v)", s, lo)
+	}
 }
 
 // sizeAtLeast checks s >= lo.
