@@ -314,6 +314,13 @@ func (d *BinaryDecoder) Flush() {
 	d.inBad = false
 }
 
+// Reset drops a partial frame, counting its bytes as skipped.
+func (d *BinaryDecoder) Reset() {
+	d.skip(len(d.carry))
+	d.carry = d.carry[:0]
+	d.inBad = false
+}
+
 // skip counts n bytes that are not part of a valid frame.
 func (d *BinaryDecoder) skip(n int) {
 	if n <= 0 {

@@ -70,6 +70,10 @@ type Decoder interface {
 	// Flush decodes what is left at the end of the input (a last line without
 	// a newline); the decoder can then be fed a new stream.
 	Flush()
+	// Reset drops a partial line or frame without decoding it (the link
+	// went down in the middle of it), counting it as bad; the layout and the
+	// per-stream counters stay.
+	Reset()
 	// Stats returns the counters so far.
 	Stats() DecoderStats
 	// Err returns the configuration problem found in the input (a header with

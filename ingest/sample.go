@@ -92,6 +92,8 @@ type Stats struct {
 	OutOfOrder   uint64 // samples older than the last delivered one, dropped
 	Dropped      uint64 // samples dropped under overload
 	Reconnects   uint64 // times the source reopened its device or connection
+	ClockResets  uint64 // times the device time went back beyond the out-of-order window
+	RateDrifts   uint64 // episodes of the sample rate drifting from the declared or first measured rate
 }
 
 // Encoder writes samples in one of the project's wire formats. The simulator

@@ -198,6 +198,17 @@ func (d *TextDecoder) Flush() {
 	d.skipping = false
 }
 
+// Reset drops a partial line, counting it as bad.
+func (d *TextDecoder) Reset() {
+	if len(d.carry) > 0 || d.skipping {
+		if len(d.carry) > 0 {
+			d.stats.BadLines++
+		}
+		d.carry = d.carry[:0]
+	}
+	d.skipping = false
+}
+
 // line decodes one line without its '\n'.
 func (d *TextDecoder) line(b []byte) {
 	if len(b) > 0 && b[len(b)-1] == '\r' {

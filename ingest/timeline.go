@@ -1,0 +1,118 @@
+package ingest
+
+import (
+	"errors"
+	"math"
+	"slices"
+)
+
+// ErrClockReset explains a StatusGap whose length is unknown: the device's
+// time went back by more than OutOfOrderWindowS, as when it restarts its
+// clock, and the stream goes on from where it was.
+var ErrClockReset = errors.New("device clock went back: gap length unknown")
+
+// OutOfOrderWindowS is how far back in time a sample may be and still count
+// as out of order (dropped); further back is a clock reset.
+const OutOfOrderWindowS = 1.0
+
+// DriftTolerance is the relative difference between the measured and the
+// declared (or first estimated) sample rate beyond which the rate is said
+// to drift; the episode ends below half of it.
+const DriftTolerance = 0.01
+
+// verdict is what the timing layer decides about one sample.
+type verdict uint8
+
+const (
+	keep           verdict = iota // deliver
+	keepAfterGap                  // deliver, after a StatusGap
+	keepAfterReset                // deliver, after a StatusGap of unknown length
+	duplicate                     // drop: same time as the last sample
+	outOfOrder                    // drop: older than the last sample
+)
+
+// timeline checks the time stamps of one stream: it detects gaps,
+// duplicates, backward jumps and rate drift, drops samples that are out of
+// order, and keeps the delivered time monotonic. The time it checks is the
+// device's (or the counter's over the declared rate), never the arrival
+// time.
+type timeline struct {
+	periodS  float64 // expected sample period; 0 until known
+	declared bool    // periodS comes from a declared rate
+	lastS    float64 // last delivered time, in delivered time
+	have     bool
+	offsetS  float64   // added to device time after clock resets
+	first    []float64 // first intervals, to estimate the period
+	meanS    float64   // running mean of ordinary intervals, for drift
+	nMean    int
+	drifting bool
+}
+
+func newTimeline(rateHz float64) *timeline {
+	t := &timeline{}
+	if rateHz > 0 {
+		t.periodS, t.declared = 1/rateHz, true
+	}
+	return t
+}
+
+// admit checks the sample time tS and returns its delivered time, the
+// verdict, the gap length for keepAfterGap, and whether a drift episode
+// started with this sample.
+func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, driftStarted bool) {
+	out = tS + t.offsetS
+	if !t.have {
+		t.lastS, t.have = out, true
+		return out, keep, 0, false
+	}
+	d := out - t.lastS
+	p := t.periodS
+	switch {
+	case d == 0 || p > 0 && math.Abs(d) <= p/4:
+		return out, duplicate, 0, false
+	case d < 0 && -d <= OutOfOrderWindowS:
+		return out, outOfOrder, 0, false
+	case d < 0:
+		// The device went back in time: continue one period after the
+		// last sample so that delivered time stays monotonic.
+		step := p
+		if step == 0 {
+			step = 1e-3
+		}
+		t.offsetS += t.lastS + step - out
+		out = t.lastS + step
+		t.lastS = out
+		return out, keepAfterReset, 0, false
+	}
+	t.lastS = out
+	if p == 0 {
+		// Estimate the period from the median of the first intervals, as a
+		// gap among them must not set it.
+		t.first = append(t.first, d)
+		if len(t.first) == 9 {
+			s := slices.Clone(t.first)
+			slices.Sort(s)
+			t.periodS = s[4]
+			t.first = nil
+		}
+		return out, keep, 0, false
+	}
+	if d > 1.5*p {
+		return out, keepAfterGap, d - p, false
+	}
+	// Rate drift: compare the mean of ordinary intervals with the period.
+	const window = 512
+	t.nMean++
+	t.meanS += (d - t.meanS) / float64(min(t.nMean, window))
+	if t.nMean >= window {
+		dev := math.Abs(t.meanS/p - 1)
+		switch {
+		case !t.drifting && dev > DriftTolerance:
+			t.drifting = true
+			return out, keep, 0, true
+		case t.drifting && dev < DriftTolerance/2:
+			t.drifting = false
+		}
+	}
+	return out, keep, 0, false
+}
