@@ -58,12 +58,13 @@ const flowSmoothS = 0.01
 // bounded memory (a 1024-sample ring and a 256-point decimated breath), and
 // allocates only when a breath completes. It is not safe for concurrent use.
 //
-// Segmentation follows common practice (zero crossings of flow confirmed by
-// hysteresis: the flow must stay beyond TriggerFlowLPM for HoldS, phases at
-// least MinPhaseS long). The start of a breath is the interpolated zero
-// crossing of flow before the confirmed inspiration, so an expiratory flow
-// still present at that moment (the waveform sign of intrinsic PEEP; Nguyen,
-// Pastor, L'Her, BioMed Eng OnLine 2012) is measured, not smoothed away.
+// Segmentation follows common practice (flow reversals with hysteresis: the
+// flow must pass TriggerFlowLPM in the new direction and stay beyond it for
+// HoldS; phases at least MinPhaseS long). The start of a breath is the
+// interpolated zero crossing of flow just before the confirmed inspiration,
+// so an expiratory flow still present at that moment (the waveform sign of
+// intrinsic PEEP; Nguyen, Pastor, L'Her, BioMed Eng OnLine 2012) is measured,
+// not smoothed away.
 type Analyzer struct {
 	stream string
 	cfg    Config
@@ -77,6 +78,8 @@ type Analyzer struct {
 	prevT    float64
 	prevF    float64
 	fs       float64 // smoothed flow
+	alpha    float64 // smoothing weight for a step of alphaDt
+	alphaDt  float64
 	skipped  uint64
 
 	// The open breath.
@@ -91,7 +94,7 @@ type Analyzer struct {
 	expCand     bool
 	expCandT    float64
 	expCandV    float64
-	expHoldT    float64 // NaN until flow is beyond the trigger
+	expHoldT    float64 // time the flow first fell below −trigger
 	expStartT   float64
 	expStartV   float64
 	pauseStartT float64 // NaN when not in a pause
@@ -104,9 +107,10 @@ type Analyzer struct {
 	candV   float64 // volume of the open breath at the crossing
 	pend    segment
 	pendVol float64
-	inHoldT float64
+	inHoldT float64 // time the flow first rose above the trigger
 
 	ring ring
+	last Breath // the breath completed by the latest push
 }
 
 // NewAnalyzer returns an analyzer for stream with cfg. cfg should have passed
@@ -158,38 +162,51 @@ func (a *Analyzer) resetBreath() {
 // flagged "artifact"); samples whose time does not increase are skipped; a
 // step in time longer than MaxGapS resets the analyzer.
 func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
-	t, p, f := s.TimeS, s.PressureCmH2O, s.FlowLPS
-	if math.IsNaN(t) || math.IsInf(t, 0) {
-		a.skipped++
-		return Breath{}, false
+	if a.push(s) {
+		return a.last, true
 	}
-	if math.IsNaN(p) || math.IsInf(p, 0) || math.IsNaN(f) || math.IsInf(f, 0) {
+	return Breath{}, false
+}
+
+// push is Push without the copy of the record (a Breath is a few hundred
+// bytes; copying one per sample would dominate the cost of analysis). It
+// reports whether a.last holds a newly completed breath.
+func (a *Analyzer) push(s ingest.Sample) bool {
+	t, p, f := s.TimeS, s.PressureCmH2O, s.FlowLPS
+	// x−x is 0 for a finite x and NaN for NaN and ±Inf.
+	if t-t != 0 {
+		a.skipped++
+		return false
+	}
+	if p-p != 0 || f-f != 0 {
 		a.artifact = a.ph != phaseWait
 		a.skipped++
-		return Breath{}, false
+		return false
 	}
 	if !a.havePrev {
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
 		a.ring.push(t, p, f)
-		return Breath{}, false
+		return false
 	}
 	dt := t - a.prevT
 	if !(dt > 0) {
 		a.skipped++
-		return Breath{}, false
+		return false
 	}
 	if dt > a.cfg.MaxGapS {
 		a.Reset()
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
 		a.ring.push(t, p, f)
-		return Breath{}, false
+		return false
 	}
 	a.ring.push(t, p, f)
-	a.fs += (f - a.fs) * dt / (flowSmoothS + dt)
+	if dt != a.alphaDt {
+		a.alphaDt, a.alpha = dt, dt/(flowSmoothS+dt)
+	}
+	a.fs += (f - a.fs) * a.alpha
 
-	var out Breath
 	done := false
 	switch a.ph {
 	case phaseWait:
@@ -197,7 +214,7 @@ func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
 	case phaseInsp:
 		a.stepInsp(t, f, p, dt)
 	case phaseExp:
-		out, done = a.stepExp(t, f, p, dt)
+		done = a.stepExp(t, f, p, dt)
 	}
 	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {
 		// Apnea, a flat line or a stuck sensor: drop the open breath rather
@@ -207,39 +224,42 @@ func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
 		a.resetBreath()
 	}
 	a.prevT, a.prevF = t, f
-	return out, done
+	return done
 }
 
-// crossing returns the linearly interpolated time at which flow passes zero
-// between the previous sample and (t, f), and the volume accrued from the
-// previous sample to that time (trapezoid of the line through zero).
-func (a *Analyzer) crossing(t, f float64) (tc, dv float64) {
+// edge returns the start time of a flow reversal first seen between the
+// previous sample and (t, f), and the volume accrued from the previous sample
+// to it. When the previous flow was on the old side of zero the start is the
+// interpolated zero crossing; when it was already on the new side (noise
+// around zero flow), the start is the previous sample. Detecting the
+// reversal at the trigger flow rather than at zero, and then going back to
+// the zero crossing, keeps noise around zero flow from moving the start by
+// several samples.
+func (a *Analyzer) edge(t, f float64) (tc, dv float64) {
 	f0 := a.prevF
-	tc = a.prevT
-	if f0 != f {
-		tc = a.prevT + (t-a.prevT)*f0/(f0-f)
+	if f0 == 0 || (f0 > 0) == (f > 0) {
+		return a.prevT, 0
 	}
+	tc = a.prevT + (t-a.prevT)*f0/(f0-f)
 	return tc, 0.5 * f0 * (tc - a.prevT)
 }
 
-// track handles a tentative start of inspiration: it returns true when the
-// inspiration is confirmed. While tentative, samples accumulate apart in
-// a.pend; if the flow falls back to zero they are merged into the open breath.
+// track handles a tentative start of inspiration: flow rising above the
+// trigger. It returns true when the flow has stayed above the trigger for
+// HoldS. While tentative, samples accumulate apart in a.pend; if the flow
+// falls back they are merged into the open breath.
 func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
 	if !a.inCand {
-		if a.prevF <= 0 && f > 0 {
-			tc, dv := a.crossing(t, f)
+		if a.prevF <= a.trigLPS && f > a.trigLPS {
+			tc, dv := a.edge(t, f)
 			a.candT = tc
 			a.candV = a.vol + dv
-			a.pendVol = 0.5 * f * (t - tc)
+			a.pendVol = 0.5*(a.prevF+f)*dt - dv
 			a.pend.reset()
 			a.pend.add(f, a.pendVol, p)
 			a.inCand = true
-			a.inHoldT = math.NaN()
-			if f > a.trigLPS {
-				a.inHoldT = t
-			}
-			return a.cfg.HoldS == 0 && f > a.trigLPS
+			a.inHoldT = t
+			return a.cfg.HoldS == 0
 		}
 		if a.ph != phaseWait {
 			a.vol += 0.5 * (a.prevF + f) * dt
@@ -249,7 +269,7 @@ func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
 		return false
 	}
 	a.pendVol += 0.5 * (a.prevF + f) * dt
-	if f <= 0 {
+	if f <= a.trigLPS {
 		a.inCand = false
 		if a.ph != phaseWait {
 			a.cur.merge(&a.pend, a.candV)
@@ -262,13 +282,6 @@ func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
 	a.pend.add(f, a.pendVol, p)
 	if a.ph != phaseWait {
 		a.buf.add(t, f, a.candV+a.pendVol, p)
-	}
-	if f <= a.trigLPS {
-		a.inHoldT = math.NaN()
-		return false
-	}
-	if math.IsNaN(a.inHoldT) {
-		a.inHoldT = t
 	}
 	return t-a.inHoldT >= a.cfg.HoldS
 }
@@ -309,29 +322,21 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 		a.pauseStartT = math.NaN()
 	}
 
-	// Start of expiration: the last crossing of zero downwards before the
-	// flow stays below −TriggerFlowLPM for HoldS.
+	// Start of expiration: flow falling below −TriggerFlowLPM and staying
+	// there for HoldS; the phase starts at the zero crossing before it.
 	if !a.expCand {
-		if a.prevF >= 0 && f < 0 {
-			tc, dv := a.crossing(t, f)
-			a.expCand = true
-			a.expCandT = tc
-			a.expCandV = a.vol - 0.5*(a.prevF+f)*dt + dv
-			a.expHoldT = math.NaN()
-		} else {
+		if !(a.prevF >= -a.trigLPS && f < -a.trigLPS) {
 			return
 		}
-	}
-	if f >= 0 {
-		a.expCand = false
-		return
+		tc, dv := a.edge(t, f)
+		a.expCand = true
+		a.expCandT = tc
+		a.expCandV = a.vol - 0.5*(a.prevF+f)*dt + dv
+		a.expHoldT = t
 	}
 	if f >= -a.trigLPS {
-		a.expHoldT = math.NaN()
+		a.expCand = false
 		return
-	}
-	if math.IsNaN(a.expHoldT) {
-		a.expHoldT = t
 	}
 	if t-a.expHoldT < a.cfg.HoldS || a.expCandT-a.startT < a.cfg.MinPhaseS {
 		return
@@ -350,17 +355,18 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 	}
 }
 
-func (a *Analyzer) stepExp(t, f, p, dt float64) (Breath, bool) {
+func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 	if !a.track(t, f, p, dt) {
-		return Breath{}, false
+		return false
 	}
 	if a.candT-a.expStartT < a.cfg.MinPhaseS {
 		// Too soon after the start of expiration: keep treating it as
 		// tentative until the flow falls back (then it merges) or the
 		// expiration is long enough.
-		return Breath{}, false
+		return false
 	}
-	b := a.finish()
+	a.last = a.finish()
+	b := &a.last
 	// A pressure dip below end-expiratory pressure around the start of the
 	// next inspiration is the trigger effort of the patient.
 	effort := false
@@ -370,5 +376,5 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) (Breath, bool) {
 		}
 	}
 	a.begin(effort)
-	return b, true
+	return true
 }

@@ -1,0 +1,29 @@
+package analyze
+
+import (
+	"testing"
+)
+
+// BenchmarkAnalyzerPush measures analysis of pre-parsed samples: one op is
+// one sample (noisy closed-form waveform at 200 Hz, breaths of 3 s).
+func BenchmarkAnalyzerPush(b *testing.B) {
+	m := linearVC{R: 20, C: 0.05, PEEP: 5, VT: 0.5, Rate: 20, TFlow: 0.8, Pause: 0.2, Fs: 200, NoiseP: 0.3, NoiseF: 1.0 / 60, Steady: true, Seed: 1}
+	in := m.samples(40)
+	period := in[len(in)-1].TimeS - in[0].TimeS + 1/m.Fs
+	a := NewAnalyzer("bench", DefaultConfig())
+	b.ReportAllocs()
+	b.ResetTimer()
+	n := 0
+	for i := 0; i < b.N; i++ {
+		k := i % len(in)
+		s := in[k]
+		s.TimeS += float64(i/len(in)) * period
+		if _, ok := a.Push(s); ok {
+			n++
+		}
+	}
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds()/1e6, "Msamples/s")
+	if b.N > 10*len(in) && n == 0 {
+		b.Fatal("no breaths")
+	}
+}
