@@ -125,9 +125,10 @@ func (a *Analyzer) finish() Breath {
 	}
 	b.TeOverTau = b.TeS / tau
 
-	// Air trapping, two independent routes (REFERENCE §3):
-	// from end-expiratory flow, V_trap ≈ τ·|EEF| and PEEPi ≈ R·|EEF|;
-	// from the fit, PEEPi = P0 − end-expiratory pressure and V_trap = PEEPi·C.
+	// Air trapping at the end of the breath, two independent routes
+	// (REFERENCE §3): from end-expiratory flow, V_trap ≈ τ·|EEF| and
+	// PEEPi ≈ R·|EEF|; from the fit, PEEPi = P0 − end-expiratory pressure
+	// (plus the volume balance of the breath) and V_trap = PEEPi·C.
 	eef := b.EndExpFlowLPM / 60
 	b.TrappedEEFML = 1000 * eef * tau
 	r := math.NaN()
@@ -138,7 +139,14 @@ func (a *Analyzer) finish() Breath {
 	}
 	b.PEEPiEEFCmH2O = eef * r
 	if fitOK {
+		// P0 is the total PEEP at the start of the breath; the volume the
+		// breath kept (VTi − VTe) raises it by (VTi − VTe)/C by its end,
+		// which is when trapped volume and intrinsic PEEP are defined. With
+		// a leak the balance is meaningless and is left out.
 		b.PEEPiFitCmH2O = fr.p0 - b.PEEPCmH2O
+		if !hasFlag(flags, FlagLeak) {
+			b.PEEPiFitCmH2O += (b.VtiML - b.VteML) / 1000 * fr.e
+		}
 	}
 	if !math.IsNaN(b.PEEPiEEFCmH2O) && !math.IsNaN(b.PEEPiFitCmH2O) {
 		d := math.Abs(b.PEEPiEEFCmH2O - b.PEEPiFitCmH2O)
@@ -160,6 +168,15 @@ func (a *Analyzer) finish() Breath {
 	}
 	b.Flags = flags
 	return b
+}
+
+func hasFlag(flags []string, f string) bool {
+	for _, g := range flags {
+		if g == f {
+			return true
+		}
+	}
+	return false
 }
 
 // residualDip returns how far the pressure falls below the fitted passive

@@ -103,6 +103,7 @@ func (a *app) rootCommand() *cobra.Command {
 	root.PersistentFlags().StringVar(&a.logLevel, "log-level", "info", "log level: trace, debug, info, warn, error")
 	root.SetFlagErrorFunc(func(_ *cobra.Command, err error) error { return &UsageError{Err: err} })
 	root.AddCommand(
+		a.analyzeCommand(),
 		a.watchCommand(),
 		a.simCommand(),
 		a.versionCommand(),
