@@ -255,6 +255,12 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 // its expiry. An id that names no current alarm of the stream returns an
 // error wrapping ErrUnknownAlert.
 func (l *Lifecycle) Ack(id string, wall time.Time) ([]Event, error) {
+	return l.AckBy(id, "", wall)
+}
+
+// AckBy is Ack on behalf of by (a user or client name, may be empty), which
+// the acknowledged event's message names.
+func (l *Lifecycle) AckBy(id, by string, wall time.Time) ([]Event, error) {
 	for _, c := range l.order {
 		a := l.conds[c]
 		if a.id != id || (a.phase != active && a.phase != latched) {
@@ -266,6 +272,9 @@ func (l *Lifecycle) Ack(id string, wall time.Time) ([]Event, error) {
 		}
 		a.acked, a.ackWall = true, wall
 		msg := "acknowledged"
+		if by != "" {
+			msg += " by " + by
+		}
 		if a.cc.AckExpiryS > 0 && a.phase == active {
 			msg += fmt.Sprintf("; announced again after %g s if still present", a.cc.AckExpiryS)
 		}

@@ -16,11 +16,12 @@ const maxAirTrappingWindow = 64
 // complete: 1 − e⁻³ = 95 %), and the build-up sign: inspired volume above
 // expired volume over the window while the trapped-volume estimate rises.
 type AirTrapping struct {
-	cfg  AirTrappingConfig
-	ring [maxAirTrappingWindow]atBreath
-	next int // index of the next slot to write
-	n    int // breaths in the ring (≤ M)
-	buf  []float64
+	cfg     AirTrappingConfig
+	ring    [maxAirTrappingWindow]atBreath
+	next    int // index of the next slot to write
+	n       int // breaths in the ring (≤ M)
+	present bool
+	buf     []float64
 }
 
 // atBreath is what the detector keeps of one breath.
@@ -44,6 +45,7 @@ var _ BreathDetector = (*AirTrapping)(nil)
 func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
 	cfg.M = min(max(cfg.M, 1), maxAirTrappingWindow)
 	cfg.N = min(max(cfg.N, 1), cfg.M)
+	cfg.ClearN = min(max(cfg.ClearN, 1), cfg.N)
 	return &AirTrapping{cfg: cfg, buf: make([]float64, 0, maxAirTrappingWindow)}
 }
 
@@ -51,7 +53,7 @@ func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
 func (d *AirTrapping) Conditions() []string { return []string{CondAirTrapping} }
 
 // Reset implements BreathDetector.
-func (d *AirTrapping) Reset() { d.next, d.n = 0, 0 }
+func (d *AirTrapping) Reset() { d.next, d.n, d.present = 0, 0, false }
 
 // detFirstFinite returns the first finite value of vs, or NaN.
 func detFirstFinite(vs ...float64) float64 {
@@ -105,7 +107,9 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 			count++
 		}
 	}
-	present := count >= cfg.N
+	// N of M to become present, ClearN of M to stay present (hysteresis).
+	present := count >= cfg.N || (d.present && count >= cfg.ClearN)
+	d.present = present
 
 	f := Finding{
 		Condition: CondAirTrapping,
@@ -137,7 +141,7 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	detPut(f.Evidence, "trapped_ml", trapped, 1)
 
 	if !present {
-		f.Message = fmt.Sprintf("expiration complete enough: %d of the last %d breaths show air trapping (need %d)", count, d.n, cfg.N)
+		f.Message = fmt.Sprintf("no air trapping: %d of the last %d breaths show it (need %d)", count, d.n, cfg.N)
 		return append(dst, f)
 	}
 	f.Severity = SeverityLow

@@ -24,6 +24,10 @@ type AirTrappingConfig struct {
 	// N of the last M breaths must be positive.
 	N int `mapstructure:"n"`
 	M int `mapstructure:"m"`
+	// ClearN is the hysteresis of the N-of-M rule: once present, the
+	// condition stays present while at least ClearN of the last M breaths
+	// are positive (ClearN ≤ N).
+	ClearN int `mapstructure:"clear_n"`
 	// EEFLPM is the end-expiratory flow (magnitude) above which expiration is
 	// taken as unfinished.
 	EEFLPM float64 `mapstructure:"eef_lpm"`
@@ -132,17 +136,22 @@ func DefaultDetectorConfig() DetectorConfig {
 			// 4 of 6 breaths: our choice; tolerates one or two breaths
 			// disturbed by artefact while keeping onset within 6 breaths.
 			N: 4, M: 6,
+			// Stay present down to 2 of 6 so that a patient whose trapping
+			// sits at the threshold does not make the alarm flicker (our
+			// choice).
+			ClearN: 2,
 			// Expiratory flow still present at the next breath is the
 			// waveform sign of intrinsic PEEP (Nguyen QT, Pastor D, L'Her E,
 			// BioMed Eng OnLine 2012;11:32); 3 L/min sits just above the
 			// ±2–5 L/min segmentation hysteresis (common practice).
 			EEFLPM: 3,
 			// Alarm at an intrinsic PEEP of 2 cmH2O: the estimate threshold
-			// is lower (1.5) so that breaths at a true 2 cmH2O are caught
-			// despite estimation noise (our choice).
-			PEEPiCmH2O: 1.5,
-			// 50 mL: about 10 % of a 500 mL breath (our choice).
-			TrappedML: 50,
+			// sits a little lower (1.8) so that breaths at a true 2 cmH2O
+			// are caught despite estimation noise (our choice).
+			PEEPiCmH2O: 1.8,
+			// 150 mL: 2 cmH2O in a compliant lung of 75 mL/cmH2O, about 30 %
+			// of a 500 mL breath (our choice).
+			TrappedML: 150,
 			// Three time constants empty 95 % of the volume (1 − e⁻³);
 			// "three time constants to empty" is the trade's rule (derived).
 			TeOverTauMax: 3,
@@ -208,6 +217,7 @@ func (c *DetectorConfig) Validate(prefix string) []error {
 	a := &c.AirTrapping
 	v.intRange("air_trapping.m", a.M, 1, 64)
 	v.intRange("air_trapping.n", a.N, 1, max(a.M, 1), "m")
+	v.intRange("air_trapping.clear_n", a.ClearN, 1, max(a.N, 1), "n")
 	v.positive("air_trapping.eef_lpm", a.EEFLPM)
 	v.positive("air_trapping.peepi_cmh2o", a.PEEPiCmH2O)
 	v.positive("air_trapping.trapped_ml", a.TrappedML)

@@ -1,0 +1,180 @@
+package daemon
+
+import (
+	"time"
+
+	"trapline/alerts"
+	"trapline/analyze"
+	"trapline/ingest"
+)
+
+// pipeline is the analysis of one stream, shared by the daemon and by
+// `trapline analyze`: samples go through the breath analyzer, breaths and
+// samples through the detectors, and findings through the alarm lifecycle.
+// It owns all three and is used from one goroutine.
+//
+// Wall time: live, every step takes the wall clock (p.now, or the time the
+// caller passes), and the technical detectors run on the stream time
+// extrapolated with the wall clock since the last sample, so that a
+// signal-lost alert carries a t_s on the stream's own axis. Offline (start
+// set by newOfflinePipeline) the wall time of anything at stream time t is
+// start + t, which makes the output, alert ids included, a deterministic
+// function of the file, and the pipeline makes the ticks the live daemon
+// would have made, once a second of stream time, so that a gap in a
+// recording raises signal-lost too.
+type pipeline struct {
+	stream string
+	an     *analyze.Analyzer
+	det    *analyze.Detectors
+	life   *alerts.Lifecycle
+
+	// now is the live wall clock (time.Now); unused offline.
+	now func() time.Time
+	// start is the wall time of stream time 0 offline; zero when live.
+	start time.Time
+	// stats, when set, reads the source's counters for the decoder error
+	// rate; they are sampled on every Tick.
+	stats     func() ingest.Stats
+	lastStats ingest.Stats
+
+	haveSample bool
+	nextTickS  float64   // offline: stream time of the next made-up tick
+	lastS      float64   // stream time of the last sample
+	lastWall   time.Time // wall time it arrived
+	created    time.Time
+	scratch    []analyze.Finding
+}
+
+var _ streamPipeline = (*pipeline)(nil)
+
+// offlineTickS is the period of the ticks an offline pipeline makes up, the
+// daemon's default tick period.
+const offlineTickS = 1.0
+
+// newPipeline returns the live pipeline of stream; the configurations must
+// be valid.
+func newPipeline(stream string, acfg analyze.Config, dcfg analyze.DetectorConfig, lcfg alerts.LifecycleConfig) *pipeline {
+	return &pipeline{
+		stream:  stream,
+		an:      analyze.NewAnalyzer(stream, acfg),
+		det:     analyze.NewDetectors(dcfg),
+		life:    alerts.NewLifecycle(stream, lcfg),
+		now:     time.Now,
+		created: time.Now(),
+	}
+}
+
+// newOfflinePipeline returns a pipeline for a recording whose stream time 0
+// is wall time start.
+func newOfflinePipeline(stream string, start time.Time, acfg analyze.Config, dcfg analyze.DetectorConfig, lcfg alerts.LifecycleConfig) *pipeline {
+	p := newPipeline(stream, acfg, dcfg, lcfg)
+	p.start, p.created = start, start
+	return p
+}
+
+func (p *pipeline) offline() bool { return !p.start.IsZero() }
+
+// wallAt is the wall time of stream time tS offline.
+func (p *pipeline) wallAt(tS float64) time.Time {
+	return p.start.Add(time.Duration(tS * float64(time.Second)))
+}
+
+// streamNow maps a wall time to the stream's time axis: the last sample's
+// time plus the wall time since it arrived (before any sample, the wall
+// time since the pipeline started).
+func (p *pipeline) streamNow(wall time.Time) float64 {
+	if !p.haveSample {
+		return wall.Sub(p.created).Seconds()
+	}
+	return p.lastS + wall.Sub(p.lastWall).Seconds()
+}
+
+// update passes findings to the lifecycle and collects the alert events.
+func (p *pipeline) update(fs []analyze.Finding, wall time.Time, out *stageOutput) {
+	for _, f := range fs {
+		out.Alerts = append(out.Alerts, p.life.Update(f, wall)...)
+	}
+}
+
+// Samples analyses a batch of samples in time order. Live, all of it is
+// stamped with the wall time of the call.
+func (p *pipeline) Samples(ss []ingest.Sample) stageOutput {
+	var out stageOutput
+	wall := time.Time{}
+	if !p.offline() {
+		wall = p.now()
+	}
+	for i := range ss {
+		s := ss[i]
+		if p.offline() {
+			// Make the ticks the daemon would have made, once a second of
+			// stream time, through gaps too.
+			if !p.haveSample {
+				p.nextTickS = s.TimeS + offlineTickS
+			}
+			for ; p.nextTickS <= s.TimeS; p.nextTickS += offlineTickS {
+				p.tick(p.wallAt(p.nextTickS), &out)
+			}
+			wall = p.wallAt(s.TimeS)
+		}
+		p.scratch = p.det.Samples(ss[i:i+1], s.TimeS, p.scratch[:0])
+		p.update(p.scratch, wall, &out)
+		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
+		b, ok := p.an.Push(s)
+		if !ok {
+			continue
+		}
+		b.Stream = p.stream
+		out.Breaths = append(out.Breaths, b)
+		p.scratch = p.det.Breath(&b, p.scratch[:0])
+		p.update(p.scratch, wall, &out)
+	}
+	return out
+}
+
+// Status takes a change of the source's condition. A disconnection resets
+// the breath analyzer so that no breath spans it; signal-lost itself is
+// judged by Tick from the time without samples.
+func (p *pipeline) Status(ev ingest.Event, now time.Time) stageOutput {
+	if p.offline() {
+		now = p.wallAt(p.lastS)
+	}
+	p.det.Status(&ev, p.streamNow(now))
+	if ev.Status == ingest.StatusDisconnected {
+		p.an.Reset()
+	}
+	return stageOutput{}
+}
+
+// Tick evaluates the time-based conditions at wall time now; the daemon
+// calls it about once a second.
+func (p *pipeline) Tick(now time.Time) stageOutput {
+	var out stageOutput
+	p.tick(now, &out)
+	return out
+}
+
+func (p *pipeline) tick(now time.Time, out *stageOutput) {
+	nowS := p.streamNow(now)
+	if p.stats != nil {
+		st := p.stats()
+		p.det.Decoder(ingest.Stats{
+			Samples:   st.Samples - p.lastStats.Samples,
+			BadLines:  st.BadLines - p.lastStats.BadLines,
+			BadFrames: st.BadFrames - p.lastStats.BadFrames,
+		}, nowS)
+		p.lastStats = st
+	}
+	p.scratch = p.det.Tick(nowS, p.scratch[:0])
+	p.update(p.scratch, now, out)
+}
+
+// Ack acknowledges the alarm with id on behalf of by (may be empty).
+func (p *pipeline) Ack(id, by string, now time.Time) (stageOutput, error) {
+	evs, err := p.life.AckBy(id, by, now)
+	return stageOutput{Alerts: evs}, err
+}
+
+// Flush ends the stream: an open breath is incomplete and is not reported,
+// and alarms keep their state (nothing is held back in the pipeline).
+func (p *pipeline) Flush() stageOutput { return stageOutput{} }
