@@ -20,8 +20,8 @@
 // is stepped exactly (closed-form exponentials on each linear segment,
 // split at every phase boundary), so its steady state equals the closed
 // form at any sample rate. The other models use classical fourth-order
-// Runge–Kutta with a fixed step (Scenario.StepS, default DefaultStepS =
-// 0.5 ms). Settings and patient parameters are latched at the start of each
+// Runge–Kutta with a fixed step per breath: a twentieth of the model's
+// shortest time constant, at most DefaultStepS = 2 ms (or Scenario.StepS). Settings and patient parameters are latched at the start of each
 // breath; a timeline ramp therefore moves them breath by breath.
 //
 // # Use in code

@@ -79,6 +79,19 @@ func (l *lung) linear() bool {
 	return !l.two && l.k2 == 0 && l.k2e == 0 && l.k1e == l.k1 && !l.capOn && l.effortAmp == 0
 }
 
+// shortestTauS is the shortest time constant of the model, which sets the
+// Runge–Kutta step: K1·C for the single compartment (the Rohrer term only
+// lengthens it), and the fast time constant of the two compartments.
+func (l *lung) shortestTauS() float64 {
+	if !l.two {
+		return math.Min(l.k1, l.k1e) * l.c[0]
+	}
+	fast, _ := l.expTimeConstants()
+	// During volume-controlled inspiration the units exchange volume
+	// through their own resistances only.
+	return math.Min(fast, math.Min(l.r[0]*l.c[0], l.r[1]*l.c[1]))
+}
+
 // compliance is the total compliance (L/cmH2O).
 func (l *lung) compliance() float64 { return l.c[0] + l.c[1] }
 
@@ -91,7 +104,10 @@ func (l *lung) pmus(t float64) float64 {
 	if l.effortAmp == 0 || t < l.effortT0 {
 		return 0
 	}
-	s := math.Mod(t-l.effortT0, l.effortPerS)
+	// Floor, not math.Mod: Mod loops over the bits of the quotient and
+	// dominated the run time of long simulations.
+	s := t - l.effortT0
+	s -= math.Floor(s/l.effortPerS) * l.effortPerS
 	if s >= l.effortTS {
 		return 0
 	}

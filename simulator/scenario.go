@@ -35,8 +35,8 @@ type Scenario struct {
 	DurationS Seconds `yaml:"duration"`
 	// SampleRateHz is the output sample rate, 25–1000 Hz.
 	SampleRateHz float64 `yaml:"sample_rate_hz"`
-	// StepS is the fixed step of the Runge–Kutta integrator used by the
-	// non-linear models; zero means DefaultStepS.
+	// StepS fixes the step of the Runge–Kutta integrator used by the
+	// non-linear models; zero chooses it per breath (see DefaultStepS).
 	StepS float64 `yaml:"step_s"`
 
 	Patient    Patient    `yaml:"patient"`
@@ -111,11 +111,16 @@ func (s Seconds) MarshalYAML() (any, error) {
 	return time.Duration(float64(s) * float64(time.Second)).String(), nil
 }
 
-// DefaultStepS is the Runge–Kutta step of the non-linear models: 0.5 ms,
-// under a tenth of the shortest time constant the validation accepts
-// (10 ms), so that halving it changes the trapped volume by far less than
-// 0.5 % (checked by TestRK4Converges).
-const DefaultStepS = 0.0005
+// DefaultStepS is the largest Runge–Kutta step of the non-linear models
+// (2 ms). Each breath takes the smaller of it and a twentieth of the
+// shortest time constant of its model, never less than MinStepS; at such
+// steps the error of fourth-order Runge–Kutta is far below the 0.5 % the
+// tests allow, and halving the step changes the trapped volume by less
+// than that (checked by the model tests).
+const DefaultStepS = 0.002
+
+// MinStepS is the smallest automatic Runge–Kutta step.
+const MinStepS = 0.00005
 
 // NewScenario returns a scenario with the defaults that a YAML file starts
 // from: a 100 Hz perfect sensor, a passive single-compartment patient and a

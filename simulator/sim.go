@@ -16,7 +16,9 @@ type Sim struct {
 	periodS float64
 	nTotal  int64 // sample slots in the scenario
 	k       int64 // next sample slot
-	stepS   float64
+	stepS   float64 // fixed Runge–Kutta step, or 0 for automatic
+
+	breathStepS float64 // Runge–Kutta step of the breath in progress
 
 	set   params // settings latched by the breath in progress
 	lung  lung
@@ -71,9 +73,6 @@ func New(sc Scenario) (*Sim, error) {
 		sensor:  newSensor(sc.Seed),
 		linkUp:  true,
 		phases:  make([]phase, 0, 4),
-	}
-	if s.stepS == 0 {
-		s.stepS = DefaultStepS
 	}
 	s.startBreath(0, false)
 	p := tl.base
@@ -245,7 +244,7 @@ func (s *Sim) integrate(ph *phase, t1 float64) bool {
 		}
 		return false
 	}
-	n := math.Ceil((t1-s.t)/s.stepS - 1e-9)
+	n := math.Ceil((t1-s.t)/s.breathStepS - 1e-9)
 	if n < 1 {
 		n = 1
 	}
@@ -334,6 +333,10 @@ func (s *Sim) startBreath(t float64, triggered bool) {
 	s.lung = newLung(s.set.Patient, s.set.Ventilator.PEEPCmH2O)
 	s.lung.setEffort(s.set.Patient, s.set.Ventilator.RateBPM)
 	s.exact = s.lung.linear() && !s.numeric
+	s.breathStepS = s.stepS
+	if s.breathStepS == 0 {
+		s.breathStepS = math.Max(MinStepS, math.Min(DefaultStepS, s.lung.shortestTauS()/20))
+	}
 	s.phases = plan(s.set.Ventilator, t, s.phases)
 	s.iph = 0
 	s.t = t
