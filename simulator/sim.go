@@ -14,8 +14,8 @@ type Sim struct {
 	sc      Scenario
 	tl      *timeline
 	periodS float64
-	nTotal  int64 // sample slots in the scenario
-	k       int64 // next sample slot
+	nTotal  int64   // sample slots in the scenario
+	k       int64   // next sample slot
 	stepS   float64 // fixed Runge–Kutta step, or 0 for automatic
 
 	breathStepS float64 // Runge–Kutta step of the breath in progress
