@@ -58,8 +58,8 @@ func natsTestEvent(stream string, n int, st alerts.State) alerts.Event {
 	return alerts.Event{
 		ID: fmt.Sprintf("%s/air-trapping/%d", stream, n), Stream: stream,
 		Condition: "air-trapping", Class: "physiological", Priority: alerts.Medium, State: st,
-		Time:     time.Date(2026, 12, 1, 10, 0, 3, 200_000_000, time.UTC),
-		TS:       54.2, BreathSeq: &seq,
+		Time: time.Date(2026, 12, 1, 10, 0, 3, 200_000_000, time.UTC),
+		TS:   54.2, BreathSeq: &seq,
 		Evidence: map[string]float64{"eef_lpm": 11.8, "peepi_cmh2o": 6.8, "trapped_ml": 410, "te_over_tau": 0.85},
 		Message:  "expiratory flow has not returned to zero for 5 of the last 6 breaths",
 		Predict:  map[string]float64{"te_s_for_trapped_below_50ml": 5.0},
