@@ -71,6 +71,10 @@ func putBatch(b *[]Sample) {
 type queued struct {
 	ev  Event
 	buf *[]Sample
+	// gapFromS is the time of the first sample dropped just before this
+	// batch of its stream, when hasGap.
+	gapFromS float64
+	hasGap   bool
 }
 
 // queue is the bounded buffer between a source's readers and its sink.
@@ -83,24 +87,24 @@ type queue struct {
 	closed   bool
 	notify   chan struct{} // an event was pushed or the queue closed
 	space    chan struct{} // an event was popped
-	// droppedUpToS is, per stream, the time of the newest dropped sample:
-	// the next delivered batch after it is announced by a StatusGap.
-	droppedUpToS map[string]float64
-	onDrop       func(samples int, episodeStart bool)
-	dropping     bool
+	// holeFromS is, per stream, the first sample of a hole that no batch
+	// in the queue closes yet: the next batch of the stream pushed will.
+	holeFromS map[string]float64
+	onDrop    func(samples int, episodeStart bool)
+	dropping  bool
 }
 
 func newQueue(capacity int, policy OverloadPolicy, onDrop func(int, bool)) *queue {
 	base := make([]queued, 0, capacity+8)
 	return &queue{
-		base:         base,
-		evs:          base,
-		capacity:     capacity,
-		policy:       policy,
-		notify:       make(chan struct{}, 1),
-		space:        make(chan struct{}, 1),
-		droppedUpToS: map[string]float64{},
-		onDrop:       onDrop,
+		base:      base,
+		evs:       base,
+		capacity:  capacity,
+		policy:    policy,
+		notify:    make(chan struct{}, 1),
+		space:     make(chan struct{}, 1),
+		holeFromS: map[string]float64{},
+		onDrop:    onDrop,
 	}
 }
 
@@ -128,21 +132,23 @@ func (q *queue) push(ctx context.Context, e queued) error {
 	}
 	defer q.mu.Unlock()
 	if e.ev.Samples != nil && len(q.evs) >= q.capacity {
-		victim := -1
-		if q.policy == OverloadDropOldest {
-			for i, x := range q.evs {
-				if x.ev.Samples != nil {
-					victim = i
-					break
-				}
+		if q.policy != OverloadDropOldest {
+			q.drop(e, -1)
+			return nil
+		}
+		for i, x := range q.evs {
+			if x.ev.Samples != nil {
+				q.drop(x, i)
+				q.evs = append(q.evs[:i], q.evs[i+1:]...)
+				q.evs[:len(q.evs)+1][len(q.evs)] = queued{}
+				break
 			}
 		}
-		if victim >= 0 {
-			q.drop(q.evs[victim])
-			q.evs = append(q.evs[:victim], q.evs[victim+1:]...)
-		} else {
-			q.drop(e)
-			return nil
+	}
+	if e.ev.Samples != nil {
+		if from, ok := q.holeFromS[e.ev.Stream]; ok {
+			delete(q.holeFromS, e.ev.Stream)
+			e.gapFromS, e.hasGap = from, true
 		}
 	}
 	q.evs = append(q.evs, e)
@@ -150,12 +156,32 @@ func (q *queue) push(ctx context.Context, e queued) error {
 	return nil
 }
 
-func (q *queue) drop(e queued) {
-	n := len(e.ev.Samples)
-	last := e.ev.Samples[n-1].TimeS
-	if t, ok := q.droppedUpToS[e.ev.Stream]; !ok || last > t {
-		q.droppedUpToS[e.ev.Stream] = last
+// drop discards a batch (at index i of the queue, or the incoming one when
+// i < 0) and makes the next batch of its stream announce the hole.
+func (q *queue) drop(e queued, i int) {
+	stream := e.ev.Stream
+	from := e.ev.Samples[0].TimeS
+	if e.hasGap {
+		from = e.gapFromS // the hole before it grows by this batch
 	}
+	closed := false
+	if i >= 0 {
+		for k := i + 1; k < len(q.evs); k++ {
+			if x := &q.evs[k]; x.ev.Stream == stream && x.ev.Samples != nil {
+				if !x.hasGap || from < x.gapFromS {
+					x.gapFromS = from
+				}
+				x.hasGap, closed = true, true
+				break
+			}
+		}
+	}
+	if !closed {
+		if old, ok := q.holeFromS[stream]; !ok || from < old {
+			q.holeFromS[stream] = from
+		}
+	}
+	n := len(e.ev.Samples)
 	start := !q.dropping
 	q.dropping = true
 	putBatch(e.buf)
@@ -174,9 +200,10 @@ func (q *queue) close() {
 }
 
 // pop waits for the next event. It returns false when the queue is closed
-// and empty or ctx ends. gapS is set (≥ 0) when samples of the event's
-// stream were dropped just before it.
-func (q *queue) pop(ctx context.Context) (e queued, dropped bool, ok bool) {
+// and empty or ctx ends. gapS is the time from the first sample dropped to
+// the event's first sample, when samples of its stream were dropped just
+// before it, and 0 otherwise.
+func (q *queue) pop(ctx context.Context) (e queued, gapS float64, ok bool) {
 	for {
 		q.mu.Lock()
 		if len(q.evs) > 0 {
@@ -187,25 +214,22 @@ func (q *queue) pop(ctx context.Context) (e queued, dropped bool, ok bool) {
 				q.evs = q.base[:0]
 				q.dropping = false
 			}
-			if e.ev.Samples != nil {
-				if t, had := q.droppedUpToS[e.ev.Stream]; had && e.ev.Samples[0].TimeS > t {
-					delete(q.droppedUpToS, e.ev.Stream)
-					dropped = true
-				}
+			if e.hasGap {
+				gapS = e.ev.Samples[0].TimeS - e.gapFromS
 			}
 			q.mu.Unlock()
 			signal(q.space)
-			return e, dropped, true
+			return e, gapS, true
 		}
 		closed := q.closed
 		q.mu.Unlock()
 		if closed {
-			return queued{}, false, false
+			return queued{}, 0, false
 		}
 		select {
 		case <-q.notify:
 		case <-ctx.Done():
-			return queued{}, false, false
+			return queued{}, 0, false
 		}
 	}
 }

@@ -232,25 +232,18 @@ func (s *source) Run(ctx context.Context, sink Sink) error {
 		s.q.close()
 		readErr <- err
 	}()
-	lastS := map[string]float64{}
 	for {
-		e, dropped, ok := s.q.pop(ctx)
+		e, gapS, ok := s.q.pop(ctx)
 		if !ok {
 			break
 		}
-		if dropped {
+		if gapS > 0 {
 			// Samples of this stream were dropped under overload: the sink
 			// sees the hole as a gap.
-			gap := 0.0
-			if t, had := lastS[e.ev.Stream]; had {
-				gap = e.ev.Samples[0].TimeS - t
-			}
 			s.c.gaps.Add(1)
-			sink(Event{Stream: e.ev.Stream, Status: StatusGap, GapS: gap})
+			sink(Event{Stream: e.ev.Stream, Status: StatusGap, GapS: gapS})
 		}
-		if n := len(e.ev.Samples); n > 0 {
-			lastS[e.ev.Stream] = e.ev.Samples[n-1].TimeS
-		}
+		s.c.samples.Add(uint64(len(e.ev.Samples)))
 		sink(e.ev)
 		putBatch(e.buf)
 	}
@@ -417,7 +410,6 @@ func (c *conn) emit(stream string, smp Sample) {
 		c.order = append(c.order, stream)
 	}
 	*b = append(*b, smp)
-	s.c.samples.Add(1)
 	if len(*b) >= batchSamples || c.pace != nil && out-(*b)[0].TimeS >= 0.02 {
 		c.flush(stream)
 	}
