@@ -58,9 +58,6 @@ func (a *Analyzer) finish() Breath {
 	if b.VtiML < c.MinBreathVolumeML {
 		add(FlagShort)
 	}
-	if b.VtiML > 0 && (b.VtiML-b.VteML)/b.VtiML > c.LeakFraction {
-		add(FlagLeak)
-	}
 
 	// Equation of motion over the whole breath (Bates 2009): P0 is the total
 	// PEEP of a passive linear single compartment.
@@ -141,13 +138,20 @@ func (a *Analyzer) finish() Breath {
 	if fitOK {
 		// P0 is the total PEEP at the start of the breath; the volume the
 		// breath kept (VTi − VTe) raises it by (VTi − VTe)/C by its end,
-		// which is when trapped volume and intrinsic PEEP are defined. With
-		// a leak the balance is meaningless and is left out.
-		b.PEEPiFitCmH2O = fr.p0 - b.PEEPCmH2O
-		if !hasFlag(flags, FlagLeak) {
-			b.PEEPiFitCmH2O += (b.VtiML - b.VteML) / 1000 * fr.e
-		}
+		// which is when trapped volume and intrinsic PEEP are defined. (With
+		// a leak the balance overstates it; the breath is then flagged and
+		// the reported estimate takes the other route.)
+		b.PEEPiFitCmH2O = fr.p0 - b.PEEPCmH2O + (b.VtiML-b.VteML)/1000*fr.e
 	}
+	// A leak: inspired volume that neither came back nor is still above
+	// relaxation volume at the end of the breath. Volume kept during a
+	// build-up of trapping is not a leak: it is still in the lung, and the
+	// end-expiratory flow says so (V_trap ≈ τ·|EEF|).
+	kept := b.VtiML - b.VteML
+	if b.VtiML > 0 && kept-math.Max(0, nanTo0(b.TrappedEEFML)) > c.LeakFraction*b.VtiML {
+		add(FlagLeak)
+	}
+	leak := hasFlag(flags, FlagLeak)
 	if !math.IsNaN(b.PEEPiEEFCmH2O) && !math.IsNaN(b.PEEPiFitCmH2O) {
 		d := math.Abs(b.PEEPiEEFCmH2O - b.PEEPiFitCmH2O)
 		tol := math.Max(c.PEEPiToleranceCmH2O, c.PEEPiToleranceFraction*math.Max(math.Abs(b.PEEPiEEFCmH2O), math.Abs(b.PEEPiFitCmH2O)))
@@ -155,11 +159,11 @@ func (a *Analyzer) finish() Breath {
 			add(FlagPEEPiMismatch)
 		}
 	}
-	// The reported estimate: the fit route when the breath is passive and
-	// the fit holds (it uses every sample, so it is the least noisy), else
-	// the end-expiratory-flow route. Negative values from noise around zero
+	// The reported estimate: the fit route when the breath is passive, has
+	// no leak and the fit holds (it uses every sample, so it is the least
+	// noisy), else the end-expiratory-flow route. Negative values from noise around zero
 	// are reported as zero: there is no negative trapped volume.
-	if fitOK && !effort {
+	if fitOK && !effort && !leak {
 		b.PEEPiCmH2O = math.Max(0, b.PEEPiFitCmH2O)
 		b.TrappedML = b.PEEPiCmH2O * b.CMLPerCmH2O
 	} else {
@@ -168,6 +172,13 @@ func (a *Analyzer) finish() Breath {
 	}
 	b.Flags = flags
 	return b
+}
+
+func nanTo0(v float64) float64 {
+	if math.IsNaN(v) {
+		return 0
+	}
+	return v
 }
 
 func hasFlag(flags []string, f string) bool {
@@ -179,20 +190,43 @@ func hasFlag(flags []string, f string) bool {
 	return false
 }
 
+// effortWindowS is the span over which fit residuals are averaged before
+// looking for a dip: short against a muscle effort (0.5–1 s), long enough
+// that sensor noise averages out.
+const effortWindowS = 0.2
+
 // residualDip returns how far the pressure falls below the fitted passive
-// model at its worst point, judged on the decimated breath: inspiratory
-// muscle effort pulls airway pressure below what R, C and P0 predict, in one
-// structured dip, while noise averages out over a bin.
+// model at its worst, judged on the decimated breath with the residuals
+// averaged over effortWindowS: inspiratory muscle effort pulls airway
+// pressure below what R, C and P0 predict in one structured dip lasting a
+// good part of a second, while sensor noise averages out over the window.
 func (a *Analyzer) residualDip(fr fitResult) float64 {
+	n := 0
+	for n < a.buf.n && a.buf.pts[n].t < a.candT {
+		n++
+	}
+	if n < 2 {
+		return 0
+	}
+	pts := a.buf.pts[:n]
+	step := (pts[n-1].t - pts[0].t) / float64(n-1)
+	k := 1
+	if step > 0 {
+		k = max(1, int(effortWindowS/step+0.5))
+	}
+	k = min(k, n)
+	res := func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) }
+	sum := 0.0
 	worst := 0.0
-	for i := 0; i < a.buf.n; i++ {
-		q := &a.buf.pts[i]
-		if q.t >= a.candT {
-			break
+	for i := range pts {
+		sum += res(&pts[i])
+		if i >= k {
+			sum -= res(&pts[i-k])
 		}
-		res := q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
-		if -res > worst {
-			worst = -res
+		if i >= k-1 {
+			if d := -sum / float64(k); d > worst {
+				worst = d
+			}
 		}
 	}
 	return worst

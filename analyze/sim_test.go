@@ -1,0 +1,191 @@
+package analyze_test
+
+import (
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"slices"
+	"strings"
+	"testing"
+
+	"trapline/analyze"
+	"trapline/simulator"
+)
+
+// pair is one analysed breath with the simulator's ground truth of the
+// same breath.
+type pair struct {
+	b  analyze.Breath
+	tr simulator.Truth
+}
+
+// simulate runs a scenario through an analyzer with the default config and
+// pairs every breath with its ground truth by start time.
+func simulate(t *testing.T, sc simulator.Scenario) []pair {
+	t.Helper()
+	sim, err := simulator.New(sc)
+	if err != nil {
+		t.Fatalf("scenario: %v", err)
+	}
+	a := analyze.NewAnalyzer("sim", analyze.DefaultConfig())
+	var bs []analyze.Breath
+	var truths []simulator.Truth
+	for {
+		s, ok := sim.Next()
+		if !ok {
+			break
+		}
+		if b, ok := a.Push(s); ok {
+			bs = append(bs, b)
+		}
+		truths = append(truths, sim.TakeTruth()...)
+	}
+	truths = append(truths, sim.TakeTruth()...)
+	var out []pair
+	for _, b := range bs {
+		for _, tr := range truths {
+			if math.Abs(tr.StartS-b.StartS) < 0.05 {
+				out = append(out, pair{b, tr})
+				break
+			}
+		}
+	}
+	return out
+}
+
+func median(x []float64) float64 {
+	if len(x) == 0 {
+		return math.NaN()
+	}
+	s := slices.Clone(x)
+	slices.Sort(s)
+	if len(s)%2 == 1 {
+		return s[len(s)/2]
+	}
+	return (s[len(s)/2-1] + s[len(s)/2]) / 2
+}
+
+// errTable accumulates per-breath errors of one patient model.
+type errTable struct {
+	name                                         string
+	r, c, vt, peepi, trapped, tau, rate, plat    []float64
+	n, matched, flagged, peepiOK, nullR, nullTau int
+	flags                                        map[string]int
+}
+
+func newErrTable(name string) *errTable { return &errTable{name: name, flags: map[string]int{}} }
+
+// add records the relative errors of R, C, VT, τ and trapped volume and the
+// absolute errors of intrinsic PEEP, rate and plateau.
+func (e *errTable) add(p pair) {
+	b, tr := p.b, p.tr
+	e.matched++
+	rel := func(got, want float64) float64 { return math.Abs(got/want - 1) }
+	if !math.IsNaN(b.RCmH2OSPerL) {
+		e.r = append(e.r, rel(b.RCmH2OSPerL, tr.RCmH2OSPerL))
+		e.c = append(e.c, rel(b.CMLPerCmH2O, tr.CMLPerCmH2O))
+	} else {
+		e.nullR++
+	}
+	if !math.IsNaN(b.TauS) {
+		e.tau = append(e.tau, rel(b.TauS, tr.TauS))
+	} else {
+		e.nullTau++
+	}
+	e.vt = append(e.vt, rel(b.VtiML, tr.VtML))
+	d := math.Abs(b.PEEPiCmH2O - tr.PEEPiCmH2O)
+	e.peepi = append(e.peepi, d)
+	if d <= math.Max(1.0, 0.15*tr.PEEPiCmH2O) {
+		e.peepiOK++
+	}
+	if tr.TrappedML > 20 {
+		e.trapped = append(e.trapped, rel(b.TrappedML, tr.TrappedML))
+	}
+	e.rate = append(e.rate, math.Abs(b.RateBPM-tr.RateBPM))
+	if !math.IsNaN(b.PlateauCmH2O) {
+		e.plat = append(e.plat, math.Abs(b.PlateauCmH2O-tr.PlateauCmH2O))
+	}
+	if !b.Reliable() || b.HasFlag(analyze.FlagPEEPiMismatch) || b.HasFlag(analyze.FlagTauUnreliable) {
+		e.flagged++
+	}
+	for _, f := range b.Flags {
+		if f != analyze.FlagPause && f != analyze.FlagNoPause {
+			e.flags[f]++
+		}
+	}
+}
+
+func pct(x []float64) string {
+	if len(x) == 0 {
+		return "–"
+	}
+	return fmt.Sprintf("%.1f %%", 100*median(x))
+}
+
+// row formats the table row of docs/analysis.md.
+func (e *errTable) row() string {
+	var fl []string
+	for k, v := range e.flags {
+		fl = append(fl, fmt.Sprintf("%s %d", k, v))
+	}
+	slices.Sort(fl)
+	return fmt.Sprintf("| %s | %d | %s | %s | %s | %s | %.2f | %d/%d | %s | %d/%d | %s |", e.name, e.matched,
+		pct(e.r), pct(e.c), pct(e.vt), pct(e.tau), median(e.peepi), e.peepiOK, e.matched, pct(e.trapped),
+		e.flagged, e.matched, strings.Join(fl, ", "))
+}
+
+const tableHead = "| patient | breaths | R | C | VT | τ | PEEPi (cmH2O) | PEEPi ok | trapped | flagged | flags |"
+
+// TestLinearGridSimulator runs the acceptance grid against the simulator's
+// ground truth (linear single compartment, exact stepping): R 5–50
+// cmH2O·s/L, C 20–100 mL/cmH2O, rate 10–30, VT 300–700 mL, square flow with
+// and without pause, PEEP 0–15, 50/100/200 Hz, noise σ 0.3 cmH2O and
+// 1 L/min. Bounds are the project's acceptance targets.
+func TestLinearGridSimulator(t *testing.T) {
+	rng := rand.New(rand.NewPCG(21, 22))
+	pick := func(v ...float64) float64 { return v[rng.IntN(len(v))] }
+	e := newErrTable("linear grid")
+	var rateMax, platMax float64
+	for n := 0; n < 120; {
+		st := simulator.Steady{
+			RCmH2OSPerL: pick(5, 10, 20, 35, 50), CMLPerCmH2O: pick(20, 40, 60, 80, 100),
+			RateBPM: pick(10, 15, 20, 25, 30), VtML: pick(300, 400, 500, 600, 700),
+			PEEPCmH2O: pick(0, 5, 10, 15), SampleRateHz: pick(50, 100, 200), PauseS: pick(0, 0.3),
+			PressureNoiseCmH2O: 0.3, FlowNoiseLPM: 1, Seed: rng.Uint64(),
+		}
+		st.FlowLPM = pick(30, 45, 60)
+		ti := st.VtML / 1000 / (st.FlowLPM / 60)
+		if 60/st.RateBPM-ti-st.PauseS < 0.6 {
+			continue
+		}
+		n++
+		st.DurationS = 10 * 60 / st.RateBPM
+		ps := simulate(t, st.Scenario())
+		if len(ps) < 7 {
+			t.Errorf("%+v: %d breaths matched of 9", st, len(ps))
+			continue
+		}
+		for _, p := range ps {
+			e.add(p)
+			rateMax = math.Max(rateMax, math.Abs(p.b.RateBPM-p.tr.RateBPM))
+			if st.PauseS > 0 {
+				if math.IsNaN(p.b.PlateauCmH2O) {
+					t.Errorf("%+v: breath %d: no plateau with a %.1f s pause", st, p.b.Seq, st.PauseS)
+				}
+				platMax = math.Max(platMax, math.Abs(p.b.PlateauCmH2O-p.tr.PlateauCmH2O))
+			}
+		}
+	}
+	t.Log(tableHead)
+	t.Log(e.row())
+	t.Logf("rate max |err| %.3f /min, plateau max |err| %.2f cmH2O", rateMax, platMax)
+	if median(e.r) > 0.05 || median(e.c) > 0.05 || median(e.vt) > 0.02 {
+		t.Errorf("median |error| over bound (R, C 5 %%, VT 2 %%): %s", e.row())
+	}
+	if float64(e.peepiOK) < 0.95*float64(e.matched) {
+		t.Errorf("intrinsic PEEP within max(1 cmH2O, 15 %%) on %d of %d breaths, want 95 %%", e.peepiOK, e.matched)
+	}
+	if rateMax > 0.1 || platMax > 0.5 {
+		t.Errorf("rate error %.3f /min (bound 0.1), plateau error %.2f cmH2O (bound 0.5)", rateMax, platMax)
+	}
+}
