@@ -142,7 +142,9 @@ func (a *accum) finish(tl *timeline, l *lung, stream string, endS, vEnd, eefLPS 
 		// Rohrer: inspiratory resistance at the mean inspiratory flow, and
 		// the expiratory time constant at the end-expiratory flow.
 		meanFlow := 0.0
-		if tr.TiS > 0 {
+		if flowTime := tr.TiS - a.set.Ventilator.PauseS; a.set.Ventilator.Mode == ModeVC && flowTime > 0 {
+			meanFlow = tr.VtML / 1000 / flowTime
+		} else if tr.TiS > 0 {
 			meanFlow = tr.VtML / 1000 / tr.TiS
 		}
 		tr.RCmH2OSPerL = l.k1 + l.k2*meanFlow
