@@ -161,6 +161,7 @@ func TestRohrerSteadyState(t *testing.T) {
 			within(t, "trapped_ml", tr.TrappedML, want*1000, 0.005)
 			// Inspiratory drop at the square flow of 0.75 L/s, [derived].
 			within(t, "pip_cmh2o", tr.PeakCmH2O, tr.PlateauCmH2O+c.k1*0.75+c.k2*0.75*0.75, 0.001)
+			within(t, "r_cmh2o_s_per_l at the mean flow", tr.RCmH2OSPerL, c.k1+c.k2*0.75, 1e-9)
 			sc = halfStep(t, sc)
 			half := lastTruth(t, sc)
 			within(t, "trapped_ml at half step", half.TrappedML, tr.TrappedML, 0.005)

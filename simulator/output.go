@@ -39,6 +39,10 @@ type OutputOptions struct {
 	// a new pseudo terminal, the address a listener is bound to, a client
 	// that connected or went away.
 	OnStatus func(string)
+	// OnPTY, when set, is called with the slave path of every pseudo
+	// terminal the pty output opens (at the start and at each
+	// reconnection), after the link points to it.
+	OnPTY func(path string)
 }
 
 // ParseOutput returns the output named by spec: "-" (stdout), "pty",
@@ -58,7 +62,7 @@ func ParseOutput(spec string, opts OutputOptions) (Output, error) {
 		}
 		return &writerOutput{w: w}, nil
 	case spec == "pty":
-		return &ptyOutput{link: opts.Link, status: status}, nil
+		return &ptyOutput{link: opts.Link, status: status, onPTY: opts.OnPTY}, nil
 	case !found:
 		if spec == "" {
 			return nil, errors.New("output: empty (want -, pty, tcp://, tcp-listen://, udp:// or a file path)")

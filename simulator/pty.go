@@ -27,6 +27,7 @@ type ptyOutput struct {
 	path   string
 	closed bool
 	header []byte
+	onPTY  func(string)
 }
 
 // PTYPath returns the slave path of the current pseudo-terminal, or "" when
@@ -90,6 +91,9 @@ func (o *ptyOutput) open() error {
 		msg += " (link " + abs + ")"
 	}
 	o.status(msg)
+	if o.onPTY != nil {
+		o.onPTY(slave.Name())
+	}
 	// The header waits in the terminal's input queue for the reader.
 	return o.Write(o.header)
 }

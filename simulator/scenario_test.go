@@ -1,6 +1,9 @@
 package simulator
 
 import (
+	"bytes"
+	"encoding/json"
+	"math"
 	"strings"
 	"testing"
 )
@@ -21,6 +24,25 @@ func TestShippedScenariosRun(t *testing.T) {
 			samples, truths, err := Run(sc)
 			if err != nil {
 				t.Fatal(err)
+			}
+			// The same at full speed through Stream: every breath's truth
+			// is written as one JSON line.
+			sim, err := New(sc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var truthOut bytes.Buffer
+			st, err := Stream(t.Context(), sim, &writerOutput{w: discard{}}, StreamOptions{Encoder: textEncoder(t), Speed: math.Inf(1), Truth: &truthOut})
+			if err != nil {
+				t.Fatal(err)
+			}
+			lines := strings.Split(strings.TrimSpace(truthOut.String()), "\n")
+			if st.Samples != uint64(len(samples)) || len(lines) != len(truths) {
+				t.Fatalf("Stream wrote %d samples and %d truth lines, Run gave %d and %d", st.Samples, len(lines), len(samples), len(truths))
+			}
+			var tr Truth
+			if err := json.Unmarshal([]byte(lines[len(lines)-1]), &tr); err != nil || tr.Seq != len(truths) {
+				t.Fatalf("last truth line %q: %v", lines[len(lines)-1], err)
 			}
 			// A breath lasts at most 60/rate; the scenario must complete
 			// nearly all of the breaths its duration holds.
