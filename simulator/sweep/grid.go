@@ -1,0 +1,501 @@
+package sweep
+
+import (
+	"bytes"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"strings"
+
+	"go.yaml.in/yaml/v3"
+
+	"trapline/simulator"
+)
+
+// Patient models of a grid. Each turns a nominal resistance R and
+// compliance C into a simulator.Patient whose equivalent mechanics are R and
+// C (see Grid.patient for the exact mapping).
+const (
+	// ModelLinear is the linear single compartment.
+	ModelLinear = "linear"
+	// ModelRohrer is a single compartment with flow-dependent resistance
+	// (Rohrer 1915): half of R is linear, half grows with flow so that the
+	// resistance equals R at RohrerRefFlowLPS.
+	ModelRohrer = "rohrer"
+	// ModelTwoCompartment is two parallel units of C/2 each behind a shared
+	// airway resistance, with unit resistances that differ fourfold, so the
+	// exhalation is bi-exponential.
+	ModelTwoCompartment = "two-compartment"
+	// ModelFlowLimited is the linear model with an expiratory flow cap that
+	// falls as the lung empties.
+	ModelFlowLimited = "flow-limited"
+	// ModelEffort is the linear model with an inspiratory muscle effort at
+	// the ventilator's rate.
+	ModelEffort = "effort"
+	// ModelScenario marks the cases that run a shipped or file scenario.
+	ModelScenario = "scenario"
+)
+
+// Models lists the grid's patient models in report order.
+func Models() []string {
+	return []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort}
+}
+
+// Model constants of the non-linear patients (our choice: values that make
+// each model's signature visible at adult settings without leaving the
+// range of adult mechanics in /work/shared/REFERENCE.md §4).
+const (
+	// RohrerRefFlowLPS is the flow at which the Rohrer resistance equals
+	// the nominal R: 0.8 L/s (48 L/min), a typical inspiratory flow.
+	RohrerRefFlowLPS = 0.8
+	// FlowLimitLPS and FlowLimitSlopePerS set the expiratory flow cap of
+	// the flow-limited model: 0.1 L/s at relaxation, rising 0.8 L/s per
+	// litre above it.
+	FlowLimitLPS       = 0.1
+	FlowLimitSlopePerS = 0.8
+	// EffortCmH2O is the peak muscle pressure of the effort model.
+	EffortCmH2O = 5.0
+)
+
+// Setting is one set of ventilator settings of a grid, with a short name
+// for the report.
+type Setting struct {
+	Name                 string `yaml:"name"`
+	simulator.Ventilator `yaml:",inline"`
+}
+
+// Noise is one sensor of a grid (noise, offsets, quantization), with a
+// short name for the report.
+type Noise struct {
+	Name             string `yaml:"name"`
+	simulator.Sensor `yaml:",inline"`
+}
+
+// CourseStep changes every grid patient's mechanics during the run, so
+// that conditions start and end and latencies can be measured: from
+// AtFraction of the duration on, the resistances are ResistanceFactor
+// times the nominal ones and the compliances ComplianceFactor times,
+// reached linearly over RampS. A factor of zero means 1.
+type CourseStep struct {
+	AtFraction       float64           `yaml:"at_fraction"`
+	RampS            simulator.Seconds `yaml:"ramp"`
+	ResistanceFactor float64           `yaml:"resistance_factor"`
+	ComplianceFactor float64           `yaml:"compliance_factor"`
+}
+
+// Episodes holds the rules that turn per-breath truth into episodes.
+type Episodes struct {
+	// MinBreaths is the shortest run of breaths that counts as an episode
+	// (positive or negative); shorter runs count per breath only.
+	MinBreaths int `yaml:"min_breaths"`
+	// GraceBreaths lets an alarm that becomes active up to this many
+	// breaths after a positive episode still count as detecting it.
+	GraceBreaths int `yaml:"grace_breaths"`
+	// MatchTolS is how long after a breath's true end an alert event still
+	// belongs to that breath (the analyzer completes a breath when the next
+	// inspiration is confirmed, a little after it started).
+	MatchTolS float64 `yaml:"match_tol_s"`
+}
+
+// Grid describes a sweep: the product of patient models, resistances,
+// compliances, settings, noise levels and seeds, each patient run for
+// DurationS with the mechanics course applied, plus the listed scenarios
+// (each once per seed).
+type Grid struct {
+	// DurationS is the simulated length of each grid patient.
+	DurationS simulator.Seconds `yaml:"duration"`
+	// SampleRateHz is the sample rate of every patient, scenarios included.
+	SampleRateHz float64 `yaml:"sample_rate_hz"`
+	// StepS is the Runge–Kutta step of the non-linear models (zero: the
+	// simulator's default).
+	StepS float64 `yaml:"step_s"`
+	// Seeds is the number of repetitions with different sensor seeds.
+	Seeds int `yaml:"seeds"`
+
+	Models               []string     `yaml:"models"`
+	ResistanceCmH2OSPerL []float64    `yaml:"resistance_cmh2o_s_per_l"`
+	ComplianceMLPerCmH2O []float64    `yaml:"compliance_ml_per_cmh2o"`
+	Settings             []Setting    `yaml:"settings"`
+	Noise                []Noise      `yaml:"noise"`
+	Course               []CourseStep `yaml:"course"`
+	// Scenarios are shipped scenario names or YAML paths; "all" expands to
+	// every shipped scenario.
+	Scenarios []string `yaml:"scenarios"`
+	// ScenarioDurationS, when set, replaces each scenario's own duration.
+	ScenarioDurationS simulator.Seconds `yaml:"scenario_duration"`
+
+	Episodes Episodes `yaml:"episodes"`
+}
+
+// DefaultEpisodes returns the default episode rules: 6 breaths (the M of
+// the default air-trapping rule), no grace, and 0.3 s of matching
+// tolerance (a few samples at 50 Hz plus the analyzer's 50 ms hold).
+func DefaultEpisodes() Episodes {
+	return Episodes{MinBreaths: 6, GraceBreaths: 0, MatchTolS: 0.3}
+}
+
+// defaultSettings are four adult volume-control settings from an easy
+// expiration to a short one (our choice): inspiratory flow and rate set the
+// expiratory time, and so how much of the grid traps air.
+func defaultSettings() []Setting {
+	vc := func(name string, vt, flow, rate, pause float64) Setting {
+		return Setting{Name: name, Ventilator: simulator.Ventilator{Mode: simulator.ModeVC, FlowPattern: simulator.FlowSquare,
+			TidalVolumeML: vt, FlowLPM: flow, RateBPM: rate, PauseS: pause, PEEPCmH2O: 5}}
+	}
+	return []Setting{
+		vc("vt450-rr14-pause", 450, 50, 14, 0.3),
+		vc("vt500-rr20", 500, 45, 20, 0),
+		vc("vt600-rr24", 600, 40, 24, 0),
+		vc("vt550-rr28", 550, 60, 28, 0),
+	}
+}
+
+// defaultNoise is a clean sensor and a noisy one (our choice: typical and
+// poor bench flow sensors).
+func defaultNoise() []Noise {
+	return []Noise{
+		{Name: "clean", Sensor: simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3}},
+		{Name: "noisy", Sensor: simulator.Sensor{PressureNoiseCmH2O: 0.5, FlowNoiseLPM: 2, FlowOffsetLPM: 0.5}},
+	}
+}
+
+// defaultCourse worsens the airways for the middle third of the run and
+// then relieves them: a bronchospasm-like doubling of resistance over two
+// minutes at one third, back to nominal at two thirds.
+func defaultCourse() []CourseStep {
+	return []CourseStep{
+		{AtFraction: 1.0 / 3, RampS: 120, ResistanceFactor: 2},
+		{AtFraction: 2.0 / 3, RampS: 0, ResistanceFactor: 1},
+	}
+}
+
+// DefaultGrid is the grid `trapline sweep` runs without a grid file: 5
+// models × 4 resistances × 3 compliances × 4 settings × 2 noise levels = 480
+// patients of 65 minutes, plus every shipped scenario with two seeds: over
+// 500 simulated patient-hours at 50 Hz.
+func DefaultGrid() Grid {
+	return Grid{
+		DurationS:            65 * 60,
+		SampleRateHz:         50,
+		StepS:                0.004,
+		Seeds:                1,
+		Models:               Models(),
+		ResistanceCmH2OSPerL: []float64{8, 15, 25, 35},
+		ComplianceMLPerCmH2O: []float64{30, 50, 80},
+		Settings:             defaultSettings(),
+		Noise:                defaultNoise(),
+		Course:               defaultCourse(),
+		Scenarios:            []string{"all"},
+		Episodes:             DefaultEpisodes(),
+	}
+}
+
+// QuickGrid is a small grid that runs in well under a minute on two cores:
+// every model, two resistances, two compliances, two settings, both noise
+// levels, 10-minute patients, and the shipped scenarios.
+func QuickGrid() Grid {
+	g := DefaultGrid()
+	g.DurationS = 10 * 60
+	g.ResistanceCmH2OSPerL = []float64{10, 30}
+	g.ComplianceMLPerCmH2O = []float64{40, 70}
+	g.Settings = []Setting{g.Settings[1], g.Settings[2]}
+	return g
+}
+
+// ParseGrid decodes a grid from YAML. Keys left out keep the values of
+// DefaultGrid; unknown keys are errors.
+func ParseGrid(data []byte) (Grid, error) {
+	g := DefaultGrid()
+	// Lists are replaced, not merged: clear them before decoding so that a
+	// file that names two models gets two models.
+	var probe map[string]any
+	if err := yaml.Unmarshal(data, &probe); err != nil {
+		return Grid{}, fmt.Errorf("decode grid: %w", err)
+	}
+	for k := range probe {
+		switch k {
+		case "models":
+			g.Models = nil
+		case "resistance_cmh2o_s_per_l":
+			g.ResistanceCmH2OSPerL = nil
+		case "compliance_ml_per_cmh2o":
+			g.ComplianceMLPerCmH2O = nil
+		case "settings":
+			g.Settings = nil
+		case "noise":
+			g.Noise = nil
+		case "course":
+			g.Course = nil
+		case "scenarios":
+			g.Scenarios = nil
+		}
+	}
+	dec := yaml.NewDecoder(bytes.NewReader(data))
+	dec.KnownFields(true)
+	// An empty file (io.EOF) means the default grid.
+	if err := dec.Decode(&g); err != nil && !errors.Is(err, io.EOF) {
+		return Grid{}, fmt.Errorf("decode grid: %w", err)
+	}
+	return g, nil
+}
+
+// LoadGrid reads a grid file.
+func LoadGrid(path string) (Grid, error) {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return Grid{}, fmt.Errorf("read grid: %w", err)
+	}
+	g, err := ParseGrid(data)
+	if err != nil {
+		return Grid{}, fmt.Errorf("%s: %w", path, err)
+	}
+	return g, nil
+}
+
+// Case is one simulated patient of a plan.
+type Case struct {
+	// Index is the position in the plan.
+	Index int `json:"index"`
+	// Name identifies the case, e.g. "rohrer/R25/C50/vt500-rr20/clean/s1".
+	Name string `json:"name"`
+	// Model is one of Models() or ModelScenario.
+	Model string `json:"model"`
+	// Scenario names the scenario of a scenario case.
+	Scenario string `json:"scenario,omitempty"`
+	// RCmH2OSPerL and CMLPerCmH2O are the nominal mechanics of a grid case
+	// (zero for scenarios).
+	RCmH2OSPerL float64 `json:"r_cmh2o_s_per_l,omitempty"`
+	CMLPerCmH2O float64 `json:"c_ml_per_cmh2o,omitempty"`
+	Setting     string  `json:"setting,omitempty"`
+	Noise       string  `json:"noise,omitempty"`
+	Seed        uint64  `json:"seed"`
+	// DurationS is the simulated length.
+	DurationS float64 `json:"duration_s"`
+
+	scenario simulator.Scenario
+}
+
+// SimScenario returns the scenario the case runs.
+func (c *Case) SimScenario() simulator.Scenario { return c.scenario }
+
+// Plan is the expanded grid: every case, validated.
+type Plan struct {
+	Grid  Grid
+	Cases []Case
+}
+
+// TotalS is the simulated time of the whole plan.
+func (p *Plan) TotalS() float64 {
+	s := 0.0
+	for i := range p.Cases {
+		s += p.Cases[i].DurationS
+	}
+	return s
+}
+
+// Expand turns the grid into a plan and validates every case, reporting
+// every problem at once.
+func (g Grid) Expand() (*Plan, error) {
+	var errs []error
+	bad := func(format string, args ...any) { errs = append(errs, fmt.Errorf(format, args...)) }
+	if !(g.SampleRateHz >= 25 && g.SampleRateHz <= 1000) {
+		bad("sample_rate_hz: %g out of range [25, 1000]", g.SampleRateHz)
+	}
+	if !(g.StepS >= 0 && g.StepS <= 0.01) {
+		bad("step_s: %g out of range [0, 0.01]", g.StepS)
+	}
+	if g.Seeds < 1 || g.Seeds > 1000 {
+		bad("seeds: %d out of range [1, 1000]", g.Seeds)
+	}
+	gridPatients := len(g.Models) > 0
+	if gridPatients {
+		if !(g.DurationS >= 30 && g.DurationS <= 7*86400) {
+			bad("duration: %gs out of range [30s, 168h]", float64(g.DurationS))
+		}
+		if len(g.ResistanceCmH2OSPerL) == 0 || len(g.ComplianceMLPerCmH2O) == 0 || len(g.Settings) == 0 || len(g.Noise) == 0 {
+			bad("resistance_cmh2o_s_per_l, compliance_ml_per_cmh2o, settings, noise: each needs at least one entry when models are given")
+		}
+	}
+	for i, m := range g.Models {
+		switch m {
+		case ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort:
+		default:
+			bad("models[%d]: unknown model %q (want %s)", i, m, strings.Join(Models(), ", "))
+		}
+	}
+	for i, st := range g.Course {
+		if !(st.AtFraction >= 0 && st.AtFraction < 1) {
+			bad("course[%d].at_fraction: %g out of range [0, 1)", i, st.AtFraction)
+		}
+		if !(st.RampS >= 0) || !(st.ResistanceFactor >= 0 && st.ResistanceFactor <= 20) || !(st.ComplianceFactor >= 0 && st.ComplianceFactor <= 20) {
+			bad("course[%d]: ramp must not be negative and factors must be in [0, 20]", i)
+		}
+	}
+	for i, n := range g.Settings {
+		if n.Name == "" {
+			bad("settings[%d].name: empty", i)
+		}
+	}
+	for i, n := range g.Noise {
+		if n.Name == "" {
+			bad("noise[%d].name: empty", i)
+		}
+	}
+	ep := g.Episodes
+	if ep.MinBreaths < 1 || ep.MinBreaths > 1000 || ep.GraceBreaths < 0 || ep.GraceBreaths > 1000 || !(ep.MatchTolS >= 0 && ep.MatchTolS <= 5) {
+		bad("episodes: min_breaths in [1, 1000], grace_breaths in [0, 1000], match_tol_s in [0, 5]")
+	}
+	if !(g.ScenarioDurationS >= 0) {
+		bad("scenario_duration: must not be negative")
+	}
+	if len(errs) > 0 {
+		return nil, errors.Join(errs...)
+	}
+
+	p := &Plan{Grid: g}
+	add := func(c Case) {
+		c.Index = len(p.Cases)
+		c.scenario.Stream = fmt.Sprintf("sweep-%d", c.Index)
+		c.DurationS = float64(c.scenario.DurationS)
+		if err := c.scenario.Validate(); err != nil {
+			bad("%s: %w", c.Name, err)
+			return
+		}
+		p.Cases = append(p.Cases, c)
+	}
+	for seed := 1; seed <= g.Seeds; seed++ {
+		for _, m := range g.Models {
+			for _, r := range g.ResistanceCmH2OSPerL {
+				for _, c := range g.ComplianceMLPerCmH2O {
+					for _, st := range g.Settings {
+						for _, n := range g.Noise {
+							sc := g.scenario(m, r, c, st, n, uint64(seed))
+							add(Case{
+								Name:  fmt.Sprintf("%s/R%g/C%g/%s/%s/s%d", m, r, c, st.Name, n.Name, seed),
+								Model: m, RCmH2OSPerL: r, CMLPerCmH2O: c, Setting: st.Name, Noise: n.Name,
+								Seed: uint64(seed), scenario: sc,
+							})
+						}
+					}
+				}
+			}
+		}
+	}
+	var names []string
+	for _, s := range g.Scenarios {
+		if s == "all" {
+			names = append(names, simulator.ShippedNames()...)
+		} else {
+			names = append(names, s)
+		}
+	}
+	for _, name := range names {
+		base, err := simulator.LoadScenario(name)
+		if err != nil {
+			bad("scenarios: %w", err)
+			continue
+		}
+		for seed := 1; seed <= g.Seeds; seed++ {
+			sc := base
+			sc.Seed = base.Seed*1000 + uint64(seed)
+			sc.SampleRateHz = g.SampleRateHz
+			if g.StepS > 0 {
+				sc.StepS = g.StepS
+			}
+			if g.ScenarioDurationS > 0 {
+				sc.DurationS = g.ScenarioDurationS
+			}
+			label := base.Name
+			if label == "" {
+				label = name
+			}
+			add(Case{Name: fmt.Sprintf("scenario/%s/s%d", label, seed), Model: ModelScenario, Scenario: label,
+				Seed: sc.Seed, scenario: sc})
+		}
+	}
+	if len(errs) > 0 {
+		return nil, errors.Join(errs...)
+	}
+	if len(p.Cases) == 0 {
+		return nil, errors.New("the grid has no patients: give models or scenarios")
+	}
+	return p, nil
+}
+
+// scenario builds the simulated patient of one grid point.
+func (g *Grid) scenario(model string, r, c float64, st Setting, n Noise, seed uint64) simulator.Scenario {
+	sc := simulator.NewScenario()
+	sc.Name = model
+	sc.Seed = seed*7919 + uint64(math.Round(r*1000+c))
+	sc.DurationS = g.DurationS
+	sc.SampleRateHz = g.SampleRateHz
+	sc.StepS = g.StepS
+	sc.Ventilator = st.Ventilator
+	sc.Sensor = n.Sensor
+	sc.Patient = patient(model, r, c, 1, 1)
+	dur := float64(g.DurationS)
+	for _, cs := range g.Course {
+		rf, cf := cs.ResistanceFactor, cs.ComplianceFactor
+		if rf == 0 {
+			rf = 1
+		}
+		if cf == 0 {
+			cf = 1
+		}
+		sc.Timeline = append(sc.Timeline, simulator.Step{
+			AtS:     simulator.Seconds(cs.AtFraction * dur),
+			RampS:   cs.RampS,
+			Patient: patientKeys(patient(model, r, c, rf, cf)),
+		})
+	}
+	return sc
+}
+
+// patient maps a model and nominal R, C (scaled by rf and cf) to the
+// simulator's patient.
+func patient(model string, r, c, rf, cf float64) simulator.Patient {
+	r, c = r*rf, c*cf
+	p := simulator.NewScenario().Patient
+	p.ResistanceCmH2OSPerL, p.ComplianceMLPerCmH2O = r, c
+	p.ExpResistanceCmH2OSPerL, p.ExpK2CmH2OS2PerL2 = r, 0
+	switch model {
+	case ModelRohrer:
+		// K1 + K2·|V'| = R at the reference flow, half of it linear.
+		p.ResistanceCmH2OSPerL, p.K2CmH2OS2PerL2 = r/2, r/2/RohrerRefFlowLPS
+		p.ExpResistanceCmH2OSPerL, p.ExpK2CmH2OS2PerL2 = r/2, r/2/RohrerRefFlowLPS
+	case ModelTwoCompartment:
+		// Shared 0.4·R, units 0.75·R and 3·R in parallel (0.6·R): R in all,
+		// time constants of the units differ fourfold (Otis et al. 1956).
+		p.Model = simulator.ModelTwoCompartment
+		p.AirwayResistanceCmH2OSPerL = 0.4 * r
+		p.ResistanceCmH2OSPerL, p.Resistance2CmH2OSPerL = 0.75*r, 3*r
+		p.ExpResistanceCmH2OSPerL = 0.75 * r
+		p.ComplianceMLPerCmH2O, p.Compliance2MLPerCmH2O = c/2, c/2
+	case ModelFlowLimited:
+		p.FlowLimitLPS, p.FlowLimitSlopePerS = FlowLimitLPS, FlowLimitSlopePerS
+	case ModelEffort:
+		p.EffortCmH2O = EffortCmH2O
+	}
+	return p
+}
+
+// patientKeys lists the mechanics of p as timeline keys.
+func patientKeys(p simulator.Patient) map[string]float64 {
+	m := map[string]float64{
+		"resistance_cmh2o_s_per_l":     p.ResistanceCmH2OSPerL,
+		"compliance_ml_per_cmh2o":      p.ComplianceMLPerCmH2O,
+		"exp_resistance_cmh2o_s_per_l": p.ExpResistanceCmH2OSPerL,
+	}
+	if p.K2CmH2OS2PerL2 > 0 {
+		m["k2_cmh2o_s2_per_l2"] = p.K2CmH2OS2PerL2
+		m["exp_k2_cmh2o_s2_per_l2"] = p.ExpK2CmH2OS2PerL2
+	}
+	if p.Model == simulator.ModelTwoCompartment {
+		m["resistance_2_cmh2o_s_per_l"] = p.Resistance2CmH2OSPerL
+		m["compliance_2_ml_per_cmh2o"] = p.Compliance2MLPerCmH2O
+		m["airway_resistance_cmh2o_s_per_l"] = p.AirwayResistanceCmH2OSPerL
+	}
+	return m
+}

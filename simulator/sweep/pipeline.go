@@ -1,0 +1,86 @@
+package sweep
+
+import (
+	"time"
+
+	"trapline/alerts"
+	"trapline/analyze"
+	"trapline/ingest"
+)
+
+// DetectorSet is one configuration of the detectors and of the alarm
+// lifecycle: the `detectors:` and `alarms:` sections of a config file.
+type DetectorSet struct {
+	// Name labels the set in the report ("default", a file name).
+	Name      string
+	Detectors analyze.DetectorConfig
+	Alarms    alerts.LifecycleConfig
+}
+
+// DefaultDetectorSet returns the shipped defaults.
+func DefaultDetectorSet() DetectorSet {
+	return DetectorSet{Name: "default", Detectors: analyze.DefaultDetectorConfig(), Alarms: alerts.DefaultLifecycleConfig()}
+}
+
+// Validate reports every invalid value of the set.
+func (s *DetectorSet) Validate() []error {
+	errs := s.Detectors.Validate("detectors")
+	return append(errs, s.Alarms.Validate("alarms")...)
+}
+
+// tickS is how often the time-based technical conditions are evaluated,
+// on the sample clock: once a second, as the daemon does on the wall clock.
+const tickS = 1.0
+
+// wallEpoch anchors the synthetic wall clock of the lifecycle: stream time
+// after it, so that alert ids are a deterministic function of the run.
+var wallEpoch = time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC)
+
+// stage is the per-stream glue of one detector set: the detectors of
+// package analyze feeding the alarm lifecycle of package alerts, as the
+// daemon wires them for a stream, with stream time standing in for the
+// wall clock. It collects the alert events it produces.
+type stage struct {
+	det      *analyze.Detectors
+	life     *alerts.Lifecycle
+	findings []analyze.Finding
+	events   []AlertEvent
+}
+
+func newStage(stream string, set *DetectorSet) *stage {
+	return &stage{
+		det:      analyze.NewDetectors(set.Detectors),
+		life:     alerts.NewLifecycle(stream, set.Alarms),
+		findings: make([]analyze.Finding, 0, 16),
+	}
+}
+
+// update passes the collected findings to the lifecycle.
+func (s *stage) update() {
+	for i := range s.findings {
+		f := &s.findings[i]
+		for _, ev := range s.life.Update(*f, wallEpoch.Add(time.Duration(f.TimeS*float64(time.Second)))) {
+			s.events = append(s.events, AlertEvent{Condition: ev.Condition, State: string(ev.State), TS: ev.TS,
+				Fresh: ev.State == alerts.Raised && ev.Supersedes == ""})
+		}
+	}
+	s.findings = s.findings[:0]
+}
+
+func (s *stage) breath(b *analyze.Breath) {
+	s.findings = s.det.Breath(b, s.findings)
+	s.update()
+}
+
+func (s *stage) tick(batch []ingest.Sample, nowS float64) {
+	s.findings = s.det.Samples(batch, nowS, s.findings)
+	s.findings = s.det.Tick(nowS, s.findings)
+	s.update()
+}
+
+func (s *stage) status(st ingest.Status, nowS float64) {
+	s.det.Status(&ingest.Event{Status: st}, nowS)
+	if st == ingest.StatusDisconnected {
+		s.det.Reset()
+	}
+}
