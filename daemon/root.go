@@ -106,6 +106,7 @@ func (a *app) rootCommand() *cobra.Command {
 		a.analyzeCommand(),
 		a.watchCommand(),
 		a.simCommand(),
+		a.sweepCommand(),
 		a.versionCommand(),
 	)
 	return root
