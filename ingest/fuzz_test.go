@@ -2,6 +2,8 @@ package ingest
 
 import (
 	"bytes"
+	"encoding/hex"
+	"hash/crc32"
 	"math"
 	"os"
 	"path/filepath"
@@ -168,5 +170,25 @@ func TestTestdataText(t *testing.T) {
 				t.Fatalf("first pressure %v, want %v", g.samples[0].PressureCmH2O, tc.firstPressure)
 			}
 		})
+	}
+}
+
+// TestFramingExample checks the frame printed byte by byte in
+// docs/framing.md, and the CRC-32C check value of the Castagnoli polynomial
+// for "123456789", 0xE3069283 (Castagnoli G., Bräuer S., Herrmann M.,
+// "Optimization of cyclic redundancy-check codes with 24 and 32 parity
+// bits", IEEE Trans. Commun. 1993; check value as listed for CRC-32C in
+// RFC 3720, iSCSI, 2004).
+func TestFramingExample(t *testing.T) {
+	if got := crc32.Checksum([]byte("123456789"), castagnoli); got != 0xE3069283 {
+		t.Fatalf("CRC-32C check value %#x", got)
+	}
+	enc, _ := NewBinaryEncoder(BinaryEncoderOptions{RateHz: 100})
+	_ = enc.Append(nil, "bed-1", Sample{PressureCmH2O: 5, FlowLPS: 0.25})
+	got := enc.Append(nil, "bed-1", Sample{TimeS: 0.01, PressureCmH2O: 5.123, FlowLPS: -0.5})
+	want, _ := hex.DecodeString("a57e" + "01" + "00" + "05" + "01" + "01000000" + "a0860100" + "fdfbfafa" +
+		"6265642d31" + "03140000" + "b03cffff" + "a01062ef")
+	if !bytes.Equal(got, want) {
+		t.Fatalf("frame\n%x\nwant\n%x", got, want)
 	}
 }
