@@ -359,19 +359,18 @@ func frames(t testing.TB, n int) ([][]byte, []Sample) {
 	return out, in
 }
 
-// TestBinaryCorruption corrupts 5 % of the frames (a flipped byte anywhere,
-// sync included) and inserts garbage between others: every intact frame must
-// decode, and the counters must match the damage exactly.
-func TestBinaryCorruption(t *testing.T) {
-	fr, in := frames(t, 4000)
-	r := rand.New(rand.NewPCG(7, 7))
-	var stream []byte
-	var want []Sample
-	var badRuns, skipped uint64
+// corruptBinary builds a binary stream of n single-sample frames of which 5 %
+// have one byte flipped (anywhere, sync included) and 2.5 % are preceded by
+// garbage (sometimes sync-like). It returns the stream, the samples of the
+// intact frames, and the exact counters a decoder must end with: one bad
+// frame per maximal corrupt stretch, every corrupt byte skipped.
+func corruptBinary(t testing.TB, n int, seed uint64) (stream []byte, want []Sample, badRuns, skipped uint64) {
+	fr, in := frames(t, n)
+	r := rand.New(rand.NewPCG(seed, seed))
 	inRun := false
 	for i, f := range fr {
 		switch x := r.Float64(); {
-		case x < 0.05: // flip one byte
+		case x < 0.05:
 			c := append([]byte(nil), f...)
 			c[r.IntN(len(c))] ^= byte(1 + r.IntN(255))
 			stream = append(stream, c...)
@@ -381,7 +380,7 @@ func TestBinaryCorruption(t *testing.T) {
 			}
 			inRun = true
 			continue
-		case x < 0.075: // garbage before an intact frame, sometimes sync-like
+		case x < 0.075:
 			g := make([]byte, 1+r.IntN(40))
 			for k := range g {
 				g[k] = byte(r.IntN(256))
@@ -399,6 +398,14 @@ func TestBinaryCorruption(t *testing.T) {
 		stream = append(stream, f...)
 		want = append(want, in[i])
 	}
+	return stream, want, badRuns, skipped
+}
+
+// TestBinaryCorruption decodes a corrupted stream: every intact frame must
+// decode, and the counters must match the damage exactly.
+func TestBinaryCorruption(t *testing.T) {
+	stream, want, badRuns, skipped := corruptBinary(t, 4000, 7)
+	r := rand.New(rand.NewPCG(8, 8))
 	var g got
 	d, _ := NewBinaryDecoder(DecoderOptions{}, g.emit)
 	for p := stream; len(p) > 0; {
@@ -416,26 +423,23 @@ func TestBinaryCorruption(t *testing.T) {
 			t.Fatalf("sample %d: %+v, want %+v", i, g.samples[i], want[i])
 		}
 	}
-	t.Logf("%d frames, %d corrupt stretches, %d bytes skipped", len(fr), badRuns, skipped)
+	t.Logf("4000 frames, %d corrupt stretches, %d bytes skipped", badRuns, skipped)
 }
 
 func round3(v float64) float64 { return math.Round(v*1000) / 1000 }
 
-// TestTextCorruption corrupts 5 % of the lines so that they cannot parse and
-// checks that every other line arrives and the count of bad lines is exact.
-func TestTextCorruption(t *testing.T) {
+// corruptText builds text lines of which 5 % have a byte of a numeric field
+// replaced by a byte no number contains, and returns the input, the samples
+// of the intact lines and the exact number of bad lines.
+func corruptText(t testing.TB, n int, seed uint64) (stream []byte, want []Sample, bad uint64) {
 	enc, _ := NewTextEncoder(TextEncoderOptions{Stream: true, Volume: true})
-	in := testSignal(4000, 100, true)
-	r := rand.New(rand.NewPCG(3, 4))
-	stream := append([]byte(nil), enc.Header()...)
-	var want []Sample
-	var bad uint64
+	in := testSignal(n, 100, true)
+	r := rand.New(rand.NewPCG(seed, seed+1))
+	stream = append(stream, enc.Header()...)
 	junk := []byte("x\x00\xff;:?!Z")
 	for _, s := range in {
 		line := enc.Append(nil, "bed7", s)
 		if r.Float64() < 0.05 {
-			// Replace a byte of a numeric field (not a separator nor the
-			// line end) with a byte no number contains.
 			start := bytes.IndexByte(line, ',') + 1
 			k := start + r.IntN(len(line)-1-start)
 			for line[k] == ',' {
@@ -448,6 +452,14 @@ func TestTextCorruption(t *testing.T) {
 		}
 		stream = append(stream, line...)
 	}
+	return stream, want, bad
+}
+
+// TestTextCorruption checks that every intact line arrives and the count of
+// bad lines is exact.
+func TestTextCorruption(t *testing.T) {
+	stream, want, bad := corruptText(t, 4000, 3)
+	r := rand.New(rand.NewPCG(5, 5))
 	var g got
 	d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
 	for p := stream; len(p) > 0; {

@@ -115,3 +115,55 @@ func TestSerialUnplugged(t *testing.T) {
 		})
 	}
 }
+
+// TestSerialCorruption sends a corrupted stream over a pseudo-terminal: every
+// intact sample arrives through the serial source, and its counters of bad
+// lines, bad frames and skipped bytes are exact.
+func TestSerialCorruption(t *testing.T) {
+	for _, f := range []Format{FormatText, FormatBinary} {
+		t.Run(string(f), func(t *testing.T) {
+			var data []byte
+			var want []Sample
+			var wantStats Stats
+			if f == FormatText {
+				var bad uint64
+				data, want, bad = corruptText(t, 2000, 11)
+				wantStats = Stats{BadLines: bad}
+			} else {
+				var runs, skipped uint64
+				data, want, runs, skipped = corruptBinary(t, 2000, 12)
+				wantStats = Stats{BadFrames: runs, SkippedBytes: skipped}
+			}
+			link := filepath.Join(t.TempDir(), "ttyNOISY")
+			master, tty := newPTY(t, link)
+			defer master.Close()
+			// Time comes from the device (text) or the counter (binary) at
+			// 100 Hz, and every corrupt sample leaves a hole: gaps are
+			// expected and counted, nothing else.
+			src, _ := Open("serial://"+link+"?format="+string(f), Options{RateHz: 100, Buffer: 4096})
+			col := newCollector()
+			running(t, src, col.sink)
+			waitFor(t, 2*time.Second, "the port to open", func() bool { return col.countStatus(StatusConnected) == 1 })
+			tty.Close()
+			writeChunks(t, master, data)
+			waitFor(t, 10*time.Second, "every intact sample", func() bool { return col.count("bed7") == len(want) })
+			got := col.get("bed7")
+			for i := range want {
+				if !near(got[i].TimeS, want[i].TimeS, 1e-9) || !near(got[i].PressureCmH2O, want[i].PressureCmH2O, 0.0005) {
+					t.Fatalf("sample %d: %+v, want %+v", i, got[i], want[i])
+				}
+			}
+			st := src.Stats()
+			wantStats.Samples = uint64(len(want))
+			for i := 1; i < len(want); i++ {
+				if want[i].TimeS-want[i-1].TimeS > 0.015 { // more than 1.5 periods: a hole
+					wantStats.Gaps++
+				}
+			}
+			if st != wantStats {
+				t.Fatalf("stats %+v, want %+v", st, wantStats)
+			}
+			t.Logf("%d samples, stats %+v", len(want), st)
+		})
+	}
+}

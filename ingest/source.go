@@ -25,8 +25,8 @@ type Options struct {
 	// Stream is the stream id of samples that name none (DefaultStream when
 	// empty).
 	Stream string
-	// Format is the wire format when the URL gives none (text when empty;
-	// NATS subjects default to binary).
+	// Format is the wire format when the URL gives none; empty means text,
+	// or binary for nats subjects.
 	Format Format
 	// Columns is the text layout of input without a header.
 	Columns string
@@ -88,8 +88,17 @@ func OpenSpec(spec Spec, opts Options) (Source, error) {
 	if spec.RateHz > 0 {
 		opts.RateHz = spec.RateHz
 	}
-	if spec.Format != FormatText || opts.Format == "" {
+	switch {
+	case spec.Format != "":
 		opts.Format = spec.Format
+	case opts.Format != "":
+		if _, err := ParseFormat(string(opts.Format)); err != nil {
+			return nil, fmt.Errorf("source %s: %w", spec, err)
+		}
+	case spec.Scheme == "nats":
+		opts.Format = FormatBinary // the scale-out subjects carry binary frames
+	default:
+		opts.Format = FormatText
 	}
 	if spec.Scheme == "nats" && opts.NATS == nil {
 		return nil, fmt.Errorf("source %s: a nats subject needs a NATS connection", spec)

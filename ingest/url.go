@@ -24,7 +24,8 @@ type Spec struct {
 	// Address is the device path (serial), host:port (tcp, tcp-listen,
 	// udp), file path (file) or subject (nats); empty for stdin.
 	Address string
-	// Format is the wire format (query "format", default text).
+	// Format is the wire format (query "format"); empty when the URL gives
+	// none, and then Options.Format decides (text, or binary for nats).
 	Format Format
 	// RateHz is the declared sample rate (query "rate"), 0 when not given.
 	RateHz float64
@@ -90,7 +91,7 @@ func ParseURL(raw string) (Spec, error) {
 		}
 		return Spec{}, badURL("unknown scheme %q (want %s)", scheme, strings.Join(Schemes, ", "))
 	}
-	s := Spec{Scheme: scheme, Format: FormatText, Baud: 115200, Speed: 1, MaxClients: 16}
+	s := Spec{Scheme: scheme, Baud: 115200, Speed: 1, MaxClients: 16}
 	q, err := url.ParseQuery(query)
 	if err != nil {
 		return Spec{}, badURL("query %q: %v", query, err)
@@ -139,9 +140,6 @@ func ParseURL(raw string) (Spec, error) {
 			return Spec{}, err
 		}
 		s.Address = subj
-		if q.Get("format") == "" {
-			s.Format = FormatBinary // the scale-out subjects carry binary frames
-		}
 	}
 	return s, nil
 }
@@ -171,9 +169,9 @@ func (s *Spec) setParams(q url.Values) error {
 		}
 	}
 	var err error
-	if v := q.Get("format"); v != "" {
-		if s.Format, err = ParseFormat(v); err != nil {
-			return badURL("%v", err)
+	if v, ok := q["format"]; ok {
+		if s.Format, err = ParseFormat(v[0]); err != nil || v[0] == "" {
+			return badURL("format %q: want text or binary", v[0])
 		}
 	}
 	if v := q.Get("rate"); v != "" {
@@ -236,10 +234,7 @@ func (s *Spec) setParams(q url.Values) error {
 // String returns the URL in its canonical form.
 func (s Spec) String() string {
 	q := url.Values{}
-	if s.Format != FormatText && !(s.Scheme == "nats" && s.Format == FormatBinary) {
-		q.Set("format", string(s.Format))
-	}
-	if s.Scheme == "nats" && s.Format == FormatText {
+	if s.Format != "" {
 		q.Set("format", string(s.Format))
 	}
 	if s.RateHz > 0 {
