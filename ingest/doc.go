@@ -4,4 +4,20 @@
 // It owns the codecs (the sample line format v1 and the binary framing) and
 // the sources. It knows nothing of breaths or alarms: it must not import
 // analyze, alerts or daemon.
+//
+// Reading a whole file or stdin (trapline analyze):
+//
+//	d, err := ingest.NewDecoder(ingest.FormatText, ingest.DecoderOptions{Stream: "bench-a"},
+//		func(stream string, s ingest.Sample) { ... })
+//	err = ingest.Decode(r, d) // d.Stats() counts bad lines
+//
+// Reading a live source (the daemon):
+//
+//	src, err := ingest.Open("serial:///dev/ttyUSB0?baud=115200", ingest.Options{Stream: "bed-4", Log: &log})
+//	err = src.Run(ctx, func(ev ingest.Event) { ... }) // samples, gaps, disconnections
+//
+// Writing samples (simulator, tests): NewTextEncoder, NewBinaryEncoder, and
+// NATSSink for the scale-out subjects. docs/framing.md describes both wire
+// formats byte by byte; docs/sources.md every source URL and its behaviour
+// on failure.
 package ingest
