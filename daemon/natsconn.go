@@ -24,6 +24,9 @@ type natsClientOptions struct {
 	// TLS: CAFile verifies the server; CertFile and KeyFile are the
 	// client's certificate for mutual TLS.
 	TLS natsTLS
+	// TrustFiles are more PEM files whose certificates are trusted to
+	// identify the server (the embedded server's own certificate).
+	TrustFiles []string
 	// InProcess connects to an embedded server without a socket.
 	InProcess nats.InProcessConnProvider
 	// ReconnectWait is the pause between reconnect attempts (default 1 s;
@@ -105,8 +108,8 @@ func connectNATS(o natsClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		}
 		opts = append(opts, nk)
 	}
-	if o.TLS.CAFile != "" {
-		opts = append(opts, nats.RootCAs(o.TLS.CAFile))
+	if roots := append(nonEmpty(o.TLS.CAFile), o.TrustFiles...); len(roots) > 0 {
+		opts = append(opts, nats.RootCAs(roots...))
 	}
 	if o.TLS.CertFile != "" {
 		opts = append(opts, nats.ClientCert(o.TLS.CertFile, o.TLS.KeyFile))
@@ -133,4 +136,12 @@ func redactURL(urls string) string {
 		}
 	}
 	return strings.Join(parts, ",")
+}
+
+// nonEmpty returns s as a one-element list, or none when it is empty.
+func nonEmpty(s string) []string {
+	if s == "" {
+		return nil
+	}
+	return []string{s}
 }

@@ -232,11 +232,17 @@ func (e *embeddedNATS) URL() string {
 	if !ok {
 		return ""
 	}
+	host := e.opts.Host
+	if ip := net.ParseIP(host); ip != nil && ip.IsUnspecified() {
+		// Listening on every interface: this machine reaches it on
+		// loopback.
+		host = "127.0.0.1"
+	}
 	scheme := "nats"
 	if e.opts.TLS.CertFile != "" {
 		scheme = "tls"
 	}
-	return scheme + "://" + net.JoinHostPort(e.opts.Host, strconv.Itoa(addr.Port))
+	return scheme + "://" + net.JoinHostPort(host, strconv.Itoa(addr.Port))
 }
 
 // Server returns the nats-server, for in-process connections
@@ -244,12 +250,23 @@ func (e *embeddedNATS) URL() string {
 func (e *embeddedNATS) Server() *server.Server { return e.srv }
 
 // clientOptions returns the connection options that reach this server: its
-// URL (or the in-process pipe) and its credentials.
+// URL (or the in-process pipe) and its credentials. When the server demands
+// client certificates (a CA file is set), trapline presents the server's own
+// certificate, which must then also allow client authentication
+// (extendedKeyUsage serverAuth and clientAuth).
 func (e *embeddedNATS) clientOptions(name string) natsClientOptions {
 	c := natsClientOptions{
 		URL: e.URL(), Name: name,
 		User: e.opts.User, Password: e.opts.Password, Token: e.opts.Token,
 		TLS: natsTLS{CAFile: e.opts.TLS.CAFile},
+	}
+	if e.opts.TLS.CAFile != "" {
+		c.TLS.CertFile, c.TLS.KeyFile = e.opts.TLS.CertFile, e.opts.TLS.KeyFile
+	}
+	if e.opts.TLS.CertFile != "" {
+		// Trust the server's own certificate: it may be self-signed or
+		// signed by a CA that is not in the system pool.
+		c.TrustFiles = []string{e.opts.TLS.CertFile}
 	}
 	if e.opts.Port == -1 {
 		c.InProcess = e.srv

@@ -332,6 +332,7 @@ func TestEmbeddedNATSTLSAndAuth(t *testing.T) {
 		ok     bool
 	}{
 		{"user, password and client certificate", func(*natsClientOptions) {}, true},
+		{"the daemon's own connection", func(o *natsClientOptions) { *o = e.clientOptions("trapline") }, true},
 		{"wrong password", func(o *natsClientOptions) { o.Password = "guess" }, false},
 		{"no client certificate", func(o *natsClientOptions) { o.TLS.CertFile, o.TLS.KeyFile = "", "" }, false},
 	} {
@@ -345,6 +346,42 @@ func TestEmbeddedNATSTLSAndAuth(t *testing.T) {
 			defer nc.Close()
 			// RetryOnFailedConnect: a refused client keeps trying; give
 			// a good one a bounded time to get in.
+			deadline := time.Now().Add(3 * time.Second)
+			for !nc.IsConnected() && time.Now().Before(deadline) && tc.ok {
+				time.Sleep(20 * time.Millisecond)
+			}
+			if !tc.ok {
+				time.Sleep(500 * time.Millisecond)
+			}
+			if nc.IsConnected() != tc.ok {
+				t.Errorf("connected %v, want %v", nc.IsConnected(), tc.ok)
+			}
+		})
+	}
+}
+
+// TestEmbeddedNATSTLSWithoutClientCerts: TLS with a token and no client
+// certificates; the daemon reaches its own server by trusting the server's
+// certificate, and a client without the CA cannot verify the server.
+func TestEmbeddedNATSTLSWithoutClientCerts(t *testing.T) {
+	pki := writeNATSTestPKI(t, t.TempDir())
+	e := startTestEmbedded(t, embeddedNATSOptions{Token: "bench-token-7",
+		TLS: natsTLS{CertFile: pki.serverCert, KeyFile: pki.serverKey}})
+	for _, tc := range []struct {
+		name string
+		o    natsClientOptions
+		ok   bool
+	}{
+		{"the daemon's own connection", e.clientOptions("trapline"), true},
+		{"a client with the CA", natsClientOptions{URL: e.URL(), Token: "bench-token-7", TLS: natsTLS{CAFile: pki.ca}}, true},
+		{"a client trusting only the system pool", natsClientOptions{URL: e.URL(), Token: "bench-token-7"}, false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			nc, err := connectNATS(tc.o, zerolog.Nop())
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer nc.Close()
 			deadline := time.Now().Add(3 * time.Second)
 			for !nc.IsConnected() && time.Now().Before(deadline) && tc.ok {
 				time.Sleep(20 * time.Millisecond)
@@ -383,12 +420,12 @@ func writeNATSTestPKI(t *testing.T, dir string) natsTestPKI {
 		}
 		return p
 	}
-	leaf := func(serial int64, cn string, usage x509.ExtKeyUsage, ips []net.IP) (certPath, keyPath string) {
+	leaf := func(serial int64, cn string, usage []x509.ExtKeyUsage, ips []net.IP) (certPath, keyPath string) {
 		k, _ := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
 		tmpl := &x509.Certificate{
 			SerialNumber: big.NewInt(serial), Subject: pkix.Name{CommonName: cn},
 			NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour),
-			KeyUsage: x509.KeyUsageDigitalSignature, ExtKeyUsage: []x509.ExtKeyUsage{usage}, IPAddresses: ips,
+			KeyUsage: x509.KeyUsageDigitalSignature, ExtKeyUsage: usage, IPAddresses: ips,
 		}
 		der, err := x509.CreateCertificate(rand.Reader, tmpl, caCert, &k.PublicKey, caKey)
 		if err != nil {
@@ -398,7 +435,9 @@ func writeNATSTestPKI(t *testing.T, dir string) natsTestPKI {
 		return write(cn+".pem", "CERTIFICATE", der), write(cn+"-key.pem", "EC PRIVATE KEY", kder)
 	}
 	p := natsTestPKI{ca: write("ca.pem", "CERTIFICATE", caDER)}
-	p.serverCert, p.serverKey = leaf(2, "server", x509.ExtKeyUsageServerAuth, []net.IP{net.IPv4(127, 0, 0, 1)})
-	p.clientCert, p.clientKey = leaf(3, "client", x509.ExtKeyUsageClientAuth, nil)
+	// The server certificate also allows client authentication: the daemon
+	// connects to its own server with it.
+	p.serverCert, p.serverKey = leaf(2, "server", []x509.ExtKeyUsage{x509.ExtKeyUsageServerAuth, x509.ExtKeyUsageClientAuth}, []net.IP{net.IPv4(127, 0, 0, 1)})
+	p.clientCert, p.clientKey = leaf(3, "client", []x509.ExtKeyUsage{x509.ExtKeyUsageClientAuth}, nil)
 	return p
 }
