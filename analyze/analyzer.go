@@ -14,8 +14,9 @@ const (
 	FlagPause = "pause"
 	// FlagNoPause: no end-inspiratory pause; plateau and occlusion values are null.
 	FlagNoPause = "no-pause"
-	// FlagEffort: the breath was not passive (trigger dip or a pressure dip
-	// below the passive model); mechanics are not trend-worthy.
+	// FlagEffort: the breath was not passive (the inspiratory pressure
+	// departs from the passive model, or the fit gives a negative
+	// elastance); its mechanics are not trend-worthy.
 	FlagEffort = "effort"
 	// FlagShort: inspired volume below the minimum breath volume.
 	FlagShort = "short"
@@ -87,7 +88,6 @@ type Analyzer struct {
 	vol      float64 // volume since the start of the breath (L)
 	cur      segment
 	artifact bool
-	effort   bool // trigger dip seen at the start of this breath
 	buf      decimator
 
 	// End of inspiration.
@@ -146,7 +146,6 @@ func (a *Analyzer) resetBreath() {
 	a.buf.reset()
 	a.vol = 0
 	a.artifact = false
-	a.effort = false
 	a.expCand = false
 	a.expHoldT = math.NaN()
 	a.expStartT = math.NaN()
@@ -288,20 +287,19 @@ func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
 
 // begin opens a breath at the confirmed crossing, taking over the samples
 // accumulated since it.
-func (a *Analyzer) begin(effort bool) {
+func (a *Analyzer) begin() {
 	a.resetBreath()
 	a.ph = phaseInsp
 	a.startT = a.candT
 	a.cur = a.pend
 	a.vol = a.pendVol
-	a.effort = effort
 	a.inCand = false
 	a.pend.reset()
 }
 
 func (a *Analyzer) stepWait(t, f, p, dt float64) {
 	if a.track(t, f, p, dt) {
-		a.begin(false)
+		a.begin()
 	}
 }
 
@@ -366,15 +364,6 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 		return false
 	}
 	a.last = a.finish()
-	b := &a.last
-	// A pressure dip below end-expiratory pressure around the start of the
-	// next inspiration is the trigger effort of the patient.
-	effort := false
-	if !math.IsNaN(b.PEEPCmH2O) {
-		if mp, ok := a.ring.minPressure(a.candT - 0.2); ok && mp < b.PEEPCmH2O-a.cfg.EffortDipCmH2O {
-			effort = true
-		}
-	}
-	a.begin(effort)
+	a.begin()
 	return true
 }

@@ -63,21 +63,6 @@ func (r *ring) window(from, to float64) (meanP, flowAtTo float64, count int) {
 	return meanP, (sf - slope*st) / n, count
 }
 
-// minPressure returns the lowest pressure of the samples with time >= from.
-func (r *ring) minPressure(from float64) (float64, bool) {
-	minP, ok := 0.0, false
-	for k := 1; k <= r.n; k++ {
-		e := &r.s[(r.next-k)&(ringSize-1)]
-		if e.t < from {
-			break
-		}
-		if !ok || e.p < minP {
-			minP, ok = e.p, true
-		}
-	}
-	return minP, ok
-}
-
 // bufCap is the number of points the decimated breath buffer holds.
 const bufCap = 256
 

@@ -47,9 +47,10 @@ type Config struct {
 	// MaxRCmH2OSPerL and MaxCMLPerCmH2O bound plausible fitted values.
 	MaxRCmH2OSPerL float64 `mapstructure:"max_r_cmh2o_s_per_l"`
 	MaxCMLPerCmH2O float64 `mapstructure:"max_c_ml_per_cmh2o"`
-	// EffortDipCmH2O is the pressure drop below the passive model (fit
-	// residual) or below end-expiratory pressure at the start of inspiration
-	// that marks a breath as patient effort.
+	// EffortDipCmH2O is the largest departure of the inspiratory pressure
+	// (averaged over 0.2 s) from the passive equation of motion fitted to
+	// the inspiration that still counts as passive; beyond it (and beyond
+	// four times the noise of that average) the breath is flagged "effort".
 	EffortDipCmH2O float64 `mapstructure:"effort_dip_cmh2o"`
 	// LeakFraction flags a breath whose expired volume falls short of the
 	// inspired volume by more than this fraction.
@@ -78,7 +79,7 @@ func DefaultConfig() Config {
 		MinFitR2:               0.9,
 		MaxRCmH2OSPerL:         200,
 		MaxCMLPerCmH2O:         500,
-		EffortDipCmH2O:         2,
+		EffortDipCmH2O:         0.5,
 		LeakFraction:           0.2,
 		PEEPiToleranceCmH2O:    2,
 		PEEPiToleranceFraction: 0.3,

@@ -61,7 +61,7 @@ func (a *Analyzer) finish() Breath {
 
 	// Equation of motion over the whole breath (Bates 2009): P0 is the total
 	// PEEP of a passive linear single compartment.
-	effort := a.effort
+	effort := false
 	fr := seg.fit()
 	fitOK := false
 	switch {
@@ -83,9 +83,9 @@ func (a *Analyzer) finish() Breath {
 		b.CMLPerCmH2O = 1000 / fr.e
 		b.PTot0CmH2O = fr.p0
 		b.FitR2 = fr.r2
-		if a.residualDip(fr) > c.EffortDipCmH2O {
-			effort = true
-		}
+	}
+	if dev, noise := a.inspResidual(); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
+		effort = true
 	}
 	if effort {
 		add(FlagEffort)
@@ -195,20 +195,41 @@ func hasFlag(flags []string, f string) bool {
 // that sensor noise averages out.
 const effortWindowS = 0.2
 
-// residualDip returns how far the pressure falls below the fitted passive
-// model at its worst, judged on the decimated breath with the residuals
-// averaged over effortWindowS: inspiratory muscle effort pulls airway
-// pressure below what R, C and P0 predict in one structured dip lasting a
-// good part of a second, while sensor noise averages out over the window.
-func (a *Analyzer) residualDip(fr fitResult) float64 {
+// inspResidual fits the equation of motion P = R·V' + E·V + P0 to the
+// inspiration alone (start of the breath to the start of expiration, pause
+// included) and returns the largest |residual| averaged over effortWindowS,
+// and the noise of that average (the scatter of successive residuals, which
+// a smooth deviation does not inflate, over √window).
+// A passive patient under volume control follows the model closely there,
+// even with a flow-dependent resistance (under constant flow the Rohrer term
+// is a constant); an inspiratory muscle effort bends the pressure curve in
+// a way no choice of R, E and P0 can follow. When flow is constant during
+// the whole inspiration the V' column is dropped (it is collinear with the
+// intercept).
+func (a *Analyzer) inspResidual() (dev, noise float64) {
 	n := 0
-	for n < a.buf.n && a.buf.pts[n].t < a.candT {
+	for n < a.buf.n && a.buf.pts[n].t < a.expStartT {
 		n++
 	}
-	if n < 2 {
-		return 0
-	}
 	pts := a.buf.pts[:n]
+	if n < 6 {
+		return 0, 0
+	}
+	var s segment
+	for i := range pts {
+		s.add(pts[i].f, pts[i].v, pts[i].p)
+	}
+	fr := s.fit()
+	if fr.singular {
+		// Constant flow: P = E·V + P1 by simple regression.
+		mv, mp := s.v/s.n, s.p/s.n
+		svv := s.vv - s.n*mv*mv
+		if !(svv > 0) {
+			return 0, 0
+		}
+		e := (s.vp - s.n*mv*mp) / svv
+		fr = fitResult{r: 0, e: e, p0: mp - e*mv}
+	}
 	step := (pts[n-1].t - pts[0].t) / float64(n-1)
 	k := 1
 	if step > 0 {
@@ -216,34 +237,67 @@ func (a *Analyzer) residualDip(fr fitResult) float64 {
 	}
 	k = min(k, n)
 	res := func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) }
-	sum := 0.0
-	worst := 0.0
+	sum, worst, sd, prev := 0.0, 0.0, 0.0, 0.0
 	for i := range pts {
-		sum += res(&pts[i])
+		r := res(&pts[i])
+		if i > 0 {
+			sd += (r - prev) * (r - prev)
+		}
+		prev = r
+		sum += r
 		if i >= k {
 			sum -= res(&pts[i-k])
 		}
 		if i >= k-1 {
-			if d := -sum / float64(k); d > worst {
-				worst = d
-			}
+			worst = math.Max(worst, math.Abs(sum)/float64(k))
 		}
 	}
-	return worst
+	// Successive differences of white noise have twice its variance.
+	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))
+	return worst, noise
+}
+
+// linreg accumulates a simple linear regression y = a + b·x.
+type linreg struct{ n, sx, sy, sxx, sxy float64 }
+
+func (l *linreg) add(x, y float64) {
+	l.n++
+	l.sx += x
+	l.sy += y
+	l.sxx += x * x
+	l.sxy += x * y
+}
+
+// tau returns −1/slope when the slope is defined and negative enough to
+// give a plausible time constant, else NaN.
+func (l *linreg) tau() float64 {
+	if l.n < 3 {
+		return math.NaN()
+	}
+	den := l.n*l.sxx - l.sx*l.sx
+	if !(den > 0) {
+		return math.NaN()
+	}
+	tau := -1 / ((l.n*l.sxy - l.sx*l.sy) / den)
+	if !(tau >= minTauS && tau <= maxTauS) {
+		return math.NaN()
+	}
+	return tau
 }
 
 // tauFlowVolume fits |V'| = a − V_ex/τ over the decimated expiration points
 // whose exhaled volume V_ex lies between 25 and 75 % of vte (L). In passive
 // mono-exponential emptying the volume still to exhale is τ·|V'|, so the
 // slope of the flow–volume curve is −1/τ; the middle of expiration avoids
-// the valve transient at its start and the noise floor at its end. Returns
-// NaN when fewer than three points qualify or the slope is not plausible.
+// the valve transient at its start and the noise floor at its end. It
+// returns NaN when fewer than three points qualify or the slope is not
+// plausible.
 func (a *Analyzer) tauFlowVolume(vte float64) float64 {
 	if !(vte > 0) {
 		return math.NaN()
 	}
 	lo, hi := 0.25*vte, 0.75*vte
-	var n, sx, sy, sxx, sxy float64
+	var l linreg
 	for i := 0; i < a.buf.n; i++ {
 		q := &a.buf.pts[i]
 		if q.t < a.expStartT {
@@ -252,28 +306,9 @@ func (a *Analyzer) tauFlowVolume(vte float64) float64 {
 		if q.t >= a.candT {
 			break
 		}
-		x := a.expStartV - q.v
-		if x < lo || x > hi {
-			continue
+		if x := a.expStartV - q.v; x >= lo && x <= hi {
+			l.add(x, -q.f)
 		}
-		y := -q.f
-		n++
-		sx += x
-		sy += y
-		sxx += x * x
-		sxy += x * y
 	}
-	if n < 3 {
-		return math.NaN()
-	}
-	den := n*sxx - sx*sx
-	if !(den > 0) {
-		return math.NaN()
-	}
-	slope := (n*sxy - sx*sy) / den
-	tau := -1 / slope
-	if !(tau >= minTauS && tau <= maxTauS) {
-		return math.NaN()
-	}
-	return tau
+	return l.tau()
 }

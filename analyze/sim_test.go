@@ -189,3 +189,93 @@ func TestLinearGridSimulator(t *testing.T) {
 		t.Errorf("rate error %.3f /min (bound 0.1), plateau error %.2f cmH2O (bound 0.5)", rateMax, platMax)
 	}
 }
+
+// modelCase is a patient beyond the linear single compartment.
+type modelCase struct {
+	name string
+	set  func(sc *simulator.Scenario)
+	// limit: how this model's intrinsic PEEP may miss without a flag:
+	// "" must be flagged; "under" is expected to be low (REFERENCE §3);
+	// "bounded" may miss by up to 1.5 cmH2O (a documented limitation).
+	limit string
+}
+
+var otherModels = []modelCase{
+	{"Rohrer K2 5 (tube-like)", func(sc *simulator.Scenario) {
+		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.K2CmH2OS2PerL2 = 8, 5
+	}, ""},
+	{"Rohrer K2 15, exp. R 15", func(sc *simulator.Scenario) {
+		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.K2CmH2OS2PerL2 = 8, 15
+		sc.Patient.ExpResistanceCmH2OSPerL = 15
+	}, "bounded"},
+	{"two compartments τ 0.3/2.4 s", func(sc *simulator.Scenario) {
+		sc.Patient.Model = simulator.ModelTwoCompartment
+		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.ComplianceMLPerCmH2O = 10, 30
+		sc.Patient.Resistance2CmH2OSPerL, sc.Patient.Compliance2MLPerCmH2O = 80, 30
+		sc.Patient.AirwayResistanceCmH2OSPerL = 5
+	}, "under"},
+	{"flow-limited 0.25 L/s + 1/s", func(sc *simulator.Scenario) {
+		sc.Patient.FlowLimitLPS, sc.Patient.FlowLimitSlopePerS = 0.25, 1
+	}, ""},
+	{"effort 5 cmH2O", func(sc *simulator.Scenario) { sc.Patient.EffortCmH2O = 5 }, ""},
+	{"effort 12 cmH2O", func(sc *simulator.Scenario) { sc.Patient.EffortCmH2O = 12 }, ""},
+}
+
+// TestOtherModels measures the errors on patients that break the linear
+// single-compartment assumptions (Rohrer 1915 flow-dependent resistance,
+// two compartments after Otis et al. 1956, expiratory flow limitation,
+// inspiratory muscle effort) against the simulator's ground truth and prints
+// the error table of docs/analysis.md. It checks that effort is flagged;
+// that, for the models whose errors a single breath can reveal, a breath
+// whose intrinsic PEEP misses the truth by more than max(1 cmH2O, 15 %)
+// carries a flag; and, for unequal time constants, that both routes
+// underestimate intrinsic PEEP, as REFERENCE §3 says they do (the
+// single-breath estimate cannot see the slow units; a known limitation).
+func TestOtherModels(t *testing.T) {
+	t.Log(tableHead)
+	for _, mc := range otherModels {
+		e := newErrTable(mc.name)
+		var silentMiss, over, far int
+		for i, base := range []simulator.Steady{
+			{RCmH2OSPerL: 15, CMLPerCmH2O: 50, VtML: 500, FlowLPM: 50, RateBPM: 20, PEEPCmH2O: 5},
+			{RCmH2OSPerL: 15, CMLPerCmH2O: 50, VtML: 450, FlowLPM: 60, RateBPM: 26, PEEPCmH2O: 8, PauseS: 0.3},
+		} {
+			base.SampleRateHz, base.DurationS = 100, 60
+			base.PressureNoiseCmH2O, base.FlowNoiseLPM, base.Seed = 0.3, 1, uint64(i+1)
+			sc := base.Scenario()
+			mc.set(&sc)
+			for _, p := range simulate(t, sc) {
+				e.add(p)
+				miss := math.Abs(p.b.PEEPiCmH2O-p.tr.PEEPiCmH2O) > math.Max(1.0, 0.15*p.tr.PEEPiCmH2O)
+				flagged := !p.b.Reliable() || p.b.HasFlag(analyze.FlagPEEPiMismatch) || p.b.HasFlag(analyze.FlagTauUnreliable)
+				if p.b.PEEPiCmH2O > p.tr.PEEPiCmH2O+0.3 {
+					over++
+				}
+				if math.Abs(p.b.PEEPiCmH2O-p.tr.PEEPiCmH2O) > 1.5 {
+					far++
+				}
+				if miss && !flagged && mc.limit == "" {
+					silentMiss++
+					t.Logf("%s: breath %d: PEEPi %.2f (fit %.2f, flow %.2f), truth %.2f, flags %v", mc.name, p.b.Seq,
+						p.b.PEEPiCmH2O, p.b.PEEPiFitCmH2O, p.b.PEEPiEEFCmH2O, p.tr.PEEPiCmH2O, p.b.Flags)
+				}
+			}
+		}
+		t.Log(e.row())
+		if e.matched < 20 {
+			t.Errorf("%s: only %d breaths matched", mc.name, e.matched)
+		}
+		if mc.limit == "under" && over > e.matched/20 {
+			t.Errorf("%s: %d of %d breaths overestimate intrinsic PEEP", mc.name, over, e.matched)
+		}
+		if mc.limit == "bounded" && far > 0 {
+			t.Errorf("%s: %d of %d breaths miss intrinsic PEEP by more than 1.5 cmH2O", mc.name, far, e.matched)
+		}
+		if silentMiss > e.matched/20 {
+			t.Errorf("%s: %d of %d breaths miss intrinsic PEEP without a flag", mc.name, silentMiss, e.matched)
+		}
+		if strings.HasPrefix(mc.name, "effort") && e.flags[analyze.FlagEffort] < e.matched*8/10 {
+			t.Errorf("%s: effort flagged on %d of %d breaths, want 80 %%", mc.name, e.flags[analyze.FlagEffort], e.matched)
+		}
+	}
+}
