@@ -405,8 +405,9 @@ func (e *TextEncoder) eol(b []byte) []byte {
 	return append(b, '\n')
 }
 
-// Header returns the header line, or nothing with NoHeader.
-func (e *TextEncoder) Header() []byte { return e.header }
+// Header returns the header line, or nothing with NoHeader. Appending to
+// it never writes into the encoder.
+func (e *TextEncoder) Header() []byte { return e.header[:len(e.header):len(e.header)] }
 
 func (e *TextEncoder) num(dst []byte, v float64) []byte {
 	if e.opts.Decimals == 0 {
