@@ -2,6 +2,7 @@ package ingest
 
 import (
 	"bytes"
+	"encoding/binary"
 	"encoding/hex"
 	"hash/crc32"
 	"math"
@@ -79,8 +80,30 @@ func FuzzTextDecoder(f *testing.F) {
 func FuzzBinaryDecoder(f *testing.F) {
 	seeds(f, "binary")
 	f.Fuzz(func(t *testing.T, input []byte, cut uint16) {
+		if cut&1 == 1 {
+			// Give every candidate frame a correct CRC, so that the fuzzer
+			// reaches the checks and conversions behind it.
+			input = fixCRCs(input)
+		}
 		checkDecoder(t, FormatBinary, DecoderOptions{RateHz: 100}, input, int(cut))
 	})
+}
+
+// fixCRCs returns a copy of b in which every sync followed by a valid header
+// and enough bytes ends with the CRC-32C of its frame.
+func fixCRCs(b []byte) []byte {
+	b = append([]byte(nil), b...)
+	for i := 0; i+frameHeaderLen <= len(b); i++ {
+		if b[i] != frameSync0 {
+			continue
+		}
+		n, ok := frameSize(b[i:])
+		if !ok || i+n > len(b) {
+			continue
+		}
+		binary.LittleEndian.PutUint32(b[i+n-4:], crc32.Checksum(b[i+2:i+n-4], castagnoli))
+	}
+	return b
 }
 
 // TestWriteBinarySeeds rewrites testdata/binary when TRAPLINE_UPDATE_TESTDATA
