@@ -1,11 +1,14 @@
 package config
 
 import (
+	"cmp"
+	"fmt"
 	"path/filepath"
 	"time"
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/ingest"
 )
 
 // Config is the whole configuration of the trapline daemon. Its mapstructure
@@ -268,3 +271,19 @@ func unlimitedBytes(s Size) int64 {
 // EmbeddedNATS reports whether the daemon runs its own NATS server (nats.url is
 // empty).
 func (c *Config) EmbeddedNATS() bool { return c.NATS.URL == "" }
+
+// Spec returns the stream's parsed source URL with the stream's own
+// settings filled in where the URL leaves them out: the stream id, columns
+// and sample rate. The result is what ingest.OpenSpec takes. Load has
+// already checked the URL; Spec reports the same error for a Config built
+// in code.
+func (s Stream) Spec() (ingest.Spec, error) {
+	spec, err := ingest.ParseURL(s.Source)
+	if err != nil {
+		return ingest.Spec{}, fmt.Errorf("stream %s: %w", s.ID, err)
+	}
+	spec.Stream = cmp.Or(spec.Stream, s.ID)
+	spec.Columns = cmp.Or(spec.Columns, s.Columns)
+	spec.RateHz = cmp.Or(spec.RateHz, s.SampleRateHz)
+	return spec, nil
+}

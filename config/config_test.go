@@ -198,7 +198,7 @@ func TestBadConfigs(t *testing.T) {
 				`nats.alerts_stream.duplicates: 2h is longer than max_age 1h (JetStream requires duplicates <= max_age)`,
 				`spool.max_events: 0 is out of range (want 1 to 10000000)`,
 				`streams[1].id: "bed-07" is already the id of streams[0]`,
-				`streams[1].source: must not be empty (want a URL such as serial:///dev/ttyUSB0 or tcp://127.0.0.1:5000)`,
+				`streams[1].source: empty source (want one of serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].id: "bad id" is not a valid stream id (want 1 to 32 letters, digits, '-' or '_')`,
 				`streams[2].source: unknown scheme "tpc" (want serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].columns: columns "pressure[psi],flow[L/min]": pressure unit "psi": want cmH2O, hPa, mbar, kPa, mmHg`,
@@ -281,14 +281,24 @@ func TestBadConfigs(t *testing.T) {
 				"  - {id: c, source: 'udp://127.0.0.1:5001', columns: 'pressure[cmH2O],flow[L/min]'}\n" +
 				"  - {id: d, source: 'file:///tmp/x.csv', columns: 'time[s],flow[L/min]'}\n" +
 				"  - {id: e, source: 'stdin:', sample_rate_hz: 0.5}\n" +
-				"  - {id: '', source: 'nats:'}\n",
+				"  - {id: '', source: 'nats:trapline.samples.x'}\n" +
+				"  - {id: g, source: 'tcp://127.0.0.1:4001?rate=100&columns=pressure,flow&stream=h', sample_rate_hz: 50, columns: 'pressure,flow'}\n" +
+				"  - {id: h, source: 'tcp://127.0.0.1:4001?columns=pressure,flow'}\n" +
+				"  - {id: i, source: 'tcp://127.0.0.1:4001?format=binary', columns: 'pressure,flow'}\n" +
+				"  - {id: j, source: 'serial:///dev/ttyS0?bauds=9600'}\n",
 			want: []string{
-				`streams[0].source: "tcp://nohost": "nohost" is not host:port (want tcp://host:port)`,
-				`streams[1].source: "serial://" names no path (want serial:///path)`,
+				`streams[0].source: tcp address "nohost": want host:port, e.g. tcp://127.0.0.1:4001`,
+				`streams[1].source: serial needs a path, e.g. serial:///dev/ttyUSB0`,
 				`streams[2].sample_rate_hz: must be set (1 to 10000) because columns has no time column`,
 				`streams[3].columns: columns "time[s],flow[L/min]": columns must include pressure and flow`,
 				`streams[4].sample_rate_hz: 0.5 is out of range (want 0 when the input has a time column, or 1 to 10000)`,
 				`streams[5].id: must not be empty`,
+				`streams[6].columns: is also given in the source URL (columns=pressure,flow): set it in one place`,
+				`streams[6].sample_rate_hz: is also given in the source URL (rate=100): set it in one place`,
+				`streams[6].source: stream=h differs from the stream's id "g"`,
+				// Columns in the URL count too; binary frames carry their own time.
+				`streams[7].sample_rate_hz: must be set (1 to 10000) because columns has no time column`,
+				`streams[9].source: unknown parameter "bauds" for serial (want format, rate, stream, columns, baud)`,
 			},
 		},
 	} {
@@ -486,5 +496,24 @@ func TestValidVariants(t *testing.T) {
 				t.Error(err)
 			}
 		})
+	}
+}
+
+func TestStreamSpec(t *testing.T) {
+	s := Stream{ID: "rig-2", Source: "tcp://127.0.0.1:4001?format=binary", Columns: "pressure[hPa],flow[L/s]", SampleRateHz: 200}
+	spec, err := s.Spec()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if spec.Stream != "rig-2" || spec.Columns != s.Columns || spec.RateHz != 200 || spec.Address != "127.0.0.1:4001" || spec.Format != "binary" {
+		t.Errorf("Spec() = %+v", spec)
+	}
+	// The URL's own settings win (Load refuses a stream that sets both).
+	spec, err = Stream{ID: "a", Source: "stdin:?rate=50", SampleRateHz: 100}.Spec()
+	if err != nil || spec.RateHz != 50 {
+		t.Errorf("Spec() = %+v, %v; want rate 50", spec, err)
+	}
+	if _, err := (Stream{ID: "b", Source: "tpc://x"}).Spec(); err == nil || !strings.Contains(err.Error(), `stream b: bad source URL: unknown scheme "tpc"`) {
+		t.Errorf("Spec() error = %v", err)
 	}
 }

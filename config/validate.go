@@ -1,6 +1,7 @@
 package config
 
 import (
+	"cmp"
 	"fmt"
 	"net"
 	"net/url"
@@ -173,57 +174,42 @@ func (c *Config) validateStreams(p *problems) {
 		} else {
 			seen[s.ID] = i
 		}
-		if s.Source == "" {
-			p.addf(key+".source", "must not be empty (want a URL such as serial:///dev/ttyUSB0 or tcp://127.0.0.1:5000)")
-		} else if err := checkSource(s.Source); err != nil {
-			p.addf(key+".source", "%v", err)
+		spec, err := ingest.ParseURL(s.Source)
+		if err != nil {
+			p.addf(key+".source", "%s", strings.TrimPrefix(err.Error(), ingest.ErrBadURL.Error()+": "))
+		}
+		if err == nil && spec.Columns != "" && s.Columns != "" {
+			p.addf(key+".columns", "is also given in the source URL (columns=%s): set it in one place", spec.Columns)
+		}
+		if err == nil && spec.RateHz > 0 && s.SampleRateHz > 0 {
+			p.addf(key+".sample_rate_hz", "is also given in the source URL (rate=%g): set it in one place", spec.RateHz)
+		}
+		if err == nil && spec.Stream != "" && spec.Stream != s.ID {
+			p.addf(key+".source", "stream=%s differs from the stream's id %q", spec.Stream, s.ID)
 		}
 		// The text decoder is the authority on column layouts: a layout it
 		// refuses with any rate is a columns problem, one it refuses only
-		// without a rate needs sample_rate_hz.
-		layoutOK := true
-		if _, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns, RateHz: 1}, func(string, ingest.Sample) {}); err != nil {
-			p.addf(key+".columns", "%v", err)
-			layoutOK = false
+		// without a rate needs sample_rate_hz. Binary frames carry their
+		// own time.
+		columns, rateHz := s.Columns, s.SampleRateHz
+		if err == nil {
+			columns, rateHz = cmp.Or(columns, spec.Columns), cmp.Or(rateHz, spec.RateHz)
 		}
-		_, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns}, func(string, ingest.Sample) {})
-		hasTime := !layoutOK || err == nil
+		hasTime := true
+		if err != nil || spec.Format == ingest.FormatText {
+			if _, cerr := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns, RateHz: 1}, func(string, ingest.Sample) {}); cerr != nil {
+				p.addf(key+".columns", "%v", cerr)
+			} else if _, terr := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: columns}, func(string, ingest.Sample) {}); terr != nil {
+				hasTime = rateHz > 0
+			}
+		}
 		switch {
 		case s.SampleRateHz != 0 && (s.SampleRateHz < 1 || s.SampleRateHz > 10000):
 			p.addf(key+".sample_rate_hz", "%g is out of range (want 0 when the input has a time column, or 1 to 10000)", s.SampleRateHz)
-		case s.SampleRateHz == 0 && !hasTime:
+		case !hasTime:
 			p.addf(key+".sample_rate_hz", "must be set (1 to 10000) because columns has no time column")
 		}
 	}
-}
-
-// sourceSchemes are the source kinds that ingest reads.
-var sourceSchemes = []string{"serial", "tcp", "tcp-listen", "udp", "file", "stdin", "nats"}
-
-// checkSource checks the form of a source URL: a known scheme and, where the
-// scheme needs one, an address or a path.
-func checkSource(s string) error {
-	u, err := url.Parse(s)
-	if err != nil {
-		return fmt.Errorf("not a URL: %v", err)
-	}
-	want := "(want " + strings.Join(sourceSchemes, ", ") + ")"
-	switch u.Scheme {
-	case "":
-		return fmt.Errorf("%q has no scheme %s", s, want)
-	case "serial", "file":
-		if u.Path == "" && u.Opaque == "" {
-			return fmt.Errorf("%q names no path (want %s:///path)", s, u.Scheme)
-		}
-	case "tcp", "tcp-listen", "udp":
-		if err := checkHostPort(u.Host); err != nil {
-			return fmt.Errorf("%q: %v (want %s://host:port)", s, err, u.Scheme)
-		}
-	case "stdin", "nats":
-	default:
-		return fmt.Errorf("unknown scheme %q %s", u.Scheme, want)
-	}
-	return nil
 }
 
 // checkNATSURL checks one server URL of nats.url.
