@@ -196,7 +196,7 @@ func (c *Config) validateStreams(p *problems) {
 			columns, rateHz = cmp.Or(columns, spec.Columns), cmp.Or(rateHz, spec.RateHz)
 		}
 		hasTime := true
-		if err != nil || spec.Format == ingest.FormatText {
+		if err != nil || wireFormat(spec) == ingest.FormatText {
 			if _, cerr := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: s.Columns, RateHz: 1}, func(string, ingest.Sample) {}); cerr != nil {
 				p.addf(key+".columns", "%v", cerr)
 			} else if _, terr := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: columns}, func(string, ingest.Sample) {}); terr != nil {
@@ -210,6 +210,18 @@ func (c *Config) validateStreams(p *problems) {
 			p.addf(key+".sample_rate_hz", "must be set (1 to 10000) because columns has no time column")
 		}
 	}
+}
+
+// wireFormat is the format a source reads: the URL's, or by default text,
+// except on NATS subjects, which carry binary frames (ingest.Options).
+func wireFormat(spec ingest.Spec) ingest.Format {
+	switch {
+	case spec.Format != "":
+		return spec.Format
+	case spec.Scheme == "nats":
+		return ingest.FormatBinary
+	}
+	return ingest.FormatText
 }
 
 // checkNATSURL checks one server URL of nats.url.
