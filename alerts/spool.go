@@ -14,8 +14,8 @@ import (
 )
 
 // DefaultSpoolMaxEvents bounds the spool when no limit is given. An alert
-// event is about 0.5 KiB on disk, so a full default spool holds about 50 MiB:
-// far more than any outage produces (a bed raising one event a minute fills
+// event is about 0.5 KiB, one file of one 4 KiB block on most file systems,
+// so a full default spool takes about 400 MiB of disk: far more than any outage produces (a bed raising one event a minute fills
 // it in about 70 days), yet a hard ceiling on what a broken link can cost.
 const DefaultSpoolMaxEvents = 100_000
 
