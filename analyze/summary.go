@@ -44,6 +44,10 @@ func Summarize(bs []Breath) Summary {
 	return s
 }
 
+// MedianOf returns the median of the known values of get over bs, or NaN
+// when there are none.
+func MedianOf(bs []Breath, get func(*Breath) float64) float64 { return medianOf(bs, get, false) }
+
 // medianOf returns the median of the known values of get over bs (only
 // reliable breaths when reliableOnly), or NaN when there are none.
 func medianOf(bs []Breath, get func(*Breath) float64, reliableOnly bool) float64 {

@@ -104,6 +104,7 @@ func (a *app) rootCommand() *cobra.Command {
 	root.SetFlagErrorFunc(func(_ *cobra.Command, err error) error { return &UsageError{Err: err} })
 	root.AddCommand(
 		a.analyzeCommand(),
+		a.predictCommand(),
 		a.watchCommand(),
 		a.simCommand(),
 		a.sweepCommand(),
