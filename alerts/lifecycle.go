@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"maps"
+	"math"
 	"strconv"
 	"time"
 
@@ -234,7 +235,7 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 	e := Event{
 		Type: "alert", Schema: EventSchema,
 		ID: a.id, Stream: l.stream, Condition: a.condition, Class: string(f.Class),
-		Priority: a.priority, State: st, Time: wall.UTC(), TS: f.TimeS,
+		Priority: a.priority, State: st, Time: wall.UTC(), TS: math.Round(f.TimeS*1000) / 1000,
 		Evidence: maps.Clone(f.Evidence), Message: msg, Predict: maps.Clone(f.Predict),
 	}
 	if e.Evidence == nil {

@@ -11,10 +11,13 @@ import (
 	"strconv"
 	"strings"
 	"text/tabwriter"
+	"time"
 
 	"github.com/spf13/cobra"
 
+	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/config"
 	"trapline/ingest"
 )
 
@@ -24,19 +27,34 @@ type analyzeFlags struct {
 	sampleRate float64
 	stream     string
 	summary    bool
+	// Alert options: the configuration file whose analysis, detectors and
+	// alarms sections apply, the wall time of stream time 0, and whether
+	// alert events are printed at all.
+	config   string
+	start    string
+	noAlerts bool
 }
+
+// offlineEpoch is the default wall time of stream time 0 in offline
+// analysis: the Unix epoch, so that an alert's time reads as its stream time
+// and the output (alert ids included) depends on the recording alone.
+var offlineEpoch = time.Unix(0, 0).UTC()
 
 func (a *app) analyzeCommand() *cobra.Command {
 	var f analyzeFlags
 	cmd := &cobra.Command{
 		Use:   "analyze FILE|-",
-		Short: "Split a recording into breaths and print one NDJSON breath record per line",
+		Short: "Split a recording into breaths and print NDJSON breath records and alert events",
 		Long: "analyze reads samples in the sample line format v1 from FILE (or stdin for -), splits\n" +
 			"them into breaths and prints one breath record per line as NDJSON: timing, volumes,\n" +
 			"pressures, flows, the least-squares mechanics (R, C, total PEEP), the expiratory time\n" +
 			"constant, trapped volume and intrinsic PEEP, with flags where a value is unreliable.\n" +
 			"Units come from the header line; for input without one, --columns gives the layout.\n" +
 			"--summary prints a table for people instead, with medians at the end.\n\n" +
+			"The detectors and the alarm lifecycle run as in the daemon, and their alert events are\n" +
+			"printed among the breath records in time order. Their wall time is --start plus the\n" +
+			"stream time (default 1970-01-01T00:00:00Z, so it reads as the stream time); --config\n" +
+			"applies the analysis, detectors and alarms sections of a configuration file.\n\n" +
 			"  trapline analyze bench-a.csv | jq .trapped_ml\n" +
 			"  trapline sim --speed max --duration 60s | trapline analyze --summary -\n\n" +
 			Caution,
@@ -50,16 +68,25 @@ func (a *app) analyzeCommand() *cobra.Command {
 	fl.Float64Var(&f.sampleRate, "sample-rate", 0, "sample rate in Hz, for input without a time column")
 	fl.StringVar(&f.stream, "stream", ingest.DefaultStream, "stream id of samples that name none")
 	fl.BoolVar(&f.summary, "summary", false, "print a table of breaths and their medians instead of NDJSON")
+	fl.StringVar(&f.config, "config", "", "configuration file whose analysis, detectors and alarms sections apply")
+	fl.StringVar(&f.start, "start", "", "wall time of stream time 0 for alert events (RFC 3339; default the Unix epoch)")
+	fl.BoolVar(&f.noAlerts, "no-alerts", false, "print breath records only")
 	return cmd
 }
 
-// offline analyses a recording: one analyzer per stream, breaths written in
-// the order they complete. Every breath passes through breath(), the one
-// place where records are produced; stages that react to breaths (alert
-// detectors) hook in there so that their output interleaves in time order.
+// offline analyses a recording: one pipeline (analyzer, detectors, alarm
+// lifecycle) per stream, fed one sample at a time so that breath records
+// and alert events come out in the order they happen.
 type offline struct {
 	cfg       analyze.Config
-	analyzers map[string]*analyze.Analyzer
+	dcfg      analyze.DetectorConfig
+	lcfg      alerts.LifecycleConfig
+	start     time.Time
+	alerts    bool
+	pipelines map[string]*pipeline
+	one       [1]ingest.Sample
+	emit      emitter
+	nAlerts   int
 	out       *bufio.Writer
 	summary   bool
 	kept      []analyze.Breath // for --summary
@@ -70,20 +97,38 @@ type offline struct {
 }
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
-	return &offline{cfg: cfg, analyzers: map[string]*analyze.Analyzer{}, out: bufio.NewWriterSize(out, 64<<10), summary: summary}
+	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
+		start: offlineEpoch, alerts: !summary, pipelines: map[string]*pipeline{},
+		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
+	o.emit = emitter{breath: o.breath, alert: o.alert}
+	return o
 }
 
-// sample feeds one decoded sample to its stream's analyzer.
+// sample feeds one decoded sample to its stream's pipeline.
 func (o *offline) sample(stream string, s ingest.Sample) {
 	o.samples++
-	an := o.analyzers[stream]
-	if an == nil {
-		an = analyze.NewAnalyzer(stream, o.cfg)
-		o.analyzers[stream] = an
+	pl := o.pipelines[stream]
+	if pl == nil {
+		pl = newOfflinePipeline(stream, o.start, o.cfg, o.dcfg, o.lcfg)
+		o.pipelines[stream] = pl
 	}
-	if b, ok := an.Push(s); ok {
-		o.breath(&b)
+	o.one[0] = s
+	pl.process(o.one[:], o.emit)
+}
+
+// alert writes one alert event as a line of NDJSON.
+func (o *offline) alert(e *alerts.Event) {
+	o.nAlerts++
+	if !o.alerts || o.writeErr != nil {
+		return
 	}
+	b, err := e.Marshal()
+	if err != nil {
+		o.writeErr = err
+		return
+	}
+	o.line = append(append(o.line[:0], b...), '\n')
+	_, o.writeErr = o.out.Write(o.line)
 }
 
 // breath handles one completed breath.
@@ -148,6 +193,21 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 		return usageErrorf("--sample-rate %v: want a positive number of Hz", f.sampleRate)
 	}
 	o := newOffline(analyze.DefaultConfig(), stdout, f.summary)
+	if f.config != "" {
+		c, err := config.Load(f.config, nil)
+		if err != nil {
+			return &UsageError{Err: err}
+		}
+		o.cfg, o.dcfg, o.lcfg = c.Analysis, c.Detectors, c.Alarms
+	}
+	if f.start != "" {
+		t, err := time.Parse(time.RFC3339Nano, f.start)
+		if err != nil {
+			return usageErrorf("--start %q: want an RFC 3339 time such as 2026-12-01T10:00:00Z", f.start)
+		}
+		o.start = t.UTC()
+	}
+	o.alerts = o.alerts && !f.noAlerts
 	st, err := a.readAll(ctx, path, f, o)
 	if err != nil {
 		if errors.Is(err, context.Canceled) {

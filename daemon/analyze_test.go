@@ -58,7 +58,14 @@ func TestAnalyzeVerb(t *testing.T) {
 	}
 	sc := bufio.NewScanner(&stdout)
 	var bs []analyze.Breath
+	trapAlert := false
 	for sc.Scan() {
+		if bytes.Contains(sc.Bytes(), []byte(`"type":"alert"`)) {
+			// Alert events interleave with the breaths; this patient traps
+			// (4.75 cmH2O), so the air-trapping alert must be among them.
+			trapAlert = trapAlert || bytes.Contains(sc.Bytes(), []byte(`"condition":"air-trapping","class":"physiological","priority":"low","state":"raised"`))
+			continue
+		}
 		var b analyze.Breath
 		if err := json.Unmarshal(sc.Bytes(), &b); err != nil {
 			t.Fatalf("line %q: %v", sc.Text(), err)
@@ -70,6 +77,9 @@ func TestAnalyzeVerb(t *testing.T) {
 	// completes: the breaths starting at 2.5 … 55 s remain.
 	if len(bs) != 22 {
 		t.Fatalf("%d breaths, want 22", len(bs))
+	}
+	if !trapAlert {
+		t.Errorf("no air-trapping alert raised for a patient with an intrinsic PEEP of 4.75 cmH2O")
 	}
 	last := bs[len(bs)-1]
 	if math.Abs(last.TrappedML-285) > 5 || math.Abs(last.PEEPiCmH2O-4.75) > 0.1 || math.Abs(last.RateBPM-24) > 0.01 {
@@ -122,13 +132,15 @@ func TestAnalyzeBadInput(t *testing.T) {
 		code     int
 		stderr   string
 		noStdout bool
+		stdout   string // when set, a part of the expected output
 	}{
-		{"empty file", []string{"analyze", write("empty.csv", nil)}, ExitError, "no samples", true},
-		{"random bytes", []string{"analyze", write("random.bin", random)}, ExitError, "no samples", true},
-		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open recording", true},
-		{"flat line", []string{"analyze", write("flat.csv", []byte(flat.String()))}, ExitOK, "no complete breath", true},
-		{"bad columns", []string{"analyze", "--columns", "time[fortnight],flow", write("x.csv", []byte("1,2\n"))}, ExitUsage, "columns", true},
-		{"no argument", []string{"analyze"}, ExitUsage, "arg", true},
+		{"empty file", []string{"analyze", write("empty.csv", nil)}, ExitError, "no samples", true, ""},
+		{"random bytes", []string{"analyze", write("random.bin", random)}, ExitError, "no samples", true, ""},
+		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open recording", true, ""},
+		{"flat line", []string{"analyze", write("flat.csv", []byte(flat.String()))}, ExitOK, "no complete breath", false,
+			`"condition":"signal-implausible","class":"technical","priority":"medium","state":"raised"`},
+		{"bad columns", []string{"analyze", "--columns", "time[fortnight],flow", write("x.csv", []byte("1,2\n"))}, ExitUsage, "columns", true, ""},
+		{"no argument", []string{"analyze"}, ExitUsage, "arg", true, ""},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -142,6 +154,9 @@ func TestAnalyzeBadInput(t *testing.T) {
 			}
 			if tt.noStdout && stdout.Len() != 0 {
 				t.Errorf("stdout: %q", stdout.String())
+			}
+			if !strings.Contains(stdout.String(), tt.stdout) {
+				t.Errorf("stdout lacks %s: %q", tt.stdout, stdout.String())
 			}
 		})
 	}

@@ -89,10 +89,27 @@ func (p *pipeline) streamNow(wall time.Time) float64 {
 	return p.lastS + wall.Sub(p.lastWall).Seconds()
 }
 
-// update passes findings to the lifecycle and collects the alert events.
-func (p *pipeline) update(fs []analyze.Finding, wall time.Time, out *stageOutput) {
+// emitter receives what the pipeline produces, in the order it happens.
+type emitter struct {
+	breath func(*analyze.Breath)
+	alert  func(*alerts.Event)
+}
+
+// collect returns an emitter that gathers into out.
+func collect(out *stageOutput) emitter {
+	return emitter{
+		breath: func(b *analyze.Breath) { out.Breaths = append(out.Breaths, *b) },
+		alert:  func(e *alerts.Event) { out.Alerts = append(out.Alerts, *e) },
+	}
+}
+
+// update passes findings to the lifecycle and emits the alert events.
+func (p *pipeline) update(fs []analyze.Finding, wall time.Time, em emitter) {
 	for _, f := range fs {
-		out.Alerts = append(out.Alerts, p.life.Update(f, wall)...)
+		evs := p.life.Update(f, wall)
+		for i := range evs {
+			em.alert(&evs[i])
+		}
 	}
 }
 
@@ -100,6 +117,13 @@ func (p *pipeline) update(fs []analyze.Finding, wall time.Time, out *stageOutput
 // stamped with the wall time of the call.
 func (p *pipeline) Samples(ss []ingest.Sample) stageOutput {
 	var out stageOutput
+	p.process(ss, collect(&out))
+	return out
+}
+
+// process is Samples with the output going to em as it happens: a breath
+// record before the alerts it causes.
+func (p *pipeline) process(ss []ingest.Sample, em emitter) {
 	wall := time.Time{}
 	if !p.offline() {
 		wall = p.now()
@@ -113,23 +137,22 @@ func (p *pipeline) Samples(ss []ingest.Sample) stageOutput {
 				p.nextTickS = s.TimeS + offlineTickS
 			}
 			for ; p.nextTickS <= s.TimeS; p.nextTickS += offlineTickS {
-				p.tick(p.wallAt(p.nextTickS), &out)
+				p.tick(p.wallAt(p.nextTickS), em)
 			}
 			wall = p.wallAt(s.TimeS)
 		}
 		p.scratch = p.det.Samples(ss[i:i+1], s.TimeS, p.scratch[:0])
-		p.update(p.scratch, wall, &out)
+		p.update(p.scratch, wall, em)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		b, ok := p.an.Push(s)
 		if !ok {
 			continue
 		}
 		b.Stream = p.stream
-		out.Breaths = append(out.Breaths, b)
+		em.breath(&b)
 		p.scratch = p.det.Breath(&b, p.scratch[:0])
-		p.update(p.scratch, wall, &out)
+		p.update(p.scratch, wall, em)
 	}
-	return out
 }
 
 // Status takes a change of the source's condition. A disconnection resets
@@ -150,11 +173,11 @@ func (p *pipeline) Status(ev ingest.Event, now time.Time) stageOutput {
 // calls it about once a second.
 func (p *pipeline) Tick(now time.Time) stageOutput {
 	var out stageOutput
-	p.tick(now, &out)
+	p.tick(now, collect(&out))
 	return out
 }
 
-func (p *pipeline) tick(now time.Time, out *stageOutput) {
+func (p *pipeline) tick(now time.Time, em emitter) {
 	nowS := p.streamNow(now)
 	if p.stats != nil {
 		st := p.stats()
@@ -166,7 +189,7 @@ func (p *pipeline) tick(now time.Time, out *stageOutput) {
 		p.lastStats = st
 	}
 	p.scratch = p.det.Tick(nowS, p.scratch[:0])
-	p.update(p.scratch, now, out)
+	p.update(p.scratch, now, em)
 }
 
 // Ack acknowledges the alarm with id on behalf of by (may be empty).
