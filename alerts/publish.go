@@ -16,6 +16,20 @@ import (
 // ErrPublisherClosed is returned by Publish after Close.
 var ErrPublisherClosed = errors.New("alert publisher closed")
 
+// ErrEventTooLarge is returned by Publish for an event whose JSON exceeds
+// MaxEventBytes. Such an event could never be published (NATS limits a
+// message to 1 MiB by default) and would block every later alert behind it.
+var ErrEventTooLarge = errors.New("alert event too large")
+
+// MaxEventBytes is the largest encoded alert event Publish accepts; a normal
+// event is about 0.5 KiB.
+const MaxEventBytes = 64 << 10
+
+// errNotConnected stops a drain while the connection is down: a publish
+// then would only sit in the client's reconnect buffer, and every retry
+// would add another copy to it.
+var errNotConnected = errors.New("not connected to NATS")
+
 // PublisherOptions tune the alert publisher. Zero values take the defaults.
 type PublisherOptions struct {
 	// Streams names the alerts stream and the subject prefix; it is also
@@ -149,6 +163,10 @@ func (p *Publisher) Publish(_ context.Context, ev Event) error {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert: %w", err)
 	}
+	if len(data) > MaxEventBytes {
+		p.refused.Add(1)
+		return fmt.Errorf("publish alert %s: %w (%d bytes, at most %d)", ev.DedupID(), ErrEventTooLarge, len(data), MaxEventBytes)
+	}
 	if _, err := p.spool.Append(data); err != nil {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
@@ -277,6 +295,10 @@ func (p *Publisher) drain(ctx context.Context) error {
 		}
 		if !ok {
 			return nil
+		}
+		if !p.nc.IsConnected() {
+			p.noteFailure(errNotConnected, e.Event.DedupID())
+			return errNotConnected
 		}
 		if err := p.send(ctx, e); err != nil {
 			p.retries.Add(1)

@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"net"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -433,30 +434,32 @@ func TestPublisherRefuses(t *testing.T) {
 	// Run is not started: the spool fills up.
 	bad := testEvent("bed-8", 0, Raised)
 	bad.ID = ""
+	huge := testEvent("bed-8", 9, Raised)
+	huge.Message = strings.Repeat("x", MaxEventBytes)
 	for _, tc := range []struct {
-		name string
-		ev   Event
-		want error
+		name    string
+		ev      Event
+		wantErr bool
+		wantIs  error // when set, the error must wrap it
 	}{
-		{"first", testEvent("bed-8", 1, Raised), nil},
-		{"second", testEvent("bed-8", 2, Raised), nil},
-		{"spool full", testEvent("bed-8", 3, Raised), ErrSpoolFull},
-		{"invalid", bad, nil},
+		{"first", testEvent("bed-8", 1, Raised), false, nil},
+		{"second", testEvent("bed-8", 2, Raised), false, nil},
+		{"spool full", testEvent("bed-8", 3, Raised), true, ErrSpoolFull},
+		{"invalid", bad, true, nil},
+		{"too large", huge, true, ErrEventTooLarge},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			err := p.Publish(context.Background(), tc.ev)
 			switch {
-			case tc.name == "invalid" && err == nil:
-				t.Error("invalid event accepted")
-			case tc.want != nil && !errors.Is(err, tc.want):
-				t.Errorf("error %v, want %v", err, tc.want)
-			case tc.want == nil && tc.name != "invalid" && err != nil:
-				t.Errorf("error %v", err)
+			case (err != nil) != tc.wantErr:
+				t.Errorf("error %v, want error %v", err, tc.wantErr)
+			case tc.wantIs != nil && !errors.Is(err, tc.wantIs):
+				t.Errorf("error %v, want one wrapping %v", err, tc.wantIs)
 			}
 		})
 	}
-	if st := p.Stats(); st.Refused != 2 || st.Depth != 2 {
-		t.Errorf("stats %+v, want refused 2, depth 2", st)
+	if st := p.Stats(); st.Refused != 3 || st.Depth != 2 {
+		t.Errorf("stats %+v, want refused 3, depth 2", st)
 	}
 }
 
