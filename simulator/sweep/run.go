@@ -252,6 +252,7 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 			nextTick += tickS
 		}
 	}
+	var b analyze.Breath
 	for {
 		smp, ok := sim.Next()
 		for _, le := range sim.TakeLinkEvents() {
@@ -277,7 +278,10 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		if rec != nil && smp.TimeS >= rec.fromS && smp.TimeS <= rec.toS {
 			rec.samples = append(rec.samples, smp)
 		}
-		if b, done := an.Push(smp); done {
+		if bb, done := an.Push(smp); done {
+			// b lives outside the loop: taking the address of a per-call
+			// variable would move every returned record to the heap.
+			b = bb
 			out.Breaths++
 			if rec != nil && b.EndS >= rec.fromS && b.StartS <= rec.toS {
 				rec.breaths = append(rec.breaths, b)

@@ -499,3 +499,29 @@ func TestStepSize(t *testing.T) {
 		})
 	}
 }
+
+// TestNoPerSampleAllocation checks that a patient's run allocates per
+// breath and per second (records, findings, events), not per sample: the
+// same patient at four times the sample rate allocates about as often.
+func TestNoPerSampleAllocation(t *testing.T) {
+	g := tinyGrid()
+	sets := []DetectorSet{DefaultDetectorSet()}
+	run := func(rateHz float64) (allocs float64, samples int64) {
+		sc := g.scenario(ModelLinear, 35, 50, g.Settings[0], g.Noise[0], 1)
+		sc.Timeline, sc.SampleRateHz = nil, rateHz
+		c := &Case{Name: "alloc", scenario: sc}
+		allocs = testing.AllocsPerRun(1, func() {
+			r, err := runCase(t.Context(), c, sets, analyze.DefaultConfig(), nil, nil)
+			if err != nil {
+				t.Fatal(err)
+			}
+			samples = r.Samples
+		})
+		return allocs, samples
+	}
+	a50, n50 := run(50)
+	a200, n200 := run(200)
+	if n200 < 4*n50-10 || a200 > 1.2*a50+200 {
+		t.Errorf("%v allocations for %d samples at 50 Hz, %v for %d at 200 Hz", a50, n50, a200, n200)
+	}
+}
