@@ -220,10 +220,16 @@ func (c StreamsConfig) AlertsStreamConfig() jetstream.StreamConfig {
 }
 
 // BreathsStreamConfig returns the JetStream configuration of the breaths
-// stream: file storage flushed asynchronously (a breath lost in a power cut
-// is acceptable, the alerts are not), age and size limits.
+// stream: file storage, age and size limits. On a single server it is
+// flushed asynchronously (a breath lost in a power cut is acceptable, the
+// alerts are not); JetStream refuses that mode on replicated streams, whose
+// copies on other nodes protect the records instead.
 func (c StreamsConfig) BreathsStreamConfig() jetstream.StreamConfig {
 	c = c.WithDefaults()
+	persist := jetstream.DefaultPersistMode
+	if c.Replicas == 1 {
+		persist = jetstream.AsyncPersistMode
+	}
 	return jetstream.StreamConfig{
 		Name:        c.Breaths,
 		Description: "trapline breath records",
@@ -234,7 +240,7 @@ func (c StreamsConfig) BreathsStreamConfig() jetstream.StreamConfig {
 		MaxAge:      jsMaxAge(c.BreathsMaxAge),
 		MaxBytes:    jsMaxBytes(c.BreathsMaxBytes),
 		Replicas:    c.Replicas,
-		PersistMode: jetstream.AsyncPersistMode,
+		PersistMode: persist,
 	}
 }
 

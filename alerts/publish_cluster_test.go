@@ -1,0 +1,147 @@
+package alerts
+
+import (
+	"fmt"
+	"net"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+)
+
+// freeLoopbackPort returns a port that was free a moment ago.
+func freeLoopbackPort(t testing.TB) int {
+	t.Helper()
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ln.Close()
+	return ln.Addr().(*net.TCPAddr).Port
+}
+
+// startTestCluster starts three JetStream servers in process, clustered over
+// loopback routes, and waits (bounded) for a meta leader with every node
+// current.
+func startTestCluster(t *testing.T) []*server.Server {
+	t.Helper()
+	const n = 3
+	routePorts := make([]int, n)
+	var routes []string
+	for i := range routePorts {
+		routePorts[i] = freeLoopbackPort(t)
+		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", routePorts[i]))
+	}
+	srvs := make([]*server.Server, n)
+	for i := range srvs {
+		s, err := server.NewServer(&server.Options{
+			ServerName: fmt.Sprintf("node-%d", i), Host: "127.0.0.1", Port: -1,
+			JetStream: true, StoreDir: t.TempDir(), SyncAlways: true,
+			JetStreamMaxStore: 256 << 20, JetStreamMaxMemory: 16 << 20,
+			Cluster: server.ClusterOpts{Name: "trapline-test", Host: "127.0.0.1", Port: routePorts[i]},
+			Routes:  server.RoutesFromStr(strings.Join(routes, ",")),
+			NoSigs:  true, NoLog: true,
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		s.Start()
+		srvs[i] = s
+		t.Cleanup(func() { s.Shutdown(); waitShutdown(t, s) })
+	}
+	for _, s := range srvs {
+		if !s.ReadyForConnections(10 * time.Second) {
+			t.Fatal("cluster node not ready")
+		}
+	}
+	waitFor(t, 30*time.Second, "a JetStream meta leader with every node current", func() bool {
+		leader := false
+		for _, s := range srvs {
+			if !s.Running() {
+				continue
+			}
+			leader = leader || s.JetStreamIsLeader()
+			if !s.JetStreamIsCurrent() {
+				return false
+			}
+		}
+		return leader
+	})
+	return srvs
+}
+
+func waitShutdown(t testing.TB, s *server.Server) {
+	done := make(chan struct{})
+	go func() { s.WaitForShutdown(); close(done) }()
+	select {
+	case <-done:
+	case <-time.After(30 * time.Second):
+		t.Error("cluster node did not shut down in 30 s")
+	}
+}
+
+// TestPublisherClusterLeaderLoss publishes to three-replica streams on a
+// three-node cluster and shuts the alerts stream's leader down in the
+// middle: the other two elect a new leader and every alert is stored
+// exactly once, in order.
+func TestPublisherClusterLeaderLoss(t *testing.T) {
+	srvs := startTestCluster(t)
+	var urls []string
+	for _, s := range srvs {
+		urls = append(urls, s.ClientURL())
+	}
+	nc, err := nats.Connect(strings.Join(urls, ","), nats.MaxReconnects(-1), nats.RetryOnFailedConnect(true),
+		nats.ReconnectWait(50*time.Millisecond), nats.ReconnectJitter(0, 0))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	js, _ := jetstream.New(nc)
+	cfg := testStreams("")
+	cfg.Replicas = 3
+	var lastErr string
+	waitFor(t, 30*time.Second, "R3 streams to be created", func() bool {
+		err := EnsureStreams(t.Context(), js, cfg)
+		if err != nil && err.Error() != lastErr {
+			lastErr = err.Error()
+			t.Log(err) // a new leader may need a moment; a lasting error shows here
+		}
+		return err == nil
+	})
+
+	p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg})
+	stop := runPublisher(t, p)
+	defer p.Close()
+	var want []string
+	raise := func(from, to int) {
+		for i := from; i < to; i++ {
+			ev := testEvent("bed-c", i, Raised)
+			if err := p.Publish(t.Context(), ev); err != nil {
+				t.Fatal(err)
+			}
+			want = append(want, ev.DedupID())
+		}
+	}
+	raise(0, 30)
+	waitFor(t, 30*time.Second, "first alerts stored", func() bool { return p.Depth() == 0 })
+	var leader *server.Server
+	waitFor(t, 30*time.Second, "the alerts stream leader", func() bool {
+		for _, s := range srvs {
+			if s.JetStreamIsStreamLeader(server.DEFAULT_GLOBAL_ACCOUNT, cfg.WithDefaults().Alerts) {
+				leader = s
+				return true
+			}
+		}
+		return false
+	})
+	leader.Shutdown()
+	waitShutdown(t, leader)
+	raise(30, 80)
+	waitFor(t, 60*time.Second, "spool to drain after the leader loss", func() bool { return p.Depth() == 0 })
+	stop()
+	checkExactlyOnce(t, storedAlerts(t, nc, cfg), want)
+	t.Logf("stats after leader loss: %+v", p.Stats())
+}
