@@ -139,7 +139,13 @@ func since(t0, t float64) float64 { return max(t-t0, 0) }
 
 // Update takes one finding, with the wall time at which it was made, and
 // returns the alert events it causes (often none).
+//
+// A finding without a finite time is ignored: the lifecycle could not time
+// it, and its event could not be encoded.
 func (l *Lifecycle) Update(f analyze.Finding, wall time.Time) []Event {
+	if math.IsNaN(f.TimeS) || math.IsInf(f.TimeS, 0) {
+		return nil
+	}
 	a := l.conds[f.Condition]
 	if a == nil {
 		a = &alarm{condition: f.Condition, cc: l.cfg.For(f.Condition)}
@@ -236,7 +242,7 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 		Type: "alert", Schema: EventSchema,
 		ID: a.id, Stream: l.stream, Condition: a.condition, Class: string(f.Class),
 		Priority: a.priority, State: st, Time: wall.UTC(), TS: math.Round(f.TimeS*1000) / 1000,
-		Evidence: maps.Clone(f.Evidence), Message: msg, Predict: maps.Clone(f.Predict),
+		Evidence: finite(f.Evidence), Message: msg, Predict: finite(f.Predict),
 	}
 	if e.Evidence == nil {
 		e.Evidence = map[string]float64{}
@@ -248,6 +254,17 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 	a.used[st] = true
 	a.lastOut = e
 	return e
+}
+
+// finite copies m without its non-finite values, which JSON cannot carry;
+// nil stays nil.
+func finite(m map[string]float64) map[string]float64 {
+	if m == nil {
+		return nil
+	}
+	out := maps.Clone(m)
+	maps.DeleteFunc(out, func(_ string, v float64) bool { return math.IsNaN(v) || math.IsInf(v, 0) })
+	return out
 }
 
 // Ack acknowledges the alarm with id at wall time and returns the events

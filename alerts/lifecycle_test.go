@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"math"
 	"strings"
 	"testing"
 	"time"
@@ -258,5 +259,27 @@ func TestLifecyclePerConditionOverride(t *testing.T) {
 	evs = l.Update(tf, epoch.Add(2*time.Second))
 	if len(evs) != 1 || evs[0].BreathSeq != nil || evs[0].Priority != Medium {
 		t.Fatalf("signal-lost: %+v (want null breath_seq and the fixed medium priority)", evs)
+	}
+}
+
+func TestLifecycleRejectsWhatJSONCannotCarry(t *testing.T) {
+	l := NewLifecycle("bed-7", DefaultLifecycleConfig())
+	f := finding(0, true, lo)
+	f.TimeS = math.NaN()
+	if evs := l.Update(f, epoch); len(evs) != 0 {
+		t.Fatalf("finding without a time raised %v", evs)
+	}
+	f = finding(1, true, lo)
+	f.Evidence["bad"] = math.Inf(1)
+	f.Predict["worse"] = math.NaN()
+	evs := l.Update(f, epoch)
+	if len(evs) != 1 {
+		t.Fatalf("events %v", evs)
+	}
+	if _, err := evs[0].Marshal(); err != nil {
+		t.Fatalf("event does not encode: %v", err)
+	}
+	if _, ok := evs[0].Evidence["bad"]; ok || evs[0].Evidence["peepi_cmh2o"] != 4.7 {
+		t.Errorf("evidence %v: want the finite values only", evs[0].Evidence)
 	}
 }

@@ -120,12 +120,12 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 		Evidence: map[string]float64{
 			"positive_breaths": float64(count),
 			"window_breaths":   float64(d.n),
-			"balance_ml":       detRound(balance, 1),
 		},
 	}
 	if math.IsNaN(f.TimeS) {
 		f.TimeS = b.StartS
 	}
+	detPut(f.Evidence, "balance_ml", balance, 1)
 	detPut(f.Evidence, "eef_lpm", cur.eefLPM, 2)
 	detPut(f.Evidence, "te_over_tau", cur.teOvTau, 3)
 	detPut(f.Evidence, "tau_s", cur.tauS, 3)
@@ -164,11 +164,12 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	// and the rate that leaves it at the same inspiratory time.
 	if cur.tauS > 0 && cur.vtML > 0 {
 		te := TeForTrapped(cur.vtML, cur.tauS, cfg.TargetTrappedML)
-		if !math.IsNaN(te) {
+		if !math.IsNaN(te) && !math.IsInf(te, 0) {
 			tgt := fmt.Sprintf("%g", cfg.TargetTrappedML)
-			f.Predict = map[string]float64{"te_s_for_trapped_below_" + tgt + "ml": detRound(te, 2)}
+			f.Predict = map[string]float64{}
+			detPut(f.Predict, "te_s_for_trapped_below_"+tgt+"ml", te, 2)
 			if cur.tiS > 0 {
-				f.Predict["rr_bpm_for_trapped_below_"+tgt+"ml"] = detRound(60/(cur.tiS+te), 1)
+				detPut(f.Predict, "rr_bpm_for_trapped_below_"+tgt+"ml", 60/(cur.tiS+te), 1)
 			}
 		}
 	}
@@ -311,6 +312,9 @@ func detPut(m map[string]float64, key string, v float64, prec int) {
 
 // detRound rounds v to prec decimals.
 func detRound(v float64, prec int) float64 {
+	if math.Abs(v) > 1e12 || math.IsNaN(v) {
+		return v // beyond any precision that matters, and v·p could overflow
+	}
 	p := math.Pow(10, float64(prec))
 	return math.Round(v*p) / p
 }

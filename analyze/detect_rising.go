@@ -93,7 +93,7 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	count := d.n - first
 	spanS := t - d.at(first).tS
 	f.Evidence["window_breaths"] = float64(count)
-	f.Evidence["window_s"] = detRound(spanS, 1)
+	detPut(f.Evidence, "window_s", spanS, 1)
 	if count < cfg.MinBreaths || spanS < cfg.WindowS/2 {
 		d.present = false
 		f.Message = fmt.Sprintf("not enough history for a trend (%d breaths over %.0f s)", count, spanS)

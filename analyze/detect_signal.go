@@ -228,7 +228,8 @@ func (s *Signal) Tick(nowS float64, dst []Finding) []Finding {
 	silence := nowS - s.lastS
 	s.lost = silence >= c.LostAfterS
 	lost := Finding{Condition: CondSignalLost, Class: Technical, TimeS: nowS, BreathSeq: -1, Present: s.lost,
-		Evidence: map[string]float64{"silence_s": detRound(max(silence, 0), 1), "lost_after_s": c.LostAfterS}}
+		Evidence: map[string]float64{"lost_after_s": c.LostAfterS}}
+	detPut(lost.Evidence, "silence_s", max(silence, 0), 1)
 	if s.lost {
 		lost.Severity = SeverityMedium
 		lost.Message = fmt.Sprintf("no samples for %.0f s", silence)
@@ -251,7 +252,8 @@ func (s *Signal) Tick(nowS float64, dst []Finding) []Finding {
 	}
 	s.gaps = keep
 	gaps := Finding{Condition: CondSampleGaps, Class: Technical, TimeS: nowS, BreathSeq: -1,
-		Evidence: map[string]float64{"gaps_last_min": float64(len(s.gaps)), "longest_gap_s": detRound(longest, 3)}}
+		Evidence: map[string]float64{"gaps_last_min": float64(len(s.gaps))}}
+	detPut(gaps.Evidence, "longest_gap_s", longest, 3)
 	gaps.Present = len(s.gaps) >= c.GapsPerMin || longest >= c.GapS
 	if gaps.Present {
 		gaps.Severity = SeverityLow
@@ -276,7 +278,7 @@ func (s *Signal) Tick(nowS float64, dst []Finding) []Finding {
 		Evidence: map[string]float64{"bad": float64(bad), "decoded": float64(all)}}
 	if all > 0 {
 		rate := float64(bad) / float64(all)
-		dec.Evidence["error_rate"] = detRound(rate, 4)
+		detPut(dec.Evidence, "error_rate", rate, 4)
 		dec.Present = rate >= c.ErrorRate && bad >= uint64(c.ErrorMinCount)
 	}
 	if dec.Present {

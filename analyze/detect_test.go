@@ -420,3 +420,42 @@ func TestDetMedianMatchesSort(t *testing.T) {
 		}
 	}
 }
+
+// TestDetectorsSurviveHostileBreaths feeds breaths whose values are drawn
+// from NaN, ±Inf, zero, negatives and huge numbers: no panic, and every
+// number a finding carries is finite, because JSON has no NaN or Inf and an
+// alert that cannot be encoded could not be delivered.
+func TestDetectorsSurviveHostileBreaths(t *testing.T) {
+	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 0, -1, 1e308, -1e308, 5e-324, 3, 600}
+	rng := rand.New(rand.NewPCG(1, 2))
+	d := NewDetectors(DefaultDetectorConfig())
+	base := case1.breath(0, 0)
+	for i := range 20000 {
+		b := base
+		b.Seq = i
+		ts := float64(i) * 2.5
+		if rng.IntN(50) == 0 {
+			ts = specials[rng.IntN(len(specials))]
+		}
+		b.StartS, b.EndS = ts, ts+2.5
+		for _, p := range []*float64{&b.TiS, &b.TeS, &b.VtiML, &b.VteML, &b.PeakCmH2O, &b.PlateauCmH2O, &b.PEEPCmH2O,
+			&b.PeakInspFlowLPM, &b.EndExpFlowLPM, &b.TauS, &b.TeOverTau, &b.RCmH2OSPerL, &b.CMLPerCmH2O, &b.FitR2,
+			&b.TrappedML, &b.PEEPiCmH2O, &b.TrappedEEFML, &b.PEEPiEEFCmH2O, &b.PEEPiFitCmH2O} {
+			if rng.IntN(4) == 0 {
+				*p = specials[rng.IntN(len(specials))]
+			}
+		}
+		for _, f := range d.Breath(&b, nil) {
+			for k, v := range f.Evidence {
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					t.Fatalf("breath %d: %s evidence %s = %v", i, f.Condition, k, v)
+				}
+			}
+			for k, v := range f.Predict {
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					t.Fatalf("breath %d: %s predict %s = %v", i, f.Condition, k, v)
+				}
+			}
+		}
+	}
+}

@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"math"
 	"time"
 
 	"trapline/alerts"
@@ -130,6 +131,9 @@ func (p *pipeline) process(ss []ingest.Sample, em emitter) {
 	}
 	for i := range ss {
 		s := ss[i]
+		if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
+			continue // no place on the time axis; the analyzer skips it too
+		}
 		if p.offline() {
 			// Make the ticks the daemon would have made, once a second of
 			// stream time, through gaps too.
