@@ -85,7 +85,7 @@ type httpServer struct {
 // newHTTPServer listens at once, so that a port in use fails the start of
 // the daemon with a clear message instead of a log line later.
 func newHTTPServer(addr string, m *metrics, ready *readiness, log zerolog.Logger) (*httpServer, error) {
-	ln, err := listenTCP(addr, "http.addr")
+	ln, err := listenTCP(addr, "http.listen")
 	if err != nil {
 		return nil, fmt.Errorf("http: %w", err)
 	}

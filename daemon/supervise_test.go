@@ -300,8 +300,8 @@ func TestHTTPHealthReadyMetrics(t *testing.T) {
 
 	// A second server on the same port fails with a clear message.
 	_, err = newHTTPServer(h.Addr(), m, ready, zerolog.Nop())
-	if !errors.Is(err, ErrPortInUse) || !strings.Contains(err.Error(), "http.addr") {
-		t.Errorf("second listener: %v, want ErrPortInUse naming http.addr", err)
+	if !errors.Is(err, ErrPortInUse) || !strings.Contains(err.Error(), "http.listen") {
+		t.Errorf("second listener: %v, want ErrPortInUse naming http.listen", err)
 	}
 	cancel()
 	select {
