@@ -105,6 +105,7 @@ func (a *app) rootCommand() *cobra.Command {
 	root.AddCommand(
 		a.analyzeCommand(),
 		a.predictCommand(),
+		a.runCommand(),
 		a.watchCommand(),
 		a.simCommand(),
 		a.sweepCommand(),

@@ -56,10 +56,10 @@ type bulletinSink interface {
 
 // streamSpec is what the runner needs to start one stream.
 type streamSpec struct {
-	ID         string
-	OpenSource func() (ingest.Source, error)
-	// NewPipeline builds fresh analysis state; a restart begins anew.
-	NewPipeline func() (streamPipeline, error)
+	ID string
+	// Open returns the stream's source and a fresh pipeline; a restart
+	// begins anew with both.
+	Open func() (ingest.Source, streamPipeline, error)
 	// QueueLen bounds the batches waiting between source and analysis.
 	QueueLen int
 	// TickEvery is the period of Tick.
@@ -99,6 +99,9 @@ type stream struct {
 	acks  chan ackRequest
 
 	dropEpisode bool // touched by the source goroutine only
+	// activeIDs are the alarms raised and not cleared; touched by the
+	// analysis goroutine only.
+	activeIDs map[string]struct{}
 }
 
 func newStream(spec streamSpec, log zerolog.Logger, m *metrics, a alertSink, b bulletinSink) *stream {
@@ -183,16 +186,13 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 // the pipeline and returns. That gives the shutdown order inside a stream:
 // the source stops first, then analysis finishes what was read.
 func (s *stream) runOnce(ctx context.Context) error {
-	src, err := s.spec.OpenSource()
+	src, pl, err := s.spec.Open()
 	if err != nil {
-		return fmt.Errorf("open source: %w", err)
-	}
-	pl, err := s.spec.NewPipeline()
-	if err != nil {
-		return fmt.Errorf("new pipeline: %w", err)
+		return fmt.Errorf("open: %w", err)
 	}
 	s.m.addSource(s.spec.ID, src.Stats)
 	// The new pipeline starts with no alarm raised.
+	s.activeIDs = map[string]struct{}{}
 	s.active.Store(0)
 	s.m.alertsActive.WithLabelValues(s.spec.ID).Set(0)
 
@@ -338,13 +338,16 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
 		}
 		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
-		switch ev.State {
-		case alerts.Raised:
-			s.active.Add(1)
-		case alerts.Cleared:
-			s.active.Add(-1)
+		if ev.Supersedes != "" {
+			delete(s.activeIDs, ev.Supersedes)
 		}
-		s.m.alertsActive.WithLabelValues(s.spec.ID).Set(float64(s.active.Load()))
+		if ev.State == alerts.Cleared {
+			delete(s.activeIDs, ev.ID)
+		} else {
+			s.activeIDs[ev.ID] = struct{}{}
+		}
+		s.active.Store(int64(len(s.activeIDs)))
+		s.m.alertsActive.WithLabelValues(s.spec.ID).Set(float64(len(s.activeIDs)))
 	}
 	for i := range out.Breaths {
 		b := &out.Breaths[i]

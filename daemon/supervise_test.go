@@ -162,25 +162,26 @@ func TestFailingStreamRestartsWithoutDisturbingOthers(t *testing.T) {
 	var opens atomic.Int32
 	var flushed atomic.Bool
 	good := newStream(streamSpec{
-		ID:          "bed-1",
-		OpenSource:  func() (ingest.Source, error) { return &fakeSource{period: 5 * time.Millisecond}, nil },
-		NewPipeline: func() (streamPipeline, error) { return &countingPipeline{stream: "bed-1", flushed: &flushed}, nil },
-		Backoff:     quick,
+		ID: "bed-1",
+		Open: func() (ingest.Source, streamPipeline, error) {
+			return &fakeSource{period: 5 * time.Millisecond}, &countingPipeline{stream: "bed-1", flushed: &flushed}, nil
+		},
+		Backoff: quick,
 	}, log, m, sink, sink)
 	bad := newStream(streamSpec{
 		ID: "bed-2",
-		OpenSource: func() (ingest.Source, error) {
+		Open: func() (ingest.Source, streamPipeline, error) {
 			opens.Add(1)
-			return &fakeSource{period: 5 * time.Millisecond, failAfter: 2}, nil
+			return &fakeSource{period: 5 * time.Millisecond, failAfter: 2}, &countingPipeline{stream: "bed-2"}, nil
 		},
-		NewPipeline: func() (streamPipeline, error) { return &countingPipeline{stream: "bed-2"}, nil },
-		Backoff:     quick,
+		Backoff: quick,
 	}, log, m, sink, sink)
 	panicky := newStream(streamSpec{
-		ID:          "bed-3",
-		OpenSource:  func() (ingest.Source, error) { return &fakeSource{period: 5 * time.Millisecond}, nil },
-		NewPipeline: func() (streamPipeline, error) { return panicPipeline{}, nil },
-		Backoff:     quick,
+		ID: "bed-3",
+		Open: func() (ingest.Source, streamPipeline, error) {
+			return &fakeSource{period: 5 * time.Millisecond}, panicPipeline{}, nil
+		},
+		Backoff: quick,
 	}, log, m, sink, sink)
 
 	ctx, cancel := context.WithCancel(t.Context())

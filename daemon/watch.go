@@ -277,6 +277,9 @@ func (v *watchView) handle(kind string, data []byte) {
 		}
 		v.seen[ev.DedupID()] = true
 		s := v.stream(ev.Stream)
+		if ev.Supersedes != "" {
+			delete(s.active, ev.Supersedes)
+		}
 		if ev.State == alerts.Cleared {
 			delete(s.active, ev.ID)
 		} else {

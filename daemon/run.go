@@ -1,0 +1,289 @@
+package daemon
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"strings"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/rs/zerolog"
+	"github.com/spf13/cobra"
+	"golang.org/x/sync/errgroup"
+
+	"trapline/alerts"
+	"trapline/config"
+)
+
+func (a *app) runCommand() *cobra.Command {
+	var cfgPath string
+	cmd := &cobra.Command{
+		Use:   "run",
+		Short: "Run the daemon: read every configured stream, analyse breaths, deliver alerts to NATS",
+		Long: "run reads the streams of the configuration file, analyses them breath by breath and publishes\n" +
+			"breath records, status heartbeats and alerts on NATS (an embedded server unless nats.url is\n" +
+			"set). Alerts go through a local spool and JetStream and are never lost. SIGINT or SIGTERM\n" +
+			"stops it cleanly within shutdown_timeout; a second signal stops it at once.\n\n" + Caution,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			cfg, err := config.Load(cfgPath, cmd.Flags())
+			if err != nil {
+				return &UsageError{Err: err}
+			}
+			if len(cfg.Streams) == 0 {
+				where := "the configuration"
+				if cfgPath != "" {
+					where = cfgPath
+				}
+				return usageErrorf("no stream configured: add at least one entry under streams: in %s "+
+					"(see config/trapline.example.yaml), or try `trapline demo`", where)
+			}
+			log := a.log
+			if !cmd.Flags().Changed("log-level") && cfg.Log.Level != "" && cfg.Log.Level != a.logLevel {
+				if l, err := newLogger(a.stderr, cfg.Log.Level); err == nil {
+					log = l
+				}
+			}
+			d, err := newDaemon(cfg, log, daemonOptions{})
+			if err != nil {
+				return err
+			}
+			return d.Run(cmd.Context())
+		},
+	}
+	f := cmd.Flags()
+	f.StringVarP(&cfgPath, "config", "c", "", "configuration file (YAML, TOML or JSON)")
+	f.String("data-dir", "", "directory of the JetStream store and the alert spool (data_dir)")
+	f.String("nats-url", "", "connect to this NATS server instead of running the embedded one (nats.url)")
+	f.String("http-listen", "", "address of /healthz, /readyz and /metrics (http.listen)")
+	return cmd
+}
+
+// daemonOptions are hooks for callers that run the daemon in-process (the
+// demo and the tests).
+type daemonOptions struct {
+	// Ready, when set, is called once NATS, the streams and HTTP have been
+	// started.
+	Ready func(runInfo)
+	// TickEvery overrides the period of the streams' time-based checks.
+	TickEvery time.Duration
+}
+
+// runInfo tells an in-process caller where the daemon can be reached.
+type runInfo struct {
+	// NATSURL is the client URL of the NATS server in use.
+	NATSURL string
+	// HTTPAddr is the address of /healthz, /readyz and /metrics, or "".
+	HTTPAddr string
+}
+
+// daemon is one trapline process: its streams and the parts they share.
+type daemon struct {
+	cfg     *config.Config
+	log     zerolog.Logger
+	opts    daemonOptions
+	m       *metrics
+	ready   *readiness
+	subj    alerts.Subjects
+	nc      *nats.Conn
+	serving bool // the HTTP server runs (and closes its listener itself)
+	streams []*stream
+	byToken map[string]*stream // ack subject token → stream
+}
+
+// newDaemon checks what can be checked before anything starts.
+func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*daemon, error) {
+	d := &daemon{
+		cfg: cfg, log: log, opts: opts,
+		m:       newMetrics(),
+		ready:   newReadiness(),
+		subj:    alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix},
+		byToken: map[string]*stream{},
+	}
+	return d, nil
+}
+
+// Run starts NATS, the publishers, the streams and HTTP, and runs until ctx
+// is cancelled. Shutdown goes in the order of the data: the sources stop,
+// analysis finishes what was read (its alerts go to the spool), then the
+// alert publisher drains to JetStream for at most shutdown_timeout, then the
+// bulletin is flushed, the connection drained and the embedded server
+// stopped. Whatever is still in the spool is sent at the next start.
+func (d *daemon) Run(ctx context.Context) error {
+	cfg := d.cfg
+	var httpSrv *httpServer
+	if cfg.HTTP.Listen != "" {
+		h, err := newHTTPServer(cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
+		if err != nil {
+			return err
+		}
+		httpSrv = h
+		// Until Run serves it, the listener is ours to close.
+		defer func() {
+			if !d.serving {
+				h.ln.Close()
+			}
+		}()
+	}
+
+	b, err := openBus(cfg, d.log)
+	if err != nil {
+		return err
+	}
+	defer b.Close()
+	d.nc = b.nc
+
+	del, err := openDelivery(cfg, b, d.log)
+	if err != nil {
+		return err
+	}
+	// Close after Run has returned releases the spool; what is left in it
+	// is sent at the next start.
+	defer del.pub.Close()
+	d.m.setDelivery(del.pub.Depth, b.nc.IsConnected, del.bull.Dropped)
+	d.ready.set("nats", func() error {
+		if !b.nc.IsConnected() {
+			return fmt.Errorf("not connected (%s)", b.nc.Status())
+		}
+		return nil
+	})
+	d.ready.set("jetstream", del.streamsReady)
+
+	for _, sc := range cfg.Streams {
+		spec, err := d.streamSpec(sc)
+		if err != nil {
+			return err
+		}
+		s := newStream(spec, d.log, d.m, del, del)
+		d.streams = append(d.streams, s)
+		d.byToken[alerts.SubjectToken(sc.ID)] = s
+		d.ready.set("stream "+sc.ID, s.ready)
+	}
+
+	ackSub, err := b.nc.Subscribe(d.subj.All(alerts.KindAck), d.handleAck)
+	if err != nil {
+		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
+	}
+
+	g, gctx := errgroup.WithContext(ctx)
+	// The publishers run on a context of their own that ends only after
+	// every stream has stopped, so that alerts found while the streams wind
+	// down still go out.
+	pubCtx, stopPublishers := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopPublishers()
+	g.Go(func() error { return del.pub.Run(pubCtx) })
+	g.Go(func() error { return del.ensureStreams(gctx, b.nc) })
+	g.Go(func() error { return del.bull.Run(pubCtx) })
+	g.Go(func() error {
+		defer stopPublishers()
+		sg := new(errgroup.Group)
+		for _, s := range d.streams {
+			sg.Go(func() error { return s.Run(gctx) })
+		}
+		err := sg.Wait()
+		_ = ackSub.Unsubscribe()
+		return err
+	})
+	if httpSrv != nil {
+		d.serving = true
+		g.Go(func() error { return httpSrv.Run(gctx) })
+	}
+
+	info := runInfo{NATSURL: b.url}
+	if httpSrv != nil {
+		info.HTTPAddr = httpSrv.Addr()
+	}
+	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.url).Str("http", info.HTTPAddr).
+		Bool("embedded_nats", b.embedded()).Msg("trapline running")
+	if d.opts.Ready != nil {
+		d.opts.Ready(info)
+	}
+
+	done := make(chan error, 1)
+	go func() { done <- g.Wait() }()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-ctx.Done():
+	}
+	d.log.Info().Dur("limit", cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
+	// The publisher's own drain is bounded by shutdown_timeout; the margin
+	// covers the sources and analysis before it.
+	limit := cfg.ShutdownTimeout + 5*time.Second
+	t := time.NewTimer(limit)
+	defer t.Stop()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-t.C:
+		return fmt.Errorf("shutdown did not finish within %v; pending alerts stay in the spool %s", limit, cfg.SpoolDir())
+	}
+}
+
+// finish logs the end of the run.
+func (d *daemon) finish(err error) error {
+	if err != nil {
+		return err
+	}
+	d.log.Info().Msg("trapline stopped")
+	return nil
+}
+
+// ackRequestBody is the body of an acknowledgement request on
+// <prefix>.ack.<stream>.
+type ackRequestBody struct {
+	ID string `json:"id"`
+	By string `json:"by"`
+}
+
+// ackReply is the answer to an acknowledgement request.
+type ackReply struct {
+	OK    bool   `json:"ok"`
+	Error string `json:"error,omitempty"`
+}
+
+// handleAck answers an acknowledgement request: {"id":"...","by":"..."} →
+// {"ok":true} or {"ok":false,"error":"..."}. The acknowledged event itself
+// goes out on the alert subject like every other state change.
+func (d *daemon) handleAck(m *nats.Msg) {
+	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
+	reply := func(err error) {
+		r := ackReply{OK: err == nil}
+		result := "ok"
+		if err != nil {
+			r.Error = err.Error()
+			result = "error"
+		}
+		d.m.acks.WithLabelValues(tok, result).Inc()
+		if m.Reply == "" {
+			return
+		}
+		b, _ := json.Marshal(r)
+		if rerr := m.Respond(b); rerr != nil {
+			d.log.Warn().Err(rerr).Str("subject", m.Subject).Msg("ack reply failed")
+		}
+	}
+	s := d.byToken[tok]
+	if s == nil {
+		reply(fmt.Errorf("no stream %q here", tok))
+		return
+	}
+	var req ackRequestBody
+	if err := json.Unmarshal(m.Data, &req); err != nil {
+		reply(fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
+		return
+	}
+	if req.ID == "" {
+		reply(errors.New("bad ack request: empty id"))
+		return
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	defer cancel()
+	err := s.ack(ctx, req.ID, req.By)
+	if err == nil {
+		d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+	}
+	reply(err)
+}
