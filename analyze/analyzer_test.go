@@ -61,3 +61,29 @@ func TestCheckCase1(t *testing.T) {
 		}
 	}
 }
+
+// TestOcclusionMethod checks the end-inspiratory pause values against the
+// linear single-compartment closed form: with constant flow before the
+// pause, (Ppeak − Pplat)/V' = R and VT/(Pplat − total PEEP) = C (occlusion
+// method, Bates, Rossi, Milic-Emili, J Appl Physiol 1985), and the plateau
+// equals PEEP + (V_ee + VT)/C (derived).
+func TestOcclusionMethod(t *testing.T) {
+	m := linearVC{R: 20, C: 0.05, PEEP: 8, VT: 0.5, Rate: 15, TFlow: 0.6, Pause: 0.4, Fs: 500, Offset: 0.001, Steady: true}
+	bs := run(DefaultConfig(), m.samples(6))
+	if len(bs) < 4 {
+		t.Fatalf("%d breaths", len(bs))
+	}
+	for _, b := range bs {
+		tr := m.truthOf(int(math.Round(b.StartS / m.period())))
+		if !b.HasFlag(FlagPause) {
+			t.Fatalf("breath %d: flags %v, want pause", b.Seq, b.Flags)
+		}
+		if !near(b.ROccCmH2OSPerL, 20, 0.2) || !near(b.CStatMLPerCmH2O, 50, 0.5) || !near(b.PlateauCmH2O, tr.Pplat, 0.01) {
+			t.Errorf("breath %d: R_occ %.3f C_stat %.3f Pplat %.3f, want 20, 50, %.3f", b.Seq, b.ROccCmH2OSPerL, b.CStatMLPerCmH2O, b.PlateauCmH2O, tr.Pplat)
+		}
+		// Ti includes the pause; Te is the rest of the cycle.
+		if !near(b.TiS, 1.0, 0.004) || !near(b.TeS, 3.0, 0.004) {
+			t.Errorf("breath %d: Ti %.3f Te %.3f, want 1.0 and 3.0", b.Seq, b.TiS, b.TeS)
+		}
+	}
+}

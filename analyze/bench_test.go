@@ -13,6 +13,7 @@ func BenchmarkAnalyzerPush(b *testing.B) {
 	a := NewAnalyzer("bench", DefaultConfig())
 	b.ReportAllocs()
 	b.ResetTimer()
+	cpu0 := cpuTime()
 	n := 0
 	for i := 0; i < b.N; i++ {
 		k := i % len(in)
@@ -22,6 +23,7 @@ func BenchmarkAnalyzerPush(b *testing.B) {
 			n++
 		}
 	}
+	reportCPU(b, cpu0, b.N)
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds()/1e6, "Msamples/s")
 	if b.N > 10*len(in) && n == 0 {
 		b.Fatal("no breaths")

@@ -279,3 +279,42 @@ func TestOtherModels(t *testing.T) {
 		}
 	}
 }
+
+// TestISOTestRows runs the volume-control test-lung conditions of ISO
+// 80601-2-12 and checks the monitored values against the simulator's ground
+// truth within the standard's display tolerances: expired volume ±(4 mL +
+// 15 %), airway pressure ±(2 hPa + 4 %). The rows and the tolerances are
+// recalled from memory (REFERENCE §7), not verified against the text of
+// the standard.
+func TestISOTestRows(t *testing.T) {
+	const hPa = 1.019716 // cmH2O per hPa
+	rows := []struct{ cMLPerHPa, rHPaSPerL, vtML, rate, ti, peepHPa float64 }{
+		{50, 5, 500, 20, 1, 5}, {50, 20, 500, 12, 1, 10}, {20, 5, 500, 20, 1, 5}, {20, 20, 500, 20, 1, 10},
+		{20, 20, 300, 20, 1, 5}, {20, 50, 300, 12, 1, 10}, {10, 50, 300, 20, 1, 5}, {10, 20, 200, 20, 1, 10},
+	}
+	for _, r := range rows {
+		name := fmt.Sprintf("C%g_R%g_VT%g_f%g_PEEP%g", r.cMLPerHPa, r.rHPaSPerL, r.vtML, r.rate, r.peepHPa)
+		t.Run(name, func(t *testing.T) {
+			st := simulator.Steady{RCmH2OSPerL: r.rHPaSPerL * hPa, CMLPerCmH2O: r.cMLPerHPa / hPa, VtML: r.vtML,
+				InspTimeS: r.ti, RateBPM: r.rate, PEEPCmH2O: r.peepHPa * hPa, SampleRateHz: 100, DurationS: 60,
+				PressureNoiseCmH2O: 0.3, FlowNoiseLPM: 1, Seed: 5}
+			ps := simulate(t, st.Scenario())
+			if len(ps) < 8 {
+				t.Fatalf("%d breaths matched", len(ps))
+			}
+			for _, p := range ps {
+				if d, tol := math.Abs(p.b.VteML-p.tr.VteML), 4+0.15*p.tr.VteML; d > tol {
+					t.Errorf("breath %d: VTe %.1f mL, truth %.1f (tolerance %.1f)", p.b.Seq, p.b.VteML, p.tr.VteML, tol)
+				}
+				for _, c := range []struct {
+					name      string
+					got, want float64
+				}{{"Ppeak", p.b.PeakCmH2O, p.tr.PeakCmH2O}, {"PEEP", p.b.PEEPCmH2O, p.tr.PEEPCmH2O}} {
+					if tol := 2*hPa + 0.04*c.want; math.Abs(c.got-c.want) > tol {
+						t.Errorf("breath %d: %s %.2f cmH2O, truth %.2f (tolerance %.2f)", p.b.Seq, c.name, c.got, c.want, tol)
+					}
+				}
+			}
+		})
+	}
+}
