@@ -12,10 +12,15 @@ import (
 	"trapline/simulator"
 )
 
-// BenchmarkAnalyzeText measures what `trapline analyze` does per sample:
-// text decoding of the sample line format v1 plus breath analysis. One op is
-// one sample.
-func BenchmarkAnalyzeText(b *testing.B) {
+// BenchmarkAnalyzeText measures text decoding of the sample line format v1
+// plus breath analysis, per sample (one op is one sample).
+func BenchmarkAnalyzeText(b *testing.B) { benchText(b, false) }
+
+// BenchmarkAnalyzeTextAlerts measures what `trapline analyze` does per
+// sample: decoding, analysis, detectors and the alarm lifecycle.
+func BenchmarkAnalyzeTextAlerts(b *testing.B) { benchText(b, true) }
+
+func benchText(b *testing.B, pipeline bool) {
 	sim, err := simulator.New(simulator.Steady{RCmH2OSPerL: 20, CMLPerCmH2O: 50, VtML: 500, FlowLPM: 50,
 		RateBPM: 20, PEEPCmH2O: 5, SampleRateHz: 200, DurationS: 300, PressureNoiseCmH2O: 0.3, FlowNoiseLPM: 1}.Scenario())
 	if err != nil {
@@ -42,7 +47,16 @@ func BenchmarkAnalyzeText(b *testing.B) {
 	done := 0
 	for done < b.N {
 		o := newOffline(analyze.DefaultConfig(), io.Discard, false)
-		dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{}, o.sample)
+		emit := o.sample
+		an := analyze.NewAnalyzer(ingest.DefaultStream, analyze.DefaultConfig())
+		if !pipeline {
+			emit = func(_ string, s ingest.Sample) {
+				if _, ok := an.Push(s); ok {
+					o.breaths++
+				}
+			}
+		}
+		dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{}, emit)
 		if err != nil {
 			b.Fatal(err)
 		}
