@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"net"
 	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"sync"
@@ -55,7 +56,15 @@ type embeddedNATS struct {
 	srv  *server.Server
 	opts embeddedNATSOptions
 	log  zerolog.Logger
+	lock *os.File // held on the store directory while the server runs
 }
+
+// errStoreLocked reports a JetStream directory in use by another embedded
+// server (another trapline on the same data directory).
+var errStoreLocked = errors.New("JetStream store in use by another trapline process")
+
+// storeLockName is the lock file in the store directory.
+const storeLockName = "trapline.lock"
 
 // defaultNATSMaxStore and defaultNATSMaxMemory cap JetStream when no limit
 // is configured.
@@ -126,6 +135,16 @@ func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedN
 	if err := os.MkdirAll(opts.StoreDir, 0o750); err != nil {
 		return nil, fmt.Errorf("embedded nats store %s: %w", opts.StoreDir, err)
 	}
+	lock, err := lockStore(filepath.Join(opts.StoreDir, storeLockName))
+	if err != nil {
+		return nil, fmt.Errorf("embedded nats store %s: %w", opts.StoreDir, err)
+	}
+	started := false
+	defer func() {
+		if !started {
+			_ = lock.Close()
+		}
+	}()
 	log = log.With().Str("component", "nats-server").Logger()
 
 	so := &server.Options{
@@ -187,7 +206,7 @@ func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedN
 	sl := &serverLogger{log: log}
 	srv.SetLoggerV2(sl, log.GetLevel() <= zerolog.DebugLevel, log.GetLevel() <= zerolog.TraceLevel, false)
 	srv.Start()
-	e := &embeddedNATS{srv: srv, opts: opts, log: log}
+	e := &embeddedNATS{srv: srv, opts: opts, log: log, lock: lock}
 	if !srv.ReadyForConnections(10 * time.Second) {
 		e.shutdown(5 * time.Second)
 		return nil, fmt.Errorf("embedded nats: not ready after 10 s%s", sl.fatalSuffix())
@@ -203,6 +222,7 @@ func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedN
 		ev = ev.Str("url", e.URL())
 	}
 	ev.Msg("embedded NATS server ready")
+	started = true
 	return e, nil
 }
 
@@ -287,6 +307,11 @@ func (e *embeddedNATS) shutdown(timeout time.Duration) error {
 	go func() { e.srv.WaitForShutdown(); close(done) }()
 	select {
 	case <-done:
+		// The store is free for the next server only once this one
+		// has let go of it.
+		if e.lock != nil {
+			_ = e.lock.Close()
+		}
 		return nil
 	case <-time.After(timeout):
 		return fmt.Errorf("embedded nats: not shut down after %v", timeout)

@@ -114,6 +114,45 @@ func TestEmbeddedNATSPortInUse(t *testing.T) {
 	}
 }
 
+// TestEmbeddedNATSStoreLocked: nats-server would let a second server open
+// the same JetStream directory; trapline refuses, and frees it on shutdown.
+func TestEmbeddedNATSStoreLocked(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "nats")
+	first, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
+	if err != nil {
+		t.Fatal(err)
+	}
+	second, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
+	if !errors.Is(err, errStoreLocked) {
+		if second != nil {
+			_ = second.shutdown(10 * time.Second)
+		}
+		t.Fatalf("second server on the same store: %v, want errStoreLocked", err)
+	}
+	if err := first.shutdown(30 * time.Second); err != nil {
+		t.Fatal(err)
+	}
+	third, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
+	if err != nil {
+		t.Fatalf("after the first shut down: %v", err)
+	}
+	ctx, cancel := context.WithCancel(t.Context())
+	done := make(chan error, 1)
+	go func() { done <- third.Run(ctx) }()
+	cancel()
+	select {
+	case err := <-done:
+		if err != nil {
+			t.Fatal(err)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("Run did not return 30 s after cancel")
+	}
+	if third.Server().Running() {
+		t.Error("server still running after Run returned")
+	}
+}
+
 func TestEmbeddedNATSStartsJetStream(t *testing.T) {
 	for _, tc := range []struct {
 		name string
