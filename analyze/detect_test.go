@@ -459,3 +459,25 @@ func TestDetectorsSurviveHostileBreaths(t *testing.T) {
 		}
 	}
 }
+
+// BenchmarkDetectorsBreath measures all breath detectors on one breath with
+// full windows (the rising-peak window holds 50 breaths at 20 /min).
+func BenchmarkDetectorsBreath(b *testing.B) {
+	d := NewDetectors(DefaultDetectorConfig())
+	m := case1
+	m.RR = 20
+	br := m.breath(0, 0)
+	var fs []Finding
+	for i := range 100 {
+		br.Seq, br.StartS, br.EndS = i, float64(i)*3, float64(i+1)*3
+		fs = d.Breath(&br, fs[:0])
+	}
+	b.ReportAllocs()
+	i := 100
+	for b.Loop() {
+		br.Seq, br.StartS, br.EndS = i, float64(i)*3, float64(i+1)*3
+		br.PeakCmH2O = 38.5 + float64(i%7)*0.1
+		fs = d.Breath(&br, fs[:0])
+		i++
+	}
+}

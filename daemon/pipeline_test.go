@@ -332,3 +332,35 @@ func TestSignalLostOnDisconnection(t *testing.T) {
 		}
 	}
 }
+
+// BenchmarkPipelineSamples measures the whole per-stream pipeline (analyzer,
+// detectors, lifecycle) per sample, on a trapping patient at 100 Hz.
+func BenchmarkPipelineSamples(b *testing.B) {
+	sc := simulator.Steady{RCmH2OSPerL: 25, CMLPerCmH2O: 60, VtML: 600, FlowLPM: 45, RateBPM: 24, PEEPCmH2O: 5,
+		PressureNoiseCmH2O: 0.2, FlowNoiseLPM: 0.5, DurationS: 600, Seed: 1}.Scenario()
+	ss, _, err := simulator.Run(sc)
+	if err != nil {
+		b.Fatal(err)
+	}
+	p := newPipeline("bench", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
+	now := simEpoch
+	p.now = func() time.Time { return now }
+	const batch = 10
+	b.ReportAllocs()
+	b.SetBytes(0)
+	n, off := 0, 0.0
+	for b.Loop() {
+		if n+batch > len(ss) {
+			n, off = 0, off+ss[len(ss)-1].TimeS+0.01
+		}
+		chunk := make([]ingest.Sample, batch)
+		copy(chunk, ss[n:n+batch])
+		for i := range chunk {
+			chunk[i].TimeS += off
+		}
+		now = simEpoch.Add(time.Duration(chunk[batch-1].TimeS * float64(time.Second)))
+		p.Samples(chunk)
+		n += batch
+	}
+	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*batch), "ns/sample")
+}
