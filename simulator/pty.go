@@ -9,7 +9,6 @@ import (
 	"time"
 
 	"github.com/creack/pty"
-	"golang.org/x/sys/unix"
 	"golang.org/x/term"
 )
 
@@ -161,7 +160,7 @@ func (o *ptyOutput) drain(ctx context.Context) {
 	tick := time.NewTicker(5 * time.Millisecond)
 	defer tick.Stop()
 	for empty := 0; empty < 4; {
-		n, err := unix.IoctlGetInt(int(s.Fd()), unix.TIOCINQ)
+		n, err := inputQueued(s)
 		if err != nil {
 			return
 		}
