@@ -8,7 +8,6 @@ import (
 	"math"
 	"os"
 	"strconv"
-	"strings"
 	"syscall"
 	"text/tabwriter"
 	"time"
@@ -197,14 +196,14 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 	}
 	log := a.log.With().Str("component", "sim").Str("stream", sim.Stream()).Logger()
 	out, err := simulator.ParseOutput(f.out, simulator.OutputOptions{
-		Stdout: stdout,
-		Link:   f.link,
-		OnStatus: func(msg string) {
-			log.Info().Msg(msg)
-			if path, ok := strings.CutPrefix(msg, "pseudo-terminal "); ok && f.out == "pty" && strings.HasPrefix(path, "/") {
-				// The slave path on stdout, one line per (re)connection,
-				// for scripts that open it.
-				fmt.Fprintln(stdout, strings.Fields(path)[0])
+		Stdout:   stdout,
+		Link:     f.link,
+		OnStatus: func(msg string) { log.Info().Msg(msg) },
+		OnPTY: func(path string) {
+			// The slave path on stdout, one line per (re)connection, for
+			// scripts that open it; not when stdout carries the truth.
+			if f.truth != "-" {
+				fmt.Fprintln(stdout, path)
 			}
 		},
 	})

@@ -8,7 +8,11 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"sync"
 	"testing"
+	"time"
+
+	"go.bug.st/serial"
 
 	"trapline/ingest"
 	"trapline/simulator"
@@ -160,4 +164,73 @@ func TestSimScenarioAndList(t *testing.T) {
 	if n != 3000 {
 		t.Errorf("%d binary samples of stream icu-12, want 3000", n)
 	}
+}
+
+// TestSimPTY runs the verb on a pseudo-terminal behind a link, reads it with
+// go.bug.st/serial as the daemon reads a serial adapter, and finds the
+// slave path on stdout.
+func TestSimPTY(t *testing.T) {
+	link := filepath.Join(t.TempDir(), "vent")
+	var stdout, stderr simSyncBuffer
+	done := make(chan int, 1)
+	go func() {
+		done <- Run(t.Context(), []string{"sim", "--duration", "5s", "--speed", "max", "--out", "pty", "--link", link, "--decimals", "0"},
+			nil, &stdout, &stderr)
+	}()
+	var port serial.Port
+	deadline := time.Now().Add(10 * time.Second)
+	for port == nil && time.Now().Before(deadline) {
+		p, err := serial.Open(link, &serial.Mode{BaudRate: 115200})
+		if err != nil {
+			time.Sleep(5 * time.Millisecond)
+			continue
+		}
+		port = p
+	}
+	if port == nil {
+		t.Fatalf("no pseudo-terminal at %s; stderr %s", link, stderr.String())
+	}
+	defer port.Close()
+	_ = port.SetReadTimeout(100 * time.Millisecond)
+	var n int
+	dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{}, func(string, ingest.Sample) { n++ })
+	if err != nil {
+		t.Fatal(err)
+	}
+	buf := make([]byte, 4096)
+	for n < 500 && time.Now().Before(deadline) {
+		k, err := port.Read(buf)
+		if err != nil {
+			break
+		}
+		_, _ = dec.Write(buf[:k])
+	}
+	if code := <-done; code != ExitOK {
+		t.Fatalf("exit %d: %s", code, stderr.String())
+	}
+	if n != 500 {
+		t.Errorf("read %d samples, want 500", n)
+	}
+	target, _ := os.Readlink(link)
+	if path := strings.TrimSpace(stdout.String()); !strings.HasPrefix(path, "/dev/") {
+		t.Errorf("stdout %q: want the slave path (link was %q)", path, target)
+	}
+}
+
+// simSyncBuffer is a bytes.Buffer shared by the verb's goroutine and the test.
+type simSyncBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *simSyncBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *simSyncBuffer) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
 }
