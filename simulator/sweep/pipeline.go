@@ -29,7 +29,7 @@ func (s *DetectorSet) Validate() []error {
 }
 
 // tickS is how often the time-based technical conditions are evaluated,
-// on the sample clock: once a second, as the daemon does on the wall clock.
+// on the sample clock: once a second, the daemon's default tick period.
 const tickS = 1.0
 
 // wallEpoch anchors the synthetic wall clock of the lifecycle: stream time
@@ -37,9 +37,12 @@ const tickS = 1.0
 var wallEpoch = time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC)
 
 // stage is the per-stream glue of one detector set: the detectors of
-// package analyze feeding the alarm lifecycle of package alerts, as the
-// daemon wires them for a stream, with stream time standing in for the
-// wall clock. It collects the alert events it produces.
+// package analyze feeding the alarm lifecycle of package alerts, wired as
+// the daemon's offline pipeline wires them (daemon/pipeline.go, which the
+// simulator may not import): every sample goes to the technical detector
+// at its own time, every breath to the breath detectors, a tick once a
+// second of stream time (through gaps too), and the wall time of anything
+// at stream time t is a fixed epoch plus t. It collects the alert events.
 type stage struct {
 	det      *analyze.Detectors
 	life     *alerts.Lifecycle
@@ -55,11 +58,11 @@ func newStage(stream string, set *DetectorSet) *stage {
 	}
 }
 
-// update passes the collected findings to the lifecycle.
-func (s *stage) update() {
+// update passes the collected findings to the lifecycle at stream time tS.
+func (s *stage) update(tS float64) {
+	wall := wallEpoch.Add(time.Duration(tS * float64(time.Second)))
 	for i := range s.findings {
-		f := &s.findings[i]
-		for _, ev := range s.life.Update(*f, wallEpoch.Add(time.Duration(f.TimeS*float64(time.Second)))) {
+		for _, ev := range s.life.Update(s.findings[i], wall) {
 			s.events = append(s.events, AlertEvent{Condition: ev.Condition, State: string(ev.State), TS: ev.TS,
 				Fresh: ev.State == alerts.Raised && ev.Supersedes == ""})
 		}
@@ -67,20 +70,22 @@ func (s *stage) update() {
 	s.findings = s.findings[:0]
 }
 
-func (s *stage) breath(b *analyze.Breath) {
-	s.findings = s.det.Breath(b, s.findings)
-	s.update()
+// sample passes one sample (a one-element slice of the caller's buffer).
+func (s *stage) sample(one []ingest.Sample) {
+	s.findings = s.det.Samples(one, one[0].TimeS, s.findings)
+	s.update(one[0].TimeS)
 }
 
-func (s *stage) tick(batch []ingest.Sample, nowS float64) {
-	s.findings = s.det.Samples(batch, nowS, s.findings)
+func (s *stage) breath(b *analyze.Breath, tS float64) {
+	s.findings = s.det.Breath(b, s.findings)
+	s.update(tS)
+}
+
+func (s *stage) tick(nowS float64) {
 	s.findings = s.det.Tick(nowS, s.findings)
-	s.update()
+	s.update(nowS)
 }
 
 func (s *stage) status(st ingest.Status, nowS float64) {
 	s.det.Status(&ingest.Event{Status: st}, nowS)
-	if st == ingest.StatusDisconnected {
-		s.det.Reset()
-	}
 }

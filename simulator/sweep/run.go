@@ -236,34 +236,32 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		stages[i] = newStage(stream, &sets[i])
 	}
 	out := CaseResult{Case: c, Alerts: make([][]AlertEvent, len(sets))}
-	batch := make([]ingest.Sample, 0, int(sim.SampleRateHz()*tickS)+8)
-	nextTick := tickS
+	one := make([]ingest.Sample, 1)
+	var b analyze.Breath
+	nextTick, lastS, started := 0.0, 0.0, false
 	lastReport := 0.0
 	ti := 0 // next truth breath to match
 
-	flushTo := func(t float64) {
-		// Tick every whole second up to t, on the sample clock; a gap in
-		// the samples (a disconnection) still gets its ticks.
-		for nextTick <= t {
+	tickTo := func(t float64) {
+		// The ticks the daemon would have made, once a second of stream
+		// time, through a disconnection too.
+		for ; started && nextTick <= t; nextTick += tickS {
 			for _, s := range stages {
-				s.tick(batch, nextTick)
+				s.tick(nextTick)
 			}
-			batch = batch[:0]
-			nextTick += tickS
 		}
 	}
-	var b analyze.Breath
 	for {
 		smp, ok := sim.Next()
 		for _, le := range sim.TakeLinkEvents() {
-			flushTo(le.TimeS)
-			st := ingest.StatusConnected
-			if !le.Up {
-				st = ingest.StatusDisconnected
-				an.Reset()
+			if le.Up {
+				continue // the returning samples say so themselves
 			}
+			// A lost link is a disconnection of the source: the analyzer
+			// starts afresh so that no breath spans it.
+			an.Reset()
 			for _, s := range stages {
-				s.status(st, le.TimeS)
+				s.status(ingest.StatusDisconnected, lastS)
 			}
 		}
 		for _, tr := range sim.TakeTruth() {
@@ -272,9 +270,16 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		if !ok {
 			break
 		}
-		flushTo(smp.TimeS)
+		if !started {
+			started, nextTick = true, smp.TimeS+tickS
+		}
+		tickTo(smp.TimeS)
 		out.Samples++
-		batch = append(batch, smp)
+		lastS = smp.TimeS
+		one[0] = smp
+		for _, s := range stages {
+			s.sample(one)
+		}
 		if rec != nil && smp.TimeS >= rec.fromS && smp.TimeS <= rec.toS {
 			rec.samples = append(rec.samples, smp)
 		}
@@ -288,7 +293,7 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 			}
 			ti = out.match(&b, ti)
 			for _, s := range stages {
-				s.breath(&b)
+				s.breath(&b, smp.TimeS)
 			}
 		}
 		if smp.TimeS-lastReport >= progressEveryS {
@@ -301,7 +306,7 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 			}
 		}
 	}
-	flushTo(sim.DurationS())
+	tickTo(sim.DurationS())
 	if progress != nil {
 		progress(sim.DurationS() - lastReport)
 	}
