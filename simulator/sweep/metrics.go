@@ -114,6 +114,9 @@ type ConditionScore struct {
 	Curve    []CurveBin `json:"curve,omitempty"`
 
 	onsetS, onsetBreaths, clearS []float64
+	// onsetQ is the median true quantity (Quantity) of the episode of each
+	// onset latency, for latency against the true value.
+	onsetQ []float64
 }
 
 // curveSpec ties a condition to the true quantity its detection curve is
@@ -239,6 +242,13 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 					if r.breath >= a && r.breath <= end {
 						sc.onsetS = append(sc.onsetS, r.tS-truth[a].EndS)
 						sc.onsetBreaths = append(sc.onsetBreaths, float64(r.breath-a))
+						if cs != nil {
+							qs := make([]float64, 0, b-a+1)
+							for k := a; k <= b; k++ {
+								qs = append(qs, cs.value(&truth[k]))
+							}
+							sc.onsetQ = append(sc.onsetQ, float64(quantile(qs, 0.5)))
+						}
 						break
 					}
 				}
@@ -308,7 +318,8 @@ func (sc *ConditionScore) finish(hours float64) {
 		sc.FalseAlertsPerHour = Num(float64(sc.FalseAlerts) / hours)
 	}
 	sc.Onset.N = len(sc.onsetS)
-	sc.Onset.MedianS, sc.Onset.P10S, sc.Onset.P90S = quantile(sc.onsetS, 0.5), quantile(sc.onsetS, 0.1), quantile(sc.onsetS, 0.9)
+	on := slices.Clone(sc.onsetS) // quantile sorts; onsetS stays paired with onsetQ
+	sc.Onset.MedianS, sc.Onset.P10S, sc.Onset.P90S = quantile(on, 0.5), quantile(on, 0.1), quantile(on, 0.9)
 	sc.Onset.MedianBreaths = quantile(sc.onsetBreaths, 0.5)
 	sc.Clearing.N = len(sc.clearS)
 	sc.Clearing.MedianS, sc.Clearing.P10S, sc.Clearing.P90S = quantile(sc.clearS, 0.5), quantile(sc.clearS, 0.1), quantile(sc.clearS, 0.9)

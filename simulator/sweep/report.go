@@ -93,6 +93,7 @@ type reportData struct {
 	Curve    template.HTML
 	Limits   template.HTML
 	Latency  []template.HTML
+	Scatter  template.HTML
 	Errors   template.HTML
 	Wave     template.HTML
 	Example  string
@@ -236,6 +237,13 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 		}
 		d.Latency = append(d.Latency, h)
 	}
+	ls, err := latencyScatter(s, analyze.CondAirTrapping, "air-trapping: onset latency vs true intrinsic PEEP", "median true intrinsic PEEP of the episode (cmH2O)")
+	if err != nil {
+		return err
+	}
+	if d.Scatter, err = svgHTML(vg.Points(760), vg.Points(300), 1, ls); err != nil {
+		return err
+	}
 	er, err := errorCurvePlot(s.ErrorVsR, "R estimate vs true R", "true R (cmH2O·s/L)")
 	if err != nil {
 		return err
@@ -304,6 +312,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 
 <h2>Latency</h2>
 <p class="note">Onset: from the end of the first breath of an episode to the raise. Clearing: from the end of the first breath without the condition to the clearing.</p>
+{{.Scatter}}
 {{range .Latency}}{{.}}{{end}}
 
 <h2>By patient model ({{index .Sets 0}})</h2>

@@ -167,6 +167,16 @@ func histPlot(title string, data [][]float64, names []string) (*plot.Plot, error
 		p.Title.Text += " (no episodes)"
 		return p, nil
 	}
+	// A few very late episodes would squash the rest into one bin: the
+	// last bin gathers everything beyond 1.5 times the 95th percentile.
+	var all []float64
+	for _, d := range data {
+		all = append(all, d...)
+	}
+	if cut := lo + 1.5*(float64(quantile(all, 0.95))-lo); cut < hi && cut > lo {
+		hi = cut
+		p.Title.Text += fmt.Sprintf(" (last bin: ≥ %.0f s)", hi)
+	}
 	if hi-lo < 1 {
 		hi = lo + 1
 	}
@@ -181,7 +191,7 @@ func histPlot(title string, data [][]float64, names []string) (*plot.Plot, error
 			counts[k].X = lo + (float64(k)+0.5)*width
 		}
 		for _, x := range d {
-			k := min(int((x-lo)/width), nBins-1)
+			k := max(min(int((x-lo)/width), nBins-1), 0)
 			counts[k].Y++
 		}
 		h, err := plotter.NewHistogram(counts, nBins)
@@ -192,6 +202,43 @@ func histPlot(title string, data [][]float64, names []string) (*plot.Plot, error
 		h.LineStyle.Color = colour(i)
 		p.Add(h)
 		p.Legend.Add(names[i], h)
+	}
+	return p, nil
+}
+
+// latencyScatter draws the onset latency of each episode against the
+// episode's median true quantity, one colour per set.
+func latencyScatter(sum *Summary, cond, title, xlabel string) (*plot.Plot, error) {
+	p := newPlot(title, xlabel, "onset latency (s)")
+	ci := indexOf(Scored(), cond)
+	// Late outliers are drawn at a cap (1.5 times the 95th percentile) so
+	// that they do not flatten the rest.
+	var all []float64
+	for si := range sum.Sets {
+		all = append(all, sum.Sets[si].Conditions[ci].onsetS...)
+	}
+	capS := math.Inf(1)
+	if len(all) > 0 {
+		capS = math.Max(1.5*float64(quantile(all, 0.95)), 1)
+		p.Title.Text += fmt.Sprintf(" (drawn at most %.0f s)", capS)
+	}
+	for si, s := range sum.Sets {
+		c := &s.Conditions[ci]
+		xy := make(plotter.XYs, 0, len(c.onsetQ))
+		for i := range c.onsetQ {
+			xy = append(xy, plotter.XY{X: c.onsetQ[i], Y: math.Min(c.onsetS[i], capS)})
+		}
+		if len(xy) == 0 {
+			continue
+		}
+		sc, err := plotter.NewScatter(xy)
+		if err != nil {
+			return nil, err
+		}
+		sc.Color = withAlpha(colour(si), 150)
+		sc.Radius = vg.Points(2)
+		p.Add(sc)
+		p.Legend.Add(s.Name, sc)
 	}
 	return p, nil
 }
