@@ -107,6 +107,7 @@ func (a *app) rootCommand() *cobra.Command {
 		a.predictCommand(),
 		a.runCommand(),
 		a.watchCommand(),
+		a.demoCommand(),
 		a.simCommand(),
 		a.sweepCommand(),
 		a.versionCommand(),

@@ -89,6 +89,7 @@ type daemon struct {
 	subj    alerts.Subjects
 	nc      *nats.Conn
 	serving bool // the HTTP server runs (and closes its listener itself)
+	del     *delivery
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
 }
@@ -142,6 +143,7 @@ func (d *daemon) Run(ctx context.Context) error {
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
+	d.del = del
 	d.m.setDelivery(del.pub.Depth, b.nc.IsConnected, del.bull.Dropped)
 	d.ready.set("nats", func() error {
 		if !b.nc.IsConnected() {

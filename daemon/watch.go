@@ -362,12 +362,14 @@ func (v *watchView) redraw() {
 	var b strings.Builder
 	b.WriteString("\x1b[H\x1b[2J")
 	b.WriteString(clip(fmt.Sprintf("trapline watch  %s  (research use only; not a medical device)", time.Now().Format(time.TimeOnly)), w) + "\n\n")
-	lines := v.streamLines()
-	if len(lines) == 0 {
+	ids := v.streamIDs()
+	if len(ids) == 0 {
 		b.WriteString("waiting for breaths...\n")
 	}
-	for _, l := range lines {
-		b.WriteString(clip(l, w) + "\n")
+	for _, id := range ids {
+		s := v.streams[id]
+		b.WriteString(clip(streamFigures(id, s), w) + "\n")
+		b.WriteString(clip("           "+streamAlarms(s), w) + "\n")
 	}
 	b.WriteString("\nalert events:\n")
 	for _, l := range v.log {
@@ -376,13 +378,19 @@ func (v *watchView) redraw() {
 	v.write(b.String())
 }
 
-// streamLines renders one line per stream, sorted by id. Caller holds v.mu.
-func (v *watchView) streamLines() []string {
+// streamIDs returns the ids of the streams seen, sorted. Caller holds v.mu.
+func (v *watchView) streamIDs() []string {
 	ids := make([]string, 0, len(v.streams))
 	for id := range v.streams {
 		ids = append(ids, id)
 	}
 	sort.Strings(ids)
+	return ids
+}
+
+// streamLines renders one line per stream, sorted by id. Caller holds v.mu.
+func (v *watchView) streamLines() []string {
+	ids := v.streamIDs()
 	out := make([]string, 0, len(ids))
 	for _, id := range ids {
 		out = append(out, streamLine(id, v.streams[id]))
@@ -390,25 +398,34 @@ func (v *watchView) streamLines() []string {
 	return out
 }
 
-// streamLine is one stream's figures: the latest breath and the active
-// alarms, with "-" for a value the analysis could not give.
+// streamLine is one stream's figures and active alarms on one line.
 func streamLine(id string, s *streamView) string {
+	return streamFigures(id, s) + "  | " + streamAlarms(s)
+}
+
+// streamFigures is the stream's latest breath, with "-" for a value the
+// analysis could not give.
+func streamFigures(id string, s *streamView) string {
 	var b strings.Builder
 	fmt.Fprintf(&b, "%-10s", id)
 	if s.status != nil && !s.status.Connected {
 		b.WriteString(" [no signal]")
 	}
-	if s.hasBreath {
-		br := &s.breath
-		fmt.Fprintf(&b, " #%-5d RR %s  VTe %s mL  PIP %s  PEEP %s  PEEPi %s  trapped %s mL  EEF %s L/min  Te/tau %s",
-			br.Seq, num(br.RateBPM, 0), num(br.VteML, 0), num(br.PeakCmH2O, 1), num(br.PEEPCmH2O, 1),
-			num(br.PEEPiCmH2O, 1), num(br.TrappedML, 0), num(br.EndExpFlowLPM, 1), num(br.TeOverTau, 2))
-	} else {
+	if !s.hasBreath {
 		b.WriteString(" no breath yet")
-	}
-	if len(s.active) == 0 {
-		b.WriteString("  | no alerts")
 		return b.String()
+	}
+	br := &s.breath
+	fmt.Fprintf(&b, " #%-5d RR %s  VTe %s mL  PIP %s  PEEP %s  PEEPi %s  trapped %s mL  EEF %s L/min  Te/tau %s",
+		br.Seq, num(br.RateBPM, 0), num(br.VteML, 0), num(br.PeakCmH2O, 1), num(br.PEEPCmH2O, 1),
+		num(br.PEEPiCmH2O, 1), num(br.TrappedML, 0), num(br.EndExpFlowLPM, 1), num(br.TeOverTau, 2))
+	return b.String()
+}
+
+// streamAlarms lists the stream's active alarms with their priority.
+func streamAlarms(s *streamView) string {
+	if len(s.active) == 0 {
+		return "no alerts"
 	}
 	act := make([]string, 0, len(s.active))
 	for _, ev := range s.active {
@@ -419,8 +436,7 @@ func streamLine(id string, s *streamView) string {
 		act = append(act, tag+")")
 	}
 	sort.Strings(act)
-	b.WriteString("  | ALERTS: " + strings.Join(act, " "))
-	return b.String()
+	return "ALERTS: " + strings.Join(act, " ")
 }
 
 // alertLine is one entry of the alert log.

@@ -1,0 +1,224 @@
+package daemon
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/rs/zerolog"
+	"github.com/spf13/cobra"
+
+	"trapline/config"
+	"trapline/ingest"
+	"trapline/simulator"
+)
+
+// demoOptions are the flags of `trapline demo`.
+type demoOptions struct {
+	Scenario string
+	Speed    float64
+	Stream   string
+	Plain    bool
+	JSON     bool
+	// Settle is how long the demo waits after the last sample for the last
+	// breath and alerts to come through.
+	Settle time.Duration
+}
+
+func (a *app) demoCommand() *cobra.Command {
+	opts := demoOptions{Scenario: "bronchospasm", Speed: 10, Settle: 3 * time.Second}
+	cmd := &cobra.Command{
+		Use:   "demo",
+		Short: "Run a simulated patient through the whole daemon and show it live (about two minutes)",
+		Long: "demo starts an embedded NATS server in a temporary directory, streams a simulated patient over a\n" +
+			"virtual serial port (a pseudo-terminal) at --speed times real time, runs the daemon on that\n" +
+			"port and shows the breaths and alerts live. It ends by itself with a summary of the alerts\n" +
+			"raised and cleared. The default scenario, bronchospasm, builds up air trapping that settings\n" +
+			"changes then resolve.\n\n" + Caution,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			if opts.Speed < 0.1 || opts.Speed > 1000 {
+				return usageErrorf("--speed %g: want 0.1 to 1000", opts.Speed)
+			}
+			if opts.Stream != "" && !ingest.ValidStreamID(opts.Stream) {
+				return usageErrorf("--stream %q: want letters, digits, '-' or '_'", opts.Stream)
+			}
+			log := a.log
+			if !cmd.Flags().Changed("log-level") {
+				// The view is the demo's output; only problems go to the log.
+				// (The serial port appears only once the simulator runs, and
+				// vanishes when it ends: expected warnings, not shown.)
+				log = log.Level(zerolog.ErrorLevel)
+			}
+			return runDemo(cmd.Context(), opts, cmd.OutOrStdout(), log)
+		},
+	}
+	f := cmd.Flags()
+	f.StringVar(&opts.Scenario, "scenario", opts.Scenario, fmt.Sprintf("shipped scenario (%v) or a scenario YAML file", simulator.ShippedNames()))
+	f.Float64Var(&opts.Speed, "speed", opts.Speed, "how many times faster than real time the patient is simulated")
+	f.StringVar(&opts.Stream, "stream", opts.Stream, "stream id of the simulated patient (default: the scenario's)")
+	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
+	f.BoolVar(&opts.JSON, "json", false, "print every message as one line of JSON instead of the view")
+	return cmd
+}
+
+// runDemo runs the demo until the scenario has played or ctx is cancelled,
+// and prints the summary.
+func runDemo(ctx context.Context, opts demoOptions, out io.Writer, log zerolog.Logger) error {
+	sc, err := simulator.LoadScenario(opts.Scenario)
+	if err != nil {
+		return &UsageError{Err: fmt.Errorf("--scenario: %w", err)}
+	}
+	if opts.Stream != "" {
+		sc.Stream = opts.Stream
+	}
+	if sc.Stream == "" {
+		sc.Stream = "sim"
+	}
+	opts.Stream = sc.Stream
+	sim, err := simulator.New(sc)
+	if err != nil {
+		return &UsageError{Err: fmt.Errorf("--scenario %s: %w", opts.Scenario, err)}
+	}
+	fmt.Fprintln(out, Caution)
+	fmt.Fprintf(out, "\ndemo: scenario %q (%s), %.0f s of signal at %g× speed: about %.0f s.\n",
+		sc.Name, sc.Description, sim.DurationS(), opts.Speed, sim.DurationS()/opts.Speed)
+
+	dir, err := os.MkdirTemp("", "trapline-demo-")
+	if err != nil {
+		return fmt.Errorf("demo data directory: %w", err)
+	}
+	defer os.RemoveAll(dir)
+
+	// The virtual serial port: the simulator writes a pseudo-terminal and
+	// keeps a link to it; the daemon opens the link like a USB serial
+	// adapter (and reopens it if the simulator's link drops).
+	link := filepath.Join(dir, "ventilator")
+	port, err := simulator.ParseOutput("pty", simulator.OutputOptions{Link: link})
+	if err != nil {
+		return fmt.Errorf("virtual serial port: %w", err)
+	}
+	fmt.Fprintf(out, "demo: virtual serial port %s, embedded NATS in %s\n\n", link, dir)
+
+	cfg := config.Default()
+	cfg.DataDir = dir
+	cfg.HTTP.Listen = ""
+	cfg.NATS.Embedded.Port = 0
+	cfg.ShutdownTimeout = 5 * time.Second
+	cfg.Streams = []config.Stream{{ID: opts.Stream, Source: "serial://" + link + "?baud=115200"}}
+	if err := cfg.Validate(); err != nil {
+		return fmt.Errorf("demo configuration: %w", err)
+	}
+
+	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 3})
+	if err != nil {
+		return fmt.Errorf("demo encoder: %w", err)
+	}
+	readyc := make(chan runInfo, 1)
+	d, err := newDaemon(cfg, log, daemonOptions{Ready: func(i runInfo) { readyc <- i }})
+	if err != nil {
+		return err
+	}
+	dctx, stopDaemon := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopDaemon()
+	var daemonErr error
+	daemonDone := make(chan struct{})
+	go func() { defer close(daemonDone); daemonErr = d.Run(dctx) }()
+	var info runInfo
+	select {
+	case info = <-readyc:
+	case <-daemonDone:
+		return fmt.Errorf("demo daemon: %w", daemonErr)
+	case <-time.After(30 * time.Second):
+		return errors.New("demo daemon did not start within 30 s")
+	}
+
+	// The view replays alerts from JetStream: wait for the streams.
+	waitUntil(10*time.Second, func() bool { return d.del != nil && d.del.streamsReady() == nil })
+
+	nc, err := nats.Connect(info.NATSURL, nats.Name("trapline demo view"))
+	if err != nil {
+		return fmt.Errorf("connect to the demo's NATS at %s: %w", info.NATSURL, err)
+	}
+	defer nc.Close()
+	view := newWatchView(out, watchOptions{Prefix: cfg.NATS.SubjectPrefix, JSON: opts.JSON, Plain: opts.Plain, PlainEvery: 5 * time.Second})
+	stops, err := view.subscribe(ctx, nc, log.Warn)
+	if err != nil {
+		return err
+	}
+	vctx, stopView := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopView()
+	viewDone := make(chan struct{})
+	go func() { defer close(viewDone); view.loop(vctx) }()
+
+	// Play the scenario; Ctrl-C (or the daemon failing) ends it early and
+	// the summary still shows.
+	start := time.Now()
+	pctx, stopPlay := context.WithCancel(ctx)
+	defer stopPlay()
+	go func() {
+		select {
+		case <-daemonDone:
+			stopPlay()
+		case <-pctx.Done():
+		}
+	}()
+	_, perr := simulator.Stream(pctx, sim, port, simulator.StreamOptions{Encoder: enc, Speed: opts.Speed})
+	if perr == nil {
+		settle := time.NewTimer(opts.Settle)
+		select {
+		case <-settle.C:
+		case <-ctx.Done():
+			settle.Stop()
+		}
+	}
+	stopDaemon()
+	var runErr error
+	select {
+	case <-daemonDone:
+		runErr = daemonErr
+	case <-time.After(cfg.ShutdownTimeout + 10*time.Second):
+		runErr = errors.New("demo daemon did not stop in time")
+	}
+	// The daemon has drained its alerts to JetStream; give the view a
+	// moment to receive them before it stops.
+	_ = nc.Flush()
+	time.Sleep(200 * time.Millisecond)
+	for _, s := range stops {
+		s()
+	}
+	stopView()
+	<-viewDone
+
+	fmt.Fprintf(out, "\ndemo: finished after %.0f s. Alerts raised and cleared:\n", time.Since(start).Seconds())
+	sum := view.summary()
+	if len(sum) == 0 {
+		fmt.Fprintln(out, "  (no alerts)")
+	}
+	for _, l := range sum {
+		fmt.Fprintln(out, "  "+l)
+	}
+	fmt.Fprintln(out, "\n"+Caution)
+	if perr != nil && !errors.Is(perr, context.Canceled) {
+		return perr
+	}
+	return runErr
+}
+
+// waitUntil polls cond every 20 ms for at most d and reports whether it
+// became true.
+func waitUntil(d time.Duration, cond func() bool) bool {
+	deadline := time.Now().Add(d)
+	for !cond() {
+		if time.Now().After(deadline) {
+			return false
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+	return true
+}

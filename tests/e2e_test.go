@@ -1,0 +1,292 @@
+package tests
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"path/filepath"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/alerts"
+	"trapline/daemon"
+	"trapline/ingest"
+	"trapline/simulator"
+)
+
+// alertLog collects the alert events a subscriber receives.
+type alertLog struct {
+	mu     sync.Mutex
+	events []alerts.Event
+}
+
+func (l *alertLog) add(data []byte) {
+	var ev alerts.Event
+	if json.Unmarshal(data, &ev) != nil {
+		return
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	l.events = append(l.events, ev)
+}
+
+func (l *alertLog) snapshot() []alerts.Event {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return append([]alerts.Event(nil), l.events...)
+}
+
+// find returns the index of the first event of the condition in the state,
+// or -1.
+func find(evs []alerts.Event, condition string, state alerts.State) int {
+	for i, ev := range evs {
+		if ev.Condition == condition && ev.State == state {
+			return i
+		}
+	}
+	return -1
+}
+
+// streamScenario plays a shipped scenario over a pseudo-terminal whose
+// stable link is link, at speed, and returns when it has played.
+func streamScenario(ctx context.Context, t *testing.T, name, stream, link string, speed float64) error {
+	sc, err := simulator.Shipped(name)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sc.Stream = stream
+	sim, err := simulator.New(sc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	out, err := simulator.ParseOutput("pty", simulator.OutputOptions{Link: link})
+	if err != nil {
+		t.Fatal(err)
+	}
+	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 4})
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, err = simulator.Stream(ctx, sim, out, simulator.StreamOptions{Encoder: enc, Speed: speed})
+	return err
+}
+
+// TestEndToEndOverPseudoTerminal: the simulator writes a patient to a
+// pseudo-terminal, the daemon reads it as a serial port and publishes to
+// its embedded NATS server, a subscriber receives the alerts.
+func TestEndToEndOverPseudoTerminal(t *testing.T) {
+	for _, tc := range []struct {
+		scenario    string
+		speed       float64
+		wantTrapped bool
+	}{
+		// bronchospasm: resistance climbs from minute 2 to 8, air trapping
+		// builds; settings changes from minute 11 resolve it.
+		{"bronchospasm", 60, true},
+		// stable: a healthy lung; no physiological condition at all.
+		{"stable", 60, false},
+	} {
+		t.Run(tc.scenario, func(t *testing.T) {
+			dir := t.TempDir()
+			link := filepath.Join(dir, "ventilator")
+			natsPort := freePort(t)
+			cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
+http:
+  listen: ""
+log:
+  level: warn
+nats:
+  embedded:
+    port: %d
+streams:
+  - id: bed-1
+    source: serial://%s?baud=115200
+`, dir, natsPort, link))
+			ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
+			defer cancel()
+			dctx, stopDaemon := context.WithCancel(ctx)
+			defer stopDaemon()
+			codec := make(chan int, 1)
+			var dout string
+			go func() {
+				code, out := runDaemon(dctx, "run", "--config", cfg)
+				dout = out
+				codec <- code
+			}()
+
+			var nc *nats.Conn
+			waitFor(t, 30*time.Second, "the daemon's NATS server", func() bool {
+				c, err := nats.Connect(fmt.Sprintf("nats://127.0.0.1:%d", natsPort))
+				if err == nil {
+					nc = c
+				}
+				return err == nil
+			})
+			defer nc.Close()
+			var got alertLog
+			sub, err := nc.Subscribe("trapline.alert.>", func(m *nats.Msg) { got.add(m.Data) })
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer sub.Unsubscribe()
+			breaths := make(chan struct{}, 1)
+			bsub, err := nc.Subscribe("trapline.breath.bed-1", func(*nats.Msg) {
+				select {
+				case breaths <- struct{}{}:
+				default:
+				}
+			})
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer bsub.Unsubscribe()
+
+			if err := streamScenario(ctx, t, tc.scenario, "bed-1", link, tc.speed); err != nil {
+				t.Fatalf("simulator: %v", err)
+			}
+			select {
+			case <-breaths:
+			default:
+				t.Fatal("no breath record arrived")
+			}
+			// Let the last breaths and alerts through; what the subscriber
+			// saw must be what JetStream kept, once each.
+			time.Sleep(time.Second)
+			js, err := jetstream.New(nc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var stored []alerts.Event
+			waitFor(t, 20*time.Second, "JetStream to hold every alert event seen", func() bool {
+				stored = storedAlerts(t, js, "TRAPLINE_ALERTS")
+				return len(stored) >= len(got.snapshot())
+			})
+			checkOnce(t, stored, got.snapshot())
+			stopDaemon()
+			select {
+			case code := <-codec:
+				if code != daemon.ExitOK {
+					t.Errorf("daemon exit code %d:\n%s", code, dout)
+				}
+			case <-time.After(30 * time.Second):
+				t.Fatal("daemon did not stop within 30 s")
+			}
+
+			evs := got.snapshot()
+			raised, cleared := find(evs, "air-trapping", alerts.Raised), find(evs, "air-trapping", alerts.Cleared)
+			if tc.wantTrapped {
+				if raised < 0 || cleared < 0 || cleared < raised || evs[raised].ID != evs[cleared].ID {
+					t.Errorf("want air-trapping raised then cleared (same id), got:\n%s", describe(evs))
+				}
+			} else {
+				for _, ev := range evs {
+					if ev.Class == "physiological" {
+						t.Errorf("stable patient: unexpected %s %s", ev.Condition, ev.State)
+					}
+				}
+			}
+			t.Logf("%s: %d alert events:\n%s", tc.scenario, len(evs), describe(evs))
+		})
+	}
+}
+
+func describe(evs []alerts.Event) string {
+	var b strings.Builder
+	for _, ev := range evs {
+		fmt.Fprintf(&b, "  t=%7.1fs %-22s %-12s %s\n", ev.TS, ev.Condition, ev.State, ev.ID)
+	}
+	return b.String()
+}
+
+// storedAlerts reads every alert event kept in the JetStream stream.
+func storedAlerts(t *testing.T, js jetstream.JetStream, name string) []alerts.Event {
+	t.Helper()
+	ctx, cancel := context.WithTimeout(t.Context(), 20*time.Second)
+	defer cancel()
+	s, err := js.Stream(ctx, name)
+	if err != nil {
+		t.Fatalf("stream %s: %v", name, err)
+	}
+	info, err := s.Info(ctx)
+	if err != nil {
+		t.Fatalf("stream %s info: %v", name, err)
+	}
+	var out []alerts.Event
+	for seq := info.State.FirstSeq; seq <= info.State.LastSeq && info.State.Msgs > 0; seq++ {
+		m, err := s.GetMsg(ctx, seq)
+		if err != nil {
+			continue // deleted
+		}
+		var ev alerts.Event
+		if err := json.Unmarshal(m.Data, &ev); err != nil {
+			t.Errorf("stored message %d is not an alert event: %v", seq, err)
+			continue
+		}
+		out = append(out, ev)
+	}
+	return out
+}
+
+// checkOnce checks that stored holds every event of want exactly once (by
+// id and state), and nothing else.
+func checkOnce(t *testing.T, stored, want []alerts.Event) {
+	t.Helper()
+	count := map[string]int{}
+	for _, ev := range stored {
+		count[ev.DedupID()]++
+	}
+	for k, n := range count {
+		if n != 1 {
+			t.Errorf("event %s stored %d times, want once", k, n)
+		}
+	}
+	seen := map[string]bool{}
+	for _, ev := range want {
+		if seen[ev.DedupID()] {
+			continue
+		}
+		seen[ev.DedupID()] = true
+		if count[ev.DedupID()] == 0 {
+			t.Errorf("event %s missing from JetStream", ev.DedupID())
+		}
+	}
+	if len(count) != len(seen) {
+		t.Errorf("JetStream holds %d distinct events, want %d", len(count), len(seen))
+	}
+}
+
+// TestDemoRunsToItsSummary runs `trapline demo` (fast, plain output) as a
+// user would and reads its summary.
+func TestDemoRunsToItsSummary(t *testing.T) {
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer cancel()
+	code, out := runDaemon(ctx, "demo", "--speed", "90", "--plain")
+	if code != daemon.ExitOK {
+		t.Fatalf("demo exit code %d:\n%s", code, out)
+	}
+	if n := strings.Count(out, daemon.Caution); n != 2 {
+		t.Errorf("caution printed %d times, want at the start and at the end", n)
+	}
+	for _, want := range []string{
+		"demo: finished after",
+		"RAISED       air-trapping",
+		"CLEARED      air-trapping",
+	} {
+		if !strings.Contains(out, want) {
+			t.Errorf("demo output lacks %q", want)
+		}
+	}
+	i := strings.Index(out, "Alerts raised and cleared:")
+	if i < 0 {
+		t.Fatalf("no summary:\n%s", out)
+	}
+	sum := out[i:]
+	if !strings.Contains(sum, "air-trapping") || strings.Contains(sum, "air-trapping             raised 0") {
+		t.Errorf("summary does not show air trapping raised:\n%s", sum)
+	}
+}
