@@ -190,10 +190,13 @@ func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedN
 	}
 
 	if so.Password != "" {
-		// Keep only a bcrypt hash in the server (nats-server recognises
-		// the $2a$ prefix) so that the plaintext is not held twice and
-		// the server does not warn about it.
-		h, err := bcrypt.GenerateFromPassword([]byte(so.Password), bcrypt.DefaultCost)
+		// Give the server a bcrypt hash (nats-server recognises the $2a$
+		// prefix) so that it does not warn about a plaintext password.
+		// The hash lives only in this process's memory, next to the
+		// plaintext the daemon's own client needs, so the lowest cost
+		// loses nothing and keeps every client's login fast (each one
+		// pays a bcrypt comparison).
+		h, err := bcrypt.GenerateFromPassword([]byte(so.Password), bcrypt.MinCost)
 		if err != nil {
 			return nil, fmt.Errorf("embedded nats password: %w", err)
 		}
