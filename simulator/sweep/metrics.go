@@ -253,14 +253,16 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 					}
 				}
 			}
-			// Clearing: from the end of the first breath without the
-			// condition to the clearing event, unless the next positive run
-			// or the end of the run comes first.
-			if b+1 < n && act[b] {
+			// Clearing: from the end of the last breath with the condition
+			// to the clearing event, unless the condition comes back or the
+			// run ends first. An alarm that cleared during that last breath
+			// (a signal that came back mid-breath) has a latency ≤ 0.
+			switch {
+			case act[b] && b+1 < n:
 				cleared := false
 				for k := b + 1; k < n && !truth[k].Has(ci); k++ {
 					if !act[k] {
-						sc.clearS = append(sc.clearS, clearTS[k]-truth[b+1].EndS)
+						sc.clearS = append(sc.clearS, clearTS[k]-truth[b].EndS)
 						cleared = true
 						break
 					}
@@ -268,6 +270,10 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 				if !cleared {
 					sc.Clearing.Censored++
 				}
+			case act[b]:
+				sc.Clearing.Censored++
+			case b > a && act[b-1]:
+				sc.clearS = append(sc.clearS, clearTS[b]-truth[b].EndS)
 			}
 		}
 		if !truth[a].Has(ci) && long {

@@ -311,7 +311,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 {{.Limits}}
 
 <h2>Latency</h2>
-<p class="note">Onset: from the end of the first breath of an episode to the raise. Clearing: from the end of the first breath without the condition to the clearing.</p>
+<p class="note">Onset: from the end of the first breath of an episode to the raise. Clearing: from the end of the last breath with the condition to the clearing.</p>
 {{.Scatter}}
 {{range .Latency}}{{.}}{{end}}
 

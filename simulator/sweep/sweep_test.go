@@ -525,3 +525,57 @@ func TestNoPerSampleAllocation(t *testing.T) {
 		t.Errorf("%v allocations for %d samples at 50 Hz, %v for %d at 200 Hz", a50, n50, a200, n200)
 	}
 }
+
+// TestCaseScoreByHand scores a made-up run whose figures are counted by
+// hand: 20 breaths of 3 s, the condition on breaths 5–12 (0-based), the
+// alarm raised at the end of breath 8 and cleared at the end of breath 15.
+func TestCaseScoreByHand(t *testing.T) {
+	ci := indexOf(Scored(), analyze.CondAirTrapping)
+	truth := make([]TruthBreath, 20)
+	for i := range truth {
+		truth[i].StartS, truth[i].EndS = float64(3*i), float64(3*i+3)
+		if i >= 5 && i <= 12 {
+			truth[i].Labels = 1 << ci
+		}
+	}
+	ev := []AlertEvent{
+		{Condition: analyze.CondAirTrapping, State: "raised", TS: truth[8].EndS, Fresh: true},
+		{Condition: analyze.CondAirTrapping, State: "escalated", TS: truth[10].EndS},
+		{Condition: analyze.CondAirTrapping, State: "cleared", TS: truth[15].EndS},
+		{Condition: analyze.CondHighPeakPressure, State: "raised", TS: truth[1].EndS, Fresh: true},
+	}
+	ep := Episodes{MinBreaths: 6, MatchTolS: 0.3}
+	var sc ConditionScore
+	caseScore(truth, ev, ci, ep, &sc)
+	sc.finish(1)
+	// Alarmed breaths 8–14: TP 8–12 (5), FN 5–7 (3), FP 13–14 (2), TN 10.
+	if b := sc.Breath; b.TP != 5 || b.FN != 3 || b.FP != 2 || b.TN != 10 {
+		t.Errorf("breaths %+v, want tp 5, fn 3, fp 2, tn 10", b)
+	}
+	// Episodes: positive 5–12 detected; negative 0–4 is too short, 13–19
+	// clean.
+	if e := sc.Episode; e.Positive != 1 || e.Detected != 1 || e.Negative != 1 || e.Clean != 1 {
+		t.Errorf("episodes %+v", e)
+	}
+	// Onset: end of breath 5 (18 s) to the raise (27 s), 3 breaths later;
+	// clearing: end of breath 12 (39 s) to the clearing (48 s).
+	if sc.Onset.N != 1 || sc.Onset.MedianS != 9 || sc.Onset.MedianBreaths != 3 {
+		t.Errorf("onset %+v, want 9 s and 3 breaths", sc.Onset)
+	}
+	if sc.Clearing.N != 1 || sc.Clearing.MedianS != 9 {
+		t.Errorf("clearing %+v, want 9 s", sc.Clearing)
+	}
+	if sc.Alerts != 1 || sc.FalseAlerts != 0 || sc.FalseAlertsPerHour != 0 {
+		t.Errorf("alerts %d, false %d (%v per hour), want 1, 0", sc.Alerts, sc.FalseAlerts, sc.FalseAlertsPerHour)
+	}
+	// Intrinsic PEEP 0 on every breath: all 20 in the first bin, 7 alarmed.
+	if sc.Curve[0].Breaths != 20 || sc.Curve[0].Alarmed != 7 {
+		t.Errorf("curve bin 0 %+v", sc.Curve[0])
+	}
+	// A raise with no breath of the condition in its span is false.
+	var fp ConditionScore
+	caseScore(truth, ev, indexOf(Scored(), analyze.CondHighPeakPressure), ep, &fp)
+	if fp.Alerts != 1 || fp.FalseAlerts != 1 {
+		t.Errorf("high-peak alerts %d, false %d; want 1, 1", fp.Alerts, fp.FalseAlerts)
+	}
+}
