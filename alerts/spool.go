@@ -235,7 +235,12 @@ func (s *Spool) Remove(seq uint64) error {
 	if err != nil && !errors.Is(err, os.ErrNotExist) {
 		return fmt.Errorf("remove delivered alert: %w", err)
 	}
-	if i := slices.Index(s.pending, seq); i >= 0 {
+	switch i := slices.Index(s.pending, seq); {
+	case i == 0:
+		// The usual case: the oldest was delivered. Re-slicing keeps a
+		// replay of a full spool linear.
+		s.pending = s.pending[1:]
+	case i > 0:
 		s.pending = slices.Delete(s.pending, i, i+1)
 	}
 	// The directory is not synced here: if the removal is lost in a crash,
