@@ -87,3 +87,18 @@ func TestOcclusionMethod(t *testing.T) {
 		}
 	}
 }
+
+// TestTwoPointTau checks the flow–volume slope against REFERENCE §11 case 5
+// (derived: volume still to exhale = τ·|V'|): remaining 0.30 and 0.10 L at
+// flows 0.60 and 0.20 L/s give τ 0.50 s. With 0.4 L in the lung the exhaled
+// volumes are 0.10 and 0.30 L; a midpoint on the same line is added because
+// the fit needs three points.
+func TestTwoPointTau(t *testing.T) {
+	var l linreg
+	for _, p := range [][2]float64{{0.10, 0.60}, {0.20, 0.40}, {0.30, 0.20}} {
+		l.add(p[0], p[1])
+	}
+	if got := l.tau(); !near(got, 0.5, 1e-12) {
+		t.Errorf("tau = %v, want 0.5", got)
+	}
+}
