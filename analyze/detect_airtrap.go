@@ -90,15 +90,18 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 
 	// Build-up over the window: a positive volume balance (inspired minus
 	// expired, which is the change in end-expiratory volume) confirmed by a
-	// rising trapped-volume estimate, two independent measurements.
+	// rise of the trapped-volume estimate of at least half as much, two
+	// independent measurements; a flow offset or a leak moves the balance
+	// but not the estimate. Build-up halves the magnitude thresholds, so
+	// that trapping still growing is caught before it reaches them.
 	balance, slope := d.buildUp()
-	building := balance >= cfg.BalanceML && slope > 0
+	building := balance >= cfg.BalanceML && slope*float64(d.n-1) >= cfg.BalanceML/2
 
 	eefHit := cur.eefLPM >= cfg.EEFLPM
-	magHit := cur.peepi >= cfg.PEEPiCmH2O || cur.trapped >= cfg.TrappedML
+	mag := func(k float64) bool { return cur.peepi >= k*cfg.PEEPiCmH2O || cur.trapped >= k*cfg.TrappedML }
 	// Unknown Te/τ neither vetoes nor supports.
 	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	pos := eefHit && (magHit || building) && tauOK && !b.HasFlag("artifact")
+	pos := eefHit && (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag("artifact")
 	d.ring[idx].positive = pos
 
 	count := 0
@@ -126,6 +129,9 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 		f.TimeS = b.StartS
 	}
 	detPut(f.Evidence, "balance_ml", balance, 1)
+	if building {
+		f.Evidence["building_up"] = 1
+	}
 	detPut(f.Evidence, "eef_lpm", cur.eefLPM, 2)
 	detPut(f.Evidence, "te_over_tau", cur.teOvTau, 3)
 	detPut(f.Evidence, "tau_s", cur.tauS, 3)

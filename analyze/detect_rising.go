@@ -94,7 +94,7 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	spanS := t - d.at(first).tS
 	f.Evidence["window_breaths"] = float64(count)
 	detPut(f.Evidence, "window_s", spanS, 1)
-	if count < cfg.MinBreaths || spanS < cfg.WindowS/2 {
+	if count < cfg.MinBreaths || spanS < 0.9*cfg.WindowS {
 		d.present = false
 		f.Message = fmt.Sprintf("not enough history for a trend (%d breaths over %.0f s)", count, spanS)
 		return append(dst, f)

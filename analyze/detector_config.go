@@ -16,9 +16,9 @@ type DetectorConfig struct {
 
 // AirTrappingConfig configures the air-trapping detector. A breath counts as
 // positive when its end-expiratory flow is above EEFLPM, its intrinsic PEEP
-// or trapped volume is above threshold (or volume is building up breath
-// after breath), and Te/τ is below TeOverTauMax; the condition is present
-// when at least N of the last M breaths are positive.
+// or trapped volume is above threshold (half the threshold while volume is
+// building up breath after breath), and Te/τ is below TeOverTauMax; the
+// condition is present when at least N of the last M breaths are positive.
 type AirTrappingConfig struct {
 	Enabled bool `mapstructure:"enabled"`
 	// N of the last M breaths must be positive.
@@ -37,7 +37,8 @@ type AirTrappingConfig struct {
 	// TeOverTauMax: a breath with Te/τ at or above it had time to empty.
 	TeOverTauMax float64 `mapstructure:"te_over_tau_max"`
 	// BalanceML is the inspired − expired volume, summed over the window,
-	// that together with a rising end-expiratory volume counts as build-up.
+	// that counts as build-up when the trapped-volume estimate rises by at
+	// least half as much over the same window.
 	BalanceML float64 `mapstructure:"balance_ml"`
 	// Severity grading from the median intrinsic PEEP and trapped volume of
 	// the positive breaths in the window: medium at or above the Medium
@@ -155,7 +156,10 @@ func DefaultDetectorConfig() DetectorConfig {
 			// Three time constants empty 95 % of the volume (1 − e⁻³);
 			// "three time constants to empty" is the trade's rule (derived).
 			TeOverTauMax: 3,
-			BalanceML:    30, // our choice; above flow-sensor offset over 6 breaths
+			// 60 mL over the window: six times the spread of the sum of six
+			// breaths' balances with 0.5 L/min of flow noise (our choice,
+			// measured on the simulated patients).
+			BalanceML: 60,
 			// Intrinsic PEEP above 5 cmH2O is commonly treated as clinically
 			// important, above 10 as severe (common practice); volumes chosen
 			// to match at C ≈ 60 mL/cmH2O (our choice).
