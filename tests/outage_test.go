@@ -1,0 +1,229 @@
+package tests
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"net/http"
+	"path/filepath"
+	"regexp"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/daemon"
+)
+
+// outageConfig is a daemon reading the pseudo-terminal link and publishing
+// to the external server at natsURL.
+func outageConfig(t *testing.T, dir, link, natsURL string, httpPort int) string {
+	return writeConfig(t, fmt.Sprintf(`data_dir: %s
+shutdown_timeout: 5s
+http:
+  listen: 127.0.0.1:%d
+log:
+  level: warn
+nats:
+  url: %s
+  publish_timeout: 500ms
+  alerts_stream:
+    max_bytes: 16MiB
+  breaths_stream:
+    max_bytes: 64MiB
+streams:
+  - id: bed-5
+    source: serial://%s?baud=115200
+`, dir, httpPort, natsURL, link))
+}
+
+var seriesLine = regexp.MustCompile(`^([a-z_]+)(\{[^}]*\})? ([0-9.e+-]+)$`)
+
+// metricsOf scrapes /metrics and sums the series of each name; nil when the
+// daemon does not answer.
+func metricsOf(port int) map[string]float64 {
+	c := http.Client{Timeout: 2 * time.Second}
+	resp, err := c.Get(fmt.Sprintf("http://127.0.0.1:%d/metrics", port))
+	if err != nil {
+		return nil
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	if err != nil {
+		return nil
+	}
+	out := map[string]float64{}
+	for _, l := range strings.Split(string(b), "\n") {
+		m := seriesLine.FindStringSubmatch(l)
+		if m == nil {
+			continue
+		}
+		v, _ := strconv.ParseFloat(m[3], 64)
+		out[m[1]] += v
+	}
+	return out
+}
+
+// jetStreamOf connects to the server and returns its JetStream context.
+func jetStreamOf(t *testing.T, url string) jetstream.JetStream {
+	t.Helper()
+	nc, err := nats.Connect(url, nats.MaxReconnects(-1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(nc.Close)
+	js, err := jetstream.New(nc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return js
+}
+
+// stable waits until f returns the same value twice, 1 s apart, and returns it.
+func stable(t *testing.T, d time.Duration, what string, f func() float64) float64 {
+	t.Helper()
+	prev := -1.0
+	var v float64
+	waitFor(t, d, what, func() bool {
+		v = f()
+		if v == prev {
+			return true
+		}
+		prev = v
+		time.Sleep(time.Second)
+		return false
+	})
+	return v
+}
+
+// TestNATSOutageLosesNoAlert: the NATS server goes away for 30 s while the
+// patient's alerts are being raised and comes back on the same store; every
+// alert event the daemon produced is then in JetStream exactly once.
+func TestNATSOutageLosesNoAlert(t *testing.T) {
+	ns := startNATS(t)
+	dir := t.TempDir()
+	link := filepath.Join(dir, "ventilator")
+	httpPort := freePort(t)
+	cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
+
+	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
+	defer cancel()
+	dctx, stopDaemon := context.WithCancel(ctx)
+	defer stopDaemon()
+	codec := make(chan int, 1)
+	var dout string
+	go func() {
+		code, out := runDaemon(dctx, "run", "--config", cfg)
+		dout = out
+		codec <- code
+	}()
+	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
+
+	// The patient plays at 30× for 36 s; its alerts come from about 6 s on.
+	simDone := make(chan error, 1)
+	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 30) }()
+
+	// At the first alert event, the server goes down for 30 s.
+	waitFor(t, 60*time.Second, "the first alert event", func() bool { return metricsOf(httpPort)["trapline_alerts_total"] >= 1 })
+	ns.stop()
+	outage := time.Now()
+	before := metricsOf(httpPort)["trapline_alerts_total"]
+	var maxDepth float64
+	for time.Since(outage) < 30*time.Second {
+		m := metricsOf(httpPort)
+		maxDepth = max(maxDepth, m["trapline_spool_depth"])
+		if m["trapline_nats_connected"] != 0 {
+			t.Fatal("daemon reports NATS connected during the outage")
+		}
+		time.Sleep(500 * time.Millisecond)
+	}
+	during := metricsOf(httpPort)["trapline_alerts_total"] - before
+	t.Logf("during the 30 s outage: %.0f alert events raised, spool depth up to %.0f", during, maxDepth)
+	if during < 3 || maxDepth < 3 {
+		t.Fatalf("want several alert events spooled during the outage, got %.0f (spool depth %.0f)", during, maxDepth)
+	}
+	ns.start()
+
+	if err := <-simDone; err != nil {
+		t.Fatalf("simulator: %v", err)
+	}
+	total := stable(t, 30*time.Second, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	waitFor(t, 30*time.Second, "the spool to drain", func() bool { return metricsOf(httpPort)["trapline_spool_depth"] == 0 })
+
+	stored := storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS")
+	checkOnce(t, stored, stored)
+	if len(stored) != int(total) {
+		t.Errorf("JetStream holds %d alert events, the daemon produced %.0f", len(stored), total)
+	}
+	t.Logf("%d alert events, each stored once:\n%s", len(stored), describe(stored))
+
+	stopDaemon()
+	select {
+	case code := <-codec:
+		if code != daemon.ExitOK {
+			t.Errorf("daemon exit code %d:\n%s", code, dout)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("daemon did not stop within 30 s")
+	}
+}
+
+// TestKilledDuringOutageLosesNoAlert: the daemon, a separate process, is
+// killed with SIGKILL while NATS is away and its alerts wait in the spool;
+// restarted on the same data directory once NATS is back, it delivers them,
+// none lost and none twice.
+func TestKilledDuringOutageLosesNoAlert(t *testing.T) {
+	ns := startNATS(t)
+	dir := t.TempDir()
+	link := filepath.Join(dir, "ventilator")
+	httpPort := freePort(t)
+	cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
+
+	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
+	defer cancel()
+	first := startDaemonProcess(t, "run", "--config", cfg)
+	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
+
+	// 18 simulated minutes at 60× take 18 s.
+	simDone := make(chan error, 1)
+	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+	waitFor(t, 60*time.Second, "the first alert event", func() bool { return metricsOf(httpPort)["trapline_alerts_total"] >= 1 })
+	ns.stop()
+	if err := <-simDone; err != nil {
+		t.Fatalf("simulator: %v", err)
+	}
+	// Everything the first daemon raised is counted; what NATS did not
+	// take is in its spool.
+	producedFirst := stable(t, 30*time.Second, "the first daemon's alert count to settle",
+		func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	spooled := metricsOf(httpPort)["trapline_spool_depth"]
+	t.Logf("first daemon: %.0f alert events, %.0f waiting in the spool when killed", producedFirst, spooled)
+	if spooled < 2 {
+		t.Fatalf("want alert events in the spool at the kill, got %.0f", spooled)
+	}
+	first.kill()
+
+	ns.start()
+	second := startDaemonProcess(t, "run", "--config", cfg)
+	waitFor(t, 30*time.Second, "the second daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
+	waitFor(t, 30*time.Second, "the spool to drain", func() bool {
+		m := metricsOf(httpPort)
+		return m != nil && m["trapline_spool_depth"] == 0 && m["trapline_nats_connected"] == 1
+	})
+	producedSecond := stable(t, 20*time.Second, "the second daemon's alert count to settle",
+		func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	waitFor(t, 30*time.Second, "the spool to drain again", func() bool { return metricsOf(httpPort)["trapline_spool_depth"] == 0 })
+
+	stored := storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS")
+	checkOnce(t, stored, stored)
+	if want := int(producedFirst + producedSecond); len(stored) != want {
+		t.Errorf("JetStream holds %d alert events, the two daemons produced %d", len(stored), want)
+	}
+	t.Logf("%d alert events, each stored once:\n%s", len(stored), describe(stored))
+	if err := second.stop(30 * time.Second); err != nil {
+		t.Error(err)
+	}
+}
