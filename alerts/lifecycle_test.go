@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"math/rand/v2"
 	"strings"
 	"testing"
 	"time"
@@ -281,5 +282,77 @@ func TestLifecycleRejectsWhatJSONCannotCarry(t *testing.T) {
 	}
 	if _, ok := evs[0].Evidence["bad"]; ok || evs[0].Evidence["peepi_cmh2o"] != 4.7 {
 		t.Errorf("evidence %v: want the finite values only", evs[0].Evidence)
+	}
+}
+
+// TestLifecycleInvariants drives random findings and acknowledgements
+// through random configurations and checks the contract that JetStream
+// de-duplication relies on (DESIGN.md §5): no id carries a state twice, an
+// id starts with "raised", nothing follows its "cleared" or its
+// supersession, and a superseded id was the condition's current one.
+func TestLifecycleInvariants(t *testing.T) {
+	rng := rand.New(rand.NewPCG(3, 4))
+	for run := range 200 {
+		cfg := DefaultLifecycleConfig()
+		c := &cfg.Default
+		c.DelayBreaths = rng.IntN(3)
+		c.DelayS = float64(rng.IntN(3))
+		c.ClearBreaths = 1 + rng.IntN(3)
+		c.ClearS = float64(rng.IntN(3))
+		c.Latching = rng.IntN(2) == 0
+		c.EscalateAfterS = float64(rng.IntN(3) * 10)
+		c.AckExpiryS = float64(rng.IntN(3) * 15)
+		l := NewLifecycle("bed-7", cfg)
+		seen := map[string]bool{}      // id#state
+		closed := map[string]bool{}    // ids that may get no more events
+		current := map[string]string{} // condition → current id
+		conds := []string{analyze.CondAirTrapping, analyze.CondHighPlateauPressure}
+		check := func(step int, evs []Event) {
+			for _, e := range evs {
+				if err := e.Validate(); err != nil {
+					t.Fatalf("run %d step %d: %v", run, step, err)
+				}
+				if seen[e.DedupID()] {
+					t.Fatalf("run %d step %d: %s sent twice", run, step, e.DedupID())
+				}
+				seen[e.DedupID()] = true
+				if closed[e.ID] {
+					t.Fatalf("run %d step %d: %s after the id was closed", run, step, e.DedupID())
+				}
+				if e.State != Raised && !seen[e.ID+"#raised"] {
+					t.Fatalf("run %d step %d: %s before its raise", run, step, e.DedupID())
+				}
+				if e.Supersedes != "" {
+					if current[e.Condition] != e.Supersedes {
+						t.Fatalf("run %d step %d: supersedes %s, current is %s", run, step, e.Supersedes, current[e.Condition])
+					}
+					closed[e.Supersedes] = true
+				}
+				if e.State == Raised {
+					current[e.Condition] = e.ID
+				}
+				if e.State == Cleared {
+					closed[e.ID] = true
+				}
+			}
+		}
+		for step := range 300 {
+			ts := float64(step)
+			wall := epoch.Add(time.Duration(step) * time.Second)
+			if rng.IntN(10) == 0 {
+				cond := conds[rng.IntN(len(conds))]
+				evs, err := l.Ack(current[cond], wall)
+				if err != nil && !errors.Is(err, ErrUnknownAlert) {
+					t.Fatalf("run %d: ack error %v", run, err)
+				}
+				check(step, evs)
+				continue
+			}
+			for _, cond := range conds {
+				f := finding(ts, rng.IntN(3) > 0, analyze.Severity(rng.IntN(4)))
+				f.Condition = cond
+				check(step, l.Update(f, wall))
+			}
+		}
 	}
 }
