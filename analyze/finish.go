@@ -84,7 +84,11 @@ func (a *Analyzer) finish() Breath {
 		b.PTot0CmH2O = fr.p0
 		b.FitR2 = fr.r2
 	}
-	if dev, noise := a.inspResidual(); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
+	rScale := math.NaN()
+	if fitOK {
+		rScale = fr.r
+	}
+	if dev, noise := a.inspResidual(rScale); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
 		effort = true
 	}
 	if effort {
@@ -195,18 +199,24 @@ func hasFlag(flags []string, f string) bool {
 // that sensor noise averages out.
 const effortWindowS = 0.2
 
-// inspResidual fits the equation of motion P = R·V' + E·V + P0 to the
-// inspiration alone (start of the breath to the start of expiration, pause
-// included) and returns the largest |residual| averaged over effortWindowS,
-// and the noise of that average (the scatter of successive residuals, which
-// a smooth deviation does not inflate, over √window).
-// A passive patient under volume control follows the model closely there,
-// even with a flow-dependent resistance (under constant flow the Rohrer term
-// is a constant); an inspiratory muscle effort bends the pressure curve in
-// a way no choice of R, E and P0 can follow. When flow is constant during
-// the whole inspiration the V' column is dropped (it is collinear with the
-// intercept).
-func (a *Analyzer) inspResidual() (dev, noise float64) {
+// inspResidual tests whether the inspiration follows the passive equation
+// of motion P = R·V' + E·V + P0, fitted to the inspiration alone (start of
+// the breath to the start of expiration, pause included). It returns the
+// largest departure, averaged over effortWindowS and expressed in cmH2O, and
+// the noise of that average; the caller compares the two.
+//
+// A passive patient follows the model closely there, even with a
+// flow-dependent resistance under constant flow (the Rohrer term is then a
+// constant); inspiratory muscle effort bends the curves in a way no R, E and
+// P0 can follow. The departure shows in pressure when the ventilator sets
+// the flow (volume control), and in flow when it sets the pressure
+// (pressure control), so both are tested: pressure regressed on flow and
+// volume, and flow regressed on pressure and volume (its residual scaled to
+// pressure by rScale, the breath's fitted R; skipped when rScale is
+// unknown). A regression whose regressors are collinear is reduced (constant
+// flow) or skipped (pressure and volume collinear, which is the square-flow
+// case the first test covers).
+func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	n := 0
 	for n < a.buf.n && a.buf.pts[n].t < a.expStartT {
 		n++
@@ -215,9 +225,17 @@ func (a *Analyzer) inspResidual() (dev, noise float64) {
 	if n < 6 {
 		return 0, 0
 	}
-	var s segment
+	step := (pts[n-1].t - pts[0].t) / float64(n-1)
+	k := 1
+	if step > 0 {
+		k = max(1, int(effortWindowS/step+0.5))
+	}
+	k = min(k, n)
+
+	var s, sf segment
 	for i := range pts {
 		s.add(pts[i].f, pts[i].v, pts[i].p)
+		sf.add(pts[i].p, pts[i].v, pts[i].f)
 	}
 	fr := s.fit()
 	if fr.singular {
@@ -230,14 +248,23 @@ func (a *Analyzer) inspResidual() (dev, noise float64) {
 		e := (s.vp - s.n*mv*mp) / svv
 		fr = fitResult{r: 0, e: e, p0: mp - e*mv}
 	}
-	step := (pts[n-1].t - pts[0].t) / float64(n-1)
-	k := 1
-	if step > 0 {
-		k = max(1, int(effortWindowS/step+0.5))
+	dev, noise = windowedResidual(pts, k, func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) })
+	if ff := sf.fit(); !ff.singular && rScale > 0 {
+		d, nz := windowedResidual(pts, k, func(q *point) float64 { return rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0)) })
+		if d-4*nz > dev-4*noise {
+			dev, noise = d, nz
+		}
 	}
-	k = min(k, n)
-	res := func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) }
-	sum, worst, sd, prev := 0.0, 0.0, 0.0, 0.0
+	return dev, noise
+}
+
+// windowedResidual returns the largest |mean| of res over k consecutive
+// points, and the noise of such a mean estimated from successive
+// differences (white noise: twice its variance), which a smooth departure
+// does not inflate.
+func windowedResidual(pts []point, k int, res func(*point) float64) (worst, noise float64) {
+	n := len(pts)
+	sum, sd, prev := 0.0, 0.0, 0.0
 	for i := range pts {
 		r := res(&pts[i])
 		if i > 0 {
@@ -252,7 +279,6 @@ func (a *Analyzer) inspResidual() (dev, noise float64) {
 			worst = math.Max(worst, math.Abs(sum)/float64(k))
 		}
 	}
-	// Successive differences of white noise have twice its variance.
 	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))
 	return worst, noise
 }

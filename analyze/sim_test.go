@@ -219,6 +219,23 @@ var otherModels = []modelCase{
 	}, ""},
 	{"effort 5 cmH2O", func(sc *simulator.Scenario) { sc.Patient.EffortCmH2O = 5 }, ""},
 	{"effort 12 cmH2O", func(sc *simulator.Scenario) { sc.Patient.EffortCmH2O = 12 }, ""},
+	{"pressure control, passive", func(sc *simulator.Scenario) { pressureControl(sc) }, ""},
+	{"pressure control, Rohrer K2 5", func(sc *simulator.Scenario) {
+		pressureControl(sc)
+		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.K2CmH2OS2PerL2 = 8, 5
+	}, ""},
+	{"pressure control, effort 8 cmH2O", func(sc *simulator.Scenario) {
+		pressureControl(sc)
+		sc.Patient.EffortCmH2O = 8
+	}, ""},
+}
+
+// pressureControl switches a scenario to pressure control, 15 cmH2O above
+// PEEP for 1 s with a 0.1 s rise, keeping rate and PEEP.
+func pressureControl(sc *simulator.Scenario) {
+	v := sc.Ventilator
+	sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
+		RiseTimeS: 0.1, RateBPM: v.RateBPM, PEEPCmH2O: v.PEEPCmH2O}
 }
 
 // TestOtherModels measures the errors on patients that break the linear
