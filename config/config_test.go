@@ -157,6 +157,8 @@ func TestLayers(t *testing.T) {
 func TestBadEnvAndFlagsNameTheirOrigin(t *testing.T) {
 	t.Setenv("TRAPLINE_NATS_EMBEDDED_PORT", "abc")
 	t.Setenv("TRAPLINE_SPOOL_MAX_EVENTS", "-4")
+	t.Setenv("TRAPLINE_SHUTDOWN_TIMEOUT", " ")
+	t.Setenv("TRAPLINE_ALARMS_CONDITIONS_SIGNAL_LOST_LATCHING", "")
 	fs := pflag.NewFlagSet("run", pflag.ContinueOnError)
 	fs.String("http-listen", "", "")
 	if err := fs.Parse([]string{"--http-listen", "nowhere"}); err != nil {
@@ -165,6 +167,8 @@ func TestBadEnvAndFlagsNameTheirOrigin(t *testing.T) {
 	_, err := Load("", fs)
 	got := problemLines(t, err)
 	want := []string{
+		`shutdown_timeout: is set but empty (from TRAPLINE_SHUTDOWN_TIMEOUT)`,
+		`alarms.conditions.signal_lost.latching: is set but empty (from TRAPLINE_ALARMS_CONDITIONS_SIGNAL_LOST_LATCHING)`,
 		`nats.embedded.port: want a whole number, got "abc" (from TRAPLINE_NATS_EMBEDDED_PORT)`,
 		`http.listen: "nowhere" is not host:port (want host:port, or empty to disable) (from --http-listen)`,
 		`spool.max_events: -4 is out of range (want 1 to 10000000) (from TRAPLINE_SPOOL_MAX_EVENTS)`,

@@ -80,19 +80,28 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 	}
 
 	v := viper.New()
-	leaves := map[string]bool{}
+	var leaves []string // in the order of the example file, for stable reports
 	walkLeaves(reflect.ValueOf(Default()).Elem(), "", func(key string, val reflect.Value) {
 		if val.IsValid() {
 			v.SetDefault(key, val.Interface())
 		}
-		leaves[key] = true
+		leaves = append(leaves, key)
 	})
 	if err := v.MergeConfigMap(raw); err != nil {
 		p.addf("", "merge %s: %v", format, err)
 		return nil, p.err(file)
 	}
 	v.AllowEmptyEnv(true)
-	for key := range leaves {
+	for _, key := range leaves {
+		// An empty variable clears a string (TRAPLINE_HTTP_LISTEN= turns
+		// HTTP off); for a number, a duration or a switch it is a mistake,
+		// not a quiet zero.
+		if val, ok := os.LookupEnv(EnvName(key)); ok && strings.TrimSpace(val) == "" {
+			if t := keyType(reflect.TypeFor[Config](), key); t == nil || t.Kind() != reflect.String {
+				p.addf(key, "is set but empty")
+				continue
+			}
+		}
 		if err := v.BindEnv(key, EnvName(key)); err != nil {
 			p.addf(key, "bind %s: %v", EnvName(key), err)
 		}
@@ -100,7 +109,7 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 	fromFlag := map[string]string{}
 	if flags != nil {
 		byFlag := map[string]string{}
-		for key := range leaves {
+		for _, key := range leaves {
 			byFlag[FlagName(key)] = key
 		}
 		flags.Visit(func(f *pflag.Flag) {
@@ -142,6 +151,31 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 		return nil, err
 	}
 	return &c, nil
+}
+
+// keyType returns the type of the value at a dotted key below t, or nil.
+func keyType(t reflect.Type, key string) reflect.Type {
+	for _, part := range strings.Split(key, ".") {
+		for t.Kind() == reflect.Pointer {
+			t = t.Elem()
+		}
+		switch t.Kind() {
+		case reflect.Struct:
+			f, ok := lookupField(fieldsOf(t), part)
+			if !ok {
+				return nil
+			}
+			t = f.typ
+		case reflect.Map:
+			t = t.Elem()
+		default:
+			return nil
+		}
+	}
+	for t.Kind() == reflect.Pointer {
+		t = t.Elem()
+	}
+	return t
 }
 
 // origin says where a bad value came from when that was not the file: a
