@@ -518,3 +518,64 @@ func BenchmarkPublisherReplay(b *testing.B) {
 	stop()
 	_ = p.Close()
 }
+
+// TestPublisherCloseDrainsWithinLimit: Close sends what is spooled when the
+// server is there, and returns within the drain limit, keeping the events,
+// when it is not.
+func TestPublisherCloseDrainsWithinLimit(t *testing.T) {
+	for _, tc := range []struct {
+		name      string
+		serverUp  bool
+		wantDepth int
+	}{
+		{"server up", true, 0},
+		{"server down", false, 25},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ns := startTestNATS(t)
+			nc := ns.connect(t)
+			cfg := testStreams("")
+			js, _ := jetstream.New(nc)
+			if err := EnsureStreams(t.Context(), js, cfg); err != nil {
+				t.Fatal(err)
+			}
+			if !tc.serverUp {
+				ns.stop()
+			}
+			const drain = 500 * time.Millisecond
+			// A long timer and no reconnect: only Close's drain can send.
+			p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg, DrainTimeout: drain, Interval: time.Hour})
+			for i := range 25 {
+				if _, err := p.spool.Append(mustMarshal(t, testEvent("bed-d", i, Raised))); err != nil {
+					t.Fatal(err)
+				}
+			}
+			done := make(chan error, 1)
+			go func() { done <- p.Run(context.Background()) }()
+			waitFor(t, 10*time.Second, "Run to start", func() bool {
+				p.mu.Lock()
+				defer p.mu.Unlock()
+				return p.stop != nil
+			})
+			start := time.Now()
+			if err := p.Close(); err != nil {
+				t.Fatal(err)
+			}
+			took := time.Since(start)
+			if err := <-done; err != nil {
+				t.Fatal(err)
+			}
+			if limit := drain + p.opts.RequestTimeout + time.Second; took > limit {
+				t.Errorf("Close took %v, want at most %v", took, limit)
+			}
+			sp, err := OpenSpool(p.spool.Dir(), 0)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer sp.Close()
+			if sp.Depth() != tc.wantDepth {
+				t.Errorf("%d events left in the spool, want %d", sp.Depth(), tc.wantDepth)
+			}
+		})
+	}
+}
