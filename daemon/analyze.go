@@ -87,6 +87,7 @@ type offline struct {
 	one       [1]ingest.Sample
 	emit      emitter
 	nAlerts   int
+	keptAlert []alerts.Event // for --summary
 	out       *bufio.Writer
 	summary   bool
 	kept      []analyze.Breath // for --summary
@@ -98,7 +99,7 @@ type offline struct {
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
-		start: offlineEpoch, alerts: !summary, pipelines: map[string]*pipeline{},
+		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline{},
 		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
 	o.emit = emitter{breath: o.breath, alert: o.alert}
 	return o
@@ -120,6 +121,10 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 func (o *offline) alert(e *alerts.Event) {
 	o.nAlerts++
 	if !o.alerts || o.writeErr != nil {
+		return
+	}
+	if o.summary {
+		o.keptAlert = append(o.keptAlert, *e)
 		return
 	}
 	b, err := e.Marshal()
@@ -223,6 +228,9 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 		if err := writeSummary(o.out, o.kept); err != nil {
 			return fmt.Errorf("write summary: %w", err)
 		}
+		if err := writeAlertSummary(o.out, o.keptAlert); err != nil {
+			return fmt.Errorf("write summary: %w", err)
+		}
 	}
 	if err := o.out.Flush(); err != nil && o.writeErr == nil {
 		o.writeErr = err
@@ -234,6 +242,23 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 		log.Warn().Uint64("samples", st.Samples).Msg("no complete breath in the input (a breath completes when the next one starts)")
 	}
 	return nil
+}
+
+// writeAlertSummary prints the alert events of --summary as a table, one
+// state change per line, in the order they happened.
+func writeAlertSummary(w io.Writer, evs []alerts.Event) error {
+	if len(evs) == 0 {
+		_, err := fmt.Fprintln(w, "\nNo alert events.")
+		return err
+	}
+	fmt.Fprintf(w, "\n%d alert events:\n", len(evs))
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, "t s\tstream\tcondition\tstate\tpriority\tmessage")
+	for i := range evs {
+		e := &evs[i]
+		fmt.Fprintf(tw, "%.1f\t%s\t%s\t%s\t%s\t%s\n", e.TS, e.Stream, e.Condition, e.State, e.Priority, e.Message)
+	}
+	return tw.Flush()
 }
 
 // writeSummary prints the breaths as an aligned table and their medians.

@@ -105,6 +105,9 @@ func TestAnalyzePrintsAlertsInTimeOrder(t *testing.T) {
 	if got := strings.Join(states, ",") + ","; got != want || breaths < 90 {
 		t.Errorf("%d breaths and alerts %s; want ≥ 90 breaths and %s", breaths, got, want)
 	}
+	if sum := run("--summary", path); !strings.Contains(sum, "6 alert events:") || strings.Count(sum, "signal-lost") != 6 {
+		t.Errorf("--summary lacks the table of the 6 signal-lost events:\n%s", sum[max(0, len(sum)-1500):])
+	}
 	if quiet := run("--no-alerts", path); strings.Contains(quiet, `"type":"alert"`) {
 		t.Error("--no-alerts printed alerts")
 	}
