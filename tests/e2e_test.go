@@ -87,9 +87,9 @@ func TestEndToEndOverPseudoTerminal(t *testing.T) {
 	}{
 		// bronchospasm: resistance climbs from minute 2 to 8, air trapping
 		// builds; settings changes from minute 11 resolve it.
-		{"bronchospasm", 60, true},
+		{"bronchospasm", 90, true},
 		// stable: a healthy lung; no physiological condition at all.
-		{"stable", 60, false},
+		{"stable", 90, false},
 	} {
 		t.Run(tc.scenario, func(t *testing.T) {
 			dir := t.TempDir()
@@ -146,7 +146,41 @@ streams:
 			}
 			defer bsub.Unsubscribe()
 
-			if err := streamScenario(ctx, t, tc.scenario, "bed-1", link, tc.speed); err != nil {
+			simDone := make(chan error, 1)
+			go func() { simDone <- streamScenario(ctx, t, tc.scenario, "bed-1", link, tc.speed) }()
+			if tc.wantTrapped {
+				// When air trapping is raised, someone acknowledges it over
+				// NATS; the acknowledged state follows on the alert subject.
+				waitFor(t, 60*time.Second, "air-trapping to be raised", func() bool {
+					return find(got.snapshot(), "air-trapping", alerts.Raised) >= 0
+				})
+				evs := got.snapshot()
+				id := evs[find(evs, "air-trapping", alerts.Raised)].ID
+				for _, req := range []struct {
+					body   string
+					wantOK bool
+				}{
+					{`{"id":"` + id + `","by":"bench tester"}`, true},
+					{`{"id":"bed-1/air-trapping/0","by":"bench tester"}`, false},
+					{`not json`, false},
+				} {
+					reply, err := nc.Request("trapline.ack.bed-1", []byte(req.body), 10*time.Second)
+					if err != nil {
+						t.Fatalf("ack request %s: %v", req.body, err)
+					}
+					var r struct {
+						OK    bool   `json:"ok"`
+						Error string `json:"error"`
+					}
+					if err := json.Unmarshal(reply.Data, &r); err != nil || r.OK != req.wantOK || (!r.OK && r.Error == "") {
+						t.Errorf("ack %s: reply %s, want ok=%v", req.body, reply.Data, req.wantOK)
+					}
+				}
+				waitFor(t, 10*time.Second, "the acknowledged event", func() bool {
+					return find(got.snapshot(), "air-trapping", alerts.Acknowledged) >= 0
+				})
+			}
+			if err := <-simDone; err != nil {
 				t.Fatalf("simulator: %v", err)
 			}
 			select {
@@ -265,7 +299,7 @@ func checkOnce(t *testing.T, stored, want []alerts.Event) {
 func TestDemoRunsToItsSummary(t *testing.T) {
 	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
 	defer cancel()
-	code, out := runDaemon(ctx, "demo", "--speed", "90", "--plain")
+	code, out := runDaemon(ctx, "demo", "--speed", "120", "--plain")
 	if code != daemon.ExitOK {
 		t.Fatalf("demo exit code %d:\n%s", code, out)
 	}
