@@ -157,6 +157,7 @@ type ctxReader struct {
 	r   io.Reader
 }
 
+// Read returns the context's error once it is cancelled, else reads.
 func (c ctxReader) Read(p []byte) (int, error) {
 	if err := c.ctx.Err(); err != nil {
 		return 0, err
