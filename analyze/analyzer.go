@@ -36,6 +36,11 @@ const (
 	// FlagTauUnreliable: the expiratory flow–volume curve gave no usable
 	// time constant.
 	FlagTauUnreliable = "tau-unreliable"
+	// FlagTauNonlinear: the end of expiration departs from the single time
+	// constant of its middle (slower: unequal time constants, and trapped
+	// volume and intrinsic PEEP are then underestimated; faster: a
+	// resistance that grows with flow). τ-based values are unreliable.
+	FlagTauNonlinear = "tau-nonlinear"
 	// FlagPEEPiMismatch: the two intrinsic PEEP estimates disagree beyond
 	// the configured tolerance (flow limitation, heterogeneity or effort).
 	FlagPEEPiMismatch = "peepi-mismatch"
@@ -346,7 +351,7 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 	if !math.IsNaN(a.pauseStartT) {
 		a.pauseLen = a.expStartT - a.pauseStartT
 		if a.pauseLen >= a.cfg.MinPauseS {
-			if mp, _, n := a.ring.window(a.expStartT-a.cfg.PlateauWindowS, a.expStartT); n > 0 {
+			if mp, _, _, n := a.ring.window(a.expStartT-a.cfg.PlateauWindowS, a.expStartT); n > 0 {
 				a.plateau = mp
 			}
 		}

@@ -1,5 +1,7 @@
 package analyze
 
+import "math"
+
 // ringSize is the number of raw samples kept for the end-of-phase windows
 // (plateau, end-expiratory pressure and flow): about one second at 1000 Hz,
 // enough for the longest window plus the confirmation delay.
@@ -27,9 +29,10 @@ func (r *ring) push(t, p, f float64) {
 
 // window returns the mean pressure and the count of the samples with time in
 // [from, to), and, when at least two are present, the flow at time `to`
-// extrapolated by a straight-line fit over them (at least the last flow).
-func (r *ring) window(from, to float64) (meanP, flowAtTo float64, count int) {
-	var sp, st, sf, stt, stf float64
+// extrapolated by a straight-line fit over them (else the last flow), with
+// the standard error of that extrapolation (NaN below three samples).
+func (r *ring) window(from, to float64) (meanP, flowAtTo, seFlow float64, count int) {
+	var sp, st, sf, stt, stf, sff float64
 	lastF := 0.0
 	for k := 1; k <= r.n; k++ {
 		e := &r.s[(r.next-k)&(ringSize-1)]
@@ -49,18 +52,27 @@ func (r *ring) window(from, to float64) (meanP, flowAtTo float64, count int) {
 		sf += e.f
 		stt += dt * dt
 		stf += dt * e.f
+		sff += e.f * e.f
 	}
+	seFlow = math.NaN()
 	if count == 0 {
-		return 0, 0, 0
+		return 0, 0, seFlow, 0
 	}
 	n := float64(count)
 	meanP = sp / n
-	den := n*stt - st*st
-	if count < 2 || !(den > 0) {
-		return meanP, lastF, count
+	ctt := stt - st*st/n
+	if count < 2 || !(ctt > 0) {
+		return meanP, lastF, seFlow, count
 	}
-	slope := (n*stf - st*sf) / den
-	return meanP, (sf - slope*st) / n, count
+	ctf := stf - st*sf/n
+	slope := ctf / ctt
+	flowAtTo = (sf - slope*st) / n
+	if count >= 3 {
+		ss := math.Max(0, sff-sf*sf/n-slope*ctf)
+		mt := st / n
+		seFlow = math.Sqrt(ss/(n-2)) * math.Sqrt(1/n+mt*mt/ctt)
+	}
+	return meanP, flowAtTo, seFlow, count
 }
 
 // bufCap is the number of points the decimated breath buffer holds.

@@ -38,9 +38,11 @@ func (a *Analyzer) finish() Breath {
 	// End of expiration: mean pressure, and flow extrapolated to the end by
 	// a line fit so that a still-falling flow is read at the end, not at the
 	// middle of the window.
-	if mp, fe, n := a.ring.window(endT-c.EndExpWindowS, endT); n > 0 {
+	eefSigned, eefSE := math.NaN(), math.NaN()
+	if mp, fe, se, n := a.ring.window(endT-c.EndExpWindowS, endT); n > 0 {
 		b.PEEPCmH2O = mp
 		b.EndExpFlowLPM = 60 * math.Max(-fe, 0)
+		eefSigned, eefSE = -fe, se
 	}
 
 	var flags []string
@@ -116,7 +118,17 @@ func (a *Analyzer) finish() Breath {
 
 	// Expiratory time constant from the flow–volume slope over 25–75 % of
 	// the exhaled volume (REFERENCE §2; Lourens' slope method).
-	b.TauS = a.tauFlowVolume(b.VteML / 1000)
+	var lineEEF, lineSE float64
+	b.TauS, lineEEF, lineSE = a.tauFlowVolume(b.VteML / 1000)
+	// The end of expiration against the single time constant of its
+	// middle: the flow–volume line of 25–75 % extrapolated to the whole
+	// exhaled volume predicts the end-expiratory flow. Slower at the end
+	// (flow above the line) is the mark of units with longer time
+	// constants, whose trapped volume both routes underestimate; faster
+	// (below) of a resistance that grows with flow.
+	if d := eefSigned - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
+		add(FlagTauNonlinear)
+	}
 	tau := b.TauS
 	if math.IsNaN(tau) {
 		add(FlagTauUnreliable)
@@ -284,7 +296,7 @@ func windowedResidual(pts []point, k int, res func(*point) float64) (worst, nois
 }
 
 // linreg accumulates a simple linear regression y = a + b·x.
-type linreg struct{ n, sx, sy, sxx, sxy float64 }
+type linreg struct{ n, sx, sy, sxx, sxy, syy float64 }
 
 func (l *linreg) add(x, y float64) {
 	l.n++
@@ -292,6 +304,24 @@ func (l *linreg) add(x, y float64) {
 	l.sy += y
 	l.sxx += x * x
 	l.sxy += x * y
+	l.syy += y * y
+}
+
+// predict returns the fitted y at x and its standard error (ordinary least
+// squares: s·√(1/n + (x − x̄)²/Sxx)); NaN below three points.
+func (l *linreg) predict(x float64) (y, se float64) {
+	if l.n < 3 {
+		return math.NaN(), math.NaN()
+	}
+	mx, my := l.sx/l.n, l.sy/l.n
+	cxx := l.sxx - l.n*mx*mx
+	cxy := l.sxy - l.n*mx*my
+	if !(cxx > 0) {
+		return math.NaN(), math.NaN()
+	}
+	b := cxy / cxx
+	ss := math.Max(0, l.syy-l.n*my*my-b*cxy)
+	return my + b*(x-mx), math.Sqrt(ss/(l.n-2)) * math.Sqrt(1/l.n+(x-mx)*(x-mx)/cxx)
 }
 
 // tau returns −1/slope when the slope is defined and negative enough to
@@ -311,16 +341,23 @@ func (l *linreg) tau() float64 {
 	return tau
 }
 
+// tauDepartureLPS is the smallest departure of the end-expiratory flow
+// from the mid-expiration flow–volume line that counts (2 L/min; it must
+// also exceed four standard errors).
+const tauDepartureLPS = 2.0 / 60
+
 // tauFlowVolume fits |V'| = a − V_ex/τ over the decimated expiration points
 // whose exhaled volume V_ex lies between 25 and 75 % of vte (L). In passive
 // mono-exponential emptying the volume still to exhale is τ·|V'|, so the
 // slope of the flow–volume curve is −1/τ; the middle of expiration avoids
 // the valve transient at its start and the noise floor at its end. It
 // returns NaN when fewer than three points qualify or the slope is not
-// plausible.
-func (a *Analyzer) tauFlowVolume(vte float64) float64 {
+// plausible. It also returns the line's |V'| at V_ex = vte (the end of
+// expiration) and the standard error of that extrapolation.
+func (a *Analyzer) tauFlowVolume(vte float64) (tau, endFlow, endSE float64) {
+	nan := math.NaN()
 	if !(vte > 0) {
-		return math.NaN()
+		return nan, nan, nan
 	}
 	lo, hi := 0.25*vte, 0.75*vte
 	var l linreg
@@ -336,5 +373,10 @@ func (a *Analyzer) tauFlowVolume(vte float64) float64 {
 			l.add(x, -q.f)
 		}
 	}
-	return l.tau()
+	tau = l.tau()
+	if math.IsNaN(tau) {
+		return nan, nan, nan
+	}
+	endFlow, endSE = l.predict(vte)
+	return tau, endFlow, endSE
 }
