@@ -132,7 +132,7 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 			progressbar.OptionSetDescription("simulating"),
 			progressbar.OptionSetPredictTime(true),
 			progressbar.OptionSetElapsedTime(true),
-			progressbar.OptionFullWidth(),
+			progressbar.OptionSetWidth(40),
 			progressbar.OptionThrottle(200*time.Millisecond),
 			progressbar.OptionClearOnFinish(),
 		)
