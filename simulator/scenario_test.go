@@ -6,6 +6,8 @@ import (
 	"math"
 	"strings"
 	"testing"
+
+	"trapline/ingest"
 )
 
 // TestShippedScenariosRun runs every shipped scenario to its end and checks
@@ -131,5 +133,32 @@ timeline:
 	}
 	if _, err := ParseScenario([]byte("duration: soon\n")); err == nil {
 		t.Error("bad duration accepted")
+	}
+}
+
+// TestReadMatchesNext: reading in batches gives the same samples as
+// pulling them one by one.
+func TestReadMatchesNext(t *testing.T) {
+	sc := shortNoisy(t)
+	want, _, err := Run(sc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s, err := New(sc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var got []ingest.Sample
+	buf := make([]ingest.Sample, 333)
+	for {
+		n := s.Read(buf)
+		if n == 0 {
+			break
+		}
+		got = append(got, buf[:n]...)
+	}
+	compareSamples(t, got, want, 0)
+	if !s.Done() || s.Emitted() != int64(len(want)) {
+		t.Errorf("done %v, emitted %d of %d", s.Done(), s.Emitted(), len(want))
 	}
 }

@@ -133,6 +133,11 @@ func (a *accum) finish(tl *timeline, l *lung, stream string, endS, vEnd, eefLPS 
 		Labels:        []string{},
 	}
 	tr.DrivingCmH2O = tr.PlateauCmH2O - peep - tr.PEEPiCmH2O
+	// Times are sums of phase lengths: drop the last bits of rounding so
+	// that 0.8 s reads 0.8, not 0.7999999999999999.
+	for _, p := range []*float64{&tr.StartS, &tr.EndS, &tr.TiS, &tr.TeS, &tr.RateBPM} {
+		*p = math.Round(*p*1e9) / 1e9
+	}
 	if l.two {
 		g := 1/l.r[0] + 1/l.r[1]
 		tr.RCmH2OSPerL = l.r0 + 1/g
