@@ -145,6 +145,11 @@ func (o *ptyOutput) Close() error {
 
 func (o *ptyOutput) MaxWrite() int { return 0 }
 
+// drainQuietTicks is how many 5 ms readings in a row must find the input
+// queue empty: 100 ms, longer than the kernel takes to move bytes from the
+// master to that queue even on a busy machine.
+const drainQuietTicks = 20
+
 // drain waits until the reader has taken everything written, or until ctx
 // ends, so that closing the master at the end of a run loses nothing. The
 // input queue must read empty several times in a row: bytes written to the
@@ -159,7 +164,7 @@ func (o *ptyOutput) drain(ctx context.Context) {
 	}
 	tick := time.NewTicker(5 * time.Millisecond)
 	defer tick.Stop()
-	for empty := 0; empty < 4; {
+	for empty := 0; empty < drainQuietTicks; {
 		n, err := inputQueued(s)
 		if err != nil {
 			return
