@@ -95,6 +95,7 @@ type reportData struct {
 	Latency  []template.HTML
 	Scatter  template.HTML
 	Errors   template.HTML
+	Dist     template.HTML
 	Wave     template.HTML
 	Example  string
 	Est      []EstimatorError
@@ -255,6 +256,24 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 	if d.Errors, err = svgHTML(vg.Points(900), vg.Points(320), 1, er, ec); err != nil {
 		return err
 	}
+	var dist []*plot.Plot
+	for _, x := range []struct {
+		q, title, label string
+		rel             bool
+	}{
+		{"tau_s", "time constant", "τ error (%): median, 5–95 %", true},
+		{"trapped_ml", "trapped volume", "error (mL): median, 5–95 %", false},
+		{"peepi_cmh2o", "intrinsic PEEP", "error (cmH2O): median, 5–95 %", false},
+	} {
+		p, err := distributionPlot(s.Estimators, x.q, x.title, x.label, x.rel)
+		if err != nil {
+			return err
+		}
+		dist = append(dist, p)
+	}
+	if d.Dist, err = svgHTML(vg.Points(900), vg.Points(300), 1, dist...); err != nil {
+		return err
+	}
 	if ex != nil {
 		pp, fp, err := waveformPlots(ex)
 		if err != nil {
@@ -324,6 +343,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 <h2>Estimators</h2>
 <p class="note">Error = estimate − truth per analysed breath. For the non-linear models the truth is the equivalent R, C and τ of the simulator (see docs/sweep.md).</p>
 {{.Errors}}
+{{.Dist}}
 <table><tr><th>model</th><th>quantity</th><th>n</th><th>missing</th><th>bias</th><th>median</th><th>p05</th><th>p95</th><th>RMSE</th><th>median rel. %</th><th>p05 rel. %</th><th>p95 rel. %</th></tr>
 {{range .Est}}<tr><td>{{.Model}}</td><td>{{.Quantity}}</td><td>{{.N}}</td><td>{{.Missing}}</td><td>{{num .Bias 3}}</td><td>{{num .Median 3}}</td><td>{{num .P05 3}}</td><td>{{num .P95 3}}</td><td>{{num .RMSE 3}}</td><td>{{num .MedianRelPct 1}}</td><td>{{num .P05RelPct 1}}</td><td>{{num .P95RelPct 1}}</td></tr>
 {{end}}</table>

@@ -281,6 +281,60 @@ func errorCurvePlot(curves []ErrorCurve, title, xlabel string) (*plot.Plot, erro
 	return p, nil
 }
 
+// distributionPlot draws, for one estimated quantity, the median error of
+// each patient model with bars from the 5th to the 95th percentile.
+func distributionPlot(est []EstimatorError, quantity, title, ylabel string, relative bool) (*plot.Plot, error) {
+	p := newPlot(title, "", ylabel)
+	var names []string
+	for _, e := range est {
+		if e.Quantity != quantity {
+			continue
+		}
+		med, lo, hi := e.Median, e.P05, e.P95
+		if relative {
+			med, lo, hi = e.MedianRelPct, e.P05RelPct, e.P95RelPct
+		}
+		if math.IsNaN(float64(med)) {
+			continue
+		}
+		x := float64(len(names))
+		names = append(names, shortModel(e.Model))
+		xy := plotter.XYs{{X: x, Y: float64(med)}}
+		bars := plotter.YErrors{{Low: float64(med - lo), High: float64(hi - med)}}
+		eb, err := plotter.NewYErrorBars(struct {
+			plotter.XYer
+			plotter.YErrorer
+		}{xy, bars})
+		if err != nil {
+			return nil, err
+		}
+		c := colour(len(names) - 1)
+		eb.Color, eb.Width, eb.CapWidth = c, vg.Points(2), vg.Points(10)
+		sc, err := plotter.NewScatter(xy)
+		if err != nil {
+			return nil, err
+		}
+		sc.Color, sc.Radius = c, vg.Points(3.5)
+		p.Add(eb, sc)
+	}
+	p.NominalX(names...)
+	p.X.Min, p.X.Max = -0.6, float64(len(names))-0.4
+	return p, nil
+}
+
+// shortModel abbreviates a model name for a crowded axis.
+func shortModel(m string) string {
+	switch m {
+	case ModelTwoCompartment:
+		return "2-comp."
+	case ModelFlowLimited:
+		return "flow-lim."
+	case ModelScenario:
+		return "scen."
+	}
+	return m
+}
+
 // waveformPlots draws the example patient: pressure and flow with the
 // analysed breath starts, the breaths that truly trap air, and the alert
 // events of the first set.
