@@ -146,7 +146,7 @@ func runDemo(ctx context.Context, opts demoOptions, out io.Writer, log zerolog.L
 		return fmt.Errorf("connect to the demo's NATS at %s: %w", info.NATSURL, err)
 	}
 	defer nc.Close()
-	view := newWatchView(out, watchOptions{Prefix: cfg.NATS.SubjectPrefix, JSON: opts.JSON, Plain: opts.Plain, PlainEvery: 5 * time.Second})
+	view := newWatchView(out, watchOptions{Prefix: cfg.NATS.SubjectPrefix, JSON: opts.JSON, Plain: opts.Plain, PlainEvery: 5 * time.Second, Footer: Caution})
 	stops, err := view.subscribe(ctx, nc, log.Warn)
 	if err != nil {
 		return err

@@ -39,6 +39,8 @@ type watchOptions struct {
 	PlainEvery time.Duration
 	// RedrawEvery is the period of the terminal redraw.
 	RedrawEvery time.Duration
+	// Footer, when set, closes the terminal view (the demo's caution).
+	Footer string
 }
 
 func (a *app) watchCommand() *cobra.Command {
@@ -374,6 +376,9 @@ func (v *watchView) redraw() {
 	b.WriteString("\nalert events:\n")
 	for _, l := range v.log {
 		b.WriteString(clip(l, w) + "\n")
+	}
+	if v.opts.Footer != "" {
+		b.WriteString("\n" + v.opts.Footer + "\n")
 	}
 	v.write(b.String())
 }

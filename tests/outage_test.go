@@ -128,6 +128,9 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 
 	// At the first alert event, the server goes down for 30 s.
 	waitFor(t, 60*time.Second, "the first alert event", func() bool { return metricsOf(httpPort)["trapline_alerts_total"] >= 1 })
+	if code, body := readyz(httpPort); code != http.StatusOK {
+		t.Errorf("/readyz while streaming: %d %q, want 200", code, body)
+	}
 	ns.stop()
 	outage := time.Now()
 	before := metricsOf(httpPort)["trapline_alerts_total"]
@@ -140,12 +143,21 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 		}
 		time.Sleep(500 * time.Millisecond)
 	}
+	if code, body := readyz(httpPort); code != http.StatusServiceUnavailable || !strings.Contains(body, "nats: not connected") {
+		t.Errorf("/readyz during the outage: %d %q, want 503 naming nats", code, body)
+	}
 	during := metricsOf(httpPort)["trapline_alerts_total"] - before
 	t.Logf("during the 30 s outage: %.0f alert events raised, spool depth up to %.0f", during, maxDepth)
 	if during < 3 || maxDepth < 3 {
 		t.Fatalf("want several alert events spooled during the outage, got %.0f (spool depth %.0f)", during, maxDepth)
 	}
 	ns.start()
+	// (The patient may have ended by now, so the stream itself may not be
+	// ready; NATS must be.)
+	waitFor(t, 30*time.Second, "/readyz to stop naming nats", func() bool {
+		code, body := readyz(httpPort)
+		return code != 0 && !strings.Contains(body, "nats:")
+	})
 
 	if err := <-simDone; err != nil {
 		t.Fatalf("simulator: %v", err)
@@ -226,4 +238,16 @@ func TestKilledDuringOutageLosesNoAlert(t *testing.T) {
 	if err := second.stop(30 * time.Second); err != nil {
 		t.Error(err)
 	}
+}
+
+// readyz returns the status code and body of /readyz.
+func readyz(port int) (int, string) {
+	c := http.Client{Timeout: 2 * time.Second}
+	resp, err := c.Get(fmt.Sprintf("http://127.0.0.1:%d/readyz", port))
+	if err != nil {
+		return 0, err.Error()
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	return resp.StatusCode, string(b)
 }
