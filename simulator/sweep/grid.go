@@ -254,6 +254,10 @@ func LoadGrid(path string) (Grid, error) {
 	return g, nil
 }
 
+// MaxCases bounds the grid patients of one plan, so that a typo in a grid
+// file cannot ask for billions of them.
+const MaxCases = 100000
+
 // Case is one simulated patient of a plan.
 type Case struct {
 	// Index is the position in the plan.
@@ -349,6 +353,9 @@ func (g Grid) Expand() (*Plan, error) {
 	}
 	if !(g.ScenarioDurationS >= 0) {
 		bad("scenario_duration: must not be negative")
+	}
+	if n := g.Seeds * len(g.Models) * len(g.ResistanceCmH2OSPerL) * len(g.ComplianceMLPerCmH2O) * len(g.Settings) * len(g.Noise); len(errs) == 0 && n > MaxCases {
+		bad("the grid has %d patients, more than %d: split it", n, MaxCases)
 	}
 	if len(errs) > 0 {
 		return nil, errors.Join(errs...)

@@ -579,3 +579,57 @@ func TestCaseScoreByHand(t *testing.T) {
 		t.Errorf("high-peak alerts %d, false %d; want 1, 1", fp.Alerts, fp.FalseAlerts)
 	}
 }
+
+// FuzzParseGrid feeds arbitrary grid files to the parser and the
+// expansion: neither may panic, and an accepted grid expands into valid
+// cases or a list of problems.
+func FuzzParseGrid(f *testing.F) {
+	files, err := filepath.Glob(filepath.Join("testdata", "*.yaml"))
+	if err != nil || len(files) == 0 {
+		f.Fatalf("no seeds in testdata: %v", err)
+	}
+	for _, name := range files {
+		data, err := os.ReadFile(name)
+		if err != nil {
+			f.Fatal(err)
+		}
+		f.Add(data)
+	}
+	f.Fuzz(func(t *testing.T, data []byte) {
+		g, err := ParseGrid(data)
+		if err != nil {
+			return
+		}
+		// Keep each expansion small: the fuzzer should test parsing and
+		// validation, not build large plans.
+		if g.Seeds*len(g.Models)*len(g.ResistanceCmH2OSPerL)*len(g.ComplianceMLPerCmH2O)*len(g.Settings)*len(g.Noise) > 50 {
+			return
+		}
+		plan, err := g.Expand()
+		if err == nil && len(plan.Cases) == 0 {
+			t.Error("an accepted grid expanded to no cases")
+		}
+	})
+}
+
+// TestTestdataGrids expands the example grids in testdata.
+func TestTestdataGrids(t *testing.T) {
+	for _, tc := range []struct {
+		file  string
+		cases int
+	}{{"small.yaml", 4}, {"pressure-control.yaml", 6}} {
+		t.Run(tc.file, func(t *testing.T) {
+			g, err := LoadGrid(filepath.Join("testdata", tc.file))
+			if err != nil {
+				t.Fatal(err)
+			}
+			plan, err := g.Expand()
+			if err != nil {
+				t.Fatal(err)
+			}
+			if len(plan.Cases) != tc.cases {
+				t.Errorf("%d cases, want %d", len(plan.Cases), tc.cases)
+			}
+		})
+	}
+}
