@@ -84,13 +84,12 @@ type AlertEvent struct {
 // value (null in the breath record).
 type Estimate struct {
 	// Truth indexes CaseResult.Truth.
-	Truth        int32
-	RCmH2OSPerL  float32
-	CMLPerCmH2O  float32
-	TauS         float32
-	TrappedML    float32
-	PEEPiCmH2O   float32
-	EndExpFlowOK bool // the breath had an end-expiratory flow value
+	Truth       int32
+	RCmH2OSPerL float32
+	CMLPerCmH2O float32
+	TauS        float32
+	TrappedML   float32
+	PEEPiCmH2O  float32
 }
 
 // CaseResult is everything one simulated patient produced.
@@ -335,13 +334,12 @@ func (r *CaseResult) match(b *analyze.Breath, ti int) int {
 		return ti
 	}
 	r.Estimates = append(r.Estimates, Estimate{
-		Truth:        int32(best),
-		RCmH2OSPerL:  float32(b.RCmH2OSPerL),
-		CMLPerCmH2O:  float32(b.CMLPerCmH2O),
-		TauS:         float32(b.TauS),
-		TrappedML:    float32(b.TrappedML),
-		PEEPiCmH2O:   float32(b.PEEPiCmH2O),
-		EndExpFlowOK: !math.IsNaN(b.EndExpFlowLPM),
+		Truth:       int32(best),
+		RCmH2OSPerL: float32(b.RCmH2OSPerL),
+		CMLPerCmH2O: float32(b.CMLPerCmH2O),
+		TauS:        float32(b.TauS),
+		TrappedML:   float32(b.TrappedML),
+		PEEPiCmH2O:  float32(b.PEEPiCmH2O),
 	})
 	return best + 1
 }
