@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"path/filepath"
 	"strings"
@@ -218,8 +219,7 @@ func printSweepHeadline(w io.Writer, s *sweep.Summary) {
 func fmtRatio(n sweep.Num) string { return fmtNum(n*100, 1) }
 
 func fmtNum(n sweep.Num, prec int) string {
-	b, _ := n.MarshalJSON()
-	if string(b) == "null" {
+	if f := float64(n); math.IsNaN(f) || math.IsInf(f, 0) {
 		return "-"
 	}
 	return fmt.Sprintf("%.*f", prec, float64(n))
