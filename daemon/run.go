@@ -210,7 +210,7 @@ func (d *daemon) Run(ctx context.Context) error {
 		return d.finish(err)
 	case <-ctx.Done():
 	}
-	d.log.Info().Dur("limit", cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
+	d.log.Info().Stringer("limit", cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
 	// The publisher's own drain is bounded by shutdown_timeout; the margin
 	// covers the sources and analysis before it.
 	limit := cfg.ShutdownTimeout + 5*time.Second

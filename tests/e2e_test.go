@@ -103,6 +103,11 @@ log:
 nats:
   embedded:
     port: %d
+# What the subscriber saw is compared with JetStream: no signal-lost
+# alert may race in when the patient's recording ends.
+detectors:
+  signal:
+    lost_after_s: 600
 streams:
   - id: bed-1
     source: serial://%s?baud=115200

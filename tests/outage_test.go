@@ -34,6 +34,11 @@ nats:
     max_bytes: 16MiB
   breaths_stream:
     max_bytes: 64MiB
+# The counts compared below must not race a signal-lost alert raised
+# when the patient's recording ends.
+detectors:
+  signal:
+    lost_after_s: 600
 streams:
   - id: bed-5
     source: serial://%s?baud=115200
