@@ -55,7 +55,7 @@ func (a *app) demoCommand() *cobra.Command {
 				// vanishes when it ends: expected warnings, not shown.)
 				log = log.Level(zerolog.ErrorLevel)
 			}
-			return runDemo(cmd.Context(), opts, cmd.OutOrStdout(), log)
+			return runDemo(cmd.Context(), opts, cmd.OutOrStdout(), cmd.ErrOrStderr(), log)
 		},
 	}
 	f := cmd.Flags()
@@ -68,8 +68,14 @@ func (a *app) demoCommand() *cobra.Command {
 }
 
 // runDemo runs the demo until the scenario has played or ctx is cancelled,
-// and prints the summary.
-func runDemo(ctx context.Context, opts demoOptions, out io.Writer, log zerolog.Logger) error {
+// and prints the summary. The view goes to out; so do the caution and the
+// summary, except with --json, where they go to errOut so that out stays
+// pure NDJSON.
+func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log zerolog.Logger) error {
+	view := out
+	if opts.JSON {
+		out = errOut
+	}
 	sc, err := simulator.LoadScenario(opts.Scenario)
 	if err != nil {
 		return &UsageError{Err: fmt.Errorf("--scenario: %w", err)}
@@ -146,15 +152,15 @@ func runDemo(ctx context.Context, opts demoOptions, out io.Writer, log zerolog.L
 		return fmt.Errorf("connect to the demo's NATS at %s: %w", info.NATSURL, err)
 	}
 	defer nc.Close()
-	view := newWatchView(out, watchOptions{Prefix: cfg.NATS.SubjectPrefix, JSON: opts.JSON, Plain: opts.Plain, PlainEvery: 5 * time.Second, Footer: Caution})
-	stops, err := view.subscribe(ctx, nc, log.Warn)
+	v := newWatchView(view, watchOptions{Prefix: cfg.NATS.SubjectPrefix, JSON: opts.JSON, Plain: opts.Plain, PlainEvery: 5 * time.Second, Footer: Caution})
+	stops, err := v.subscribe(ctx, nc, log.Warn)
 	if err != nil {
 		return err
 	}
 	vctx, stopView := context.WithCancel(context.WithoutCancel(ctx))
 	defer stopView()
 	viewDone := make(chan struct{})
-	go func() { defer close(viewDone); view.loop(vctx) }()
+	go func() { defer close(viewDone); v.loop(vctx) }()
 
 	// Play the scenario; Ctrl-C (or the daemon failing) ends it early and
 	// the summary still shows.
@@ -196,7 +202,7 @@ func runDemo(ctx context.Context, opts demoOptions, out io.Writer, log zerolog.L
 	<-viewDone
 
 	fmt.Fprintf(out, "\ndemo: finished after %.0f s. Alerts raised and cleared:\n", time.Since(start).Seconds())
-	sum := view.summary()
+	sum := v.summary()
 	if len(sum) == 0 {
 		fmt.Fprintln(out, "  (no alerts)")
 	}

@@ -33,6 +33,9 @@ type watchOptions struct {
 	JSON   bool
 	// Plain forces line output even on a terminal.
 	Plain bool
+	// Status adds the status heartbeats to the JSON output (they are not
+	// part of the breath and alert contracts).
+	Status bool
 	// Streams limits the view to these stream ids; empty means all.
 	Streams []string
 	// PlainEvery is the period of the per-stream lines in plain output.
@@ -89,6 +92,7 @@ func (a *app) watchCommand() *cobra.Command {
 	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
 	f.BoolVar(&opts.JSON, "json", false, "print every message as one line of JSON (NDJSON) instead of the view")
 	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
+	f.BoolVar(&opts.Status, "status", false, "with --json, also print the status heartbeats")
 	f.StringSliceVar(&opts.Streams, "stream", nil, "show only these streams (repeat or comma-separate)")
 	return cmd
 }
@@ -300,7 +304,7 @@ func (v *watchView) handle(kind string, data []byte) {
 			v.write(line + "\n")
 		}
 	}
-	if v.opts.JSON {
+	if v.opts.JSON && (kind != "status" || v.opts.Status) {
 		v.write(string(data) + "\n")
 	}
 	v.dirty = true
