@@ -41,6 +41,11 @@ type Config struct {
 	// escalation and acknowledgement, per condition (owned by package
 	// alerts).
 	Alarms alerts.LifecycleConfig `mapstructure:"alarms"`
+	// Role is all (the single-node daemon), edge (read sources, publish
+	// samples to the cluster) or worker (analyse the partitions it owns).
+	Role string `mapstructure:"role"`
+	// ScaleOut configures the edge and worker roles.
+	ScaleOut ScaleOut `mapstructure:"scaleout"`
 }
 
 // Log configures the daemon's zerolog logger.
@@ -209,6 +214,8 @@ func Default() *Config {
 		Analysis:  analyze.DefaultConfig(),
 		Detectors: analyze.DefaultDetectorConfig(),
 		Alarms:    alerts.DefaultLifecycleConfig(),
+		Role:      RoleAll,
+		ScaleOut:  defaultScaleOut(),
 	}
 }
 

@@ -45,6 +45,7 @@ func (c *Config) validate(p *problems) {
 	p.add(c.Analysis.Validate("analysis")...)
 	p.add(c.Detectors.Validate("detectors")...)
 	p.add(c.Alarms.Validate("alarms")...)
+	c.validateScaleOut(p)
 }
 
 // validateNATS checks the nats section, including the rule that an embedded
