@@ -32,7 +32,7 @@ func (a *app) runCommand() *cobra.Command {
 			if err != nil {
 				return &UsageError{Err: err}
 			}
-			if len(cfg.Streams) == 0 {
+			if len(cfg.Streams) == 0 && cfg.Role != config.RoleWorker {
 				where := "the configuration"
 				if cfgPath != "" {
 					where = cfgPath
@@ -114,6 +114,12 @@ func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*dae
 // stopped. Whatever is still in the spool is sent at the next start.
 func (d *daemon) Run(ctx context.Context) error {
 	cfg := d.cfg
+	switch cfg.Role {
+	case config.RoleEdge:
+		return d.runEdge(ctx)
+	case config.RoleWorker:
+		return d.runWorker(ctx)
+	}
 	var httpSrv *httpServer
 	if cfg.HTTP.Listen != "" {
 		h, err := newHTTPServer(cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())

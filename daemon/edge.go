@@ -1,0 +1,174 @@
+package daemon
+
+import (
+	"context"
+	"fmt"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+	"github.com/rs/zerolog"
+	"golang.org/x/sync/errgroup"
+
+	"trapline/config"
+	"trapline/ingest"
+)
+
+// edge is the edge role: it reads the configured streams and publishes their
+// samples, in batches of scaleout.batch, in the binary framing to
+// <prefix>.samples.<stream>, where the samples stream of the cluster keeps
+// them for the workers. It analyses nothing.
+type edge struct {
+	cfg   *config.Config
+	log   zerolog.Logger
+	names scaleNames
+	js    jetstream.JetStream
+
+	sent   atomic.Uint64 // messages handed to JetStream
+	failed atomic.Uint64 // messages that could not be sent or were refused
+}
+
+// runEdge runs the edge role until ctx is cancelled.
+func (d *daemon) runEdge(ctx context.Context) error {
+	cfg := d.cfg
+	b, err := openBus(cfg, d.log)
+	if err != nil {
+		return err
+	}
+	defer b.Close()
+	e := &edge{cfg: cfg, log: d.log.With().Str("role", "edge").Logger(), names: newScaleNames(cfg.NATS.SubjectPrefix)}
+	js, err := jetstream.New(b.nc, jetstream.WithPublishAsyncMaxPending(4096),
+		jetstream.WithPublishAsyncErrHandler(func(_ jetstream.JetStream, m *nats.Msg, err error) {
+			if e.failed.Add(1) == 1 {
+				e.log.Warn().Err(err).Str("subject", m.Subject).Msg("samples not stored by JetStream (warned once)")
+			}
+		}))
+	if err != nil {
+		return fmt.Errorf("jetstream: %w", err)
+	}
+	e.js = js
+	if err := ensureSamplesStream(ctx, js, e.names, &cfg.ScaleOut, scaleReplicas(b.nc, &cfg.ScaleOut), e.log); err != nil {
+		return fmt.Errorf("samples stream: %w", err)
+	}
+	g, gctx := errgroup.WithContext(ctx)
+	for _, sc := range cfg.Streams {
+		log := e.log.With().Str("stream", sc.ID).Logger()
+		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.nc}
+		if _, err := ingest.Open(sc.Source, opts); err != nil {
+			return &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
+		}
+		g.Go(func() error {
+			return supervise(gctx, log, defaultBackoff, func(ctx context.Context) error {
+				src, err := ingest.Open(sc.Source, opts)
+				if err != nil {
+					return err
+				}
+				if err := e.runSource(ctx, src); err != nil || ctx.Err() != nil {
+					return err
+				}
+				// A recording that has ended is not read again.
+				log.Info().Msg("source ended; its samples are sent")
+				<-ctx.Done()
+				return nil
+			}, nil, nil)
+		})
+	}
+	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.url).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
+	if d.opts.Ready != nil {
+		d.opts.Ready(runInfo{NATSURL: b.url})
+	}
+	err = g.Wait()
+	// Wait (bounded) for the acknowledgements of what was sent.
+	select {
+	case <-js.PublishAsyncComplete():
+	case <-time.After(cfg.ShutdownTimeout):
+	}
+	e.log.Info().Uint64("sent", e.sent.Load()).Uint64("failed", e.failed.Load()).Msg("trapline edge stopped")
+	return err
+}
+
+// runSource reads one source and publishes its samples in batches: a batch
+// goes out once it spans scaleout.batch of sample time, or once its first
+// sample has waited that long in wall time (a slow or paused source).
+func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
+	enc, err := ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{Time: true, Volume: true})
+	if err != nil {
+		return err
+	}
+	batchS := e.cfg.ScaleOut.Batch.Seconds()
+	type pending struct {
+		samples []ingest.Sample
+		since   time.Time
+	}
+	var (
+		mu  sync.Mutex
+		buf = map[string]*pending{}
+		out []byte
+	)
+	flush := func(stream string, p *pending) {
+		out = enc.AppendFrame(out[:0], stream, p.samples)
+		msg := append([]byte(nil), out...)
+		p.samples = p.samples[:0]
+		if _, err := e.js.PublishMsgAsync(&nats.Msg{Subject: e.names.prefix + ".samples." + stream, Data: msg}); err != nil {
+			e.failed.Add(1)
+			return
+		}
+		e.sent.Add(1)
+	}
+	sink := func(ev ingest.Event) {
+		if len(ev.Samples) == 0 || !ingest.ValidStreamID(ev.Stream) {
+			return
+		}
+		mu.Lock()
+		defer mu.Unlock()
+		p := buf[ev.Stream]
+		if p == nil {
+			p = &pending{}
+			buf[ev.Stream] = p
+		}
+		for _, s := range ev.Samples {
+			if len(p.samples) == 0 {
+				p.since = time.Now()
+			}
+			p.samples = append(p.samples, s)
+			if s.TimeS-p.samples[0].TimeS >= batchS-1e-9 {
+				flush(ev.Stream, p)
+			}
+		}
+	}
+	done := make(chan struct{})
+	var wg sync.WaitGroup
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		t := time.NewTicker(e.cfg.ScaleOut.Batch / 2)
+		defer t.Stop()
+		for {
+			select {
+			case <-done:
+				return
+			case now := <-t.C:
+				mu.Lock()
+				for stream, p := range buf {
+					if len(p.samples) > 0 && now.Sub(p.since) >= e.cfg.ScaleOut.Batch {
+						flush(stream, p)
+					}
+				}
+				mu.Unlock()
+			}
+		}
+	}()
+	err = src.Run(ctx, sink)
+	close(done)
+	wg.Wait()
+	mu.Lock()
+	for stream, p := range buf {
+		if len(p.samples) > 0 {
+			flush(stream, p)
+		}
+	}
+	mu.Unlock()
+	return err
+}

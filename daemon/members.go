@@ -1,0 +1,173 @@
+package daemon
+
+import (
+	"context"
+	"errors"
+	"hash/fnv"
+	"slices"
+	"strconv"
+	"sync"
+	"time"
+
+	"github.com/nats-io/nats.go/jetstream"
+	"github.com/rs/zerolog"
+)
+
+// members keeps this worker's membership alive in a key-value bucket and
+// tells which workers are alive: every worker puts its id every heartbeat;
+// a worker not heard from for member_ttl is gone (the bucket's TTL removes
+// its key as well, and a local clock judges it even before that).
+type members struct {
+	kv        jetstream.KeyValue
+	id        string
+	heartbeat time.Duration
+	ttl       time.Duration
+	log       zerolog.Logger
+
+	mu   sync.Mutex
+	seen map[string]time.Time // worker id → local time it was last heard
+
+	// changed receives the sorted live members whenever they change; it
+	// holds only the latest view.
+	changed chan []string
+}
+
+// ensureMembersBucket creates the membership bucket with a TTL.
+func ensureMembersBucket(ctx context.Context, js jetstream.JetStream, name string, ttl time.Duration, replicas int) (jetstream.KeyValue, error) {
+	var kv jetstream.KeyValue
+	err := retry(ctx, time.Minute, 10*time.Second, time.Second, func(ctx context.Context) error {
+		var err error
+		kv, err = js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
+			Bucket: name, Description: "trapline workers alive (TTL heartbeats)",
+			History: 1, TTL: ttl, Replicas: replicas, Storage: jetstream.FileStorage,
+		})
+		return err
+	})
+	return kv, err
+}
+
+func newMembers(kv jetstream.KeyValue, id string, heartbeat, ttl time.Duration, log zerolog.Logger) *members {
+	return &members{kv: kv, id: id, heartbeat: heartbeat, ttl: ttl, log: log,
+		seen: map[string]time.Time{}, changed: make(chan []string, 1)}
+}
+
+// Run heartbeats and watches the bucket until ctx is cancelled. A stopped
+// worker does not remove its key: its partitions move after member_ttl, as
+// they would after a crash, and the others replay from its last checkpoint.
+func (m *members) Run(ctx context.Context) error {
+	w, err := m.kv.WatchAll(ctx)
+	if err != nil {
+		return err
+	}
+	defer func() { _ = w.Stop() }()
+	beat := time.NewTicker(m.heartbeat)
+	defer beat.Stop()
+	check := time.NewTicker(m.heartbeat / 2)
+	defer check.Stop()
+	var last []string
+	initial := true
+	m.put(ctx)
+	for {
+		select {
+		case <-ctx.Done():
+			return nil
+		case <-beat.C:
+			m.put(ctx)
+		case e, ok := <-w.Updates():
+			if !ok {
+				return errors.New("membership watch ended")
+			}
+			if e == nil {
+				initial = false // the stored values have been delivered
+				continue
+			}
+			heard := time.Now()
+			if initial {
+				// A stored value may be old: a worker that died just now.
+				if c := e.Created(); c.Before(heard) {
+					heard = c
+				}
+			}
+			m.mu.Lock()
+			if e.Operation() == jetstream.KeyValuePut {
+				m.seen[e.Key()] = heard
+			} else {
+				delete(m.seen, e.Key())
+			}
+			m.mu.Unlock()
+		case <-check.C:
+		}
+		live := m.live(time.Now())
+		if !slices.Equal(live, last) {
+			last = live
+			m.log.Info().Strs("members", live).Msg("workers changed")
+			select {
+			case <-m.changed:
+			default:
+			}
+			m.changed <- live
+		}
+	}
+}
+
+// put renews this worker's key; a failure is only logged (the next beat
+// tries again, and the worker is gone for the others after member_ttl).
+func (m *members) put(ctx context.Context) {
+	cctx, cancel := context.WithTimeout(ctx, m.heartbeat)
+	defer cancel()
+	if _, err := m.kv.Put(cctx, m.id, []byte(time.Now().UTC().Format(time.RFC3339Nano))); err != nil && ctx.Err() == nil {
+		m.log.Warn().Err(err).Msg("membership heartbeat failed")
+	}
+}
+
+// live returns the sorted ids heard from within the TTL.
+func (m *members) live(now time.Time) []string {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	var out []string
+	for id, t := range m.seen {
+		if now.Sub(t) < m.ttl {
+			out = append(out, id)
+		}
+	}
+	slices.Sort(out)
+	return out
+}
+
+// rendezvousOwner returns the member that owns partition p: the one with
+// the highest hash of (member, p) (Thaler and Ravishankar, "A name-based
+// mapping scheme for rendezvous", 1996). When a member leaves, only its own
+// partitions move, spread over the others.
+func rendezvousOwner(p int, live []string) string {
+	var best string
+	var bestH uint64
+	for _, id := range live {
+		h := fnv.New64a()
+		_, _ = h.Write([]byte(id))
+		_, _ = h.Write([]byte{0})
+		_, _ = h.Write([]byte(strconv.Itoa(p)))
+		// FNV alone mixes the last bytes poorly; finish with a 64-bit mixer
+		// (the splitmix64 finaliser, Steele et al. 2014).
+		x := h.Sum64()
+		x ^= x >> 30
+		x *= 0xbf58476d1ce4e5b9
+		x ^= x >> 27
+		x *= 0x94d049bb133111eb
+		x ^= x >> 31
+		if best == "" || x > bestH || x == bestH && id < best {
+			best, bestH = id, x
+		}
+	}
+	return best
+}
+
+// ownedPartitions returns the partitions of n that id owns among live.
+func ownedPartitions(id string, live []string, n int) []int {
+	var out []int
+	for p := range n {
+		if rendezvousOwner(p, live) == id {
+			out = append(out, p)
+		}
+	}
+	return out
+}
