@@ -631,4 +631,3 @@ func (pt *partition) checkpoint(ctx context.Context) error {
 	pt.rec, pt.rev = rec, rev
 	return nil
 }
-
