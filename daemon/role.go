@@ -64,6 +64,12 @@ func (n scaleNames) partOf(subject string) (int, string, bool) {
 // subject transform to a partition chosen by a deterministic hash of the
 // stream id (the server's partition function), kept for a short time.
 func samplesStreamConfig(n scaleNames, so *config.ScaleOut, replicas int) jetstream.StreamConfig {
+	// Asynchronous persistence is faster but the server refuses it on a
+	// replicated stream (where the replicas are the safety).
+	persist := jetstream.DefaultPersistMode
+	if replicas == 1 {
+		persist = jetstream.AsyncPersistMode
+	}
 	return jetstream.StreamConfig{
 		Name:        n.samples,
 		Description: "trapline samples from edge ingesters, partitioned by stream id",
@@ -78,7 +84,7 @@ func samplesStreamConfig(n scaleNames, so *config.ScaleOut, replicas int) jetstr
 		Storage:     jetstream.FileStorage,
 		Replicas:    replicas,
 		Duplicates:  min(30*time.Second, so.SamplesMaxAge),
-		PersistMode: jetstream.AsyncPersistMode,
+		PersistMode: persist,
 	}
 }
 

@@ -1,0 +1,463 @@
+package tests
+
+import (
+	"bufio"
+	"context"
+	"encoding/json"
+	"fmt"
+	"math"
+	"path/filepath"
+	"sort"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/alerts"
+	"trapline/daemon"
+)
+
+// cluster is three in-process NATS servers with JetStream, routed to each
+// other on 127.0.0.1.
+type cluster struct {
+	srv  []*server.Server
+	opts []*server.Options
+}
+
+func startCluster(t *testing.T) *cluster {
+	t.Helper()
+	c := &cluster{}
+	cports := []int{freePort(t), freePort(t), freePort(t)}
+	var routes []string
+	for _, p := range cports {
+		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", p))
+	}
+	for i := range 3 {
+		o := &server.Options{
+			ServerName: fmt.Sprintf("n%d", i), Host: "127.0.0.1", Port: freePort(t),
+			JetStream: true, StoreDir: t.TempDir(), NoSigs: true,
+			JetStreamMaxStore: 1 << 30, JetStreamMaxMemory: 64 << 20,
+			Cluster: server.ClusterOpts{Name: "trapline-test", Host: "127.0.0.1", Port: cports[i]},
+			Routes:  server.RoutesFromStr(strings.Join(routes, ",")),
+		}
+		c.opts = append(c.opts, o)
+		c.srv = append(c.srv, c.start(t, o))
+	}
+	t.Cleanup(func() {
+		for _, s := range c.srv {
+			if s != nil {
+				s.Shutdown()
+				s.WaitForShutdown()
+			}
+		}
+	})
+	c.waitReady(t)
+	return c
+}
+
+func (c *cluster) start(t *testing.T, o *server.Options) *server.Server {
+	t.Helper()
+	s, err := server.NewServer(o)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s.Start()
+	if !s.ReadyForConnections(10 * time.Second) {
+		t.Fatalf("server %s not ready", o.ServerName)
+	}
+	return s
+}
+
+// waitReady waits (at most 30 s) for a JetStream meta leader and every
+// live node current.
+func (c *cluster) waitReady(t *testing.T) {
+	t.Helper()
+	if !pollUntil(30*time.Second, func() bool {
+		leader := false
+		for _, s := range c.srv {
+			if s == nil {
+				continue
+			}
+			if !s.JetStreamIsCurrent() {
+				return false
+			}
+			leader = leader || s.JetStreamIsLeader()
+		}
+		return leader
+	}) {
+		t.Fatal("no JetStream leader within 30 s")
+	}
+}
+
+func (c *cluster) urls() string {
+	var u []string
+	for _, o := range c.opts {
+		u = append(u, fmt.Sprintf("nats://127.0.0.1:%d", o.Port))
+	}
+	return strings.Join(u, ",")
+}
+
+// simFile writes a simulated patient to a file with `trapline sim`.
+func simFile(t *testing.T, dir, name, scenario string, dur time.Duration) string {
+	t.Helper()
+	p := filepath.Join(dir, name+".csv")
+	code, out := runDaemon(t.Context(), "sim", "--scenario", scenario, "--duration", dur.String(), "--speed", "max", "--out", p)
+	if code != daemon.ExitOK {
+		t.Fatalf("sim %s: exit %d: %s", scenario, code, out)
+	}
+	return p
+}
+
+// reference runs `trapline analyze` on a recording: the single-node result.
+func reference(t *testing.T, file, stream string) (alertsOut []alerts.Event, breaths int) {
+	t.Helper()
+	code, out := runDaemon(t.Context(), "analyze", "--stream", stream, file)
+	if code != daemon.ExitOK {
+		t.Fatalf("analyze %s: exit %d", file, code)
+	}
+	sc := bufio.NewScanner(strings.NewReader(out))
+	sc.Buffer(nil, 1<<20)
+	for sc.Scan() {
+		var probe struct {
+			Type string `json:"type"`
+		}
+		if json.Unmarshal(sc.Bytes(), &probe) != nil {
+			continue
+		}
+		switch probe.Type {
+		case "alert":
+			var ev alerts.Event
+			if json.Unmarshal(sc.Bytes(), &ev) == nil {
+				alertsOut = append(alertsOut, ev)
+			}
+		case "breath":
+			breaths++
+		}
+	}
+	return alertsOut, breaths
+}
+
+// clinical keeps the physiological events as "condition state t_s", the
+// part of an event that does not depend on the wall clock (ids do).
+func clinical(evs []alerts.Event) []string {
+	var out []string
+	for _, ev := range evs {
+		if ev.Class == "technical" {
+			continue
+		}
+		out = append(out, fmt.Sprintf("%s %s %s %.2f", ev.Stream, ev.Condition, ev.State, ev.TS))
+	}
+	sort.Strings(out)
+	return out
+}
+
+// breathLog collects breath records by stream and number.
+type breathLog struct {
+	mu   sync.Mutex
+	seen map[string]int       // "stream/seq" → times
+	last map[string]time.Time // stream → arrival of its latest breath
+}
+
+func (b *breathLog) add(m *nats.Msg) {
+	var br struct {
+		Stream string `json:"stream"`
+		Seq    int    `json:"seq"`
+	}
+	if json.Unmarshal(m.Data, &br) != nil {
+		return
+	}
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	b.seen[fmt.Sprintf("%s/%d", br.Stream, br.Seq)]++
+	b.last[br.Stream] = time.Now()
+}
+
+func (b *breathLog) counts() (perStream map[string]int, dups []string) {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	perStream = map[string]int{}
+	for k, n := range b.seen {
+		perStream[k[:strings.IndexByte(k, '/')]]++
+		if n > 1 {
+			dups = append(dups, k)
+		}
+	}
+	return perStream, dups
+}
+
+// scaleSetup is a cluster, signals and the configurations of the roles.
+type scaleSetup struct {
+	c       *cluster
+	files   map[string]string
+	edgeCfg string
+	workers []string
+	nc      *nats.Conn
+	js      jetstream.JetStream
+	breaths *breathLog
+	outMu   sync.Mutex
+	out     []string
+}
+
+// run runs `trapline run -c cfg` in-process until ctx ends and keeps its
+// output for the log of a failed test.
+func (s *scaleSetup) run(ctx context.Context, cfg string) {
+	code, out := runDaemon(ctx, "run", "-c", cfg)
+	s.outMu.Lock()
+	s.out = append(s.out, fmt.Sprintf("%s: exit %d\n%s", cfg, code, out))
+	s.outMu.Unlock()
+}
+
+const workerYAML = `role: worker
+data_dir: %s
+http: {listen: ""}
+log: {level: warn}
+nats: {url: "%s", replicas: 3}
+scaleout:
+  partitions: 8
+  worker_id: %s
+  heartbeat: 300ms
+  member_ttl: 1500ms
+  checkpoint: 500ms
+`
+
+func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) *scaleSetup {
+	t.Helper()
+	s := &scaleSetup{c: startCluster(t), files: map[string]string{}, breaths: &breathLog{seen: map[string]int{}, last: map[string]time.Time{}}}
+	dir := t.TempDir()
+	// Two recordings, played by ten beds each: dynamic hyperinflation
+	// (air trapping from the start) and a stiffening lung.
+	hyper := simFile(t, dir, "hyper", "hyperinflation", dur)
+	stiff := simFile(t, dir, "stiff", "stiffening", dur)
+	var edge strings.Builder
+	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nhttp: {listen: \"\"}\nlog: {level: warn}\nnats: {url: \"%s\"}\nscaleout: {partitions: 8}\nstreams:\n", t.TempDir(), s.c.urls())
+	for i := range streams {
+		id := fmt.Sprintf("bed-%02d", i)
+		f := hyper
+		if i%2 == 1 {
+			f = stiff
+		}
+		s.files[id] = f
+		fmt.Fprintf(&edge, "  - id: %s\n    source: file://%s?pace=realtime&speed=%g\n", id, f, speed)
+	}
+	s.edgeCfg = writeConfig(t, edge.String())
+	for _, w := range []string{"w1", "w2"} {
+		s.workers = append(s.workers, writeConfig(t, fmt.Sprintf(workerYAML, t.TempDir(), s.c.urls(), w)))
+	}
+	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(nc.Close)
+	t.Cleanup(func() {
+		if t.Failed() {
+			s.outMu.Lock()
+			defer s.outMu.Unlock()
+			for _, o := range s.out {
+				t.Log(o)
+			}
+		}
+	})
+	s.nc = nc
+	if s.js, err = jetstream.New(nc); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := nc.Subscribe("trapline.breath.>", s.breaths.add); err != nil {
+		t.Fatal(err)
+	}
+	return s
+}
+
+// waitMembers waits until the membership bucket lists n workers.
+func (s *scaleSetup) waitMembers(t *testing.T, n int) {
+	t.Helper()
+	if !pollUntil(30*time.Second, func() bool {
+		ctx, cancel := context.WithTimeout(t.Context(), 2*time.Second)
+		defer cancel()
+		kv, err := s.js.KeyValue(ctx, "TRAPLINE_MEMBERS")
+		if err != nil {
+			return false
+		}
+		keys, err := kv.Keys(ctx)
+		return err == nil && len(keys) >= n
+	}) {
+		t.Fatalf("fewer than %d workers joined within 30 s", n)
+	}
+}
+
+// want is the single-node result of every stream: its clinical events and
+// its number of breaths.
+func (s *scaleSetup) want(t *testing.T) ([]string, map[string]int) {
+	t.Helper()
+	var evs []alerts.Event
+	nb := map[string]int{}
+	cache := map[string][]alerts.Event{}
+	cacheN := map[string]int{}
+	for id, f := range s.files {
+		if _, ok := cache[f]; !ok {
+			cache[f], cacheN[f] = reference(t, f, "x")
+		}
+		for _, ev := range cache[f] {
+			ev.Stream = id
+			evs = append(evs, ev)
+		}
+		nb[id] = cacheN[f]
+	}
+	return clinical(evs), nb
+}
+
+// stored waits (at most 30 s) until the alert stream holds at least n
+// clinical events and returns them all.
+func (s *scaleSetup) stored(t *testing.T, n int) []alerts.Event {
+	t.Helper()
+	var got []alerts.Event
+	pollUntil(30*time.Second, func() bool {
+		got = storedAlerts(t, s.js, "TRAPLINE_ALERTS")
+		return len(clinical(got)) >= n
+	})
+	return got
+}
+
+func diffLists(a, b []string) (onlyA, onlyB []string) {
+	ca := map[string]int{}
+	for _, x := range a {
+		ca[x]++
+	}
+	for _, x := range b {
+		if ca[x] > 0 {
+			ca[x]--
+		} else {
+			onlyB = append(onlyB, x)
+		}
+	}
+	for x, n := range ca {
+		for range n {
+			onlyA = append(onlyA, x)
+		}
+	}
+	return onlyA, onlyB
+}
+
+// checkBreaths compares the breaths per stream with the single-node run:
+// every breath once, the same number (the first and last breath of a feed
+// may be incomplete on either side: within 1).
+func (s *scaleSetup) checkBreaths(t *testing.T, nb map[string]int) {
+	t.Helper()
+	per, dups := s.breaths.counts()
+	if len(dups) > 0 {
+		t.Errorf("breaths published more than once: %v", dups)
+	}
+	for id, n := range nb {
+		if math.Abs(float64(per[id]-n)) > 1 {
+			t.Errorf("stream %s: %d breaths, single node %d", id, per[id], n)
+		}
+	}
+}
+
+// TestClusterTwoWorkersOneEdge plays 20 beds through an edge into a
+// three-node cluster and two workers: every breath is analysed once and the
+// alerts are those of a single-node analysis of the same signals.
+func TestClusterTwoWorkersOneEdge(t *testing.T) {
+	s := newScaleSetup(t, 20, 150*time.Second, 25)
+	wantEv, nb := s.want(t)
+	if len(wantEv) == 0 {
+		t.Fatal("the signals raise no alert: the comparison would be empty")
+	}
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer cancel()
+	var wg sync.WaitGroup
+	defer wg.Wait()
+	defer cancel()
+	for _, w := range s.workers {
+		wg.Add(1)
+		go func() { defer wg.Done(); s.run(ctx, w) }()
+	}
+	s.waitMembers(t, 2)
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+
+	got := s.stored(t, len(wantEv))
+	// The feeds last 6 s; give the last breaths time to arrive.
+	pollUntil(20*time.Second, func() bool {
+		per, _ := s.breaths.counts()
+		for id, n := range nb {
+			if per[id] < n-1 {
+				return false
+			}
+		}
+		return true
+	})
+	onlyWant, onlyGot := diffLists(wantEv, clinical(got))
+	if len(onlyWant)+len(onlyGot) > 0 {
+		t.Errorf("alerts differ from the single-node run:\nmissing %v\nextra %v", onlyWant, onlyGot)
+	}
+	checkOnce(t, got, got)
+	s.checkBreaths(t, nb)
+	t.Logf("%d clinical alert events, %d streams", len(wantEv), len(nb))
+}
+
+// TestClusterWorkerKilled kills one of two workers (SIGKILL) while 20 beds
+// play: its streams are analysed again by the other within 10 s, and no
+// alert event is lost or stored twice.
+func TestClusterWorkerKilled(t *testing.T) {
+	s := newScaleSetup(t, 20, 300*time.Second, 20)
+	wantEv, _ := s.want(t)
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer cancel()
+	var wg sync.WaitGroup
+	defer wg.Wait()
+	defer cancel()
+	victim := startDaemonProcess(t, "run", "-c", s.workers[0])
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.workers[1]) }()
+	s.waitMembers(t, 2)
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+
+	// Let every stream get going, then kill w1 mid-feed.
+	if !pollUntil(30*time.Second, func() bool { per, _ := s.breaths.counts(); return len(per) == len(s.files) }) {
+		t.Fatal("not every stream produced a breath within 30 s")
+	}
+	time.Sleep(2 * time.Second) // bounded: a stretch of analysis before the kill
+	victim.kill()
+	killed := time.Now()
+	// Every stream must produce breaths again within 10 s of the kill.
+	ok := pollUntil(10*time.Second, func() bool {
+		s.breaths.mu.Lock()
+		defer s.breaths.mu.Unlock()
+		for id := range s.files {
+			if !s.breaths.last[id].After(killed) {
+				return false
+			}
+		}
+		return true
+	})
+	if !ok {
+		t.Errorf("some streams had no breath within 10 s of the kill")
+	} else {
+		t.Logf("every stream analysed again %.1f s after the kill", time.Since(killed).Seconds())
+	}
+	got := s.stored(t, len(wantEv))
+	checkOnce(t, got, got)
+	onlyWant, onlyGot := diffLists(wantEv, clinical(got))
+	if len(onlyWant)+len(onlyGot) > 0 {
+		t.Errorf("alerts differ from the single-node run across the handover:\nmissing %v\nextra %v", onlyWant, onlyGot)
+	}
+}
+
+
+// pollUntil polls cond every 50 ms for at most d and reports whether it
+// became true.
+func pollUntil(d time.Duration, cond func() bool) bool {
+	deadline := time.Now().Add(d)
+	for !cond() {
+		if time.Now().After(deadline) {
+			return false
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	return true
+}
