@@ -448,7 +448,6 @@ func TestClusterWorkerKilled(t *testing.T) {
 	}
 }
 
-
 // pollUntil polls cond every 50 ms for at most d and reports whether it
 // became true.
 func pollUntil(d time.Duration, cond func() bool) bool {
