@@ -77,6 +77,13 @@ type ackRequest struct {
 	Reply  chan error
 }
 
+// ackLine leads acknowledgements to one run of the analysis goroutine;
+// done closes when that goroutine has stopped taking them.
+type ackLine struct {
+	ch   chan ackRequest
+	done <-chan struct{}
+}
+
 // stream is one configured stream and its live state, shared with the
 // health checks, the metrics and the ack handler.
 type stream struct {
@@ -96,7 +103,7 @@ type stream struct {
 	// acks is nil while the pipeline is down; the ack handler then answers
 	// "not running".
 	ackMu sync.RWMutex
-	acks  chan ackRequest
+	acks  *ackLine
 
 	dropEpisode bool // touched by the source goroutine only
 	// activeIDs are the alarms raised and not cleared; touched by the
@@ -161,14 +168,17 @@ func (s *stream) ready() error {
 // answer, at most until ctx ends.
 func (s *stream) ack(ctx context.Context, id, by string) error {
 	s.ackMu.RLock()
-	ch := s.acks
+	line := s.acks
 	s.ackMu.RUnlock()
-	if ch == nil {
-		return fmt.Errorf("stream %s is not running", s.spec.ID)
+	notRunning := fmt.Errorf("stream %s is not running", s.spec.ID)
+	if line == nil {
+		return notRunning
 	}
 	req := ackRequest{ID: id, By: by, Reply: make(chan error, 1)}
 	select {
-	case ch <- req:
+	case line.ch <- req:
+	case <-line.done:
+		return notRunning
 	case <-ctx.Done():
 		return fmt.Errorf("ack %s: %w", id, ctx.Err())
 	}
@@ -198,8 +208,9 @@ func (s *stream) runOnce(ctx context.Context) error {
 
 	queue := make(chan ingest.Event, s.spec.QueueLen)
 	acks := make(chan ackRequest)
+	analysisDone := make(chan struct{})
 	s.ackMu.Lock()
-	s.acks = acks
+	s.acks = &ackLine{ch: acks, done: analysisDone}
 	s.ackMu.Unlock()
 	defer func() {
 		s.ackMu.Lock()
@@ -213,7 +224,6 @@ func (s *stream) runOnce(ctx context.Context) error {
 	// analysis itself ends when the queue is closed.
 	srcCtx, stopSource := context.WithCancel(ctx)
 	defer stopSource()
-	analysisDone := make(chan struct{})
 
 	g := new(errgroup.Group)
 	g.Go(func() error {
@@ -320,10 +330,15 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			}
 		case req := <-acks:
 			out, err := pl.Ack(req.ID, req.By, time.Now())
-			if err == nil {
-				err = s.emit(pubCtx, out, time.Time{})
+			if err != nil {
+				req.Reply <- err
+				continue
 			}
+			err = s.emit(pubCtx, out, time.Time{})
 			req.Reply <- err
+			if err != nil {
+				return err
+			}
 		}
 	}
 }
