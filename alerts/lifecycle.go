@@ -241,11 +241,14 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 	e := Event{
 		Type: "alert", Schema: EventSchema,
 		ID: a.id, Stream: l.stream, Condition: a.condition, Class: string(f.Class),
-		Priority: a.priority, State: st, Time: wall.UTC(), TS: math.Round(f.TimeS*1000) / 1000,
+		Priority: a.priority, State: st, Time: wall.UTC(), TS: f.TimeS,
 		Evidence: finite(f.Evidence), Message: msg, Predict: finite(f.Predict),
 	}
 	if e.Evidence == nil {
 		e.Evidence = map[string]float64{}
+	}
+	if math.Abs(e.TS) < 1e12 {
+		e.TS = math.Round(e.TS*1000) / 1000 // milliseconds; beyond, v·1000 could overflow
 	}
 	if f.BreathSeq >= 0 {
 		seq := f.BreathSeq

@@ -52,6 +52,9 @@ var _ streamPipeline = (*pipeline)(nil)
 // daemon's default tick period.
 const offlineTickS = 1.0
 
+// maxOfflineTicks bounds the ticks made up in one gap: an hour's worth.
+const maxOfflineTicks = 3600
+
 // newPipeline returns the live pipeline of stream; the configurations must
 // be valid.
 func newPipeline(stream string, acfg analyze.Config, dcfg analyze.DetectorConfig, lcfg alerts.LifecycleConfig) *pipeline {
@@ -137,11 +140,20 @@ func (p *pipeline) process(ss []ingest.Sample, em emitter) {
 		if p.offline() {
 			// Make the ticks the daemon would have made, once a second of
 			// stream time, through gaps too.
-			if !p.haveSample {
+			// A clock that went back restarts the ticks; a gap longer than
+			// maxOfflineTicks gets that many, then the ticks jump to the
+			// present (after an hour of silence nothing new happens each
+			// second, and a corrupt time stamp must not loop for ever).
+			if !p.haveSample || s.TimeS < p.nextTickS-offlineTickS {
 				p.nextTickS = s.TimeS + offlineTickS
 			}
-			for ; p.nextTickS <= s.TimeS; p.nextTickS += offlineTickS {
+			for n := 0; p.nextTickS <= s.TimeS; n++ {
+				if n == maxOfflineTicks {
+					p.nextTickS = s.TimeS + offlineTickS
+					break
+				}
 				p.tick(p.wallAt(p.nextTickS), em)
+				p.nextTickS += offlineTickS
 			}
 			wall = p.wallAt(s.TimeS)
 		}

@@ -412,3 +412,64 @@ func TestAirTrappingOnRandomPatients(t *testing.T) {
 		t.Errorf("%d trapping and %d quiet patients: the draw does not test both sides", trapping, quiet)
 	}
 }
+
+// TestPipelineSurvivesHostileSamples feeds samples with NaN, infinite,
+// huge, repeated and backward values, and status events and ticks at odd
+// times: no panic, and every alert event encodes.
+func TestPipelineSurvivesHostileSamples(t *testing.T) {
+	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 0, -1e308, 1e308, 5e-324, 1, -1}
+	rng := rand.New(rand.NewPCG(5, 6))
+	for _, offline := range []bool{false, true} {
+		var p *pipeline
+		if offline {
+			p = newOfflinePipeline("bed-x", simEpoch, analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
+		} else {
+			p = newPipeline("bed-x", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
+			p.now = func() time.Time { return simEpoch }
+		}
+		sc := simulator.Steady{RCmH2OSPerL: 25, CMLPerCmH2O: 60, VtML: 600, FlowLPM: 45, RateBPM: 24, PEEPCmH2O: 5,
+			DurationS: 300, SampleRateHz: 50}.Scenario()
+		ss, _, err := simulator.Run(sc)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var events int
+		for i := 0; i < len(ss); i += 10 {
+			batch := append([]ingest.Sample(nil), ss[i:min(i+10, len(ss))]...)
+			for j := range batch {
+				if rng.IntN(20) == 0 {
+					switch rng.IntN(4) {
+					case 0:
+						batch[j].TimeS = specials[rng.IntN(len(specials))]
+					case 1:
+						batch[j].PressureCmH2O = specials[rng.IntN(len(specials))]
+					case 2:
+						batch[j].FlowLPS = specials[rng.IntN(len(specials))]
+					default:
+						batch[j].TimeS -= 50 * rng.Float64()
+					}
+				}
+			}
+			out := p.Samples(batch)
+			if rng.IntN(50) == 0 {
+				st := []ingest.Status{ingest.StatusGap, ingest.StatusDisconnected, ingest.StatusConnected}[rng.IntN(3)]
+				out.Alerts = append(out.Alerts, p.Status(ingest.Event{Status: st, GapS: specials[rng.IntN(len(specials))]}, simEpoch).Alerts...)
+			}
+			if rng.IntN(10) == 0 {
+				out.Alerts = append(out.Alerts, p.Tick(simEpoch.Add(time.Duration(rng.IntN(1e6))*time.Millisecond)).Alerts...)
+			}
+			for _, e := range out.Alerts {
+				events++
+				if _, err := e.Marshal(); err != nil {
+					t.Fatalf("offline %v: event does not encode: %v", offline, err)
+				}
+			}
+			for _, b := range out.Breaths {
+				if _, err := b.MarshalJSON(); err != nil {
+					t.Fatal(err)
+				}
+			}
+		}
+		t.Logf("offline %v: %d alert events, all encodable", offline, events)
+	}
+}
