@@ -98,6 +98,7 @@ type stream struct {
 	breaths   atomic.Uint64
 	active    atomic.Int64
 	restarts  atomic.Uint64
+	analysed  atomic.Uint64 // samples handed to the pipeline
 	lastErr   atomic.Pointer[string]
 
 	// acks is nil while the pipeline is down; the ack handler then answers
@@ -319,6 +320,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				if err := s.emit(pubCtx, pl.Samples(ev.Samples), arrived); err != nil {
 					return err
 				}
+				s.analysed.Add(uint64(len(ev.Samples)))
 			}
 		case now := <-tick.C:
 			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
