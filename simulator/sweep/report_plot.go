@@ -167,13 +167,14 @@ func histPlot(title string, data [][]float64, names []string) (*plot.Plot, error
 		p.Title.Text += " (no episodes)"
 		return p, nil
 	}
-	// A few very late episodes would squash the rest into one bin: the
-	// last bin gathers everything beyond 1.5 times the 95th percentile.
+	// A tail of late episodes would squash the rest into one bin: the last
+	// bin gathers everything beyond three times the upper quartile's
+	// distance from the smallest latency.
 	var all []float64
 	for _, d := range data {
 		all = append(all, d...)
 	}
-	if cut := lo + 1.5*(float64(quantile(all, 0.95))-lo); cut < hi && cut > lo {
+	if cut := lo + 3*(float64(quantile(all, 0.75))-lo); cut < hi && cut > lo {
 		hi = cut
 		p.Title.Text += fmt.Sprintf(" (last bin: ≥ %.0f s)", hi)
 	}
@@ -211,7 +212,7 @@ func histPlot(title string, data [][]float64, names []string) (*plot.Plot, error
 func latencyScatter(sum *Summary, cond, title, xlabel string) (*plot.Plot, error) {
 	p := newPlot(title, xlabel, "onset latency (s)")
 	ci := indexOf(Scored(), cond)
-	// Late outliers are drawn at a cap (1.5 times the 95th percentile) so
+	// Late outliers are drawn at a cap (three times the upper quartile) so
 	// that they do not flatten the rest.
 	var all []float64
 	for si := range sum.Sets {
@@ -219,7 +220,7 @@ func latencyScatter(sum *Summary, cond, title, xlabel string) (*plot.Plot, error
 	}
 	capS := math.Inf(1)
 	if len(all) > 0 {
-		capS = math.Max(1.5*float64(quantile(all, 0.95)), 1)
+		capS = math.Max(3*float64(quantile(all, 0.75)), 1)
 		p.Title.Text += fmt.Sprintf(" (drawn at most %.0f s)", capS)
 	}
 	for si, s := range sum.Sets {
