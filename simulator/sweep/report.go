@@ -6,6 +6,7 @@ import (
 	"html/template"
 	"io"
 	"math"
+	"slices"
 	"strings"
 
 	"gonum.org/v1/plot"
@@ -26,10 +27,10 @@ type Example struct {
 	rec    recording
 }
 
-// PickExample chooses a patient whose air-trapping alarm was raised (a
-// linear, clean one if there is such) and runs it again, recording the
-// minute around the first raise. It returns nil when no patient raised
-// the alarm.
+// PickExample chooses a patient whose air-trapping alarm was truly raised
+// (a linear, clean one if there is such; else the first patient with any
+// alert, else the first patient) and runs it again, recording the minute
+// around the first raise. It returns nil only for an empty result.
 func PickExample(ctx context.Context, r *Result, acfg *analyze.Config) (*Example, error) {
 	best, bestScore, raiseS := -1, -1, 0.0
 	ai := indexOf(Scored(), analyze.CondAirTrapping)
@@ -53,6 +54,17 @@ func PickExample(ctx context.Context, r *Result, acfg *analyze.Config) (*Example
 		}
 	}
 	if best < 0 {
+		// No true air-trapping alarm anywhere: show the first minute of
+		// the first patient with any alert, or of the first patient.
+		best, raiseS = 0, 35
+		for i := range r.Cases {
+			if k := slices.IndexFunc(r.Cases[i].Alerts[0], func(e AlertEvent) bool { return e.Fresh }); k >= 0 {
+				best, raiseS = i, r.Cases[i].Alerts[0][k].TS
+				break
+			}
+		}
+	}
+	if len(r.Cases) == 0 {
 		return nil, nil
 	}
 	c := r.Cases[best].Case
