@@ -125,8 +125,8 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	}
 
 	stderr := cmd.ErrOrStderr()
-	fmt.Fprintf(stderr, "sweep: %d patients, %.1f simulated patient-hours at %g Hz, detector sets: %s\n",
-		len(plan.Cases), plan.TotalS()/3600, g.SampleRateHz, setNames(opt.Sets))
+	fmt.Fprintf(stderr, "sweep: %d patients, %.1f simulated patient-hours at %v Hz, detector sets: %s\n",
+		len(plan.Cases), plan.TotalS()/3600, g.SampleRatesHz, setNames(opt.Sets))
 	if !f.noProgress && isTerminal(stderr) {
 		bar := progressbar.NewOptions64(int64(plan.TotalS()),
 			progressbar.OptionSetWriter(stderr),

@@ -106,8 +106,9 @@ type Episodes struct {
 type Grid struct {
 	// DurationS is the simulated length of each grid patient.
 	DurationS simulator.Seconds `yaml:"duration"`
-	// SampleRateHz is the sample rate of every patient, scenarios included.
-	SampleRateHz float64 `yaml:"sample_rate_hz"`
+	// SampleRatesHz are the sample rates; every patient, scenarios
+	// included, runs at each of them.
+	SampleRatesHz []float64 `yaml:"sample_rates_hz"`
 	// StepS is the Runge–Kutta step of the non-linear models (zero: the
 	// simulator's default).
 	StepS float64 `yaml:"step_s"`
@@ -178,7 +179,7 @@ func defaultCourse() []CourseStep {
 func DefaultGrid() Grid {
 	return Grid{
 		DurationS:            65 * 60,
-		SampleRateHz:         50,
+		SampleRatesHz:        []float64{50},
 		StepS:                0.004,
 		Seeds:                1,
 		Models:               Models(),
@@ -230,6 +231,8 @@ func ParseGrid(data []byte) (Grid, error) {
 			g.Course = nil
 		case "scenarios":
 			g.Scenarios = nil
+		case "sample_rates_hz":
+			g.SampleRatesHz = nil
 		}
 	}
 	dec := yaml.NewDecoder(bytes.NewReader(data))
@@ -274,7 +277,9 @@ type Case struct {
 	CMLPerCmH2O float64 `json:"c_ml_per_cmh2o,omitempty"`
 	Setting     string  `json:"setting,omitempty"`
 	Noise       string  `json:"noise,omitempty"`
-	Seed        uint64  `json:"seed"`
+	// SampleRateHz is the sample rate of the patient.
+	SampleRateHz float64 `json:"sample_rate_hz"`
+	Seed         uint64  `json:"seed"`
 	// DurationS is the simulated length.
 	DurationS float64 `json:"duration_s"`
 
@@ -304,8 +309,13 @@ func (p *Plan) TotalS() float64 {
 func (g Grid) Expand() (*Plan, error) {
 	var errs []error
 	bad := func(format string, args ...any) { errs = append(errs, fmt.Errorf(format, args...)) }
-	if !(g.SampleRateHz >= 25 && g.SampleRateHz <= 1000) {
-		bad("sample_rate_hz: %g out of range [25, 1000]", g.SampleRateHz)
+	if len(g.SampleRatesHz) == 0 {
+		bad("sample_rates_hz: needs at least one rate")
+	}
+	for i, r := range g.SampleRatesHz {
+		if !(r >= 25 && r <= 1000) {
+			bad("sample_rates_hz[%d]: %g out of range [25, 1000]", i, r)
+		}
 	}
 	if !(g.StepS >= 0 && g.StepS <= 0.01) {
 		bad("step_s: %g out of range [0, 0.01]", g.StepS)
@@ -354,7 +364,7 @@ func (g Grid) Expand() (*Plan, error) {
 	if !(g.ScenarioDurationS >= 0) {
 		bad("scenario_duration: must not be negative")
 	}
-	if n := g.Seeds * len(g.Models) * len(g.ResistanceCmH2OSPerL) * len(g.ComplianceMLPerCmH2O) * len(g.Settings) * len(g.Noise); len(errs) == 0 && n > MaxCases {
+	if n := g.Seeds * len(g.SampleRatesHz) * len(g.Models) * len(g.ResistanceCmH2OSPerL) * len(g.ComplianceMLPerCmH2O) * len(g.Settings) * len(g.Noise); len(errs) == 0 && n > MaxCases {
 		bad("the grid has %d patients, more than %d: split it", n, MaxCases)
 	}
 	if len(errs) > 0 {
@@ -373,17 +383,20 @@ func (g Grid) Expand() (*Plan, error) {
 		p.Cases = append(p.Cases, c)
 	}
 	for seed := 1; seed <= g.Seeds; seed++ {
-		for _, m := range g.Models {
-			for _, r := range g.ResistanceCmH2OSPerL {
-				for _, c := range g.ComplianceMLPerCmH2O {
-					for _, st := range g.Settings {
-						for _, n := range g.Noise {
-							sc := g.scenario(m, r, c, st, n, uint64(seed))
-							add(Case{
-								Name:  fmt.Sprintf("%s/R%g/C%g/%s/%s/s%d", m, r, c, st.Name, n.Name, seed),
-								Model: m, RCmH2OSPerL: r, CMLPerCmH2O: c, Setting: st.Name, Noise: n.Name,
-								Seed: uint64(seed), scenario: sc,
-							})
+		for _, hz := range g.SampleRatesHz {
+			for _, m := range g.Models {
+				for _, r := range g.ResistanceCmH2OSPerL {
+					for _, c := range g.ComplianceMLPerCmH2O {
+						for _, st := range g.Settings {
+							for _, n := range g.Noise {
+								sc := g.scenario(m, r, c, st, n, uint64(seed))
+								sc.SampleRateHz = hz
+								add(Case{
+									Name:  fmt.Sprintf("%s/R%g/C%g/%s/%s/%gHz/s%d", m, r, c, st.Name, n.Name, hz, seed),
+									Model: m, RCmH2OSPerL: r, CMLPerCmH2O: c, Setting: st.Name, Noise: n.Name,
+									SampleRateHz: hz, Seed: uint64(seed), scenario: sc,
+								})
+							}
 						}
 					}
 				}
@@ -405,21 +418,23 @@ func (g Grid) Expand() (*Plan, error) {
 			continue
 		}
 		for seed := 1; seed <= g.Seeds; seed++ {
-			sc := base
-			sc.Seed = base.Seed*1000 + uint64(seed)
-			sc.SampleRateHz = g.SampleRateHz
-			if g.StepS > 0 {
-				sc.StepS = g.StepS
+			for _, hz := range g.SampleRatesHz {
+				sc := base
+				sc.Seed = base.Seed*1000 + uint64(seed)
+				sc.SampleRateHz = hz
+				if g.StepS > 0 {
+					sc.StepS = g.StepS
+				}
+				if g.ScenarioDurationS > 0 {
+					sc.DurationS = g.ScenarioDurationS
+				}
+				label := base.Name
+				if label == "" {
+					label = name
+				}
+				add(Case{Name: fmt.Sprintf("scenario/%s/%gHz/s%d", label, hz, seed), Model: ModelScenario, Scenario: label,
+					SampleRateHz: hz, Seed: sc.Seed, scenario: sc})
 			}
-			if g.ScenarioDurationS > 0 {
-				sc.DurationS = g.ScenarioDurationS
-			}
-			label := base.Name
-			if label == "" {
-				label = name
-			}
-			add(Case{Name: fmt.Sprintf("scenario/%s/s%d", label, seed), Model: ModelScenario, Scenario: label,
-				Seed: sc.Seed, scenario: sc})
 		}
 	}
 	if len(errs) > 0 {
@@ -437,7 +452,7 @@ func (g *Grid) scenario(model string, r, c float64, st Setting, n Noise, seed ui
 	sc.Name = model
 	sc.Seed = seed*7919 + uint64(math.Round(r*1000+c))
 	sc.DurationS = g.DurationS
-	sc.SampleRateHz = g.SampleRateHz
+	sc.SampleRateHz = g.SampleRatesHz[0]
 	sc.StepS = g.StepS
 	sc.Ventilator = st.Ventilator
 	sc.Sensor = n.Sensor

@@ -188,13 +188,18 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 		}
 		d.Headline = append(d.Headline, row)
 	}
-	for _, m := range s.Sets[0].ByModel {
-		row := modelRow{Model: m.Model, Hours: num(m.PatientHours, 1)}
-		for ci := range Scored() {
-			c := &m.Conditions[ci]
-			row.Cells = append(row.Cells, pct(c.Breath.Sensitivity)+" / "+pct(c.Breath.Specificity))
+	group := func(name string, hours Num, cs []ConditionScore) modelRow {
+		row := modelRow{Model: name, Hours: num(hours, 1)}
+		for ci := range cs {
+			row.Cells = append(row.Cells, pct(cs[ci].Breath.Sensitivity)+" / "+pct(cs[ci].Breath.Specificity))
 		}
-		d.ByModel = append(d.ByModel, row)
+		return row
+	}
+	for _, m := range s.Sets[0].ByModel {
+		d.ByModel = append(d.ByModel, group(m.Model, m.PatientHours, m.Conditions))
+	}
+	for _, r := range s.Sets[0].BySampleRate {
+		d.ByModel = append(d.ByModel, group(fmt.Sprintf("all models at %g Hz", r.SampleRateHz), r.PatientHours, r.Conditions))
 	}
 	for _, set := range s.Sets {
 		for cond, n := range set.OtherAlerts {
@@ -327,7 +332,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 </style></head><body>
 <h1>trapline detector sweep</h1>
 <p class="caution">Research use only. trapline is not a medical device and does not replace the ventilator's own alarms. These figures describe detectors on simulated patients, not clinical performance.</p>
-<p class="facts"><span><b>{{.S.Patients}}</b> simulated patients</span><span><b>{{num .S.PatientHours 1}}</b> patient-hours</span><span>{{.S.SampleRateHz}} Hz</span><span>{{.S.BreathsSimulated}} breaths simulated, {{.S.BreathsAnalysed}} analysed</span><span>{{num .S.ElapsedS 1}} s on {{.S.Workers}} workers ({{num .S.RealtimeFactor 0}}× real time)</span><span>detector sets: {{join .Sets ", "}}</span></p>
+<p class="facts"><span><b>{{.S.Patients}}</b> simulated patients</span><span><b>{{num .S.PatientHours 1}}</b> patient-hours</span><span>{{range $i, $r := .S.SampleRatesHz}}{{if $i}}, {{end}}{{$r}}{{end}} Hz</span><span>{{.S.BreathsSimulated}} breaths simulated, {{.S.BreathsAnalysed}} analysed</span><span>{{num .S.ElapsedS 1}} s on {{.S.Workers}} workers ({{num .S.RealtimeFactor 0}}× real time)</span><span>detector sets: {{join .Sets ", "}}</span></p>
 
 <h2>Headline</h2>
 <p class="note">Per breath: the alarm is active at the end of a breath that truly has the condition (sensitivity) or truly has not (specificity). Per episode: runs of at least {{.S.Episodes.MinBreaths}} breaths. Latency: median (90th percentile) in seconds. Definitions in docs/sweep.md.</p>
@@ -346,7 +351,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 {{.Scatter}}
 {{range .Latency}}{{.}}{{end}}
 
-<h2>By patient model ({{index .Sets 0}})</h2>
+<h2>By patient model and sample rate ({{index .Sets 0}})</h2>
 <p class="note">Breath sensitivity / specificity.</p>
 <table><tr><th>model</th><th>hours</th>{{range .Headline}}<th>{{.Condition}}</th>{{end}}</tr>
 {{range .ByModel}}<tr><td>{{.Model}}</td><td>{{.Hours}}</td>{{range .Cells}}<td>{{.}}</td>{{end}}</tr>

@@ -27,12 +27,12 @@ type Summary struct {
 	BreathsUnmatched int `json:"breaths_unmatched"`
 	// ElapsedS is the wall time of the simulations on Workers workers;
 	// RealtimeFactor is simulated time over wall time.
-	ElapsedS       Num      `json:"elapsed_s"`
-	Workers        int      `json:"workers"`
-	RealtimeFactor Num      `json:"realtime_factor"`
-	SampleRateHz   float64  `json:"sample_rate_hz"`
-	Models         []string `json:"models"`
-	Episodes       Episodes `json:"episodes"`
+	ElapsedS       Num       `json:"elapsed_s"`
+	Workers        int       `json:"workers"`
+	RealtimeFactor Num       `json:"realtime_factor"`
+	SampleRatesHz  []float64 `json:"sample_rates_hz"`
+	Models         []string  `json:"models"`
+	Episodes       Episodes  `json:"episodes"`
 	// Sets holds the scores of each detector set.
 	Sets []SetSummary `json:"sets"`
 	// Estimators holds the error distributions of the estimates against
@@ -51,6 +51,9 @@ type SetSummary struct {
 	Conditions []ConditionScore `json:"conditions"`
 	// ByModel holds the same scores for each patient model.
 	ByModel []ModelScores `json:"by_model"`
+	// BySampleRate holds them for each sample rate, when the grid has
+	// more than one.
+	BySampleRate []RateScores `json:"by_sample_rate,omitempty"`
 	// OtherAlerts counts fresh raises of conditions without ground truth
 	// (all of them are unexpected on simulated patients), per hour.
 	OtherAlerts map[string]int `json:"other_alerts"`
@@ -59,6 +62,13 @@ type SetSummary struct {
 // ModelScores holds the scores over the patients of one model.
 type ModelScores struct {
 	Model        string           `json:"model"`
+	PatientHours Num              `json:"patient_hours"`
+	Conditions   []ConditionScore `json:"conditions"`
+}
+
+// RateScores holds the scores over the patients at one sample rate.
+type RateScores struct {
+	SampleRateHz float64          `json:"sample_rate_hz"`
 	PatientHours Num              `json:"patient_hours"`
 	Conditions   []ConditionScore `json:"conditions"`
 }
@@ -141,14 +151,16 @@ func (r *Result) models() []string {
 // Summarize scores the raw results.
 func Summarize(r *Result) *Summary {
 	s := &Summary{Type: "sweep-summary", Schema: SummarySchema, Patients: len(r.Cases),
-		Workers: r.Workers, SampleRateHz: r.Plan.Grid.SampleRateHz, Models: r.models(), Episodes: r.Plan.Grid.Episodes}
+		Workers: r.Workers, SampleRatesHz: r.Plan.Grid.SampleRatesHz, Models: r.models(), Episodes: r.Plan.Grid.Episodes}
 	hours := 0.0
 	hoursBy := map[string]float64{}
+	hoursByRate := map[float64]float64{}
 	for i := range r.Cases {
 		c := &r.Cases[i]
 		h := c.Case.DurationS / 3600
 		hours += h
 		hoursBy[c.Case.Model] += h
+		hoursByRate[c.Case.SampleRateHz] += h
 		s.Samples += c.Samples
 		s.BreathsSimulated += len(c.Truth)
 		s.BreathsAnalysed += c.Breaths
@@ -169,13 +181,26 @@ func Summarize(r *Result) *Summary {
 		for m := range by {
 			by[m] = make([]ConditionScore, len(scored))
 		}
+		rates := s.SampleRatesHz
+		if len(rates) < 2 {
+			rates = nil // one rate: the overall scores say it all
+		}
+		byRate := make([][]ConditionScore, len(rates))
+		for k := range byRate {
+			byRate[k] = make([]ConditionScore, len(scored))
+		}
 		for i := range r.Cases {
 			c := &r.Cases[i]
 			mi := slices.Index(s.Models, c.Case.Model)
+			ri := slices.Index(rates, c.Case.SampleRateHz)
 			for ci := range scored {
 				all[ci].Condition, by[mi][ci].Condition = scored[ci], scored[ci]
 				caseScore(c.Truth, c.Alerts[si], ci, ep, &all[ci])
 				caseScore(c.Truth, c.Alerts[si], ci, ep, &by[mi][ci])
+				if ri >= 0 {
+					byRate[ri][ci].Condition = scored[ci]
+					caseScore(c.Truth, c.Alerts[si], ci, ep, &byRate[ri][ci])
+				}
 			}
 			for _, e := range c.Alerts[si] {
 				if e.Fresh && !slices.Contains(scored, e.Condition) {
@@ -192,6 +217,12 @@ func Summarize(r *Result) *Summary {
 				by[mi][ci].finish(hoursBy[m])
 			}
 			ss.ByModel = append(ss.ByModel, ModelScores{Model: m, PatientHours: Num(hoursBy[m]), Conditions: by[mi]})
+		}
+		for ri, hz := range rates {
+			for ci := range byRate[ri] {
+				byRate[ri][ci].finish(hoursByRate[hz])
+			}
+			ss.BySampleRate = append(ss.BySampleRate, RateScores{SampleRateHz: hz, PatientHours: Num(hoursByRate[hz]), Conditions: byRate[ri]})
 		}
 		s.Sets = append(s.Sets, ss)
 	}

@@ -301,7 +301,7 @@ func TestParseGrid(t *testing.T) {
 		check      func(t *testing.T, g Grid, err error)
 	}{
 		{"empty file is the default grid", "", func(t *testing.T, g Grid, err error) {
-			if err != nil || len(g.Models) != len(Models()) || g.SampleRateHz != 50 {
+			if err != nil || len(g.Models) != len(Models()) || len(g.SampleRatesHz) != 1 || g.SampleRatesHz[0] != 50 {
 				t.Errorf("got %v, %+v", err, g)
 			}
 		}},
@@ -330,7 +330,7 @@ func TestParseGrid(t *testing.T) {
 // problems at once.
 func TestExpandReportsEveryProblem(t *testing.T) {
 	g := DefaultGrid()
-	g.SampleRateHz = 5
+	g.SampleRatesHz = []float64{50, 5}
 	g.Models = []string{"linear", "balloon"}
 	g.Seeds = 0
 	g.Scenarios = []string{"no-such-scenario"}
@@ -338,7 +338,7 @@ func TestExpandReportsEveryProblem(t *testing.T) {
 	if err == nil {
 		t.Fatal("no error")
 	}
-	for _, want := range []string{"sample_rate_hz", "balloon", "seeds"} {
+	for _, want := range []string{"sample_rates_hz[1]", "balloon", "seeds"} {
 		if !strings.Contains(err.Error(), want) {
 			t.Errorf("error %q does not mention %s", err, want)
 		}
@@ -617,7 +617,7 @@ func TestTestdataGrids(t *testing.T) {
 	for _, tc := range []struct {
 		file  string
 		cases int
-	}{{"small.yaml", 4}, {"pressure-control.yaml", 6}} {
+	}{{"small.yaml", 4}, {"pressure-control.yaml", 12}} {
 		t.Run(tc.file, func(t *testing.T) {
 			g, err := LoadGrid(filepath.Join("testdata", tc.file))
 			if err != nil {
@@ -631,5 +631,35 @@ func TestTestdataGrids(t *testing.T) {
 				t.Errorf("%d cases, want %d", len(plan.Cases), tc.cases)
 			}
 		})
+	}
+}
+
+// TestSampleRates runs one patient at two sample rates: the scores by rate
+// partition the overall counts.
+func TestSampleRates(t *testing.T) {
+	g := tinyGrid()
+	g.Models, g.ResistanceCmH2OSPerL, g.Scenarios = []string{ModelLinear}, []float64{35}, nil
+	g.SampleRatesHz = []float64{50, 100}
+	plan, err := g.Expand()
+	if err != nil {
+		t.Fatal(err)
+	}
+	res, err := Run(t.Context(), plan, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	sum := Summarize(res)
+	set := sum.Sets[0]
+	if len(set.BySampleRate) != 2 || set.BySampleRate[1].SampleRateHz != 100 {
+		t.Fatalf("by sample rate: %+v", set.BySampleRate)
+	}
+	for ci, c := range set.Conditions {
+		a, b := set.BySampleRate[0].Conditions[ci].Breath, set.BySampleRate[1].Conditions[ci].Breath
+		if a.TP+b.TP != c.Breath.TP || a.FP+b.FP != c.Breath.FP || a.TN+b.TN != c.Breath.TN || a.FN+b.FN != c.Breath.FN {
+			t.Errorf("%s: %+v + %+v ≠ %+v", c.Condition, a, b, c.Breath)
+		}
+	}
+	if res.Cases[1].Samples < 2*res.Cases[0].Samples-10 {
+		t.Errorf("samples %d at 50 Hz, %d at 100 Hz", res.Cases[0].Samples, res.Cases[1].Samples)
 	}
 }
