@@ -265,7 +265,7 @@ const MaxCases = 100000
 type Case struct {
 	// Index is the position in the plan.
 	Index int `json:"index"`
-	// Name identifies the case, e.g. "rohrer/R25/C50/vt500-rr20/clean/s1".
+	// Name identifies the case, e.g. "rohrer/R25/C50/vt500-rr20/clean/50Hz/s1".
 	Name string `json:"name"`
 	// Model is one of Models() or ModelScenario.
 	Model string `json:"model"`
