@@ -33,10 +33,13 @@ type members struct {
 }
 
 // ensureMembersBucket creates the membership bucket with a TTL.
-func ensureMembersBucket(ctx context.Context, js jetstream.JetStream, name string, ttl time.Duration, replicas int) (jetstream.KeyValue, error) {
+func ensureMembersBucket(ctx context.Context, js jetstream.JetStream, name string, ttl time.Duration, replicas int, log zerolog.Logger) (jetstream.KeyValue, error) {
 	var kv jetstream.KeyValue
-	err := retry(ctx, time.Minute, 10*time.Second, time.Second, func(ctx context.Context) error {
+	err := retry(ctx, log, "membership bucket", func(ctx context.Context) error {
 		var err error
+		if kv, err = js.KeyValue(ctx, name); err == nil {
+			return nil
+		}
 		kv, err = js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
 			Bucket: name, Description: "trapline workers alive (TTL heartbeats)",
 			History: 1, TTL: ttl, Replicas: replicas, Storage: jetstream.FileStorage,

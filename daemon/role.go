@@ -101,13 +101,15 @@ func scaleReplicas(nc *nats.Conn, so *config.ScaleOut) int {
 	return 1
 }
 
-// retry calls f until it succeeds, ctx ends or limit passes, waiting wait
-// between attempts; each attempt gets its own timeout of per. A cluster that
-// has just started may have no JetStream leader for some seconds.
-func retry(ctx context.Context, limit, per, wait time.Duration, f func(context.Context) error) error {
-	end := time.Now().Add(limit)
+// retry calls f until it succeeds, ctx ends or a minute passes, with short
+// attempts (3 s) and pauses (0.3 s); failures are logged as what. A cluster
+// that has just started may have no JetStream leader for some seconds, and
+// when two workers create the same stream at once the server may answer
+// only one of them: the other's next attempt finds the stream made.
+func retry(ctx context.Context, log zerolog.Logger, what string, f func(context.Context) error) error {
+	end := time.Now().Add(time.Minute)
 	for {
-		cctx, cancel := context.WithTimeout(ctx, per)
+		cctx, cancel := context.WithTimeout(ctx, 3*time.Second)
 		err := f(cctx)
 		cancel()
 		if err == nil {
@@ -117,7 +119,8 @@ func retry(ctx context.Context, limit, per, wait time.Duration, f func(context.C
 		if ctx.Err() != nil || time.Now().After(end) || errors.As(err, &perm) {
 			return err
 		}
-		t := time.NewTimer(wait)
+		log.Warn().Err(err).Msgf("%s not ready; retrying", what)
+		t := time.NewTimer(300 * time.Millisecond)
 		select {
 		case <-ctx.Done():
 			t.Stop()
@@ -131,7 +134,7 @@ func retry(ctx context.Context, limit, per, wait time.Duration, f func(context.C
 // exists with another partition count is refused: the count is permanent.
 func ensureSamplesStream(ctx context.Context, js jetstream.JetStream, n scaleNames, so *config.ScaleOut, replicas int, log zerolog.Logger) error {
 	want := samplesStreamConfig(n, so, replicas)
-	return retry(ctx, time.Minute, 10*time.Second, time.Second, func(ctx context.Context) error {
+	return retry(ctx, log, "samples stream", func(ctx context.Context) error {
 		s, err := js.Stream(ctx, n.samples)
 		if errors.Is(err, jetstream.ErrStreamNotFound) {
 			_, err = js.CreateStream(ctx, want)

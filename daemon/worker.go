@@ -84,16 +84,19 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	}
 	sc := streamsConfig(&cfg.NATS)
 	w.alertsJS = sc.WithDefaults().Alerts
-	if err := retry(ctx, time.Minute, 10*time.Second, time.Second, func(ctx context.Context) error {
+	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
 		return alerts.EnsureStreams(ctx, js, sc)
 	}); err != nil {
 		return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
 	}
-	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps)
+	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
 	if err != nil {
 		return fmt.Errorf("membership bucket %s: %w", w.names.members, err)
 	}
-	if err := retry(ctx, time.Minute, 10*time.Second, time.Second, func(ctx context.Context) error {
+	if err := retry(ctx, w.log, "state bucket", func(ctx context.Context) error {
+		if w.state, err = js.KeyValue(ctx, w.names.state); err == nil {
+			return nil
+		}
 		w.state, err = js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
 			Bucket: w.names.state, Description: "trapline per-stream alarm state and partition checkpoints",
 			History: 1, Replicas: reps, Storage: jetstream.FileStorage,
