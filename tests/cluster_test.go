@@ -332,11 +332,53 @@ func (s *scaleSetup) want(t *testing.T) ([]string, map[string]int) {
 func (s *scaleSetup) stored(t *testing.T, n int) []alerts.Event {
 	t.Helper()
 	var got []alerts.Event
-	pollUntil(30*time.Second, func() bool {
-		got = storedAlerts(t, s.js, "TRAPLINE_ALERTS")
+	pollUntil(40*time.Second, func() bool {
+		evs, err := s.tryStored(t.Context())
+		if err != nil {
+			return false // a node is down or a leader is being elected
+		}
+		got = evs
 		return len(clinical(got)) >= n
 	})
 	return got
+}
+
+// tryStored reads the whole alert stream, giving up after 5 s.
+func (s *scaleSetup) tryStored(ctx context.Context) ([]alerts.Event, error) {
+	ctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+	defer cancel()
+	c, err := s.js.OrderedConsumer(ctx, "TRAPLINE_ALERTS", jetstream.OrderedConsumerConfig{})
+	if err != nil {
+		return nil, err
+	}
+	info, err := c.Info(ctx)
+	if err != nil {
+		return nil, err
+	}
+	var out []alerts.Event
+	for left := info.NumPending; left > 0; {
+		batch, err := c.Fetch(int(min(left, 500)), jetstream.FetchMaxWait(2*time.Second))
+		if err != nil {
+			return nil, err
+		}
+		n := 0
+		for m := range batch.Messages() {
+			n++
+			var ev alerts.Event
+			if err := json.Unmarshal(m.Data(), &ev); err != nil {
+				return nil, fmt.Errorf("stored message is not an alert event: %w", err)
+			}
+			out = append(out, ev)
+		}
+		if batch.Error() != nil {
+			return nil, batch.Error()
+		}
+		if n == 0 {
+			return nil, fmt.Errorf("alert stream: %d messages pending, none delivered", left)
+		}
+		left -= uint64(n)
+	}
+	return out, nil
 }
 
 func diffLists(a, b []string) (onlyA, onlyB []string) {
@@ -480,4 +522,90 @@ func pollUntil(d time.Duration, cond func() bool) bool {
 		time.Sleep(50 * time.Millisecond)
 	}
 	return true
+}
+
+// alertsLeader returns the index of the node that leads the alert stream,
+// or -1.
+func (c *cluster) alertsLeader() int {
+	for i, s := range c.srv {
+		if s != nil && s.Running() && s.JetStreamIsStreamLeader("$G", "TRAPLINE_ALERTS") {
+			return i
+		}
+	}
+	return -1
+}
+
+// localAlerts returns the number of messages node i holds of the alert
+// stream, or -1.
+func (c *cluster) localAlerts(i int) int64 {
+	s := c.srv[i]
+	if s == nil || !s.Running() {
+		return -1
+	}
+	jsz, err := s.Jsz(&server.JSzOptions{Accounts: true, Streams: true})
+	if err != nil {
+		return -1
+	}
+	for _, a := range jsz.AccountDetails {
+		for _, st := range a.Streams {
+			if st.Name == "TRAPLINE_ALERTS" {
+				return int64(st.State.Msgs)
+			}
+		}
+	}
+	return -1
+}
+
+// TestClusterAlertLeaderDown shuts down the node that leads the alert
+// stream while 20 beds play: publishing resumes on the other two, no alert
+// is lost or stored twice, and the node catches up after its restart.
+func TestClusterAlertLeaderDown(t *testing.T) {
+	s := newScaleSetup(t, 20, 300*time.Second, 20)
+	wantEv, _ := s.want(t)
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer cancel()
+	var wg sync.WaitGroup
+	defer wg.Wait()
+	defer cancel()
+	for _, w := range s.workers {
+		wg.Add(1)
+		go func() { defer wg.Done(); s.run(ctx, w) }()
+	}
+	s.waitMembers(t, 2)
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+
+	// Once some alerts are stored, shut the alert stream's leader down.
+	var before int
+	if !pollUntil(30*time.Second, func() bool { evs, _ := s.tryStored(t.Context()); before = len(evs); return before > 0 }) {
+		t.Fatal("no alert stored within 30 s")
+	}
+	var leader int
+	if !pollUntil(10*time.Second, func() bool { leader = s.c.alertsLeader(); return leader >= 0 }) {
+		t.Fatal("no leader of the alert stream")
+	}
+	down := time.Now()
+	s.c.srv[leader].Shutdown()
+	s.c.srv[leader].WaitForShutdown()
+	s.c.srv[leader] = nil
+	t.Logf("node n%d (alert stream leader) shut down with %d alert events stored", leader, before)
+
+	got := s.stored(t, len(wantEv))
+	t.Logf("%d alert events stored %.1f s after the shutdown", len(got), time.Since(down).Seconds())
+	checkOnce(t, got, got)
+	onlyWant, onlyGot := diffLists(wantEv, clinical(got))
+	if len(onlyWant)+len(onlyGot) > 0 {
+		t.Errorf("alerts differ from the single-node run across the node loss:\nmissing %v\nextra %v", onlyWant, onlyGot)
+	}
+	if len(got) <= before {
+		t.Errorf("no alert stored after the shutdown (%d before, %d after)", before, len(got))
+	}
+
+	// Restart it: it catches up with the others.
+	s.c.srv[leader] = s.c.start(t, s.c.opts[leader])
+	want := int64(len(got))
+	var have int64
+	if !pollUntil(30*time.Second, func() bool { have = s.c.localAlerts(leader); return have >= want }) {
+		t.Errorf("restarted node holds %d alert events, the stream %d (after 30 s)", have, want)
+	}
 }
