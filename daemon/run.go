@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"strings"
 	"time"
 
@@ -40,11 +41,11 @@ func (a *app) runCommand() *cobra.Command {
 				return usageErrorf("no stream configured: add at least one entry under streams: in %s "+
 					"(see config/trapline.example.yaml), or try `trapline demo`", where)
 			}
-			log := a.log
-			if !cmd.Flags().Changed("log-level") && cfg.Log.Level != "" && cfg.Log.Level != a.logLevel {
-				if l, err := newLogger(a.stderr, cfg.Log.Level); err == nil {
-					log = l
-				}
+			// log.level and log.format come from the file, the environment
+			// or --log-level (config.Load takes the flag into account).
+			log, err := configLogger(a.stderr, cfg.Log.Level, cfg.Log.Format)
+			if err != nil {
+				return &UsageError{Err: err}
 			}
 			d, err := newDaemon(cfg, log, daemonOptions{})
 			if err != nil {
@@ -59,6 +60,27 @@ func (a *app) runCommand() *cobra.Command {
 	f.String("nats-url", "", "connect to this NATS server instead of running the embedded one (nats.url)")
 	f.String("http-listen", "", "address of /healthz, /readyz and /metrics (http.listen)")
 	return cmd
+}
+
+// configLogger is newLogger with the log.format setting: auto (console
+// text on a terminal, JSON lines otherwise), console or json.
+func configLogger(w io.Writer, level, format string) (zerolog.Logger, error) {
+	switch format {
+	case "", "auto":
+		return newLogger(w, level)
+	case "console", "json":
+	default:
+		return zerolog.Nop(), fmt.Errorf("log.format %q: want auto, console or json", format)
+	}
+	lvl, err := zerolog.ParseLevel(level)
+	if err != nil || level == "" {
+		return zerolog.Nop(), fmt.Errorf("log.level %q: want trace, debug, info, warn or error", level)
+	}
+	out := w
+	if format == "console" {
+		out = zerolog.ConsoleWriter{Out: w, TimeFormat: time.TimeOnly, NoColor: true}
+	}
+	return zerolog.New(out).Level(lvl).With().Timestamp().Logger(), nil
 }
 
 // daemonOptions are hooks for callers that run the daemon in-process (the
