@@ -63,7 +63,7 @@ func (a *app) demoCommand() *cobra.Command {
 	f.Float64Var(&opts.Speed, "speed", opts.Speed, "how many times faster than real time the patient is simulated")
 	f.StringVar(&opts.Stream, "stream", opts.Stream, "stream id of the simulated patient (default: the scenario's)")
 	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
-	f.BoolVar(&opts.JSON, "json", false, "print every message as one line of JSON instead of the view")
+	f.BoolVar(&opts.JSON, "json", false, "print breath records and alert events as NDJSON instead of the view (caution and summary on stderr)")
 	return cmd
 }
 
