@@ -57,7 +57,8 @@ func (a *app) watchCommand() *cobra.Command {
 		Long: "watch subscribes to the breath, status and alert subjects of a running trapline and shows\n" +
 			"one line per stream with its latest breath figures and active alerts, and a log of alert\n" +
 			"events. On start it replays the alerts of the last --since from JetStream.\n" +
-			"With --json it prints every message as one line of JSON, for scripts.\n\n" + Caution,
+			"With --json it prints the breath records and alert events as NDJSON, for scripts (--status\n" +
+			"adds the status heartbeats).\n\n" + Caution,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			if opts.Since < 0 {
@@ -90,7 +91,7 @@ func (a *app) watchCommand() *cobra.Command {
 	f.StringVar(&url, "nats-url", defaultNATSURL, "NATS server to read from")
 	f.StringVar(&opts.Prefix, "prefix", opts.Prefix, "subject prefix of the daemon (nats.prefix)")
 	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
-	f.BoolVar(&opts.JSON, "json", false, "print every message as one line of JSON (NDJSON) instead of the view")
+	f.BoolVar(&opts.JSON, "json", false, "print breath records and alert events as NDJSON instead of the view")
 	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
 	f.BoolVar(&opts.Status, "status", false, "with --json, also print the status heartbeats")
 	f.StringSliceVar(&opts.Streams, "stream", nil, "show only these streams (repeat or comma-separate)")
