@@ -8,6 +8,7 @@ import (
 	"os"
 	"strconv"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -47,6 +48,15 @@ type worker struct {
 	alertsJS string
 	bull     *bulletin
 	tick     time.Duration
+	// routes maps a stream id to the acknowledgement queue of the
+	// partition runner that analyses it here.
+	routes sync.Map
+}
+
+// streamAck is an acknowledgement request on its way to a partition runner.
+type streamAck struct {
+	stream string
+	req    ackRequest
 }
 
 // errFenced means another worker has written the partition's state since
@@ -107,6 +117,11 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	}
 	w.bull = newBulletin(b.nc, cfg.NATS.SubjectPrefix, 0, w.log)
 	mem := newMembers(mkv, id, so.Heartbeat, so.MemberTTL, w.log)
+	ackSub, err := b.nc.Subscribe(w.subj.All(alerts.KindAck), w.handleAck)
+	if err != nil {
+		return fmt.Errorf("subscribe %s: %w", w.subj.All(alerts.KindAck), err)
+	}
+	defer func() { _ = ackSub.Unsubscribe() }()
 
 	g, gctx := errgroup.WithContext(ctx)
 	bullCtx, stopBulletin := context.WithCancel(context.WithoutCancel(ctx))
@@ -139,6 +154,47 @@ func defaultWorkerID() string {
 		h = "worker"
 	}
 	return h + "-" + strconv.Itoa(os.Getpid())
+}
+
+// handleAck passes an acknowledgement request to the partition runner that
+// analyses the stream here. Every worker hears the request; only the
+// stream's owner answers it, the others stay silent.
+func (w *worker) handleAck(m *nats.Msg) {
+	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
+	v, ok := w.routes.Load(tok)
+	if !ok {
+		return
+	}
+	respond := func(err error) {
+		r := ackReply{OK: err == nil}
+		if err != nil {
+			r.Error = err.Error()
+		}
+		if m.Reply != "" {
+			b, _ := json.Marshal(r)
+			_ = m.Respond(b)
+		}
+	}
+	var body ackRequestBody
+	if err := json.Unmarshal(m.Data, &body); err != nil || body.ID == "" {
+		respond(fmt.Errorf("bad ack request (want {\"id\":\"...\",\"by\":\"...\"})"))
+		return
+	}
+	req := streamAck{stream: tok, req: ackRequest{ID: body.ID, By: body.By, Reply: make(chan error, 1)}}
+	t := time.NewTimer(5 * time.Second)
+	defer t.Stop()
+	select {
+	case v.(chan streamAck) <- req:
+	case <-t.C:
+		respond(fmt.Errorf("stream %s is busy", tok))
+		return
+	}
+	select {
+	case err := <-req.req.Reply:
+		respond(err)
+	case <-t.C:
+		respond(fmt.Errorf("stream %s did not answer in time", tok))
+	}
 }
 
 // assign starts and stops the partition runners as the live members change.
@@ -312,13 +368,19 @@ type partition struct {
 	lastSeq uint64
 	lastT   time.Time
 	caught  bool // the consumer has nothing pending
+	acks    chan streamAck
 }
 
 // runPartition claims partition p, rebuilds the state of its streams from
 // the checkpoints and the recent samples, and analyses it until ctx ends or
 // another worker fences it out.
 func (w *worker) runPartition(ctx context.Context, p int, log zerolog.Logger) error {
-	pt := &partition{w: w, p: p, log: log, streams: map[string]*streamRun{}}
+	pt := &partition{w: w, p: p, log: log, streams: map[string]*streamRun{}, acks: make(chan streamAck)}
+	defer func() {
+		for id := range pt.streams {
+			w.routes.CompareAndDelete(id, pt.acks)
+		}
+	}()
 	pkey := "p." + strconv.Itoa(p)
 	rev, err := w.getJSON(ctx, pkey, &pt.rec)
 	if err != nil {
@@ -432,6 +494,12 @@ func (w *worker) runPartition(ctx context.Context, p int, log zerolog.Logger) er
 			if err := pt.checkpoint(ctx); err != nil {
 				return err
 			}
+		case a := <-pt.acks:
+			err := pt.ack(ctx, a)
+			a.req.Reply <- err
+			if errors.Is(err, errFenced) {
+				return err
+			}
 		}
 	}
 }
@@ -455,7 +523,27 @@ func (pt *partition) newStream(id string) (*streamRun, error) {
 	}
 	sr.dec = dec
 	pt.streams[id] = sr
+	pt.w.routes.Store(id, pt.acks)
 	return sr, nil
+}
+
+// ack acknowledges an alarm of a live stream. The acknowledgement is not in
+// the samples, so it is delivered and written to the checkpoint at once: a
+// new owner restores it from there.
+func (pt *partition) ack(ctx context.Context, a streamAck) error {
+	sr := pt.streams[a.stream]
+	if sr == nil || sr.warm {
+		return fmt.Errorf("stream %s is still being taken over; try again", a.stream)
+	}
+	out, err := sr.pl.Ack(a.req.ID, a.req.By, time.Now())
+	if err != nil {
+		return err
+	}
+	if err := pt.deliver(ctx, sr, out.Alerts); err != nil {
+		return err
+	}
+	pt.log.Info().Str("stream", sr.id).Str("id", a.req.ID).Str("by", a.req.By).Msg("alert acknowledged")
+	return nil
 }
 
 // goLive ends the warm-up of a stream: the alarms continue from the

@@ -457,6 +457,44 @@ func TestClusterTwoWorkersOneEdge(t *testing.T) {
 	checkOnce(t, got, got)
 	s.checkBreaths(t, nb)
 	t.Logf("%d clinical alert events, %d streams", len(wantEv), len(nb))
+
+	// An alarm still active is acknowledged through whichever worker owns
+	// its stream.
+	cleared := map[string]bool{}
+	for _, ev := range got {
+		if ev.State == alerts.Cleared {
+			cleared[ev.ID] = true
+		}
+	}
+	var open *alerts.Event
+	for i := range got {
+		if got[i].State == alerts.Raised && !cleared[got[i].ID] {
+			open = &got[i]
+			break
+		}
+	}
+	if open == nil {
+		t.Fatal("no alarm left active to acknowledge")
+	}
+	req, _ := json.Marshal(map[string]string{"id": open.ID, "by": "bench-tech"})
+	rep, err := s.nc.Request("trapline.ack."+open.Stream, req, 10*time.Second)
+	if err != nil {
+		t.Fatalf("ack %s: %v", open.ID, err)
+	}
+	if !strings.Contains(string(rep.Data), `"ok":true`) {
+		t.Fatalf("ack %s: %s", open.ID, rep.Data)
+	}
+	if !pollUntil(10*time.Second, func() bool {
+		evs, _ := s.tryStored(t.Context())
+		for _, ev := range evs {
+			if ev.ID == open.ID && ev.State == alerts.Acknowledged {
+				return true
+			}
+		}
+		return false
+	}) {
+		t.Errorf("no acknowledged event of %s stored", open.ID)
+	}
 }
 
 // TestClusterWorkerKilled kills one of two workers (SIGKILL) while 20 beds
