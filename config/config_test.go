@@ -278,6 +278,19 @@ func TestBadConfigs(t *testing.T) {
 			},
 		},
 		{
+			name: "role and scale-out",
+			yaml: "role: workers\nscaleout: {partitions: 0, replicas: 7, batch: 2s, heartbeat: 2s, member_ttl: 3s, warmup: 10m, samples_max_age: 5m, worker_id: 'w 1'}\n",
+			want: []string{
+				`role: "workers" is not allowed (want all, edge, worker)`,
+				`scaleout.partitions: 0 is out of range (want 1 to 1024)`,
+				`scaleout.replicas: 7 is out of range (want 0 for automatic, or 1 to 5)`,
+				`scaleout.batch: 2s is out of range (want 5ms to 1s)`,
+				`scaleout.member_ttl: 3s is out of range (want 4s to 10m)`,
+				`scaleout.samples_max_age: 5m is out of range (want 11m2s to 168h)`,
+				`scaleout.worker_id: "w 1": want letters, digits, '-' or '_'`,
+			},
+		},
+		{
 			name: "stream sources and columns",
 			yaml: "streams:\n" +
 				"  - {id: a, source: 'tcp://nohost'}\n" +
