@@ -108,6 +108,8 @@ func stable(t *testing.T, d time.Duration, what string, f func() float64) float6
 // patient's alerts are being raised and comes back on the same store; every
 // alert event the daemon produced is then in JetStream exactly once.
 func TestNATSOutageLosesNoAlert(t *testing.T) {
+	// Mostly waiting (for an outage, a drain): runs beside the others.
+	t.Parallel()
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")
@@ -193,6 +195,8 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 // restarted on the same data directory once NATS is back, it delivers them,
 // none lost and none twice.
 func TestKilledDuringOutageLosesNoAlert(t *testing.T) {
+	// Mostly waiting (for an outage, a drain): runs beside the others.
+	t.Parallel()
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")

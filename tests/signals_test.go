@@ -15,6 +15,8 @@ import (
 // that waits (up to shutdown_timeout) to deliver spooled alerts to a NATS
 // server that is away; a second SIGTERM ends the process at once.
 func TestSecondSignalExitsAtOnce(t *testing.T) {
+	// Mostly waiting (for an outage, a drain): runs beside the others.
+	t.Parallel()
 	ns := startNATS(t)
 	feed, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
