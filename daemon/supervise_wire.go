@@ -176,6 +176,7 @@ func (d *delivery) Status(stream string, data []byte) { d.bull.Status(stream, da
 // while NATS is unreachable, until it succeeds or ctx ends. A refusal by a
 // reachable server (a limit that does not fit) is an error.
 func (d *delivery) ensureStreams(ctx context.Context, nc *nats.Conn) error {
+	warned := false
 	for {
 		cctx, cancel := context.WithTimeout(ctx, 10*time.Second)
 		err := alerts.EnsureStreams(cctx, d.js, d.streams)
@@ -193,7 +194,12 @@ func (d *delivery) ensureStreams(ctx context.Context, nc *nats.Conn) error {
 		if nc.IsConnected() && errors.As(err, &apiErr) {
 			return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
 		}
-		d.log.Warn().Err(err).Msg("JetStream not reachable yet; alerts wait in the spool")
+		// One warning per outage; the retries go to debug.
+		ev := d.log.Debug()
+		if !warned {
+			ev, warned = d.log.Warn(), true
+		}
+		ev.Err(err).Msg("JetStream not reachable yet; alerts wait in the spool")
 		t := time.NewTimer(2 * time.Second)
 		select {
 		case <-ctx.Done():
