@@ -260,3 +260,43 @@ func readyz(port int) (int, string) {
 	b, _ := io.ReadAll(resp.Body)
 	return resp.StatusCode, string(b)
 }
+
+// TestStartsWhileNATSIsAway: an unreachable server at start is an outage,
+// not a failure; once the server comes, the streams are created and the
+// daemon is ready.
+func TestStartsWhileNATSIsAway(t *testing.T) {
+	t.Parallel()
+	ns := startNATS(t)
+	ns.stop()
+	dir := t.TempDir()
+	httpPort := freePort(t)
+	cfg := outageConfig(t, dir, filepath.Join(dir, "no-port-yet"), ns.URL(), httpPort)
+	ctx, cancel := context.WithTimeout(t.Context(), time.Minute)
+	defer cancel()
+	codec := make(chan int, 1)
+	go func() {
+		code, _ := runDaemon(ctx, "run", "--config", cfg)
+		codec <- code
+	}()
+	waitFor(t, 30*time.Second, "/readyz to name nats and jetstream", func() bool {
+		code, body := readyz(httpPort)
+		return code == http.StatusServiceUnavailable && strings.Contains(body, "nats: not connected") && strings.Contains(body, "jetstream:")
+	})
+	ns.start()
+	waitFor(t, 30*time.Second, "/readyz to stop naming nats and jetstream", func() bool {
+		code, body := readyz(httpPort)
+		return code != 0 && !strings.Contains(body, "nats:") && !strings.Contains(body, "jetstream:")
+	})
+	if _, err := jetStreamOf(t, ns.URL()).Stream(ctx, "TRAPLINE_ALERTS"); err != nil {
+		t.Errorf("alerts stream not created after NATS came: %v", err)
+	}
+	cancel()
+	select {
+	case code := <-codec:
+		if code != daemon.ExitOK {
+			t.Errorf("exit code %d after cancellation", code)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("daemon did not stop within 30 s")
+	}
+}
