@@ -84,6 +84,18 @@ func (a *app) watchCommand() *cobra.Command {
 				return fmt.Errorf("connect to %s: %w", url, err)
 			}
 			defer nc.Close()
+			// The alert replay needs JetStream: wait for the server rather
+			// than fall back to live alerts only.
+			if !nc.IsConnected() {
+				a.log.Warn().Str("url", redactURL(url)).Msg("waiting for NATS")
+				for !nc.IsConnected() {
+					select {
+					case <-ctx.Done():
+						return nil
+					case <-time.After(100 * time.Millisecond):
+					}
+				}
+			}
 			return runWatch(ctx, nc, opts, cmd.OutOrStdout(), a.log.Warn)
 		},
 	}
