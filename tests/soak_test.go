@@ -16,12 +16,9 @@ import (
 	"bufio"
 	"encoding/json"
 	"fmt"
-	"io"
 	"net"
-	"net/http"
 	"os"
 	"path/filepath"
-	"regexp"
 	"slices"
 	"strconv"
 	"strings"
@@ -179,7 +176,7 @@ func TestSoak(t *testing.T) {
 	// Every sent sample must have been read: wait for the counters.
 	var got, dropped float64
 	waitFor(t, 30*time.Second, "every sample to be counted", func() bool {
-		m := scrape(t, httpPort)
+		m := metricsOf(httpPort)
 		got = m["trapline_samples_total"]
 		dropped = m["trapline_queue_dropped_samples_total"] + m["trapline_source_dropped_samples_total"]
 		return got >= float64(sent)
@@ -252,28 +249,4 @@ func procMemory(t *testing.T, pid int) (rss, hwm float64) {
 		}
 	}
 	return rss, hwm
-}
-
-var metricLine = regexp.MustCompile(`^([a-z_]+)(\{[^}]*\})? ([0-9.e+-]+)$`)
-
-// scrape reads /metrics and sums every series of each metric name.
-func scrape(t *testing.T, port int) map[string]float64 {
-	t.Helper()
-	c := http.Client{Timeout: 5 * time.Second}
-	resp, err := c.Get(fmt.Sprintf("http://127.0.0.1:%d/metrics", port))
-	if err != nil {
-		return nil
-	}
-	defer resp.Body.Close()
-	b, _ := io.ReadAll(resp.Body)
-	out := map[string]float64{}
-	for _, l := range strings.Split(string(b), "\n") {
-		m := metricLine.FindStringSubmatch(l)
-		if m == nil {
-			continue
-		}
-		v, _ := strconv.ParseFloat(m[3], 64)
-		out[m[1]] += v
-	}
-	return out
 }
