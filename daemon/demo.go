@@ -183,6 +183,16 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 			settle.Stop()
 		}
 	}
+	// Every alert raised so far has reached JetStream once the spool is
+	// empty; a moment later the view has it too. Then the view stops, and
+	// the daemon.
+	waitUntil(5*time.Second, func() bool { return d.del.pub.Depth() == 0 })
+	time.Sleep(300 * time.Millisecond)
+	for _, s := range stops {
+		s()
+	}
+	stopView()
+	<-viewDone
 	stopDaemon()
 	var runErr error
 	select {
@@ -191,15 +201,6 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	case <-time.After(cfg.ShutdownTimeout + 10*time.Second):
 		runErr = errors.New("demo daemon did not stop in time")
 	}
-	// The daemon has drained its alerts to JetStream; give the view a
-	// moment to receive them before it stops.
-	_ = nc.Flush()
-	time.Sleep(200 * time.Millisecond)
-	for _, s := range stops {
-		s()
-	}
-	stopView()
-	<-viewDone
 
 	fmt.Fprintf(out, "\ndemo: finished after %.0f s. Alerts raised and cleared:\n", time.Since(start).Seconds())
 	sum := v.summary()
@@ -216,15 +217,10 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	return runErr
 }
 
-// waitUntil polls cond every 20 ms for at most d and reports whether it
-// became true.
-func waitUntil(d time.Duration, cond func() bool) bool {
+// waitUntil polls cond every 20 ms until it holds or d has passed.
+func waitUntil(d time.Duration, cond func() bool) {
 	deadline := time.Now().Add(d)
-	for !cond() {
-		if time.Now().After(deadline) {
-			return false
-		}
+	for !cond() && time.Now().Before(deadline) {
 		time.Sleep(20 * time.Millisecond)
 	}
-	return true
 }
