@@ -129,13 +129,15 @@ func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
 			buf[ev.Stream] = p
 		}
 		for _, s := range ev.Samples {
+			// A sample batchS or more after the first starts the next batch,
+			// so that a batch holds batchS of samples (5 at 100 Hz and 50 ms).
+			if len(p.samples) > 0 && s.TimeS-p.samples[0].TimeS >= batchS-1e-9 {
+				flush(ev.Stream, p)
+			}
 			if len(p.samples) == 0 {
 				p.since = time.Now()
 			}
 			p.samples = append(p.samples, s)
-			if s.TimeS-p.samples[0].TimeS >= batchS-1e-9 {
-				flush(ev.Stream, p)
-			}
 		}
 	}
 	done := make(chan struct{})

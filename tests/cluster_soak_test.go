@@ -1,0 +1,149 @@
+//go:build soak
+
+package tests
+
+import (
+	"encoding/json"
+	"fmt"
+	"os"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"syscall"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+
+	"trapline/alerts"
+)
+
+// procCPU returns the user+system CPU seconds and the peak resident memory
+// (MiB) of a process, from /proc.
+func procCPU(pid int) (cpuS, peakMiB float64) {
+	if b, err := os.ReadFile(fmt.Sprintf("/proc/%d/stat", pid)); err == nil {
+		f := strings.Fields(string(b[strings.LastIndexByte(string(b), ')')+2:]))
+		if len(f) > 12 {
+			u, _ := strconv.ParseFloat(f[11], 64)
+			s, _ := strconv.ParseFloat(f[12], 64)
+			cpuS = (u + s) / 100 // clock ticks of 10 ms
+		}
+	}
+	if b, err := os.ReadFile(fmt.Sprintf("/proc/%d/status", pid)); err == nil {
+		for _, l := range strings.Split(string(b), "\n") {
+			if v, ok := strings.CutPrefix(l, "VmHWM:"); ok {
+				kb, _ := strconv.ParseFloat(strings.TrimSuffix(strings.TrimSpace(v), " kB"), 64)
+				peakMiB = kb / 1024
+			}
+		}
+	}
+	return cpuS, peakMiB
+}
+
+// TestClusterSoak plays TRAPLINE_CLUSTER_SOAK_STREAMS streams (default 1000) at
+// 100 Hz for TRAPLINE_CLUSTER_SOAK_SECONDS (default 300) through an edge, a
+// three-node cluster and two workers (the edge and the workers as child
+// processes), and reports throughput, CPU, memory and the latency from the
+// samples being stored to the alert arriving. Run it with
+//
+//	go test -tags soak -run TestClusterSoak -timeout 30m -v ./tests/
+func TestClusterSoak(t *testing.T) {
+	streams := envInt("TRAPLINE_CLUSTER_SOAK_STREAMS", 1000)
+	secs := envInt("TRAPLINE_CLUSTER_SOAK_SECONDS", 300)
+	c := startCluster(t)
+	dir := t.TempDir()
+	// Dynamic hyperinflation raises air trapping from the start: alerts to
+	// time. Every stream plays the same recording.
+	rec := simFile(t, dir, "hyper", "hyperinflation", time.Duration(secs+60)*time.Second)
+	var edge strings.Builder
+	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nhttp: {listen: \"\"}\nlog: {level: warn}\nnats: {url: \"%s\"}\nscaleout: {partitions: 16}\nstreams:\n",
+		filepath.Join(dir, "edge"), c.urls())
+	for i := range streams {
+		fmt.Fprintf(&edge, "  - id: bed-%04d\n    source: file://%s?pace=realtime\n", i, rec)
+	}
+	edgeCfg := writeConfig(t, edge.String())
+	var workers []*daemonProcess
+	nc, err := nats.Connect(c.urls(), nats.MaxReconnects(-1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+
+	var breaths atomic.Int64
+	var mu sync.Mutex
+	var lat []float64
+	if _, err := nc.Subscribe("trapline.breath.>", func(*nats.Msg) { breaths.Add(1) }); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := nc.Subscribe("trapline.alert.>", func(m *nats.Msg) {
+		var ev alerts.Event
+		if json.Unmarshal(m.Data, &ev) == nil && ev.Class != "technical" {
+			mu.Lock()
+			lat = append(lat, time.Since(ev.Time).Seconds())
+			mu.Unlock()
+		}
+	}); err != nil {
+		t.Fatal(err)
+	}
+	for _, id := range []string{"w1", "w2"} {
+		cfg := writeConfig(t, fmt.Sprintf(`role: worker
+data_dir: %s
+http: {listen: ""}
+log: {level: warn}
+nats: {url: "%s", replicas: 3}
+scaleout: {partitions: 16, worker_id: %s}
+`, filepath.Join(dir, id), c.urls(), id))
+		workers = append(workers, startDaemonProcess(t, "run", "-c", cfg))
+	}
+	time.Sleep(3 * time.Second) // bounded: let the workers join
+	var ru0 syscall.Rusage
+	_ = syscall.Getrusage(syscall.RUSAGE_SELF, &ru0)
+	start := time.Now()
+	ep := startDaemonProcess(t, "run", "-c", edgeCfg)
+
+	time.Sleep(time.Duration(secs) * time.Second) // bounded: the soak itself
+	elapsed := time.Since(start).Seconds()
+	var ru1 syscall.Rusage
+	_ = syscall.Getrusage(syscall.RUSAGE_SELF, &ru1)
+	edgeCPU, edgeMem := procCPU(ep.cmd.Process.Pid)
+	var wCPU, wMem []float64
+	for _, w := range workers {
+		c, m := procCPU(w.cmd.Process.Pid)
+		wCPU, wMem = append(wCPU, c), append(wMem, m)
+	}
+	js, _ := nc.JetStream()
+	si, err := js.StreamInfo("TRAPLINE_SAMPLES")
+	if err != nil {
+		t.Fatal(err)
+	}
+	_ = ep.stop(30 * time.Second)
+	for _, w := range workers {
+		_ = w.stop(30 * time.Second)
+	}
+	tv := func(tv syscall.Timeval) float64 { return float64(tv.Sec) + float64(tv.Usec)/1e6 }
+	clusterCPU := tv(ru1.Utime) + tv(ru1.Stime) - tv(ru0.Utime) - tv(ru0.Stime)
+
+	mu.Lock()
+	sort.Float64s(lat)
+	q := func(p float64) float64 {
+		if len(lat) == 0 {
+			return 0
+		}
+		return lat[min(len(lat)-1, int(p*float64(len(lat))))]
+	}
+	mu.Unlock()
+	samples := float64(si.State.Msgs) * 5 // 50 ms batches of 5 samples at 100 Hz
+	t.Logf("streams %d at 100 Hz for %.0f s", streams, elapsed)
+	t.Logf("samples stream: %d messages (%.0f samples/s of %d offered, %.1f MB/s stored)", si.State.Msgs, samples/elapsed, streams*100, float64(si.State.Bytes)/elapsed/1e6)
+	t.Logf("breaths published: %d (%.0f/s)", breaths.Load(), float64(breaths.Load())/elapsed)
+	t.Logf("CPU: cluster+test process %.0f%%, edge %.0f%%, workers %.0f%% and %.0f%% of one core",
+		100*clusterCPU/elapsed, 100*edgeCPU/elapsed, 100*wCPU[0]/elapsed, 100*wCPU[1]/elapsed)
+	t.Logf("peak memory: edge %.0f MiB, workers %.0f and %.0f MiB", edgeMem, wMem[0], wMem[1])
+	t.Logf("samples stored → alert received: %d alerts, p50 %.3f s, p99 %.3f s", len(lat), q(0.5), q(0.99))
+	if breaths.Load() == 0 || len(lat) == 0 {
+		t.Error("no breath or no alert came through")
+	}
+}
