@@ -242,7 +242,7 @@ func (w *worker) assign(ctx context.Context, changed <-chan []string) error {
 			gained = append(gained, p)
 			go func() {
 				defer close(r.done)
-				w.superviseePartition(pctx, p)
+				w.supervisePartition(pctx, p)
 			}()
 		}
 		if len(lost)+len(gained) > 0 {
@@ -251,10 +251,10 @@ func (w *worker) assign(ctx context.Context, changed <-chan []string) error {
 	}
 }
 
-// superviseePartition runs a partition until ctx ends, starting it again
+// supervisePartition runs a partition until ctx ends, starting it again
 // after a failure (or after being fenced out while this worker still
 // believes it owns the partition, which lasts until the views agree).
-func (w *worker) superviseePartition(ctx context.Context, p int) {
+func (w *worker) supervisePartition(ctx context.Context, p int) {
 	log := w.log.With().Int("partition", p).Logger()
 	wait := time.Duration(0)
 	for {

@@ -53,6 +53,9 @@ func procCPU(pid int) (cpuS, peakMiB float64) {
 func TestClusterSoak(t *testing.T) {
 	streams := envInt("TRAPLINE_CLUSTER_SOAK_STREAMS", 1000)
 	secs := envInt("TRAPLINE_CLUSTER_SOAK_SECONDS", 300)
+	// 20 messages/s per stream of about 150 bytes stored: 1000 streams for
+	// 5 minutes is about 1 GB per node besides the breath stream's 512 MiB.
+	clusterMaxStore = 8 << 30
 	c := startCluster(t)
 	dir := t.TempDir()
 	// Dynamic hyperinflation raises air trapping from the start: alerts to
@@ -145,5 +148,11 @@ scaleout: {partitions: 16, worker_id: %s}
 	t.Logf("samples stored → alert received: %d alerts, p50 %.3f s, p99 %.3f s", len(lat), q(0.5), q(0.99))
 	if breaths.Load() == 0 || len(lat) == 0 {
 		t.Error("no breath or no alert came through")
+	}
+	if samples/elapsed < 0.9*float64(streams*100) { // the start of 1000 sources takes seconds
+		t.Errorf("stored %.0f samples/s, offered %d: the cluster did not keep up", samples/elapsed, streams*100)
+	}
+	if strings.Contains(ep.out.String(), "not stored") {
+		t.Errorf("JetStream refused samples from the edge:\n%s", ep.out.String())
 	}
 }

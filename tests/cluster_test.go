@@ -24,6 +24,10 @@ import (
 	"trapline/daemon"
 )
 
+// clusterMaxStore is each node's JetStream file store limit. The breath
+// stream reserves 512 MiB of it; the soak needs more for its samples.
+var clusterMaxStore int64 = 1 << 30
+
 // cluster is three in-process NATS servers with JetStream, routed to each
 // other on 127.0.0.1.
 type cluster struct {
@@ -43,7 +47,7 @@ func startCluster(t *testing.T) *cluster {
 		o := &server.Options{
 			ServerName: fmt.Sprintf("n%d", i), Host: "127.0.0.1", Port: -1,
 			JetStream: true, StoreDir: t.TempDir(), NoSigs: true,
-			JetStreamMaxStore: 1 << 30, JetStreamMaxMemory: 64 << 20,
+			JetStreamMaxStore: clusterMaxStore, JetStreamMaxMemory: 64 << 20,
 			Cluster: server.ClusterOpts{Name: "trapline-test", Host: "127.0.0.1", Port: cports[i]},
 			Routes:  server.RoutesFromStr(strings.Join(routes, ",")),
 		}
