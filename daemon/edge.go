@@ -59,6 +59,9 @@ func (d *daemon) runEdge(ctx context.Context) error {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	g, gctx := errgroup.WithContext(ctx)
+	if err := d.startRoleHTTP(gctx, g, b.nc, func() uint64 { return 0 }); err != nil {
+		return err
+	}
 	for _, sc := range cfg.Streams {
 		log := e.log.With().Str("stream", sc.ID).Logger()
 		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.nc}

@@ -11,6 +11,7 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/rs/zerolog"
+	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
 	"trapline/config"
@@ -163,3 +164,26 @@ func ensureSamplesStream(ctx context.Context, js jetstream.JetStream, n scaleNam
 type permanentError struct{ error }
 
 func (e permanentError) Unwrap() error { return e.error }
+
+// startRoleHTTP serves /healthz, /readyz and /metrics for the edge and
+// worker roles when http.listen is set; the server runs in g until ctx
+// ends. Readiness starts with the NATS connection; the roles add checks.
+func (d *daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.Conn, dropped func() uint64) error {
+	d.ready.set("nats", func() error {
+		if !nc.IsConnected() {
+			return fmt.Errorf("not connected (%s)", nc.Status())
+		}
+		return nil
+	})
+	// No spool in these roles: the samples stream is the durable log.
+	d.m.setDelivery(func() int { return 0 }, nc.IsConnected, dropped)
+	if d.cfg.HTTP.Listen == "" {
+		return nil
+	}
+	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
+	if err != nil {
+		return err
+	}
+	g.Go(func() error { return h.Run(ctx) })
+	return nil
+}

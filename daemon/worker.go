@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"os"
+	"slices"
 	"strconv"
 	"strings"
 	"sync"
@@ -48,6 +49,7 @@ type worker struct {
 	alertsJS string
 	bull     *bulletin
 	tick     time.Duration
+	m        *metrics
 	// routes maps a stream id to the acknowledgement queue of the
 	// partition runner that analyses it here.
 	routes sync.Map
@@ -83,7 +85,7 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	w := &worker{
 		cfg: cfg, id: id, names: newScaleNames(cfg.NATS.SubjectPrefix), js: js,
 		log:  d.log.With().Str("role", "worker").Str("worker", id).Logger(),
-		subj: alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}, tick: d.opts.TickEvery,
+		subj: alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}, tick: d.opts.TickEvery, m: d.m,
 	}
 	if w.tick <= 0 {
 		w.tick = time.Second
@@ -124,6 +126,15 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	defer func() { _ = ackSub.Unsubscribe() }()
 
 	g, gctx := errgroup.WithContext(ctx)
+	if err := d.startRoleHTTP(gctx, g, b.nc, w.bull.Dropped); err != nil {
+		return err
+	}
+	d.ready.set("membership", func() error {
+		if !slices.Contains(mem.live(time.Now()), id) {
+			return errors.New("not a live member yet")
+		}
+		return nil
+	})
 	bullCtx, stopBulletin := context.WithCancel(context.WithoutCancel(ctx))
 	defer stopBulletin()
 	g.Go(func() error { return w.bull.Run(bullCtx) })
@@ -614,6 +625,7 @@ func (pt *partition) liveEmitter(sr *streamRun, evs *[]alerts.Event) emitter {
 			b.Seq += sr.off
 			sr.lastBreath = b.Seq
 			pt.w.bull.Breath(b)
+			pt.w.m.breaths.WithLabelValues(sr.id).Inc()
 		},
 		alert: func(e *alerts.Event) {
 			if e.BreathSeq != nil {
@@ -636,6 +648,7 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 		if err := pt.w.publishAlert(ctx, &evs[i]); err != nil {
 			return err
 		}
+		pt.w.m.alerts.WithLabelValues(sr.id, evs[i].Condition, string(evs[i].State)).Inc()
 	}
 	return pt.saveStream(ctx, sr)
 }

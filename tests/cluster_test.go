@@ -5,8 +5,10 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"io"
 	"math"
 	"net"
+	"net/http"
 	"os"
 	"path/filepath"
 	"sort"
@@ -213,15 +215,16 @@ func (b *breathLog) counts() (perStream map[string]int, dups []string) {
 
 // scaleSetup is a cluster, signals and the configurations of the roles.
 type scaleSetup struct {
-	c       *cluster
-	files   map[string]string
-	edgeCfg string
-	workers []string
-	nc      *nats.Conn
-	js      jetstream.JetStream
-	breaths *breathLog
-	outMu   sync.Mutex
-	out     []string
+	c        *cluster
+	files    map[string]string
+	edgeCfg  string
+	workers  []string
+	nc       *nats.Conn
+	js       jetstream.JetStream
+	breaths  *breathLog
+	httpAddr string // of worker w1
+	outMu    sync.Mutex
+	out      []string
 }
 
 // run runs `trapline run -c cfg` in-process until ctx ends and keeps its
@@ -235,7 +238,7 @@ func (s *scaleSetup) run(ctx context.Context, cfg string) {
 
 const workerYAML = `role: worker
 data_dir: %s
-http: {listen: ""}
+http: {listen: "%s"}
 log: {level: warn}
 nats: {url: "%s", replicas: 3}
 scaleout:
@@ -266,8 +269,13 @@ func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) 
 		fmt.Fprintf(&edge, "  - id: %s\n    source: file://%s?pace=realtime&speed=%g\n", id, f, speed)
 	}
 	s.edgeCfg = writeConfig(t, edge.String())
-	for _, w := range []string{"w1", "w2"} {
-		s.workers = append(s.workers, writeConfig(t, fmt.Sprintf(workerYAML, t.TempDir(), s.c.urls(), w)))
+	s.httpAddr = fmt.Sprintf("127.0.0.1:%d", freePort(t))
+	for i, w := range []string{"w1", "w2"} {
+		listen := ""
+		if i == 0 {
+			listen = s.httpAddr // w1 serves /readyz and /metrics
+		}
+		s.workers = append(s.workers, writeConfig(t, fmt.Sprintf(workerYAML, t.TempDir(), listen, s.c.urls(), w)))
 	}
 	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1))
 	if err != nil {
@@ -461,6 +469,19 @@ func TestClusterTwoWorkersOneEdge(t *testing.T) {
 	checkOnce(t, got, got)
 	s.checkBreaths(t, nb)
 	t.Logf("%d clinical alert events, %d streams", len(wantEv), len(nb))
+
+	// w1 is ready and counts the breaths of its streams.
+	for path, want := range map[string]string{"/readyz": "", "/metrics": "trapline_breaths_total{stream=\"bed-"} {
+		resp, err := http.Get("http://" + s.httpAddr + path)
+		if err != nil {
+			t.Fatalf("GET %s: %v", path, err)
+		}
+		body, _ := io.ReadAll(resp.Body)
+		resp.Body.Close()
+		if resp.StatusCode != http.StatusOK || !strings.Contains(string(body), want) {
+			t.Errorf("GET %s: %d, body without %q:\n%.400s", path, resp.StatusCode, want, body)
+		}
+	}
 
 	// An alarm still active is acknowledged through whichever worker owns
 	// its stream.
