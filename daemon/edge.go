@@ -74,6 +74,7 @@ func (d *daemon) runEdge(ctx context.Context) error {
 				if err != nil {
 					return err
 				}
+				d.m.addSource(sc.ID, src.Stats)
 				if err := e.runSource(ctx, src); err != nil || ctx.Err() != nil {
 					return err
 				}

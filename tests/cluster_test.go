@@ -569,9 +569,15 @@ func TestClusterWorkerKilled(t *testing.T) {
 	if len(onlyWant)+len(onlyGot) > 0 {
 		t.Errorf("alerts differ from the single-node run across the handover:\nmissing %v\nextra %v", onlyWant, onlyGot)
 	}
+	after := 0
+	for _, ev := range got {
+		if ev.Class != "technical" && ev.Time.After(killed) {
+			after++
+		}
+	}
 	_, dups := s.breaths.counts()
-	t.Logf("%d clinical alert events; %d breath records published twice (the replayed stretch since the last checkpoint)",
-		len(wantEv), len(dups))
+	t.Logf("%d clinical alert events, %d of them from samples stored after the kill; %d breath records published twice (the replayed stretch since the last checkpoint)",
+		len(wantEv), after, len(dups))
 }
 
 // pollUntil polls cond every 50 ms for at most d and reports whether it
