@@ -26,34 +26,29 @@ import (
 type pipeline struct {
 	stream string
 	an     *analyze.Analyzer
-	det    *analyze.Detectors
-	life   *alerts.Lifecycle
+	judge  *alerts.Judge
 
 	// now is the live wall clock (time.Now); unused offline.
 	now func() time.Time
-	// start is the wall time of stream time 0 offline; zero when live.
-	start time.Time
+	// clock, when set, makes the pipeline offline: it maps stream time to
+	// wall time and makes up the daemon's ticks.
+	clock *alerts.OfflineClock
 	// stats, when set, reads the source's counters for the decoder error
 	// rate; they are sampled on every Tick.
 	stats     func() ingest.Stats
 	lastStats ingest.Stats
 
 	haveSample bool
-	nextTickS  float64   // offline: stream time of the next made-up tick
 	lastS      float64   // stream time of the last sample
 	lastWall   time.Time // wall time it arrived
 	created    time.Time
-	scratch    []analyze.Finding
+	// breath holds the last completed breath: a field rather than a local,
+	// so that handing its address to the emitter does not move every
+	// analyzed sample's record to the heap.
+	breath analyze.Breath
 }
 
 var _ streamPipeline = (*pipeline)(nil)
-
-// offlineTickS is the period of the ticks an offline pipeline makes up, the
-// daemon's default tick period.
-const offlineTickS = 1.0
-
-// maxOfflineTicks bounds the ticks made up in one gap: an hour's worth.
-const maxOfflineTicks = 3600
 
 // newPipeline returns the live pipeline of stream; the configurations must
 // be valid.
@@ -61,8 +56,7 @@ func newPipeline(stream string, acfg analyze.Config, dcfg analyze.DetectorConfig
 	return &pipeline{
 		stream:  stream,
 		an:      analyze.NewAnalyzer(stream, acfg),
-		det:     analyze.NewDetectors(dcfg),
-		life:    alerts.NewLifecycle(stream, lcfg),
+		judge:   alerts.NewJudge(stream, dcfg, lcfg),
 		now:     time.Now,
 		created: time.Now(),
 	}
@@ -72,16 +66,11 @@ func newPipeline(stream string, acfg analyze.Config, dcfg analyze.DetectorConfig
 // is wall time start.
 func newOfflinePipeline(stream string, start time.Time, acfg analyze.Config, dcfg analyze.DetectorConfig, lcfg alerts.LifecycleConfig) *pipeline {
 	p := newPipeline(stream, acfg, dcfg, lcfg)
-	p.start, p.created = start, start
+	p.clock, p.created = &alerts.OfflineClock{Epoch: start}, start
 	return p
 }
 
-func (p *pipeline) offline() bool { return !p.start.IsZero() }
-
-// wallAt is the wall time of stream time tS offline.
-func (p *pipeline) wallAt(tS float64) time.Time {
-	return p.start.Add(time.Duration(tS * float64(time.Second)))
-}
+func (p *pipeline) offline() bool { return p.clock != nil }
 
 // streamNow maps a wall time to the stream's time axis: the last sample's
 // time plus the wall time since it arrived (before any sample, the wall
@@ -107,16 +96,6 @@ func collect(out *stageOutput) emitter {
 	}
 }
 
-// update passes findings to the lifecycle and emits the alert events.
-func (p *pipeline) update(fs []analyze.Finding, wall time.Time, em emitter) {
-	for _, f := range fs {
-		evs := p.life.Update(f, wall)
-		for i := range evs {
-			em.alert(&evs[i])
-		}
-	}
-}
-
 // Samples analyses a batch of samples in time order. Live, all of it is
 // stamped with the wall time of the call.
 func (p *pipeline) Samples(ss []ingest.Sample) stageOutput {
@@ -138,36 +117,19 @@ func (p *pipeline) process(ss []ingest.Sample, em emitter) {
 			continue // no place on the time axis; the analyzer skips it too
 		}
 		if p.offline() {
-			// Make the ticks the daemon would have made, once a second of
-			// stream time, through gaps too.
-			// A clock that went back restarts the ticks; a gap longer than
-			// maxOfflineTicks gets that many, then the ticks jump to the
-			// present (after an hour of silence nothing new happens each
-			// second, and a corrupt time stamp must not loop for ever).
-			if !p.haveSample || s.TimeS < p.nextTickS-offlineTickS {
-				p.nextTickS = s.TimeS + offlineTickS
-			}
-			for n := 0; p.nextTickS <= s.TimeS; n++ {
-				if n == maxOfflineTicks {
-					p.nextTickS = s.TimeS + offlineTickS
-					break
-				}
-				p.tick(p.wallAt(p.nextTickS), em)
-				p.nextTickS += offlineTickS
-			}
-			wall = p.wallAt(s.TimeS)
+			p.clock.Until(s.TimeS, func(tickS float64) { p.tick(p.clock.Wall(tickS), em) })
+			wall = p.clock.Wall(s.TimeS)
 		}
-		p.scratch = p.det.Samples(ss[i:i+1], s.TimeS, p.scratch[:0])
-		p.update(p.scratch, wall, em)
+		p.judge.Samples(ss[i:i+1], s.TimeS, wall, em.alert)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		b, ok := p.an.Push(s)
 		if !ok {
 			continue
 		}
-		b.Stream = p.stream
-		em.breath(&b)
-		p.scratch = p.det.Breath(&b, p.scratch[:0])
-		p.update(p.scratch, wall, em)
+		p.breath = b
+		p.breath.Stream = p.stream
+		em.breath(&p.breath)
+		p.judge.Breath(&p.breath, wall, em.alert)
 	}
 }
 
@@ -176,9 +138,9 @@ func (p *pipeline) process(ss []ingest.Sample, em emitter) {
 // judged by Tick from the time without samples.
 func (p *pipeline) Status(ev ingest.Event, now time.Time) stageOutput {
 	if p.offline() {
-		now = p.wallAt(p.lastS)
+		now = p.clock.Wall(p.lastS)
 	}
-	p.det.Status(&ev, p.streamNow(now))
+	p.judge.Status(&ev, p.streamNow(now))
 	if ev.Status == ingest.StatusDisconnected {
 		p.an.Reset()
 	}
@@ -197,20 +159,19 @@ func (p *pipeline) tick(now time.Time, em emitter) {
 	nowS := p.streamNow(now)
 	if p.stats != nil {
 		st := p.stats()
-		p.det.Decoder(ingest.Stats{
+		p.judge.Decoder(ingest.Stats{
 			Samples:   st.Samples - p.lastStats.Samples,
 			BadLines:  st.BadLines - p.lastStats.BadLines,
 			BadFrames: st.BadFrames - p.lastStats.BadFrames,
 		}, nowS)
 		p.lastStats = st
 	}
-	p.scratch = p.det.Tick(nowS, p.scratch[:0])
-	p.update(p.scratch, now, em)
+	p.judge.Tick(nowS, now, em.alert)
 }
 
 // Ack acknowledges the alarm with id on behalf of by (may be empty).
 func (p *pipeline) Ack(id, by string, now time.Time) (stageOutput, error) {
-	evs, err := p.life.AckBy(id, by, now)
+	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
 	return stageOutput{Alerts: evs}, err
 }
 

@@ -524,7 +524,7 @@ func (pt *partition) newStream(id string) (*streamRun, error) {
 	sr.pl.now = func() time.Time { return sr.wall }
 	// Until the hand-over point the lifecycle's events are thrown away: the
 	// previous owner has published them.
-	sr.pl.life = alerts.NewLifecycle(id, cfg.Alarms)
+	sr.pl.judge.SetLifecycle(alerts.NewLifecycle(id, cfg.Alarms))
 	sr.warm, sr.until = true, pt.rec.Seq
 	dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: id}, func(_ string, s ingest.Sample) {
 		sr.buf = append(sr.buf, s)
@@ -566,11 +566,11 @@ func (pt *partition) goLive(sr *streamRun) error {
 		if err != nil {
 			return err
 		}
-		sr.pl.life = l
+		sr.pl.judge.SetLifecycle(l)
 		sr.off = sr.rec.BreathSeq + 1 - (sr.lastWarmBreath + 1)
 		sr.lastBreath = sr.rec.BreathSeq
 	} else {
-		sr.pl.life = alerts.NewLifecycle(sr.id, pt.w.cfg.Alarms)
+		sr.pl.judge.SetLifecycle(alerts.NewLifecycle(sr.id, pt.w.cfg.Alarms))
 	}
 	return nil
 }
@@ -685,7 +685,7 @@ func (w *worker) publishAlert(ctx context.Context, ev *alerts.Event) error {
 
 // saveStream writes a stream's checkpoint, fenced by its revision.
 func (pt *partition) saveStream(ctx context.Context, sr *streamRun) error {
-	rec := streamCheckpoint{Owner: pt.w.id, Seq: sr.seq, Time: sr.wall, BreathSeq: sr.lastBreath, Life: sr.pl.life.Snapshot()}
+	rec := streamCheckpoint{Owner: pt.w.id, Seq: sr.seq, Time: sr.wall, BreathSeq: sr.lastBreath, Life: sr.pl.judge.Lifecycle().Snapshot()}
 	rev, err := pt.w.fencedPut(ctx, sr.key, rec, sr.rev)
 	if err != nil {
 		return err

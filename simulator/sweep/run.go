@@ -237,19 +237,10 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 	out := CaseResult{Case: c, Alerts: make([][]AlertEvent, len(sets))}
 	one := make([]ingest.Sample, 1)
 	var b analyze.Breath
-	nextTick, lastS, started := 0.0, 0.0, false
+	lastS := 0.0
 	lastReport := 0.0
 	ti := 0 // next truth breath to match
 
-	tickTo := func(t float64) {
-		// The ticks the daemon would have made, once a second of stream
-		// time, through a disconnection too.
-		for ; started && nextTick <= t; nextTick += tickS {
-			for _, s := range stages {
-				s.tick(nextTick)
-			}
-		}
-	}
 	for {
 		smp, ok := sim.Next()
 		for _, le := range sim.TakeLinkEvents() {
@@ -269,10 +260,6 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		if !ok {
 			break
 		}
-		if !started {
-			started, nextTick = true, smp.TimeS+tickS
-		}
-		tickTo(smp.TimeS)
 		out.Samples++
 		lastS = smp.TimeS
 		one[0] = smp
@@ -305,7 +292,9 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 			}
 		}
 	}
-	tickTo(sim.DurationS())
+	for _, s := range stages {
+		s.finish(sim.DurationS())
+	}
 	if progress != nil {
 		progress(sim.DurationS() - lastReport)
 	}

@@ -1,0 +1,115 @@
+package alerts
+
+import (
+	"time"
+
+	"trapline/analyze"
+	"trapline/ingest"
+)
+
+// Judge runs one stream's detectors and passes every finding through the
+// stream's alarm lifecycle: the step from findings to alert events that the
+// daemon, `trapline analyze` and the detector sweep share, so that each of
+// them judges a stream exactly alike. It is used from one goroutine.
+type Judge struct {
+	det     *analyze.Detectors
+	life    *Lifecycle
+	scratch []analyze.Finding
+}
+
+// NewJudge returns the judge of stream; the configurations must be valid.
+func NewJudge(stream string, dcfg analyze.DetectorConfig, lcfg LifecycleConfig) *Judge {
+	return &Judge{
+		det:     analyze.NewDetectors(dcfg),
+		life:    NewLifecycle(stream, lcfg),
+		scratch: make([]analyze.Finding, 0, 16),
+	}
+}
+
+// Lifecycle returns the alarm lifecycle, for acknowledgements and
+// snapshots.
+func (j *Judge) Lifecycle() *Lifecycle { return j.life }
+
+// SetLifecycle replaces the alarm lifecycle, as a worker does when it takes
+// a stream over and restores the alarm state of the previous owner.
+func (j *Judge) SetLifecycle(l *Lifecycle) { j.life = l }
+
+// update passes the findings gathered in scratch to the lifecycle.
+func (j *Judge) update(wall time.Time, emit func(*Event)) {
+	for _, f := range j.scratch {
+		evs := j.life.Update(f, wall)
+		for i := range evs {
+			emit(&evs[i])
+		}
+	}
+}
+
+// Samples judges samples that arrived at stream time nowS (the technical
+// conditions: implausible signal, gaps).
+func (j *Judge) Samples(ss []ingest.Sample, nowS float64, wall time.Time, emit func(*Event)) {
+	j.scratch = j.det.Samples(ss, nowS, j.scratch[:0])
+	j.update(wall, emit)
+}
+
+// Breath judges a completed breath (the physiological conditions).
+func (j *Judge) Breath(b *analyze.Breath, wall time.Time, emit func(*Event)) {
+	j.scratch = j.det.Breath(b, j.scratch[:0])
+	j.update(wall, emit)
+}
+
+// Tick judges the time-based conditions (signal lost, decoder error rate)
+// at stream time nowS.
+func (j *Judge) Tick(nowS float64, wall time.Time, emit func(*Event)) {
+	j.scratch = j.det.Tick(nowS, j.scratch[:0])
+	j.update(wall, emit)
+}
+
+// Status takes a change of the source's condition at stream time nowS.
+func (j *Judge) Status(ev *ingest.Event, nowS float64) { j.det.Status(ev, nowS) }
+
+// Decoder takes the source's counters accumulated since the last call.
+func (j *Judge) Decoder(delta ingest.Stats, nowS float64) { j.det.Decoder(delta, nowS) }
+
+// OfflineTickS is the period of the ticks made up for a recording: the
+// daemon's default tick period.
+const OfflineTickS = 1.0
+
+// maxOfflineTicks bounds the ticks made up in one gap: an hour's worth.
+// After an hour of silence nothing new happens each second, and a corrupt
+// time stamp must not loop for ever.
+const maxOfflineTicks = 3600
+
+// OfflineClock makes, for a recording or a simulation, the ticks the live
+// daemon would have made once a second, on the stream's own time axis and
+// through gaps too, and maps stream time to a wall time: Epoch + t. That
+// makes offline output, alert ids included, a deterministic function of
+// the input.
+type OfflineClock struct {
+	// Epoch is the wall time of stream time 0.
+	Epoch   time.Time
+	started bool
+	nextS   float64
+}
+
+// Wall returns the wall time of stream time tS.
+func (c *OfflineClock) Wall(tS float64) time.Time {
+	return c.Epoch.Add(time.Duration(tS * float64(time.Second)))
+}
+
+// Until calls tick for every tick due up to stream time tS, in order. A
+// clock that went back restarts the ticks; a gap longer than an hour gets an
+// hour of ticks, then the ticks jump to the present.
+func (c *OfflineClock) Until(tS float64, tick func(tickS float64)) {
+	if !c.started || tS < c.nextS-OfflineTickS {
+		c.started, c.nextS = true, tS+OfflineTickS
+		return
+	}
+	for n := 0; c.nextS <= tS; n++ {
+		if n == maxOfflineTicks {
+			c.nextS = tS + OfflineTickS
+			return
+		}
+		tick(c.nextS)
+		c.nextS += OfflineTickS
+	}
+}
