@@ -66,6 +66,10 @@ func supervise(ctx context.Context, log zerolog.Logger, b backoff, f func(contex
 			}
 			return nil
 		}
+		if errors.Is(err, errFinished) {
+			log.Info().Msg("source reached its end; stream finished")
+			return nil
+		}
 		if err == nil {
 			err = errors.New("returned before shutdown")
 		}

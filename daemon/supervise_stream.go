@@ -68,7 +68,15 @@ type streamSpec struct {
 	StatusEvery time.Duration
 	// Backoff is the restart policy; zero means defaultBackoff.
 	Backoff backoff
+	// Finite marks a source that has an end (a file, stdin): when it
+	// reaches it, the stream is finished rather than restarted, so that a
+	// recording is analysed once and not replayed over and over.
+	Finite bool
 }
+
+// errFinished ends the supervision of a stream whose finite source reached
+// its end.
+var errFinished = errors.New("source reached its end")
 
 // ackRequest carries an acknowledgement to the goroutine that owns the
 // stream's pipeline.
@@ -98,8 +106,11 @@ type stream struct {
 	breaths   atomic.Uint64
 	active    atomic.Int64
 	restarts  atomic.Uint64
-	analysed  atomic.Uint64 // samples handed to the pipeline
-	lastErr   atomic.Pointer[string]
+	// finished is set when a finite source reached its end and its stream
+	// was analysed to the last sample.
+	finished atomic.Bool
+	analysed atomic.Uint64 // samples handed to the pipeline
+	lastErr  atomic.Pointer[string]
 
 	// acks is nil while the pipeline is down; the ack handler then answers
 	// "not running".
@@ -154,6 +165,8 @@ func (s *stream) Run(ctx context.Context) error {
 // ready reports why the stream is not ready, or nil.
 func (s *stream) ready() error {
 	switch {
+	case s.finished.Load():
+		return nil
 	case !s.up.Load():
 		if e := s.lastErr.Load(); e != nil {
 			return fmt.Errorf("pipeline restarting after: %s", *e)
@@ -197,6 +210,15 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 // the pipeline and returns. That gives the shutdown order inside a stream:
 // the source stops first, then analysis finishes what was read.
 func (s *stream) runOnce(ctx context.Context) error {
+	err := s.runSource(ctx)
+	if errors.Is(err, errFinished) {
+		s.finished.Store(true)
+	}
+	return err
+}
+
+// runSource is one run of the stream's source and analysis.
+func (s *stream) runSource(ctx context.Context) error {
 	src, pl, err := s.spec.Open()
 	if err != nil {
 		return fmt.Errorf("open: %w", err)
@@ -236,6 +258,9 @@ func (s *stream) runOnce(ctx context.Context) error {
 			return fmt.Errorf("source: %w", err)
 		}
 		if err == nil && srcCtx.Err() == nil {
+			if s.spec.Finite {
+				return errFinished
+			}
 			return errors.New("source ended")
 		}
 		return nil

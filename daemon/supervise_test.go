@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"net/http"
+	"os"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -309,5 +310,63 @@ func TestHTTPHealthReadyMetrics(t *testing.T) {
 	case <-done:
 	case <-time.After(5 * time.Second):
 		t.Fatal("http server did not stop")
+	}
+}
+
+// sampleCounter counts the samples its stream analyses.
+type sampleCounter struct {
+	countingPipeline
+	n *atomic.Int64
+}
+
+func (p *sampleCounter) Samples(ss []ingest.Sample) stageOutput {
+	p.n.Add(int64(len(ss)))
+	return p.countingPipeline.Samples(ss)
+}
+
+// TestFiniteSourceFinishesItsStream reads a recording through a real file
+// source: at its end the stream is finished, not restarted, so every sample
+// is analysed exactly once and the stream stays ready.
+func TestFiniteSourceFinishesItsStream(t *testing.T) {
+	const n = 500
+	path := t.TempDir() + "/bed-7.csv"
+	var b strings.Builder
+	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
+	for i := range n {
+		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
+	}
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	var analysed atomic.Int64
+	sink := newMemSink()
+	s := newStream(streamSpec{
+		ID:     "bed-7",
+		Finite: true,
+		Open: func() (ingest.Source, streamPipeline, error) {
+			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-7"})
+			return src, &sampleCounter{countingPipeline{stream: "bed-7"}, &analysed}, err
+		},
+		Backoff: backoff{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+	}, zerolog.Nop(), newMetrics(), sink, sink)
+
+	done := make(chan error, 1)
+	go func() { done <- s.Run(t.Context()) }()
+	select {
+	case err := <-done:
+		if err != nil {
+			t.Fatalf("Run: %v", err)
+		}
+	case <-time.After(10 * time.Second):
+		t.Fatal("the stream of a finished recording did not end within 10 s")
+	}
+	if got := analysed.Load(); got != n {
+		t.Errorf("analysed %d samples, want each of the %d exactly once", got, n)
+	}
+	if r := s.restarts.Load(); r != 0 {
+		t.Errorf("restarted %d times after the end of the recording", r)
+	}
+	if err := s.ready(); err != nil {
+		t.Errorf("a finished stream is not ready: %v", err)
 	}
 }

@@ -229,8 +229,13 @@ func (d *daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	if _, err := ingest.Open(sc.Source, opts); err != nil {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 	}
+	u, err := ingest.ParseURL(sc.Source)
+	if err != nil {
+		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
+	}
 	return streamSpec{
-		ID: sc.ID,
+		ID:     sc.ID,
+		Finite: u.Scheme == "file" || u.Scheme == "stdin",
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {
