@@ -146,9 +146,10 @@ func (o *ptyOutput) Close() error {
 func (o *ptyOutput) MaxWrite() int { return 0 }
 
 // drainQuietTicks is how many 5 ms readings in a row must find the input
-// queue empty: 100 ms, longer than the kernel takes to move bytes from the
-// master to that queue even on a busy machine.
-const drainQuietTicks = 20
+// queue empty: 300 ms, longer than the kernel takes to move bytes from the
+// master to that queue even on a heavily loaded machine (100 ms lost the
+// last samples at a load average of 15 on two cores).
+const drainQuietTicks = 60
 
 // drain waits until the reader has taken everything written, or until ctx
 // ends, so that closing the master at the end of a run loses nothing. The

@@ -200,7 +200,7 @@ func Stream(ctx context.Context, sim *Sim, out Output, opts StreamOptions) (Stre
 
 // drainTimeout bounds the wait for a reader to take the last samples at
 // the end of a run.
-const drainTimeout = 2 * time.Second
+const drainTimeout = 5 * time.Second
 
 // ctxErr prefers the context's error: a write that failed because Stream
 // closed the output on cancellation is a cancellation.
