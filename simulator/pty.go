@@ -147,8 +147,8 @@ func (o *ptyOutput) MaxWrite() int { return 0 }
 
 // drainQuietTicks is how many 5 ms readings in a row must find the input
 // queue empty: 300 ms, longer than the kernel takes to move bytes from the
-// master to that queue even on a heavily loaded machine (100 ms lost the
-// last samples at a load average of 15 on two cores).
+// master to that queue even on a heavily loaded machine (a reader lost
+// samples with 100 ms on a busy two-core machine).
 const drainQuietTicks = 60
 
 // drain waits until the reader has taken everything written, or until ctx
