@@ -17,7 +17,6 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
-	"github.com/nats-io/nats.go/jetstream"
 )
 
 // childEnv switches the test binary into the publishing child of
@@ -156,13 +155,7 @@ func TestPublisherSurvivesSIGKILL(t *testing.T) {
 		{"while publishing", false, 5},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			ns := startTestNATS(t)
-			nc := ns.connect(t)
-			cfg := testStreams("")
-			js, _ := jetstream.New(nc)
-			if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-				t.Fatal(err)
-			}
+			ns, nc, cfg := startWithStreams(t)
 			dir := t.TempDir()
 
 			var spooled []string

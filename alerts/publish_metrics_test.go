@@ -5,7 +5,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/nats-io/nats.go/jetstream"
 	"github.com/prometheus/client_golang/prometheus"
 	dto "github.com/prometheus/client_model/go"
 )
@@ -13,13 +12,7 @@ import (
 // TestPublisherCollector delivers three events and refuses one, then reads
 // the counters through a Prometheus registry.
 func TestPublisherCollector(t *testing.T) {
-	ns := startTestNATS(t)
-	nc := ns.connect(t)
-	cfg := testStreams("")
-	js, _ := jetstream.New(nc)
-	if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-		t.Fatal(err)
-	}
+	_, nc, cfg := startWithStreams(t)
 	p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg})
 	reg := prometheus.NewPedanticRegistry()
 	if err := reg.Register(p.Collector("trapline")); err != nil {

@@ -79,6 +79,20 @@ func (n *testNATS) stop() {
 
 // testStreams returns stream limits that fit the test server's 256 MiB:
 // JetStream reserves each stream's MaxBytes from the account's store.
+// startWithStreams starts a test server, connects to it and creates the
+// default alert and breath streams: how most publisher tests begin.
+func startWithStreams(t *testing.T) (*testNATS, *nats.Conn, StreamsConfig) {
+	t.Helper()
+	ns := startTestNATS(t)
+	nc := ns.connect(t)
+	cfg := testStreams("")
+	js, _ := jetstream.New(nc)
+	if err := EnsureStreams(t.Context(), js, cfg); err != nil {
+		t.Fatal(err)
+	}
+	return ns, nc, cfg
+}
+
 func testStreams(prefix string) StreamsConfig {
 	return StreamsConfig{Prefix: prefix, AlertsMaxBytes: 32 << 20, BreathsMaxBytes: 32 << 20}
 }
@@ -224,13 +238,7 @@ func newTestPublisher(t testing.TB, nc *nats.Conn, dir string, opts PublisherOpt
 }
 
 func TestPublisherDeliversInOrder(t *testing.T) {
-	ns := startTestNATS(t)
-	nc := ns.connect(t)
-	cfg := testStreams("")
-	js, _ := jetstream.New(nc)
-	if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-		t.Fatal(err)
-	}
+	_, nc, cfg := startWithStreams(t)
 	p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg})
 	stop := runPublisher(t, p)
 	var want []string
@@ -262,13 +270,7 @@ func TestPublisherDeliversInOrder(t *testing.T) {
 // away for about two seconds and comes back on the same port and store:
 // every event must be stored exactly once, in the order it was raised.
 func TestPublisherOutage(t *testing.T) {
-	ns := startTestNATS(t)
-	nc := ns.connect(t)
-	cfg := testStreams("")
-	js, _ := jetstream.New(nc)
-	if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-		t.Fatal(err)
-	}
+	ns, nc, cfg := startWithStreams(t)
 	p := newTestPublisher(t, nc, t.TempDir(), PublisherOptions{Streams: cfg})
 	stop := runPublisher(t, p)
 	defer p.Close()
@@ -302,13 +304,7 @@ func TestPublisherOutage(t *testing.T) {
 // the first publisher spools events and is dropped without Close or drain;
 // a new one on the same spool directory delivers them all exactly once.
 func TestPublisherAbandoned(t *testing.T) {
-	ns := startTestNATS(t)
-	nc := ns.connect(t)
-	cfg := testStreams("")
-	js, _ := jetstream.New(nc)
-	if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-		t.Fatal(err)
-	}
+	ns, nc, cfg := startWithStreams(t)
 	dir := t.TempDir()
 	p1 := newTestPublisher(t, nc, dir, PublisherOptions{Streams: cfg, DrainTimeout: -1})
 	stop1 := runPublisher(t, p1)
@@ -532,13 +528,7 @@ func TestPublisherCloseDrainsWithinLimit(t *testing.T) {
 		{"server down", false, 25},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			ns := startTestNATS(t)
-			nc := ns.connect(t)
-			cfg := testStreams("")
-			js, _ := jetstream.New(nc)
-			if err := EnsureStreams(t.Context(), js, cfg); err != nil {
-				t.Fatal(err)
-			}
+			ns, nc, cfg := startWithStreams(t)
 			if !tc.serverUp {
 				ns.stop()
 			}
