@@ -5,8 +5,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"math"
-	"net"
-	"path/filepath"
 	"testing"
 	"time"
 
@@ -136,24 +134,10 @@ func TestBulletinNeverBlocks(t *testing.T) {
 // (What is written in the instant before the client notices is lost: the
 // bulletin is best effort.)
 func TestBulletinAcrossOutage(t *testing.T) {
-	store := filepath.Join(t.TempDir(), "nats")
 	log := zerolog.Nop()
-	e, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store, MaxStoreBytes: 256 << 20}, log)
-	if err != nil {
-		t.Fatal(err)
-	}
-	port := e.srv.Addr().(*net.TCPAddr).Port
-	co := e.clientOptions("trapline")
-	co.ReconnectWait = 50 * time.Millisecond
-	nc, err := connectNATS(co, log)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
-	js, _ := jetstream.New(nc)
-	if err := alerts.EnsureStreams(t.Context(), js, natsTestStreams()); err != nil {
-		t.Fatal(err)
-	}
+	o := startOutageNATS(t, log)
+	e, store, port, nc, js := o.srv, o.store, o.port, o.nc, o.js
+	var err error
 	b := newBulletin(nc, "trapline", 64, log)
 	ctx, cancel := context.WithCancel(t.Context())
 	done := make(chan error, 1)

@@ -262,25 +262,11 @@ func TestAlertSubscriptionLikeCLI(t *testing.T) {
 // server stops while alerts are raised and starts again on the same port and
 // store; every alert is stored exactly once, in order.
 func TestEmbeddedNATSOutage(t *testing.T) {
-	store := filepath.Join(t.TempDir(), "nats")
 	log := zerolog.New(zerolog.NewTestWriter(t)).Level(zerolog.WarnLevel)
-	e, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store, MaxStoreBytes: 256 << 20}, log)
-	if err != nil {
-		t.Fatal(err)
-	}
-	port := e.srv.Addr().(*net.TCPAddr).Port
-	co := e.clientOptions("trapline")
-	co.ReconnectWait = 50 * time.Millisecond
-	nc, err := connectNATS(co, log)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
-	js, _ := jetstream.New(nc)
+	o := startOutageNATS(t, log)
+	e, store, port, nc, js := o.srv, o.store, o.port, o.nc, o.js
 	cfg := natsTestStreams()
-	if err := alerts.EnsureStreams(t.Context(), js, cfg); err != nil {
-		t.Fatal(err)
-	}
+	var err error
 	sp, err := alerts.OpenSpool(filepath.Join(t.TempDir(), "spool"), 0)
 	if err != nil {
 		t.Fatal(err)
@@ -479,4 +465,38 @@ func writeNATSTestPKI(t *testing.T, dir string) natsTestPKI {
 	p.serverCert, p.serverKey = leaf(2, "server", []x509.ExtKeyUsage{x509.ExtKeyUsageServerAuth, x509.ExtKeyUsageClientAuth}, []net.IP{net.IPv4(127, 0, 0, 1)})
 	p.clientCert, p.clientKey = leaf(3, "client", []x509.ExtKeyUsage{x509.ExtKeyUsageClientAuth}, nil)
 	return p
+}
+
+// outageNATS is an embedded server with JetStream on a store that a test
+// can shut down and start again on the same port, a client that reconnects
+// quickly, and the default streams created.
+type outageNATS struct {
+	srv   *embeddedNATS
+	store string
+	port  int
+	nc    *nats.Conn
+	js    jetstream.JetStream
+}
+
+func startOutageNATS(t *testing.T, log zerolog.Logger) outageNATS {
+	t.Helper()
+	o := outageNATS{store: filepath.Join(t.TempDir(), "nats")}
+	var err error
+	o.srv, err = startEmbeddedNATS(embeddedNATSOptions{StoreDir: o.store, MaxStoreBytes: 256 << 20}, log)
+	if err != nil {
+		t.Fatal(err)
+	}
+	o.port = o.srv.srv.Addr().(*net.TCPAddr).Port
+	co := o.srv.clientOptions("trapline")
+	co.ReconnectWait = 50 * time.Millisecond
+	o.nc, err = connectNATS(co, log)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(o.nc.Close)
+	o.js, _ = jetstream.New(o.nc)
+	if err := alerts.EnsureStreams(t.Context(), o.js, natsTestStreams()); err != nil {
+		t.Fatal(err)
+	}
+	return o
 }
