@@ -14,23 +14,12 @@ import (
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/simulator/plotstyle"
 )
 
-// palette is a colour-blind-safe qualitative palette (Okabe and Ito,
-// "Color Universal Design", 2008).
-var palette = []color.RGBA{
-	{0, 114, 178, 255},   // blue
-	{213, 94, 0, 255},    // vermilion
-	{0, 158, 115, 255},   // bluish green
-	{204, 121, 167, 255}, // reddish purple
-	{230, 159, 0, 255},   // orange
-	{86, 180, 233, 255},  // sky blue
-	{0, 0, 0, 255},       // black
-}
+func colour(i int) color.RGBA { return plotstyle.Colour(i) }
 
-func colour(i int) color.RGBA { return palette[i%len(palette)] }
-
-func withAlpha(c color.RGBA, a uint8) color.NRGBA { return color.NRGBA{c.R, c.G, c.B, a} }
+func withAlpha(c color.RGBA, a uint8) color.NRGBA { return plotstyle.WithAlpha(c, a) }
 
 // svgOf renders plots side by side (or stacked, with rows > 1) into one
 // inline SVG element.
@@ -65,15 +54,7 @@ func svgOf(w, h vg.Length, rows int, plots ...*plot.Plot) (string, error) {
 	return s, nil
 }
 
-func newPlot(title, x, y string) *plot.Plot {
-	p := plot.New()
-	p.Title.Text = title
-	p.X.Label.Text = x
-	p.Y.Label.Text = y
-	p.Add(plotter.NewGrid())
-	p.Legend.Top = true
-	return p
-}
+func newPlot(title, x, y string) *plot.Plot { return plotstyle.NewPlot(title, x, y) }
 
 // vline draws a dashed vertical line at x from y0 to y1.
 func vline(p *plot.Plot, x, y0, y1 float64, c color.Color, dashed bool) error {
@@ -382,7 +363,7 @@ func waveformPlots(ex *Example) (*plot.Plot, *plot.Plot, error) {
 			p      *plot.Plot
 			lo, hi float64
 		}{{pp, pMin, pMax}, {fp, fMin, fMax}} {
-			if err := vline(x.p, b.StartS, x.lo, x.hi, color.Gray{Y: 185}, false); err != nil {
+			if err := vline(x.p, b.StartS, x.lo, x.hi, plotstyle.BoundaryGrey, false); err != nil {
 				return nil, nil, err
 			}
 		}
