@@ -46,7 +46,7 @@ func buildPanels(d *Data, o *Options) ([]panel, error) {
 		val          func(i int) float64
 		weight       float64
 	}{
-		{"pressure", "airway pressure (cmH2O)", func(i int) float64 { return d.Samples[i].PressureCmH2O }, 3},
+		{"pressure", "airway pressure\n(cmH2O)", func(i int) float64 { return d.Samples[i].PressureCmH2O }, 3},
 		{"flow", "flow (L/min)", func(i int) float64 { return d.Samples[i].FlowLPS * 60 }, 3},
 		{"volume", "volume (mL)", func(i int) float64 { return vol[i] }, 2},
 	}

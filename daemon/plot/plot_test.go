@@ -7,6 +7,8 @@ import (
 	"image/png"
 	"io"
 	"math"
+	"os"
+	"path/filepath"
 	"strings"
 	"sync"
 	"testing"
@@ -353,5 +355,29 @@ func TestSelect(t *testing.T) {
 	d := Select("a", nil, b, e)
 	if len(d.Breaths) != 2 || len(d.Alerts) != 1 || d.Stream != "a" {
 		t.Errorf("Select: %d breaths, %d alerts", len(d.Breaths), len(d.Alerts))
+	}
+}
+
+// TestDocsImage writes the picture of docs/img/plot.png (the default
+// scenario while air trapping builds) when TRAPLINE_UPDATE_TESTDATA=1, and
+// otherwise checks that the file is there and is a PNG.
+func TestDocsImage(t *testing.T) {
+	path := filepath.Join("..", "..", "docs", "img", "plot.png")
+	if os.Getenv("TRAPLINE_UPDATE_TESTDATA") == "1" {
+		var buf bytes.Buffer
+		if err := Recording(&buf, "png", scenario(t), Options{FromS: 240, ToS: 720, DPI: 110}); err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(path, buf.Bytes(), 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	if _, err := png.Decode(f); err != nil {
+		t.Errorf("%s: %v", path, err)
 	}
 }

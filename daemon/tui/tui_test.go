@@ -1,7 +1,6 @@
 package tui
 
 import (
-	"flag"
 	"math"
 	"os"
 	"path/filepath"
@@ -15,7 +14,8 @@ import (
 	"trapline/daemon/internal/simrun"
 )
 
-var update = flag.Bool("update", false, "rewrite the golden files")
+// update rewrites the golden files, as for the ingest package's.
+var update = os.Getenv("TRAPLINE_UPDATE_TESTDATA") == "1"
 
 // TestSanitize: escape sequences and control characters never reach the
 // terminal. The sequence layouts are those of ECMA-48, "Control functions
@@ -150,7 +150,7 @@ func render(width int) []string {
 }
 
 // TestGoldenView compares the view with human-readable golden files at 80
-// and 120 columns (go test -run TestGoldenView -update rewrites them), and
+// and 120 columns (TRAPLINE_UPDATE_TESTDATA=1 go test ./daemon/tui rewrites them), and
 // checks that no line is wider than the terminal.
 func TestGoldenView(t *testing.T) {
 	for _, w := range []int{80, 120} {
@@ -165,14 +165,14 @@ func TestGoldenView(t *testing.T) {
 		}
 		got := strings.Join(lines, "\n") + "\n"
 		path := filepath.Join("testdata", "view_"+map[int]string{80: "80", 120: "120"}[w]+".golden")
-		if *update {
+		if update {
 			if err := os.WriteFile(path, []byte(got), 0o644); err != nil {
 				t.Fatal(err)
 			}
 		}
 		want, err := os.ReadFile(path)
 		if err != nil {
-			t.Fatalf("%v (run with -update to create it)", err)
+			t.Fatalf("%v (TRAPLINE_UPDATE_TESTDATA=1 creates it)", err)
 		}
 		if got != string(want) {
 			t.Errorf("width %d: view differs from %s:\n%s", w, path, got)
