@@ -61,6 +61,13 @@ func FuzzSanitize(f *testing.F) {
 		if Sanitize(out) != out {
 			t.Fatalf("Sanitize is not idempotent on %q", s)
 		}
+		for _, w := range []int{1, 2, 7, 80} {
+			for _, l := range Wrap(out, w, 4, 3) {
+				if Width(l) > w {
+					t.Fatalf("Wrap(%q, %d) gives %q, %d wide", out, w, l, Width(l))
+				}
+			}
+		}
 	})
 }
 
