@@ -27,16 +27,19 @@ func newTagCanvas(c vg.Canvas) *tagCanvas {
 	return &tagCanvas{Canvas: c, widths: []vg.Length{0}}
 }
 
+// SetLineWidth keeps the width the SVG canvas will stroke with.
 func (c *tagCanvas) SetLineWidth(w vg.Length) {
 	c.widths[len(c.widths)-1] = w
 	c.Canvas.SetLineWidth(w)
 }
 
+// Push saves the drawing state, as the SVG canvas does.
 func (c *tagCanvas) Push() {
 	c.widths = append(c.widths, c.widths[len(c.widths)-1])
 	c.Canvas.Push()
 }
 
+// Pop restores the drawing state saved by Push.
 func (c *tagCanvas) Pop() {
 	if len(c.widths) > 1 {
 		c.widths = c.widths[:len(c.widths)-1]
@@ -53,6 +56,7 @@ func (c *tagCanvas) Stroke(p vg.Path) {
 	c.Canvas.Stroke(p)
 }
 
+// Fill records a path element: the SVG canvas writes one per fill.
 func (c *tagCanvas) Fill(p vg.Path) {
 	c.classes = append(c.classes, c.cur)
 	c.Canvas.Fill(p)
@@ -116,6 +120,7 @@ type tagged struct {
 	class string
 }
 
+// Plot draws the wrapped plotter with its elements in the class.
 func (t tagged) Plot(c draw.Canvas, p *gp.Plot) {
 	withClass(c, t.class, func() { t.Plotter.Plot(c, p) })
 }
@@ -128,6 +133,7 @@ type vlines struct {
 	class string
 }
 
+// Plot draws the lines.
 func (v vlines) Plot(c draw.Canvas, p *gp.Plot) {
 	trX, _ := p.Transforms(&c)
 	withClass(c, v.class, func() {
@@ -146,6 +152,7 @@ type dots struct {
 	class  string
 }
 
+// Plot draws the dots.
 func (d dots) Plot(c draw.Canvas, p *gp.Plot) {
 	trX, trY := p.Transforms(&c)
 	sty := draw.GlyphStyle{Color: d.colour, Radius: d.radius, Shape: draw.CircleGlyph{}}
@@ -174,6 +181,7 @@ type band struct {
 // bands draws rectangles, each its own element.
 type bands []band
 
+// Plot draws the rectangles.
 func (bs bands) Plot(c draw.Canvas, p *gp.Plot) {
 	trX, trY := p.Transforms(&c)
 	for _, b := range bs {
@@ -195,6 +203,7 @@ func (bs bands) Plot(c draw.Canvas, p *gp.Plot) {
 // swatch is a legend entry: a filled square.
 type swatch struct{ colour color.Color }
 
+// Thumbnail draws the swatch in a legend.
 func (s swatch) Thumbnail(c *draw.Canvas) {
 	side := math.Min(float64(c.Max.X-c.Min.X), float64(c.Max.Y-c.Min.Y))
 	ctr := c.Center()
