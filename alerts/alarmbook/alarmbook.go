@@ -252,3 +252,20 @@ func (a *Alarm) Segments(endS float64) []Segment {
 	}
 	return out
 }
+
+// String names the kind.
+func (k Kind) String() string {
+	switch k {
+	case Raised:
+		return "raised"
+	case Escalated:
+		return "escalated"
+	case Repeated:
+		return "repeated"
+	case Acknowledged:
+		return "acknowledged"
+	case Cleared:
+		return "cleared"
+	}
+	return "duplicate"
+}

@@ -153,7 +153,18 @@ func render(width int) []string {
 		out = append(out, f.Lines(&events[i], book.Apply(&events[i]))...)
 	}
 	out = append(out, "", ActiveLine(book.Open("bed-7"), width), "")
-	return append(out, SummaryLines(book, width)...)
+	out = append(out, SummaryLines(book, width)...)
+	// The whole board: two streams, one without signal.
+	board := NewBoard(4)
+	for i := range breaths {
+		board.Breath(&breaths[i])
+	}
+	board.Signal("bed-10-with-a-long-name", false)
+	for i := range events {
+		board.Alert(&events[i])
+	}
+	out = append(out, "", "-- board --")
+	return append(out, board.Render(width, f)...)
 }
 
 // TestGoldenView compares the view with human-readable golden files at 80
