@@ -61,7 +61,8 @@ func Select(stream string, samples []ingest.Sample, breaths []analyze.Breath, ev
 // Options shape the figure.
 type Options struct {
 	// FromS and ToS bound the time range on the stream's clock, in
-	// seconds. ToS ≤ FromS (both zero, say) means the whole recording.
+	// seconds. ToS 0 means to the end of the recording, and FromS 0 with it
+	// from its start; otherwise ToS must be after FromS.
 	FromS, ToS float64
 	// Width and Height of the figure; zero means 200 mm × 280 mm.
 	Width, Height vg.Length
@@ -146,18 +147,20 @@ func resolve(data Data, opts Options) (Options, error) {
 	if bad := math.IsNaN(opts.FromS) || math.IsInf(opts.FromS, 0) || math.IsNaN(opts.ToS) || math.IsInf(opts.ToS, 0); bad {
 		return opts, fmt.Errorf("plot range %g to %g s: want finite times", opts.FromS, opts.ToS)
 	}
-	if opts.ToS <= opts.FromS {
+	if opts.ToS == 0 {
+		// No end: to the end of the recording (and, with no start either,
+		// from its start).
 		lo, hi := extent(&data)
 		if math.IsInf(lo, 0) {
 			return opts, ErrNoData
 		}
-		if opts.FromS != 0 || opts.ToS != 0 {
-			lo = max(lo, opts.FromS) // --from alone: from there to the end
+		if opts.FromS == 0 {
+			opts.FromS = lo
 		}
-		opts.FromS, opts.ToS = lo, hi
+		opts.ToS = hi
 	}
 	if opts.ToS <= opts.FromS {
-		return opts, fmt.Errorf("plot range %g to %g s: %w", opts.FromS, opts.ToS, ErrNoData)
+		return opts, fmt.Errorf("plot range %g to %g s: the end must come after the start, within the recording", opts.FromS, opts.ToS)
 	}
 	if opts.Title == "" {
 		opts.Title = fmt.Sprintf("stream %s, %.1f to %.1f s", data.Stream, opts.FromS, opts.ToS)

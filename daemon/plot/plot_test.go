@@ -127,14 +127,17 @@ func alarmIntervals(events []alerts.Event, from, to float64) (alarms int, prios 
 // it took. The expected counts come from the records, not from the plot.
 func TestRecordingSVGStructure(t *testing.T) {
 	d := scenario(t)
-	for _, rng := range []struct{ from, to float64 }{{0, 0}, {290, 620}, {700, 760}} {
+	for _, rng := range []struct{ from, to float64 }{{0, 0}, {290, 620}, {700, 760}, {900, 0}} {
 		var buf bytes.Buffer
 		if err := Recording(&buf, "svg", d, Options{FromS: rng.from, ToS: rng.to}); err != nil {
 			t.Fatal(err)
 		}
 		from, to := rng.from, rng.to
-		if to <= from {
+		switch {
+		case from == 0 && to == 0:
 			from, to = d.Samples[0].TimeS, d.Samples[len(d.Samples)-1].TimeS
+		case to == 0:
+			to = d.Samples[len(d.Samples)-1].TimeS
 		}
 		var starts, eef, peepi, trapped int
 		for _, b := range d.Breaths {
@@ -221,6 +224,8 @@ func TestRecordingBadInput(t *testing.T) {
 		{"tiny", "png", d, Options{Width: 1, Height: 1}},
 		{"columns", "svg", d, Options{Columns: 3}},
 		{"dpi", "png", d, Options{DPI: 5000}},
+		{"end before start", "svg", d, Options{FromS: 300, ToS: 200}},
+		{"start after the end", "svg", d, Options{FromS: 5000}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
