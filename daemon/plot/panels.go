@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"image/color"
 	"math"
+	"strings"
 
 	gp "gonum.org/v1/plot"
 	"gonum.org/v1/plot/plotter"
@@ -11,6 +12,7 @@ import (
 	"gonum.org/v1/plot/vg/draw"
 
 	"trapline/alerts/alarmbook"
+	"trapline/analyze"
 	"trapline/simulator/plotstyle"
 )
 
@@ -20,7 +22,8 @@ const timeLabel = "time (s)"
 func buildPanels(d *Data, o *Options) ([]panel, error) {
 	vol := volumesML(d.Samples, d.Breaths)
 	var starts []float64
-	var eef, peepi, trapped plotter.XYs
+	var eef plotter.XYs
+	var ended []*analyze.Breath // breaths that end in the range
 	for i := range d.Breaths {
 		b := &d.Breaths[i]
 		if in(b.StartS, o) {
@@ -29,16 +32,11 @@ func buildPanels(d *Data, o *Options) ([]panel, error) {
 		if !in(b.EndS, o) {
 			continue
 		}
+		ended = append(ended, b)
 		if finite(b.EndExpFlowLPM) {
 			// Expiratory flow is negative on the flow axis (flow into the
 			// patient is positive); the record holds its magnitude.
 			eef = append(eef, plotter.XY{X: b.EndS, Y: -b.EndExpFlowLPM})
-		}
-		if finite(b.PEEPiCmH2O) {
-			peepi = append(peepi, plotter.XY{X: b.EndS, Y: b.PEEPiCmH2O})
-		}
-		if finite(b.TrappedML) {
-			trapped = append(trapped, plotter.XY{X: b.EndS, Y: b.TrappedML})
 		}
 	}
 	waves := []struct {
@@ -72,13 +70,13 @@ func buildPanels(d *Data, o *Options) ([]panel, error) {
 	}
 	for _, t := range []struct {
 		class, label string
-		xy           plotter.XYs
+		get          func(b *analyze.Breath) float64
 		colour       color.RGBA
 	}{
-		{"peepi", "intrinsic PEEP\n(cmH2O)", peepi, plotstyle.BluishGreen},
-		{"trapped", "trapped volume\n(mL)", trapped, plotstyle.ReddishPurple},
+		{"peepi", "intrinsic PEEP\n(cmH2O)", func(b *analyze.Breath) float64 { return b.PEEPiCmH2O }, plotstyle.BluishGreen},
+		{"trapped", "trapped volume\n(mL)", func(b *analyze.Breath) float64 { return b.TrappedML }, plotstyle.ReddishPurple},
 	} {
-		p, err := trendPanel(t.label, t.class, t.xy, t.colour)
+		p, err := trendPanel(t.label, t.class, trend(ended, t.get), t.colour)
 		if err != nil {
 			return nil, err
 		}
@@ -98,6 +96,7 @@ func finite(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
 
 func newPanel(ylabel string) *gp.Plot {
 	p := plotstyle.NewPlot("", timeLabel, ylabel)
+	p.X.Tick.Marker, p.Y.Tick.Marker = plainTicks{}, plainTicks{}
 	p.Legend.Top = true
 	p.Legend.TextStyle.Font.Size = vg.Points(9)
 	return p
@@ -143,20 +142,59 @@ func headroom(p *gp.Plot, frac float64, w wave, pts plotter.XYs) {
 	}
 }
 
-// trendPanel draws one value per breath: a line through the breaths (broken
-// where a breath has no value) and a point at each.
-func trendPanel(label, class string, xy plotter.XYs, c color.RGBA) (*gp.Plot, error) {
+// trendGapS is the time between one breath's end and the next one's start
+// beyond which a trend line is broken: the breaths did not follow each
+// other (a gap in the recording, or breaths the analysis left out).
+const trendGapS = 0.5
+
+// trend returns one breath value as runs of points at the breaths' ends,
+// broken where a breath has no value or the breaths do not follow each
+// other.
+func trend(breaths []*analyze.Breath, get func(*analyze.Breath) float64) []plotter.XYs {
+	var runs []plotter.XYs
+	var run plotter.XYs
+	prevEnd := math.NaN()
+	for _, b := range breaths {
+		v := get(b)
+		if !finite(v) || !(b.StartS-prevEnd <= trendGapS) {
+			if len(run) > 0 {
+				runs = append(runs, run)
+			}
+			run = nil
+		}
+		prevEnd = b.EndS
+		if finite(v) {
+			run = append(run, plotter.XY{X: b.EndS, Y: v})
+		}
+	}
+	if len(run) > 0 {
+		runs = append(runs, run)
+	}
+	return runs
+}
+
+// trendPanel draws one value per breath: lines through the runs of
+// breaths and a point at each breath.
+func trendPanel(label, class string, runs []plotter.XYs, c color.RGBA) (*gp.Plot, error) {
 	p := newPanel(label)
-	if len(xy) == 0 {
-		p.Title.Text = label + ": no breath in range has a value"
+	var all plotter.XYs
+	for _, run := range runs {
+		all = append(all, run...)
+		if len(run) < 2 {
+			continue
+		}
+		l, err := plotter.NewLine(run)
+		if err != nil {
+			return nil, fmt.Errorf("%s trend: %w", class, err)
+		}
+		l.Color, l.Width = plotstyle.WithAlpha(c, 140), vg.Points(0.8)
+		p.Add(tagged{l, class + "-line"})
+	}
+	if len(all) == 0 {
+		p.Title.Text = strings.ReplaceAll(label, "\n", " ") + ": no breath in range has a value"
 		return p, nil
 	}
-	l, err := plotter.NewLine(xy)
-	if err != nil {
-		return nil, fmt.Errorf("%s trend: %w", class, err)
-	}
-	l.Color, l.Width = plotstyle.WithAlpha(c, 140), vg.Points(0.8)
-	p.Add(tagged{l, class + "-line"}, dots{xy: xy, colour: c, radius: vg.Points(1.3), class: class})
+	p.Add(dots{xy: all, colour: c, radius: vg.Points(1.3), class: class})
 	return p, nil
 }
 
@@ -218,4 +256,19 @@ func priorityColour(p string) color.Color {
 		return c
 	}
 	return color.Gray{Y: 150}
+}
+
+// plainTicks are gonum/plot's default ticks with the labels' trailing zeros
+// dropped ("250" rather than "250.00").
+type plainTicks struct{}
+
+// Ticks returns the default ticks with plain labels.
+func (plainTicks) Ticks(lo, hi float64) []gp.Tick {
+	ts := gp.DefaultTicks{}.Ticks(lo, hi)
+	for i := range ts {
+		if l := ts[i].Label; strings.Contains(l, ".") && !strings.ContainsAny(l, "eE") {
+			ts[i].Label = strings.TrimSuffix(strings.TrimRight(l, "0"), ".")
+		}
+	}
+	return ts
 }

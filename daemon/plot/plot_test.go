@@ -386,3 +386,22 @@ func TestDocsImage(t *testing.T) {
 		t.Errorf("%s: %v", path, err)
 	}
 }
+
+// TestTrendBreaks: a trend line is broken at a breath without a value and
+// where breaths do not follow each other; every value is still a point.
+func TestTrendBreaks(t *testing.T) {
+	mk := func(start, end, v float64) *analyze.Breath {
+		b := analyze.NewBreath()
+		b.StartS, b.EndS, b.PEEPiCmH2O = start, end, v
+		return &b
+	}
+	bs := []*analyze.Breath{mk(0, 3, 1), mk(3, 6, 2), mk(6, 9, math.NaN()), mk(9, 12, 3), mk(12, 15, 4), mk(40, 43, 5)}
+	runs := trend(bs, func(b *analyze.Breath) float64 { return b.PEEPiCmH2O })
+	var lens []int
+	for _, r := range runs {
+		lens = append(lens, len(r))
+	}
+	if len(lens) != 3 || lens[0] != 2 || lens[1] != 2 || lens[2] != 1 {
+		t.Errorf("runs of %v points, want [2 2 1]", lens)
+	}
+}
