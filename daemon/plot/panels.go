@@ -233,13 +233,19 @@ func alarmPanel(d *Data, o *Options) (*gp.Plot, int) {
 				class: "alarm-segment priority-" + string(s.Priority)})
 		}
 		bs = append(bs, band{x0: math.Max(from, o.FromS), x1: math.Min(to, o.ToS), y0: y0, y1: y1, line: edge, class: "alarm"})
+		for _, st := range a.Steps {
+			if st.Kind == alarmbook.Acknowledged && in(st.TS, o) {
+				// An acknowledgement: a narrow dark bar across the band.
+				bs = append(bs, band{x0: st.TS, x1: st.TS, y0: y0 - 0.1, y1: y1 + 0.1, fill: color.Gray{Y: 30}, class: "alarm-ack"})
+			}
+		}
 	}
 	if len(names) == 0 {
 		p.Title.Text = "alarms: none in range"
 		p.NominalY("")
 		return p, 0
 	}
-	p.Title.Text = "alarms (raised to cleared, by priority)"
+	p.Title.Text = "alarms (raised to cleared, by priority; dark bar: acknowledged)"
 	p.Add(bs)
 	p.NominalY(names...)
 	// Room above the rows for the priority key.

@@ -9,7 +9,7 @@
 // panel's name), the end-expiratory flow points (eef), the trend points
 // (peepi, trapped) and lines (…-line), and the alarm bands (alarm for the
 // outline of one alarm, alarm-segment with priority-high|medium|low for
-// its stretches at one priority).
+// its stretches at one priority, alarm-ack for an acknowledgement).
 package plot
 
 import (

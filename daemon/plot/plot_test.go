@@ -405,3 +405,37 @@ func TestTrendBreaks(t *testing.T) {
 		t.Errorf("runs of %v points, want [2 2 1]", lens)
 	}
 }
+
+// TestAlarmBandsFromEvents: hand-made events of two alarms, one of them
+// escalated under a new id and acknowledged, give two outlined bands, a
+// stretch per priority, and one acknowledgement mark.
+func TestAlarmBandsFromEvents(t *testing.T) {
+	var ss []ingest.Sample
+	for i := range 6000 {
+		ss = append(ss, ingest.Sample{TimeS: float64(i) / 100, VolumeL: ingest.NoVolume})
+	}
+	ev := func(id string, st alerts.State, p alerts.Priority, ts float64, sup string) alerts.Event {
+		return alerts.Event{ID: id, Stream: "s", Condition: "air-trapping", State: st, Priority: p, TS: ts, Supersedes: sup}
+	}
+	events := []alerts.Event{
+		ev("a1", alerts.Raised, alerts.Low, 5, ""),
+		ev("a1", alerts.Escalated, alerts.Medium, 10, ""),
+		ev("a2", alerts.Raised, alerts.High, 20, "a1"),
+		ev("a2", alerts.Acknowledged, alerts.High, 25, ""),
+		ev("a2", alerts.Cleared, alerts.High, 30, ""),
+		ev("b1", alerts.Raised, alerts.Medium, 40, ""),
+	}
+	events[5].Condition = "signal-lost"
+	var buf bytes.Buffer
+	if err := Recording(&buf, "svg", Data{Stream: "s", Samples: ss, Alerts: events}, Options{}); err != nil {
+		t.Fatal(err)
+	}
+	got := classCounts(t, buf.Bytes())
+	want := map[string]int{"alarm": 2, "alarm-ack": 1, "alarm-segment priority-low": 1,
+		"alarm-segment priority-medium": 2, "alarm-segment priority-high": 1}
+	for k, n := range want {
+		if got[k] != n {
+			t.Errorf("%d elements of class %q, want %d", got[k], k, n)
+		}
+	}
+}
