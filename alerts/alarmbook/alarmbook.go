@@ -114,9 +114,14 @@ func rank(p alerts.Priority) int {
 }
 
 // Apply takes one event and returns what it did. Events are applied in the
-// order they were published; a repeated event (same id and state) is a
-// Duplicate and changes nothing.
+// order they were published; a repeated event (same id and state), or one
+// whose state is not of the contract, is a Duplicate and changes nothing.
 func (b *Book) Apply(ev *alerts.Event) Change {
+	switch ev.State {
+	case alerts.Raised, alerts.Escalated, alerts.Acknowledged, alerts.Cleared:
+	default:
+		return Change{Kind: Duplicate} // not a state of the contract: ignored
+	}
 	if b.seen[ev.DedupID()] {
 		return Change{Kind: Duplicate}
 	}
@@ -157,8 +162,6 @@ func (b *Book) Apply(ev *alerts.Event) Change {
 	case alerts.Cleared:
 		ch.Kind = Cleared
 		a.Open = false
-	default:
-		return Change{Kind: Duplicate}
 	}
 	if ch.Kind == Escalated {
 		a.Escalations++

@@ -131,3 +131,12 @@ func TestSegmentsCoverTheSpan(t *testing.T) {
 		t.Errorf("open alarm ends at %g, want 100", s[len(s)-1].ToS)
 	}
 }
+
+// TestUnknownStateChangesNothing: an event whose state is not one of the
+// contract's four adds no alarm.
+func TestUnknownStateChangesNothing(t *testing.T) {
+	b := New()
+	if ch := b.Apply(&alerts.Event{ID: "x", Condition: "c", State: "exploded"}); ch.Kind != Duplicate || len(b.Alarms()) != 0 {
+		t.Errorf("unknown state: %v, %d alarms", ch.Kind, len(b.Alarms()))
+	}
+}

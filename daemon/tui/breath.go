@@ -34,7 +34,7 @@ func num(v float64, prec int) string {
 // UCUM spelling where it reads well on a terminal (cmH2O, L/min, mL, s).
 var breathColumns = []column{
 	{"seq", "#", 6, 0, func(b *analyze.Breath) string { return fmt.Sprint(b.Seq) }},
-	{"t", "s", 7, 0, func(b *analyze.Breath) string { return num(b.StartS, 1) }},
+	{"t", "s", 7, 0, startTime},
 	{"RR", "bpm", 4, 2, func(b *analyze.Breath) string { return num(b.RateBPM, 0) }},
 	{"VTe", "mL", 5, 0, func(b *analyze.Breath) string { return num(b.VteML, 0) }},
 	{"PIP", "cmH2O", 5, 0, func(b *analyze.Breath) string { return num(b.PeakCmH2O, 1) }},
@@ -46,6 +46,16 @@ var breathColumns = []column{
 	{"trapped", "mL", 7, 1, func(b *analyze.Breath) string { return num(b.TrappedML, 0) }},
 	{"R", "cmH2O·s/L", 9, 3, func(b *analyze.Breath) string { return num(b.RCmH2OSPerL, 1) }},
 	{"C", "mL/cmH2O", 8, 3, func(b *analyze.Breath) string { return num(b.CMLPerCmH2O, 1) }},
+}
+
+// startTime is the breath's start in seconds: with a decimal while that
+// fits the column, whole seconds beyond (a device clock that has run for
+// days).
+func startTime(b *analyze.Breath) string {
+	if s := num(b.StartS, 1); len(s) <= 7 {
+		return s
+	}
+	return num(b.StartS, 0)
 }
 
 // minFlagsWidth is the narrowest flags column worth showing.
