@@ -405,6 +405,27 @@ func (e *TextEncoder) eol(b []byte) []byte {
 	return append(b, '\n')
 }
 
+// WithStream returns an encoder like e that writes the stream column first
+// (in the header and in every line), or e itself when it already does. A
+// writer whose samples carry a stream id of their own uses it so that the id
+// reaches the reader: without the column, every sample of a text link falls
+// into the reader's default stream, and two writers on one source merge.
+func (e *TextEncoder) WithStream() *TextEncoder {
+	if e.opts.Stream {
+		return e
+	}
+	o := e.opts
+	o.Stream = true
+	n, err := NewTextEncoder(o)
+	if err != nil {
+		return e // e's options were accepted once; they are accepted again
+	}
+	return n
+}
+
+// HasStream reports whether the encoder writes the stream column.
+func (e *TextEncoder) HasStream() bool { return e.opts.Stream }
+
 // Header returns the header line, or nothing with NoHeader. Appending to
 // it never writes into the encoder.
 func (e *TextEncoder) Header() []byte { return e.header[:len(e.header):len(e.header)] }
