@@ -10,13 +10,19 @@ var pow10 = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10,
 	1e11, 1e12, 1e13, 1e14, 1e15, 1e16, 1e17, 1e18, 1e19, 1e20, 1e21, 1e22}
 
 // parseNumber parses a decimal number such as "-12.5", "3e-2" or "+0.125"
-// and reports false for anything else, including NaN and infinities.
+// and reports false for anything else, including NaN, infinities,
+// hexadecimal and digit separators.
 //
-// When the digits fit in 53 bits and the decimal exponent in ±22, the value
-// is one correctly rounded multiplication or division of two exact float64
-// numbers, hence the correctly rounded result (Clinger W.D., "How to read
-// floating point numbers accurately", PLDI 1990). Other inputs go through
-// strconv.ParseFloat, which is also correctly rounded; both paths agree.
+// One pass checks the syntax and gathers the digits into an integer. When
+// there are at most 19 of them (so the integer cannot overflow), the integer
+// is below 2^53 (so it is exact as a float64) and the decimal exponent is
+// within ±22 (so the power of ten is exact too), the value is one correctly
+// rounded multiplication or division of two exact float64 numbers, hence the
+// correctly rounded result (Clinger W.D., "How to read floating point numbers
+// accurately", PLDI 1990). Samples written with a few decimals always take
+// this path. Other inputs, whose syntax is known to be right by then, go
+// through strconv.ParseFloat, which is also correctly rounded: both paths
+// give the same float64.
 func parseNumber(b []byte) (float64, bool) {
 	i := 0
 	neg := false
@@ -25,66 +31,42 @@ func parseNumber(b []byte) (float64, bool) {
 		i = 1
 	}
 	var mant uint64
-	nd, exp10 := 0, 0
-	digits, dot, trunc := false, false, false
+	start := i
 	for ; i < len(b); i++ {
-		c := b[i]
-		switch {
-		case c >= '0' && c <= '9':
-			digits = true
-			if mant == 0 && c == '0' {
-				if dot {
-					exp10--
-				}
-				continue
-			}
-			if nd < 19 {
-				mant = mant*10 + uint64(c-'0')
-				nd++
-				if dot {
-					exp10--
-				}
-			} else {
-				trunc = true
-				if !dot {
-					exp10++
-				}
-			}
-			continue
-		case c == '.' && !dot:
-			dot = true
-			continue
+		c := b[i] - '0'
+		if c > 9 {
+			break
 		}
-		break
+		mant = mant*10 + uint64(c)
 	}
-	if !digits {
+	nd := i - start
+	exp10 := 0
+	if i < len(b) && b[i] == '.' {
+		i++
+		frac := i
+		for ; i < len(b); i++ {
+			c := b[i] - '0'
+			if c > 9 {
+				break
+			}
+			mant = mant*10 + uint64(c)
+		}
+		nd += i - frac
+		exp10 = frac - i
+	}
+	if nd == 0 {
 		return 0, false
 	}
 	if i < len(b) && (b[i] == 'e' || b[i] == 'E') {
-		i++
-		eneg := false
-		if i < len(b) && (b[i] == '-' || b[i] == '+') {
-			eneg = b[i] == '-'
-			i++
-		}
-		if i == len(b) {
+		e, ok := parseExponent(b[i+1:])
+		if !ok {
 			return 0, false
 		}
-		e := 0
-		for ; i < len(b) && b[i] >= '0' && b[i] <= '9'; i++ {
-			if e < 100000 {
-				e = e*10 + int(b[i]-'0')
-			}
-		}
-		if eneg {
-			e = -e
-		}
 		exp10 += e
-	}
-	if i != len(b) {
+	} else if i != len(b) {
 		return 0, false
 	}
-	if !trunc && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
+	if nd <= 19 && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
 		f := float64(mant)
 		if exp10 < 0 {
 			f /= pow10[-exp10]
@@ -103,4 +85,32 @@ func parseNumber(b []byte) (float64, bool) {
 		return 0, false
 	}
 	return f, true
+}
+
+// parseExponent reads the digits of a decimal exponent with an optional
+// sign, all of b; its magnitude is capped far beyond any float64 exponent.
+func parseExponent(b []byte) (int, bool) {
+	i := 0
+	neg := false
+	if len(b) > 0 && (b[0] == '-' || b[0] == '+') {
+		neg = b[0] == '-'
+		i = 1
+	}
+	if i == len(b) {
+		return 0, false
+	}
+	e := 0
+	for ; i < len(b); i++ {
+		c := b[i] - '0'
+		if c > 9 {
+			return 0, false
+		}
+		if e < 100000 {
+			e = e*10 + int(c)
+		}
+	}
+	if neg {
+		e = -e
+	}
+	return e, true
 }
