@@ -24,6 +24,16 @@ var pow10 = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10,
 // through strconv.ParseFloat, which is also correctly rounded: both paths
 // give the same float64.
 func parseNumber(b []byte) (float64, bool) {
+	v, n, ok := scanNumber(b)
+	return v, ok && n == len(b)
+}
+
+// scanNumber parses the decimal number at the start of b as parseNumber
+// does and returns its value and length; it reports false when b does not
+// start with one or when the number runs into a character that cannot end
+// it (a letter, a second '.', an exponent without digits). A text decoder
+// uses it to read a field and find its end in one pass.
+func scanNumber(b []byte) (float64, int, bool) {
 	i := 0
 	neg := false
 	if len(b) > 0 && (b[0] == '-' || b[0] == '+') {
@@ -55,16 +65,18 @@ func parseNumber(b []byte) (float64, bool) {
 		exp10 = frac - i
 	}
 	if nd == 0 {
-		return 0, false
+		return 0, 0, false
 	}
 	if i < len(b) && (b[i] == 'e' || b[i] == 'E') {
-		e, ok := parseExponent(b[i+1:])
+		e, n, ok := scanExponent(b[i+1:])
 		if !ok {
-			return 0, false
+			return 0, 0, false
 		}
 		exp10 += e
-	} else if i != len(b) {
-		return 0, false
+		i += 1 + n
+	}
+	if i < len(b) && !endsNumber(b[i]) {
+		return 0, 0, false
 	}
 	if nd <= 19 && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
 		f := float64(mant)
@@ -76,41 +88,47 @@ func parseNumber(b []byte) (float64, bool) {
 		if neg {
 			f = -f
 		}
-		return f, true
+		return f, i, true
 	}
 	// strconv copies the input into its error, so the conversion below does
 	// not make b escape.
-	f, err := strconv.ParseFloat(string(b), 64)
+	f, err := strconv.ParseFloat(string(b[:i]), 64)
 	if err != nil || math.IsInf(f, 0) || math.IsNaN(f) {
-		return 0, false
+		return 0, 0, false
 	}
-	return f, true
+	return f, i, true
 }
 
-// parseExponent reads the digits of a decimal exponent with an optional
-// sign, all of b; its magnitude is capped far beyond any float64 exponent.
-func parseExponent(b []byte) (int, bool) {
+// endsNumber reports whether c may follow a number in a field: the field
+// separator or a blank before it.
+func endsNumber(c byte) bool { return c == ',' || c == ' ' || c == '\t' }
+
+// scanExponent reads the digits of a decimal exponent with an optional
+// sign at the start of b, and returns it and its length; its magnitude is
+// capped far beyond any float64 exponent.
+func scanExponent(b []byte) (int, int, bool) {
 	i := 0
 	neg := false
 	if len(b) > 0 && (b[0] == '-' || b[0] == '+') {
 		neg = b[0] == '-'
 		i = 1
 	}
-	if i == len(b) {
-		return 0, false
-	}
+	start := i
 	e := 0
 	for ; i < len(b); i++ {
 		c := b[i] - '0'
 		if c > 9 {
-			return 0, false
+			break
 		}
 		if e < 100000 {
 			e = e*10 + int(c)
 		}
 	}
+	if i == start {
+		return 0, 0, false
+	}
 	if neg {
 		e = -e
 	}
-	return e, true
+	return e, i, true
 }

@@ -252,35 +252,51 @@ func (d *TextDecoder) data(b []byte) bool {
 		if !more {
 			return false // too few fields
 		}
-		// Fields are a few bytes long: a plain loop finds the comma sooner
-		// than a call to bytes.IndexByte.
-		k := 0
-		for k < len(b) && b[k] != ',' {
-			k++
-		}
-		f := b[:k]
-		if k < len(b) {
-			b = b[k+1:]
-		} else {
-			b, more = nil, false
-		}
 		c := cols[j]
 		j++
-		if c.kind == colIgnore {
-			continue
-		}
-		f = trimSpace(f)
-		if c.kind == colStream {
-			if st = d.streams.get(f); st == nil {
-				return false
+		if c.kind == colIgnore || c.kind == colStream {
+			// Fields are a few bytes long: a plain loop finds the comma
+			// sooner than a call to bytes.IndexByte.
+			k := 0
+			for k < len(b) && b[k] != ',' {
+				k++
+			}
+			f := b[:k]
+			if k < len(b) {
+				b = b[k+1:]
+			} else {
+				b, more = nil, false
+			}
+			if c.kind == colStream {
+				if st = d.streams.get(trimSpace(f)); st == nil {
+					return false
+				}
 			}
 			continue
 		}
-		if c.kind == colVolume && len(f) == 0 {
-			continue // volume not known for this sample: stays NaN
+		// A number: read it and find the end of its field in one pass.
+		b = trimLeft(b)
+		var v float64
+		n := 0
+		if len(b) > 0 && b[0] != ',' {
+			var ok bool
+			if v, n, ok = scanNumber(b); !ok {
+				return false
+			}
 		}
-		v, ok := parseNumber(f)
-		if !ok {
+		empty := n == 0
+		if b = trimLeft(b[n:]); len(b) > 0 {
+			if b[0] != ',' {
+				return false
+			}
+			b = b[1:]
+		} else {
+			more = false
+		}
+		if empty {
+			if c.kind == colVolume {
+				continue // volume not known for this sample: stays NaN
+			}
 			return false
 		}
 		v = c.unit.toInternal(v)
@@ -307,6 +323,14 @@ func (d *TextDecoder) data(b []byte) bool {
 	d.stats.Samples++
 	d.emit(st.id, s)
 	return true
+}
+
+// trimLeft drops the blanks at the start of f.
+func trimLeft(f []byte) []byte {
+	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
+		f = f[1:]
+	}
+	return f
 }
 
 func trimSpace(f []byte) []byte {
