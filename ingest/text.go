@@ -274,25 +274,11 @@ func (d *TextDecoder) data(b []byte) bool {
 			}
 			continue
 		}
-		// A number: read it and find the end of its field in one pass.
-		b = trimLeft(b)
-		var v float64
-		n := 0
-		if len(b) > 0 && b[0] != ',' {
-			var ok bool
-			if v, n, ok = scanNumber(b); !ok {
-				return false
-			}
+		v, rest, empty, ok := numberField(b)
+		if !ok {
+			return false
 		}
-		empty := n == 0
-		if b = trimLeft(b[n:]); len(b) > 0 {
-			if b[0] != ',' {
-				return false
-			}
-			b = b[1:]
-		} else {
-			more = false
-		}
+		b, more = rest, rest != nil
 		if empty {
 			if c.kind == colVolume {
 				continue // volume not known for this sample: stays NaN
@@ -323,6 +309,27 @@ func (d *TextDecoder) data(b []byte) bool {
 	d.stats.Samples++
 	d.emit(st.id, s)
 	return true
+}
+
+// numberField reads the number at the start of b and finds the end of its
+// field in one pass. It returns the value, what follows the field's comma
+// (nil when no field follows), whether the field was blank, and false when
+// the field is neither a number nor blank.
+func numberField(b []byte) (v float64, rest []byte, empty, ok bool) {
+	b = trimLeft(b)
+	n := 0
+	if len(b) > 0 && b[0] != ',' {
+		if v, n, ok = scanNumber(b); !ok {
+			return 0, nil, false, false
+		}
+	}
+	if b = trimLeft(b[n:]); len(b) > 0 {
+		if b[0] != ',' {
+			return 0, nil, false, false
+		}
+		rest = b[1:]
+	}
+	return v, rest, n == 0, true
 }
 
 // trimLeft drops the blanks at the start of f.
