@@ -288,3 +288,39 @@ func BenchmarkDemux(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkBatchRoute decodes a text link carrying 100 interleaved streams
+// into batches and routes them through an admission of one template: the
+// reading goroutine's whole cost per sample before analysis.
+func BenchmarkBatchRoute(b *testing.B) {
+	streams := make([]string, 100)
+	for i := range streams {
+		streams[i] = fmt.Sprintf("bed-%d", i)
+	}
+	enc, _ := NewTextEncoder(TextEncoderOptions{Stream: true, Decimals: 3})
+	in, _ := interleaved(b, enc, streams, 100, 4)
+	d, _ := NewBatchDecoder(FormatText, DecoderOptions{})
+	var batch Batch
+	d.Decode(&batch, enc.Header())
+	in = in[len(enc.Header()):]
+	adm, _ := NewAdmission(AdmissionPolicy{Templates: []StreamTemplate{{Name: "ward", Pattern: "bed-*"}}})
+	r := NewRouter(adm)
+	n := 0
+	b.SetBytes(int64(len(in)))
+	b.ReportAllocs()
+	cpu0 := processCPU()
+	for b.Loop() {
+		for p := in; len(p) > 0; p = p[min(len(p), 16<<10):] {
+			batch.Reset()
+			d.Decode(&batch, p[:min(len(p), 16<<10)])
+			r.Route(&batch, func(sp Span, _ int) { n += len(sp.Samples) })
+		}
+	}
+	if n != 10000*b.N {
+		b.Fatalf("routed %d samples, want %d", n, 10000*b.N)
+	}
+	b.ReportMetric(float64(n)/b.Elapsed().Seconds(), "samples/s")
+	if cpu := processCPU() - cpu0; cpu > 0 {
+		b.ReportMetric(float64(cpu.Nanoseconds())/float64(n), "cpu-ns/sample")
+	}
+}
