@@ -115,3 +115,64 @@ func BenchmarkParseNumber(b *testing.B) {
 		b.Fatal("nothing parsed")
 	}
 }
+
+// TestTextFieldsAgainstReference decodes random lines, made of numbers
+// good and bad, blanks and commas, and compares each outcome with a plain
+// reading of the format: split at commas, trim blanks, check the number
+// syntax and convert with strconv.ParseFloat.
+func TestTextFieldsAgainstReference(t *testing.T) {
+	r := rand.New(rand.NewPCG(21, 4))
+	tokens := []string{"", " ", "\t", "0", "-1.5", "12.25", "3e-2", "7E+1", "1e400", "5.", ".5", "-", "e",
+		"1.2.3", "x", "NaN", "1 2", "0x1"}
+	field := func() string {
+		var sb strings.Builder
+		for range 1 + r.IntN(3) {
+			sb.WriteString(tokens[r.IntN(len(tokens))])
+		}
+		return sb.String()
+	}
+	for range 20000 {
+		nf := 1 + r.IntN(5)
+		fields := make([]string, nf)
+		for i := range fields {
+			fields[i] = field()
+		}
+		line := strings.Join(fields, ",")
+		want, wantOK := referenceLine(line)
+		var got []Sample
+		d, _ := NewTextDecoder(DecoderOptions{Columns: "time[s],pressure[cmH2O],flow[L/min],volume[mL]"},
+			func(_ string, s Sample) { got = append(got, s) })
+		d.data([]byte(line))
+		if wantOK != (len(got) == 1) || wantOK && (got[0] != want && !(math.IsNaN(got[0].VolumeL) && math.IsNaN(want.VolumeL) &&
+			got[0].TimeS == want.TimeS && got[0].PressureCmH2O == want.PressureCmH2O && got[0].FlowLPS == want.FlowLPS)) {
+			t.Fatalf("line %q: decoded %+v, reference %+v (%v)", line, got, want, wantOK)
+		}
+	}
+}
+
+// referenceLine reads a data line of the layout time[s], pressure[cmH2O],
+// flow[L/min], volume[mL] the plain way.
+func referenceLine(line string) (Sample, bool) {
+	f := strings.Split(line, ",")
+	if len(f) < 4 {
+		return Sample{}, false
+	}
+	var v [4]float64
+	for i := range 4 {
+		x := strings.Trim(f[i], " \t")
+		if i == 3 && x == "" {
+			v[i] = math.NaN()
+			continue
+		}
+		if !decimalSyntax.MatchString(x) {
+			return Sample{}, false
+		}
+		y, err := strconv.ParseFloat(x, 64)
+		if err != nil || math.IsInf(y, 0) {
+			return Sample{}, false
+		}
+		v[i] = y
+	}
+	s := Sample{TimeS: v[0], PressureCmH2O: v[1], FlowLPS: v[2] / 60, VolumeL: v[3] / 1000}
+	return s, true
+}
