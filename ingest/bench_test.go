@@ -28,6 +28,7 @@ func benchDecode(b *testing.B, d Decoder, header, input []byte, n int) {
 	_, _ = d.Write(header)
 	b.SetBytes(int64(len(input)))
 	b.ReportAllocs()
+	cpu0 := processCPU()
 	for b.Loop() {
 		for p := input; len(p) > 0; {
 			k := min(len(p), 16<<10)
@@ -39,6 +40,9 @@ func benchDecode(b *testing.B, d Decoder, header, input []byte, n int) {
 		b.Fatalf("bad input: %+v", d.Stats())
 	}
 	b.ReportMetric(float64(n)*float64(b.N)/b.Elapsed().Seconds(), "samples/s")
+	if cpu := processCPU() - cpu0; cpu > 0 {
+		b.ReportMetric(float64(cpu.Nanoseconds())/(float64(n)*float64(b.N)), "cpu-ns/sample")
+	}
 }
 
 func BenchmarkTextDecode(b *testing.B) {

@@ -200,6 +200,14 @@ func TestTextRejects(t *testing.T) {
 		{"blank", "   ", 0},
 		{"extra fields ignored", "0.0,5,1,7,8", 0},
 		{"spaces around fields", " 0.0 , 5 ,\t1 ", 0},
+		{"blank inside a number", "0.0,5 1,1", 1},
+		{"letter after a number", "0.0,5x,1", 1},
+		{"sign after a number", "0.0,5-,1", 1},
+		{"blank field", "0.0, ,1", 1},
+		{"last field empty", "0.0,5,", 1},
+		{"last field blank then comma", "0.0,5,1 ,", 0},
+		{"exponent then blank", "0.0,5e1 ,1", 0},
+		{"exponent then letter", "0.0,5e1x,1", 1},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {

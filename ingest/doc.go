@@ -16,6 +16,12 @@
 //	src, err := ingest.Open("serial:///dev/ttyUSB0?baud=115200", ingest.Options{Stream: "bed-4", Log: &log})
 //	err = src.Run(ctx, func(ev ingest.Event) { ... }) // samples, gaps, disconnections
 //
+// Reading a link that carries many streams on the reading goroutine:
+// BatchDecoder fills a reused Batch with samples and their stream indexes,
+// and a Router (a Demux and an Admission of stream templates) hands each
+// admitted stream its samples once per batch. Whole files on several cores:
+// the offline subpackage.
+//
 // Writing samples (simulator, tests): NewTextEncoder, NewBinaryEncoder, and
 // NATSSink for the scale-out subjects. docs/framing.md describes both wire
 // formats byte by byte; docs/sources.md every source URL and its behaviour

@@ -10,14 +10,30 @@ var pow10 = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10,
 	1e11, 1e12, 1e13, 1e14, 1e15, 1e16, 1e17, 1e18, 1e19, 1e20, 1e21, 1e22}
 
 // parseNumber parses a decimal number such as "-12.5", "3e-2" or "+0.125"
-// and reports false for anything else, including NaN and infinities.
+// and reports false for anything else, including NaN, infinities,
+// hexadecimal and digit separators.
 //
-// When the digits fit in 53 bits and the decimal exponent in ±22, the value
-// is one correctly rounded multiplication or division of two exact float64
-// numbers, hence the correctly rounded result (Clinger W.D., "How to read
-// floating point numbers accurately", PLDI 1990). Other inputs go through
-// strconv.ParseFloat, which is also correctly rounded; both paths agree.
+// One pass checks the syntax and gathers the digits into an integer. When
+// there are at most 19 of them (so the integer cannot overflow), the integer
+// is below 2^53 (so it is exact as a float64) and the decimal exponent is
+// within ±22 (so the power of ten is exact too), the value is one correctly
+// rounded multiplication or division of two exact float64 numbers, hence the
+// correctly rounded result (Clinger W.D., "How to read floating point numbers
+// accurately", PLDI 1990). Samples written with a few decimals always take
+// this path. Other inputs, whose syntax is known to be right by then, go
+// through strconv.ParseFloat, which is also correctly rounded: both paths
+// give the same float64.
 func parseNumber(b []byte) (float64, bool) {
+	v, n, ok := scanNumber(b)
+	return v, ok && n == len(b)
+}
+
+// scanNumber parses the decimal number at the start of b as parseNumber
+// does and returns its value and length; it reports false when b does not
+// start with one or when the number runs into a character that cannot end
+// it (a letter, a second '.', an exponent without digits). A text decoder
+// uses it to read a field and find its end in one pass.
+func scanNumber(b []byte) (float64, int, bool) {
 	i := 0
 	neg := false
 	if len(b) > 0 && (b[0] == '-' || b[0] == '+') {
@@ -25,66 +41,44 @@ func parseNumber(b []byte) (float64, bool) {
 		i = 1
 	}
 	var mant uint64
-	nd, exp10 := 0, 0
-	digits, dot, trunc := false, false, false
+	start := i
 	for ; i < len(b); i++ {
-		c := b[i]
-		switch {
-		case c >= '0' && c <= '9':
-			digits = true
-			if mant == 0 && c == '0' {
-				if dot {
-					exp10--
-				}
-				continue
-			}
-			if nd < 19 {
-				mant = mant*10 + uint64(c-'0')
-				nd++
-				if dot {
-					exp10--
-				}
-			} else {
-				trunc = true
-				if !dot {
-					exp10++
-				}
-			}
-			continue
-		case c == '.' && !dot:
-			dot = true
-			continue
+		c := b[i] - '0'
+		if c > 9 {
+			break
 		}
-		break
+		mant = mant*10 + uint64(c)
 	}
-	if !digits {
-		return 0, false
+	nd := i - start
+	exp10 := 0
+	if i < len(b) && b[i] == '.' {
+		i++
+		frac := i
+		for ; i < len(b); i++ {
+			c := b[i] - '0'
+			if c > 9 {
+				break
+			}
+			mant = mant*10 + uint64(c)
+		}
+		nd += i - frac
+		exp10 = frac - i
+	}
+	if nd == 0 {
+		return 0, 0, false
 	}
 	if i < len(b) && (b[i] == 'e' || b[i] == 'E') {
-		i++
-		eneg := false
-		if i < len(b) && (b[i] == '-' || b[i] == '+') {
-			eneg = b[i] == '-'
-			i++
-		}
-		if i == len(b) {
-			return 0, false
-		}
-		e := 0
-		for ; i < len(b) && b[i] >= '0' && b[i] <= '9'; i++ {
-			if e < 100000 {
-				e = e*10 + int(b[i]-'0')
-			}
-		}
-		if eneg {
-			e = -e
+		e, n, ok := scanExponent(b[i+1:])
+		if !ok {
+			return 0, 0, false
 		}
 		exp10 += e
+		i += 1 + n
 	}
-	if i != len(b) {
-		return 0, false
+	if i < len(b) && !endsNumber(b[i]) {
+		return 0, 0, false
 	}
-	if !trunc && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
+	if nd <= 19 && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
 		f := float64(mant)
 		if exp10 < 0 {
 			f /= pow10[-exp10]
@@ -94,13 +88,47 @@ func parseNumber(b []byte) (float64, bool) {
 		if neg {
 			f = -f
 		}
-		return f, true
+		return f, i, true
 	}
 	// strconv copies the input into its error, so the conversion below does
 	// not make b escape.
-	f, err := strconv.ParseFloat(string(b), 64)
+	f, err := strconv.ParseFloat(string(b[:i]), 64)
 	if err != nil || math.IsInf(f, 0) || math.IsNaN(f) {
-		return 0, false
+		return 0, 0, false
 	}
-	return f, true
+	return f, i, true
+}
+
+// endsNumber reports whether c may follow a number in a field: the field
+// separator or a blank before it.
+func endsNumber(c byte) bool { return c == ',' || c == ' ' || c == '\t' }
+
+// scanExponent reads the digits of a decimal exponent with an optional
+// sign at the start of b, and returns it and its length; its magnitude is
+// capped far beyond any float64 exponent.
+func scanExponent(b []byte) (int, int, bool) {
+	i := 0
+	neg := false
+	if len(b) > 0 && (b[0] == '-' || b[0] == '+') {
+		neg = b[0] == '-'
+		i = 1
+	}
+	start := i
+	e := 0
+	for ; i < len(b); i++ {
+		c := b[i] - '0'
+		if c > 9 {
+			break
+		}
+		if e < 100000 {
+			e = e*10 + int(c)
+		}
+	}
+	if i == start {
+		return 0, 0, false
+	}
+	if neg {
+		e = -e
+	}
+	return e, i, true
 }

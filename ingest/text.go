@@ -252,29 +252,37 @@ func (d *TextDecoder) data(b []byte) bool {
 		if !more {
 			return false // too few fields
 		}
-		var f []byte
-		if i := bytes.IndexByte(b, ','); i >= 0 {
-			f, b = b[:i], b[i+1:]
-		} else {
-			f, b, more = b, nil, false
-		}
 		c := cols[j]
 		j++
-		if c.kind == colIgnore {
-			continue
-		}
-		f = trimSpace(f)
-		if c.kind == colStream {
-			if st = d.streams.get(f); st == nil {
-				return false
+		if c.kind == colIgnore || c.kind == colStream {
+			// Fields are a few bytes long: a plain loop finds the comma
+			// sooner than a call to bytes.IndexByte.
+			k := 0
+			for k < len(b) && b[k] != ',' {
+				k++
+			}
+			f := b[:k]
+			if k < len(b) {
+				b = b[k+1:]
+			} else {
+				b, more = nil, false
+			}
+			if c.kind == colStream {
+				if st = d.streams.get(trimSpace(f)); st == nil {
+					return false
+				}
 			}
 			continue
 		}
-		if c.kind == colVolume && len(f) == 0 {
-			continue // volume not known for this sample: stays NaN
-		}
-		v, ok := parseNumber(f)
+		v, rest, empty, ok := numberField(b)
 		if !ok {
+			return false
+		}
+		b, more = rest, rest != nil
+		if empty {
+			if c.kind == colVolume {
+				continue // volume not known for this sample: stays NaN
+			}
 			return false
 		}
 		v = c.unit.toInternal(v)
@@ -301,6 +309,35 @@ func (d *TextDecoder) data(b []byte) bool {
 	d.stats.Samples++
 	d.emit(st.id, s)
 	return true
+}
+
+// numberField reads the number at the start of b and finds the end of its
+// field in one pass. It returns the value, what follows the field's comma
+// (nil when no field follows), whether the field was blank, and false when
+// the field is neither a number nor blank.
+func numberField(b []byte) (v float64, rest []byte, empty, ok bool) {
+	b = trimLeft(b)
+	n := 0
+	if len(b) > 0 && b[0] != ',' {
+		if v, n, ok = scanNumber(b); !ok {
+			return 0, nil, false, false
+		}
+	}
+	if b = trimLeft(b[n:]); len(b) > 0 {
+		if b[0] != ',' {
+			return 0, nil, false, false
+		}
+		rest = b[1:]
+	}
+	return v, rest, n == 0, true
+}
+
+// trimLeft drops the blanks at the start of f.
+func trimLeft(f []byte) []byte {
+	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
+		f = f[1:]
+	}
+	return f
 }
 
 func trimSpace(f []byte) []byte {
@@ -404,6 +441,27 @@ func (e *TextEncoder) eol(b []byte) []byte {
 	}
 	return append(b, '\n')
 }
+
+// WithStream returns an encoder like e that writes the stream column first
+// (in the header and in every line), or e itself when it already does. A
+// writer whose samples carry a stream id of their own uses it so that the id
+// reaches the reader: without the column, every sample of a text link falls
+// into the reader's default stream, and two writers on one source merge.
+func (e *TextEncoder) WithStream() *TextEncoder {
+	if e.opts.Stream {
+		return e
+	}
+	o := e.opts
+	o.Stream = true
+	n, err := NewTextEncoder(o)
+	if err != nil {
+		return e // e's options were accepted once; they are accepted again
+	}
+	return n
+}
+
+// HasStream reports whether the encoder writes the stream column.
+func (e *TextEncoder) HasStream() bool { return e.opts.Stream }
 
 // Header returns the header line, or nothing with NoHeader. Appending to
 // it never writes into the encoder.

@@ -20,6 +20,11 @@ type StreamOptions struct {
 	// Speed is simulated seconds per wall-clock second: 1 is real time, 10
 	// ten times faster; 0 or +Inf writes as fast as the output takes it.
 	Speed float64
+	// StreamColumn makes a text encoder write the stream id of the samples
+	// in a stream column (header and every line); binary frames always carry
+	// it. Set it when the stream id was given on purpose (sim --stream), so
+	// that several text writers on one source stay apart at the reader.
+	StreamColumn bool
 	// Truth, when set, receives the ground truth of every completed breath
 	// as one JSON object per line.
 	Truth io.Writer
@@ -48,154 +53,227 @@ const paceTickS = 0.01
 // nil at the end of the scenario, ctx.Err() when cancelled, and an error
 // when the output fails for good. Stream closes out before it returns.
 func Stream(ctx context.Context, sim *Sim, out Output, opts StreamOptions) (StreamStats, error) {
-	var st StreamStats
 	if opts.Encoder == nil {
-		return st, errors.New("stream: no encoder")
+		return StreamStats{}, errors.New("stream: no encoder")
 	}
-	if opts.Speed < 0 || math.IsNaN(opts.Speed) {
-		return st, fmt.Errorf("stream: speed %g must be positive", opts.Speed)
+	enc := opts.Encoder
+	if te, ok := enc.(*ingest.TextEncoder); ok && opts.StreamColumn {
+		enc = te.WithStream()
 	}
-	// Closing the output from here unblocks a write stuck on a reader that
-	// went away, so that cancellation is prompt.
-	done := make(chan struct{})
-	closed := make(chan struct{})
-	go func() {
-		defer close(closed)
-		select {
-		case <-ctx.Done():
-			out.Close()
-		case <-done:
-		}
-	}()
-	defer func() {
-		close(done)
-		<-closed
-		out.Close()
-	}()
-
-	header := opts.Encoder.Header()
-	if err := out.Open(ctx, header); err != nil {
-		return st, ctxErr(ctx, fmt.Errorf("open output: %w", err))
+	w, err := newPacedWriter(ctx, out, enc, opts.Speed, opts.Truth, opts.OnTruth)
+	if err != nil {
+		return StreamStats{}, err
 	}
-	paced := opts.Speed > 0 && !math.IsInf(opts.Speed, 1)
-	start := time.Now()
-	wait := func(simS float64) error {
-		if !paced {
-			return ctx.Err()
-		}
-		due := start.Add(time.Duration(simS / opts.Speed * float64(time.Second)))
-		d := time.Until(due)
-		if d < time.Duration(paceTickS*float64(time.Second)) {
-			return ctx.Err()
-		}
-		t := time.NewTimer(d)
-		defer t.Stop()
-		select {
-		case <-ctx.Done():
-			return ctx.Err()
-		case <-t.C:
-			return nil
-		}
-	}
-	chunk := out.MaxWrite()
-	buf := make([]byte, 0, 4096)
-	line := make([]byte, 0, 256)
-	flush := func() error {
-		if len(buf) == 0 {
-			return nil
-		}
-		err := out.Write(buf)
-		st.Bytes += uint64(len(buf))
-		buf = buf[:0]
-		return err
-	}
-	writeTruth := func() error {
-		for _, tr := range sim.TakeTruth() {
-			st.Breaths++
-			if opts.OnTruth != nil {
-				opts.OnTruth(tr)
-			}
-			if opts.Truth != nil {
-				line = line[:0]
-				b, err := json.Marshal(tr)
-				if err != nil {
-					return fmt.Errorf("encode truth: %w", err)
-				}
-				line = append(append(line, b...), '\n')
-				if _, err := opts.Truth.Write(line); err != nil {
-					return fmt.Errorf("write truth: %w", err)
-				}
-			}
-		}
-		return nil
+	defer w.close()
+	if err := w.open(); err != nil {
+		return w.st, err
 	}
 	for {
 		smp, ok := sim.Next()
-		for _, ev := range sim.TakeLinkEvents() {
-			if err := flush(); err != nil {
-				return st, ctxErr(ctx, err)
-			}
-			if d, ok := out.(interface{ drain(context.Context) }); ok && !ev.Up {
-				// A reader that keeps up gets every sample sent before the
-				// disconnection; one that does not loses the rest.
-				dctx, cancel := context.WithTimeout(ctx, drainTimeout)
-				d.drain(dctx)
-				cancel()
-			}
-			if err := wait(ev.TimeS); err != nil {
-				return st, err
-			}
-			if ev.Up {
-				if err := out.Reconnect(ctx); err != nil {
-					return st, ctxErr(ctx, fmt.Errorf("reconnect output: %w", err))
-				}
-			} else if err := out.Disconnect(); err != nil {
-				return st, ctxErr(ctx, fmt.Errorf("disconnect output: %w", err))
-			}
-			if opts.OnLink != nil {
-				opts.OnLink(ev)
-			}
+		if err := w.links(sim, opts.OnLink); err != nil {
+			return w.st, err
 		}
-		if err := writeTruth(); err != nil {
-			return st, err
+		if err := w.truth(sim); err != nil {
+			return w.st, err
 		}
 		if !ok {
 			break
 		}
-		if paced && len(buf) > 0 && time.Until(start.Add(time.Duration(smp.TimeS/opts.Speed*float64(time.Second)))) >= time.Duration(paceTickS*float64(time.Second)) {
-			if err := flush(); err != nil {
-				return st, ctxErr(ctx, err)
-			}
-		}
-		if err := wait(smp.TimeS); err != nil {
-			return st, err
-		}
-		n := len(buf)
-		buf = opts.Encoder.Append(buf, sim.Stream(), smp)
-		st.Samples++
-		if chunk > 0 && len(buf) > chunk {
-			// Keep datagrams whole: send what came before this sample.
-			rest := append([]byte(nil), buf[n:]...)
-			buf = buf[:n]
-			if err := flush(); err != nil {
-				return st, ctxErr(ctx, err)
-			}
-			buf = append(buf, rest...)
-		} else if len(buf) >= 32<<10 {
-			if err := flush(); err != nil {
-				return st, ctxErr(ctx, err)
-			}
+		if err := w.sample(sim.Stream(), smp); err != nil {
+			return w.st, err
 		}
 	}
-	if err := flush(); err != nil {
-		return st, ctxErr(ctx, err)
+	return w.st, w.finish()
+}
+
+// pacedWriter is the writing half shared by Stream and StreamWard: it
+// encodes samples into a buffer, holds them back to the pace of their
+// time stamps, keeps datagrams whole, writes the ground truth, and closes
+// the output when the context ends so that a blocked write returns.
+type pacedWriter struct {
+	ctx     context.Context
+	out     Output
+	enc     ingest.Encoder
+	speed   float64
+	paced   bool
+	start   time.Time
+	chunk   int
+	buf     []byte
+	line    []byte
+	truthW  io.Writer
+	onTruth func(Truth)
+	st      StreamStats
+	done    chan struct{}
+	closed  chan struct{}
+}
+
+func newPacedWriter(ctx context.Context, out Output, enc ingest.Encoder, speed float64, truthW io.Writer, onTruth func(Truth)) (*pacedWriter, error) {
+	if speed < 0 || math.IsNaN(speed) {
+		return nil, fmt.Errorf("stream: speed %g must be positive", speed)
 	}
-	if d, ok := out.(interface{ drain(context.Context) }); ok {
-		dctx, cancel := context.WithTimeout(ctx, drainTimeout)
+	w := &pacedWriter{ctx: ctx, out: out, enc: enc, speed: speed, paced: speed > 0 && !math.IsInf(speed, 1),
+		chunk: out.MaxWrite(), buf: make([]byte, 0, 4096), line: make([]byte, 0, 256),
+		truthW: truthW, onTruth: onTruth, done: make(chan struct{}), closed: make(chan struct{})}
+	// Closing the output from here unblocks a write stuck on a reader that
+	// went away, so that cancellation is prompt.
+	go func() {
+		defer close(w.closed)
+		select {
+		case <-ctx.Done():
+			out.Close()
+		case <-w.done:
+		}
+	}()
+	return w, nil
+}
+
+// close stops the watcher goroutine and closes the output.
+func (w *pacedWriter) close() {
+	close(w.done)
+	<-w.closed
+	w.out.Close()
+}
+
+// open opens the output with the encoder's header and starts the clock.
+func (w *pacedWriter) open() error {
+	if err := w.out.Open(w.ctx, w.enc.Header()); err != nil {
+		return ctxErr(w.ctx, fmt.Errorf("open output: %w", err))
+	}
+	w.start = time.Now()
+	return nil
+}
+
+// due returns how long until sample time simS is due.
+func (w *pacedWriter) due(simS float64) time.Duration {
+	return time.Until(w.start.Add(time.Duration(simS / w.speed * float64(time.Second))))
+}
+
+// wait sleeps until sample time simS is due, unless it is due within a tick.
+func (w *pacedWriter) wait(simS float64) error {
+	if !w.paced {
+		return w.ctx.Err()
+	}
+	d := w.due(simS)
+	if d < time.Duration(paceTickS*float64(time.Second)) {
+		return w.ctx.Err()
+	}
+	t := time.NewTimer(d)
+	defer t.Stop()
+	select {
+	case <-w.ctx.Done():
+		return w.ctx.Err()
+	case <-t.C:
+		return nil
+	}
+}
+
+// flush writes the buffered samples.
+func (w *pacedWriter) flush() error {
+	if len(w.buf) == 0 {
+		return nil
+	}
+	err := w.out.Write(w.buf)
+	w.st.Bytes += uint64(len(w.buf))
+	w.buf = w.buf[:0]
+	return ctxErr(w.ctx, err)
+}
+
+// sample encodes one sample of a stream, writing what is buffered first when
+// the sample is not due yet (so the reader gets it on time) or when the
+// buffer is full.
+func (w *pacedWriter) sample(stream string, smp ingest.Sample) error {
+	if w.paced && len(w.buf) > 0 && w.due(smp.TimeS) >= time.Duration(paceTickS*float64(time.Second)) {
+		if err := w.flush(); err != nil {
+			return err
+		}
+	}
+	if err := w.wait(smp.TimeS); err != nil {
+		return err
+	}
+	n := len(w.buf)
+	w.buf = w.enc.Append(w.buf, stream, smp)
+	w.st.Samples++
+	if w.chunk > 0 && len(w.buf) > w.chunk {
+		// Keep datagrams whole: send what came before this sample.
+		rest := append([]byte(nil), w.buf[n:]...)
+		w.buf = w.buf[:n]
+		if err := w.flush(); err != nil {
+			return err
+		}
+		w.buf = append(w.buf, rest...)
+	} else if len(w.buf) >= 32<<10 {
+		return w.flush()
+	}
+	return nil
+}
+
+// truth writes the ground truth of the breaths sim completed.
+func (w *pacedWriter) truth(sim *Sim) error {
+	for _, tr := range sim.TakeTruth() {
+		w.st.Breaths++
+		if w.onTruth != nil {
+			w.onTruth(tr)
+		}
+		if w.truthW == nil {
+			continue
+		}
+		b, err := json.Marshal(tr)
+		if err != nil {
+			return fmt.Errorf("encode truth: %w", err)
+		}
+		w.line = append(append(w.line[:0], b...), '\n')
+		if _, err := w.truthW.Write(w.line); err != nil {
+			return fmt.Errorf("write truth: %w", err)
+		}
+	}
+	return nil
+}
+
+// links plays the scripted disconnections and reconnections of sim on the
+// output, each at its time.
+func (w *pacedWriter) links(sim *Sim, onLink func(LinkEvent)) error {
+	for _, ev := range sim.TakeLinkEvents() {
+		if err := w.flush(); err != nil {
+			return err
+		}
+		if !ev.Up {
+			// A reader that keeps up gets every sample sent before the
+			// disconnection; one that does not loses the rest.
+			w.drain()
+		}
+		if err := w.wait(ev.TimeS); err != nil {
+			return err
+		}
+		if ev.Up {
+			if err := w.out.Reconnect(w.ctx); err != nil {
+				return ctxErr(w.ctx, fmt.Errorf("reconnect output: %w", err))
+			}
+		} else if err := w.out.Disconnect(); err != nil {
+			return ctxErr(w.ctx, fmt.Errorf("disconnect output: %w", err))
+		}
+		if onLink != nil {
+			onLink(ev)
+		}
+	}
+	return nil
+}
+
+// drain waits, for a bounded time, for the reader to take what was written.
+func (w *pacedWriter) drain() {
+	if d, ok := w.out.(interface{ drain(context.Context) }); ok {
+		dctx, cancel := context.WithTimeout(w.ctx, drainTimeout)
 		d.drain(dctx)
 		cancel()
 	}
-	return st, nil
+}
+
+// finish writes what is left and lets the reader take it.
+func (w *pacedWriter) finish() error {
+	if err := w.flush(); err != nil {
+		return err
+	}
+	w.drain()
+	return nil
 }
 
 // drainTimeout bounds the wait for a reader to take the last samples at

@@ -417,3 +417,37 @@ func (s *syncBuffer) Bytes() []byte {
 	defer s.mu.Unlock()
 	return append([]byte(nil), s.b.Bytes()...)
 }
+
+// TestStreamColumn: with StreamColumn a text writer names its stream in a
+// column, so two writers appended to one link read back as two streams;
+// without it they fall into the reader's default stream.
+func TestStreamColumn(t *testing.T) {
+	for _, column := range []bool{false, true} {
+		var out bytes.Buffer
+		for _, id := range []string{"bed-a", "bed-b"} {
+			sc := Steady{RCmH2OSPerL: 10, CMLPerCmH2O: 50, VtML: 500, FlowLPM: 50, RateBPM: 15, PEEPCmH2O: 5,
+				SampleRateHz: 100, DurationS: 20}.Scenario()
+			sc.Stream = id
+			sim, err := New(sc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			_, err = Stream(t.Context(), sim, &writerOutput{w: &out}, StreamOptions{Encoder: textEncoder(t), StreamColumn: column})
+			if err != nil {
+				t.Fatal(err)
+			}
+		}
+		count := map[string]int{}
+		dec, _ := ingest.NewTextDecoder(ingest.DecoderOptions{}, func(id string, _ ingest.Sample) { count[id]++ })
+		if err := ingest.Decode(bytes.NewReader(out.Bytes()), dec); err != nil {
+			t.Fatal(err)
+		}
+		if column {
+			if !strings.HasPrefix(out.String(), "stream,time[s],") || count["bed-a"] != 2000 || count["bed-b"] != 2000 || len(count) != 2 {
+				t.Errorf("with the column: %q..., streams %v", out.String()[:20], count)
+			}
+		} else if len(count) != 1 || count[ingest.DefaultStream] != 4000 {
+			t.Errorf("without the column: streams %v", count)
+		}
+	}
+}
