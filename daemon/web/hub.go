@@ -90,12 +90,12 @@ func (c HubConfig) withDefaults() HubConfig {
 
 // Stats are the hub's counters since it was made.
 type Stats struct {
-	SamplesIn, SamplesKept       uint64 // samples fed; kept for display after thinning
-	BreathsIn, AlertsIn          uint64
-	RefusedStreams               uint64 // feeds for a stream beyond MaxStreams
+	SamplesIn, SamplesKept        uint64 // samples fed; kept for display after thinning
+	BreathsIn, AlertsIn           uint64
+	RefusedStreams                uint64 // feeds for a stream beyond MaxStreams
 	ClientsServed, ClientsDropped uint64 // pages connected; disconnected for being too slow
-	ClientsRefused               uint64 // pages turned away beyond MaxClients
-	Frames                       uint64 // frames built
+	ClientsRefused                uint64 // pages turned away beyond MaxClients
+	Frames                        uint64 // frames built
 }
 
 // Hub holds the recent display data of every stream and sends it to the

@@ -21,13 +21,13 @@ type wavePoint struct {
 // trendPoint is the part of a breath record the trends show, at the
 // breath's end; NaN where the breath has no value.
 type trendPoint struct {
-	tS             float64
-	peepiCmH2O     float32
-	trappedML      float32
-	rCmH2OSPerL    float32
-	cMLPerCmH2O    float32
-	peakCmH2O      float32
-	plateauCmH2O   float32
+	tS           float64
+	peepiCmH2O   float32
+	trappedML    float32
+	rCmH2OSPerL  float32
+	cMLPerCmH2O  float32
+	peakCmH2O    float32
+	plateauCmH2O float32
 }
 
 // stream is the display state of one stream. Fields above the line are
@@ -42,7 +42,8 @@ type stream struct {
 	events     ring[alerts.Event]
 	active     []alerts.Event // current alarms, in order of raise
 	haveSample bool
-	nextKeepS  float64 // stream time of the next sample to keep
+	originS    float64 // stream time the display periods count from
+	lastPeriod int64   // display period of the last sample kept
 	lastTS     float64
 	lastWall   time.Time // wall time of the last sample
 	status     ingest.Status
@@ -71,10 +72,10 @@ func nanTrend() trendPoint {
 	return trendPoint{tS: math.NaN(), peepiCmH2O: n, trappedML: n, rCmH2OSPerL: n, cMLPerCmH2O: n, peakCmH2O: n, plateauCmH2O: n}
 }
 
-// addSamples thins ss to one sample per display period and returns how
-// many it kept. A stream clock that goes back (a restarted device) starts
-// the waveform afresh, so that the displayed time axis never runs
-// backwards.
+// addSamples thins ss to the first sample of each display period (periods
+// counted from the stream's first sample) and returns how many it kept. A
+// stream clock that goes back (a restarted device) starts the waveform
+// afresh, so that the displayed time axis never runs backwards.
 func (s *stream) addSamples(ss []ingest.Sample, periodS float64, now time.Time) int {
 	kept := 0
 	for i := range ss {
@@ -82,24 +83,22 @@ func (s *stream) addSamples(ss []ingest.Sample, periodS float64, now time.Time) 
 		if math.IsNaN(x.TimeS) || math.IsInf(x.TimeS, 0) {
 			continue
 		}
-		if s.haveSample && x.TimeS < s.lastTS {
-			s.wave.reset()
-			s.nextKeepS = x.TimeS
-		}
-		if !s.haveSample {
-			s.nextKeepS = x.TimeS
+		if !s.haveSample || x.TimeS < s.lastTS {
+			if s.haveSample {
+				s.wave.reset()
+			}
+			s.originS, s.lastPeriod = x.TimeS, -1
 		}
 		s.haveSample, s.lastTS = true, x.TimeS
-		if x.TimeS < s.nextKeepS {
+		// The small allowance keeps a sample that falls on a period
+		// boundary in that period despite rounding (0.12/0.02 < 6).
+		k := int64(math.Floor((x.TimeS-s.originS)/periodS + 1e-6))
+		if k <= s.lastPeriod {
 			continue
 		}
+		s.lastPeriod = k
 		s.wave.push(wavePoint{tS: x.TimeS, pCmH2O: float32(x.PressureCmH2O), flowLPM: float32(x.FlowLPS * 60)})
 		kept++
-		// The next period on the grid; after a gap, from this sample.
-		s.nextKeepS += periodS
-		if s.nextKeepS <= x.TimeS {
-			s.nextKeepS = x.TimeS + periodS
-		}
 	}
 	s.lastWall = now
 	return kept
