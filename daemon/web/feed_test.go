@@ -21,7 +21,7 @@ import (
 // acknowledgements for its stream from the same goroutine, because the
 // alarm lifecycle belongs to it: this is the small real Acker of the tests.
 type feeder struct {
-	hub    *Hub
+	hub    sink
 	stream string
 	sim    *simulator.Sim
 	an     *analyze.Analyzer
@@ -40,6 +40,41 @@ type feeder struct {
 	onAlert func(ev alerts.Event, breaths int64)
 }
 
+// sink is what a feeder feeds: the hub, or a recording.
+type sink interface {
+	Samples(stream string, ss []ingest.Sample)
+	Breath(b analyze.Breath)
+	Alert(ev alerts.Event)
+}
+
+// recording is a stream's samples, breaths and alert events, in order.
+type recording struct {
+	samples []ingest.Sample
+	breaths []analyze.Breath
+	events  []alerts.Event
+}
+
+func (r *recording) Samples(_ string, ss []ingest.Sample) { r.samples = append(r.samples, ss...) }
+func (r *recording) Breath(b analyze.Breath)              { r.breaths = append(r.breaths, b) }
+func (r *recording) Alert(ev alerts.Event)                { r.events = append(r.events, ev) }
+
+// record runs a scenario for seconds of stream time, as fast as it goes.
+func record(t *testing.T, scenario string, seconds float64) *recording {
+	t.Helper()
+	rec := &recording{}
+	f := newFeeder(t, rec, scenario, 1)
+	buf := make([]ingest.Sample, 100)
+	for !f.sim.Done() {
+		n := f.sim.Read(buf)
+		if n == 0 || buf[0].TimeS > seconds {
+			break
+		}
+		rec.Samples(f.stream, buf[:n])
+		f.push(buf[:n])
+	}
+	return rec
+}
+
 // ackCall is one acknowledgement request and where its answer goes.
 type ackCall struct {
 	Stream, ID, By, Note string
@@ -51,7 +86,7 @@ type ackAnswer struct {
 	err error
 }
 
-func newFeeder(t *testing.T, hub *Hub, scenario string, speed float64) *feeder {
+func newFeeder(t *testing.T, hub sink, scenario string, speed float64) *feeder {
 	t.Helper()
 	sc, err := simulator.Shipped(scenario)
 	if err != nil {
