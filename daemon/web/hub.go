@@ -46,12 +46,12 @@ type HubConfig struct {
 }
 
 // DefaultHubConfig returns the defaults: 50 Hz display rate, 30 s of
-// waveform, one hour (at most 3600 breaths) of trends, 200 alarm events,
+// waveform, one hour (at most 3600 breaths) of trends, 100 alarm events,
 // 1000 streams, 10 frames a second, 50 queued frames and 32 pages.
 func DefaultHubConfig() HubConfig {
 	return HubConfig{
 		DisplayRateHz: 50, WaveWindowS: 30, TrendWindowS: 3600, MaxTrendBreaths: 3600,
-		MaxEvents: 200, MaxStreams: 1000, Frame: 100 * time.Millisecond,
+		MaxEvents: 100, MaxStreams: 1000, Frame: 100 * time.Millisecond,
 		ClientQueue: 50, MaxClients: 32, SilentAfter: 3 * time.Second, Now: time.Now,
 	}
 }

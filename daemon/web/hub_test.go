@@ -5,6 +5,8 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"maps"
+	"runtime"
 	"strings"
 	"testing"
 	"time"
@@ -138,9 +140,11 @@ func event(stream, cond, id string, st alerts.State, supersedes string) alerts.E
 		Time: time.Unix(0, 0), Evidence: map[string]float64{"peepi_cmh2o": 5.5}, Message: "m " + id, Supersedes: supersedes}
 }
 
-// TestActiveAlarms follows one alarm through the states of the alert
-// event contract (docs/detectors.md): a raise adds it, a raise that
-// supersedes replaces it, an acknowledgement keeps it, a clear ends it.
+// TestActiveAlarms follows alarms through the states of the alert event
+// contract (docs/detectors.md): one current alarm per condition, in the
+// order the conditions were first seen; a raise that supersedes replaces
+// it, an acknowledgement keeps it, a clear of the current id ends it (a
+// late clear of a superseded id does not).
 func TestActiveAlarms(t *testing.T) {
 	h := NewHub(HubConfig{})
 	steps := []struct {
@@ -150,8 +154,9 @@ func TestActiveAlarms(t *testing.T) {
 		{event("s", "air-trapping", "a1", alerts.Raised, ""), []string{"a1:raised"}},
 		{event("s", "rising-peak", "b1", alerts.Raised, ""), []string{"a1:raised", "b1:raised"}},
 		{event("s", "air-trapping", "a1", alerts.Escalated, ""), []string{"a1:escalated", "b1:raised"}},
-		{event("s", "air-trapping", "a2", alerts.Raised, "a1"), []string{"b1:raised", "a2:raised"}},
-		{event("s", "air-trapping", "a2", alerts.Acknowledged, ""), []string{"b1:raised", "a2:acknowledged"}},
+		{event("s", "air-trapping", "a2", alerts.Raised, "a1"), []string{"a2:raised", "b1:raised"}},
+		{event("s", "air-trapping", "a2", alerts.Acknowledged, ""), []string{"a2:acknowledged", "b1:raised"}},
+		{event("s", "air-trapping", "a1", alerts.Cleared, ""), []string{"a2:acknowledged", "b1:raised"}},
 		{event("s", "rising-peak", "b1", alerts.Cleared, ""), []string{"a2:acknowledged"}},
 		{event("s", "air-trapping", "a2", alerts.Cleared, ""), nil},
 	}
@@ -306,4 +311,72 @@ func TestRunStops(t *testing.T) {
 	if h.Stats().Frames == 0 {
 		t.Error("no frame was sent while running")
 	}
+}
+
+// TestStreamState: waiting before any sample, live, silent after
+// SilentAfter without samples, disconnected when the source says so.
+func TestStreamState(t *testing.T) {
+	now := time.Unix(1000, 0)
+	h := NewHub(HubConfig{SilentAfter: 3 * time.Second, Now: func() time.Time { return now }})
+	h.Status("s", ingest.StatusConnected)
+	s := h.lookup("s")
+	steps := []struct {
+		do   func()
+		want string
+	}{
+		{func() {}, "waiting"},
+		{func() { h.Samples("s", samples(0, 10, 100)) }, "live"},
+		{func() { now = now.Add(3 * time.Second) }, "live"},
+		{func() { now = now.Add(time.Millisecond) }, "silent"},
+		{func() { h.Samples("s", samples(1, 10, 100)) }, "live"},
+		{func() { h.Status("s", ingest.StatusDisconnected) }, "disconnected"},
+		{func() { h.Status("s", ingest.StatusConnected) }, "live"},
+	}
+	for i, st := range steps {
+		st.do()
+		s.mu.Lock()
+		got := s.state(now, h.cfg.SilentAfter)
+		s.mu.Unlock()
+		if got != st.want {
+			t.Errorf("step %d: state %q, want %q", i, got, st.want)
+		}
+	}
+}
+
+// TestMemoryBudget fills streams to every ring's capacity with the
+// defaults and checks the heap they take against the budget stated in
+// docs/live-view.md (300 kB a stream).
+func TestMemoryBudget(t *testing.T) {
+	const streams, budget = 20, 300 << 10
+	var before, after runtime.MemStats
+	runtime.GC()
+	runtime.ReadMemStats(&before)
+	h := NewHub(HubConfig{})
+	ev := map[string]float64{}
+	for k := 0; k < 10; k++ {
+		ev[fmt.Sprintf("evidence_key_%d", k)] = float64(k)
+	}
+	for i := 0; i < streams; i++ {
+		id := fmt.Sprint("bed-", i)
+		h.Samples(id, samples(0, 4000, 100)) // 40 s: more than the 30 s window
+		for j := 0; j < 3700; j++ {
+			b := analyze.NewBreath()
+			b.Stream, b.StartS, b.EndS = id, float64(j), float64(j)+1
+			h.Breath(b)
+		}
+		for j := 0; j < 250; j++ {
+			e := event(id, "air-trapping", fmt.Sprintf("%s/air-trapping/%d", id, j), alerts.Raised, "")
+			e.Evidence = maps.Clone(ev)
+			e.Message = strings.Repeat("m", 120)
+			h.Alert(e)
+		}
+	}
+	runtime.GC()
+	runtime.ReadMemStats(&after)
+	per := (int64(after.HeapAlloc) - int64(before.HeapAlloc)) / streams
+	t.Logf("heap per full stream: %d kB (budget %d kB)", per>>10, budget>>10)
+	if per > budget {
+		t.Errorf("a full stream takes %d kB, over the %d kB budget", per>>10, budget>>10)
+	}
+	runtime.KeepAlive(h)
 }

@@ -18,6 +18,11 @@ func newRing[T any](limit int) ring[T] {
 
 func (r *ring[T]) push(v T) {
 	if len(r.buf) < r.limit {
+		if len(r.buf) == cap(r.buf) { // grow, but never past the limit
+			nb := make([]T, len(r.buf), min(max(2*cap(r.buf), 64), r.limit))
+			copy(nb, r.buf)
+			r.buf = nb
+		}
 		r.buf = append(r.buf, v)
 	} else {
 		r.buf[(r.total-r.base)%uint64(r.limit)] = v

@@ -2,6 +2,7 @@ package web
 
 import (
 	"math"
+	"slices"
 	"sync"
 	"time"
 
@@ -127,36 +128,28 @@ func (s *stream) addBreath(b *analyze.Breath) {
 	s.version++
 }
 
+// maxActive caps the current alarms kept per stream: the lifecycle has
+// at most one per condition, and there are a handful of conditions.
+const maxActive = 32
+
 // addAlert records the event in the timeline and updates the current
-// alarms: a raise adds one (and ends the alarm it supersedes), a clear
-// removes it, any other state replaces it.
+// alarms, one per condition as in the alarm lifecycle: a raise sets the
+// condition's alarm (replacing the one it supersedes), a clear of that
+// alarm removes it, any other state updates it.
 func (s *stream) addAlert(ev *alerts.Event) {
 	s.events.push(*ev)
 	s.version++
-	drop := func(id string) {
-		out := s.active[:0]
-		for _, a := range s.active {
-			if a.ID != id {
-				out = append(out, a)
-			}
+	i := slices.IndexFunc(s.active, func(a alerts.Event) bool { return a.Condition == ev.Condition })
+	switch {
+	case ev.State == alerts.Cleared:
+		if i >= 0 && s.active[i].ID == ev.ID {
+			s.active = slices.Delete(s.active, i, i+1)
 		}
-		clear(s.active[len(out):])
-		s.active = out
+	case i >= 0:
+		s.active[i] = *ev
+	case len(s.active) < maxActive:
+		s.active = append(s.active, *ev)
 	}
-	if ev.Supersedes != "" {
-		drop(ev.Supersedes)
-	}
-	if ev.State == alerts.Cleared {
-		drop(ev.ID)
-		return
-	}
-	for i := range s.active {
-		if s.active[i].ID == ev.ID {
-			s.active[i] = *ev
-			return
-		}
-	}
-	s.active = append(s.active, *ev)
 }
 
 // state names the stream's condition at wall time now: waiting (nothing

@@ -94,6 +94,8 @@
 
   // ---- charts ---------------------------------------------------------
   const charts = {};
+  const AXIS_FONT = '11px system-ui, sans-serif';
+  const LABEL_FONT = '12px system-ui, sans-serif';
   function chartWidth(id) { return Math.max(280, $(id).clientWidth || 560); }
   function makeChart(id, title, xLabel, yLabel, series, height) {
     const opts = {
@@ -106,8 +108,10 @@
         points: { show: id.startsWith('tr'), size: 3 },
       }))),
       axes: [
-        { label: xLabel, stroke: '#222', grid: { stroke: '#e4e4e4', width: 1 } },
-        { label: yLabel, stroke: '#222', grid: { stroke: '#e4e4e4', width: 1 }, size: 56 },
+        { label: xLabel, stroke: '#222', font: AXIS_FONT, labelFont: LABEL_FONT, labelSize: 20,
+          grid: { stroke: '#e4e4e4', width: 1 } },
+        { label: yLabel, stroke: '#222', font: AXIS_FONT, labelFont: LABEL_FONT, labelSize: 20,
+          grid: { stroke: '#e4e4e4', width: 1 }, size: 52 },
       ],
     };
     const data = [[]].concat(series.map(() => []));
@@ -117,13 +121,13 @@
     return { 'wave-p': [0], 'wave-f': [2], 'tr-p': [0, 4, 1], 'tr-v': [3], 'tr-r': [5], 'tr-c': [6] }[id][i];
   }
   function makeCharts() {
-    makeChart('wave-p', 'Airway pressure', 'stream time (s)', 'pressure (cmH2O)', ['pressure (cmH2O)'], 170);
-    makeChart('wave-f', 'Flow (inspiration positive)', 'stream time (s)', 'flow (L/min)', ['flow (L/min)'], 170);
+    makeChart('wave-p', 'Airway pressure', 'stream time (s)', 'pressure (cmH2O)', ['pressure (cmH2O)'], 220);
+    makeChart('wave-f', 'Flow (inspiration positive)', 'stream time (s)', 'flow (L/min)', ['flow (L/min)'], 220);
     makeChart('tr-p', 'Pressures per breath', 'stream time (min)', 'pressure (cmH2O)',
-      ['peak (cmH2O)', 'plateau (cmH2O)', 'intrinsic PEEP (cmH2O)'], 190);
-    makeChart('tr-v', 'Trapped volume per breath', 'stream time (min)', 'volume (mL)', ['trapped volume (mL)'], 190);
-    makeChart('tr-r', 'Resistance (least-squares fit)', 'stream time (min)', 'R (cmH2O·s/L)', ['R (cmH2O·s/L)'], 190);
-    makeChart('tr-c', 'Compliance (least-squares fit)', 'stream time (min)', 'C (mL/cmH2O)', ['C (mL/cmH2O)'], 190);
+      ['peak (cmH2O)', 'plateau (cmH2O)', 'intrinsic PEEP (cmH2O)'], 230);
+    makeChart('tr-v', 'Trapped volume per breath', 'stream time (min)', 'volume (mL)', ['trapped volume (mL)'], 230);
+    makeChart('tr-r', 'Resistance (least-squares fit)', 'stream time (min)', 'R (cmH2O·s/L)', ['R (cmH2O·s/L)'], 230);
+    makeChart('tr-c', 'Compliance (least-squares fit)', 'stream time (min)', 'C (mL/cmH2O)', ['C (mL/cmH2O)'], 230);
   }
   window.addEventListener('resize', () => {
     for (const id in charts) charts[id].setSize({ width: chartWidth(id), height: charts[id].height });
@@ -308,6 +312,7 @@
     }
     body.replaceChildren(frag);
     $('no-active').hidden = active.length > 0;
+    $('active').hidden = active.length === 0;
   }
 
   function renderTimeline() {
