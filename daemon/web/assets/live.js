@@ -30,12 +30,16 @@
   };
 
   // ---- measurement of the page's own update work ----------------------
-  const timing = { ms: [], frames: 0, snapshotMs: [] };
-  function record(ms, snapshot) {
+  const timing = { ms: [], frames: 0, snapshotMs: [], worst: [] };
+  function record(ms, snapshot, parts) {
     if (snapshot) { timing.snapshotMs.push(ms); return; }
     timing.frames++;
     timing.ms.push(ms);
     if (timing.ms.length > FRAME_KEEP) timing.ms.splice(0, timing.ms.length - FRAME_KEEP);
+    // The five slowest frames and what they updated, to tell where time goes.
+    timing.worst.push({ ms: ms, parts: parts.join(' ') });
+    timing.worst.sort((a, b) => b.ms - a.ms);
+    if (timing.worst.length > 5) timing.worst.length = 5;
   }
   function pct(sorted, q) {
     if (!sorted.length) return 0;
@@ -52,10 +56,10 @@
         frames: timing.frames, kept: s.length,
         max: s.length ? s[s.length - 1] : 0,
         p50: pct(s, 0.5), p95: pct(s, 0.95), p99: pct(s, 0.99),
-        snapshotMs: timing.snapshotMs.slice(),
+        snapshotMs: timing.snapshotMs.slice(), worst: timing.worst.slice(),
       };
     },
-    resetFrameStats() { timing.ms = []; timing.frames = 0; timing.snapshotMs = []; },
+    resetFrameStats() { timing.ms = []; timing.frames = 0; timing.snapshotMs = []; timing.worst = []; },
     wavePoints() { return st.wave.t.length; },
     selected() { return st.sel; },
     streams() { return Array.from(st.summaries.keys()); },
@@ -217,26 +221,34 @@
       const snap = pendingSnapshot;
       pendingSnapshot = false;
       const t0 = performance.now();
-      render();
-      record(performance.now() - t0, snap);
+      const parts = render();
+      // uPlot draws in a microtask queued by setData; this one runs after
+      // it, so the figure includes the drawing of the charts.
+      queueMicrotask(() => record(performance.now() - t0, snap, parts));
     });
   }
+  // render applies what changed since the last frame and returns the
+  // names of the parts it updated.
   function render() {
+    const parts = [];
     $('clock').textContent = 'server time ' + clock(st.nowMs);
     $('count').textContent = st.summaries.size + (st.summaries.size === 1 ? ' stream' : ' streams');
-    if (st.rebuildList) { rebuildList(); st.rebuildList = false; }
+    if (st.rebuildList) { rebuildList(); st.rebuildList = false; parts.push('list'); }
+    if (st.dirtyRows.size) parts.push('rows:' + st.dirtyRows.size);
     for (const id of st.dirtyRows) updateRow(id);
     st.dirtyRows.clear();
-    if (st.sel === null) return;
+    if (st.sel === null) return parts;
     $('detail').hidden = false;
     $('sel').textContent = st.sel;
-    if (st.dirtyActive) { renderActive(); st.dirtyActive = false; }
+    if (st.dirtyActive) { renderActive(); st.dirtyActive = false; parts.push('alarms'); }
     if (st.dirtyWave) {
+      parts.push('wave');
       charts['wave-p'].setData([st.wave.t, st.wave.p]);
       charts['wave-f'].setData([st.wave.t, st.wave.f]);
       st.dirtyWave = false;
     }
     if (st.dirtyTrend) {
+      parts.push('trend');
       const t = st.trend;
       charts['tr-p'].setData([t.t, t.pip, t.pplat, t.peepi]);
       charts['tr-v'].setData([t.t, t.trapped]);
@@ -244,7 +256,8 @@
       charts['tr-c'].setData([t.t, t.c]);
       st.dirtyTrend = false;
     }
-    if (st.dirtyEvents) { renderTimeline(); st.dirtyEvents = false; }
+    if (st.dirtyEvents) { renderTimeline(); st.dirtyEvents = false; parts.push('timeline'); }
+    return parts;
   }
 
   function rebuildList() {
@@ -269,6 +282,11 @@
       frag.appendChild(tr);
     }
     body.replaceChildren(frag);
+    // The list box has a fixed height so that its layout is contained
+    // (updating rows then costs no layout of the rest of the page); fit
+    // it to a short list.
+    const box = $('streams').parentNode;
+    box.style.height = Math.min(window.innerHeight * 0.4, $('streams').offsetHeight + 2) + 'px';
   }
   function updateRow(id) {
     const r = st.rows.get(id), s = st.summaries.get(id);
