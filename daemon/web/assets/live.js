@@ -134,6 +134,7 @@
     makeChart('tr-c', 'Compliance (least-squares fit)', 'stream time (min)', 'C (mL/cmH2O)', ['C (mL/cmH2O)'], 230);
   }
   window.addEventListener('resize', () => {
+    fitList();
     for (const id in charts) charts[id].setSize({ width: chartWidth(id), height: charts[id].height });
   });
 
@@ -233,10 +234,12 @@
     const parts = [];
     $('clock').textContent = 'server time ' + clock(st.nowMs);
     $('count').textContent = st.summaries.size + (st.summaries.size === 1 ? ' stream' : ' streams');
-    if (st.rebuildList) { rebuildList(); st.rebuildList = false; parts.push('list'); }
+    const rebuilt = st.rebuildList;
+    if (rebuilt) { rebuildList(); st.rebuildList = false; parts.push('list'); }
     if (st.dirtyRows.size) parts.push('rows:' + st.dirtyRows.size);
     for (const id of st.dirtyRows) updateRow(id);
     st.dirtyRows.clear();
+    if (rebuilt) fitList();
     if (st.sel === null) return parts;
     $('detail').hidden = false;
     $('sel').textContent = st.sel;
@@ -282,11 +285,13 @@
       frag.appendChild(tr);
     }
     body.replaceChildren(frag);
-    // The list box has a fixed height so that its layout is contained
-    // (updating rows then costs no layout of the rest of the page); fit
-    // it to a short list.
+  }
+  // fitList gives the list box a fixed height, so that its layout is
+  // contained (updating rows then costs no layout of the rest of the
+  // page): 40 % of the window, or less for a short list.
+  function fitList() {
     const box = $('streams').parentNode;
-    box.style.height = Math.min(window.innerHeight * 0.4, $('streams').offsetHeight + 2) + 'px';
+    box.style.height = Math.min(window.innerHeight * 0.4, $('streams').offsetHeight + 4) + 'px';
   }
   function updateRow(id) {
     const r = st.rows.get(id), s = st.summaries.get(id);
