@@ -33,17 +33,19 @@ func appendString(dst []byte, s string) []byte {
 	return append(dst, '"')
 }
 
-// appendNum writes v with prec decimals (shortest form when prec < 0), or
+// appendNum writes v rounded to prec decimals (the shortest form, with an
+// exponent where shorter, when prec < 0), or
 // null when v is not finite.
 func appendNum(dst []byte, v float64, prec int) []byte {
 	if math.IsNaN(v) || math.IsInf(v, 0) {
 		return append(dst, "null"...)
 	}
-	if prec >= 0 {
-		v = math.Round(v*math.Pow10(prec)) / math.Pow10(prec)
-		if v == 0 {
-			v = 0 // no "-0"
-		}
+	if prec < 0 {
+		return strconv.AppendFloat(dst, v, 'g', -1, 64)
+	}
+	v = math.Round(v*math.Pow10(prec)) / math.Pow10(prec)
+	if v == 0 {
+		v = 0 // no "-0"
 	}
 	return strconv.AppendFloat(dst, v, 'f', -1, 64)
 }

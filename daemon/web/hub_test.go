@@ -6,6 +6,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"maps"
+	"math"
 	"runtime"
 	"strings"
 	"testing"
@@ -379,4 +380,34 @@ func TestMemoryBudget(t *testing.T) {
 		t.Errorf("a full stream takes %d kB, over the %d kB budget", per>>10, budget>>10)
 	}
 	runtime.KeepAlive(h)
+}
+
+// TestAppendNum: numbers are valid JSON that encoding/json (the reference)
+// reads back, rounded to the stated decimals; unknown values are null.
+func TestAppendNum(t *testing.T) {
+	cases := []struct {
+		v    float64
+		prec int
+		want string
+	}{
+		{math.NaN(), 2, "null"},
+		{math.Inf(1), -1, "null"},
+		{6.0999999046, 2, "6.1"},
+		{-0.0001, 2, "0"},
+		{12.3456, 3, "12.346"},
+		{1e300, -1, "1e+300"},
+		{0.1, -1, "0.1"},
+	}
+	for _, tc := range cases {
+		got := string(appendNum(nil, tc.v, tc.prec))
+		if got != tc.want {
+			t.Errorf("appendNum(%v, %d) = %s, want %s", tc.v, tc.prec, got, tc.want)
+		}
+		if got != "null" {
+			var back float64
+			if err := json.Unmarshal([]byte(got), &back); err != nil {
+				t.Errorf("%s is not a JSON number: %v", got, err)
+			}
+		}
+	}
 }
