@@ -30,14 +30,18 @@ var assets embed.FS
 // reaches the page like every other event, through Hub.Alert.
 type Acker interface {
 	// Ack acknowledges the current alarm id of stream. by names who
-	// acknowledged (may be empty); note is a free comment (may be empty).
+	// acknowledged (may be empty); note is a free comment (may be empty),
+	// for the service's log. An error says why the service refused (for
+	// example alerts.ErrUnknownAlert); the page shows it.
 	Ack(ctx context.Context, stream, id, by, note string) (AckResult, error)
 }
 
 // AckResult is what the acknowledgement produced.
 type AckResult struct {
 	// Events are the alert events the acknowledgement caused
-	// ("acknowledged", and "cleared" for a latched alarm).
+	// ("acknowledged", and "cleared" for a latched alarm), when the service
+	// reports them; empty otherwise. Either way the events reach the page
+	// through Hub.Alert like every other event.
 	Events []alerts.Event
 }
 
