@@ -42,7 +42,9 @@ func chromium(t *testing.T) string {
 }
 
 // browser starts a headless Chromium with a fresh profile; the returned
-// context ends it.
+// context ends it. At the end of the test it fails the test for every
+// error the page wrote to the console (an exception, a refused resource, a
+// violation of the content security policy).
 func browser(t *testing.T, timeout time.Duration) context.Context {
 	t.Helper()
 	opts := []chromedp.ExecAllocatorOption{
@@ -62,14 +64,40 @@ func browser(t *testing.T, timeout time.Duration) context.Context {
 	ctx, cancel := context.WithTimeout(context.Background(), timeout)
 	actx, acancel := chromedp.NewExecAllocator(ctx, opts...)
 	bctx, bcancel := chromedp.NewContext(actx)
+	if err := chromedp.Do(bctx); err != nil {
+		bcancel()
+		acancel()
+		cancel()
+		t.Fatalf("start chromium: %v", err)
+	}
+	var mu sync.Mutex
+	var problems []string
+	done := make(chan struct{})
+	messages := chromedp.Console(bctx)
+	go func() {
+		defer close(done)
+		for m, err := range messages {
+			if err != nil {
+				return
+			}
+			if m.Type == chromedp.ConsoleError || m.IsException() {
+				mu.Lock()
+				problems = append(problems, m.String())
+				mu.Unlock()
+			}
+		}
+	}()
 	t.Cleanup(func() {
 		bcancel()
 		acancel()
 		cancel()
+		<-done
+		mu.Lock()
+		defer mu.Unlock()
+		for _, p := range problems {
+			t.Errorf("page console: %s", p)
+		}
 	})
-	if err := chromedp.Do(bctx); err != nil {
-		t.Fatalf("start chromium: %v", err)
-	}
 	return bctx
 }
 
