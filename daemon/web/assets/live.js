@@ -65,7 +65,7 @@
     streams() { return Array.from(st.summaries.keys()); },
   };
 
-  // ---- small DOM helpers ----------------------------------------------
+  // ---- small DOM functions --------------------------------------------
   function el(tag, cls, text) {
     const e = document.createElement(tag);
     if (cls) e.className = cls;
