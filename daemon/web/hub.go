@@ -144,8 +144,13 @@ func (h *Hub) Stats() Stats {
 	}
 }
 
-// get returns the stream id, created on first use; nil beyond MaxStreams.
+// get returns the stream id, created on first use; nil beyond MaxStreams
+// and for an empty id.
 func (h *Hub) get(id string) *stream {
+	if id == "" {
+		h.nRefused.Add(1)
+		return nil
+	}
 	h.mu.RLock()
 	s := h.streams[id]
 	h.mu.RUnlock()

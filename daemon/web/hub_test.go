@@ -270,8 +270,9 @@ func TestLimits(t *testing.T) {
 	if n := len(h.sorted()); n != 3 {
 		t.Errorf("%d streams, want 3", n)
 	}
-	if h.Stats().RefusedStreams != 2 {
-		t.Errorf("refused %d streams, want 2", h.Stats().RefusedStreams)
+	h.Alert(alerts.Event{ID: "x", Condition: "c"}) // no stream id
+	if h.Stats().RefusedStreams != 3 {
+		t.Errorf("refused %d feeds, want 3", h.Stats().RefusedStreams)
 	}
 	for i := 0; i < 3; i++ {
 		_, err := h.register("")
