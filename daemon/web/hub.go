@@ -92,7 +92,7 @@ func (c HubConfig) withDefaults() HubConfig {
 type Stats struct {
 	SamplesIn, SamplesKept        uint64 // samples fed; kept for display after thinning
 	BreathsIn, AlertsIn           uint64
-	RefusedStreams                uint64 // feeds for a stream beyond MaxStreams
+	RefusedStreams                uint64 // feeds for a stream beyond MaxStreams or without an id
 	ClientsServed, ClientsDropped uint64 // pages connected; disconnected for being too slow
 	ClientsRefused                uint64 // pages turned away beyond MaxClients
 	Frames                        uint64 // frames built
