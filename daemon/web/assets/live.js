@@ -306,34 +306,50 @@
     r.cells[6].textContent = alarmText(s.active);
   }
 
+  // renderActive updates the current alarms table in place: a row (and its
+  // acknowledge button) lives as long as its alarm id, so that a click is
+  // never lost to a re-render between press and release.
+  const activeRows = new Map(); // alert id → { tr, cells, button }
+  function activeRow(a) {
+    const tr = el('tr');
+    tr.dataset.id = a.id;
+    tr.dataset.condition = a.condition;
+    const cells = [];
+    for (let i = 0; i < 7; i++) { const td = el('td'); cells.push(td); tr.appendChild(td); }
+    cells[5].className = 'evidence';
+    let button = null;
+    if (ackOn) {
+      button = el('button', 'ack', 'acknowledge');
+      button.type = 'button';
+      button.dataset.id = a.id;
+      const stream = st.sel;
+      button.addEventListener('click', () => acknowledge(stream, a.id, button));
+      cells[6].appendChild(button);
+    }
+    return { tr: tr, cells: cells, button: button };
+  }
   function renderActive() {
     const s = st.summaries.get(st.sel);
     const active = s ? s.active : [];
     const body = $('active').tBodies[0];
-    const frag = document.createDocumentFragment();
-    for (const a of active) {
-      const tr = el('tr');
-      tr.dataset.id = a.id;
-      tr.dataset.condition = a.condition;
-      tr.dataset.state = a.state;
-      tr.appendChild(el('td', null, a.condition));
-      tr.appendChild(el('td', 'prio-' + a.priority, a.priority));
-      tr.appendChild(el('td', null, a.state));
-      tr.appendChild(el('td', null, num(a.t_s, 1)));
-      tr.appendChild(el('td', null, a.message));
-      tr.appendChild(el('td', 'evidence', evidenceText(a.evidence)));
-      const td = el('td');
-      if (ackOn && a.state !== 'acknowledged') {
-        const b = el('button', 'ack', 'acknowledge');
-        b.type = 'button';
-        b.dataset.id = a.id;
-        b.addEventListener('click', () => acknowledge(st.sel, a.id, b));
-        td.appendChild(b);
-      }
-      tr.appendChild(td);
-      frag.appendChild(tr);
+    const keep = new Set(active.map((a) => a.id));
+    for (const [id, r] of activeRows) {
+      if (!keep.has(id) || r.stream !== st.sel) { r.tr.remove(); activeRows.delete(id); }
     }
-    body.replaceChildren(frag);
+    active.forEach((a, i) => {
+      let r = activeRows.get(a.id);
+      if (!r) { r = activeRow(a); r.stream = st.sel; activeRows.set(a.id, r); }
+      r.tr.dataset.state = a.state;
+      r.cells[0].textContent = a.condition;
+      r.cells[1].textContent = a.priority;
+      r.cells[1].className = 'prio-' + a.priority;
+      r.cells[2].textContent = a.state;
+      r.cells[3].textContent = num(a.t_s, 1);
+      r.cells[4].textContent = a.message;
+      r.cells[5].textContent = evidenceText(a.evidence);
+      if (r.button) r.button.hidden = a.state === 'acknowledged';
+      if (body.children[i] !== r.tr) body.insertBefore(r.tr, body.children[i] || null);
+    });
     $('no-active').hidden = active.length > 0;
     $('active').hidden = active.length === 0;
   }
