@@ -1,0 +1,405 @@
+package web
+
+import (
+	"bytes"
+	"context"
+	"errors"
+	"fmt"
+	"image/png"
+	"math"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"os/exec"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/chromedp/chromedp"
+
+	"trapline/alerts"
+)
+
+// The browser tests drive headless Chromium (the Debian package chromium)
+// through the DevTools protocol against a real HTTP server on 127.0.0.1.
+// They are skipped, saying so, only when no Chromium binary is found.
+
+// chromium returns the browser binary: $TRAPLINE_CHROMIUM, or the first of
+// the usual names on PATH.
+func chromium(t *testing.T) string {
+	t.Helper()
+	if p := os.Getenv("TRAPLINE_CHROMIUM"); p != "" {
+		return p
+	}
+	for _, name := range []string{"chromium", "chromium-browser", "google-chrome", "/usr/bin/chromium"} {
+		if p, err := exec.LookPath(name); err == nil {
+			return p
+		}
+	}
+	t.Skip("no Chromium binary found (install the Debian package: apt-get install -y chromium, or set TRAPLINE_CHROMIUM); the browser test did not run")
+	return ""
+}
+
+// browser starts a headless Chromium with a fresh profile; the returned
+// context ends it. At the end of the test it fails the test for every
+// error the page wrote to the console (an exception, a refused resource, a
+// violation of the content security policy).
+func browser(t *testing.T, timeout time.Duration) context.Context {
+	t.Helper()
+	opts := []chromedp.ExecAllocatorOption{
+		chromedp.ExecPath(chromium(t)),
+		chromedp.Flag("headless", true),
+		chromedp.NoSandbox,
+		chromedp.DisableGPU,
+		chromedp.Flag("disable-quic", true),
+		chromedp.NoFirstRun,
+		chromedp.Flag("disable-background-networking", true),
+		chromedp.Flag("disable-component-update", true),
+		chromedp.Flag("disable-sync", true),
+		chromedp.Flag("hide-scrollbars", true),
+		chromedp.UserDataDir(t.TempDir()),
+		chromedp.WindowSize(1200, 1600),
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), timeout)
+	actx, acancel := chromedp.NewExecAllocator(ctx, opts...)
+	bctx, bcancel := chromedp.NewContext(actx)
+	if err := chromedp.Do(bctx); err != nil {
+		bcancel()
+		acancel()
+		cancel()
+		t.Fatalf("start chromium: %v", err)
+	}
+	var mu sync.Mutex
+	var problems []string
+	done := make(chan struct{})
+	messages := chromedp.Console(bctx)
+	go func() {
+		defer close(done)
+		for m, err := range messages {
+			if err != nil {
+				return
+			}
+			if m.Type == chromedp.ConsoleError || m.IsException() {
+				mu.Lock()
+				problems = append(problems, m.String())
+				mu.Unlock()
+			}
+		}
+	}()
+	t.Cleanup(func() {
+		bcancel()
+		acancel()
+		cancel()
+		<-done
+		mu.Lock()
+		defer mu.Unlock()
+		for _, p := range problems {
+			t.Errorf("page console: %s", p)
+		}
+	})
+	return bctx
+}
+
+// liveServer serves the live view of hub on 127.0.0.1 and runs the hub.
+func liveServer(t *testing.T, hub *Hub, acker Acker) string {
+	t.Helper()
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan struct{})
+	go func() { defer close(done); _ = hub.Run(ctx) }()
+	mux := http.NewServeMux()
+	Mount(mux, NewHandler(hub, acker))
+	srv := httptest.NewServer(mux) // listens on 127.0.0.1
+	t.Cleanup(func() {
+		cancel()
+		<-done
+		srv.Close()
+	})
+	return srv.URL + Path
+}
+
+// waitJS evaluates expr every 50 ms until it is true, for at most d.
+func waitJS(t *testing.T, ctx context.Context, what, expr string, d time.Duration) time.Time {
+	t.Helper()
+	end := time.Now().Add(d)
+	for {
+		ok, err := chromedp.Run(ctx, chromedp.Evaluate[bool](expr))
+		if err != nil {
+			t.Fatalf("%s: %v", what, err)
+		}
+		if ok {
+			return time.Now()
+		}
+		if time.Now().After(end) {
+			t.Fatalf("%s: not seen within %v", what, d)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
+// xssStream is a stream id that would run script if it were ever put into
+// the page as markup.
+const xssStream = `zz<img src=x onerror="window.__xss=1">`
+
+// TestBrowserLiveView: the page lists the streams, the waveform grows,
+// an air-trapping alarm shows within 10 breaths of its event, and the
+// acknowledge button goes to the Acker with the alarm's id.
+func TestBrowserLiveView(t *testing.T) {
+	bctx := browser(t, 60*time.Second)
+	hub := NewHub(HubConfig{})
+	ctx, cancel := context.WithCancel(context.Background())
+	var wg sync.WaitGroup
+	defer func() { cancel(); wg.Wait() }()
+
+	stable := newFeeder(t, hub, "stable", 1) // bench-3, real time
+	trap := newFeeder(t, hub, "hyperinflation", 4)
+	type raise struct {
+		id      string
+		at      time.Time
+		breaths int64
+	}
+	raised := make(chan raise, 1)
+	trap.onAlert = func(ev alerts.Event, breaths int64) {
+		if ev.Condition == "air-trapping" && ev.State == alerts.Raised {
+			select {
+			case raised <- raise{ev.ID, time.Now(), breaths}:
+			default:
+			}
+		}
+	}
+	hub.Samples(xssStream, samples(0, 10, 100))
+	url := liveServer(t, hub, trap)
+	wg.Add(1)
+	go func() { defer wg.Done(); stable.run(ctx) }()
+
+	if err := chromedp.Do(bctx, chromedp.Navigate(url)); err != nil {
+		t.Fatalf("open %s: %v", url, err)
+	}
+	waitJS(t, bctx, "stream list", `window.traplineLive && traplineLive.streams().includes("bench-3") && document.querySelector('#streams tr[data-stream="bench-3"]') !== null`, 10*time.Second)
+	waitJS(t, bctx, "first waveform points", `traplineLive.selected() === "bench-3" && traplineLive.wavePoints() > 0`, 10*time.Second)
+	points := func() int {
+		n, err := chromedp.Run(bctx, chromedp.Evaluate[int](`traplineLive.wavePoints()`))
+		if err != nil {
+			t.Fatalf("read point count: %v", err)
+		}
+		return n
+	}
+	p1 := points()
+	time.Sleep(3 * time.Second)
+	p2 := points()
+	t.Logf("waveform points: %d, 3 s later %d", p1, p2)
+	if p2 <= p1 {
+		t.Errorf("waveform did not grow over 3 s: %d then %d points", p1, p2)
+	}
+
+	// The air-trapping stream starts now, with the page open.
+	wg.Add(1)
+	go func() { defer wg.Done(); trap.run(ctx) }()
+	var r raise
+	select {
+	case r = <-raised:
+	case <-time.After(20 * time.Second):
+		t.Fatal("no air-trapping alarm raised within 20 s")
+	}
+	seen := waitJS(t, bctx, "alarm in the list",
+		`(() => { const r = document.querySelector('#streams tr[data-stream="icu-04"]'); return !!r && r.cells[7].textContent.includes("air-trapping"); })()`,
+		10*time.Second)
+	late := trap.breaths.Load() - r.breaths
+	t.Logf("air-trapping raised at %s (breath %d), on the page %v later, after %d more breaths",
+		r.at.Format("15:04:05.000"), r.breaths, seen.Sub(r.at).Round(time.Millisecond), late)
+	if late > 10 {
+		t.Errorf("alarm shown %d breaths after its event, want at most 10", late)
+	}
+
+	acknowledgeOnPage(t, bctx, trap)
+	checkEscaped(t, bctx)
+	waitJS(t, bctx, "acknowledgement in the timeline",
+		`Array.from(document.querySelectorAll('#timeline td')).some(td => td.textContent.includes("acknowledged by <b>tester</b>"))`, 5*time.Second)
+	time.Sleep(1500 * time.Millisecond) // a few more breaths on the trends for the picture
+	screenshot(t, bctx, "live-view.png")
+}
+
+// acknowledgeOnPage shows icu-04, acknowledges its air-trapping alarm with
+// the page's button as someone whose name is markup, and checks that the
+// Acker got the id the button carried and that the page shows the alarm
+// acknowledged.
+func acknowledgeOnPage(t *testing.T, bctx context.Context, trap *feeder) {
+	t.Helper()
+	const ackButton = chromedp.CSS(`#active tr[data-condition="air-trapping"] button.ack`)
+	if err := chromedp.Do(bctx,
+		chromedp.Click(chromedp.CSS(`#streams tr[data-stream="icu-04"] button.sid`)),
+		chromedp.WaitVisible(ackButton),
+		chromedp.SendKeys(chromedp.CSS(`#ack-by`), "<b>tester</b>"),
+	); err != nil {
+		t.Fatalf("select icu-04: %v", err)
+	}
+	attr, err := chromedp.Run(bctx, chromedp.AttributeValue(ackButton, "data-id"))
+	if err != nil || !attr.Exists {
+		t.Fatalf("acknowledge button: %v (id attribute found: %v)", err, attr.Exists)
+	}
+	id := attr.Value
+	if err := chromedp.Do(bctx, chromedp.Click(ackButton)); err != nil {
+		t.Fatalf("click acknowledge: %v", err)
+	}
+	waitJS(t, bctx, "acknowledged alarm",
+		`document.querySelector('#active tr[data-condition="air-trapping"][data-state="acknowledged"]') !== null`, 10*time.Second)
+	calls := trap.ackCalls()
+	if len(calls) != 1 || calls[0].Stream != "icu-04" || calls[0].ID != id || calls[0].By != "<b>tester</b>" {
+		t.Errorf("acknowledgements %+v, want one of %q by <b>tester</b>", calls, id)
+	}
+}
+
+// checkEscaped checks that text from the data stayed text: the stream id
+// made of markup ran no script and made no element.
+func checkEscaped(t *testing.T, bctx context.Context) {
+	t.Helper()
+	xss, err1 := chromedp.Run(bctx, chromedp.Evaluate[bool](`window.__xss === 1`))
+	markup, err2 := chromedp.Run(bctx, chromedp.Evaluate[bool](`document.querySelector('#timeline b, #active b, #streams b, #streams img') !== null`))
+	row, err3 := chromedp.Run(bctx, chromedp.Evaluate[string](`Array.from(document.querySelectorAll('#streams button.sid')).map(b => b.textContent).join("|")`))
+	if err := errors.Join(err1, err2, err3); err != nil {
+		t.Fatal(err)
+	}
+	if xss || markup || !strings.Contains(row, xssStream) {
+		t.Errorf("data rendered as markup: script ran %v, element from data %v, ids %q", xss, markup, row)
+	}
+}
+
+// screenshot saves the whole page: in the test's temporary directory, or
+// where $TRAPLINE_SHOT_DIR says (docs/img to refresh the documentation).
+func screenshot(t *testing.T, ctx context.Context, name string) {
+	t.Helper()
+	buf, err := chromedp.Run(ctx, chromedp.FullScreenshot(100))
+	if err != nil {
+		t.Fatalf("screenshot: %v", err)
+	}
+	img, err := png.Decode(bytes.NewReader(buf))
+	if err != nil {
+		t.Fatalf("screenshot is not a PNG: %v", err)
+	}
+	if b := img.Bounds(); b.Dx() < 1000 || b.Dy() < 1000 {
+		t.Errorf("screenshot %v, want at least 1000×1000", b)
+	}
+	dir := os.Getenv("TRAPLINE_SHOT_DIR")
+	if dir == "" {
+		dir = t.TempDir()
+	}
+	p := dir + "/" + name
+	if err := os.WriteFile(p, buf, 0o644); err != nil {
+		t.Fatalf("write %s: %v", p, err)
+	}
+	t.Logf("screenshot %s", p)
+}
+
+// TestBrowser200Streams: with 200 streams breathing, the page's update
+// work per animation frame (measured by the page around its render) stays
+// under 16 ms, one frame at 60 Hz.
+func TestBrowser200Streams(t *testing.T) {
+	bctx := browser(t, 60*time.Second)
+	rec := record(t, "hyperinflation", 90)
+	hub := NewHub(HubConfig{})
+	url := liveServer(t, hub, nil)
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan struct{})
+	go func() { defer close(done); replay(ctx, hub, rec, 200, 20*time.Millisecond) }()
+	defer func() { cancel(); <-done }()
+
+	if err := chromedp.Do(bctx, chromedp.Navigate(url)); err != nil {
+		t.Fatalf("open %s: %v", url, err)
+	}
+	waitJS(t, bctx, "200 streams listed", `window.traplineLive && document.querySelectorAll('#streams tbody tr').length === 200`, 15*time.Second)
+	time.Sleep(2 * time.Second)
+	// The figure is wall time around the page's work, so on a machine
+	// shared with other load a window can catch the renderer descheduled.
+	// Up to four windows of 4 s are measured, every one is logged, and
+	// the test passes when one keeps every frame under 16 ms. A window
+	// holds about 40 frames, among them updates of the shown stream's
+	// trends and alarms (a breath every 2.7 s).
+	best := math.Inf(1)
+	for w := 1; w <= 4 && best >= 16; w++ {
+		if _, err := chromedp.Run(bctx, chromedp.Evaluate[any](`traplineLive.resetFrameStats()`)); err != nil {
+			t.Fatal(err)
+		}
+		time.Sleep(4 * time.Second)
+		st, err := chromedp.Run(bctx, chromedp.Evaluate[frameStats](`traplineLive.frameStats()`))
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Logf("200 streams, window %d: %d frames in 4 s, update work per frame p50 %.1f ms, p95 %.1f ms, p99 %.1f ms, max %.1f ms",
+			w, st.Frames, st.P50, st.P95, st.P99, st.Max)
+		t.Logf("window %d, slowest frames: %+v", w, st.Worst)
+		if st.Frames < 20 {
+			t.Logf("window %d: only %d frames rendered in 4 s; the machine is starved, the window does not count", w, st.Frames)
+			continue
+		}
+		best = min(best, st.Max)
+	}
+	t.Logf("hub: %+v", hub.Stats())
+	if best >= 16 {
+		t.Errorf("update work reached 16 ms or more per frame in every window (best max %.1f ms)", best)
+	}
+	screenshot(t, bctx, "live-view-200.png")
+}
+
+// frameStats is what the page reports of its own update work.
+type frameStats struct {
+	Frames     int       `json:"frames"`
+	Max        float64   `json:"max"`
+	P50        float64   `json:"p50"`
+	P95        float64   `json:"p95"`
+	P99        float64   `json:"p99"`
+	SnapshotMs []float64 `json:"snapshotMs"`
+	Worst      []struct {
+		Ms    float64 `json:"ms"`
+		Parts string  `json:"parts"`
+	} `json:"worst"`
+}
+
+// replay plays a recording as n streams at real time, each shifted by a
+// different offset so that their breaths do not fall together, in steps
+// of every; the part of each stream before its offset goes in at once.
+func replay(ctx context.Context, hub *Hub, rec *recording, n int, every time.Duration) {
+	type cursor struct {
+		id         string
+		offS       float64
+		si, bi, ei int
+	}
+	cs := make([]cursor, n)
+	for i := range cs {
+		cs[i] = cursor{id: fmt.Sprintf("bed-%03d", i+1), offS: float64(i%97) * 0.61}
+	}
+	start := time.Now()
+	tk := time.NewTicker(every)
+	defer tk.Stop()
+	for {
+		nowS := time.Since(start).Seconds()
+		for i := range cs {
+			c := &cs[i]
+			upto := nowS + c.offS
+			j := c.si
+			for j < len(rec.samples) && rec.samples[j].TimeS <= upto {
+				j++
+			}
+			hub.Samples(c.id, rec.samples[c.si:j])
+			c.si = j
+			for ; c.bi < len(rec.breaths) && rec.breaths[c.bi].EndS <= upto; c.bi++ {
+				b := rec.breaths[c.bi]
+				b.Stream = c.id
+				hub.Breath(b)
+			}
+			for ; c.ei < len(rec.events) && rec.events[c.ei].TS <= upto; c.ei++ {
+				ev := rec.events[c.ei]
+				ev.Stream = c.id
+				ev.ID = c.id + strings.TrimPrefix(ev.ID, "icu-04")
+				if ev.Supersedes != "" {
+					ev.Supersedes = c.id + strings.TrimPrefix(ev.Supersedes, "icu-04")
+				}
+				hub.Alert(ev)
+			}
+		}
+		select {
+		case <-ctx.Done():
+			return
+		case <-tk.C:
+		}
+	}
+}
