@@ -92,13 +92,13 @@ const itemOverhead = 64
 type Writer struct {
 	opts Options
 
-	mu       sync.Mutex
-	queue    []item
-	queued   int
-	closed   bool
-	ovRecs   atomic.Uint64 // records dropped because the buffer was full
-	ovBytes  atomic.Uint64 // and their payload bytes
-	ovSeen   uint64        // ovRecs at the last round; owned by the goroutine
+	mu      sync.Mutex
+	queue   []item
+	queued  int
+	closed  bool
+	ovRecs  atomic.Uint64 // records dropped because the buffer was full
+	ovBytes atomic.Uint64 // and their payload bytes
+	ovSeen  uint64        // ovRecs at the last round; owned by the goroutine
 
 	wake chan struct{}
 	done chan struct{}
