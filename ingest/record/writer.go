@@ -8,6 +8,8 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"trapline/ingest"
 )
 
 // File is what the writer needs of an open file. Tests put a small
@@ -268,5 +270,18 @@ func (w *Writer) publish() {
 	}
 	if w.opts.OnState != nil && (prev != nil || s.Degraded) {
 		w.opts.OnState(w.Stats())
+	}
+}
+
+// Tap records what a live source reads; pass it as ingest.Options.Tap.
+func (w *Writer) Tap(src ingest.TapSource, k ingest.TapKind, p []byte) {
+	s := Source{Stream: src.Stream, Format: src.Format, Columns: src.Columns, RateHz: src.RateHz}
+	switch k {
+	case ingest.TapReset:
+		w.Reset(s)
+	case ingest.TapEnd:
+		w.End(s)
+	default:
+		w.Write(s, p)
 	}
 }
