@@ -190,6 +190,16 @@ func TestBadConfigs(t *testing.T) {
 		want []string
 	}{
 		{
+			name: "a value that does not decode gives one message, not one more for the key that names it",
+			yaml: "detectors:\n  air_trapping:\n    n: four\n",
+			want: []string{`detectors.air_trapping.n: want a whole number, got "four"`},
+		},
+		{
+			name: "a misspelt key gives one message, not one more for the key left unset",
+			yaml: "streams:\n  - id: bed-1\n    sourcee: stdin://\n",
+			want: []string{`streams[0].sourcee: unknown key (did you mean "source"?)`},
+		},
+		{
 			name: "every problem at once, by full key path",
 			yaml: string(mustRead(t, "testdata/bad.yaml")),
 			want: []string{
@@ -207,7 +217,6 @@ func TestBadConfigs(t *testing.T) {
 				`nats.alerts_stream.duplicates: 2h is longer than max_age 1h (JetStream requires duplicates <= max_age)`,
 				`spool.max_events: 0 is out of range (want 1 to 10000000)`,
 				`streams[1].id: "bed-07" is already the id of streams[0]`,
-				`streams[1].source: empty source (want one of serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].id: "bad id" is not a valid stream id (want 1 to 32 letters, digits, '-' or '_')`,
 				`streams[2].source: unknown scheme "tpc" (want serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].columns: columns "pressure[psi],flow[L/min]": pressure unit "psi": want cmH2O, hPa, mbar, kPa, mmHg`,

@@ -154,7 +154,7 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, laye
 	// A value that did not decode is not validated again.
 	var vp problems
 	c.validate(&vp)
-	p.list = append(p.list, uncovered(vp.list, reported)...)
+	p.list = append(p.list, uncovered(dropConsequences(vp.list, p.list), reported)...)
 	for _, e := range p.list {
 		var fe *FieldError
 		if errors.As(e, &fe) && fe.Key != "" {
