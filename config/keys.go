@@ -237,7 +237,7 @@ func suggest(key string, fields []field) string {
 	if best != "" {
 		return fmt.Sprintf(" (did you mean %q?)", best)
 	}
-	if len(names) <= 12 {
+	if len(names) <= 16 {
 		return " (want one of " + strings.Join(names, ", ") + ")"
 	}
 	return ""
