@@ -29,6 +29,8 @@ type Config struct {
 	NATS NATS `mapstructure:"nats"`
 	// Spool keeps alerts on disk while NATS is unreachable.
 	Spool Spool `mapstructure:"spool"`
+	// Recording keeps every stream's raw bytes (docs/recording.md).
+	Recording Recording `mapstructure:"recording"`
 	// Streams are the signals to read, one per patient or bench channel.
 	Streams []Stream `mapstructure:"streams"`
 	// Analysis holds the thresholds of breath segmentation and of the
@@ -211,6 +213,7 @@ func Default() *Config {
 			PublishTimeout: 2 * time.Second,
 		},
 		Spool:     Spool{MaxEvents: alerts.DefaultSpoolMaxEvents},
+		Recording: defaultRecording(),
 		Analysis:  analyze.DefaultConfig(),
 		Detectors: analyze.DefaultDetectorConfig(),
 		Alarms:    alerts.DefaultLifecycleConfig(),

@@ -72,14 +72,19 @@ func TestExampleNamesEveryKey(t *testing.T) {
 	for _, k := range v.AllKeys() {
 		inFile[k] = true
 	}
-	// A key without a default (an optional per-condition override) is
-	// documented by its section, which must be there.
+	// A key without a default value (an optional per-condition override)
+	// is documented by its section, which must be there; a key with one
+	// must be written out.
+	optional := map[string]bool{}
+	walkLeaves(reflect.ValueOf(Default()).Elem(), "", func(key string, val reflect.Value) {
+		optional[key] = !val.IsValid() || val.Kind() == reflect.Pointer && val.IsNil()
+	})
 	present := func(key string) bool {
 		if inFile[key] {
 			return true
 		}
 		parent := key[:max(strings.LastIndex(key, "."), 0)]
-		return v.IsSet(parent)
+		return optional[key] && v.IsSet(parent)
 	}
 	for _, k := range Keys() {
 		if !present(k) {
@@ -185,6 +190,16 @@ func TestBadConfigs(t *testing.T) {
 		want []string
 	}{
 		{
+			name: "a value that does not decode gives one message, not one more for the key that names it",
+			yaml: "detectors:\n  air_trapping:\n    n: four\n",
+			want: []string{`detectors.air_trapping.n: want a whole number, got "four"`},
+		},
+		{
+			name: "a misspelt key gives one message, not one more for the key left unset",
+			yaml: "streams:\n  - id: bed-1\n    sourcee: stdin://\n",
+			want: []string{`streams[0].sourcee: unknown key (did you mean "source"?)`},
+		},
+		{
 			name: "every problem at once, by full key path",
 			yaml: string(mustRead(t, "testdata/bad.yaml")),
 			want: []string{
@@ -202,7 +217,6 @@ func TestBadConfigs(t *testing.T) {
 				`nats.alerts_stream.duplicates: 2h is longer than max_age 1h (JetStream requires duplicates <= max_age)`,
 				`spool.max_events: 0 is out of range (want 1 to 10000000)`,
 				`streams[1].id: "bed-07" is already the id of streams[0]`,
-				`streams[1].source: empty source (want one of serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].id: "bad id" is not a valid stream id (want 1 to 32 letters, digits, '-' or '_')`,
 				`streams[2].source: unknown scheme "tpc" (want serial, tcp, tcp-listen, udp, file, stdin, nats)`,
 				`streams[2].columns: columns "pressure[psi],flow[L/min]": pressure unit "psi": want cmH2O, hPa, mbar, kPa, mmHg`,
@@ -217,7 +231,7 @@ func TestBadConfigs(t *testing.T) {
 				"detectors: {limits: {high_peak_pressure: {limit: 40}}}\nalarms: {conditions: {air_traping: {n: 1}}}\n",
 			want: []string{
 				`alarms.conditions.air_traping: unknown key (did you mean "air_trapping"?)`,
-				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, nats, spool, streams, analysis, detectors, alarms, role, scaleout)`,
+				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, nats, spool, recording, streams, analysis, detectors, alarms, role, scaleout)`,
 				`detectors.limits.high_peak_pressure.limit: unknown key (want one of enabled, limit_cmh2o, high_margin_cmh2o, hysteresis_cmh2o)`,
 				`nats.embedded.prot: unknown key (did you mean "port"?)`,
 				`nats.embeded: unknown key (did you mean "embedded"?)`,

@@ -8,6 +8,8 @@ import (
 	"strconv"
 	"strings"
 	"time"
+
+	"trapline/config/keyhint"
 )
 
 // EnvPrefix starts every environment variable that sets a key.
@@ -235,36 +237,14 @@ func suggest(key string, fields []field) string {
 	if best != "" {
 		return fmt.Sprintf(" (did you mean %q?)", best)
 	}
-	if len(names) <= 12 {
+	if len(names) <= 16 {
 		return " (want one of " + strings.Join(names, ", ") + ")"
 	}
 	return ""
 }
 
-// editDistance is the Levenshtein distance between a and b (Levenshtein,
-// "Binary codes capable of correcting deletions, insertions and reversals",
-// 1966), computed with one row of the usual dynamic programme.
-func editDistance(a, b string) int {
-	ra, rb := []rune(a), []rune(b)
-	row := make([]int, len(rb)+1)
-	for j := range row {
-		row[j] = j
-	}
-	for i := 1; i <= len(ra); i++ {
-		prev := row[0]
-		row[0] = i
-		for j := 1; j <= len(rb); j++ {
-			cur := row[j]
-			cost := 1
-			if ra[i-1] == rb[j-1] {
-				cost = 0
-			}
-			row[j] = min(row[j]+1, row[j-1]+1, prev+cost)
-			prev = cur
-		}
-	}
-	return row[len(rb)]
-}
+// editDistance is the Levenshtein distance between a and b (keyhint).
+func editDistance(a, b string) int { return keyhint.Distance(a, b) }
 
 // describeType names what a value of t looks like in a config file.
 func describeType(t reflect.Type) string {

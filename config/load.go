@@ -30,17 +30,23 @@ var formats = map[string]string{".yaml": "yaml", ".yml": "yaml", ".toml": "toml"
 // read or parsed, unknown keys at any depth (streams[1].sourcee), values of
 // the wrong type, and everything Validate finds.
 func Load(path string, flags *pflag.FlagSet) (*Config, error) {
+	c, _, err := loadFile(path, flags)
+	return c, err
+}
+
+// loadFile is Load that also returns the layers the values came from.
+func loadFile(path string, flags *pflag.FlagSet) (*Config, layers, error) {
 	if path == "" {
 		return load(nil, "", "", flags)
 	}
 	format, ok := formats[strings.ToLower(filepath.Ext(path))]
 	if !ok {
-		return nil, &Errors{File: path, Problems: []error{&FieldError{
+		return nil, layers{}, &Errors{File: path, Problems: []error{&FieldError{
 			Msg: fmt.Sprintf("unknown file type %q (want .yaml, .yml, .toml or .json)", filepath.Ext(path))}}}
 	}
 	data, err := os.ReadFile(path)
 	if err != nil {
-		return nil, &Errors{File: path, Problems: []error{&FieldError{Msg: fmt.Sprintf("read config: %v", err)}}}
+		return nil, layers{}, &Errors{File: path, Problems: []error{&FieldError{Msg: fmt.Sprintf("read config: %v", err)}}}
 	}
 	return load(data, format, path, flags)
 }
@@ -54,11 +60,19 @@ func LoadBytes(data []byte, format string, flags *pflag.FlagSet) (*Config, error
 		return nil, &Errors{Problems: []error{&FieldError{
 			Msg: fmt.Sprintf("unknown format %q (want yaml, toml or json)", format)}}}
 	}
-	return load(data, format, "", flags)
+	c, _, err := load(data, format, "", flags)
+	return c, err
+}
+
+// layers is what load knows of where values came from: the keys of the
+// file and the keys set by flags (with the flag's name).
+type layers struct {
+	file     map[string]any
+	fromFlag map[string]string
 }
 
 // load does the work of Load: parse, check keys, layer, decode, validate.
-func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, error) {
+func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, layers, error) {
 	var p problems
 
 	raw := map[string]any{}
@@ -67,7 +81,7 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 		fv.SetConfigType(format)
 		if err := fv.ReadConfig(bytes.NewReader(data)); err != nil {
 			p.addf("", "parse %s: %v", format, unwrapParse(err))
-			return nil, p.err(file)
+			return nil, layers{}, p.err(file)
 		}
 		raw = dropNulls(fv.AllSettings())
 	}
@@ -89,7 +103,7 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 	})
 	if err := v.MergeConfigMap(raw); err != nil {
 		p.addf("", "merge %s: %v", format, err)
-		return nil, p.err(file)
+		return nil, layers{}, p.err(file)
 	}
 	v.AllowEmptyEnv(true)
 	for _, key := range leaves {
@@ -140,7 +154,7 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 	// A value that did not decode is not validated again.
 	var vp problems
 	c.validate(&vp)
-	p.list = append(p.list, uncovered(vp.list, reported)...)
+	p.list = append(p.list, uncovered(dropConsequences(vp.list, p.list), reported)...)
 	for _, e := range p.list {
 		var fe *FieldError
 		if errors.As(e, &fe) && fe.Key != "" {
@@ -148,9 +162,9 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, erro
 		}
 	}
 	if err := p.err(file); err != nil {
-		return nil, err
+		return nil, layers{}, err
 	}
-	return &c, nil
+	return &c, layers{file: raw, fromFlag: fromFlag}, nil
 }
 
 // keyType returns the type of the value at a dotted key below t, or nil.

@@ -54,6 +54,9 @@ type Options struct {
 	// Silence is how long a live source may read nothing before it reports
 	// StatusDisconnected with ErrNoData; 0 means 3 s, negative disables it.
 	Silence time.Duration
+	// Tap, when not nil, receives every byte read before it is decoded,
+	// and every reset and end of input (for recording).
+	Tap Tap
 }
 
 // Open parses a source URL (see ParseURL) and returns the source. It checks
@@ -320,6 +323,7 @@ func (c *conn) write(p []byte) {
 		c.silent = false
 		c.status(StatusConnected, nil)
 	}
+	c.tap(TapData, p)
 	c.s.mu.Lock()
 	defer c.s.mu.Unlock()
 	_, _ = c.dec.Write(p)
@@ -329,6 +333,7 @@ func (c *conn) write(p []byte) {
 
 // end decodes what is left at the end of the input.
 func (c *conn) end() {
+	c.tap(TapEnd, nil)
 	c.s.mu.Lock()
 	defer c.s.mu.Unlock()
 	c.dec.Flush()
@@ -338,6 +343,7 @@ func (c *conn) end() {
 
 // reset drops a partial line or frame when the link went down.
 func (c *conn) reset() {
+	c.tap(TapReset, nil)
 	c.s.mu.Lock()
 	defer c.s.mu.Unlock()
 	c.dec.Reset()

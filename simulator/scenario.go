@@ -144,7 +144,7 @@ func ParseScenario(data []byte) (Scenario, error) {
 	dec := yaml.NewDecoder(bytes.NewReader(data))
 	dec.KnownFields(true)
 	if err := dec.Decode(&sc); err != nil {
-		return Scenario{}, fmt.Errorf("decode scenario: %w", err)
+		return Scenario{}, fmt.Errorf("decode scenario: %w", ExplainYAML(err, data, reflect.TypeFor[Scenario]()))
 	}
 	return sc, nil
 }

@@ -7,6 +7,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"reflect"
 	"strings"
 
 	"go.yaml.in/yaml/v3"
@@ -239,7 +240,7 @@ func ParseGrid(data []byte) (Grid, error) {
 	dec.KnownFields(true)
 	// An empty file (io.EOF) means the default grid.
 	if err := dec.Decode(&g); err != nil && !errors.Is(err, io.EOF) {
-		return Grid{}, fmt.Errorf("decode grid: %w", err)
+		return Grid{}, fmt.Errorf("decode grid: %w", simulator.ExplainYAML(err, data, reflect.TypeFor[Grid]()))
 	}
 	return g, nil
 }
