@@ -80,4 +80,3 @@ func firstDiffLine(a, b []byte) int {
 	}
 	return line
 }
-
