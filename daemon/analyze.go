@@ -16,6 +16,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
 	"trapline/ingest"
@@ -83,9 +84,7 @@ type offline struct {
 	lcfg      alerts.LifecycleConfig
 	start     time.Time
 	alerts    bool
-	pipelines map[string]*pipeline
-	one       [1]ingest.Sample
-	emit      emitter
+	pipelines map[string]*pipeline.Pipeline
 	nAlerts   int
 	keptAlert []alerts.Event // for --summary
 	out       *bufio.Writer
@@ -99,9 +98,8 @@ type offline struct {
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
-		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline{},
+		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
 		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
-	o.emit = emitter{breath: o.breath, alert: o.alert}
 	return o
 }
 
@@ -110,15 +108,14 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 	o.samples++
 	pl := o.pipelines[stream]
 	if pl == nil {
-		pl = newOfflinePipeline(stream, o.start, o.cfg, o.dcfg, o.lcfg)
+		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
 		o.pipelines[stream] = pl
 	}
-	o.one[0] = s
-	pl.process(o.one[:], o.emit)
+	pl.PushOne(s, o)
 }
 
-// alert writes one alert event as a line of NDJSON.
-func (o *offline) alert(e *alerts.Event) {
+// Alert writes one alert event as a line of NDJSON.
+func (o *offline) Alert(e *alerts.Event) {
 	o.nAlerts++
 	if !o.alerts || o.writeErr != nil {
 		return
@@ -136,8 +133,8 @@ func (o *offline) alert(e *alerts.Event) {
 	_, o.writeErr = o.out.Write(o.line)
 }
 
-// breath handles one completed breath.
-func (o *offline) breath(b *analyze.Breath) {
+// Breath handles one completed breath.
+func (o *offline) Breath(b *analyze.Breath) {
 	o.breaths++
 	if o.summary {
 		o.kept = append(o.kept, *b)

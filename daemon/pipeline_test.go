@@ -7,6 +7,7 @@ import (
 	"strings"
 	"testing"
 	"time"
+	"trapline/alerts/pipeline"
 
 	"trapline/alerts"
 	"trapline/analyze"
@@ -34,10 +35,9 @@ func runSim(t *testing.T, sc simulator.Scenario, dcfg analyze.DetectorConfig, lc
 	if err != nil {
 		t.Fatal(err)
 	}
-	p := newPipeline(sc.Stream, analyze.DefaultConfig(), dcfg, lcfg)
 	clock := simEpoch
-	p.now = func() time.Time { return clock }
-	p.created = simEpoch
+	p := pipeline.New(pipeline.Options{Stream: sc.Stream, Analysis: analyze.DefaultConfig(), Detectors: dcfg,
+		Alarms: lcfg, Now: func() time.Time { return clock }})
 	at := func(s float64) time.Time { return simEpoch.Add(time.Duration(s * float64(time.Second))) }
 	var r simRun
 	collect := func(out stageOutput) {
@@ -343,9 +343,8 @@ func BenchmarkPipelineSamples(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	p := newPipeline("bench", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
 	now := simEpoch
-	p.now = func() time.Time { return now }
+	p := pipeline.New(defaultPipelineOptions("bench", func() time.Time { return now }))
 	const batch = 10
 	b.ReportAllocs()
 	b.SetBytes(0)
@@ -420,12 +419,11 @@ func TestPipelineSurvivesHostileSamples(t *testing.T) {
 	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 0, -1e308, 1e308, 5e-324, 1, -1}
 	rng := rand.New(rand.NewPCG(5, 6))
 	for _, offline := range []bool{false, true} {
-		var p *pipeline
+		var p *pipeline.Pipeline
 		if offline {
-			p = newOfflinePipeline("bed-x", simEpoch, analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
+			p = pipeline.NewOffline(defaultPipelineOptions("bed-x", nil), simEpoch)
 		} else {
-			p = newPipeline("bed-x", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
-			p.now = func() time.Time { return simEpoch }
+			p = pipeline.New(defaultPipelineOptions("bed-x", func() time.Time { return simEpoch }))
 		}
 		sc := simulator.Steady{RCmH2OSPerL: 25, CMLPerCmH2O: 60, VtML: 600, FlowLPM: 45, RateBPM: 24, PEEPCmH2O: 5,
 			DurationS: 300, SampleRateHz: 50}.Scenario()
@@ -472,4 +470,11 @@ func TestPipelineSurvivesHostileSamples(t *testing.T) {
 		}
 		t.Logf("offline %v: %d alert events, all encodable", offline, events)
 	}
+}
+
+// defaultPipelineOptions are the shipped configurations for stream, on the
+// wall clock now (nil: time.Now).
+func defaultPipelineOptions(stream string, now func() time.Time) pipeline.Options {
+	return pipeline.Options{Stream: stream, Analysis: analyze.DefaultConfig(), Detectors: analyze.DefaultDetectorConfig(),
+		Alarms: alerts.DefaultLifecycleConfig(), Now: now}
 }

@@ -13,15 +13,13 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 )
 
 // stageOutput is what one step of a stream's analysis produced.
-type stageOutput struct {
-	Breaths []analyze.Breath
-	Alerts  []alerts.Event
-}
+type stageOutput = pipeline.Output
 
 // streamPipeline is the per-stream analysis as the stream runner drives it:
 // samples and status changes in, breaths and alert events out. It is used

@@ -13,6 +13,7 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
 	"trapline/ingest"
@@ -241,9 +242,8 @@ func (d *daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 			if err != nil {
 				return nil, nil, err
 			}
-			p := newPipeline(sc.ID, cfg.Analysis, cfg.Detectors, cfg.Alarms)
-			p.stats = src.Stats
-			return src, p, nil
+			return src, pipeline.New(pipeline.Options{Stream: sc.ID, Analysis: cfg.Analysis,
+				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats}), nil
 		},
 		TickEvery: d.opts.TickEvery,
 	}, nil

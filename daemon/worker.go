@@ -18,6 +18,7 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
 	"trapline/ingest"
@@ -350,7 +351,7 @@ func (w *worker) getJSON(ctx context.Context, key string, v any) (uint64, error)
 type streamRun struct {
 	id    string
 	key   string
-	pl    *pipeline
+	pl    *pipeline.Pipeline
 	dec   *ingest.BinaryDecoder
 	buf   []ingest.Sample
 	wall  time.Time // store time of the message being analysed
@@ -520,11 +521,11 @@ func (pt *partition) newStream(id string) (*streamRun, error) {
 	cfg := pt.w.cfg
 	sr := &streamRun{id: id, key: "s." + strconv.Itoa(pt.p) + "." + id, lastWarmBreath: -1, lastBreath: -1}
 	sr.rec.BreathSeq = -1
-	sr.pl = newPipeline(id, cfg.Analysis, cfg.Detectors, cfg.Alarms)
-	sr.pl.now = func() time.Time { return sr.wall }
-	// Until the hand-over point the lifecycle's events are thrown away: the
+	// The pipeline's wall clock is the store time of the message analysed.
+	// Until the hand-over point its alert events are thrown away: the
 	// previous owner has published them.
-	sr.pl.judge.SetLifecycle(alerts.NewLifecycle(id, cfg.Alarms))
+	sr.pl = pipeline.New(pipeline.Options{Stream: id, Analysis: cfg.Analysis, Detectors: cfg.Detectors,
+		Alarms: cfg.Alarms, Now: func() time.Time { return sr.wall }})
 	sr.warm, sr.until = true, pt.rec.Seq
 	dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: id}, func(_ string, s ingest.Sample) {
 		sr.buf = append(sr.buf, s)
@@ -562,15 +563,13 @@ func (pt *partition) ack(ctx context.Context, a streamAck) error {
 func (pt *partition) goLive(sr *streamRun) error {
 	sr.warm = false
 	if sr.had {
-		l, err := alerts.RestoreLifecycle(sr.id, pt.w.cfg.Alarms, sr.rec.Life)
-		if err != nil {
+		if err := sr.pl.RestoreAlarms(sr.rec.Life); err != nil {
 			return err
 		}
-		sr.pl.judge.SetLifecycle(l)
 		sr.off = sr.rec.BreathSeq + 1 - (sr.lastWarmBreath + 1)
 		sr.lastBreath = sr.rec.BreathSeq
 	} else {
-		sr.pl.judge.SetLifecycle(alerts.NewLifecycle(sr.id, pt.w.cfg.Alarms))
+		sr.pl.ResetAlarms()
 	}
 	return nil
 }
@@ -606,35 +605,42 @@ func (pt *partition) message(ctx context.Context, m jetstream.Msg) error {
 	}
 	sr.seq = seq
 	if sr.warm {
-		sr.pl.process(sr.buf, emitter{
-			breath: func(b *analyze.Breath) { sr.lastWarmBreath = b.Seq },
-			alert:  func(*alerts.Event) {},
-		})
+		sr.pl.Push(sr.buf, warmSink{sr})
 		return nil
 	}
 	sr.dirty = true
 	var evs []alerts.Event
-	sr.pl.process(sr.buf, pt.liveEmitter(sr, &evs))
+	sr.pl.Push(sr.buf, &liveSink{pt: pt, sr: sr, evs: &evs})
 	return pt.deliver(ctx, sr, evs)
 }
 
-// liveEmitter publishes breaths (renumbered) and gathers alert events.
-func (pt *partition) liveEmitter(sr *streamRun, evs *[]alerts.Event) emitter {
-	return emitter{
-		breath: func(b *analyze.Breath) {
-			b.Seq += sr.off
-			sr.lastBreath = b.Seq
-			pt.w.bull.Breath(b)
-			pt.w.m.breaths.WithLabelValues(sr.id).Inc()
-		},
-		alert: func(e *alerts.Event) {
-			if e.BreathSeq != nil {
-				v := *e.BreathSeq + sr.off
-				e.BreathSeq = &v
-			}
-			*evs = append(*evs, *e)
-		},
+// warmSink notes the breath numbers of the warm-up and throws its alert
+// events away.
+type warmSink struct{ sr *streamRun }
+
+func (w warmSink) Breath(b *analyze.Breath) { w.sr.lastWarmBreath = b.Seq }
+func (warmSink) Alert(*alerts.Event)        {}
+
+// liveSink publishes breaths (renumbered) and gathers alert events.
+type liveSink struct {
+	pt  *partition
+	sr  *streamRun
+	evs *[]alerts.Event
+}
+
+func (l *liveSink) Breath(b *analyze.Breath) {
+	b.Seq += l.sr.off
+	l.sr.lastBreath = b.Seq
+	l.pt.w.bull.Breath(b)
+	l.pt.w.m.breaths.WithLabelValues(l.sr.id).Inc()
+}
+
+func (l *liveSink) Alert(e *alerts.Event) {
+	if e.BreathSeq != nil {
+		v := *e.BreathSeq + l.sr.off
+		e.BreathSeq = &v
 	}
+	*l.evs = append(*l.evs, *e)
 }
 
 // deliver publishes alert events, each until JetStream acknowledges it,
@@ -685,7 +691,7 @@ func (w *worker) publishAlert(ctx context.Context, ev *alerts.Event) error {
 
 // saveStream writes a stream's checkpoint, fenced by its revision.
 func (pt *partition) saveStream(ctx context.Context, sr *streamRun) error {
-	rec := streamCheckpoint{Owner: pt.w.id, Seq: sr.seq, Time: sr.wall, BreathSeq: sr.lastBreath, Life: sr.pl.judge.Lifecycle().Snapshot()}
+	rec := streamCheckpoint{Owner: pt.w.id, Seq: sr.seq, Time: sr.wall, BreathSeq: sr.lastBreath, Life: sr.pl.Alarms()}
 	rev, err := pt.w.fencedPut(ctx, sr.key, rec, sr.rev)
 	if err != nil {
 		return err
@@ -707,7 +713,7 @@ func (pt *partition) tick(ctx context.Context, now time.Time) error {
 			continue
 		}
 		evs = evs[:0]
-		sr.pl.tick(now, pt.liveEmitter(sr, &evs))
+		sr.pl.TickTo(now, &liveSink{pt: pt, sr: sr, evs: &evs})
 		if err := pt.deliver(ctx, sr, evs); err != nil {
 			return err
 		}
