@@ -215,6 +215,14 @@ func (p *Pipeline) TickTo(now time.Time, sink Sink) {
 	p.judge.Tick(nowS, now, sink.Alert)
 }
 
+// Finish makes the ticks due up to stream time tS, the end of a
+// recording; only an offline pipeline makes up ticks.
+func (p *Pipeline) Finish(tS float64, sink Sink) {
+	if p.offline() {
+		p.clock.Until(tS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+	}
+}
+
 // Ack acknowledges the alarm with id on behalf of by (may be empty).
 func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
