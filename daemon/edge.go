@@ -6,6 +6,7 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
@@ -39,13 +40,13 @@ const edgeMaxPending = 65536
 // runEdge runs the edge role until ctx is cancelled.
 func (d *daemon) runEdge(ctx context.Context) error {
 	cfg := d.cfg
-	b, err := openBus(cfg, d.log)
+	b, err := bus.Open(cfg, d.log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
 	e := &edge{cfg: cfg, log: d.log.With().Str("role", "edge").Logger(), names: newScaleNames(cfg.NATS.SubjectPrefix)}
-	js, err := jetstream.New(b.nc, jetstream.WithPublishAsyncMaxPending(edgeMaxPending),
+	js, err := jetstream.New(b.Conn, jetstream.WithPublishAsyncMaxPending(edgeMaxPending),
 		jetstream.WithPublishAsyncErrHandler(func(_ jetstream.JetStream, m *nats.Msg, err error) {
 			if e.failed.Add(1) == 1 {
 				e.log.Warn().Err(err).Str("subject", m.Subject).Msg("samples not stored by JetStream (warned once)")
@@ -55,16 +56,16 @@ func (d *daemon) runEdge(ctx context.Context) error {
 		return fmt.Errorf("jetstream: %w", err)
 	}
 	e.js = js
-	if err := ensureSamplesStream(ctx, js, e.names, &cfg.ScaleOut, scaleReplicas(b.nc, &cfg.ScaleOut), e.log); err != nil {
+	if err := ensureSamplesStream(ctx, js, e.names, &cfg.ScaleOut, scaleReplicas(b.Conn, &cfg.ScaleOut), e.log); err != nil {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	g, gctx := errgroup.WithContext(ctx)
-	if err := d.startRoleHTTP(gctx, g, b.nc, func() uint64 { return 0 }); err != nil {
+	if err := d.startRoleHTTP(gctx, g, b.Conn, func() uint64 { return 0 }); err != nil {
 		return err
 	}
 	for _, sc := range cfg.Streams {
 		log := e.log.With().Str("stream", sc.ID).Logger()
-		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.nc}
+		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.Conn}
 		if _, err := ingest.Open(sc.Source, opts); err != nil {
 			return &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 		}
@@ -85,9 +86,9 @@ func (d *daemon) runEdge(ctx context.Context) error {
 			}, nil, nil)
 		})
 	}
-	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.url).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
+	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.URL).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(runInfo{NATSURL: b.url})
+		d.opts.Ready(runInfo{NATSURL: b.URL})
 	}
 	err = g.Wait()
 	// Wait (bounded) for the acknowledgements of what was sent.

@@ -8,6 +8,7 @@ import (
 	"io"
 	"strings"
 	"time"
+	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
@@ -157,12 +158,12 @@ func (d *daemon) Run(ctx context.Context) error {
 		}()
 	}
 
-	b, err := openBus(cfg, d.log)
+	b, err := bus.Open(cfg, d.log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
-	d.nc = b.nc
+	d.nc = b.Conn
 
 	del, err := openDelivery(cfg, b, d.log)
 	if err != nil {
@@ -172,10 +173,10 @@ func (d *daemon) Run(ctx context.Context) error {
 	// is sent at the next start.
 	defer del.pub.Close()
 	d.del = del
-	d.m.setDelivery(del.pub.Depth, b.nc.IsConnected, del.bull.Dropped)
+	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
 	d.ready.set("nats", func() error {
-		if !b.nc.IsConnected() {
-			return fmt.Errorf("not connected (%s)", b.nc.Status())
+		if !b.Conn.IsConnected() {
+			return fmt.Errorf("not connected (%s)", b.Conn.Status())
 		}
 		return nil
 	})
@@ -192,7 +193,7 @@ func (d *daemon) Run(ctx context.Context) error {
 		d.ready.set("stream "+sc.ID, s.ready)
 	}
 
-	ackSub, err := b.nc.Subscribe(d.subj.All(alerts.KindAck), d.handleAck)
+	ackSub, err := b.Conn.Subscribe(d.subj.All(alerts.KindAck), d.handleAck)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
 	}
@@ -204,7 +205,7 @@ func (d *daemon) Run(ctx context.Context) error {
 	pubCtx, stopPublishers := context.WithCancel(context.WithoutCancel(ctx))
 	defer stopPublishers()
 	g.Go(func() error { return del.pub.Run(pubCtx) })
-	g.Go(func() error { return del.ensureStreams(gctx, b.nc) })
+	g.Go(func() error { return del.ensureStreams(gctx, b.Conn) })
 	g.Go(func() error { return del.bull.Run(pubCtx) })
 	g.Go(func() error {
 		defer stopPublishers()
@@ -221,12 +222,12 @@ func (d *daemon) Run(ctx context.Context) error {
 		g.Go(func() error { return httpSrv.Run(gctx) })
 	}
 
-	info := runInfo{NATSURL: b.url}
+	info := runInfo{NATSURL: b.URL}
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.url).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.embedded()).Msg("trapline running")
+	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
+		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
 	if d.opts.Ready != nil {
 		d.opts.Ready(info)
 	}

@@ -11,6 +11,7 @@ import (
 	"strings"
 	"sync"
 	"time"
+	"trapline/daemon/bus"
 
 	"github.com/mattn/go-isatty"
 	"github.com/nats-io/nats.go"
@@ -87,7 +88,7 @@ func (a *app) watchCommand() *cobra.Command {
 			// The alert replay needs JetStream: wait for the server rather
 			// than fall back to live alerts only.
 			if !nc.IsConnected() {
-				a.log.Warn().Str("url", redactURL(url)).Msg("waiting for NATS")
+				a.log.Warn().Str("url", bus.RedactURL(url)).Msg("waiting for NATS")
 				for !nc.IsConnected() {
 					select {
 					case <-ctx.Done():

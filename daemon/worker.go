@@ -11,6 +11,7 @@ import (
 	"strings"
 	"sync"
 	"time"
+	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
@@ -48,7 +49,7 @@ type worker struct {
 	state    jetstream.KeyValue
 	subj     alerts.Subjects
 	alertsJS string
-	bull     *bulletin
+	bull     *bus.Bulletin
 	tick     time.Duration
 	m        *metrics
 	// routes maps a stream id to the acknowledgement queue of the
@@ -70,12 +71,12 @@ var errFenced = errors.New("fenced: another worker owns the partition now")
 func (d *daemon) runWorker(ctx context.Context) error {
 	cfg := d.cfg
 	so := &cfg.ScaleOut
-	b, err := openBus(cfg, d.log)
+	b, err := bus.Open(cfg, d.log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
-	js, err := jetstream.New(b.nc)
+	js, err := jetstream.New(b.Conn)
 	if err != nil {
 		return fmt.Errorf("jetstream: %w", err)
 	}
@@ -91,11 +92,11 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	if w.tick <= 0 {
 		w.tick = time.Second
 	}
-	reps := scaleReplicas(b.nc, so)
+	reps := scaleReplicas(b.Conn, so)
 	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
 		return fmt.Errorf("samples stream: %w", err)
 	}
-	sc := streamsConfig(&cfg.NATS)
+	sc := bus.StreamsConfig(&cfg.NATS)
 	w.alertsJS = sc.WithDefaults().Alerts
 	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
 		return alerts.EnsureStreams(ctx, js, sc)
@@ -118,16 +119,16 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	}); err != nil {
 		return fmt.Errorf("state bucket %s: %w", w.names.state, err)
 	}
-	w.bull = newBulletin(b.nc, cfg.NATS.SubjectPrefix, 0, w.log)
+	w.bull = bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, w.log)
 	mem := newMembers(mkv, id, so.Heartbeat, so.MemberTTL, w.log)
-	ackSub, err := b.nc.Subscribe(w.subj.All(alerts.KindAck), w.handleAck)
+	ackSub, err := b.Conn.Subscribe(w.subj.All(alerts.KindAck), w.handleAck)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", w.subj.All(alerts.KindAck), err)
 	}
 	defer func() { _ = ackSub.Unsubscribe() }()
 
 	g, gctx := errgroup.WithContext(ctx)
-	if err := d.startRoleHTTP(gctx, g, b.nc, w.bull.Dropped); err != nil {
+	if err := d.startRoleHTTP(gctx, g, b.Conn, w.bull.Dropped); err != nil {
 		return err
 	}
 	d.ready.set("membership", func() error {
@@ -144,9 +145,9 @@ func (d *daemon) runWorker(ctx context.Context) error {
 		defer stopBulletin()
 		return w.assign(gctx, mem.changed)
 	})
-	w.log.Info().Int("partitions", so.Partitions).Int("replicas", reps).Str("nats", b.url).Msg("trapline worker running")
+	w.log.Info().Int("partitions", so.Partitions).Int("replicas", reps).Str("nats", b.URL).Msg("trapline worker running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(runInfo{NATSURL: b.url})
+		d.opts.Ready(runInfo{NATSURL: b.URL})
 	}
 	err = g.Wait()
 	w.log.Info().Msg("trapline worker stopped")

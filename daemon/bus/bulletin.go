@@ -1,4 +1,4 @@
-package daemon
+package bus
 
 import (
 	"context"
@@ -24,13 +24,13 @@ type bulletinMsg struct {
 	data    []byte
 }
 
-// bulletin publishes breath records and status heartbeats best effort: the
+// Bulletin publishes breath records and status heartbeats best effort: the
 // analysis hands a message over without ever waiting; when the queue is full
 // or the connection refuses a message it is dropped and counted, with one
 // warning per episode of drops. Breaths are plain NATS publishes on
 // <prefix>.breath.<stream>, which the breaths stream stores; heartbeats go
 // to <prefix>.status.<stream> and are not stored.
-type bulletin struct {
+type Bulletin struct {
 	nc   *nats.Conn
 	subj alerts.Subjects
 	log  zerolog.Logger
@@ -43,15 +43,13 @@ type bulletin struct {
 	episodeDrop uint64 // drops in the current episode
 }
 
-var _ bulletinSink = (*bulletin)(nil)
-
-// newBulletin returns a bulletin for nc under the subject prefix, with a
+// NewBulletin returns a Bulletin for nc under the subject prefix, with a
 // queue of queueLen messages (defaultBulletinQueue when <= 0).
-func newBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger) *bulletin {
+func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger) *Bulletin {
 	if queueLen <= 0 {
 		queueLen = defaultBulletinQueue
 	}
-	return &bulletin{
+	return &Bulletin{
 		nc: nc, subj: alerts.Subjects{Prefix: prefix},
 		log: log.With().Str("component", "bulletin").Logger(),
 		q:   make(chan bulletinMsg, queueLen),
@@ -60,17 +58,17 @@ func newBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger)
 
 // Breath queues the breath record (the breath record contract) for
 // <prefix>.breath.<stream>.
-func (b *bulletin) Breath(br *analyze.Breath) {
+func (b *Bulletin) Breath(br *analyze.Breath) {
 	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768))})
 }
 
 // Status queues a status heartbeat (JSON built by the stream) for
 // <prefix>.status.<stream>.
-func (b *bulletin) Status(stream string, data []byte) {
+func (b *Bulletin) Status(stream string, data []byte) {
 	b.offer(bulletinMsg{subject: b.subj.Status(stream), data: data})
 }
 
-func (b *bulletin) offer(m bulletinMsg) {
+func (b *Bulletin) offer(m bulletinMsg) {
 	select {
 	case b.q <- m:
 	default:
@@ -79,7 +77,7 @@ func (b *bulletin) offer(m bulletinMsg) {
 }
 
 // drop counts a lost message and warns once per episode.
-func (b *bulletin) drop(why string) {
+func (b *Bulletin) drop(why string) {
 	b.dropped.Add(1)
 	b.mu.Lock()
 	defer b.mu.Unlock()
@@ -91,7 +89,7 @@ func (b *bulletin) drop(why string) {
 }
 
 // delivered ends an episode of drops, if one is open.
-func (b *bulletin) delivered() {
+func (b *Bulletin) delivered() {
 	b.published.Add(1)
 	b.mu.Lock()
 	defer b.mu.Unlock()
@@ -102,16 +100,16 @@ func (b *bulletin) delivered() {
 }
 
 // Dropped returns the number of breath and status messages dropped so far.
-func (b *bulletin) Dropped() uint64 { return b.dropped.Load() }
+func (b *Bulletin) Dropped() uint64 { return b.dropped.Load() }
 
 // Published returns the number of messages handed to the connection.
-func (b *bulletin) Published() uint64 { return b.published.Load() }
+func (b *Bulletin) Published() uint64 { return b.published.Load() }
 
 // Run writes queued messages to the connection until ctx is cancelled, then
 // writes what is still queued and flushes, bounded by one second. While the
 // connection is down nats.go keeps publishes in its reconnect buffer (8 MiB)
 // and sends them on reconnect; once that is full they are dropped here.
-func (b *bulletin) Run(ctx context.Context) error {
+func (b *Bulletin) Run(ctx context.Context) error {
 	for {
 		select {
 		case m := <-b.q:
@@ -130,7 +128,7 @@ func (b *bulletin) Run(ctx context.Context) error {
 	}
 }
 
-func (b *bulletin) send(m bulletinMsg) {
+func (b *Bulletin) send(m bulletinMsg) {
 	if err := b.nc.Publish(m.subject, m.data); err != nil {
 		b.drop(err.Error())
 		return

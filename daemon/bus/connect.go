@@ -1,4 +1,7 @@
-package daemon
+// Package bus owns what crosses NATS: the client connection with its
+// authentication, TLS and reconnect options, and the mapping of the
+// configuration's nats section onto them.
+package bus
 
 import (
 	"errors"
@@ -10,9 +13,9 @@ import (
 	"github.com/rs/zerolog"
 )
 
-// natsClientOptions configures the daemon's connection to NATS: the embedded
+// ClientOptions configures a connection to NATS: the embedded
 // server or an existing server or cluster (nats.url).
-type natsClientOptions struct {
+type ClientOptions struct {
 	// URL is one or more comma-separated nats:// or tls:// URLs; empty with
 	// InProcess set.
 	URL string
@@ -23,7 +26,7 @@ type natsClientOptions struct {
 	User, Password, Token, CredsFile, NKeySeedFile string
 	// TLS: CAFile verifies the server; CertFile and KeyFile are the
 	// client's certificate for mutual TLS.
-	TLS natsTLS
+	TLS TLS
 	// TrustFiles are more PEM files whose certificates are trusted to
 	// identify the server (the embedded server's own certificate).
 	TrustFiles []string
@@ -34,8 +37,8 @@ type natsClientOptions struct {
 	ReconnectWait time.Duration
 }
 
-// check reports conflicting or incomplete settings, all at once.
-func (o natsClientOptions) check() error {
+// Check reports conflicting or incomplete settings, all at once.
+func (o ClientOptions) Check() error {
 	var errs []error
 	if o.URL == "" && o.InProcess == nil {
 		errs = append(errs, errors.New("nats: no url"))
@@ -58,12 +61,12 @@ func (o natsClientOptions) check() error {
 	return errors.Join(errs...)
 }
 
-// connectNATS connects to NATS and keeps reconnecting for ever: an
+// Connect connects to NATS and keeps reconnecting for ever: an
 // unreachable server at start or later is an outage (alerts wait in the
 // spool), not a reason to stop. It returns an error only for settings that
 // can never work (conflicting options, unreadable key files, a bad URL).
-func connectNATS(o natsClientOptions, log zerolog.Logger) (*nats.Conn, error) {
-	if err := o.check(); err != nil {
+func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
+	if err := o.Check(); err != nil {
 		return nil, err
 	}
 	if o.ReconnectWait <= 0 {
@@ -119,14 +122,14 @@ func connectNATS(o natsClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 	}
 	nc, err := nats.Connect(o.URL, opts...)
 	if err != nil {
-		return nil, fmt.Errorf("nats connect %s: %w", redactURL(o.URL), err)
+		return nil, fmt.Errorf("nats connect %s: %w", RedactURL(o.URL), err)
 	}
 	return nc, nil
 }
 
-// redactURL hides a password or token written into a URL before it is
+// RedactURL hides a password or token written into a URL before it is
 // logged or shown in an error.
-func redactURL(urls string) string {
+func RedactURL(urls string) string {
 	parts := strings.Split(urls, ",")
 	for i, u := range parts {
 		at := strings.LastIndex(u, "@")
@@ -137,6 +140,15 @@ func redactURL(urls string) string {
 	}
 	return strings.Join(parts, ",")
 }
+
+// TLS names PEM files: a certificate and its key, and a CA that verifies
+// the other side.
+type TLS struct {
+	CAFile, CertFile, KeyFile string
+}
+
+// Enabled reports whether any file is set.
+func (t TLS) Enabled() bool { return t.CertFile != "" || t.KeyFile != "" || t.CAFile != "" }
 
 // nonEmpty returns s as a one-element list, or none when it is empty.
 func nonEmpty(s string) []string {

@@ -1,4 +1,4 @@
-package daemon
+package bus
 
 import (
 	"context"
@@ -19,17 +19,9 @@ import (
 	"golang.org/x/crypto/bcrypt"
 )
 
-// natsTLS names PEM files: a certificate and its key, and a CA that verifies
-// the other side.
-type natsTLS struct {
-	CAFile, CertFile, KeyFile string
-}
-
-func (t natsTLS) enabled() bool { return t.CertFile != "" || t.KeyFile != "" || t.CAFile != "" }
-
-// embeddedNATSOptions configures the nats-server that trapline runs in its
+// EmbeddedOptions configures the nats-server that trapline runs in its
 // own process (nats.url unset).
-type embeddedNATSOptions struct {
+type EmbeddedOptions struct {
 	// Name is the server name (trapline-<host> by default).
 	Name string
 	// Host is the listen address; loopback (127.0.0.1) unless TLS and
@@ -48,20 +40,20 @@ type embeddedNATSOptions struct {
 	User, Password, Token string
 	// TLS is the server's certificate; with a CAFile, clients must present
 	// certificates signed by it.
-	TLS natsTLS
+	TLS TLS
 }
 
-// embeddedNATS is a running embedded nats-server.
-type embeddedNATS struct {
+// Embedded is a running embedded nats-server.
+type Embedded struct {
 	srv  *server.Server
-	opts embeddedNATSOptions
+	opts EmbeddedOptions
 	log  zerolog.Logger
 	lock *os.File // held on the store directory while the server runs
 }
 
-// errStoreLocked reports a JetStream directory in use by another embedded
+// ErrStoreLocked reports a JetStream directory in use by another embedded
 // server (another trapline on the same data directory).
-var errStoreLocked = errors.New("JetStream store in use by another trapline process")
+var ErrStoreLocked = errors.New("JetStream store in use by another trapline process")
 
 // storeLockName is the lock file in the store directory.
 const storeLockName = "trapline.lock"
@@ -84,7 +76,7 @@ func isLoopbackHost(host string) bool {
 
 // check validates the options: a server reachable from other machines must
 // both encrypt and authenticate.
-func (o embeddedNATSOptions) check() error {
+func (o EmbeddedOptions) check() error {
 	var errs []error
 	if o.StoreDir == "" {
 		errs = append(errs, errors.New("embedded nats: empty JetStream store directory"))
@@ -113,9 +105,9 @@ func (o embeddedNATSOptions) check() error {
 	return errors.Join(errs...)
 }
 
-// startEmbeddedNATS starts the embedded server and returns once it accepts
+// StartEmbedded starts the embedded server and returns once it accepts
 // connections with JetStream up.
-func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedNATS, error) {
+func StartEmbedded(opts EmbeddedOptions, log zerolog.Logger) (*Embedded, error) {
 	if opts.Host == "" {
 		opts.Host = "127.0.0.1"
 	}
@@ -209,13 +201,13 @@ func startEmbeddedNATS(opts embeddedNATSOptions, log zerolog.Logger) (*embeddedN
 	sl := &serverLogger{log: log}
 	srv.SetLoggerV2(sl, log.GetLevel() <= zerolog.DebugLevel, log.GetLevel() <= zerolog.TraceLevel, false)
 	srv.Start()
-	e := &embeddedNATS{srv: srv, opts: opts, log: log, lock: lock}
+	e := &Embedded{srv: srv, opts: opts, log: log, lock: lock}
 	if !srv.ReadyForConnections(10 * time.Second) {
-		e.shutdown(5 * time.Second)
+		e.Shutdown(5 * time.Second)
 		return nil, fmt.Errorf("embedded nats: not ready after 10 s%s", sl.fatalSuffix())
 	}
 	if !srv.JetStreamEnabled() {
-		e.shutdown(5 * time.Second)
+		e.Shutdown(5 * time.Second)
 		return nil, fmt.Errorf("embedded nats: jetstream did not start (store %s)%s", opts.StoreDir, sl.fatalSuffix())
 	}
 	ev := log.Info().Str("store", opts.StoreDir)
@@ -247,7 +239,7 @@ func probeListen(host string, port int) error {
 
 // URL returns the address clients connect to (empty when the server does
 // not listen).
-func (e *embeddedNATS) URL() string {
+func (e *Embedded) URL() string {
 	if e.opts.Port == -1 {
 		return ""
 	}
@@ -270,18 +262,18 @@ func (e *embeddedNATS) URL() string {
 
 // Server returns the nats-server, for in-process connections
 // (nats.InProcessServer) and tests.
-func (e *embeddedNATS) Server() *server.Server { return e.srv }
+func (e *Embedded) Server() *server.Server { return e.srv }
 
 // clientOptions returns the connection options that reach this server: its
 // URL (or the in-process pipe) and its credentials. When the server demands
 // client certificates (a CA file is set), trapline presents the server's own
 // certificate, which must then also allow client authentication
 // (extendedKeyUsage serverAuth and clientAuth).
-func (e *embeddedNATS) clientOptions(name string) natsClientOptions {
-	c := natsClientOptions{
+func (e *Embedded) ClientOptions(name string) ClientOptions {
+	c := ClientOptions{
 		URL: e.URL(), Name: name,
 		User: e.opts.User, Password: e.opts.Password, Token: e.opts.Token,
-		TLS: natsTLS{CAFile: e.opts.TLS.CAFile},
+		TLS: TLS{CAFile: e.opts.TLS.CAFile},
 	}
 	if e.opts.TLS.CAFile != "" {
 		c.TLS.CertFile, c.TLS.KeyFile = e.opts.TLS.CertFile, e.opts.TLS.KeyFile
@@ -298,13 +290,13 @@ func (e *embeddedNATS) clientOptions(name string) natsClientOptions {
 }
 
 // Run waits for ctx and shuts the server down, bounded by 10 s.
-func (e *embeddedNATS) Run(ctx context.Context) error {
+func (e *Embedded) Run(ctx context.Context) error {
 	<-ctx.Done()
-	return e.shutdown(10 * time.Second)
+	return e.Shutdown(10 * time.Second)
 }
 
 // shutdown stops the server and waits for it, at most timeout.
-func (e *embeddedNATS) shutdown(timeout time.Duration) error {
+func (e *Embedded) Shutdown(timeout time.Duration) error {
 	e.srv.Shutdown()
 	done := make(chan struct{})
 	go func() { e.srv.WaitForShutdown(); close(done) }()
@@ -359,6 +351,6 @@ func (l *serverLogger) fatalSuffix() string {
 
 // connect is a shorthand for tests and the demo: a client
 // connection to the embedded server with its own credentials.
-func (e *embeddedNATS) connect(name string, log zerolog.Logger) (*nats.Conn, error) {
-	return connectNATS(e.clientOptions(name), log)
+func (e *Embedded) connect(name string, log zerolog.Logger) (*nats.Conn, error) {
+	return Connect(e.ClientOptions(name), log)
 }

@@ -1,6 +1,6 @@
 //go:build unix
 
-package daemon
+package bus
 
 import (
 	"errors"
@@ -20,7 +20,7 @@ func lockStore(path string) (*os.File, error) {
 	if err := syscall.Flock(int(f.Fd()), syscall.LOCK_EX|syscall.LOCK_NB); err != nil {
 		_ = f.Close()
 		if errors.Is(err, syscall.EWOULDBLOCK) {
-			return nil, errStoreLocked
+			return nil, ErrStoreLocked
 		}
 		return nil, fmt.Errorf("lock %s: %w", path, err)
 	}

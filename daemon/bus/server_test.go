@@ -1,4 +1,4 @@
-package daemon
+package bus
 
 import (
 	"context"
@@ -29,18 +29,18 @@ import (
 
 // startTestEmbedded starts the embedded server on a free loopback port with
 // its store in a temporary directory and stops it at the end of the test.
-func startTestEmbedded(t *testing.T, o embeddedNATSOptions) *embeddedNATS {
+func startTestEmbedded(t *testing.T, o EmbeddedOptions) *Embedded {
 	t.Helper()
 	if o.StoreDir == "" {
 		o.StoreDir = filepath.Join(t.TempDir(), "nats")
 	}
 	o.MaxStoreBytes = 256 << 20
-	e, err := startEmbeddedNATS(o, zerolog.New(zerolog.NewTestWriter(t)).Level(zerolog.InfoLevel))
+	e, err := StartEmbedded(o, zerolog.New(zerolog.NewTestWriter(t)).Level(zerolog.InfoLevel))
 	if err != nil {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() {
-		if err := e.shutdown(30 * time.Second); err != nil {
+		if err := e.Shutdown(30 * time.Second); err != nil {
 			t.Error(err)
 		}
 	})
@@ -69,21 +69,21 @@ func natsTestEvent(stream string, n int, st alerts.State) alerts.Event {
 func TestEmbeddedNATSCheck(t *testing.T) {
 	for _, tc := range []struct {
 		name string
-		o    embeddedNATSOptions
+		o    EmbeddedOptions
 		want string // part of the error, "" for none
 	}{
-		{"loopback", embeddedNATSOptions{Host: "127.0.0.1", StoreDir: "x"}, ""},
-		{"ipv6 loopback", embeddedNATSOptions{Host: "::1", StoreDir: "x"}, ""},
-		{"localhost", embeddedNATSOptions{Host: "localhost", StoreDir: "x"}, ""},
-		{"in-process only on any host", embeddedNATSOptions{Host: "0.0.0.0", Port: -1, StoreDir: "x"}, ""},
-		{"all interfaces, nothing", embeddedNATSOptions{Host: "0.0.0.0", StoreDir: "x"}, "without TLS and authentication"},
-		{"lan, auth without tls", embeddedNATSOptions{Host: "192.0.2.7", User: "u", Password: "p", StoreDir: "x"}, "without TLS and authentication"},
-		{"lan, tls without auth", embeddedNATSOptions{Host: "192.0.2.7", TLS: natsTLS{CertFile: "c", KeyFile: "k"}, StoreDir: "x"}, "without TLS and authentication"},
-		{"lan, tls and token", embeddedNATSOptions{Host: "192.0.2.7", Token: "t", TLS: natsTLS{CertFile: "c", KeyFile: "k"}, StoreDir: "x"}, ""},
-		{"empty store", embeddedNATSOptions{Host: "127.0.0.1"}, "empty JetStream store"},
-		{"user without password", embeddedNATSOptions{Host: "127.0.0.1", User: "u", StoreDir: "x"}, "go together"},
-		{"user and token", embeddedNATSOptions{Host: "127.0.0.1", User: "u", Password: "p", Token: "t", StoreDir: "x"}, "not both"},
-		{"port out of range", embeddedNATSOptions{Host: "127.0.0.1", Port: 70000, StoreDir: "x"}, "out of range"},
+		{"loopback", EmbeddedOptions{Host: "127.0.0.1", StoreDir: "x"}, ""},
+		{"ipv6 loopback", EmbeddedOptions{Host: "::1", StoreDir: "x"}, ""},
+		{"localhost", EmbeddedOptions{Host: "localhost", StoreDir: "x"}, ""},
+		{"in-process only on any host", EmbeddedOptions{Host: "0.0.0.0", Port: -1, StoreDir: "x"}, ""},
+		{"all interfaces, nothing", EmbeddedOptions{Host: "0.0.0.0", StoreDir: "x"}, "without TLS and authentication"},
+		{"lan, auth without tls", EmbeddedOptions{Host: "192.0.2.7", User: "u", Password: "p", StoreDir: "x"}, "without TLS and authentication"},
+		{"lan, tls without auth", EmbeddedOptions{Host: "192.0.2.7", TLS: TLS{CertFile: "c", KeyFile: "k"}, StoreDir: "x"}, "without TLS and authentication"},
+		{"lan, tls and token", EmbeddedOptions{Host: "192.0.2.7", Token: "t", TLS: TLS{CertFile: "c", KeyFile: "k"}, StoreDir: "x"}, ""},
+		{"empty store", EmbeddedOptions{Host: "127.0.0.1"}, "empty JetStream store"},
+		{"user without password", EmbeddedOptions{Host: "127.0.0.1", User: "u", StoreDir: "x"}, "go together"},
+		{"user and token", EmbeddedOptions{Host: "127.0.0.1", User: "u", Password: "p", Token: "t", StoreDir: "x"}, "not both"},
+		{"port out of range", EmbeddedOptions{Host: "127.0.0.1", Port: 70000, StoreDir: "x"}, "out of range"},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			err := tc.o.check()
@@ -104,7 +104,7 @@ func TestEmbeddedNATSPortInUse(t *testing.T) {
 	}
 	defer ln.Close()
 	port := ln.Addr().(*net.TCPAddr).Port
-	_, err = startEmbeddedNATS(embeddedNATSOptions{Host: "127.0.0.1", Port: port, StoreDir: t.TempDir()}, zerolog.Nop())
+	_, err = StartEmbedded(EmbeddedOptions{Host: "127.0.0.1", Port: port, StoreDir: t.TempDir()}, zerolog.Nop())
 	want := fmt.Sprintf("nats listen 127.0.0.1:%d: address already in use", port)
 	if err == nil || err.Error() != want {
 		t.Fatalf("error %v, want %q", err, want)
@@ -118,21 +118,21 @@ func TestEmbeddedNATSPortInUse(t *testing.T) {
 // the same JetStream directory; trapline refuses, and frees it on shutdown.
 func TestEmbeddedNATSStoreLocked(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "nats")
-	first, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
+	first, err := StartEmbedded(EmbeddedOptions{StoreDir: store}, zerolog.Nop())
 	if err != nil {
 		t.Fatal(err)
 	}
-	second, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
-	if !errors.Is(err, errStoreLocked) {
+	second, err := StartEmbedded(EmbeddedOptions{StoreDir: store}, zerolog.Nop())
+	if !errors.Is(err, ErrStoreLocked) {
 		if second != nil {
-			_ = second.shutdown(10 * time.Second)
+			_ = second.Shutdown(10 * time.Second)
 		}
-		t.Fatalf("second server on the same store: %v, want errStoreLocked", err)
+		t.Fatalf("second server on the same store: %v, want ErrStoreLocked", err)
 	}
-	if err := first.shutdown(30 * time.Second); err != nil {
+	if err := first.Shutdown(30 * time.Second); err != nil {
 		t.Fatal(err)
 	}
-	third, err := startEmbeddedNATS(embeddedNATSOptions{StoreDir: store}, zerolog.Nop())
+	third, err := StartEmbedded(EmbeddedOptions{StoreDir: store}, zerolog.Nop())
 	if err != nil {
 		t.Fatalf("after the first shut down: %v", err)
 	}
@@ -163,7 +163,7 @@ func TestEmbeddedNATSStartsJetStream(t *testing.T) {
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			store := filepath.Join(t.TempDir(), "js")
-			e := startTestEmbedded(t, embeddedNATSOptions{Port: tc.port, StoreDir: store})
+			e := startTestEmbedded(t, EmbeddedOptions{Port: tc.port, StoreDir: store})
 			if tc.port == -1 && e.URL() != "" {
 				t.Errorf("in-process server shows URL %q", e.URL())
 			}
@@ -191,7 +191,7 @@ func TestEmbeddedNATSStartsJetStream(t *testing.T) {
 // alert arrives on trapline.alert.<stream> as the alert event contract, with
 // its de-duplication id in the Nats-Msg-Id header.
 func TestAlertSubscriptionLikeCLI(t *testing.T) {
-	e := startTestEmbedded(t, embeddedNATSOptions{})
+	e := startTestEmbedded(t, EmbeddedOptions{})
 	sub, err := nats.Connect(e.URL())
 	if err != nil {
 		t.Fatal(err)
@@ -292,18 +292,18 @@ func TestEmbeddedNATSOutage(t *testing.T) {
 		}
 	}
 	raise(0, 30)
-	if err := e.shutdown(30 * time.Second); err != nil {
+	if err := e.Shutdown(30 * time.Second); err != nil {
 		t.Fatal(err)
 	}
 	raise(30, 130) // about a second of outage
 	if p.Depth() == 0 {
 		t.Fatal("nothing spooled during the outage")
 	}
-	e, err = startEmbeddedNATS(embeddedNATSOptions{Port: port, StoreDir: store, MaxStoreBytes: 256 << 20}, log)
+	e, err = StartEmbedded(EmbeddedOptions{Port: port, StoreDir: store, MaxStoreBytes: 256 << 20}, log)
 	if err != nil {
 		t.Fatalf("restart on port %d: %v", port, err)
 	}
-	defer e.shutdown(30 * time.Second)
+	defer e.Shutdown(30 * time.Second)
 	raise(130, 150)
 	deadline := time.Now().Add(30 * time.Second)
 	for p.Depth() > 0 && time.Now().Before(deadline) {
@@ -342,29 +342,29 @@ func TestEmbeddedNATSOutage(t *testing.T) {
 func TestEmbeddedNATSTLSAndAuth(t *testing.T) {
 	dir := t.TempDir()
 	pki := writeNATSTestPKI(t, dir)
-	e := startTestEmbedded(t, embeddedNATSOptions{
+	e := startTestEmbedded(t, EmbeddedOptions{
 		User: "trapline", Password: "s3cret-bench",
-		TLS: natsTLS{CAFile: pki.ca, CertFile: pki.serverCert, KeyFile: pki.serverKey},
+		TLS: TLS{CAFile: pki.ca, CertFile: pki.serverCert, KeyFile: pki.serverKey},
 	})
 	if !strings.HasPrefix(e.URL(), "tls://127.0.0.1:") {
 		t.Fatalf("URL %q, want tls://", e.URL())
 	}
-	good := natsClientOptions{URL: e.URL(), Name: "t", User: "trapline", Password: "s3cret-bench",
-		TLS: natsTLS{CAFile: pki.ca, CertFile: pki.clientCert, KeyFile: pki.clientKey}}
+	good := ClientOptions{URL: e.URL(), Name: "t", User: "trapline", Password: "s3cret-bench",
+		TLS: TLS{CAFile: pki.ca, CertFile: pki.clientCert, KeyFile: pki.clientKey}}
 	for _, tc := range []struct {
 		name   string
-		mutate func(o *natsClientOptions)
+		mutate func(o *ClientOptions)
 		ok     bool
 	}{
-		{"user, password and client certificate", func(*natsClientOptions) {}, true},
-		{"the daemon's own connection", func(o *natsClientOptions) { *o = e.clientOptions("trapline") }, true},
-		{"wrong password", func(o *natsClientOptions) { o.Password = "guess" }, false},
-		{"no client certificate", func(o *natsClientOptions) { o.TLS.CertFile, o.TLS.KeyFile = "", "" }, false},
+		{"user, password and client certificate", func(*ClientOptions) {}, true},
+		{"the daemon's own connection", func(o *ClientOptions) { *o = e.ClientOptions("trapline") }, true},
+		{"wrong password", func(o *ClientOptions) { o.Password = "guess" }, false},
+		{"no client certificate", func(o *ClientOptions) { o.TLS.CertFile, o.TLS.KeyFile = "", "" }, false},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			o := good
 			tc.mutate(&o)
-			nc, err := connectNATS(o, zerolog.Nop())
+			nc, err := Connect(o, zerolog.Nop())
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -390,19 +390,19 @@ func TestEmbeddedNATSTLSAndAuth(t *testing.T) {
 // certificate, and a client without the CA cannot verify the server.
 func TestEmbeddedNATSTLSWithoutClientCerts(t *testing.T) {
 	pki := writeNATSTestPKI(t, t.TempDir())
-	e := startTestEmbedded(t, embeddedNATSOptions{Token: "bench-token-7",
-		TLS: natsTLS{CertFile: pki.serverCert, KeyFile: pki.serverKey}})
+	e := startTestEmbedded(t, EmbeddedOptions{Token: "bench-token-7",
+		TLS: TLS{CertFile: pki.serverCert, KeyFile: pki.serverKey}})
 	for _, tc := range []struct {
 		name string
-		o    natsClientOptions
+		o    ClientOptions
 		ok   bool
 	}{
-		{"the daemon's own connection", e.clientOptions("trapline"), true},
-		{"a client with the CA", natsClientOptions{URL: e.URL(), Token: "bench-token-7", TLS: natsTLS{CAFile: pki.ca}}, true},
-		{"a client trusting only the system pool", natsClientOptions{URL: e.URL(), Token: "bench-token-7"}, false},
+		{"the daemon's own connection", e.ClientOptions("trapline"), true},
+		{"a client with the CA", ClientOptions{URL: e.URL(), Token: "bench-token-7", TLS: TLS{CAFile: pki.ca}}, true},
+		{"a client trusting only the system pool", ClientOptions{URL: e.URL(), Token: "bench-token-7"}, false},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			nc, err := connectNATS(tc.o, zerolog.Nop())
+			nc, err := Connect(tc.o, zerolog.Nop())
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -471,7 +471,7 @@ func writeNATSTestPKI(t *testing.T, dir string) natsTestPKI {
 // can shut down and start again on the same port, a client that reconnects
 // quickly, and the default streams created.
 type outageNATS struct {
-	srv   *embeddedNATS
+	srv   *Embedded
 	store string
 	port  int
 	nc    *nats.Conn
@@ -482,14 +482,14 @@ func startOutageNATS(t *testing.T, log zerolog.Logger) outageNATS {
 	t.Helper()
 	o := outageNATS{store: filepath.Join(t.TempDir(), "nats")}
 	var err error
-	o.srv, err = startEmbeddedNATS(embeddedNATSOptions{StoreDir: o.store, MaxStoreBytes: 256 << 20}, log)
+	o.srv, err = StartEmbedded(EmbeddedOptions{StoreDir: o.store, MaxStoreBytes: 256 << 20}, log)
 	if err != nil {
 		t.Fatal(err)
 	}
 	o.port = o.srv.srv.Addr().(*net.TCPAddr).Port
-	co := o.srv.clientOptions("trapline")
+	co := o.srv.ClientOptions("trapline")
 	co.ReconnectWait = 50 * time.Millisecond
-	o.nc, err = connectNATS(co, log)
+	o.nc, err = Connect(co, log)
 	if err != nil {
 		t.Fatal(err)
 	}

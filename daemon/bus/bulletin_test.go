@@ -1,4 +1,4 @@
-package daemon
+package bus
 
 import (
 	"context"
@@ -27,7 +27,7 @@ func natsTestBreath(stream string, seq int) *analyze.Breath {
 // TestBulletinPublishesBreathsAndStatus checks subjects, the breaths stream
 // and the payloads on a real embedded server.
 func TestBulletinPublishesBreathsAndStatus(t *testing.T) {
-	e := startTestEmbedded(t, embeddedNATSOptions{})
+	e := startTestEmbedded(t, EmbeddedOptions{})
 	nc, err := e.connect("trapline", zerolog.Nop())
 	if err != nil {
 		t.Fatal(err)
@@ -41,7 +41,7 @@ func TestBulletinPublishesBreathsAndStatus(t *testing.T) {
 	if _, err := nc.ChanSubscribe("trapline.status.>", status); err != nil {
 		t.Fatal(err)
 	}
-	b := newBulletin(nc, "trapline", 16, zerolog.Nop())
+	b := NewBulletin(nc, "trapline", 16, zerolog.Nop())
 	ctx, cancel := context.WithCancel(t.Context())
 	done := make(chan error, 1)
 	go func() { done <- b.Run(ctx) }()
@@ -99,7 +99,7 @@ func TestBulletinPublishesBreathsAndStatus(t *testing.T) {
 // TestBulletinNeverBlocks fills the queue while nothing drains it: offers
 // return at once and the surplus is counted.
 func TestBulletinNeverBlocks(t *testing.T) {
-	e := startTestEmbedded(t, embeddedNATSOptions{})
+	e := startTestEmbedded(t, EmbeddedOptions{})
 	nc, err := e.connect("trapline", zerolog.Nop())
 	if err != nil {
 		t.Fatal(err)
@@ -114,7 +114,7 @@ func TestBulletinNeverBlocks(t *testing.T) {
 		{queue: 1, offered: 1000, wantDropped: 999},
 	} {
 		t.Run(fmt.Sprintf("queue %d offered %d", tc.queue, tc.offered), func(t *testing.T) {
-			b := newBulletin(nc, "trapline", tc.queue, zerolog.Nop())
+			b := NewBulletin(nc, "trapline", tc.queue, zerolog.Nop())
 			start := time.Now()
 			for i := range tc.offered {
 				b.Breath(natsTestBreath("bed-1", i))
@@ -132,13 +132,13 @@ func TestBulletinNeverBlocks(t *testing.T) {
 // TestBulletinAcrossOutage: breaths offered while the server is away are
 // kept in the client's reconnect buffer and stored once it is back.
 // (What is written in the instant before the client notices is lost: the
-// bulletin is best effort.)
+// Bulletin is best effort.)
 func TestBulletinAcrossOutage(t *testing.T) {
 	log := zerolog.Nop()
 	o := startOutageNATS(t, log)
 	e, store, port, nc, js := o.srv, o.store, o.port, o.nc, o.js
 	var err error
-	b := newBulletin(nc, "trapline", 64, log)
+	b := NewBulletin(nc, "trapline", 64, log)
 	ctx, cancel := context.WithCancel(t.Context())
 	done := make(chan error, 1)
 	go func() { done <- b.Run(ctx) }()
@@ -162,7 +162,7 @@ func TestBulletinAcrossOutage(t *testing.T) {
 		}
 		time.Sleep(10 * time.Millisecond)
 	}
-	if err := e.shutdown(30 * time.Second); err != nil {
+	if err := e.Shutdown(30 * time.Second); err != nil {
 		t.Fatal(err)
 	}
 	// Core NATS is at most once: what is written into a socket that has
@@ -177,11 +177,11 @@ func TestBulletinAcrossOutage(t *testing.T) {
 	for i := 2; i <= 10; i++ {
 		b.Breath(natsTestBreath("bed-2", i))
 	}
-	e, err = startEmbeddedNATS(embeddedNATSOptions{Port: port, StoreDir: store, MaxStoreBytes: 256 << 20}, log)
+	e, err = StartEmbedded(EmbeddedOptions{Port: port, StoreDir: store, MaxStoreBytes: 256 << 20}, log)
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer e.shutdown(30 * time.Second)
+	defer e.Shutdown(30 * time.Second)
 	var n uint64
 	for deadline := time.Now().Add(15 * time.Second); time.Now().Before(deadline); {
 		if n = breathsStored(); n == 10 {
@@ -198,7 +198,7 @@ func TestBulletinAcrossOutage(t *testing.T) {
 
 func BenchmarkBulletinBreath(b *testing.B) {
 	br := natsTestBreath("bench-a", 1)
-	bl := newBulletin(nil, "trapline", 1, zerolog.Nop())
+	bl := NewBulletin(nil, "trapline", 1, zerolog.Nop())
 	b.ReportAllocs()
 	for b.Loop() {
 		bl.Breath(br) // the queue stays full: measures the offer and the drop

@@ -1,0 +1,119 @@
+package bus
+
+import (
+	"errors"
+	"fmt"
+	"syscall"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/rs/zerolog"
+
+	"trapline/alerts"
+	"trapline/config"
+)
+
+// ErrPortInUse is returned when a listen address is already taken by another
+// process.
+var ErrPortInUse = errors.New("address already in use")
+
+// Bus is the daemon's NATS: one client connection, and the embedded server
+// when nats.url is empty.
+type Bus struct {
+	// Conn is the client connection.
+	Conn *nats.Conn
+	// URL is where it connects, with any secret redacted.
+	URL string
+	// Server is the embedded server, nil when nats.url is set.
+	Server *Embedded
+	log    zerolog.Logger
+}
+
+// Embedded reports whether the server runs inside this process.
+func (b *Bus) Embedded() bool { return b.Server != nil }
+
+// Close drains the connection (bounded) and stops the embedded server.
+func (b *Bus) Close() {
+	if b.Conn != nil {
+		// Draining ends the connection on purpose: not an outage to report.
+		b.Conn.SetDisconnectErrHandler(nil)
+		done := make(chan struct{})
+		b.Conn.SetClosedHandler(func(*nats.Conn) { close(done) })
+		if err := b.Conn.Drain(); err != nil {
+			b.Conn.Close()
+		} else {
+			select {
+			case <-done:
+			case <-time.After(5 * time.Second):
+				b.Conn.Close()
+			}
+		}
+	}
+	if b.Server != nil {
+		if err := b.Server.Shutdown(10 * time.Second); err != nil {
+			b.log.Warn().Err(err).Msg("embedded NATS shutdown")
+		}
+	}
+}
+
+// Open starts the embedded server (nats.url empty) or connects to the
+// configured one. An unreachable external server is not an error: the
+// connection keeps trying and alerts wait in the spool meanwhile.
+func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
+	n := &cfg.NATS
+	tls := TLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile}
+	b := &Bus{log: log}
+	if !cfg.EmbeddedNATS() {
+		nc, err := Connect(ClientOptions{
+			URL: n.URL, Name: "trapline",
+			User: n.User, Password: n.Password, Token: n.Token,
+			CredsFile: n.CredsFile, NKeySeedFile: n.NKeySeedFile, TLS: tls,
+		}, log)
+		if err != nil {
+			return nil, fmt.Errorf("nats.url: %w", err)
+		}
+		b.Conn, b.URL = nc, RedactURL(n.URL)
+		return b, nil
+	}
+	srv, err := StartEmbedded(EmbeddedOptions{
+		Host: n.Embedded.Host, Port: n.Embedded.Port, StoreDir: cfg.NATSStoreDir(),
+		MaxStoreBytes: int64(n.Embedded.MaxStore), MaxMemoryBytes: int64(n.Embedded.MaxMemory),
+		User: n.User, Password: n.Password, Token: n.Token, TLS: tls,
+	}, log)
+	if err != nil {
+		if errors.Is(err, syscall.EADDRINUSE) {
+			return nil, fmt.Errorf("embedded NATS: %w: another process (perhaps another trapline or a nats-server) holds the port; "+
+				"stop it, change nats.embedded.port, or set nats.url to use that server: %w", ErrPortInUse, err)
+		}
+		return nil, fmt.Errorf("embedded NATS: %w", err)
+	}
+	nc, err := Connect(srv.ClientOptions("trapline"), log)
+	if err != nil {
+		_ = srv.Shutdown(10 * time.Second)
+		return nil, fmt.Errorf("connect to the embedded NATS: %w", err)
+	}
+	b.Conn, b.Server, b.URL = nc, srv, srv.URL()
+	return b, nil
+}
+
+// StreamsConfig maps the nats section onto the JetStream stream settings.
+// In the file 0 means "no limit"; alerts.StreamsConfig spells that -1.
+func StreamsConfig(n *config.NATS) alerts.StreamsConfig {
+	unlimited := func(v int64) int64 {
+		if v == 0 {
+			return -1
+		}
+		return v
+	}
+	return alerts.StreamsConfig{
+		Prefix:           n.SubjectPrefix,
+		Alerts:           n.AlertsStream.Name,
+		Breaths:          n.BreathsStream.Name,
+		AlertsDuplicates: n.AlertsStream.Duplicates,
+		AlertsMaxAge:     time.Duration(unlimited(int64(n.AlertsStream.MaxAge))),
+		AlertsMaxBytes:   unlimited(int64(n.AlertsStream.MaxBytes)),
+		BreathsMaxAge:    time.Duration(unlimited(int64(n.BreathsStream.MaxAge))),
+		BreathsMaxBytes:  unlimited(int64(n.BreathsStream.MaxBytes)),
+		Replicas:         n.Replicas,
+	}
+}
