@@ -38,7 +38,7 @@ type edge struct {
 const edgeMaxPending = 65536
 
 // runEdge runs the edge role until ctx is cancelled.
-func (d *daemon) runEdge(ctx context.Context) error {
+func (d *Daemon) runEdge(ctx context.Context) error {
 	cfg := d.cfg
 	b, err := bus.Open(cfg, d.log)
 	if err != nil {
@@ -88,7 +88,7 @@ func (d *daemon) runEdge(ctx context.Context) error {
 	}
 	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.URL).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(runInfo{NATSURL: b.URL})
+		d.opts.Ready(Info{NATSURL: b.URL})
 	}
 	err = g.Wait()
 	// Wait (bounded) for the acknowledgements of what was sent.

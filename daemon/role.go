@@ -168,7 +168,7 @@ func (e permanentError) Unwrap() error { return e.error }
 // startRoleHTTP serves /healthz, /readyz and /metrics for the edge and
 // worker roles when http.listen is set; the server runs in g until ctx
 // ends. Readiness starts with the NATS connection; the roles add checks.
-func (d *daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.Conn, dropped func() uint64) error {
+func (d *Daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.Conn, dropped func() uint64) error {
 	d.ready.set("nats", func() error {
 		if !nc.IsConnected() {
 			return fmt.Errorf("not connected (%s)", nc.Status())

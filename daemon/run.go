@@ -5,97 +5,30 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
-	"io"
 	"strings"
 	"time"
 	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
-	"github.com/spf13/cobra"
 	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
 	"trapline/config"
 )
 
-func (a *app) runCommand() *cobra.Command {
-	var cfgPath string
-	cmd := &cobra.Command{
-		Use:   "run",
-		Short: "Run the daemon: read every configured stream, analyse breaths, deliver alerts to NATS",
-		Long: "run reads the streams of the configuration file, analyses them breath by breath and publishes\n" +
-			"breath records, status heartbeats and alerts on NATS (an embedded server unless nats.url is\n" +
-			"set). Alerts go through a local spool and JetStream and are never lost. SIGINT or SIGTERM\n" +
-			"stops it cleanly within shutdown_timeout; a second signal stops it at once.\n\n" + Caution,
-		Args: cobra.NoArgs,
-		RunE: func(cmd *cobra.Command, _ []string) error {
-			cfg, err := config.Load(cfgPath, cmd.Flags())
-			if err != nil {
-				return &UsageError{Err: err}
-			}
-			if len(cfg.Streams) == 0 && cfg.Role != config.RoleWorker {
-				where := "the configuration"
-				if cfgPath != "" {
-					where = cfgPath
-				}
-				return usageErrorf("no stream configured: add at least one entry under streams: in %s "+
-					"(see config/trapline.example.yaml), or try `trapline demo`", where)
-			}
-			// log.level and log.format come from the file, the environment
-			// or --log-level (config.Load takes the flag into account).
-			log, err := configLogger(a.stderr, cfg.Log.Level, cfg.Log.Format)
-			if err != nil {
-				return &UsageError{Err: err}
-			}
-			d, err := newDaemon(cfg, log, daemonOptions{})
-			if err != nil {
-				return err
-			}
-			return d.Run(cmd.Context())
-		},
-	}
-	f := cmd.Flags()
-	f.StringVarP(&cfgPath, "config", "c", "", "configuration file (YAML, TOML or JSON)")
-	f.String("data-dir", "", "directory of the JetStream store and the alert spool (data_dir)")
-	f.String("nats-url", "", "connect to this NATS server instead of running the embedded one (nats.url)")
-	f.String("http-listen", "", "address of /healthz, /readyz and /metrics (http.listen)")
-	return cmd
-}
-
-// configLogger is newLogger with the log.format setting: auto (console
-// text on a terminal, JSON lines otherwise), console or json.
-func configLogger(w io.Writer, level, format string) (zerolog.Logger, error) {
-	switch format {
-	case "", "auto":
-		return newLogger(w, level)
-	case "console", "json":
-	default:
-		return zerolog.Nop(), fmt.Errorf("log.format %q: want auto, console or json", format)
-	}
-	lvl, err := zerolog.ParseLevel(level)
-	if err != nil || level == "" {
-		return zerolog.Nop(), fmt.Errorf("log.level %q: want trace, debug, info, warn or error", level)
-	}
-	out := w
-	if format == "console" {
-		out = zerolog.ConsoleWriter{Out: w, TimeFormat: time.TimeOnly, NoColor: true}
-	}
-	return zerolog.New(out).Level(lvl).With().Timestamp().Logger(), nil
-}
-
-// daemonOptions are hooks for callers that run the daemon in-process (the
+// Options are hooks for callers that run the daemon in-process (the
 // demo and the tests).
-type daemonOptions struct {
+type Options struct {
 	// Ready, when set, is called once NATS, the streams and HTTP have been
 	// started.
-	Ready func(runInfo)
+	Ready func(Info)
 	// TickEvery overrides the period of the streams' time-based checks.
 	TickEvery time.Duration
 }
 
-// runInfo tells an in-process caller where the daemon can be reached.
-type runInfo struct {
+// Info tells an in-process caller where the daemon can be reached.
+type Info struct {
 	// NATSURL is the client URL of the NATS server in use.
 	NATSURL string
 	// HTTPAddr is the address of /healthz, /readyz and /metrics, or "".
@@ -103,10 +36,10 @@ type runInfo struct {
 }
 
 // daemon is one trapline process: its streams and the parts they share.
-type daemon struct {
+type Daemon struct {
 	cfg     *config.Config
 	log     zerolog.Logger
-	opts    daemonOptions
+	opts    Options
 	m       *metrics
 	ready   *readiness
 	subj    alerts.Subjects
@@ -118,8 +51,8 @@ type daemon struct {
 }
 
 // newDaemon checks what can be checked before anything starts.
-func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*daemon, error) {
-	d := &daemon{
+func New(cfg *config.Config, log zerolog.Logger, opts Options) (*Daemon, error) {
+	d := &Daemon{
 		cfg: cfg, log: log, opts: opts,
 		m:       newMetrics(),
 		ready:   newReadiness(),
@@ -135,7 +68,7 @@ func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*dae
 // alert publisher drains to JetStream for at most shutdown_timeout, then the
 // bulletin is flushed, the connection drained and the embedded server
 // stopped. Whatever is still in the spool is sent at the next start.
-func (d *daemon) Run(ctx context.Context) error {
+func (d *Daemon) Run(ctx context.Context) error {
 	cfg := d.cfg
 	switch cfg.Role {
 	case config.RoleEdge:
@@ -222,7 +155,7 @@ func (d *daemon) Run(ctx context.Context) error {
 		g.Go(func() error { return httpSrv.Run(gctx) })
 	}
 
-	info := runInfo{NATSURL: b.URL}
+	info := Info{NATSURL: b.URL}
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
@@ -254,7 +187,7 @@ func (d *daemon) Run(ctx context.Context) error {
 }
 
 // finish logs the end of the run.
-func (d *daemon) finish(err error) error {
+func (d *Daemon) finish(err error) error {
 	if err != nil {
 		return err
 	}
@@ -278,7 +211,7 @@ type ackReply struct {
 // handleAck answers an acknowledgement request: {"id":"...","by":"..."} →
 // {"ok":true} or {"ok":false,"error":"..."}. The acknowledged event itself
 // goes out on the alert subject like every other state change.
-func (d *daemon) handleAck(m *nats.Msg) {
+func (d *Daemon) handleAck(m *nats.Msg) {
 	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
 	reply := func(err error) {
 		r := ackReply{OK: err == nil}
@@ -317,4 +250,22 @@ func (d *daemon) handleAck(m *nats.Msg) {
 		d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
 	}
 	reply(err)
+}
+
+// AlertStreamsReady returns nil once the JetStream streams of the alerts
+// and breaths exist, or why not yet.
+func (d *Daemon) AlertStreamsReady() error {
+	if d.del == nil {
+		return errors.New("not started")
+	}
+	return d.del.streamsReady()
+}
+
+// SpoolDepth returns how many alert events wait in the spool for JetStream
+// (0 before the start).
+func (d *Daemon) SpoolDepth() int {
+	if d.del == nil {
+		return 0
+	}
+	return d.del.pub.Depth()
 }

@@ -2,7 +2,6 @@ package daemon
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"sync"
@@ -15,6 +14,7 @@ import (
 	"trapline/alerts"
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 
@@ -406,7 +406,7 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 
 // heartbeat publishes the stream's status message.
 func (s *stream) heartbeat(now time.Time) {
-	st := streamStatus{
+	st := bus.StreamStatus{
 		Type:      "status",
 		Schema:    1,
 		Stream:    s.spec.ID,
@@ -417,32 +417,9 @@ func (s *stream) heartbeat(now time.Time) {
 		Active:    s.active.Load(),
 		Restarts:  s.restarts.Load(),
 	}
-	b, err := st.marshal()
+	b, err := st.Marshal()
 	if err != nil {
 		return
 	}
 	s.bull.Status(s.spec.ID, b)
-}
-
-// streamStatus is the status heartbeat published on
-// <prefix>.status.<stream>: whether the stream runs and reads, and its
-// counters so far.
-type streamStatus struct {
-	Type      string    `json:"type"`
-	Schema    int       `json:"schema"`
-	Stream    string    `json:"stream"`
-	Time      time.Time `json:"time"`
-	Running   bool      `json:"running"`
-	Connected bool      `json:"connected"`
-	Breaths   uint64    `json:"breaths"`
-	Active    int64     `json:"alerts_active"`
-	Restarts  uint64    `json:"restarts"`
-}
-
-func (st streamStatus) marshal() ([]byte, error) {
-	b, err := json.Marshal(st)
-	if err != nil {
-		return nil, fmt.Errorf("encode status of %s: %w", st.Stream, err)
-	}
-	return b, nil
 }

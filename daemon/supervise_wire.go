@@ -123,7 +123,7 @@ func (d *delivery) streamsReady() error {
 }
 
 // streamSpec builds the runner's view of one configured stream.
-func (d *daemon) streamSpec(sc config.Stream) (streamSpec, error) {
+func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	cfg := d.cfg
 	log := d.log.With().Str("stream", sc.ID).Logger()
 	opts := ingest.Options{

@@ -68,7 +68,7 @@ type streamAck struct {
 var errFenced = errors.New("fenced: another worker owns the partition now")
 
 // runWorker runs the worker role until ctx is cancelled.
-func (d *daemon) runWorker(ctx context.Context) error {
+func (d *Daemon) runWorker(ctx context.Context) error {
 	cfg := d.cfg
 	so := &cfg.ScaleOut
 	b, err := bus.Open(cfg, d.log)
@@ -147,7 +147,7 @@ func (d *daemon) runWorker(ctx context.Context) error {
 	})
 	w.log.Info().Int("partitions", so.Partitions).Int("replicas", reps).Str("nats", b.URL).Msg("trapline worker running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(runInfo{NATSURL: b.URL})
+		d.opts.Ready(Info{NATSURL: b.URL})
 	}
 	err = g.Wait()
 	w.log.Info().Msg("trapline worker stopped")

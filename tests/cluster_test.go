@@ -23,7 +23,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/alerts"
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // clusterMaxStore is each node's JetStream file store limit. The breath
@@ -130,7 +130,7 @@ func simFile(t *testing.T, dir, name, scenario string, dur time.Duration) string
 	t.Helper()
 	p := filepath.Join(dir, name+".csv")
 	code, out := runDaemon(t.Context(), "sim", "--scenario", scenario, "--duration", dur.String(), "--speed", "max", "--out", p)
-	if code != daemon.ExitOK {
+	if code != cli.ExitOK {
 		t.Fatalf("sim %s: exit %d: %s", scenario, code, out)
 	}
 	return p
@@ -140,7 +140,7 @@ func simFile(t *testing.T, dir, name, scenario string, dur time.Duration) string
 func reference(t *testing.T, file, stream string) (alertsOut []alerts.Event, breaths int) {
 	t.Helper()
 	code, out := runDaemon(t.Context(), "analyze", "--stream", stream, file)
-	if code != daemon.ExitOK {
+	if code != cli.ExitOK {
 		t.Fatalf("analyze %s: exit %d", file, code)
 	}
 	sc := bufio.NewScanner(strings.NewReader(out))

@@ -7,8 +7,7 @@ import (
 	"path/filepath"
 	"testing"
 	"time"
-
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // updateGoldenEnv regenerates the golden files of TestAnalyzeGolden when set
@@ -39,13 +38,13 @@ func TestAnalyzeGolden(t *testing.T) {
 			ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
 			defer cancel()
 			var rec, out, stderr bytes.Buffer
-			if code := daemon.Run(ctx, []string{"sim", "--scenario", tc.scenario, "--speed", "max",
+			if code := cli.Run(ctx, []string{"sim", "--scenario", tc.scenario, "--speed", "max",
 				"--duration", tc.duration, "--seed", "7", "--sample-rate", "50", "--log-level", "error"},
-				nil, &rec, &stderr); code != daemon.ExitOK {
+				nil, &rec, &stderr); code != cli.ExitOK {
 				t.Fatalf("sim exit %d: %s", code, stderr.String())
 			}
-			if code := daemon.Run(ctx, []string{"analyze", "--log-level", "error", "-"},
-				bytes.NewReader(rec.Bytes()), &out, &stderr); code != daemon.ExitOK {
+			if code := cli.Run(ctx, []string{"analyze", "--log-level", "error", "-"},
+				bytes.NewReader(rec.Bytes()), &out, &stderr); code != cli.ExitOK {
 				t.Fatalf("analyze exit %d: %s", code, stderr.String())
 			}
 			path := filepath.Join("testdata", "golden", tc.scenario+".ndjson")

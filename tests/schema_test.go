@@ -12,8 +12,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
-
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // schemaNode is the part of JSON Schema (draft 2020-12) that the shipped
@@ -145,12 +144,12 @@ func TestRecordsMatchSchemas(t *testing.T) {
 
 	signal := filepath.Join(t.TempDir(), "bronchospasm.txt")
 	var stderr bytes.Buffer
-	if code := daemon.Run(t.Context(), []string{"sim", "--scenario", "bronchospasm", "--speed", "max", "--out", signal},
-		strings.NewReader(""), io.Discard, &stderr); code != daemon.ExitOK {
+	if code := cli.Run(t.Context(), []string{"sim", "--scenario", "bronchospasm", "--speed", "max", "--out", signal},
+		strings.NewReader(""), io.Discard, &stderr); code != cli.ExitOK {
 		t.Fatalf("trapline sim exited %d: %s", code, stderr.String())
 	}
 	var out bytes.Buffer
-	if code := daemon.Run(t.Context(), []string{"analyze", signal}, strings.NewReader(""), &out, &stderr); code != daemon.ExitOK {
+	if code := cli.Run(t.Context(), []string{"analyze", signal}, strings.NewReader(""), &out, &stderr); code != cli.ExitOK {
 		t.Fatalf("trapline analyze exited %d: %s", code, stderr.String())
 	}
 

@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"fmt"
@@ -9,7 +9,7 @@ import (
 )
 
 // Version is the release version; set at build time with
-// -ldflags "-X trapline/daemon.Version=v1.2.3".
+// -ldflags "-X trapline/daemon/cli.Version=v1.2.3".
 var Version = "dev"
 
 func (a *app) versionCommand() *cobra.Command {

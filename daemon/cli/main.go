@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"context"
@@ -9,6 +9,7 @@ import (
 	"os/signal"
 	"strings"
 	"syscall"
+	"trapline/daemon"
 
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
@@ -28,16 +29,9 @@ const Caution = "CAUTION: research use only. trapline is not a medical device an
 	"ventilator's own alarms. Its alerts and predictions are model outputs, never instructions; local " +
 	"protocols and licensed clinicians decide."
 
-// UsageError marks an error caused by bad usage or bad configuration; Main
-// exits with ExitUsage for it.
-type UsageError struct{ Err error }
-
-func (e *UsageError) Error() string { return e.Err.Error() }
-func (e *UsageError) Unwrap() error { return e.Err }
-
 // usageErrorf returns a UsageError with a formatted message.
 func usageErrorf(format string, args ...any) error {
-	return &UsageError{Err: fmt.Errorf(format, args...)}
+	return &daemon.UsageError{Err: fmt.Errorf(format, args...)}
 }
 
 // app holds what every verb shares: streams and the logger.
@@ -76,7 +70,7 @@ func Run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 		return ExitOK
 	}
 	fmt.Fprintf(stderr, "trapline: %v\n", err)
-	var ue *UsageError
+	var ue *daemon.UsageError
 	if errors.As(err, &ue) || isCobraUsageError(err) {
 		return ExitUsage
 	}
@@ -94,14 +88,14 @@ func (a *app) rootCommand() *cobra.Command {
 		PersistentPreRunE: func(cmd *cobra.Command, _ []string) error {
 			log, err := newLogger(a.stderr, a.logLevel)
 			if err != nil {
-				return &UsageError{Err: err}
+				return &daemon.UsageError{Err: err}
 			}
 			a.log = log
 			return nil
 		},
 	}
 	root.PersistentFlags().StringVar(&a.logLevel, "log-level", "info", "log level: trace, debug, info, warn, error")
-	root.SetFlagErrorFunc(func(_ *cobra.Command, err error) error { return &UsageError{Err: err} })
+	root.SetFlagErrorFunc(func(_ *cobra.Command, err error) error { return &daemon.UsageError{Err: err} })
 	root.AddCommand(
 		a.analyzeCommand(),
 		a.predictCommand(),

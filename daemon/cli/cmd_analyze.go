@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"bufio"
@@ -19,6 +19,7 @@ import (
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
+	"trapline/daemon"
 	"trapline/ingest"
 )
 
@@ -166,7 +167,7 @@ func (c ctxReader) Read(p []byte) (int, error) {
 func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offline) (ingest.DecoderStats, error) {
 	dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: f.columns, RateHz: f.sampleRate, Stream: f.stream}, o.sample)
 	if err != nil {
-		return ingest.DecoderStats{}, &UsageError{Err: err}
+		return ingest.DecoderStats{}, &daemon.UsageError{Err: err}
 	}
 	var r io.Reader = a.stdin
 	name := "stdin"
@@ -199,7 +200,7 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 	if f.config != "" {
 		c, err := config.Load(f.config, nil)
 		if err != nil {
-			return &UsageError{Err: err}
+			return &daemon.UsageError{Err: err}
 		}
 		o.cfg, o.dcfg, o.lcfg = c.Analysis, c.Detectors, c.Alarms
 	}

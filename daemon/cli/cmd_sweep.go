@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"errors"
@@ -17,6 +17,7 @@ import (
 
 	"trapline/analyze"
 	"trapline/config"
+	"trapline/daemon"
 	"trapline/simulator/sweep"
 )
 
@@ -72,7 +73,7 @@ definitions of every figure are in docs/sweep.md.
 func sweepSet(path string) (sweep.DetectorSet, *analyze.Config, error) {
 	cfg, err := config.Load(path, nil)
 	if err != nil {
-		return sweep.DetectorSet{}, nil, &UsageError{Err: fmt.Errorf("sweep: %w", err)}
+		return sweep.DetectorSet{}, nil, &daemon.UsageError{Err: fmt.Errorf("sweep: %w", err)}
 	}
 	name := strings.TrimSuffix(filepath.Base(path), filepath.Ext(path))
 	return sweep.DetectorSet{Name: name, Detectors: cfg.Detectors, Alarms: cfg.Alarms}, &cfg.Analysis, nil
@@ -92,7 +93,7 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	case f.grid != "":
 		var err error
 		if g, err = sweep.LoadGrid(f.grid); err != nil {
-			return &UsageError{Err: fmt.Errorf("sweep: %w", err)}
+			return &daemon.UsageError{Err: fmt.Errorf("sweep: %w", err)}
 		}
 	}
 	if f.seeds > 0 {
@@ -100,7 +101,7 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	}
 	plan, err := g.Expand()
 	if err != nil {
-		return &UsageError{Err: fmt.Errorf("sweep: grid: %w", err)}
+		return &daemon.UsageError{Err: fmt.Errorf("sweep: grid: %w", err)}
 	}
 	opt := sweep.Options{Workers: f.workers}
 	first := sweep.DefaultDetectorSet()

@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"context"
@@ -152,7 +152,7 @@ type watchView struct {
 type streamView struct {
 	breath    analyze.Breath
 	hasBreath bool
-	status    *streamStatus
+	status    *bus.StreamStatus
 	active    map[string]alerts.Event
 }
 
@@ -282,7 +282,7 @@ func (v *watchView) handle(kind string, data []byte) {
 		s := v.stream(b.Stream)
 		s.breath, s.hasBreath = b, true
 	case "status":
-		var st streamStatus
+		var st bus.StreamStatus
 		if err := json.Unmarshal(data, &st); err != nil || !v.wanted(st.Stream) {
 			return
 		}

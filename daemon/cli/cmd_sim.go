@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"context"
@@ -15,6 +15,7 @@ import (
 	"github.com/spf13/cobra"
 	"github.com/spf13/pflag"
 
+	"trapline/daemon"
 	"trapline/ingest"
 	"trapline/simulator"
 )
@@ -101,7 +102,7 @@ func simScenario(fl *pflag.FlagSet, f simFlags) (simulator.Scenario, error) {
 	if f.scenario != "" {
 		var err error
 		if sc, err = simulator.LoadScenario(f.scenario); err != nil {
-			return sc, &UsageError{Err: fmt.Errorf("--scenario: %w", err)}
+			return sc, &daemon.UsageError{Err: fmt.Errorf("--scenario: %w", err)}
 		}
 	} else {
 		sc = simulator.Steady{
@@ -166,7 +167,7 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 	}
 	format, err := ingest.ParseFormat(f.format)
 	if err != nil {
-		return &UsageError{Err: fmt.Errorf("--format: %w", err)}
+		return &daemon.UsageError{Err: fmt.Errorf("--format: %w", err)}
 	}
 	if f.decimals < 0 || f.decimals > 17 {
 		return usageErrorf("--decimals %d: want 0 to 17", f.decimals)
@@ -183,7 +184,7 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 	}
 	sim, err := simulator.New(sc)
 	if err != nil {
-		return &UsageError{Err: err}
+		return &daemon.UsageError{Err: err}
 	}
 	var enc ingest.Encoder
 	if format == ingest.FormatBinary {
@@ -208,7 +209,7 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 		},
 	})
 	if err != nil {
-		return &UsageError{Err: fmt.Errorf("--out: %w", err)}
+		return &daemon.UsageError{Err: fmt.Errorf("--out: %w", err)}
 	}
 	opts := simulator.StreamOptions{
 		Encoder: enc,

@@ -1,4 +1,4 @@
-package daemon
+package cli
 
 import (
 	"context"
@@ -14,6 +14,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"trapline/config"
+	"trapline/daemon"
 	"trapline/ingest"
 	"trapline/simulator"
 )
@@ -78,7 +79,7 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	}
 	sc, err := simulator.LoadScenario(opts.Scenario)
 	if err != nil {
-		return &UsageError{Err: fmt.Errorf("--scenario: %w", err)}
+		return &daemon.UsageError{Err: fmt.Errorf("--scenario: %w", err)}
 	}
 	if opts.Stream != "" {
 		sc.Stream = opts.Stream
@@ -89,7 +90,7 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	opts.Stream = sc.Stream
 	sim, err := simulator.New(sc)
 	if err != nil {
-		return &UsageError{Err: fmt.Errorf("--scenario %s: %w", opts.Scenario, err)}
+		return &daemon.UsageError{Err: fmt.Errorf("--scenario %s: %w", opts.Scenario, err)}
 	}
 	fmt.Fprintln(out, Caution)
 	fmt.Fprintf(out, "\ndemo: scenario %q (%s), %.0f s of signal at %g× speed: about %.0f s.\n",
@@ -125,8 +126,8 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	if err != nil {
 		return fmt.Errorf("demo encoder: %w", err)
 	}
-	readyc := make(chan runInfo, 1)
-	d, err := newDaemon(cfg, log, daemonOptions{Ready: func(i runInfo) { readyc <- i }})
+	readyc := make(chan daemon.Info, 1)
+	d, err := daemon.New(cfg, log, daemon.Options{Ready: func(i daemon.Info) { readyc <- i }})
 	if err != nil {
 		return err
 	}
@@ -135,7 +136,7 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	var daemonErr error
 	daemonDone := make(chan struct{})
 	go func() { defer close(daemonDone); daemonErr = d.Run(dctx) }()
-	var info runInfo
+	var info daemon.Info
 	select {
 	case info = <-readyc:
 	case <-daemonDone:
@@ -145,7 +146,7 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	}
 
 	// The view replays alerts from JetStream: wait for the streams.
-	waitUntil(10*time.Second, func() bool { return d.del != nil && d.del.streamsReady() == nil })
+	waitUntil(10*time.Second, func() bool { return d.AlertStreamsReady() == nil })
 
 	nc, err := nats.Connect(info.NATSURL, nats.Name("trapline demo view"))
 	if err != nil {
@@ -186,7 +187,7 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	// Every alert raised so far has reached JetStream once the spool is
 	// empty; a moment later the view has it too. Then the view stops, and
 	// the daemon.
-	waitUntil(5*time.Second, func() bool { return d.del.pub.Depth() == 0 })
+	waitUntil(5*time.Second, func() bool { return d.SpoolDepth() == 0 })
 	time.Sleep(300 * time.Millisecond)
 	for _, s := range stops {
 		s()
