@@ -122,7 +122,7 @@ func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
 		out = enc.AppendFrame(out[:0], stream, p.samples)
 		msg := append([]byte(nil), out...)
 		p.samples = p.samples[:0]
-		if _, err := e.js.PublishMsgAsync(&nats.Msg{Subject: e.names.prefix + ".samples." + stream, Data: msg}); err != nil {
+		if _, err := e.js.PublishMsgAsync(&nats.Msg{Subject: e.names.subj().Samples(stream), Data: msg}); err != nil {
 			e.failed.Add(1)
 			return
 		}

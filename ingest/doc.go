@@ -16,8 +16,8 @@
 //	src, err := ingest.Open("serial:///dev/ttyUSB0?baud=115200", ingest.Options{Stream: "bed-4", Log: &log})
 //	err = src.Run(ctx, func(ev ingest.Event) { ... }) // samples, gaps, disconnections
 //
-// Writing samples (simulator, tests): NewTextEncoder, NewBinaryEncoder, and
-// NATSSink for the scale-out subjects. docs/framing.md describes both wire
+// Writing samples (simulator, tests, the scale-out edge): NewTextEncoder and
+// NewBinaryEncoder. docs/framing.md describes both wire
 // formats byte by byte; docs/sources.md every source URL and its behaviour
 // on failure.
 package ingest

@@ -548,9 +548,9 @@ func (b *backoff) wait(ctx context.Context) bool {
 const readChunk = 32 << 10
 
 // pump reads r until it fails and decodes what it reads. It returns the
-// read error (io.EOF at the end of a file). onIdle runs after every read
-// that returned no data or timed out; deadline, when not nil, is set before
-// each read so that a quiet link still returns to the loop.
+// read error (io.EOF at the end of a file). deadline, when not nil, is set
+// before each read so that a quiet link still returns to the loop after a
+// read that timed out.
 func (c *conn) pump(r io.Reader, deadline func(time.Time) error) error {
 	buf := make([]byte, readChunk)
 	for {

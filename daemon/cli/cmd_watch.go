@@ -211,7 +211,7 @@ func (v *watchView) subscribe(ctx context.Context, nc *nats.Conn, warn logFunc) 
 // opens with the recent history and then follows live. Without JetStream
 // (or no stream for the subject) it falls back to a plain subscription.
 func (v *watchView) subscribeAlerts(ctx context.Context, nc *nats.Conn, warn logFunc) (func(), error) {
-	subject := v.opts.Prefix + ".alert.>"
+	subject := alerts.Subjects{Prefix: v.opts.Prefix}.All(alerts.KindAlert)
 	plain := func() (func(), error) {
 		sub, err := nc.Subscribe(subject, func(m *nats.Msg) { v.handle("alert", m.Data) })
 		if err != nil {
