@@ -88,7 +88,7 @@ func (d *Daemon) runEdge(ctx context.Context) error {
 	}
 	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.URL).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(Info{NATSURL: b.URL})
+		d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
 	}
 	err = g.Wait()
 	// Wait (bounded) for the acknowledgements of what was sent.

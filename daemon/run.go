@@ -31,6 +31,9 @@ type Options struct {
 type Info struct {
 	// NATSURL is the client URL of the NATS server in use.
 	NATSURL string
+	// Client reaches that server with the daemon's credentials and TLS
+	// (set Name before connecting).
+	Client bus.ClientOptions
 	// HTTPAddr is the address of /healthz, /readyz and /metrics, or "".
 	HTTPAddr string
 }
@@ -155,7 +158,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		g.Go(func() error { return httpSrv.Run(gctx) })
 	}
 
-	info := Info{NATSURL: b.URL}
+	info := Info{NATSURL: b.URL, Client: b.ClientOptions("")}
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}

@@ -147,7 +147,7 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	})
 	w.log.Info().Int("partitions", so.Partitions).Int("replicas", reps).Str("nats", b.URL).Msg("trapline worker running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(Info{NATSURL: b.URL})
+		d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
 	}
 	err = g.Wait()
 	w.log.Info().Msg("trapline worker stopped")

@@ -27,6 +27,28 @@ type Bus struct {
 	// Server is the embedded server, nil when nats.url is set.
 	Server *Embedded
 	log    zerolog.Logger
+	client ClientOptions
+}
+
+// ClientOptions returns the options of the daemon's own connection under
+// another connection name: what an in-process client (the demo's view)
+// uses to reach the same server with the same credentials and TLS.
+func (b *Bus) ClientOptions(name string) ClientOptions {
+	o := b.client
+	o.Name = name
+	return o
+}
+
+// ClientFromConfig maps the configuration's nats section onto the options
+// of a connection to an external server (nats.url): every client of
+// trapline (the daemon, its roles, watch) connects with these.
+func ClientFromConfig(n *config.NATS, name string) ClientOptions {
+	return ClientOptions{
+		URL: n.URL, Name: name,
+		User: n.User, Password: n.Password, Token: n.Token,
+		CredsFile: n.CredsFile, NKeySeedFile: n.NKeySeedFile,
+		TLS: TLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile},
+	}
 }
 
 // Embedded reports whether the server runs inside this process.
@@ -61,20 +83,17 @@ func (b *Bus) Close() {
 // connection keeps trying and alerts wait in the spool meanwhile.
 func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
 	n := &cfg.NATS
-	tls := TLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile}
 	b := &Bus{log: log}
 	if !cfg.EmbeddedNATS() {
-		nc, err := Connect(ClientOptions{
-			URL: n.URL, Name: "trapline",
-			User: n.User, Password: n.Password, Token: n.Token,
-			CredsFile: n.CredsFile, NKeySeedFile: n.NKeySeedFile, TLS: tls,
-		}, log)
+		b.client = ClientFromConfig(n, "trapline")
+		nc, err := Connect(b.client, log)
 		if err != nil {
 			return nil, fmt.Errorf("nats.url: %w", err)
 		}
 		b.Conn, b.URL = nc, RedactURL(n.URL)
 		return b, nil
 	}
+	tls := TLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile}
 	srv, err := StartEmbedded(EmbeddedOptions{
 		Host: n.Embedded.Host, Port: n.Embedded.Port, StoreDir: cfg.NATSStoreDir(),
 		MaxStoreBytes: int64(n.Embedded.MaxStore), MaxMemoryBytes: int64(n.Embedded.MaxMemory),
@@ -87,7 +106,8 @@ func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
 		}
 		return nil, fmt.Errorf("embedded NATS: %w", err)
 	}
-	nc, err := Connect(srv.ClientOptions("trapline"), log)
+	b.client = srv.ClientOptions("trapline")
+	nc, err := Connect(b.client, log)
 	if err != nil {
 		_ = srv.Shutdown(10 * time.Second)
 		return nil, fmt.Errorf("connect to the embedded NATS: %w", err)

@@ -9,12 +9,12 @@ import (
 	"path/filepath"
 	"time"
 
-	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
 
 	"trapline/config"
 	"trapline/daemon"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 	"trapline/simulator"
 )
@@ -148,7 +148,9 @@ func runDemo(ctx context.Context, opts demoOptions, out, errOut io.Writer, log z
 	// The view replays alerts from JetStream: wait for the streams.
 	waitUntil(10*time.Second, func() bool { return d.AlertStreamsReady() == nil })
 
-	nc, err := nats.Connect(info.NATSURL, nats.Name("trapline demo view"))
+	vo := info.Client
+	vo.Name = "trapline demo view"
+	nc, err := bus.Connect(vo, log)
 	if err != nil {
 		return fmt.Errorf("connect to the demo's NATS at %s: %w", info.NATSURL, err)
 	}

@@ -11,6 +11,8 @@ import (
 	"strings"
 	"sync"
 	"time"
+	"trapline/config"
+	"trapline/daemon"
 	"trapline/daemon/bus"
 
 	"github.com/mattn/go-isatty"
@@ -49,8 +51,8 @@ type watchOptions struct {
 
 func (a *app) watchCommand() *cobra.Command {
 	var (
-		url  string
-		opts = watchOptions{Prefix: "trapline", Since: time.Hour}
+		url, cfgPath string
+		opts         = watchOptions{Prefix: "trapline", Since: time.Hour}
 	)
 	cmd := &cobra.Command{
 		Use:   "watch",
@@ -69,26 +71,22 @@ func (a *app) watchCommand() *cobra.Command {
 				return usageErrorf("--prefix %q: want a subject prefix without spaces or wildcards", opts.Prefix)
 			}
 			ctx := cmd.Context()
-			nc, err := nats.Connect(url,
-				nats.Name("trapline watch"),
-				nats.MaxReconnects(-1),
-				nats.RetryOnFailedConnect(true),
-				nats.ReconnectWait(time.Second),
-				nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
-					if err != nil {
-						a.log.Warn().Err(err).Msg("disconnected from NATS; reconnecting")
-					}
-				}),
-				nats.ReconnectHandler(func(*nats.Conn) { a.log.Info().Msg("reconnected to NATS") }),
-			)
+			co, prefix, err := watchClient(url, cfgPath, cmd.Flags().Changed("nats-url"))
 			if err != nil {
-				return fmt.Errorf("connect to %s: %w", url, err)
+				return err
+			}
+			if prefix != "" && !cmd.Flags().Changed("prefix") {
+				opts.Prefix = prefix
+			}
+			nc, err := bus.Connect(co, a.log)
+			if err != nil {
+				return err
 			}
 			defer nc.Close()
 			// The alert replay needs JetStream: wait for the server rather
 			// than fall back to live alerts only.
 			if !nc.IsConnected() {
-				a.log.Warn().Str("url", bus.RedactURL(url)).Msg("waiting for NATS")
+				a.log.Warn().Str("url", bus.RedactURL(co.URL)).Msg("waiting for NATS")
 				for !nc.IsConnected() {
 					select {
 					case <-ctx.Done():
@@ -102,6 +100,7 @@ func (a *app) watchCommand() *cobra.Command {
 	}
 	f := cmd.Flags()
 	f.StringVar(&url, "nats-url", defaultNATSURL, "NATS server to read from")
+	f.StringVarP(&cfgPath, "config", "c", "", "configuration file whose nats section (url, credentials, TLS) applies")
 	f.StringVar(&opts.Prefix, "prefix", opts.Prefix, "subject prefix of the daemon (nats.prefix)")
 	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
 	f.BoolVar(&opts.JSON, "json", false, "print breath records and alert events as NDJSON instead of the view")
@@ -109,6 +108,25 @@ func (a *app) watchCommand() *cobra.Command {
 	f.BoolVar(&opts.Status, "status", false, "with --json, also print the status heartbeats")
 	f.StringSliceVar(&opts.Streams, "stream", nil, "show only these streams (repeat or comma-separate)")
 	return cmd
+}
+
+// watchClient returns the connection options of watch: those of the
+// configuration file's nats section when one is given (--nats-url, when
+// set, overrides its url), else the plain --nats-url. With a file it also
+// returns the file's subject prefix.
+func watchClient(url, cfgPath string, urlSet bool) (bus.ClientOptions, string, error) {
+	if cfgPath == "" {
+		return bus.ClientOptions{URL: url, Name: "trapline watch"}, "", nil
+	}
+	cfg, err := config.Load(cfgPath, nil)
+	if err != nil {
+		return bus.ClientOptions{}, "", &daemon.UsageError{Err: err}
+	}
+	co := bus.ClientFromConfig(&cfg.NATS, "trapline watch")
+	if urlSet || co.URL == "" {
+		co.URL = url
+	}
+	return co, cfg.NATS.SubjectPrefix, nil
 }
 
 // runWatch shows what arrives on nc until ctx is cancelled. warn logs
