@@ -2,10 +2,8 @@ package daemon
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
-	"strings"
 	"time"
 	"trapline/daemon/bus"
 
@@ -129,7 +127,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		d.ready.set("stream "+sc.ID, s.ready)
 	}
 
-	ackSub, err := b.Conn.Subscribe(d.subj.All(alerts.KindAck), d.handleAck)
+	ackSub, err := d.ackService().Subscribe(b.Conn, d.subj)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
 	}
@@ -198,61 +196,21 @@ func (d *Daemon) finish(err error) error {
 	return nil
 }
 
-// ackRequestBody is the body of an acknowledgement request on
-// <prefix>.ack.<stream>.
-type ackRequestBody struct {
-	ID string `json:"id"`
-	By string `json:"by"`
-}
-
-// ackReply is the answer to an acknowledgement request.
-type ackReply struct {
-	OK    bool   `json:"ok"`
-	Error string `json:"error,omitempty"`
-}
-
-// handleAck answers an acknowledgement request: {"id":"...","by":"..."} →
-// {"ok":true} or {"ok":false,"error":"..."}. The acknowledged event itself
-// goes out on the alert subject like every other state change.
-func (d *Daemon) handleAck(m *nats.Msg) {
-	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
-	reply := func(err error) {
-		r := ackReply{OK: err == nil}
-		result := "ok"
-		if err != nil {
-			r.Error = err.Error()
-			result = "error"
-		}
-		d.m.acks.WithLabelValues(tok, result).Inc()
-		if m.Reply == "" {
-			return
-		}
-		b, _ := json.Marshal(r)
-		if rerr := m.Respond(b); rerr != nil {
-			d.log.Warn().Err(rerr).Str("subject", m.Subject).Msg("ack reply failed")
-		}
+// ackService serves the acknowledgements of the streams of this process.
+func (d *Daemon) ackService() *bus.AckService {
+	return &bus.AckService{
+		Here: func(tok string) bool { return d.byToken[tok] != nil },
+		Ack: func(ctx context.Context, tok string, req bus.AckRequest) error {
+			s := d.byToken[tok]
+			err := s.ack(ctx, req.ID, req.By)
+			if err == nil {
+				d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+			}
+			return err
+		},
+		Counted: func(tok, result string) { d.m.acks.WithLabelValues(tok, result).Inc() },
+		Log:     d.log,
 	}
-	s := d.byToken[tok]
-	if s == nil {
-		reply(fmt.Errorf("no stream %q here", tok))
-		return
-	}
-	var req ackRequestBody
-	if err := json.Unmarshal(m.Data, &req); err != nil {
-		reply(fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
-		return
-	}
-	if req.ID == "" {
-		reply(errors.New("bad ack request: empty id"))
-		return
-	}
-	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
-	defer cancel()
-	err := s.ack(ctx, req.ID, req.By)
-	if err == nil {
-		d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
-	}
-	reply(err)
 }
 
 // AlertStreamsReady returns nil once the JetStream streams of the alerts

@@ -14,6 +14,7 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/config"
+	"trapline/daemon/bus"
 )
 
 // TestRunStartsAndStopsCleanly runs the whole daemon in-process (embedded
@@ -86,7 +87,7 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 		if err != nil {
 			t.Fatalf("request %s: %v", tc.subject, err)
 		}
-		var r ackReply
+		var r bus.AckReply
 		if err := json.Unmarshal(msg.Data, &r); err != nil || r.OK || !strings.Contains(r.Error, tc.wantErr) {
 			t.Errorf("ack %s %s: reply %s, want an error containing %q", tc.subject, tc.body, msg.Data, tc.wantErr)
 		}

@@ -121,7 +121,7 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	}
 	w.bull = bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, w.log)
 	mem := newMembers(mkv, id, so.Heartbeat, so.MemberTTL, w.log)
-	ackSub, err := b.Conn.Subscribe(w.subj.All(alerts.KindAck), w.handleAck)
+	ackSub, err := w.ackService().Subscribe(b.Conn, w.subj)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", w.subj.All(alerts.KindAck), err)
 	}
@@ -169,44 +169,32 @@ func defaultWorkerID() string {
 	return h + "-" + strconv.Itoa(os.Getpid())
 }
 
-// handleAck passes an acknowledgement request to the partition runner that
-// analyses the stream here. Every worker hears the request; only the
+// ackService passes an acknowledgement request to the partition runner
+// that analyses the stream here. Every worker hears the request; only the
 // stream's owner answers it, the others stay silent.
-func (w *worker) handleAck(m *nats.Msg) {
-	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
-	v, ok := w.routes.Load(tok)
-	if !ok {
-		return
-	}
-	respond := func(err error) {
-		r := ackReply{OK: err == nil}
-		if err != nil {
-			r.Error = err.Error()
-		}
-		if m.Reply != "" {
-			b, _ := json.Marshal(r)
-			_ = m.Respond(b)
-		}
-	}
-	var body ackRequestBody
-	if err := json.Unmarshal(m.Data, &body); err != nil || body.ID == "" {
-		respond(fmt.Errorf("bad ack request (want {\"id\":\"...\",\"by\":\"...\"})"))
-		return
-	}
-	req := streamAck{stream: tok, req: ackRequest{ID: body.ID, By: body.By, Reply: make(chan error, 1)}}
-	t := time.NewTimer(5 * time.Second)
-	defer t.Stop()
-	select {
-	case v.(chan streamAck) <- req:
-	case <-t.C:
-		respond(fmt.Errorf("stream %s is busy", tok))
-		return
-	}
-	select {
-	case err := <-req.req.Reply:
-		respond(err)
-	case <-t.C:
-		respond(fmt.Errorf("stream %s did not answer in time", tok))
+func (w *worker) ackService() *bus.AckService {
+	return &bus.AckService{
+		Here: func(tok string) bool { _, ok := w.routes.Load(tok); return ok },
+		Ack: func(ctx context.Context, tok string, body bus.AckRequest) error {
+			v, ok := w.routes.Load(tok)
+			if !ok {
+				return fmt.Errorf("stream %s is being handed over; try again", tok)
+			}
+			req := streamAck{stream: tok, req: ackRequest{ID: body.ID, By: body.By, Reply: make(chan error, 1)}}
+			select {
+			case v.(chan streamAck) <- req:
+			case <-ctx.Done():
+				return fmt.Errorf("stream %s is busy", tok)
+			}
+			select {
+			case err := <-req.req.Reply:
+				return err
+			case <-ctx.Done():
+				return fmt.Errorf("stream %s did not answer in time", tok)
+			}
+		},
+		Silent: true,
+		Log:    w.log,
 	}
 }
 
