@@ -7,6 +7,7 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
@@ -230,7 +231,7 @@ func (p *Publisher) Run(ctx context.Context) error {
 	defer tick.Stop()
 	retry := time.NewTimer(0) // drain at start
 	defer retry.Stop()
-	backoff := time.Duration(0)
+	wait := time.Duration(0) // the current retry pause, 0 when not backing off
 	// After a restart the oldest event may have landed just before the
 	// process died, possibly longer ago than the de-duplication window.
 	if e, ok, err := p.spool.Oldest(); err == nil && ok {
@@ -244,20 +245,20 @@ func (p *Publisher) Run(ctx context.Context) error {
 			return nil
 		case <-status:
 			// Reconnected: the server is back, try at once.
-			backoff = 0
+			wait = 0
 		case <-p.wake:
-			if backoff > 0 {
+			if wait > 0 {
 				continue // backing off; the retry timer comes
 			}
 		case <-tick.C:
 		case <-retry.C:
 		}
 		if err := p.drain(ctx); err != nil {
-			backoff = min(max(2*backoff, p.opts.RetryMin), p.opts.RetryMax)
-			retry.Reset(backoff)
+			wait = backoff.Double(wait, p.opts.RetryMin, p.opts.RetryMax)
+			retry.Reset(wait)
 			continue
 		}
-		backoff = 0
+		wait = 0
 	}
 }
 

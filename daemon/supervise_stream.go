@@ -65,7 +65,7 @@ type streamSpec struct {
 	// StatusEvery is the period of the status heartbeat on NATS.
 	StatusEvery time.Duration
 	// Backoff is the restart policy; zero means defaultBackoff.
-	Backoff backoff
+	Backoff restartPolicy
 	// Finite marks a source that has an end (a file, stdin): when it
 	// reaches it, the stream is finished rather than restarted, so that a
 	// recording is analysed once and not replayed over and over.

@@ -140,7 +140,7 @@ func waitFor(t *testing.T, d time.Duration, what string, cond func() bool) {
 }
 
 func TestBackoffDoublesUpToMax(t *testing.T) {
-	b := backoff{Min: 100 * time.Millisecond, Max: time.Second}
+	b := restartPolicy{Min: 100 * time.Millisecond, Max: time.Second}
 	var got []time.Duration
 	w := time.Duration(0)
 	for range 6 {
@@ -159,7 +159,7 @@ func TestFailingStreamRestartsWithoutDisturbingOthers(t *testing.T) {
 	m := newMetrics()
 	sink := newMemSink()
 	log := zerolog.Nop()
-	quick := backoff{Min: 20 * time.Millisecond, Max: 80 * time.Millisecond, StableAfter: time.Minute}
+	quick := restartPolicy{Min: 20 * time.Millisecond, Max: 80 * time.Millisecond, StableAfter: time.Minute}
 	var opens atomic.Int32
 	var flushed atomic.Bool
 	good := newStream(streamSpec{
@@ -347,7 +347,7 @@ func TestFiniteSourceFinishesItsStream(t *testing.T) {
 			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-7"})
 			return src, &sampleCounter{countingPipeline{stream: "bed-7"}, &analysed}, err
 		},
-		Backoff: backoff{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
 	}, zerolog.Nop(), newMetrics(), sink, sink)
 
 	done := make(chan error, 1)

@@ -12,6 +12,7 @@ import (
 	"sync"
 	"time"
 	"trapline/daemon/bus"
+	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
@@ -656,7 +657,8 @@ func (w *worker) publishAlert(ctx context.Context, ev *alerts.Event) error {
 		return err
 	}
 	subj := w.subj.Alert(ev.Stream)
-	for wait := 100 * time.Millisecond; ; wait = min(2*wait, 2*time.Second) {
+	b := backoff.Backoff{Min: 100 * time.Millisecond, Max: 2 * time.Second, Jitter: 0.2}
+	for {
 		cctx, cancel := context.WithTimeout(ctx, w.cfg.NATS.PublishTimeout)
 		_, err := w.js.PublishMsg(cctx, &nats.Msg{Subject: subj, Data: data},
 			jetstream.WithMsgID(ev.DedupID()), jetstream.WithExpectStream(w.alertsJS))
@@ -668,12 +670,8 @@ func (w *worker) publishAlert(ctx context.Context, ev *alerts.Event) error {
 			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), ctx.Err())
 		}
 		w.log.Warn().Err(err).Str("id", ev.DedupID()).Msg("alert publish failed; retrying with the same id")
-		t := time.NewTimer(wait)
-		select {
-		case <-ctx.Done():
-			t.Stop()
+		if !b.Wait(ctx) {
 			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), ctx.Err())
-		case <-t.C:
 		}
 	}
 }

@@ -10,6 +10,7 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
@@ -512,36 +513,7 @@ func (p *pacer) wait(ctx context.Context, tS float64) {
 	if d <= 0 {
 		return
 	}
-	t := time.NewTimer(d)
-	defer t.Stop()
-	select {
-	case <-t.C:
-	case <-ctx.Done():
-	}
-}
-
-// backoff is a capped exponential backoff.
-type backoff struct {
-	min, max, cur time.Duration
-}
-
-func (b *backoff) reset() { b.cur = 0 }
-
-// wait sleeps for the next delay and reports false when ctx ended.
-func (b *backoff) wait(ctx context.Context) bool {
-	if b.cur == 0 {
-		b.cur = b.min
-	} else {
-		b.cur = min(2*b.cur, b.max)
-	}
-	t := time.NewTimer(b.cur)
-	defer t.Stop()
-	select {
-	case <-t.C:
-		return true
-	case <-ctx.Done():
-		return false
-	}
+	backoff.Sleep(ctx, nil, d)
 }
 
 // readChunk is the buffer size of stream reads.
