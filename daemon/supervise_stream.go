@@ -70,6 +70,9 @@ type streamSpec struct {
 	// reaches it, the stream is finished rather than restarted, so that a
 	// recording is analysed once and not replayed over and over.
 	Finite bool
+	// Overload is the source's resolved overload policy: OverloadBlock
+	// makes the stream's queue wait for the analysis too.
+	Overload ingest.OverloadPolicy
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -276,9 +279,11 @@ func (s *stream) runSource(ctx context.Context) error {
 }
 
 // enqueue copies the event (its samples are only valid during the call) and
-// queues it without blocking the source for long. A full queue means the
-// analysis fell behind: the batch is dropped and counted, with one warning
-// per episode. Status events are never dropped.
+// queues it. The stream follows its source's overload policy: behind a
+// source that blocks (a file, stdin: nothing dropped) it waits for the
+// analysis; behind a live source it does not wait, and a full queue means
+// the analysis fell behind: the batch is dropped and counted, with one
+// warning per episode. Status events are never dropped.
 func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}, ev ingest.Event) {
 	if ev.Status == ingest.StatusConnected {
 		s.connected.Store(true)
@@ -296,7 +301,7 @@ func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}
 		}
 		ev.Samples = append([]ingest.Sample(nil), ev.Samples...)
 	}
-	if ev.Status != ingest.StatusNone {
+	if ev.Status != ingest.StatusNone || s.spec.Overload == ingest.OverloadBlock {
 		select {
 		case queue <- ev:
 		case <-analysisDone:

@@ -370,3 +370,51 @@ func TestFiniteSourceFinishesItsStream(t *testing.T) {
 		t.Errorf("a finished stream is not ready: %v", err)
 	}
 }
+
+// slowCounter is a sampleCounter whose analysis takes a while per batch.
+type slowCounter struct{ sampleCounter }
+
+func (p *slowCounter) Samples(ss []ingest.Sample) stageOutput {
+	time.Sleep(2 * time.Millisecond)
+	return p.sampleCounter.Samples(ss)
+}
+
+// TestBlockingSourceDropsNothing reads a recording through a file source
+// into an analysis slower than the file and a queue of one batch: behind a
+// source that promises to drop nothing, the stream waits for the analysis
+// and every sample is analysed.
+func TestBlockingSourceDropsNothing(t *testing.T) {
+	const n = 3000
+	path := t.TempDir() + "/bed-8.csv"
+	var b strings.Builder
+	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
+	for i := range n {
+		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
+	}
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	var analysed atomic.Int64
+	sink := newMemSink()
+	s := newStream(streamSpec{
+		ID: "bed-8", Finite: true, QueueLen: 1, Overload: ingest.OverloadDefault.For("file"),
+		Open: func() (ingest.Source, streamPipeline, error) {
+			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-8", Buffer: 1})
+			return src, &slowCounter{sampleCounter{countingPipeline{stream: "bed-8"}, &analysed}}, err
+		},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+	}, zerolog.Nop(), newMetrics(), sink, sink)
+	done := make(chan error, 1)
+	go func() { done <- s.Run(t.Context()) }()
+	select {
+	case err := <-done:
+		if err != nil {
+			t.Fatalf("Run: %v", err)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("the stream did not end within 30 s")
+	}
+	if got := analysed.Load(); got != n {
+		t.Errorf("analysed %d samples, want all %d", got, n)
+	}
+}

@@ -138,8 +138,9 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 	}
 	return streamSpec{
-		ID:     sc.ID,
-		Finite: u.Scheme == "file" || u.Scheme == "stdin",
+		ID:       sc.ID,
+		Finite:   u.Scheme == "file" || u.Scheme == "stdin",
+		Overload: opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {

@@ -120,12 +120,7 @@ func OpenSpec(spec Spec, opts Options) (Source, error) {
 	if opts.Silence == 0 {
 		opts.Silence = 3 * time.Second
 	}
-	if opts.Overload == OverloadDefault {
-		opts.Overload = OverloadDropOldest
-		if spec.Scheme == "file" || spec.Scheme == "stdin" {
-			opts.Overload = OverloadBlock
-		}
-	}
+	opts.Overload = opts.Overload.For(spec.Scheme)
 	if opts.Stdin == nil {
 		opts.Stdin = os.Stdin
 	}
