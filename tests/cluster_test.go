@@ -357,9 +357,14 @@ func (s *scaleSetup) stored(t *testing.T, n int) []alerts.Event {
 
 // tryStored reads the whole alert stream, giving up after 5 s.
 func (s *scaleSetup) tryStored(ctx context.Context) ([]alerts.Event, error) {
+	return readAlerts(ctx, s.js)
+}
+
+// readAlerts reads the whole alert stream of js, giving up after 5 s.
+func readAlerts(ctx context.Context, js jetstream.JetStream) ([]alerts.Event, error) {
 	ctx, cancel := context.WithTimeout(ctx, 5*time.Second)
 	defer cancel()
-	c, err := s.js.OrderedConsumer(ctx, "TRAPLINE_ALERTS", jetstream.OrderedConsumerConfig{})
+	c, err := js.OrderedConsumer(ctx, "TRAPLINE_ALERTS", jetstream.OrderedConsumerConfig{})
 	if err != nil {
 		return nil, err
 	}
