@@ -7,11 +7,12 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
-	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
 // ErrPublisherClosed is returned by Publish after Close.

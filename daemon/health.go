@@ -11,10 +11,11 @@ import (
 	"sync"
 	"syscall"
 	"time"
-	"trapline/daemon/bus"
 
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"github.com/rs/zerolog"
+
+	"trapline/daemon/bus"
 )
 
 // ErrPortInUse is returned when a listen address is already taken by another

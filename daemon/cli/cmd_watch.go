@@ -11,9 +11,6 @@ import (
 	"strings"
 	"sync"
 	"time"
-	"trapline/config"
-	"trapline/daemon"
-	"trapline/daemon/bus"
 
 	"github.com/mattn/go-isatty"
 	"github.com/nats-io/nats.go"
@@ -24,6 +21,9 @@ import (
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/config"
+	"trapline/daemon"
+	"trapline/daemon/bus"
 )
 
 // defaultNATSURL is where the embedded server listens by default.

@@ -9,10 +9,11 @@ import (
 	"os/signal"
 	"strings"
 	"syscall"
-	"trapline/daemon"
 
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
+
+	"trapline/daemon"
 )
 
 // Exit codes of the trapline command.
