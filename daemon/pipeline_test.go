@@ -7,9 +7,9 @@ import (
 	"strings"
 	"testing"
 	"time"
-	"trapline/alerts/pipeline"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 	"trapline/simulator"

@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"time"
-	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
@@ -13,6 +12,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/config"
+	"trapline/daemon/bus"
 )
 
 // Options are hooks for callers that run the daemon in-process (the

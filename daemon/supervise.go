@@ -6,9 +6,10 @@ import (
 	"fmt"
 	"runtime/debug"
 	"time"
-	"trapline/ingest/backoff"
 
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
 // restartPolicy is the restart policy of a supervised part: the wait doubles after

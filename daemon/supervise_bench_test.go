@@ -6,11 +6,11 @@ import (
 	"sync/atomic"
 	"testing"
 	"time"
-	"trapline/alerts/pipeline"
 
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 )

@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"sync/atomic"
 	"time"
-	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
@@ -16,6 +15,7 @@ import (
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 

@@ -10,7 +10,6 @@ import (
 	"strings"
 	"sync"
 	"time"
-	"trapline/daemon/bus"
 
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/rs/zerolog"
@@ -18,6 +17,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/config"
+	"trapline/daemon/bus"
 )
 
 // worker is the worker role: it analyses the streams of the partitions of

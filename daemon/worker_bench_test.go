@@ -3,8 +3,8 @@ package daemon
 import (
 	"testing"
 	"time"
-	"trapline/alerts/pipeline"
 
+	"trapline/alerts/pipeline"
 	"trapline/ingest"
 	"trapline/simulator"
 )

@@ -8,9 +8,10 @@ import (
 	"strconv"
 	"strings"
 	"time"
-	"trapline/alerts"
 
 	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/alerts"
 )
 
 // partitionCheckpoint is the record p.<partition> of the state bucket:

@@ -6,15 +6,16 @@ import (
 	"fmt"
 	"strconv"
 	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+	"github.com/rs/zerolog"
+
 	"trapline/alerts"
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 	"trapline/ingest/backoff"
-
-	"github.com/nats-io/nats.go"
-	"github.com/nats-io/nats.go/jetstream"
-	"github.com/rs/zerolog"
 )
 
 // streamRun is the analysis of one stream inside a partition runner.

@@ -10,11 +10,12 @@ import (
 	"strings"
 	"sync"
 	"time"
-	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
 	"go.bug.st/serial"
+
+	"trapline/ingest/backoff"
 )
 
 // readFile reads a file to its end. A file that cannot be opened stops the

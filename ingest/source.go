@@ -10,10 +10,11 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
-	"trapline/ingest/backoff"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
 // ErrNoData explains a StatusDisconnected sent when a live source has read

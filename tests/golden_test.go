@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"testing"
 	"time"
+
 	"trapline/daemon/cli"
 )
 

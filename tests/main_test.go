@@ -13,6 +13,7 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
 	"trapline/daemon/cli"
 )
 

@@ -11,10 +11,11 @@ import (
 	"strings"
 	"testing"
 	"time"
-	"trapline/daemon/cli"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/daemon/cli"
 )
 
 // outageConfig is a daemon reading the pseudo-terminal link and publishing

@@ -12,6 +12,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
+
 	"trapline/daemon/cli"
 )
 
