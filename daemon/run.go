@@ -99,32 +99,15 @@ func (d *Daemon) Run(ctx context.Context) error {
 	defer b.Close()
 	d.nc = b.Conn
 
-	del, err := openDelivery(cfg, b, d.log)
+	del, err := d.startDelivery(b)
 	if err != nil {
 		return err
 	}
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
-	d.del = del
-	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
-	d.ready.set("nats", func() error {
-		if !b.Conn.IsConnected() {
-			return fmt.Errorf("not connected (%s)", b.Conn.Status())
-		}
-		return nil
-	})
-	d.ready.set("jetstream", del.streamsReady)
-
-	for _, sc := range cfg.Streams {
-		spec, err := d.streamSpec(sc)
-		if err != nil {
-			return err
-		}
-		s := newStream(spec, d.log, d.m, del, del)
-		d.streams = append(d.streams, s)
-		d.byToken[alerts.SubjectToken(sc.ID)] = s
-		d.ready.set("stream "+sc.ID, s.ready)
+	if err := d.addStreams(del); err != nil {
+		return err
 	}
 
 	ackSub, err := d.ackService().Subscribe(b.Conn, d.subj)
@@ -156,35 +139,9 @@ func (d *Daemon) Run(ctx context.Context) error {
 		g.Go(func() error { return httpSrv.Run(gctx) })
 	}
 
-	info := Info{NATSURL: b.URL, Client: b.ClientOptions("")}
-	if httpSrv != nil {
-		info.HTTPAddr = httpSrv.Addr()
-	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
-	if d.opts.Ready != nil {
-		d.opts.Ready(info)
-	}
+	d.announce(b, httpSrv)
 
-	done := make(chan error, 1)
-	go func() { done <- g.Wait() }()
-	select {
-	case err := <-done:
-		return d.finish(err)
-	case <-ctx.Done():
-	}
-	d.log.Info().Stringer("limit", cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
-	// The publisher's own drain is bounded by shutdown_timeout; the margin
-	// covers the sources and analysis before it.
-	limit := cfg.ShutdownTimeout + 5*time.Second
-	t := time.NewTimer(limit)
-	defer t.Stop()
-	select {
-	case err := <-done:
-		return d.finish(err)
-	case <-t.C:
-		return fmt.Errorf("shutdown did not finish within %v; pending alerts stay in the spool %s", limit, cfg.SpoolDir())
-	}
+	return d.wait(ctx, g)
 }
 
 // finish logs the end of the run.
@@ -229,4 +186,75 @@ func (d *Daemon) SpoolDepth() int {
 		return 0
 	}
 	return d.del.pub.Depth()
+}
+
+// startDelivery opens the alert publisher and the bulletin on b and
+// registers their metrics and readiness checks.
+func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
+	del, err := openDelivery(d.cfg, b, d.log)
+	if err != nil {
+		return nil, err
+	}
+	d.del = del
+	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
+	d.ready.set("nats", func() error {
+		if !b.Conn.IsConnected() {
+			return fmt.Errorf("not connected (%s)", b.Conn.Status())
+		}
+		return nil
+	})
+	d.ready.set("jetstream", del.streamsReady)
+	return del, nil
+}
+
+// addStreams makes the configured streams, delivering to del.
+func (d *Daemon) addStreams(del *delivery) error {
+	for _, sc := range d.cfg.Streams {
+		spec, err := d.streamSpec(sc)
+		if err != nil {
+			return err
+		}
+		s := newStream(spec, d.log, d.m, del, del)
+		d.streams = append(d.streams, s)
+		d.byToken[alerts.SubjectToken(sc.ID)] = s
+		d.ready.set("stream "+sc.ID, s.ready)
+	}
+	return nil
+}
+
+// wait waits for g, or after ctx is cancelled for the shutdown, bounded by
+// shutdown_timeout plus a margin.
+func (d *Daemon) wait(ctx context.Context, g *errgroup.Group) error {
+	done := make(chan error, 1)
+	go func() { done <- g.Wait() }()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-ctx.Done():
+	}
+	d.log.Info().Stringer("limit", d.cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
+	// The publisher's own drain is bounded by shutdown_timeout; the margin
+	// covers the sources and analysis before it.
+	limit := d.cfg.ShutdownTimeout + 5*time.Second
+	t := time.NewTimer(limit)
+	defer t.Stop()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-t.C:
+		return fmt.Errorf("shutdown did not finish within %v; pending alerts stay in the spool %s", limit, d.cfg.SpoolDir())
+	}
+}
+
+// announce logs that the daemon runs and tells an in-process caller where.
+func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
+	info := Info{NATSURL: b.URL, Client: b.ClientOptions("")}
+	if httpSrv != nil {
+		info.HTTPAddr = httpSrv.Addr()
+	}
+	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
+		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
+	if d.opts.Ready != nil {
+		d.opts.Ready(info)
+	}
 }
