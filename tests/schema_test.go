@@ -138,7 +138,7 @@ func (s *schemaNode) check(path string, v any) []string {
 // `trapline sim` and `trapline analyze` and checks every breath record and
 // alert event against the JSON Schemas shipped in docs/schema, and every
 // property of the breath schema against what the records carry, so that the
-// contract (DESIGN.md §4, §5) and the schemas cannot drift apart.
+// contract (docs/schema) and the schemas cannot drift apart.
 func TestRecordsMatchSchemas(t *testing.T) {
 	breathSchema := loadSchema(t, "breath.schema.json")
 	alertSchema := loadSchema(t, "alert.schema.json")

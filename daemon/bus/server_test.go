@@ -242,7 +242,7 @@ func TestAlertSubscriptionLikeCLI(t *testing.T) {
 		if err := json.Unmarshal(m.Data, &got); err != nil {
 			t.Fatal(err)
 		}
-		// The fields of the alert event contract (DESIGN.md §5).
+		// The fields of the alert event contract (docs/schema/alert.schema.json).
 		for k, want := range map[string]any{
 			"type": "alert", "schema": 1.0, "id": "bench-a/air-trapping/3", "stream": "bench-a",
 			"condition": "air-trapping", "class": "physiological", "priority": "medium",

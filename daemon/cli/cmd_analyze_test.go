@@ -44,7 +44,7 @@ func writeRecording(t *testing.T, st simulator.Steady) string {
 }
 
 // TestAnalyzeVerb runs `trapline analyze` on a simulated recording of
-// REFERENCE §11 case 1 (VT 0.6 L, R 25, C 0.06 L/cmH2O, 24 /min, square flow
+// check case 1 of docs/formulas.md (derived) (VT 0.6 L, R 25, C 0.06 L/cmH2O, 24 /min, square flow
 // 45 L/min, PEEP 5) and checks the NDJSON records against the closed form of
 // the linear single-compartment model: steady-state trapped volume 285 mL
 // and intrinsic PEEP 4.75 cmH2O (Marini, Crooke, Truwit, J Appl Physiol

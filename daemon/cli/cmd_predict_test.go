@@ -8,7 +8,7 @@ import (
 	"trapline/simulator"
 )
 
-// TestPredictVerb checks the table against REFERENCE §11: case 1 (VT 0.6 L,
+// TestPredictVerb checks the table against check case 1 of docs/formulas.md (VT 0.6 L,
 // R 25, C 60 mL/cmH2O, 24 /min, Ti 0.8 s, PEEP 5: trapped 285 mL, PEEPi 4.7,
 // Pplat 19.7(5), Ppeak 38.5; derived from the linear model, closed form
 // after Marini, Crooke, Truwit 1989) and case 6 (rate 24 → 12 at constant VT
