@@ -38,7 +38,7 @@ var (
 // openDelivery opens the spool and builds the publishers. The spool is
 // locked against a second process on the same data directory.
 func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery, error) {
-	sc := bus.StreamsConfig(&cfg.NATS)
+	sc := cfg.JetStream()
 	spool, err := alerts.OpenSpool(cfg.SpoolDir(), cfg.Spool.MaxEvents)
 	if err != nil {
 		return nil, fmt.Errorf("alert spool (spool.dir): %w", err)

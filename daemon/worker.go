@@ -91,7 +91,7 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
 		return fmt.Errorf("samples stream: %w", err)
 	}
-	sc := bus.StreamsConfig(&cfg.NATS)
+	sc := cfg.JetStream()
 	w.alertsJS = sc.WithDefaults().Alerts
 	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
 		return alerts.EnsureStreams(ctx, js, sc)

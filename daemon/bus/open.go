@@ -9,7 +9,6 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
 
-	"trapline/alerts"
 	"trapline/config"
 )
 
@@ -114,26 +113,4 @@ func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
 	}
 	b.Conn, b.Server, b.URL = nc, srv, srv.URL()
 	return b, nil
-}
-
-// StreamsConfig maps the nats section onto the JetStream stream settings.
-// In the file 0 means "no limit"; alerts.StreamsConfig spells that -1.
-func StreamsConfig(n *config.NATS) alerts.StreamsConfig {
-	unlimited := func(v int64) int64 {
-		if v == 0 {
-			return -1
-		}
-		return v
-	}
-	return alerts.StreamsConfig{
-		Prefix:           n.SubjectPrefix,
-		Alerts:           n.AlertsStream.Name,
-		Breaths:          n.BreathsStream.Name,
-		AlertsDuplicates: n.AlertsStream.Duplicates,
-		AlertsMaxAge:     time.Duration(unlimited(int64(n.AlertsStream.MaxAge))),
-		AlertsMaxBytes:   unlimited(int64(n.AlertsStream.MaxBytes)),
-		BreathsMaxAge:    time.Duration(unlimited(int64(n.BreathsStream.MaxAge))),
-		BreathsMaxBytes:  unlimited(int64(n.BreathsStream.MaxBytes)),
-		Replicas:         n.Replicas,
-	}
 }
