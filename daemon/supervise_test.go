@@ -329,15 +329,7 @@ func (p *sampleCounter) Samples(ss []ingest.Sample) stageOutput {
 // is analysed exactly once and the stream stays ready.
 func TestFiniteSourceFinishesItsStream(t *testing.T) {
 	const n = 500
-	path := t.TempDir() + "/bed-7.csv"
-	var b strings.Builder
-	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
-	for i := range n {
-		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
-	}
-	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
-		t.Fatal(err)
-	}
+	path := flatRecording(t, "bed-7", n)
 	var analysed atomic.Int64
 	sink := newMemSink()
 	s := newStream(streamSpec{
@@ -350,16 +342,7 @@ func TestFiniteSourceFinishesItsStream(t *testing.T) {
 		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
 	}, zerolog.Nop(), newMetrics(), sink, sink)
 
-	done := make(chan error, 1)
-	go func() { done <- s.Run(t.Context()) }()
-	select {
-	case err := <-done:
-		if err != nil {
-			t.Fatalf("Run: %v", err)
-		}
-	case <-time.After(10 * time.Second):
-		t.Fatal("the stream of a finished recording did not end within 10 s")
-	}
+	runToEnd(t, s)
 	if got := analysed.Load(); got != n {
 		t.Errorf("analysed %d samples, want each of the %d exactly once", got, n)
 	}
@@ -385,15 +368,7 @@ func (p *slowCounter) Samples(ss []ingest.Sample) stageOutput {
 // and every sample is analysed.
 func TestBlockingSourceDropsNothing(t *testing.T) {
 	const n = 3000
-	path := t.TempDir() + "/bed-8.csv"
-	var b strings.Builder
-	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
-	for i := range n {
-		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
-	}
-	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
-		t.Fatal(err)
-	}
+	path := flatRecording(t, "bed-8", n)
 	var analysed atomic.Int64
 	sink := newMemSink()
 	s := newStream(streamSpec{
@@ -404,6 +379,32 @@ func TestBlockingSourceDropsNothing(t *testing.T) {
 		},
 		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
 	}, zerolog.Nop(), newMetrics(), sink, sink)
+	runToEnd(t, s)
+	if got := analysed.Load(); got != n {
+		t.Errorf("analysed %d samples, want all %d", got, n)
+	}
+}
+
+// flatRecording writes n samples of a flat signal at 100 Hz, in the sample
+// line format v1, to a file and returns its path.
+func flatRecording(t *testing.T, stream string, n int) string {
+	t.Helper()
+	path := t.TempDir() + "/" + stream + ".csv"
+	var b strings.Builder
+	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
+	for i := range n {
+		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
+	}
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
+// runToEnd runs the stream of a finite source until it finishes by itself
+// (at most 30 s) and fails the test on an error.
+func runToEnd(t *testing.T, s *stream) {
+	t.Helper()
 	done := make(chan error, 1)
 	go func() { done <- s.Run(t.Context()) }()
 	select {
@@ -412,9 +413,6 @@ func TestBlockingSourceDropsNothing(t *testing.T) {
 			t.Fatalf("Run: %v", err)
 		}
 	case <-time.After(30 * time.Second):
-		t.Fatal("the stream did not end within 30 s")
-	}
-	if got := analysed.Load(); got != n {
-		t.Errorf("analysed %d samples, want all %d", got, n)
+		t.Fatal("the stream of a finished recording did not end within 30 s")
 	}
 }
