@@ -142,6 +142,63 @@ func NewPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publishe
 	}, nil
 }
 
+// NewDirectPublisher returns a publisher without a spool, for a caller
+// whose own log is the durable store (the scale-out worker: the samples
+// stream and its checkpoints). It delivers with PublishNow; Publish refuses.
+func NewDirectPublisher(nc *nats.Conn, opts PublisherOptions) (*Publisher, error) {
+	if nc == nil {
+		return nil, errors.New("new alert publisher: nil connection")
+	}
+	opts = opts.withDefaults()
+	if err := opts.Streams.Validate(); err != nil {
+		return nil, fmt.Errorf("new alert publisher: %w", err)
+	}
+	js, err := jetstream.New(nc)
+	if err != nil {
+		return nil, fmt.Errorf("new alert publisher: %w", err)
+	}
+	return &Publisher{
+		nc: nc, js: js, opts: opts,
+		subj: Subjects{Prefix: opts.Streams.Prefix},
+		log:  opts.Log.With().Str("component", "alert-publisher").Logger(),
+		wake: make(chan struct{}, 1),
+	}, nil
+}
+
+// PublishNow sends ev and waits until JetStream acknowledges it, retrying
+// with the same de-duplication id (a retry of a publish that had landed is
+// dropped by JetStream inside the window) after a capped, jittered pause,
+// until ctx ends.
+func (p *Publisher) PublishNow(ctx context.Context, ev Event) error {
+	data, err := ev.Marshal()
+	if err != nil {
+		return fmt.Errorf("publish alert: %w", err)
+	}
+	subject, id := p.subj.Alert(ev.Stream), ev.DedupID()
+	b := backoff.Backoff{Min: p.opts.RetryMin, Max: p.opts.RetryMax, Jitter: 0.2}
+	for {
+		rctx, cancel := context.WithTimeout(ctx, p.opts.RequestTimeout)
+		ack, err := p.js.Publish(rctx, subject, data, jetstream.WithMsgID(id), jetstream.WithExpectStream(p.opts.Streams.Alerts))
+		cancel()
+		if err == nil {
+			if ack.Duplicate {
+				p.duplicates.Add(1)
+			} else {
+				p.published.Add(1)
+			}
+			return nil
+		}
+		p.retries.Add(1)
+		if ctx.Err() != nil {
+			return fmt.Errorf("publish alert %s: %w", id, ctx.Err())
+		}
+		p.log.Warn().Err(err).Str("id", id).Msg("alert publish failed; retrying with the same id")
+		if !b.Wait(ctx) {
+			return fmt.Errorf("publish alert %s: %w", id, ctx.Err())
+		}
+	}
+}
+
 // Publish stores ev in the spool and wakes the drainer. When it returns nil
 // the event is on disk and will reach JetStream exactly once, across outages
 // and restarts. An error means the event was not stored (spool full, disk
@@ -155,6 +212,9 @@ func (p *Publisher) Publish(_ context.Context, ev Event) error {
 	p.mu.Unlock()
 	if closed {
 		return ErrPublisherClosed
+	}
+	if p.spool == nil {
+		return errors.New("publish alert: a direct publisher has no spool (use PublishNow)")
 	}
 	if err := ev.Validate(); err != nil {
 		p.refused.Add(1)
@@ -185,7 +245,12 @@ func (p *Publisher) kick() {
 }
 
 // Depth returns the number of events waiting in the spool.
-func (p *Publisher) Depth() int { return p.spool.Depth() }
+func (p *Publisher) Depth() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Depth()
+}
 
 // Stats returns the publisher's counters.
 func (p *Publisher) Stats() PublisherStats {
@@ -195,15 +260,26 @@ func (p *Publisher) Stats() PublisherStats {
 		Found:      p.found.Load(),
 		Retries:    p.retries.Load(),
 		Refused:    p.refused.Load(),
-		Depth:      p.spool.Depth(),
-		Corrupt:    p.spool.Corrupt(),
+		Depth:      p.Depth(),
+		Corrupt:    p.corrupt(),
 	}
+}
+
+func (p *Publisher) corrupt() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Corrupt()
 }
 
 // Run drains the spool until ctx is cancelled or Close is called, then makes
 // a last drain bounded by DrainTimeout and returns. It returns an error only
 // if it is already running or the publisher is closed.
 func (p *Publisher) Run(ctx context.Context) error {
+	if p.spool == nil {
+		<-ctx.Done() // a direct publisher has nothing to drain
+		return nil
+	}
 	p.mu.Lock()
 	if p.closed {
 		p.mu.Unlock()
@@ -423,6 +499,9 @@ func (p *Publisher) Close() error {
 	if stop != nil {
 		stop()
 		<-done
+	}
+	if p.spool == nil {
+		return nil
 	}
 	return p.spool.Close()
 }

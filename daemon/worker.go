@@ -43,7 +43,7 @@ type worker struct {
 	js       jetstream.JetStream
 	state    jetstream.KeyValue
 	subj     alerts.Subjects
-	alertsJS string
+	pub      *alerts.Publisher // direct: the samples stream and the checkpoints are the durable log
 	bull     *bus.Bulletin
 	tick     time.Duration
 	m        *metrics
@@ -92,7 +92,10 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	sc := cfg.JetStream()
-	w.alertsJS = sc.WithDefaults().Alerts
+	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
+		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
+		return err
+	}
 	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
 		return alerts.EnsureStreams(ctx, js, sc)
 	}); err != nil {

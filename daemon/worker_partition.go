@@ -7,7 +7,6 @@ import (
 	"strconv"
 	"time"
 
-	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/rs/zerolog"
 
@@ -15,7 +14,6 @@ import (
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
-	"trapline/ingest/backoff"
 )
 
 // streamRun is the analysis of one stream inside a partition runner.
@@ -302,39 +300,12 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 		return nil
 	}
 	for i := range evs {
-		if err := pt.w.publishAlert(ctx, &evs[i]); err != nil {
+		if err := pt.w.pub.PublishNow(ctx, evs[i]); err != nil {
 			return err
 		}
 		pt.w.m.alerts.WithLabelValues(sr.id, evs[i].Condition, string(evs[i].State)).Inc()
 	}
 	return pt.saveStream(ctx, sr)
-}
-
-// publishAlert sends one event with its de-duplication id, retrying with
-// the same id until JetStream acknowledges it or ctx ends.
-func (w *worker) publishAlert(ctx context.Context, ev *alerts.Event) error {
-	data, err := ev.Marshal()
-	if err != nil {
-		return err
-	}
-	subj := w.subj.Alert(ev.Stream)
-	b := backoff.Backoff{Min: 100 * time.Millisecond, Max: 2 * time.Second, Jitter: 0.2}
-	for {
-		cctx, cancel := context.WithTimeout(ctx, w.cfg.NATS.PublishTimeout)
-		_, err := w.js.PublishMsg(cctx, &nats.Msg{Subject: subj, Data: data},
-			jetstream.WithMsgID(ev.DedupID()), jetstream.WithExpectStream(w.alertsJS))
-		cancel()
-		if err == nil {
-			return nil
-		}
-		if ctx.Err() != nil {
-			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), ctx.Err())
-		}
-		w.log.Warn().Err(err).Str("id", ev.DedupID()).Msg("alert publish failed; retrying with the same id")
-		if !b.Wait(ctx) {
-			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), ctx.Err())
-		}
-	}
 }
 
 // tick runs the time-based checks of the live streams, only once the
