@@ -104,52 +104,9 @@ func (d *Daemon) runEdge(ctx context.Context) error {
 // goes out once it spans scaleout.batch of sample time, or once its first
 // sample has waited that long in wall time (a slow or paused source).
 func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
-	enc, err := ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{Time: true, Volume: true})
+	bt, err := e.newBatcher()
 	if err != nil {
 		return err
-	}
-	batchS := e.cfg.ScaleOut.Batch.Seconds()
-	type pending struct {
-		samples []ingest.Sample
-		since   time.Time
-	}
-	var (
-		mu  sync.Mutex
-		buf = map[string]*pending{}
-		out []byte
-	)
-	flush := func(stream string, p *pending) {
-		out = enc.AppendFrame(out[:0], stream, p.samples)
-		msg := append([]byte(nil), out...)
-		p.samples = p.samples[:0]
-		if _, err := e.js.PublishMsgAsync(&nats.Msg{Subject: e.names.subj().Samples(stream), Data: msg}); err != nil {
-			e.failed.Add(1)
-			return
-		}
-		e.sent.Add(1)
-	}
-	sink := func(ev ingest.Event) {
-		if len(ev.Samples) == 0 || !ingest.ValidStreamID(ev.Stream) {
-			return
-		}
-		mu.Lock()
-		defer mu.Unlock()
-		p := buf[ev.Stream]
-		if p == nil {
-			p = &pending{}
-			buf[ev.Stream] = p
-		}
-		for _, s := range ev.Samples {
-			// A sample batchS or more after the first starts the next batch,
-			// so that a batch holds batchS of samples (5 at 100 Hz and 50 ms).
-			if len(p.samples) > 0 && s.TimeS-p.samples[0].TimeS >= batchS-1e-9 {
-				flush(ev.Stream, p)
-			}
-			if len(p.samples) == 0 {
-				p.since = time.Now()
-			}
-			p.samples = append(p.samples, s)
-		}
 	}
 	done := make(chan struct{})
 	var wg sync.WaitGroup
@@ -163,25 +120,87 @@ func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
 			case <-done:
 				return
 			case now := <-t.C:
-				mu.Lock()
-				for stream, p := range buf {
-					if len(p.samples) > 0 && now.Sub(p.since) >= e.cfg.ScaleOut.Batch {
-						flush(stream, p)
-					}
-				}
-				mu.Unlock()
+				bt.flushDue(now)
 			}
 		}
 	}()
-	err = src.Run(ctx, sink)
+	err = src.Run(ctx, bt.add)
 	close(done)
 	wg.Wait()
-	mu.Lock()
-	for stream, p := range buf {
-		if len(p.samples) > 0 {
-			flush(stream, p)
+	bt.flushDue(time.Time{})
+	return err
+}
+
+// pendingBatch is the samples of one stream waiting to be published.
+type pendingBatch struct {
+	samples []ingest.Sample
+	since   time.Time
+}
+
+// batcher gathers a source's samples per stream into batches of
+// scaleout.batch of stream time, each published as one binary frame.
+type batcher struct {
+	e      *edge
+	enc    *ingest.BinaryEncoder
+	batchS float64
+	mu     sync.Mutex
+	buf    map[string]*pendingBatch
+	out    []byte
+}
+
+func (e *edge) newBatcher() (*batcher, error) {
+	enc, err := ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{Time: true, Volume: true})
+	if err != nil {
+		return nil, err
+	}
+	return &batcher{e: e, enc: enc, batchS: e.cfg.ScaleOut.Batch.Seconds(), buf: map[string]*pendingBatch{}}, nil
+}
+
+// add is the source's sink.
+func (bt *batcher) add(ev ingest.Event) {
+	if len(ev.Samples) == 0 || !ingest.ValidStreamID(ev.Stream) {
+		return
+	}
+	bt.mu.Lock()
+	defer bt.mu.Unlock()
+	p := bt.buf[ev.Stream]
+	if p == nil {
+		p = &pendingBatch{}
+		bt.buf[ev.Stream] = p
+	}
+	for _, s := range ev.Samples {
+		// A sample batchS or more after the first starts the next batch,
+		// so that a batch holds batchS of samples (5 at 100 Hz and 50 ms).
+		if len(p.samples) > 0 && s.TimeS-p.samples[0].TimeS >= bt.batchS-1e-9 {
+			bt.flush(ev.Stream, p)
+		}
+		if len(p.samples) == 0 {
+			p.since = time.Now()
+		}
+		p.samples = append(p.samples, s)
+	}
+}
+
+// flushDue publishes the batches that waited scaleout.batch of wall time
+// by now; a zero now publishes every batch (the source has ended).
+func (bt *batcher) flushDue(now time.Time) {
+	bt.mu.Lock()
+	defer bt.mu.Unlock()
+	for stream, p := range bt.buf {
+		if len(p.samples) > 0 && (now.IsZero() || now.Sub(p.since) >= bt.e.cfg.ScaleOut.Batch) {
+			bt.flush(stream, p)
 		}
 	}
-	mu.Unlock()
-	return err
+}
+
+// flush publishes one stream's batch; the caller holds mu.
+func (bt *batcher) flush(stream string, p *pendingBatch) {
+	bt.out = bt.enc.AppendFrame(bt.out[:0], stream, p.samples)
+	msg := append([]byte(nil), bt.out...)
+	p.samples = p.samples[:0]
+	if _, err := bt.e.js.PublishMsgAsync(&nats.Msg{Subject: bt.e.names.subj().Samples(stream), Data: msg}); err != nil {
+		bt.e.failed.Add(1)
+		return
+	}
+	bt.e.sent.Add(1)
 }

@@ -105,17 +105,8 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	if err != nil {
 		return fmt.Errorf("membership bucket %s: %w", w.names.members, err)
 	}
-	if err := retry(ctx, w.log, "state bucket", func(ctx context.Context) error {
-		if w.state, err = js.KeyValue(ctx, w.names.state); err == nil {
-			return nil
-		}
-		w.state, err = js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
-			Bucket: w.names.state, Description: "trapline per-stream alarm state and partition checkpoints",
-			History: 1, Replicas: reps, Storage: jetstream.FileStorage,
-		})
+	if err := w.ensureStateBucket(ctx, reps); err != nil {
 		return err
-	}); err != nil {
-		return fmt.Errorf("state bucket %s: %w", w.names.state, err)
 	}
 	w.bull = bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, w.log)
 	mem := newMembers(mkv, id, so.Heartbeat, so.MemberTTL, w.log)
@@ -271,4 +262,23 @@ func (w *worker) supervisePartition(ctx context.Context, p int) {
 		case <-t.C:
 		}
 	}
+}
+
+// ensureStateBucket opens or creates the bucket of the checkpoints.
+func (w *worker) ensureStateBucket(ctx context.Context, reps int) error {
+	err := retry(ctx, w.log, "state bucket", func(ctx context.Context) error {
+		var err error
+		if w.state, err = w.js.KeyValue(ctx, w.names.state); err == nil {
+			return nil
+		}
+		w.state, err = w.js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
+			Bucket: w.names.state, Description: "trapline per-stream alarm state and partition checkpoints",
+			History: 1, Replicas: reps, Storage: jetstream.FileStorage,
+		})
+		return err
+	})
+	if err != nil {
+		return fmt.Errorf("state bucket %s: %w", w.names.state, err)
+	}
+	return nil
 }
