@@ -284,13 +284,11 @@ func (l *liveSink) Breath(b *analyze.Breath) {
 	l.pt.w.m.breaths.WithLabelValues(l.sr.id).Inc()
 }
 
-func (l *liveSink) Alert(e *alerts.Event) {
-	if e.BreathSeq != nil {
-		v := *e.BreathSeq + l.sr.off
-		e.BreathSeq = &v
-	}
-	*l.evs = append(*l.evs, *e)
-}
+// Alert gathers an alert event. Its breath number needs no mapping: Breath
+// renumbers each breath before the pipeline's detectors see it, so the
+// findings, and the alarms restored from a checkpoint, already carry the
+// published numbers.
+func (l *liveSink) Alert(e *alerts.Event) { *l.evs = append(*l.evs, *e) }
 
 // deliver publishes alert events, each until JetStream acknowledges it,
 // and then writes the stream's checkpoint at once, so that a checkpoint

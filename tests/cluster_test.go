@@ -165,15 +165,20 @@ func reference(t *testing.T, file, stream string) (alertsOut []alerts.Event, bre
 	return alertsOut, breaths
 }
 
-// clinical keeps the physiological events as "condition state t_s", the
-// part of an event that does not depend on the wall clock (ids do).
+// clinical keeps the physiological events as "condition state t_s breath",
+// the part of an event that does not depend on the wall clock (ids do); the
+// breath number must survive a hand-over between workers unchanged.
 func clinical(evs []alerts.Event) []string {
 	var out []string
 	for _, ev := range evs {
 		if ev.Class == "technical" {
 			continue
 		}
-		out = append(out, fmt.Sprintf("%s %s %s %.2f", ev.Stream, ev.Condition, ev.State, ev.TS))
+		seq := -1
+		if ev.BreathSeq != nil {
+			seq = *ev.BreathSeq
+		}
+		out = append(out, fmt.Sprintf("%s %s %s %.2f breath %d", ev.Stream, ev.Condition, ev.State, ev.TS, seq))
 	}
 	sort.Strings(out)
 	return out
