@@ -36,17 +36,17 @@ import (
 //     that replays a stretch makes the same ids, and JetStream's
 //     de-duplication drops the repeats.
 type worker struct {
-	cfg      *config.Config
-	log      zerolog.Logger
-	id       string
-	names    scaleNames
-	js       jetstream.JetStream
-	state    jetstream.KeyValue
-	subj     alerts.Subjects
-	pub      *alerts.Publisher // direct: the samples stream and the checkpoints are the durable log
-	bull     *bus.Bulletin
-	tick     time.Duration
-	m        *metrics
+	cfg   *config.Config
+	log   zerolog.Logger
+	id    string
+	names scaleNames
+	js    jetstream.JetStream
+	state jetstream.KeyValue
+	subj  alerts.Subjects
+	pub   *alerts.Publisher // direct: the samples stream and the checkpoints are the durable log
+	bull  *bus.Bulletin
+	tick  time.Duration
+	m     *metrics
 	// routes maps a stream id to the acknowledgement queue of the
 	// partition runner that analyses it here.
 	routes sync.Map
