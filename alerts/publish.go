@@ -123,8 +123,16 @@ type Publisher struct {
 // NewPublisher returns a publisher that sends the events of spool over nc.
 // The publisher owns the spool from now on and closes it in Close.
 func NewPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publisher, error) {
-	if nc == nil || spool == nil {
-		return nil, errors.New("new alert publisher: nil connection or spool")
+	if spool == nil {
+		return nil, errors.New("new alert publisher: nil spool")
+	}
+	return newPublisher(nc, spool, opts)
+}
+
+// newPublisher makes a publisher with or without a spool.
+func newPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publisher, error) {
+	if nc == nil {
+		return nil, errors.New("new alert publisher: nil connection")
 	}
 	opts = opts.withDefaults()
 	if err := opts.Streams.Validate(); err != nil {

@@ -2,7 +2,6 @@ package alerts
 
 import (
 	"context"
-	"errors"
 	"fmt"
 
 	"github.com/nats-io/nats.go"
@@ -15,23 +14,7 @@ import (
 // whose own log is the durable store (the scale-out worker: the samples
 // stream and its checkpoints). It delivers with PublishNow; Publish refuses.
 func NewDirectPublisher(nc *nats.Conn, opts PublisherOptions) (*Publisher, error) {
-	if nc == nil {
-		return nil, errors.New("new alert publisher: nil connection")
-	}
-	opts = opts.withDefaults()
-	if err := opts.Streams.Validate(); err != nil {
-		return nil, fmt.Errorf("new alert publisher: %w", err)
-	}
-	js, err := jetstream.New(nc)
-	if err != nil {
-		return nil, fmt.Errorf("new alert publisher: %w", err)
-	}
-	return &Publisher{
-		nc: nc, js: js, opts: opts,
-		subj: Subjects{Prefix: opts.Streams.Prefix},
-		log:  opts.Log.With().Str("component", "alert-publisher").Logger(),
-		wake: make(chan struct{}, 1),
-	}, nil
+	return newPublisher(nc, nil, opts)
 }
 
 // PublishNow sends ev and waits until JetStream acknowledges it, retrying
