@@ -91,6 +91,7 @@ type Pipeline struct {
 	// sample's record to the heap.
 	breath analyze.Breath
 	one    [1]ingest.Sample
+	out    Output // gathers for Samples and Tick
 }
 
 // New returns a live pipeline.
@@ -137,8 +138,15 @@ func (p *Pipeline) streamNow(wall time.Time) float64 {
 // Samples analyses a batch of samples in time order and gathers the output.
 // Live, all of it is stamped with the wall time of the call.
 func (p *Pipeline) Samples(ss []ingest.Sample) Output {
-	var out Output
-	p.Push(ss, &out)
+	p.Push(ss, &p.out)
+	return p.takeOut()
+}
+
+// takeOut returns what p.out gathered and empties it. Gathering into a
+// field rather than a local keeps the sink from costing an allocation.
+func (p *Pipeline) takeOut() Output {
+	out := p.out
+	p.out = Output{}
 	return out
 }
 
@@ -195,9 +203,8 @@ func (p *Pipeline) Status(ev ingest.Event, now time.Time) Output {
 // Tick evaluates the time-based conditions at wall time now; the daemon
 // calls it about once a second.
 func (p *Pipeline) Tick(now time.Time) Output {
-	var out Output
-	p.TickTo(now, &out)
-	return out
+	p.TickTo(now, &p.out)
+	return p.takeOut()
 }
 
 // TickTo is Tick with the output going to sink.
