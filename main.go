@@ -7,9 +7,9 @@ package main
 import (
 	"os"
 
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 func main() {
-	os.Exit(daemon.Main(os.Args[1:]))
+	os.Exit(cli.Main(os.Args[1:]))
 }

@@ -179,7 +179,7 @@ func TestLifecycleTransitions(t *testing.T) {
 	}
 }
 
-// checkEvent checks the contract of DESIGN.md §5 on one event.
+// checkEvent checks the contract of docs/schema/alert.schema.json on one event.
 func checkEvent(t *testing.T, e Event, wall time.Time) {
 	t.Helper()
 	if err := e.Validate(); err != nil {
@@ -287,7 +287,7 @@ func TestLifecycleRejectsWhatJSONCannotCarry(t *testing.T) {
 
 // TestLifecycleInvariants drives random findings and acknowledgements
 // through random configurations and checks the contract that JetStream
-// de-duplication relies on (DESIGN.md §5): no id carries a state twice, an
+// de-duplication relies on (docs/schema/alert.schema.json): no id carries a state twice, an
 // id starts with "raised", nothing follows its "cleared" or its
 // supersession, and a superseded id was the condition's current one.
 func TestLifecycleInvariants(t *testing.T) {

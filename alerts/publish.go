@@ -11,6 +11,8 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
 // ErrPublisherClosed is returned by Publish after Close.
@@ -121,8 +123,16 @@ type Publisher struct {
 // NewPublisher returns a publisher that sends the events of spool over nc.
 // The publisher owns the spool from now on and closes it in Close.
 func NewPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publisher, error) {
-	if nc == nil || spool == nil {
-		return nil, errors.New("new alert publisher: nil connection or spool")
+	if spool == nil {
+		return nil, errors.New("new alert publisher: nil spool")
+	}
+	return newPublisher(nc, spool, opts)
+}
+
+// newPublisher makes a publisher with or without a spool.
+func newPublisher(nc *nats.Conn, spool *Spool, opts PublisherOptions) (*Publisher, error) {
+	if nc == nil {
+		return nil, errors.New("new alert publisher: nil connection")
 	}
 	opts = opts.withDefaults()
 	if err := opts.Streams.Validate(); err != nil {
@@ -154,6 +164,9 @@ func (p *Publisher) Publish(_ context.Context, ev Event) error {
 	if closed {
 		return ErrPublisherClosed
 	}
+	if p.spool == nil {
+		return errors.New("publish alert: a direct publisher has no spool (use PublishNow)")
+	}
 	if err := ev.Validate(); err != nil {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert: %w", err)
@@ -183,7 +196,12 @@ func (p *Publisher) kick() {
 }
 
 // Depth returns the number of events waiting in the spool.
-func (p *Publisher) Depth() int { return p.spool.Depth() }
+func (p *Publisher) Depth() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Depth()
+}
 
 // Stats returns the publisher's counters.
 func (p *Publisher) Stats() PublisherStats {
@@ -193,15 +211,26 @@ func (p *Publisher) Stats() PublisherStats {
 		Found:      p.found.Load(),
 		Retries:    p.retries.Load(),
 		Refused:    p.refused.Load(),
-		Depth:      p.spool.Depth(),
-		Corrupt:    p.spool.Corrupt(),
+		Depth:      p.Depth(),
+		Corrupt:    p.corrupt(),
 	}
+}
+
+func (p *Publisher) corrupt() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Corrupt()
 }
 
 // Run drains the spool until ctx is cancelled or Close is called, then makes
 // a last drain bounded by DrainTimeout and returns. It returns an error only
 // if it is already running or the publisher is closed.
 func (p *Publisher) Run(ctx context.Context) error {
+	if p.spool == nil {
+		<-ctx.Done() // a direct publisher has nothing to drain
+		return nil
+	}
 	p.mu.Lock()
 	if p.closed {
 		p.mu.Unlock()
@@ -230,7 +259,7 @@ func (p *Publisher) Run(ctx context.Context) error {
 	defer tick.Stop()
 	retry := time.NewTimer(0) // drain at start
 	defer retry.Stop()
-	backoff := time.Duration(0)
+	wait := time.Duration(0) // the current retry pause, 0 when not backing off
 	// After a restart the oldest event may have landed just before the
 	// process died, possibly longer ago than the de-duplication window.
 	if e, ok, err := p.spool.Oldest(); err == nil && ok {
@@ -244,20 +273,20 @@ func (p *Publisher) Run(ctx context.Context) error {
 			return nil
 		case <-status:
 			// Reconnected: the server is back, try at once.
-			backoff = 0
+			wait = 0
 		case <-p.wake:
-			if backoff > 0 {
+			if wait > 0 {
 				continue // backing off; the retry timer comes
 			}
 		case <-tick.C:
 		case <-retry.C:
 		}
 		if err := p.drain(ctx); err != nil {
-			backoff = min(max(2*backoff, p.opts.RetryMin), p.opts.RetryMax)
-			retry.Reset(backoff)
+			wait = backoff.Double(wait, p.opts.RetryMin, p.opts.RetryMax)
+			retry.Reset(wait)
 			continue
 		}
-		backoff = 0
+		wait = 0
 	}
 }
 
@@ -421,6 +450,9 @@ func (p *Publisher) Close() error {
 	if stop != nil {
 		stop()
 		<-done
+	}
+	if p.spool == nil {
+		return nil
 	}
 	return p.spool.Close()
 }

@@ -569,3 +569,32 @@ func TestPublisherCloseDrainsWithinLimit(t *testing.T) {
 		})
 	}
 }
+
+// TestDirectPublisherOnce sends every event twice with PublishNow, as a
+// retry after an unknown outcome does: JetStream's de-duplication by
+// message id keeps one copy of each.
+func TestDirectPublisherOnce(t *testing.T) {
+	_, nc, cfg := startWithStreams(t)
+	p, err := NewDirectPublisher(nc, PublisherOptions{Streams: cfg})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer p.Close()
+	var want []string
+	for i := range 5 {
+		ev := testEvent("bed-1", i, Raised)
+		for range 2 {
+			if err := p.PublishNow(t.Context(), ev); err != nil {
+				t.Fatal(err)
+			}
+		}
+		want = append(want, ev.DedupID())
+	}
+	checkExactlyOnce(t, storedAlerts(t, nc, cfg), want)
+	if st := p.Stats(); st.Published != 5 || st.Duplicates != 5 || st.Depth != 0 {
+		t.Errorf("stats %+v, want 5 published and 5 duplicates", st)
+	}
+	if err := p.Publish(t.Context(), testEvent("bed-1", 9, Raised)); err == nil {
+		t.Error("Publish on a direct publisher: want an error (no spool)")
+	}
+}

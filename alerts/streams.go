@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"strconv"
 	"strings"
 	"time"
 
@@ -66,6 +67,41 @@ func (s Subjects) Ack(stream string) string { return s.Subject(KindAck, stream) 
 // All returns the wildcard subject for one kind over every stream
 // (`<prefix>.<kind>.>`).
 func (s Subjects) All(kind string) string { return s.prefix() + "." + kind + ".>" }
+
+// Each returns the wildcard subject for one kind, one token per stream
+// (`<prefix>.<kind>.*`): what the edges of the scale-out publish on.
+func (s Subjects) Each(kind string) string { return s.prefix() + "." + kind + ".*" }
+
+// SamplesPartition returns the stored subject of scale-out partition p,
+// `<prefix>.samples.<p>.*`, or of every partition when p < 0.
+func (s Subjects) SamplesPartition(p int) string {
+	if p < 0 {
+		return s.prefix() + "." + KindSamples + ".*.*"
+	}
+	return s.prefix() + "." + KindSamples + "." + strconv.Itoa(p) + ".*"
+}
+
+// SamplesPartitionTransform is the destination of the samples stream's
+// subject transform: the server's deterministic partition function of the
+// stream id over n partitions.
+func (s Subjects) SamplesPartitionTransform(n int) string {
+	return fmt.Sprintf("%s.%s.{{partition(%d,1)}}.{{wildcard(1)}}", s.prefix(), KindSamples, n)
+}
+
+// PartitionOf reads the partition and the stream id from a stored samples
+// subject.
+func (s Subjects) PartitionOf(subject string) (int, string, bool) {
+	rest, ok := strings.CutPrefix(subject, s.prefix()+"."+KindSamples+".")
+	if !ok {
+		return 0, "", false
+	}
+	ps, stream, ok := strings.Cut(rest, ".")
+	if !ok {
+		return 0, "", false
+	}
+	p, err := strconv.Atoi(ps)
+	return p, stream, err == nil
+}
 
 func (s Subjects) prefix() string {
 	if s.Prefix == "" {

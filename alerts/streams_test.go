@@ -144,3 +144,36 @@ func TestEnsureStreams(t *testing.T) {
 		t.Error("invalid prefix accepted")
 	}
 }
+
+// TestPartitionSubjects checks the scale-out subjects against the layout
+// the scale-out worker reads: <prefix>.samples.<partition>.<stream>.
+func TestPartitionSubjects(t *testing.T) {
+	s := Subjects{Prefix: "lab.icu"}
+	for _, tc := range []struct{ got, want string }{
+		{s.Each(KindSamples), "lab.icu.samples.*"},
+		{s.SamplesPartition(3), "lab.icu.samples.3.*"},
+		{s.SamplesPartition(-1), "lab.icu.samples.*.*"},
+		{s.SamplesPartitionTransform(8), "lab.icu.samples.{{partition(8,1)}}.{{wildcard(1)}}"},
+		{Subjects{}.Samples("bed-1"), "trapline.samples.bed-1"},
+	} {
+		if tc.got != tc.want {
+			t.Errorf("got %q, want %q", tc.got, tc.want)
+		}
+	}
+	for _, tc := range []struct {
+		subject string
+		p       int
+		stream  string
+		ok      bool
+	}{
+		{"lab.icu.samples.3.bed-1", 3, "bed-1", true},
+		{"lab.icu.samples.x.bed-1", 0, "bed-1", false},
+		{"lab.icu.samples.bed-1", 0, "", false},
+		{"other.samples.3.bed-1", 0, "", false},
+	} {
+		p, stream, ok := s.PartitionOf(tc.subject)
+		if ok != tc.ok || (ok && (p != tc.p || stream != tc.stream)) {
+			t.Errorf("PartitionOf(%q) = %d, %q, %v; want %d, %q, %v", tc.subject, p, stream, ok, tc.p, tc.stream, tc.ok)
+		}
+	}
+}

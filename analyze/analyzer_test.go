@@ -14,7 +14,7 @@ func sig3(got, want float64) bool {
 	return math.Abs(got-want) <= unit/2
 }
 
-// TestCheckCase1 reproduces REFERENCE §11 case 1 (derived from the linear
+// TestCheckCase1 reproduces check case 1 of docs/formulas.md (derived) (derived from the linear
 // single-compartment model, Bates 2009; trapped volume VT·x/(1 − x) after
 // Marini, Crooke, Truwit 1989): VT 0.6 L, R 25, C 0.06 L/cmH2O, rate 24,
 // Ti 0.8 s square flow without pause, PEEP 5. Samples at 1000 Hz are placed
@@ -88,7 +88,7 @@ func TestOcclusionMethod(t *testing.T) {
 	}
 }
 
-// TestTwoPointTau checks the flow–volume slope against REFERENCE §11 case 5
+// TestTwoPointTau checks the flow–volume slope against check case 5 of docs/formulas.md (derived)
 // (derived: volume still to exhale = τ·|V'|): remaining 0.30 and 0.10 L at
 // flows 0.60 and 0.20 L/s give τ 0.50 s. With 0.4 L in the lung the exhaled
 // volumes are 0.10 and 0.30 L; a midpoint on the same line is added because

@@ -10,7 +10,7 @@ import (
 // relative to the window's median peak. The evidence splits the rise into
 // its resistive part (peak − plateau, or R × inspiratory flow) and its
 // elastic part (plateau, or VT/C): under constant-flow volume control
-// Ppeak = Pplat + R·V' and Pplat = total PEEP + VT/C (REFERENCE §3), so a
+// Ppeak = Pplat + R·V' and Pplat = total PEEP + VT/C (the linear single-compartment model, docs/formulas.md), so a
 // widening peak–plateau gap means rising resistance (secretions, kinked
 // tube, bronchospasm) and a rising plateau means falling compliance or
 // rising intrinsic PEEP.

@@ -10,7 +10,7 @@ import (
 
 // lungModel is a passive linear single-compartment lung under constant-flow
 // volume control without a pause. modelBreath fills a breath record with its
-// steady-state values from the closed forms of REFERENCE §3 (derived from
+// steady-state values from the steady-state closed forms of the linear single-compartment model (docs/formulas.md) (derived from
 // the equation of motion; Bates JHT, Lung Mechanics, 2009; analogous forms in
 // Marini JJ, Crooke PS, Truwit JD, J Appl Physiol 1989;67:1081).
 type lungModel struct {
@@ -42,7 +42,7 @@ func (m lungModel) breath(seq int, startS float64) Breath {
 	return b
 }
 
-// Check case 1 and case 3 of REFERENCE §11 (derived values).
+// Check cases 1 and 3 of docs/formulas.md (derived values).
 var (
 	case1 = lungModel{R: 25, CL: 0.06, VTL: 0.6, RR: 24, TiS: 0.8, PEEP: 5}
 	case3 = lungModel{R: 5, CL: 0.05, VTL: 0.5, RR: 20, TiS: 1, PEEP: 5}
@@ -51,7 +51,7 @@ var (
 func detNear(got, want, tol float64) bool { return math.Abs(got-want) <= tol }
 
 func TestLungModelMatchesReferenceCases(t *testing.T) {
-	// REFERENCE §11 case 1: V_trap 0.2849 L, intrinsic PEEP 4.748, EEF 11.40
+	// check case 1 of docs/formulas.md (derived): V_trap 0.2849 L, intrinsic PEEP 4.748, EEF 11.40
 	// L/min, Ppeak 38.50; case 3: V_trap 0.17 mL, Ppeak 17.5 (derived).
 	b := case1.breath(0, 0)
 	for _, c := range []struct {
@@ -138,7 +138,7 @@ func TestAirTrappingOnReferenceCases(t *testing.T) {
 	t.Run("severity grading", func(t *testing.T) {
 		// Same patient at 30 and 40 breaths/min: Te 1.2 s gives V_trap
 		// 0.6·e^-0.8/(1 − e^-0.8) = 0.4896 L (medium); Te 0.7 s gives 1.0
-		// L, intrinsic PEEP 16.7 cmH2O (high) — REFERENCE §3 closed form.
+		// L, intrinsic PEEP 16.7 cmH2O (high) — steady-state closed form of the linear single-compartment model, docs/formulas.md.
 		for _, c := range []struct {
 			rr   float64
 			want Severity
@@ -341,7 +341,7 @@ func TestLimits(t *testing.T) {
 	}
 	t.Run("case 1 within limits", func(t *testing.T) {
 		// Ppeak 38.5, Pplat 19.75 (estimated from the fit, no pause),
-		// driving pressure VT/C = 10 cmH2O (REFERENCE §11 case 1).
+		// driving pressure VT/C = 10 cmH2O (check case 1 of docs/formulas.md (derived)).
 		d := NewLimits(cfg)
 		b := case1.breath(0, 0)
 		fs := d.Breath(&b, nil)

@@ -74,7 +74,7 @@ func (a *Analyzer) finish() Breath {
 		add(FlagFitImplausible)
 	case fr.e <= 0:
 		// A negative elastance is what inspiratory muscle effort does to
-		// a passive model (REFERENCE: structured residuals, negative C).
+		// a passive model (a failed fit shows as structured residuals, negative C).
 		effort = true
 		add(FlagFitImplausible)
 	case fr.r < 0 || fr.r > c.MaxRCmH2OSPerL || 1000/fr.e > c.MaxCMLPerCmH2O || fr.r2 < c.MinFitR2:
@@ -117,7 +117,7 @@ func (a *Analyzer) finish() Breath {
 	}
 
 	// Expiratory time constant from the flow–volume slope over 25–75 % of
-	// the exhaled volume (REFERENCE §2; Lourens' slope method).
+	// the exhaled volume (docs/formulas.md; Lourens' slope method).
 	var lineEEF, lineSE float64
 	b.TauS, lineEEF, lineSE = a.tauFlowVolume(b.VteML / 1000)
 	// The end of expiration against the single time constant of its
@@ -139,7 +139,7 @@ func (a *Analyzer) finish() Breath {
 	b.TeOverTau = b.TeS / tau
 
 	// Air trapping at the end of the breath, two independent routes
-	// (REFERENCE §3): from end-expiratory flow, V_trap ≈ τ·|EEF| and
+	// (the linear single-compartment model, docs/formulas.md): from end-expiratory flow, V_trap ≈ τ·|EEF| and
 	// PEEPi ≈ R·|EEF|; from the fit, PEEPi = P0 − end-expiratory pressure
 	// (plus the volume balance of the breath) and V_trap = PEEPi·C.
 	eef := b.EndExpFlowLPM / 60

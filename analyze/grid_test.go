@@ -44,7 +44,7 @@ func (g *gridErrors) String() string {
 
 // TestLinearGridClosedForm runs the acceptance grid of the linear
 // single-compartment patient against the exact solution of its equation of
-// motion (Bates 2009; trapped volume and intrinsic PEEP from REFERENCE §3,
+// motion (Bates 2009; trapped volume and intrinsic PEEP from the linear single-compartment model, docs/formulas.md,
 // derived): R 5–50 cmH2O·s/L, C 20–100 mL/cmH2O, rate 10–30, VT 300–700 mL,
 // square flow with and without pause, PEEP 0–15, 50/100/200 Hz, noise σ
 // 0.3 cmH2O and 1 L/min. Configurations are drawn at random (fixed seed)

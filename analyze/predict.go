@@ -120,7 +120,7 @@ func Predict(pt Patient, s Settings) (Prediction, error) {
 	p.TeOverTau = p.TeS / p.TauS
 	p.TrappedML = SteadyTrappedML(s.VtML, p.TauS, p.TeS)
 	p.PEEPiCmH2O = p.TrappedML / pt.CMLPerCmH2O
-	// Pplat = PEEP + PEEPi + VT/C; Ppeak = Pplat + R·V' (REFERENCE §3).
+	// Pplat = PEEP + PEEPi + VT/C; Ppeak = Pplat + R·V' (the linear single-compartment model, docs/formulas.md).
 	p.PlateauCmH2O = s.PEEPCmH2O + p.PEEPiCmH2O + s.VtML/pt.CMLPerCmH2O
 	p.PeakCmH2O = p.PlateauCmH2O + pt.RCmH2OSPerL*s.FlowLPM/60
 	p.MinuteVolLPM = s.VtML / 1000 * s.RateBPM

@@ -9,8 +9,8 @@ import (
 
 func near(got, want, tol float64) bool { return math.Abs(got-want) <= tol }
 
-// TestPredictCheckCases checks the steady-state predictions against REFERENCE
-// §11 (derived from the linear single-compartment model; trapped volume
+// TestPredictCheckCases checks the steady-state predictions against the
+// check cases of docs/formulas.md (derived from the linear single-compartment model; trapped volume
 // VT·x/(1 − x), analogous to Marini, Crooke, Truwit, J Appl Physiol 1989).
 func TestPredictCheckCases(t *testing.T) {
 	t.Run("case 1", func(t *testing.T) {
@@ -61,7 +61,7 @@ func TestPredictCheckCases(t *testing.T) {
 	})
 }
 
-// TestTeForTrapped checks the inverse of V_trap = VT·x/(1 − x) (REFERENCE §3).
+// TestTeForTrapped checks the inverse of V_trap = VT·x/(1 − x) (the linear single-compartment model, docs/formulas.md).
 func TestTeForTrapped(t *testing.T) {
 	tests := []struct {
 		name                string
@@ -90,7 +90,7 @@ func TestTeForTrapped(t *testing.T) {
 	}
 }
 
-// TestBuildUp checks REFERENCE §11 case 2 (derived): after a change the
+// TestBuildUp checks check case 2 of docs/formulas.md (derived) (derived): after a change the
 // end-expiratory volume approaches steady state as 1 − xⁿ: 0.678, 0.896,
 // 0.967, measured by the analyzer on the closed-form waveform.
 func TestBuildUp(t *testing.T) {

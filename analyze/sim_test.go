@@ -202,7 +202,7 @@ type modelCase struct {
 	name string
 	set  func(sc *simulator.Scenario)
 	// limit: how this model's intrinsic PEEP may miss without a flag:
-	// "" must be flagged; "under" is expected to be low (REFERENCE §3) and
+	// "" must be flagged; "under" is expected to be low (the linear single-compartment model, docs/formulas.md) and
 	// most breaths must carry tau-nonlinear; "bounded" may miss by up to
 	// 1.5 cmH2O (a documented limitation).
 	limit string
@@ -254,7 +254,7 @@ func pressureControl(sc *simulator.Scenario) {
 // that, for the models whose errors a single breath can reveal, a breath
 // whose intrinsic PEEP misses the truth by more than max(1 cmH2O, 15 %)
 // carries a flag; and, for unequal time constants, that intrinsic PEEP is
-// underestimated, as REFERENCE §3 says, and that most breaths say so with
+// underestimated, as the linear single-compartment model, docs/formulas.md says, and that most breaths say so with
 // tau-nonlinear.
 func TestOtherModels(t *testing.T) {
 	t.Log(tableHead)
@@ -312,7 +312,7 @@ func TestOtherModels(t *testing.T) {
 // 80601-2-12 and checks the monitored values against the simulator's ground
 // truth within the standard's display tolerances: expired volume ±(4 mL +
 // 15 %), airway pressure ±(2 hPa + 4 %). The rows and the tolerances are
-// recalled from memory (REFERENCE §7), not verified against the text of
+// recalled from memory (docs/formulas.md), not verified against the text of
 // the standard.
 func TestISOTestRows(t *testing.T) {
 	const hPa = 1.019716 // cmH2O per hPa

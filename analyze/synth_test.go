@@ -12,7 +12,7 @@ import (
 // under volume control with square flow, an optional end-inspiratory pause
 // and passive exhalation to PEEP. Between breaths the end-expiratory volume
 // follows V_ee(n+1) = (V_ee(n) + VT)·exp(−Te/τ), whose fixed point is the
-// steady-state trapped volume VT·x/(1 − x) of REFERENCE §3. It is the
+// steady-state trapped volume VT·x/(1 − x) of the linear single-compartment model, docs/formulas.md. It is the
 // outside reference of the analyzer tests: a closed form, not the analyzer.
 type linearVC struct {
 	R      float64 // cmH2O·s/L

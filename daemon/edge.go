@@ -13,6 +13,7 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"trapline/config"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 
@@ -37,15 +38,15 @@ type edge struct {
 const edgeMaxPending = 65536
 
 // runEdge runs the edge role until ctx is cancelled.
-func (d *daemon) runEdge(ctx context.Context) error {
+func (d *Daemon) runEdge(ctx context.Context) error {
 	cfg := d.cfg
-	b, err := openBus(cfg, d.log)
+	b, err := bus.Open(cfg, d.log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
 	e := &edge{cfg: cfg, log: d.log.With().Str("role", "edge").Logger(), names: newScaleNames(cfg.NATS.SubjectPrefix)}
-	js, err := jetstream.New(b.nc, jetstream.WithPublishAsyncMaxPending(edgeMaxPending),
+	js, err := jetstream.New(b.Conn, jetstream.WithPublishAsyncMaxPending(edgeMaxPending),
 		jetstream.WithPublishAsyncErrHandler(func(_ jetstream.JetStream, m *nats.Msg, err error) {
 			if e.failed.Add(1) == 1 {
 				e.log.Warn().Err(err).Str("subject", m.Subject).Msg("samples not stored by JetStream (warned once)")
@@ -55,16 +56,16 @@ func (d *daemon) runEdge(ctx context.Context) error {
 		return fmt.Errorf("jetstream: %w", err)
 	}
 	e.js = js
-	if err := ensureSamplesStream(ctx, js, e.names, &cfg.ScaleOut, scaleReplicas(b.nc, &cfg.ScaleOut), e.log); err != nil {
+	if err := ensureSamplesStream(ctx, js, e.names, &cfg.ScaleOut, scaleReplicas(b.Conn, &cfg.ScaleOut), e.log); err != nil {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	g, gctx := errgroup.WithContext(ctx)
-	if err := d.startRoleHTTP(gctx, g, b.nc, func() uint64 { return 0 }); err != nil {
+	if err := d.startRoleHTTP(gctx, g, b.Conn, func() uint64 { return 0 }); err != nil {
 		return err
 	}
 	for _, sc := range cfg.Streams {
 		log := e.log.With().Str("stream", sc.ID).Logger()
-		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.nc}
+		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.Conn}
 		if _, err := ingest.Open(sc.Source, opts); err != nil {
 			return &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 		}
@@ -85,9 +86,9 @@ func (d *daemon) runEdge(ctx context.Context) error {
 			}, nil, nil)
 		})
 	}
-	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.url).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
+	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.URL).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
 	if d.opts.Ready != nil {
-		d.opts.Ready(runInfo{NATSURL: b.url})
+		d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
 	}
 	err = g.Wait()
 	// Wait (bounded) for the acknowledgements of what was sent.
@@ -103,52 +104,9 @@ func (d *daemon) runEdge(ctx context.Context) error {
 // goes out once it spans scaleout.batch of sample time, or once its first
 // sample has waited that long in wall time (a slow or paused source).
 func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
-	enc, err := ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{Time: true, Volume: true})
+	bt, err := e.newBatcher()
 	if err != nil {
 		return err
-	}
-	batchS := e.cfg.ScaleOut.Batch.Seconds()
-	type pending struct {
-		samples []ingest.Sample
-		since   time.Time
-	}
-	var (
-		mu  sync.Mutex
-		buf = map[string]*pending{}
-		out []byte
-	)
-	flush := func(stream string, p *pending) {
-		out = enc.AppendFrame(out[:0], stream, p.samples)
-		msg := append([]byte(nil), out...)
-		p.samples = p.samples[:0]
-		if _, err := e.js.PublishMsgAsync(&nats.Msg{Subject: e.names.prefix + ".samples." + stream, Data: msg}); err != nil {
-			e.failed.Add(1)
-			return
-		}
-		e.sent.Add(1)
-	}
-	sink := func(ev ingest.Event) {
-		if len(ev.Samples) == 0 || !ingest.ValidStreamID(ev.Stream) {
-			return
-		}
-		mu.Lock()
-		defer mu.Unlock()
-		p := buf[ev.Stream]
-		if p == nil {
-			p = &pending{}
-			buf[ev.Stream] = p
-		}
-		for _, s := range ev.Samples {
-			// A sample batchS or more after the first starts the next batch,
-			// so that a batch holds batchS of samples (5 at 100 Hz and 50 ms).
-			if len(p.samples) > 0 && s.TimeS-p.samples[0].TimeS >= batchS-1e-9 {
-				flush(ev.Stream, p)
-			}
-			if len(p.samples) == 0 {
-				p.since = time.Now()
-			}
-			p.samples = append(p.samples, s)
-		}
 	}
 	done := make(chan struct{})
 	var wg sync.WaitGroup
@@ -162,25 +120,87 @@ func (e *edge) runSource(ctx context.Context, src ingest.Source) error {
 			case <-done:
 				return
 			case now := <-t.C:
-				mu.Lock()
-				for stream, p := range buf {
-					if len(p.samples) > 0 && now.Sub(p.since) >= e.cfg.ScaleOut.Batch {
-						flush(stream, p)
-					}
-				}
-				mu.Unlock()
+				bt.flushDue(now)
 			}
 		}
 	}()
-	err = src.Run(ctx, sink)
+	err = src.Run(ctx, bt.add)
 	close(done)
 	wg.Wait()
-	mu.Lock()
-	for stream, p := range buf {
-		if len(p.samples) > 0 {
-			flush(stream, p)
+	bt.flushDue(time.Time{})
+	return err
+}
+
+// pendingBatch is the samples of one stream waiting to be published.
+type pendingBatch struct {
+	samples []ingest.Sample
+	since   time.Time
+}
+
+// batcher gathers a source's samples per stream into batches of
+// scaleout.batch of stream time, each published as one binary frame.
+type batcher struct {
+	e      *edge
+	enc    *ingest.BinaryEncoder
+	batchS float64
+	mu     sync.Mutex
+	buf    map[string]*pendingBatch
+	out    []byte
+}
+
+func (e *edge) newBatcher() (*batcher, error) {
+	enc, err := ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{Time: true, Volume: true})
+	if err != nil {
+		return nil, err
+	}
+	return &batcher{e: e, enc: enc, batchS: e.cfg.ScaleOut.Batch.Seconds(), buf: map[string]*pendingBatch{}}, nil
+}
+
+// add is the source's sink.
+func (bt *batcher) add(ev ingest.Event) {
+	if len(ev.Samples) == 0 || !ingest.ValidStreamID(ev.Stream) {
+		return
+	}
+	bt.mu.Lock()
+	defer bt.mu.Unlock()
+	p := bt.buf[ev.Stream]
+	if p == nil {
+		p = &pendingBatch{}
+		bt.buf[ev.Stream] = p
+	}
+	for _, s := range ev.Samples {
+		// A sample batchS or more after the first starts the next batch,
+		// so that a batch holds batchS of samples (5 at 100 Hz and 50 ms).
+		if len(p.samples) > 0 && s.TimeS-p.samples[0].TimeS >= bt.batchS-1e-9 {
+			bt.flush(ev.Stream, p)
+		}
+		if len(p.samples) == 0 {
+			p.since = time.Now()
+		}
+		p.samples = append(p.samples, s)
+	}
+}
+
+// flushDue publishes the batches that waited scaleout.batch of wall time
+// by now; a zero now publishes every batch (the source has ended).
+func (bt *batcher) flushDue(now time.Time) {
+	bt.mu.Lock()
+	defer bt.mu.Unlock()
+	for stream, p := range bt.buf {
+		if len(p.samples) > 0 && (now.IsZero() || now.Sub(p.since) >= bt.e.cfg.ScaleOut.Batch) {
+			bt.flush(stream, p)
 		}
 	}
-	mu.Unlock()
-	return err
+}
+
+// flush publishes one stream's batch; the caller holds mu.
+func (bt *batcher) flush(stream string, p *pendingBatch) {
+	bt.out = bt.enc.AppendFrame(bt.out[:0], stream, p.samples)
+	msg := append([]byte(nil), bt.out...)
+	p.samples = p.samples[:0]
+	if _, err := bt.e.js.PublishMsgAsync(&nats.Msg{Subject: bt.e.names.subj().Samples(stream), Data: msg}); err != nil {
+		bt.e.failed.Add(1)
+		return
+	}
+	bt.e.sent.Add(1)
 }

@@ -14,11 +14,14 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"github.com/rs/zerolog"
+
+	"trapline/daemon/bus"
 )
 
 // ErrPortInUse is returned when a listen address is already taken by another
-// process (often a second trapline, or the embedded NATS of one).
-var ErrPortInUse = errors.New("address already in use")
+// process (often a second trapline, or the embedded NATS of one). It is the
+// error value of bus.ErrPortInUse.
+var ErrPortInUse = bus.ErrPortInUse
 
 // listenTCP listens on addr and turns "address already in use" into a
 // message that names the address and the setting to change.

@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 	"trapline/simulator"
@@ -34,10 +35,9 @@ func runSim(t *testing.T, sc simulator.Scenario, dcfg analyze.DetectorConfig, lc
 	if err != nil {
 		t.Fatal(err)
 	}
-	p := newPipeline(sc.Stream, analyze.DefaultConfig(), dcfg, lcfg)
 	clock := simEpoch
-	p.now = func() time.Time { return clock }
-	p.created = simEpoch
+	p := pipeline.New(pipeline.Options{Stream: sc.Stream, Analysis: analyze.DefaultConfig(), Detectors: dcfg,
+		Alarms: lcfg, Now: func() time.Time { return clock }})
 	at := func(s float64) time.Time { return simEpoch.Add(time.Duration(s * float64(time.Second))) }
 	var r simRun
 	collect := func(out stageOutput) {
@@ -207,12 +207,12 @@ func longStable(t *testing.T, name string, seed uint64, durS float64) simulator.
 		sc = shipped(t, "stable", seed)
 	case "borderline":
 		// τ = 15 × 0.05 = 0.75 s with Te = 2.73 s: Te/τ = 3.6, steady trapped
-		// volume 13 mL, intrinsic PEEP 0.26 cmH2O (REFERENCE §3 closed form):
+		// volume 13 mL, intrinsic PEEP 0.26 cmH2O (steady-state closed form of the linear single-compartment model, docs/formulas.md):
 		// close to the Te/τ limit but not trapping.
 		sc = simulator.Steady{RCmH2OSPerL: 15, CMLPerCmH2O: 50, VtML: 500, FlowLPM: 50, RateBPM: 18, PEEPCmH2O: 5,
 			PressureNoiseCmH2O: 0.2, FlowNoiseLPM: 0.5, Seed: seed, Stream: "bed-8"}.Scenario()
 	case "case3":
-		// REFERENCE §11 check case 3 (negative control): C 0.05, R 5, VT
+		// check case 3 of docs/formulas.md (negative control): C 0.05, R 5, VT
 		// 0.5, RR 20, Ti 1: τ 0.25 s, V_trap 0.17 mL; no air-trapping alert.
 		sc = simulator.Steady{RCmH2OSPerL: 5, CMLPerCmH2O: 50, VtML: 500, InspTimeS: 1, RateBPM: 20, PEEPCmH2O: 5,
 			PressureNoiseCmH2O: 0.2, FlowNoiseLPM: 0.5, Seed: seed, Stream: "bed-9"}.Scenario()
@@ -255,7 +255,7 @@ func TestNoAlertOnStablePatients(t *testing.T) {
 // The rising-peak-pressure acceptance: the secretions patient (resistance
 // 10 → 17 over 10 min, peak +25 %, plateau stable) and the stiffening
 // patient (compliance 50 → 18 over 12 min); under constant-flow volume
-// control Ppeak − Pplat = R·V' and Pplat − PEEP = VT/C (REFERENCE §3), so
+// control Ppeak − Pplat = R·V' and Pplat − PEEP = VT/C (the linear single-compartment model, docs/formulas.md), so
 // the first rise is resistive and the second elastic.
 func TestRisingPeakOnSimulatedPatients(t *testing.T) {
 	tests := []struct {
@@ -343,9 +343,8 @@ func BenchmarkPipelineSamples(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	p := newPipeline("bench", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
 	now := simEpoch
-	p.now = func() time.Time { return now }
+	p := pipeline.New(defaultPipelineOptions("bench", func() time.Time { return now }))
 	const batch = 10
 	b.ReportAllocs()
 	b.SetBytes(0)
@@ -372,7 +371,7 @@ func BenchmarkPipelineSamples(b *testing.B) {
 // whose true intrinsic PEEP is 2 cmH2O or more, and never raised for one
 // under 1.5 cmH2O; no steady patient raises a rising peak pressure. The
 // truth is the simulator's model state, and for these linear patients the
-// closed form of REFERENCE §3.
+// steady-state closed form of the linear single-compartment model (docs/formulas.md).
 func TestAirTrappingOnRandomPatients(t *testing.T) {
 	rng := rand.New(rand.NewPCG(9, 9))
 	trapping, hits, quiet, falseAlarms := 0, 0, 0, 0
@@ -420,12 +419,11 @@ func TestPipelineSurvivesHostileSamples(t *testing.T) {
 	specials := []float64{math.NaN(), math.Inf(1), math.Inf(-1), 0, -1e308, 1e308, 5e-324, 1, -1}
 	rng := rand.New(rand.NewPCG(5, 6))
 	for _, offline := range []bool{false, true} {
-		var p *pipeline
+		var p *pipeline.Pipeline
 		if offline {
-			p = newOfflinePipeline("bed-x", simEpoch, analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
+			p = pipeline.NewOffline(defaultPipelineOptions("bed-x", nil), simEpoch)
 		} else {
-			p = newPipeline("bed-x", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
-			p.now = func() time.Time { return simEpoch }
+			p = pipeline.New(defaultPipelineOptions("bed-x", func() time.Time { return simEpoch }))
 		}
 		sc := simulator.Steady{RCmH2OSPerL: 25, CMLPerCmH2O: 60, VtML: 600, FlowLPM: 45, RateBPM: 24, PEEPCmH2O: 5,
 			DurationS: 300, SampleRateHz: 50}.Scenario()
@@ -472,4 +470,11 @@ func TestPipelineSurvivesHostileSamples(t *testing.T) {
 		}
 		t.Logf("offline %v: %d alert events, all encodable", offline, events)
 	}
+}
+
+// defaultPipelineOptions are the shipped configurations for stream, on the
+// wall clock now (nil: time.Now).
+func defaultPipelineOptions(stream string, now func() time.Time) pipeline.Options {
+	return pipeline.Options{Stream: stream, Analysis: analyze.DefaultConfig(), Detectors: analyze.DefaultDetectorConfig(),
+		Alarms: alerts.DefaultLifecycleConfig(), Now: now}
 }

@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"strconv"
 	"strings"
 	"time"
 
@@ -34,32 +33,19 @@ func newScaleNames(prefix string) scaleNames {
 	return scaleNames{prefix: prefix, samples: base + "_SAMPLES", members: base + "_MEMBERS", state: base + "_STATE"}
 }
 
+// subj builds the subjects under the prefix.
+func (n scaleNames) subj() alerts.Subjects { return alerts.Subjects{Prefix: n.prefix} }
+
 // inSubject is what edges publish on: <prefix>.samples.<stream>.
-func (n scaleNames) inSubject() string { return n.prefix + ".samples.*" }
+func (n scaleNames) inSubject() string { return n.subj().Each(alerts.KindSamples) }
 
 // partSubject is the stored subject of partition p (p < 0: every
 // partition): <prefix>.samples.<p>.<stream>. The stream's subject transform
 // puts every sample message there.
-func (n scaleNames) partSubject(p int) string {
-	if p < 0 {
-		return n.prefix + ".samples.*.*"
-	}
-	return n.prefix + ".samples." + strconv.Itoa(p) + ".*"
-}
+func (n scaleNames) partSubject(p int) string { return n.subj().SamplesPartition(p) }
 
 // partOf reads the partition and the stream id from a stored subject.
-func (n scaleNames) partOf(subject string) (int, string, bool) {
-	rest, ok := strings.CutPrefix(subject, n.prefix+".samples.")
-	if !ok {
-		return 0, "", false
-	}
-	ps, stream, ok := strings.Cut(rest, ".")
-	if !ok {
-		return 0, "", false
-	}
-	p, err := strconv.Atoi(ps)
-	return p, stream, err == nil
-}
+func (n scaleNames) partOf(subject string) (int, string, bool) { return n.subj().PartitionOf(subject) }
 
 // samplesStreamConfig is the samples stream: every edge message, moved by a
 // subject transform to a partition chosen by a deterministic hash of the
@@ -77,7 +63,7 @@ func samplesStreamConfig(n scaleNames, so *config.ScaleOut, replicas int) jetstr
 		Subjects:    []string{n.inSubject()},
 		SubjectTransform: &jetstream.SubjectTransformConfig{
 			Source:      n.inSubject(),
-			Destination: fmt.Sprintf("%s.samples.{{partition(%d,1)}}.{{wildcard(1)}}", n.prefix, so.Partitions),
+			Destination: n.subj().SamplesPartitionTransform(so.Partitions),
 		},
 		Retention:   jetstream.LimitsPolicy,
 		Discard:     jetstream.DiscardOld,
@@ -168,7 +154,7 @@ func (e permanentError) Unwrap() error { return e.error }
 // startRoleHTTP serves /healthz, /readyz and /metrics for the edge and
 // worker roles when http.listen is set; the server runs in g until ctx
 // ends. Readiness starts with the NATS connection; the roles add checks.
-func (d *daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.Conn, dropped func() uint64) error {
+func (d *Daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.Conn, dropped func() uint64) error {
 	d.ready.set("nats", func() error {
 		if !nc.IsConnected() {
 			return fmt.Errorf("not connected (%s)", nc.Status())

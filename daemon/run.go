@@ -2,110 +2,45 @@ package daemon
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
-	"io"
-	"strings"
 	"time"
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
-	"github.com/spf13/cobra"
 	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
 	"trapline/config"
+	"trapline/daemon/bus"
 )
 
-func (a *app) runCommand() *cobra.Command {
-	var cfgPath string
-	cmd := &cobra.Command{
-		Use:   "run",
-		Short: "Run the daemon: read every configured stream, analyse breaths, deliver alerts to NATS",
-		Long: "run reads the streams of the configuration file, analyses them breath by breath and publishes\n" +
-			"breath records, status heartbeats and alerts on NATS (an embedded server unless nats.url is\n" +
-			"set). Alerts go through a local spool and JetStream and are never lost. SIGINT or SIGTERM\n" +
-			"stops it cleanly within shutdown_timeout; a second signal stops it at once.\n\n" + Caution,
-		Args: cobra.NoArgs,
-		RunE: func(cmd *cobra.Command, _ []string) error {
-			cfg, err := config.Load(cfgPath, cmd.Flags())
-			if err != nil {
-				return &UsageError{Err: err}
-			}
-			if len(cfg.Streams) == 0 && cfg.Role != config.RoleWorker {
-				where := "the configuration"
-				if cfgPath != "" {
-					where = cfgPath
-				}
-				return usageErrorf("no stream configured: add at least one entry under streams: in %s "+
-					"(see config/trapline.example.yaml), or try `trapline demo`", where)
-			}
-			// log.level and log.format come from the file, the environment
-			// or --log-level (config.Load takes the flag into account).
-			log, err := configLogger(a.stderr, cfg.Log.Level, cfg.Log.Format)
-			if err != nil {
-				return &UsageError{Err: err}
-			}
-			d, err := newDaemon(cfg, log, daemonOptions{})
-			if err != nil {
-				return err
-			}
-			return d.Run(cmd.Context())
-		},
-	}
-	f := cmd.Flags()
-	f.StringVarP(&cfgPath, "config", "c", "", "configuration file (YAML, TOML or JSON)")
-	f.String("data-dir", "", "directory of the JetStream store and the alert spool (data_dir)")
-	f.String("nats-url", "", "connect to this NATS server instead of running the embedded one (nats.url)")
-	f.String("http-listen", "", "address of /healthz, /readyz and /metrics (http.listen)")
-	return cmd
-}
-
-// configLogger is newLogger with the log.format setting: auto (console
-// text on a terminal, JSON lines otherwise), console or json.
-func configLogger(w io.Writer, level, format string) (zerolog.Logger, error) {
-	switch format {
-	case "", "auto":
-		return newLogger(w, level)
-	case "console", "json":
-	default:
-		return zerolog.Nop(), fmt.Errorf("log.format %q: want auto, console or json", format)
-	}
-	lvl, err := zerolog.ParseLevel(level)
-	if err != nil || level == "" {
-		return zerolog.Nop(), fmt.Errorf("log.level %q: want trace, debug, info, warn or error", level)
-	}
-	out := w
-	if format == "console" {
-		out = zerolog.ConsoleWriter{Out: w, TimeFormat: time.TimeOnly, NoColor: true}
-	}
-	return zerolog.New(out).Level(lvl).With().Timestamp().Logger(), nil
-}
-
-// daemonOptions are hooks for callers that run the daemon in-process (the
+// Options are hooks for callers that run the daemon in-process (the
 // demo and the tests).
-type daemonOptions struct {
+type Options struct {
 	// Ready, when set, is called once NATS, the streams and HTTP have been
 	// started.
-	Ready func(runInfo)
+	Ready func(Info)
 	// TickEvery overrides the period of the streams' time-based checks.
 	TickEvery time.Duration
 }
 
-// runInfo tells an in-process caller where the daemon can be reached.
-type runInfo struct {
+// Info tells an in-process caller where the daemon can be reached.
+type Info struct {
 	// NATSURL is the client URL of the NATS server in use.
 	NATSURL string
+	// Client reaches that server with the daemon's credentials and TLS
+	// (set Name before connecting).
+	Client bus.ClientOptions
 	// HTTPAddr is the address of /healthz, /readyz and /metrics, or "".
 	HTTPAddr string
 }
 
 // daemon is one trapline process: its streams and the parts they share.
-type daemon struct {
+type Daemon struct {
 	cfg     *config.Config
 	log     zerolog.Logger
-	opts    daemonOptions
+	opts    Options
 	m       *metrics
 	ready   *readiness
 	subj    alerts.Subjects
@@ -117,8 +52,8 @@ type daemon struct {
 }
 
 // newDaemon checks what can be checked before anything starts.
-func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*daemon, error) {
-	d := &daemon{
+func New(cfg *config.Config, log zerolog.Logger, opts Options) (*Daemon, error) {
+	d := &Daemon{
 		cfg: cfg, log: log, opts: opts,
 		m:       newMetrics(),
 		ready:   newReadiness(),
@@ -134,7 +69,7 @@ func newDaemon(cfg *config.Config, log zerolog.Logger, opts daemonOptions) (*dae
 // alert publisher drains to JetStream for at most shutdown_timeout, then the
 // bulletin is flushed, the connection drained and the embedded server
 // stopped. Whatever is still in the spool is sent at the next start.
-func (d *daemon) Run(ctx context.Context) error {
+func (d *Daemon) Run(ctx context.Context) error {
 	cfg := d.cfg
 	switch cfg.Role {
 	case config.RoleEdge:
@@ -157,42 +92,25 @@ func (d *daemon) Run(ctx context.Context) error {
 		}()
 	}
 
-	b, err := openBus(cfg, d.log)
+	b, err := bus.Open(cfg, d.log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
-	d.nc = b.nc
+	d.nc = b.Conn
 
-	del, err := openDelivery(cfg, b, d.log)
+	del, err := d.startDelivery(b)
 	if err != nil {
 		return err
 	}
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
-	d.del = del
-	d.m.setDelivery(del.pub.Depth, b.nc.IsConnected, del.bull.Dropped)
-	d.ready.set("nats", func() error {
-		if !b.nc.IsConnected() {
-			return fmt.Errorf("not connected (%s)", b.nc.Status())
-		}
-		return nil
-	})
-	d.ready.set("jetstream", del.streamsReady)
-
-	for _, sc := range cfg.Streams {
-		spec, err := d.streamSpec(sc)
-		if err != nil {
-			return err
-		}
-		s := newStream(spec, d.log, d.m, del, del)
-		d.streams = append(d.streams, s)
-		d.byToken[alerts.SubjectToken(sc.ID)] = s
-		d.ready.set("stream "+sc.ID, s.ready)
+	if err := d.addStreams(del); err != nil {
+		return err
 	}
 
-	ackSub, err := b.nc.Subscribe(d.subj.All(alerts.KindAck), d.handleAck)
+	ackSub, err := d.ackService().Subscribe(b.Conn, d.subj)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
 	}
@@ -204,7 +122,7 @@ func (d *daemon) Run(ctx context.Context) error {
 	pubCtx, stopPublishers := context.WithCancel(context.WithoutCancel(ctx))
 	defer stopPublishers()
 	g.Go(func() error { return del.pub.Run(pubCtx) })
-	g.Go(func() error { return del.ensureStreams(gctx, b.nc) })
+	g.Go(func() error { return del.ensureStreams(gctx, b.Conn) })
 	g.Go(func() error { return del.bull.Run(pubCtx) })
 	g.Go(func() error {
 		defer stopPublishers()
@@ -221,39 +139,13 @@ func (d *daemon) Run(ctx context.Context) error {
 		g.Go(func() error { return httpSrv.Run(gctx) })
 	}
 
-	info := runInfo{NATSURL: b.url}
-	if httpSrv != nil {
-		info.HTTPAddr = httpSrv.Addr()
-	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.url).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.embedded()).Msg("trapline running")
-	if d.opts.Ready != nil {
-		d.opts.Ready(info)
-	}
+	d.announce(b, httpSrv)
 
-	done := make(chan error, 1)
-	go func() { done <- g.Wait() }()
-	select {
-	case err := <-done:
-		return d.finish(err)
-	case <-ctx.Done():
-	}
-	d.log.Info().Stringer("limit", cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
-	// The publisher's own drain is bounded by shutdown_timeout; the margin
-	// covers the sources and analysis before it.
-	limit := cfg.ShutdownTimeout + 5*time.Second
-	t := time.NewTimer(limit)
-	defer t.Stop()
-	select {
-	case err := <-done:
-		return d.finish(err)
-	case <-t.C:
-		return fmt.Errorf("shutdown did not finish within %v; pending alerts stay in the spool %s", limit, cfg.SpoolDir())
-	}
+	return d.wait(ctx, g)
 }
 
 // finish logs the end of the run.
-func (d *daemon) finish(err error) error {
+func (d *Daemon) finish(err error) error {
 	if err != nil {
 		return err
 	}
@@ -261,59 +153,108 @@ func (d *daemon) finish(err error) error {
 	return nil
 }
 
-// ackRequestBody is the body of an acknowledgement request on
-// <prefix>.ack.<stream>.
-type ackRequestBody struct {
-	ID string `json:"id"`
-	By string `json:"by"`
+// ackService serves the acknowledgements of the streams of this process.
+func (d *Daemon) ackService() *bus.AckService {
+	return &bus.AckService{
+		Here: func(tok string) bool { return d.byToken[tok] != nil },
+		Ack: func(ctx context.Context, tok string, req bus.AckRequest) error {
+			s := d.byToken[tok]
+			err := s.ack(ctx, req.ID, req.By)
+			if err == nil {
+				d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+			}
+			return err
+		},
+		Counted: func(tok, result string) { d.m.acks.WithLabelValues(tok, result).Inc() },
+		Log:     d.log,
+	}
 }
 
-// ackReply is the answer to an acknowledgement request.
-type ackReply struct {
-	OK    bool   `json:"ok"`
-	Error string `json:"error,omitempty"`
+// AlertStreamsReady returns nil once the JetStream streams of the alerts
+// and breaths exist, or why not yet.
+func (d *Daemon) AlertStreamsReady() error {
+	if d.del == nil {
+		return errors.New("not started")
+	}
+	return d.del.streamsReady()
 }
 
-// handleAck answers an acknowledgement request: {"id":"...","by":"..."} →
-// {"ok":true} or {"ok":false,"error":"..."}. The acknowledged event itself
-// goes out on the alert subject like every other state change.
-func (d *daemon) handleAck(m *nats.Msg) {
-	tok := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
-	reply := func(err error) {
-		r := ackReply{OK: err == nil}
-		result := "ok"
+// SpoolDepth returns how many alert events wait in the spool for JetStream
+// (0 before the start).
+func (d *Daemon) SpoolDepth() int {
+	if d.del == nil {
+		return 0
+	}
+	return d.del.pub.Depth()
+}
+
+// startDelivery opens the alert publisher and the bulletin on b and
+// registers their metrics and readiness checks.
+func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
+	del, err := openDelivery(d.cfg, b, d.log)
+	if err != nil {
+		return nil, err
+	}
+	d.del = del
+	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
+	d.ready.set("nats", func() error {
+		if !b.Conn.IsConnected() {
+			return fmt.Errorf("not connected (%s)", b.Conn.Status())
+		}
+		return nil
+	})
+	d.ready.set("jetstream", del.streamsReady)
+	return del, nil
+}
+
+// addStreams makes the configured streams, delivering to del.
+func (d *Daemon) addStreams(del *delivery) error {
+	for _, sc := range d.cfg.Streams {
+		spec, err := d.streamSpec(sc)
 		if err != nil {
-			r.Error = err.Error()
-			result = "error"
+			return err
 		}
-		d.m.acks.WithLabelValues(tok, result).Inc()
-		if m.Reply == "" {
-			return
-		}
-		b, _ := json.Marshal(r)
-		if rerr := m.Respond(b); rerr != nil {
-			d.log.Warn().Err(rerr).Str("subject", m.Subject).Msg("ack reply failed")
-		}
+		s := newStream(spec, d.log, d.m, del, del)
+		d.streams = append(d.streams, s)
+		d.byToken[alerts.SubjectToken(sc.ID)] = s
+		d.ready.set("stream "+sc.ID, s.ready)
 	}
-	s := d.byToken[tok]
-	if s == nil {
-		reply(fmt.Errorf("no stream %q here", tok))
-		return
+	return nil
+}
+
+// wait waits for g, or after ctx is cancelled for the shutdown, bounded by
+// shutdown_timeout plus a margin.
+func (d *Daemon) wait(ctx context.Context, g *errgroup.Group) error {
+	done := make(chan error, 1)
+	go func() { done <- g.Wait() }()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-ctx.Done():
 	}
-	var req ackRequestBody
-	if err := json.Unmarshal(m.Data, &req); err != nil {
-		reply(fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
-		return
+	d.log.Info().Stringer("limit", d.cfg.ShutdownTimeout).Msg("shutting down: stopping sources, finishing analysis, draining alerts")
+	// The publisher's own drain is bounded by shutdown_timeout; the margin
+	// covers the sources and analysis before it.
+	limit := d.cfg.ShutdownTimeout + 5*time.Second
+	t := time.NewTimer(limit)
+	defer t.Stop()
+	select {
+	case err := <-done:
+		return d.finish(err)
+	case <-t.C:
+		return fmt.Errorf("shutdown did not finish within %v; pending alerts stay in the spool %s", limit, d.cfg.SpoolDir())
 	}
-	if req.ID == "" {
-		reply(errors.New("bad ack request: empty id"))
-		return
+}
+
+// announce logs that the daemon runs and tells an in-process caller where.
+func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
+	info := Info{NATSURL: b.URL, Client: b.ClientOptions("")}
+	if httpSrv != nil {
+		info.HTTPAddr = httpSrv.Addr()
 	}
-	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
-	defer cancel()
-	err := s.ack(ctx, req.ID, req.By)
-	if err == nil {
-		d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
+		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
+	if d.opts.Ready != nil {
+		d.opts.Ready(info)
 	}
-	reply(err)
 }

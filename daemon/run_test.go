@@ -14,6 +14,7 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/config"
+	"trapline/daemon/bus"
 )
 
 // TestRunStartsAndStopsCleanly runs the whole daemon in-process (embedded
@@ -31,15 +32,15 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan runInfo, 1)
-	d, err := newDaemon(cfg, zerolog.Nop(), daemonOptions{Ready: func(i runInfo) { readyc <- i }})
+	readyc := make(chan Info, 1)
+	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
 	if err != nil {
 		t.Fatal(err)
 	}
 	ctx, cancel := context.WithCancel(t.Context())
 	done := make(chan error, 1)
 	go func() { done <- d.Run(ctx) }()
-	var info runInfo
+	var info Info
 	select {
 	case info = <-readyc:
 	case err := <-done:
@@ -86,7 +87,7 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 		if err != nil {
 			t.Fatalf("request %s: %v", tc.subject, err)
 		}
-		var r ackReply
+		var r bus.AckReply
 		if err := json.Unmarshal(msg.Data, &r); err != nil || r.OK || !strings.Contains(r.Error, tc.wantErr) {
 			t.Errorf("ack %s %s: reply %s, want an error containing %q", tc.subject, tc.body, msg.Data, tc.wantErr)
 		}
@@ -107,33 +108,4 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 	waitFor(t, 10*time.Second, "the daemon's goroutines to end", func() bool {
 		return runtime.NumGoroutine() <= baseline+2
 	})
-}
-
-func TestConfigLogger(t *testing.T) {
-	for _, tc := range []struct {
-		level, format string
-		wantErr       bool
-		want          string
-	}{
-		{"info", "json", false, `"message":"hello"`},
-		{"info", "console", false, "INF hello"},
-		{"warn", "json", false, ""},
-		{"info", "xml", true, ""},
-		{"loud", "json", true, ""},
-	} {
-		t.Run(tc.level+"/"+tc.format, func(t *testing.T) {
-			var b strings.Builder
-			log, err := configLogger(&b, tc.level, tc.format)
-			if (err != nil) != tc.wantErr {
-				t.Fatalf("err = %v, want error %v", err, tc.wantErr)
-			}
-			if err != nil {
-				return
-			}
-			log.Info().Msg("hello")
-			if got := b.String(); tc.want == "" && got != "" || !strings.Contains(got, tc.want) {
-				t.Errorf("output %q, want %q", got, tc.want)
-			}
-		})
-	}
 }

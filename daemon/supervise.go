@@ -8,26 +8,25 @@ import (
 	"time"
 
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
-// backoff is the restart policy of a supervised part: the wait doubles after
+// restartPolicy is the restart policy of a supervised part: the wait doubles after
 // every failure from Min up to Max, and falls back to Min once a run has
 // lasted StableAfter (a part that ran for a while and then failed is not in a
 // crash loop).
-type backoff struct {
+type restartPolicy struct {
 	Min, Max    time.Duration
 	StableAfter time.Duration
 }
 
 // defaultBackoff restarts a failed stream after 0.5 s, 1 s, 2 s ... up to 30 s.
-var defaultBackoff = backoff{Min: 500 * time.Millisecond, Max: 30 * time.Second, StableAfter: time.Minute}
+var defaultBackoff = restartPolicy{Min: 500 * time.Millisecond, Max: 30 * time.Second, StableAfter: time.Minute}
 
 // next returns the wait after the current one.
-func (b backoff) next(cur time.Duration) time.Duration {
-	if cur < b.Min {
-		return b.Min
-	}
-	return min(2*cur, b.Max)
+func (b restartPolicy) next(cur time.Duration) time.Duration {
+	return backoff.Double(cur, b.Min, b.Max)
 }
 
 // errPanic marks a failure that was a panic turned into an error, so that a
@@ -49,7 +48,7 @@ func protect(ctx context.Context, f func(context.Context) error) (err error) {
 // returned; f returning nil before that counts as a failure too, since a
 // stream is meant to run until shutdown. onState, when not nil, is told when
 // f starts (true) and stops (false); onRestart when a restart is scheduled.
-func supervise(ctx context.Context, log zerolog.Logger, b backoff, f func(context.Context) error, onState func(up bool), onRestart func(err error, wait time.Duration)) error {
+func supervise(ctx context.Context, log zerolog.Logger, b restartPolicy, f func(context.Context) error, onState func(up bool), onRestart func(err error, wait time.Duration)) error {
 	wait := time.Duration(0)
 	for {
 		start := time.Now()
@@ -81,12 +80,8 @@ func supervise(ctx context.Context, log zerolog.Logger, b backoff, f func(contex
 		if onRestart != nil {
 			onRestart(err, wait)
 		}
-		t := time.NewTimer(wait)
-		select {
-		case <-ctx.Done():
-			t.Stop()
+		if !backoff.Sleep(ctx, nil, wait) {
 			return nil
-		case <-t.C:
 		}
 	}
 }

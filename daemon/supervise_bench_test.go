@@ -10,6 +10,7 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/ingest"
 )
@@ -70,7 +71,7 @@ func BenchmarkStreamSecondOfSignal(b *testing.B) {
 	s := newStream(streamSpec{
 		ID: "bench",
 		Open: func() (ingest.Source, streamPipeline, error) {
-			return src, newPipeline("bench", cfgA, cfgD, cfgL), nil
+			return src, pipeline.New(pipeline.Options{Stream: "bench", Analysis: cfgA, Detectors: cfgD, Alarms: cfgL}), nil
 		},
 		QueueLen: 1 << 16,
 	}, zerolog.Nop(), newMetrics(), sink, sink)

@@ -2,7 +2,6 @@ package daemon
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"sync"
@@ -13,15 +12,14 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 
 // stageOutput is what one step of a stream's analysis produced.
-type stageOutput struct {
-	Breaths []analyze.Breath
-	Alerts  []alerts.Event
-}
+type stageOutput = pipeline.Output
 
 // streamPipeline is the per-stream analysis as the stream runner drives it:
 // samples and status changes in, breaths and alert events out. It is used
@@ -67,11 +65,14 @@ type streamSpec struct {
 	// StatusEvery is the period of the status heartbeat on NATS.
 	StatusEvery time.Duration
 	// Backoff is the restart policy; zero means defaultBackoff.
-	Backoff backoff
+	Backoff restartPolicy
 	// Finite marks a source that has an end (a file, stdin): when it
 	// reaches it, the stream is finished rather than restarted, so that a
 	// recording is analysed once and not replayed over and over.
 	Finite bool
+	// Overload is the source's resolved overload policy: OverloadBlock
+	// makes the stream's queue wait for the analysis too.
+	Overload ingest.OverloadPolicy
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -278,9 +279,11 @@ func (s *stream) runSource(ctx context.Context) error {
 }
 
 // enqueue copies the event (its samples are only valid during the call) and
-// queues it without blocking the source for long. A full queue means the
-// analysis fell behind: the batch is dropped and counted, with one warning
-// per episode. Status events are never dropped.
+// queues it. The stream follows its source's overload policy: behind a
+// source that blocks (a file, stdin: nothing dropped) it waits for the
+// analysis; behind a live source it does not wait, and a full queue means
+// the analysis fell behind: the batch is dropped and counted, with one
+// warning per episode. Status events are never dropped.
 func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}, ev ingest.Event) {
 	if ev.Status == ingest.StatusConnected {
 		s.connected.Store(true)
@@ -298,7 +301,7 @@ func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}
 		}
 		ev.Samples = append([]ingest.Sample(nil), ev.Samples...)
 	}
-	if ev.Status != ingest.StatusNone {
+	if ev.Status != ingest.StatusNone || s.spec.Overload == ingest.OverloadBlock {
 		select {
 		case queue <- ev:
 		case <-analysisDone:
@@ -408,7 +411,7 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 
 // heartbeat publishes the stream's status message.
 func (s *stream) heartbeat(now time.Time) {
-	st := streamStatus{
+	st := bus.StreamStatus{
 		Type:      "status",
 		Schema:    1,
 		Stream:    s.spec.ID,
@@ -419,32 +422,9 @@ func (s *stream) heartbeat(now time.Time) {
 		Active:    s.active.Load(),
 		Restarts:  s.restarts.Load(),
 	}
-	b, err := st.marshal()
+	b, err := st.Marshal()
 	if err != nil {
 		return
 	}
 	s.bull.Status(s.spec.ID, b)
-}
-
-// streamStatus is the status heartbeat published on
-// <prefix>.status.<stream>: whether the stream runs and reads, and its
-// counters so far.
-type streamStatus struct {
-	Type      string    `json:"type"`
-	Schema    int       `json:"schema"`
-	Stream    string    `json:"stream"`
-	Time      time.Time `json:"time"`
-	Running   bool      `json:"running"`
-	Connected bool      `json:"connected"`
-	Breaths   uint64    `json:"breaths"`
-	Active    int64     `json:"alerts_active"`
-	Restarts  uint64    `json:"restarts"`
-}
-
-func (st streamStatus) marshal() ([]byte, error) {
-	b, err := json.Marshal(st)
-	if err != nil {
-		return nil, fmt.Errorf("encode status of %s: %w", st.Stream, err)
-	}
-	return b, nil
 }

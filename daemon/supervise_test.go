@@ -140,7 +140,7 @@ func waitFor(t *testing.T, d time.Duration, what string, cond func() bool) {
 }
 
 func TestBackoffDoublesUpToMax(t *testing.T) {
-	b := backoff{Min: 100 * time.Millisecond, Max: time.Second}
+	b := restartPolicy{Min: 100 * time.Millisecond, Max: time.Second}
 	var got []time.Duration
 	w := time.Duration(0)
 	for range 6 {
@@ -159,7 +159,7 @@ func TestFailingStreamRestartsWithoutDisturbingOthers(t *testing.T) {
 	m := newMetrics()
 	sink := newMemSink()
 	log := zerolog.Nop()
-	quick := backoff{Min: 20 * time.Millisecond, Max: 80 * time.Millisecond, StableAfter: time.Minute}
+	quick := restartPolicy{Min: 20 * time.Millisecond, Max: 80 * time.Millisecond, StableAfter: time.Minute}
 	var opens atomic.Int32
 	var flushed atomic.Bool
 	good := newStream(streamSpec{
@@ -329,15 +329,7 @@ func (p *sampleCounter) Samples(ss []ingest.Sample) stageOutput {
 // is analysed exactly once and the stream stays ready.
 func TestFiniteSourceFinishesItsStream(t *testing.T) {
 	const n = 500
-	path := t.TempDir() + "/bed-7.csv"
-	var b strings.Builder
-	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
-	for i := range n {
-		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
-	}
-	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
-		t.Fatal(err)
-	}
+	path := flatRecording(t, "bed-7", n)
 	var analysed atomic.Int64
 	sink := newMemSink()
 	s := newStream(streamSpec{
@@ -347,19 +339,10 @@ func TestFiniteSourceFinishesItsStream(t *testing.T) {
 			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-7"})
 			return src, &sampleCounter{countingPipeline{stream: "bed-7"}, &analysed}, err
 		},
-		Backoff: backoff{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
 	}, zerolog.Nop(), newMetrics(), sink, sink)
 
-	done := make(chan error, 1)
-	go func() { done <- s.Run(t.Context()) }()
-	select {
-	case err := <-done:
-		if err != nil {
-			t.Fatalf("Run: %v", err)
-		}
-	case <-time.After(10 * time.Second):
-		t.Fatal("the stream of a finished recording did not end within 10 s")
-	}
+	runToEnd(t, s)
 	if got := analysed.Load(); got != n {
 		t.Errorf("analysed %d samples, want each of the %d exactly once", got, n)
 	}
@@ -368,5 +351,68 @@ func TestFiniteSourceFinishesItsStream(t *testing.T) {
 	}
 	if err := s.ready(); err != nil {
 		t.Errorf("a finished stream is not ready: %v", err)
+	}
+}
+
+// slowCounter is a sampleCounter whose analysis takes a while per batch.
+type slowCounter struct{ sampleCounter }
+
+func (p *slowCounter) Samples(ss []ingest.Sample) stageOutput {
+	time.Sleep(2 * time.Millisecond)
+	return p.sampleCounter.Samples(ss)
+}
+
+// TestBlockingSourceDropsNothing reads a recording through a file source
+// into an analysis slower than the file and a queue of one batch: behind a
+// source that promises to drop nothing, the stream waits for the analysis
+// and every sample is analysed.
+func TestBlockingSourceDropsNothing(t *testing.T) {
+	const n = 3000
+	path := flatRecording(t, "bed-8", n)
+	var analysed atomic.Int64
+	sink := newMemSink()
+	s := newStream(streamSpec{
+		ID: "bed-8", Finite: true, QueueLen: 1, Overload: ingest.OverloadDefault.For("file"),
+		Open: func() (ingest.Source, streamPipeline, error) {
+			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-8", Buffer: 1})
+			return src, &slowCounter{sampleCounter{countingPipeline{stream: "bed-8"}, &analysed}}, err
+		},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+	}, zerolog.Nop(), newMetrics(), sink, sink)
+	runToEnd(t, s)
+	if got := analysed.Load(); got != n {
+		t.Errorf("analysed %d samples, want all %d", got, n)
+	}
+}
+
+// flatRecording writes n samples of a flat signal at 100 Hz, in the sample
+// line format v1, to a file and returns its path.
+func flatRecording(t *testing.T, stream string, n int) string {
+	t.Helper()
+	path := t.TempDir() + "/" + stream + ".csv"
+	var b strings.Builder
+	b.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
+	for i := range n {
+		fmt.Fprintf(&b, "%.2f,5.0,0.0\n", float64(i)/100)
+	}
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
+// runToEnd runs the stream of a finite source until it finishes by itself
+// (at most 30 s) and fails the test on an error.
+func runToEnd(t *testing.T, s *stream) {
+	t.Helper()
+	done := make(chan error, 1)
+	go func() { done <- s.Run(t.Context()) }()
+	select {
+	case err := <-done:
+		if err != nil {
+			t.Fatalf("Run: %v", err)
+		}
+	case <-time.After(30 * time.Second):
+		t.Fatal("the stream of a finished recording did not end within 30 s")
 	}
 }

@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"sync/atomic"
-	"syscall"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -13,113 +12,18 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
 	"trapline/config"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
-
-// bus is the daemon's NATS: one client connection, and the embedded server
-// when nats.url is empty.
-type bus struct {
-	nc  *nats.Conn
-	url string
-	srv *embeddedNATS
-	log zerolog.Logger
-}
-
-func (b *bus) embedded() bool { return b.srv != nil }
-
-// Close drains the connection (bounded) and stops the embedded server.
-func (b *bus) Close() {
-	if b.nc != nil {
-		// Draining ends the connection on purpose: not an outage to report.
-		b.nc.SetDisconnectErrHandler(nil)
-		done := make(chan struct{})
-		b.nc.SetClosedHandler(func(*nats.Conn) { close(done) })
-		if err := b.nc.Drain(); err != nil {
-			b.nc.Close()
-		} else {
-			select {
-			case <-done:
-			case <-time.After(5 * time.Second):
-				b.nc.Close()
-			}
-		}
-	}
-	if b.srv != nil {
-		if err := b.srv.shutdown(10 * time.Second); err != nil {
-			b.log.Warn().Err(err).Msg("embedded NATS shutdown")
-		}
-	}
-}
-
-// openBus starts the embedded server (nats.url empty) or connects to the
-// configured one. An unreachable external server is not an error: the
-// connection keeps trying and alerts wait in the spool meanwhile.
-func openBus(cfg *config.Config, log zerolog.Logger) (*bus, error) {
-	n := &cfg.NATS
-	tls := natsTLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile}
-	b := &bus{log: log}
-	if !cfg.EmbeddedNATS() {
-		nc, err := connectNATS(natsClientOptions{
-			URL: n.URL, Name: "trapline",
-			User: n.User, Password: n.Password, Token: n.Token,
-			CredsFile: n.CredsFile, NKeySeedFile: n.NKeySeedFile, TLS: tls,
-		}, log)
-		if err != nil {
-			return nil, fmt.Errorf("nats.url: %w", err)
-		}
-		b.nc, b.url = nc, redactURL(n.URL)
-		return b, nil
-	}
-	srv, err := startEmbeddedNATS(embeddedNATSOptions{
-		Host: n.Embedded.Host, Port: n.Embedded.Port, StoreDir: cfg.NATSStoreDir(),
-		MaxStoreBytes: int64(n.Embedded.MaxStore), MaxMemoryBytes: int64(n.Embedded.MaxMemory),
-		User: n.User, Password: n.Password, Token: n.Token, TLS: tls,
-	}, log)
-	if err != nil {
-		if errors.Is(err, syscall.EADDRINUSE) {
-			return nil, fmt.Errorf("embedded NATS: %w: another process (perhaps another trapline or a nats-server) holds the port; "+
-				"stop it, change nats.embedded.port, or set nats.url to use that server: %w", ErrPortInUse, err)
-		}
-		return nil, fmt.Errorf("embedded NATS: %w", err)
-	}
-	nc, err := connectNATS(srv.clientOptions("trapline"), log)
-	if err != nil {
-		_ = srv.shutdown(10 * time.Second)
-		return nil, fmt.Errorf("connect to the embedded NATS: %w", err)
-	}
-	b.nc, b.srv, b.url = nc, srv, srv.URL()
-	return b, nil
-}
-
-// streamsConfig maps the nats section onto the JetStream stream settings.
-// In the file 0 means "no limit"; alerts.StreamsConfig spells that -1.
-func streamsConfig(n *config.NATS) alerts.StreamsConfig {
-	unlimited := func(v int64) int64 {
-		if v == 0 {
-			return -1
-		}
-		return v
-	}
-	return alerts.StreamsConfig{
-		Prefix:           n.SubjectPrefix,
-		Alerts:           n.AlertsStream.Name,
-		Breaths:          n.BreathsStream.Name,
-		AlertsDuplicates: n.AlertsStream.Duplicates,
-		AlertsMaxAge:     time.Duration(unlimited(int64(n.AlertsStream.MaxAge))),
-		AlertsMaxBytes:   unlimited(int64(n.AlertsStream.MaxBytes)),
-		BreathsMaxAge:    time.Duration(unlimited(int64(n.BreathsStream.MaxAge))),
-		BreathsMaxBytes:  unlimited(int64(n.BreathsStream.MaxBytes)),
-		Replicas:         n.Replicas,
-	}
-}
 
 // delivery is where a stream's output goes: alerts through the spooling
 // JetStream publisher, breaths and heartbeats through the bulletin.
 type delivery struct {
 	pub     *alerts.Publisher
-	bull    *bulletin
+	bull    *bus.Bulletin
 	js      jetstream.JetStream
 	streams alerts.StreamsConfig
 	log     zerolog.Logger
@@ -133,8 +37,8 @@ var (
 
 // openDelivery opens the spool and builds the publishers. The spool is
 // locked against a second process on the same data directory.
-func openDelivery(cfg *config.Config, b *bus, log zerolog.Logger) (*delivery, error) {
-	sc := streamsConfig(&cfg.NATS)
+func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery, error) {
+	sc := cfg.JetStream()
 	spool, err := alerts.OpenSpool(cfg.SpoolDir(), cfg.Spool.MaxEvents)
 	if err != nil {
 		return nil, fmt.Errorf("alert spool (spool.dir): %w", err)
@@ -142,7 +46,7 @@ func openDelivery(cfg *config.Config, b *bus, log zerolog.Logger) (*delivery, er
 	if n := spool.Depth(); n > 0 {
 		log.Info().Int("events", n).Str("dir", spool.Dir()).Msg("alert spool holds events from an earlier run; sending them first")
 	}
-	pub, err := alerts.NewPublisher(b.nc, spool, alerts.PublisherOptions{
+	pub, err := alerts.NewPublisher(b.Conn, spool, alerts.PublisherOptions{
 		Streams:        sc,
 		RequestTimeout: cfg.NATS.PublishTimeout,
 		DrainTimeout:   cfg.ShutdownTimeout,
@@ -152,14 +56,14 @@ func openDelivery(cfg *config.Config, b *bus, log zerolog.Logger) (*delivery, er
 		spool.Close()
 		return nil, err
 	}
-	js, err := jetstream.New(b.nc)
+	js, err := jetstream.New(b.Conn)
 	if err != nil {
 		pub.Close()
 		return nil, fmt.Errorf("jetstream: %w", err)
 	}
 	return &delivery{
 		pub: pub, js: js, streams: sc, log: log,
-		bull: newBulletin(b.nc, cfg.NATS.SubjectPrefix, 0, log),
+		bull: bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, log),
 	}, nil
 }
 
@@ -219,7 +123,7 @@ func (d *delivery) streamsReady() error {
 }
 
 // streamSpec builds the runner's view of one configured stream.
-func (d *daemon) streamSpec(sc config.Stream) (streamSpec, error) {
+func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	cfg := d.cfg
 	log := d.log.With().Str("stream", sc.ID).Logger()
 	opts := ingest.Options{
@@ -234,16 +138,16 @@ func (d *daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 	}
 	return streamSpec{
-		ID:     sc.ID,
-		Finite: u.Scheme == "file" || u.Scheme == "stdin",
+		ID:       sc.ID,
+		Finite:   u.Scheme == "file" || u.Scheme == "stdin",
+		Overload: opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {
 				return nil, nil, err
 			}
-			p := newPipeline(sc.ID, cfg.Analysis, cfg.Detectors, cfg.Alarms)
-			p.stats = src.Stats
-			return src, p, nil
+			return src, pipeline.New(pipeline.Options{Stream: sc.ID, Analysis: cfg.Analysis,
+				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats}), nil
 		},
 		TickEvery: d.opts.TickEvery,
 	}, nil

@@ -4,8 +4,7 @@ import (
 	"testing"
 	"time"
 
-	"trapline/alerts"
-	"trapline/analyze"
+	"trapline/alerts/pipeline"
 	"trapline/ingest"
 	"trapline/simulator"
 )
@@ -44,19 +43,18 @@ func BenchmarkWorkerStream(b *testing.B) {
 	done := 0
 	wall := time.Date(2026, 3, 1, 8, 0, 0, 0, time.UTC)
 	for done < b.N {
-		pl := newPipeline("bed-1", analyze.DefaultConfig(), analyze.DefaultDetectorConfig(), alerts.DefaultLifecycleConfig())
-		pl.now = func() time.Time { return wall }
+		pl := pipeline.New(defaultPipelineOptions("bed-1", func() time.Time { return wall }))
 		var buf []ingest.Sample
 		dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: "bed-1"}, func(_ string, s ingest.Sample) { buf = append(buf, s) })
 		if err != nil {
 			b.Fatal(err)
 		}
-		em := emitter{breath: func(*analyze.Breath) {}, alert: func(*alerts.Event) {}}
+		var em pipeline.Discard
 		for _, m := range msgs {
 			buf = buf[:0]
 			_, _ = dec.Write(m)
 			wall = wall.Add(50 * time.Millisecond)
-			pl.process(buf, em)
+			pl.Push(buf, em)
 			if done += len(buf); done >= b.N {
 				break
 			}

@@ -120,7 +120,7 @@ func TestTextRoundTrip(t *testing.T) {
 
 // TestTextUnits writes the same signal in three sets of units and checks that
 // it reads back as the same samples. The factors are those of the units
-// reference: 1 hPa = 1.019716 cmH2O, 1 kPa = 10.19716 cmH2O (REFERENCE units,
+// reference: 1 hPa = 1.019716 cmH2O, 1 kPa = 10.19716 cmH2O (exact SI units, docs/formulas.md,
 // BIPM SI Brochure 9th ed. 2019 for Pa; 1 cmH2O = 98.0665 Pa by definition).
 func TestTextUnits(t *testing.T) {
 	in := testSignal(300, 50, true)
@@ -163,9 +163,9 @@ func TestTextUnits(t *testing.T) {
 	d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
 	_ = Decode(strings.NewReader(text), d)
 	want := []Sample{
-		{TimeS: 0, PressureCmH2O: 10.19716, FlowLPS: 1},   // 1 hPa = 1.019716 cmH2O (REFERENCE units)
-		{TimeS: 1, PressureCmH2O: 10.19716, FlowLPS: 0.5}, // 1 kPa = 10.19716 cmH2O (REFERENCE units)
-		{TimeS: 2, PressureCmH2O: 1.35951, FlowLPS: 1},    // 1 mmHg = 1.35951 cmH2O (REFERENCE units)
+		{TimeS: 0, PressureCmH2O: 10.19716, FlowLPS: 1},   // 1 hPa = 1.019716 cmH2O (exact, from the SI definitions)
+		{TimeS: 1, PressureCmH2O: 10.19716, FlowLPS: 0.5}, // 1 kPa = 10.19716 cmH2O (exact, from the SI definitions)
+		{TimeS: 2, PressureCmH2O: 1.35951, FlowLPS: 1},    // 1 mmHg = 1.35951 cmH2O (exact, from the SI definitions)
 	}
 	if len(g.samples) != len(want) {
 		t.Fatalf("got %d samples (%+v, %v)", len(g.samples), d.Stats(), d.Err())

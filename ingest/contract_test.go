@@ -252,7 +252,7 @@ var harnesses = []harness{
 			// up, on the same connection as these publishes.
 			waitFor(t, 2*time.Second, "the subscription", col.connected)
 			for _, p := range splitUnits(f, data) {
-				if err := nc.Publish(SamplesSubject("lab", "bed-9"), p); err != nil {
+				if err := nc.Publish("lab.samples.bed-9", p); err != nil {
 					t.Error(err)
 				}
 			}

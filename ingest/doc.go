@@ -22,8 +22,8 @@
 // admitted stream its samples once per batch. Whole files on several cores:
 // the offline subpackage.
 //
-// Writing samples (simulator, tests): NewTextEncoder, NewBinaryEncoder, and
-// NATSSink for the scale-out subjects. docs/framing.md describes both wire
+// Writing samples (simulator, tests, the scale-out edge): NewTextEncoder and
+// NewBinaryEncoder. docs/framing.md describes both wire
 // formats byte by byte; docs/sources.md every source URL and its behaviour
 // on failure.
 package ingest

@@ -25,6 +25,20 @@ const (
 )
 
 // String names the policy as configuration spells it.
+// For resolves OverloadDefault for a source of the given URL scheme: a
+// file or stdin blocks (nothing dropped), a live source drops the oldest.
+// Any other policy is returned as it is. Every queue behind a source (the
+// source's own and the daemon's) follows the resolved policy.
+func (p OverloadPolicy) For(scheme string) OverloadPolicy {
+	if p != OverloadDefault {
+		return p
+	}
+	if scheme == "file" || scheme == "stdin" {
+		return OverloadBlock
+	}
+	return OverloadDropOldest
+}
+
 func (p OverloadPolicy) String() string {
 	switch p {
 	case OverloadBlock:

@@ -14,6 +14,8 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
 	"go.bug.st/serial"
+
+	"trapline/ingest/backoff"
 )
 
 // readFile reads a file to its end. A file that cannot be opened stops the
@@ -91,7 +93,7 @@ func (s *source) readStdin(ctx context.Context) error {
 // backoff whenever the connection fails or ends.
 func (s *source) readTCP(ctx context.Context) error {
 	c := s.newConn(ctx, s.opts.Stream)
-	b := backoff{min: s.opts.BackoffMin, max: s.opts.BackoffMax}
+	b := backoff.Backoff{Min: s.opts.BackoffMin, Max: s.opts.BackoffMax, Jitter: 0.2}
 	up, everUp := true, false // report the first failure as a disconnection
 	for ctx.Err() == nil {
 		d := net.Dialer{Timeout: 5 * time.Second}
@@ -105,7 +107,7 @@ func (s *source) readTCP(ctx context.Context) error {
 				c.status(StatusDisconnected, fmt.Errorf("connect %s: %w", s.spec.Address, err))
 			}
 			s.warn("connect", func(e *zerolog.Event) { e.Err(err).Msg("cannot connect: retrying with backoff") })
-			if !b.wait(ctx) {
+			if !b.Wait(ctx) {
 				break
 			}
 			continue
@@ -133,9 +135,9 @@ func (s *source) readTCP(ctx context.Context) error {
 		c.status(StatusDisconnected, fmt.Errorf("read %s: %w", s.spec.Address, err))
 		s.warn("read", func(e *zerolog.Event) { e.Err(err).Msg("connection lost: reconnecting") })
 		if time.Since(start) > s.opts.BackoffMax {
-			b.reset() // it was up for a while: start again from a short wait
+			b.Reset() // it was up for a while: start again from a short wait
 		}
-		if !b.wait(ctx) {
+		if !b.Wait(ctx) {
 			break
 		}
 	}
@@ -283,7 +285,7 @@ const serialReadTimeout = 100 * time.Millisecond
 // device when it comes back.
 func (s *source) readSerial(ctx context.Context) error {
 	c := s.newConn(ctx, s.opts.Stream)
-	b := backoff{min: s.opts.BackoffMin, max: s.opts.BackoffMax}
+	b := backoff.Backoff{Min: s.opts.BackoffMin, Max: s.opts.BackoffMax, Jitter: 0.2}
 	up, everUp := true, false
 	path := s.spec.Address
 	for ctx.Err() == nil {
@@ -299,7 +301,7 @@ func (s *source) readSerial(ctx context.Context) error {
 				c.status(StatusDisconnected, fmt.Errorf("open serial %s: %w", path, err))
 			}
 			s.warn("open", func(e *zerolog.Event) { e.Err(err).Msg("cannot open serial device: retrying with backoff") })
-			if !b.wait(ctx) {
+			if !b.Wait(ctx) {
 				break
 			}
 			continue
@@ -308,7 +310,7 @@ func (s *source) readSerial(ctx context.Context) error {
 			s.c.reconnects.Add(1)
 		}
 		everUp, up = true, true
-		b.reset()
+		b.Reset()
 		s.log.Info().Int("baud", s.spec.Baud).Msg("serial device open")
 		c.status(StatusConnected, nil)
 		c.lastData, c.silent = time.Now(), false
@@ -324,7 +326,7 @@ func (s *source) readSerial(ctx context.Context) error {
 		up = false
 		c.status(StatusDisconnected, fmt.Errorf("read serial %s: %w", path, err))
 		s.warn("read", func(e *zerolog.Event) { e.Err(err).Msg("serial device lost: reopening") })
-		if !b.wait(ctx) {
+		if !b.Wait(ctx) {
 			break
 		}
 	}

@@ -13,6 +13,8 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
 )
 
 // ErrNoData explains a StatusDisconnected sent when a live source has read
@@ -122,12 +124,7 @@ func OpenSpec(spec Spec, opts Options) (Source, error) {
 	if opts.Silence == 0 {
 		opts.Silence = 3 * time.Second
 	}
-	if opts.Overload == OverloadDefault {
-		opts.Overload = OverloadDropOldest
-		if spec.Scheme == "file" || spec.Scheme == "stdin" {
-			opts.Overload = OverloadBlock
-		}
-	}
+	opts.Overload = opts.Overload.For(spec.Scheme)
 	if opts.Stdin == nil {
 		opts.Stdin = os.Stdin
 	}
@@ -518,45 +515,16 @@ func (p *pacer) wait(ctx context.Context, tS float64) {
 	if d <= 0 {
 		return
 	}
-	t := time.NewTimer(d)
-	defer t.Stop()
-	select {
-	case <-t.C:
-	case <-ctx.Done():
-	}
-}
-
-// backoff is a capped exponential backoff.
-type backoff struct {
-	min, max, cur time.Duration
-}
-
-func (b *backoff) reset() { b.cur = 0 }
-
-// wait sleeps for the next delay and reports false when ctx ended.
-func (b *backoff) wait(ctx context.Context) bool {
-	if b.cur == 0 {
-		b.cur = b.min
-	} else {
-		b.cur = min(2*b.cur, b.max)
-	}
-	t := time.NewTimer(b.cur)
-	defer t.Stop()
-	select {
-	case <-t.C:
-		return true
-	case <-ctx.Done():
-		return false
-	}
+	backoff.Sleep(ctx, nil, d)
 }
 
 // readChunk is the buffer size of stream reads.
 const readChunk = 32 << 10
 
 // pump reads r until it fails and decodes what it reads. It returns the
-// read error (io.EOF at the end of a file). onIdle runs after every read
-// that returned no data or timed out; deadline, when not nil, is set before
-// each read so that a quiet link still returns to the loop.
+// read error (io.EOF at the end of a file). deadline, when not nil, is set
+// before each read so that a quiet link still returns to the loop after a
+// read that timed out.
 func (c *conn) pump(r io.Reader, deadline func(time.Time) error) error {
 	buf := make([]byte, readChunk)
 	for {

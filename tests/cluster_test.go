@@ -23,7 +23,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/alerts"
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // clusterMaxStore is each node's JetStream file store limit. The breath
@@ -130,7 +130,7 @@ func simFile(t *testing.T, dir, name, scenario string, dur time.Duration) string
 	t.Helper()
 	p := filepath.Join(dir, name+".csv")
 	code, out := runDaemon(t.Context(), "sim", "--scenario", scenario, "--duration", dur.String(), "--speed", "max", "--out", p)
-	if code != daemon.ExitOK {
+	if code != cli.ExitOK {
 		t.Fatalf("sim %s: exit %d: %s", scenario, code, out)
 	}
 	return p
@@ -140,7 +140,7 @@ func simFile(t *testing.T, dir, name, scenario string, dur time.Duration) string
 func reference(t *testing.T, file, stream string) (alertsOut []alerts.Event, breaths int) {
 	t.Helper()
 	code, out := runDaemon(t.Context(), "analyze", "--stream", stream, file)
-	if code != daemon.ExitOK {
+	if code != cli.ExitOK {
 		t.Fatalf("analyze %s: exit %d", file, code)
 	}
 	sc := bufio.NewScanner(strings.NewReader(out))
@@ -165,15 +165,20 @@ func reference(t *testing.T, file, stream string) (alertsOut []alerts.Event, bre
 	return alertsOut, breaths
 }
 
-// clinical keeps the physiological events as "condition state t_s", the
-// part of an event that does not depend on the wall clock (ids do).
+// clinical keeps the physiological events as "condition state t_s breath",
+// the part of an event that does not depend on the wall clock (ids do); the
+// breath number must survive a hand-over between workers unchanged.
 func clinical(evs []alerts.Event) []string {
 	var out []string
 	for _, ev := range evs {
 		if ev.Class == "technical" {
 			continue
 		}
-		out = append(out, fmt.Sprintf("%s %s %s %.2f", ev.Stream, ev.Condition, ev.State, ev.TS))
+		seq := -1
+		if ev.BreathSeq != nil {
+			seq = *ev.BreathSeq
+		}
+		out = append(out, fmt.Sprintf("%s %s %s %.2f breath %d", ev.Stream, ev.Condition, ev.State, ev.TS, seq))
 	}
 	sort.Strings(out)
 	return out
@@ -357,9 +362,14 @@ func (s *scaleSetup) stored(t *testing.T, n int) []alerts.Event {
 
 // tryStored reads the whole alert stream, giving up after 5 s.
 func (s *scaleSetup) tryStored(ctx context.Context) ([]alerts.Event, error) {
+	return readAlerts(ctx, s.js)
+}
+
+// readAlerts reads the whole alert stream of js, giving up after 5 s.
+func readAlerts(ctx context.Context, js jetstream.JetStream) ([]alerts.Event, error) {
 	ctx, cancel := context.WithTimeout(ctx, 5*time.Second)
 	defer cancel()
-	c, err := s.js.OrderedConsumer(ctx, "TRAPLINE_ALERTS", jetstream.OrderedConsumerConfig{})
+	c, err := js.OrderedConsumer(ctx, "TRAPLINE_ALERTS", jetstream.OrderedConsumerConfig{})
 	if err != nil {
 		return nil, err
 	}

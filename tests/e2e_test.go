@@ -14,7 +14,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/alerts"
-	"trapline/daemon"
+	"trapline/daemon/cli"
 	"trapline/ingest"
 	"trapline/simulator"
 )
@@ -209,7 +209,7 @@ streams:
 			stopDaemon()
 			select {
 			case code := <-codec:
-				if code != daemon.ExitOK {
+				if code != cli.ExitOK {
 					t.Errorf("daemon exit code %d:\n%s", code, dout)
 				}
 			case <-time.After(30 * time.Second):
@@ -305,10 +305,10 @@ func TestDemoRunsToItsSummary(t *testing.T) {
 	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
 	defer cancel()
 	code, out := runDaemon(ctx, "demo", "--speed", "120", "--plain")
-	if code != daemon.ExitOK {
+	if code != cli.ExitOK {
 		t.Fatalf("demo exit code %d:\n%s", code, out)
 	}
-	if n := strings.Count(out, daemon.Caution); n != 2 {
+	if n := strings.Count(out, cli.Caution); n != 2 {
 		t.Errorf("caution printed %d times, want at the start and at the end", n)
 	}
 	for _, want := range []string{

@@ -14,7 +14,7 @@ import (
 	"testing"
 	"time"
 
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // execDaemonEnv makes the test binary behave as the trapline command, so that
@@ -24,7 +24,7 @@ const execDaemonEnv = "TRAPLINE_TESTS_EXEC_DAEMON"
 
 func TestMain(m *testing.M) {
 	if os.Getenv(execDaemonEnv) == "1" {
-		os.Exit(daemon.Main(os.Args[1:]))
+		os.Exit(cli.Main(os.Args[1:]))
 	}
 	os.Exit(m.Run())
 }
@@ -113,6 +113,6 @@ func (l *lockedBuffer) String() string {
 // returns its exit code and output.
 func runDaemon(ctx context.Context, args ...string) (int, string) {
 	var out lockedBuffer
-	code := daemon.Run(ctx, args, bytes.NewReader(nil), &out, &out)
+	code := cli.Run(ctx, args, bytes.NewReader(nil), &out, &out)
 	return code, out.String()
 }

@@ -15,7 +15,7 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // outageConfig is a daemon reading the pseudo-terminal link and publishing
@@ -182,7 +182,7 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 	stopDaemon()
 	select {
 	case code := <-codec:
-		if code != daemon.ExitOK {
+		if code != cli.ExitOK {
 			t.Errorf("daemon exit code %d:\n%s", code, dout)
 		}
 	case <-time.After(30 * time.Second):
@@ -293,7 +293,7 @@ func TestStartsWhileNATSIsAway(t *testing.T) {
 	cancel()
 	select {
 	case code := <-codec:
-		if code != daemon.ExitOK {
+		if code != cli.ExitOK {
 			t.Errorf("exit code %d after cancellation", code)
 		}
 	case <-time.After(30 * time.Second):

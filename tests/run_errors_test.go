@@ -10,7 +10,7 @@ import (
 	"testing"
 	"time"
 
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // writeConfig writes a YAML configuration into a temporary file.
@@ -54,13 +54,13 @@ streams:
   - id: bed-2
     sourse: serial:///dev/ttyUSB0
 `, dir),
-			wantCode: daemon.ExitUsage,
+			wantCode: cli.ExitUsage,
 			want:     []string{"shutdown_timeout", "htp", "nats.embedded.port", "streams[0].id", "streams[0].source", "streams[1].sourse"},
 		},
 		{
 			name:     "no stream configured",
 			yaml:     fmt.Sprintf("data_dir: %s\n", dir),
-			wantCode: daemon.ExitUsage,
+			wantCode: cli.ExitUsage,
 			want:     []string{"no stream configured", "streams:"},
 		},
 		{
@@ -75,7 +75,7 @@ streams:
   - id: bed-1
     source: tcp-listen://127.0.0.1:0
 `, dir, busy.Addr()),
-			wantCode: daemon.ExitError,
+			wantCode: cli.ExitError,
 			want:     []string{busy.Addr().String(), "already in use", "http.listen"},
 		},
 		{
@@ -90,7 +90,7 @@ streams:
   - id: bed-1
     source: tcp-listen://127.0.0.1:0
 `, dir, busy.Addr().(*net.TCPAddr).Port),
-			wantCode: daemon.ExitError,
+			wantCode: cli.ExitError,
 			want:     []string{busy.Addr().String(), "in use", "nats.embedded.port"},
 		},
 	} {

@@ -13,7 +13,7 @@ import (
 	"strings"
 	"testing"
 
-	"trapline/daemon"
+	"trapline/daemon/cli"
 )
 
 // schemaNode is the part of JSON Schema (draft 2020-12) that the shipped
@@ -138,19 +138,19 @@ func (s *schemaNode) check(path string, v any) []string {
 // `trapline sim` and `trapline analyze` and checks every breath record and
 // alert event against the JSON Schemas shipped in docs/schema, and every
 // property of the breath schema against what the records carry, so that the
-// contract (DESIGN.md §4, §5) and the schemas cannot drift apart.
+// contract (docs/schema) and the schemas cannot drift apart.
 func TestRecordsMatchSchemas(t *testing.T) {
 	breathSchema := loadSchema(t, "breath.schema.json")
 	alertSchema := loadSchema(t, "alert.schema.json")
 
 	signal := filepath.Join(t.TempDir(), "bronchospasm.txt")
 	var stderr bytes.Buffer
-	if code := daemon.Run(t.Context(), []string{"sim", "--scenario", "bronchospasm", "--speed", "max", "--out", signal},
-		strings.NewReader(""), io.Discard, &stderr); code != daemon.ExitOK {
+	if code := cli.Run(t.Context(), []string{"sim", "--scenario", "bronchospasm", "--speed", "max", "--out", signal},
+		strings.NewReader(""), io.Discard, &stderr); code != cli.ExitOK {
 		t.Fatalf("trapline sim exited %d: %s", code, stderr.String())
 	}
 	var out bytes.Buffer
-	if code := daemon.Run(t.Context(), []string{"analyze", signal}, strings.NewReader(""), &out, &stderr); code != daemon.ExitOK {
+	if code := cli.Run(t.Context(), []string{"analyze", signal}, strings.NewReader(""), &out, &stderr); code != cli.ExitOK {
 		t.Fatalf("trapline analyze exited %d: %s", code, stderr.String())
 	}
 

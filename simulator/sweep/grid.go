@@ -46,7 +46,7 @@ func Models() []string {
 
 // Model constants of the non-linear patients (our choice: values that make
 // each model's signature visible at adult settings without leaving the
-// range of adult mechanics in /work/shared/REFERENCE.md §4).
+// range of adult mechanics in docs/formulas.md, typical adult values).
 const (
 	// RohrerRefFlowLPS is the flow at which the Rohrer resistance equals
 	// the nominal R: 0.8 L/s (48 L/min), a typical inspiratory flow.

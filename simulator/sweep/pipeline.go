@@ -4,8 +4,8 @@ import (
 	"time"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 	"trapline/analyze"
-	"trapline/ingest"
 )
 
 // DetectorSet is one configuration of the detectors and of the alarm
@@ -32,48 +32,33 @@ func (s *DetectorSet) Validate() []error {
 // after it, so that alert ids are a deterministic function of the run.
 var wallEpoch = time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC)
 
-// stage judges one stream for one detector set with the judge the daemon
-// uses (alerts.Judge), on the offline clock that `trapline analyze` uses
-// (alerts.OfflineClock): every sample goes to the technical detectors at
-// its own time, every breath to the breath detectors, a tick once a second
-// of stream time (through gaps too). It collects the alert events. The
-// analyzer is shared by all the stages of a case, so a comparison of two
-// detector sets judges the very same breaths.
+// stage judges one stream for one detector set with the per-stream
+// pipeline the daemon and `trapline analyze` use (alerts/pipeline), on its
+// offline clock: every sample goes to the technical detectors at its own
+// time, every breath to the breath detectors, a tick once a second of
+// stream time (through gaps too). It is the pipeline's sink and collects
+// the alert events; onBreath, when set, sees every breath. The analysis is
+// deterministic, so the stages of a case judge the very same breaths.
 type stage struct {
-	judge  *alerts.Judge
-	clock  alerts.OfflineClock
-	events []AlertEvent
-	emit   func(*alerts.Event)
+	pl       *pipeline.Pipeline
+	events   []AlertEvent
+	onBreath func(*analyze.Breath)
 }
 
-func newStage(stream string, set *DetectorSet) *stage {
-	s := &stage{judge: alerts.NewJudge(stream, set.Detectors, set.Alarms), clock: alerts.OfflineClock{Epoch: wallEpoch}}
-	s.emit = func(ev *alerts.Event) {
-		s.events = append(s.events, AlertEvent{Condition: ev.Condition, State: string(ev.State), TS: ev.TS,
-			Fresh: ev.State == alerts.Raised && ev.Supersedes == ""})
+func newStage(stream string, acfg analyze.Config, set *DetectorSet) *stage {
+	return &stage{pl: pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: acfg,
+		Detectors: set.Detectors, Alarms: set.Alarms}, wallEpoch)}
+}
+
+// Breath passes a breath to onBreath.
+func (s *stage) Breath(b *analyze.Breath) {
+	if s.onBreath != nil {
+		s.onBreath(b)
 	}
-	return s
 }
 
-// advance makes the ticks due up to stream time tS.
-func (s *stage) advance(tS float64) {
-	s.clock.Until(tS, func(tickS float64) { s.judge.Tick(tickS, s.clock.Wall(tickS), s.emit) })
-}
-
-// sample passes one sample (a one-element slice of the caller's buffer).
-func (s *stage) sample(one []ingest.Sample) {
-	t := one[0].TimeS
-	s.advance(t)
-	s.judge.Samples(one, t, s.clock.Wall(t), s.emit)
-}
-
-func (s *stage) breath(b *analyze.Breath, tS float64) {
-	s.judge.Breath(b, s.clock.Wall(tS), s.emit)
-}
-
-// finish makes the ticks due up to the end of the run at stream time tS.
-func (s *stage) finish(tS float64) { s.advance(tS) }
-
-func (s *stage) status(st ingest.Status, nowS float64) {
-	s.judge.Status(&ingest.Event{Status: st}, nowS)
+// Alert collects an alert event.
+func (s *stage) Alert(ev *alerts.Event) {
+	s.events = append(s.events, AlertEvent{Condition: ev.Condition, State: string(ev.State), TS: ev.TS,
+		Fresh: ev.State == alerts.Raised && ev.Supersedes == ""})
 }

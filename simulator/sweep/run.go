@@ -229,29 +229,33 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		return CaseResult{}, fmt.Errorf("%s: %w", c.Name, err)
 	}
 	stream := sim.Stream()
-	an := analyze.NewAnalyzer(stream, acfg)
 	stages := make([]*stage, len(sets))
 	for i := range sets {
-		stages[i] = newStage(stream, &sets[i])
+		stages[i] = newStage(stream, acfg, &sets[i])
 	}
 	out := CaseResult{Case: c, Alerts: make([][]AlertEvent, len(sets))}
-	one := make([]ingest.Sample, 1)
-	var b analyze.Breath
-	lastS := 0.0
 	lastReport := 0.0
 	ti := 0 // next truth breath to match
-
+	onBreath := func(b *analyze.Breath) {
+		out.Breaths++
+		if rec != nil && b.EndS >= rec.fromS && b.StartS <= rec.toS {
+			rec.breaths = append(rec.breaths, *b)
+		}
+		ti = out.match(b, ti)
+	}
+	if len(stages) > 0 {
+		stages[0].onBreath = onBreath
+	}
 	for {
 		smp, ok := sim.Next()
 		for _, le := range sim.TakeLinkEvents() {
 			if le.Up {
 				continue // the returning samples say so themselves
 			}
-			// A lost link is a disconnection of the source: the analyzer
+			// A lost link is a disconnection of the source: the analysis
 			// starts afresh so that no breath spans it.
-			an.Reset()
 			for _, s := range stages {
-				s.status(ingest.StatusDisconnected, lastS)
+				s.pl.Status(ingest.Event{Stream: stream, Status: ingest.StatusDisconnected}, time.Time{})
 			}
 		}
 		for _, tr := range sim.TakeTruth() {
@@ -261,26 +265,11 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 			break
 		}
 		out.Samples++
-		lastS = smp.TimeS
-		one[0] = smp
-		for _, s := range stages {
-			s.sample(one)
-		}
 		if rec != nil && smp.TimeS >= rec.fromS && smp.TimeS <= rec.toS {
 			rec.samples = append(rec.samples, smp)
 		}
-		if bb, done := an.Push(smp); done {
-			// b lives outside the loop: taking the address of a per-call
-			// variable would move every returned record to the heap.
-			b = bb
-			out.Breaths++
-			if rec != nil && b.EndS >= rec.fromS && b.StartS <= rec.toS {
-				rec.breaths = append(rec.breaths, b)
-			}
-			ti = out.match(&b, ti)
-			for _, s := range stages {
-				s.breath(&b, smp.TimeS)
-			}
+		for _, s := range stages {
+			s.pl.PushOne(smp, s)
 		}
 		if smp.TimeS-lastReport >= progressEveryS {
 			if progress != nil {
@@ -293,7 +282,7 @@ func runCase(ctx context.Context, c *Case, sets []DetectorSet, acfg analyze.Conf
 		}
 	}
 	for _, s := range stages {
-		s.finish(sim.DurationS())
+		s.pl.Finish(sim.DurationS(), s)
 	}
 	if progress != nil {
 		progress(sim.DurationS() - lastReport)

@@ -1,0 +1,241 @@
+// Package pipeline is the analysis of one stream: samples go through the
+// breath analyzer, breaths and samples through the detectors, and findings
+// through the alarm lifecycle. The daemon, the scale-out worker, `trapline
+// analyze` and the sweep all drive this one type.
+package pipeline
+
+import (
+	"math"
+	"time"
+
+	"trapline/alerts"
+	"trapline/analyze"
+	"trapline/ingest"
+)
+
+// Sink receives what a pipeline produces, in the order it happens: a breath
+// record before the alert events it causes. The pointers are only valid
+// during the call; a sink that keeps them copies the values.
+type Sink interface {
+	Breath(b *analyze.Breath)
+	Alert(e *alerts.Event)
+}
+
+// Output is what one step of a stream's analysis produced. *Output is a
+// Sink that gathers.
+type Output struct {
+	Breaths []analyze.Breath
+	Alerts  []alerts.Event
+}
+
+// Breath appends a copy of b.
+func (o *Output) Breath(b *analyze.Breath) { o.Breaths = append(o.Breaths, *b) }
+
+// Alert appends a copy of e.
+func (o *Output) Alert(e *alerts.Event) { o.Alerts = append(o.Alerts, *e) }
+
+// Discard is a Sink that throws everything away.
+type Discard struct{}
+
+// Breath does nothing.
+func (Discard) Breath(*analyze.Breath) {}
+
+// Alert does nothing.
+func (Discard) Alert(*alerts.Event) {}
+
+// Options configure a pipeline; the configurations must be valid.
+type Options struct {
+	// Stream is the stream id written into breath records and alert events.
+	Stream    string
+	Analysis  analyze.Config
+	Detectors analyze.DetectorConfig
+	Alarms    alerts.LifecycleConfig
+	// Now is the live wall clock (default time.Now). The worker passes the
+	// store time of the message it analyses.
+	Now func() time.Time
+	// Stats, when set, reads the source's counters for the decoder error
+	// rate; they are sampled on every tick.
+	Stats func() ingest.Stats
+}
+
+// Pipeline is the analysis of one stream. It owns the analyzer, the
+// detectors and the alarm lifecycle, and is used from one goroutine.
+//
+// Wall time: live, every step takes the wall clock (Options.Now, or the
+// time the caller passes), and the technical detectors run on the stream
+// time extrapolated with the wall clock since the last sample, so that a
+// signal-lost alert carries a t_s on the stream's own axis. Offline
+// (NewOffline) the wall time of anything at stream time t is start + t,
+// which makes the output, alert ids included, a deterministic function of
+// the recording, and the pipeline makes the ticks the live daemon would
+// have made, once a second of stream time, so that a gap in a recording
+// raises signal-lost too.
+type Pipeline struct {
+	stream string
+	an     *analyze.Analyzer
+	judge  *alerts.Judge
+	alarms alerts.LifecycleConfig
+
+	now   func() time.Time
+	clock *alerts.OfflineClock // set offline
+	stats func() ingest.Stats
+	last  ingest.Stats
+
+	haveSample bool
+	lastS      float64   // stream time of the last sample
+	lastWall   time.Time // wall time it arrived
+	created    time.Time
+	lastBreath int // the analyzer's number of the last breath, -1 before any
+	// breath holds the last completed breath: a field rather than a local,
+	// so that handing its address to the sink does not move every analyzed
+	// sample's record to the heap.
+	breath analyze.Breath
+	one    [1]ingest.Sample
+	out    Output // gathers for Samples and Tick
+}
+
+// New returns a live pipeline.
+func New(o Options) *Pipeline {
+	now := o.Now
+	if now == nil {
+		now = time.Now
+	}
+	return &Pipeline{
+		stream:     o.Stream,
+		an:         analyze.NewAnalyzer(o.Stream, o.Analysis),
+		judge:      alerts.NewJudge(o.Stream, o.Detectors, o.Alarms),
+		alarms:     o.Alarms,
+		now:        now,
+		stats:      o.Stats,
+		created:    now(),
+		lastBreath: -1,
+	}
+}
+
+// NewOffline returns a pipeline for a recording whose stream time 0 is wall
+// time start; Options.Now is not used.
+func NewOffline(o Options, start time.Time) *Pipeline {
+	p := New(o)
+	p.clock, p.created = &alerts.OfflineClock{Epoch: start}, start
+	return p
+}
+
+// Stream returns the stream id.
+func (p *Pipeline) Stream() string { return p.stream }
+
+func (p *Pipeline) offline() bool { return p.clock != nil }
+
+// streamNow maps a wall time to the stream's time axis: the last sample's
+// time plus the wall time since it arrived (before any sample, the wall
+// time since the pipeline started).
+func (p *Pipeline) streamNow(wall time.Time) float64 {
+	if !p.haveSample {
+		return wall.Sub(p.created).Seconds()
+	}
+	return p.lastS + wall.Sub(p.lastWall).Seconds()
+}
+
+// Samples analyses a batch of samples in time order and gathers the output.
+// Live, all of it is stamped with the wall time of the call.
+func (p *Pipeline) Samples(ss []ingest.Sample) Output {
+	p.Push(ss, &p.out)
+	return p.takeOut()
+}
+
+// takeOut returns what p.out gathered and empties it. Gathering into a
+// field rather than a local keeps the sink from costing an allocation.
+func (p *Pipeline) takeOut() Output {
+	out := p.out
+	p.out = Output{}
+	return out
+}
+
+// PushOne is Push for a single sample, without a slice from the caller.
+func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
+	p.one[0] = s
+	p.Push(p.one[:], sink)
+}
+
+// Push is Samples with the output going to sink as it happens. It does not
+// allocate per sample.
+func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
+	wall := time.Time{}
+	if !p.offline() {
+		wall = p.now()
+	}
+	for i := range ss {
+		s := ss[i]
+		if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
+			continue // no place on the time axis; the analyzer skips it too
+		}
+		if p.offline() {
+			p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+			wall = p.clock.Wall(s.TimeS)
+		}
+		p.judge.Samples(ss[i:i+1], s.TimeS, wall, sink.Alert)
+		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
+		b, ok := p.an.Push(s)
+		if !ok {
+			continue
+		}
+		p.breath = b
+		p.breath.Stream = p.stream
+		p.lastBreath = b.Seq
+		sink.Breath(&p.breath)
+		p.judge.Breath(&p.breath, wall, sink.Alert)
+	}
+}
+
+// Status takes a change of the source's condition. A disconnection resets
+// the breath analyzer so that no breath spans it; signal-lost itself is
+// judged by Tick from the time without samples.
+func (p *Pipeline) Status(ev ingest.Event, now time.Time) Output {
+	if p.offline() {
+		now = p.clock.Wall(p.lastS)
+	}
+	p.judge.Status(&ev, p.streamNow(now))
+	if ev.Status == ingest.StatusDisconnected {
+		p.an.Reset()
+	}
+	return Output{}
+}
+
+// Tick evaluates the time-based conditions at wall time now; the daemon
+// calls it about once a second.
+func (p *Pipeline) Tick(now time.Time) Output {
+	p.TickTo(now, &p.out)
+	return p.takeOut()
+}
+
+// TickTo is Tick with the output going to sink.
+func (p *Pipeline) TickTo(now time.Time, sink Sink) {
+	nowS := p.streamNow(now)
+	if p.stats != nil {
+		st := p.stats()
+		p.judge.Decoder(ingest.Stats{
+			Samples:   st.Samples - p.last.Samples,
+			BadLines:  st.BadLines - p.last.BadLines,
+			BadFrames: st.BadFrames - p.last.BadFrames,
+		}, nowS)
+		p.last = st
+	}
+	p.judge.Tick(nowS, now, sink.Alert)
+}
+
+// Finish makes the ticks due up to stream time tS, the end of a
+// recording; only an offline pipeline makes up ticks.
+func (p *Pipeline) Finish(tS float64, sink Sink) {
+	if p.offline() {
+		p.clock.Until(tS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+	}
+}
+
+// Ack acknowledges the alarm with id on behalf of by (may be empty).
+func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
+	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
+	return Output{Alerts: evs}, err
+}
+
+// Flush ends the stream: an open breath is incomplete and is not reported,
+// and alarms keep their state (nothing is held back in the pipeline).
+func (p *Pipeline) Flush() Output { return Output{} }

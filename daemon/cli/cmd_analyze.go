@@ -1,0 +1,302 @@
+package cli
+
+import (
+	"bufio"
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"github.com/spf13/cobra"
+
+	"trapline/alerts"
+	"trapline/alerts/pipeline"
+	"trapline/analyze"
+	"trapline/config"
+	"trapline/daemon"
+	"trapline/ingest"
+)
+
+// analyzeFlags are the options of `trapline analyze`.
+type analyzeFlags struct {
+	columns    string
+	sampleRate float64
+	stream     string
+	summary    bool
+	// Alert options: the configuration file whose analysis, detectors and
+	// alarms sections apply, the wall time of stream time 0, and whether
+	// alert events are printed at all.
+	config   string
+	start    string
+	noAlerts bool
+}
+
+// offlineEpoch is the default wall time of stream time 0 in offline
+// analysis: the Unix epoch, so that an alert's time reads as its stream time
+// and the output (alert ids included) depends on the recording alone.
+var offlineEpoch = time.Unix(0, 0).UTC()
+
+func (a *app) analyzeCommand() *cobra.Command {
+	var f analyzeFlags
+	cmd := &cobra.Command{
+		Use:   "analyze FILE|-",
+		Short: "Split a recording into breaths and print NDJSON breath records and alert events",
+		Long: "analyze reads samples in the sample line format v1 from FILE (or stdin for -), splits\n" +
+			"them into breaths and prints one breath record per line as NDJSON: timing, volumes,\n" +
+			"pressures, flows, the least-squares mechanics (R, C, total PEEP), the expiratory time\n" +
+			"constant, trapped volume and intrinsic PEEP, with flags where a value is unreliable.\n" +
+			"Units come from the header line; for input without one, --columns gives the layout.\n" +
+			"--summary prints a table for people instead, with medians at the end.\n\n" +
+			"The detectors and the alarm lifecycle run as in the daemon, and their alert events are\n" +
+			"printed among the breath records in time order. Their wall time is --start plus the\n" +
+			"stream time (default 1970-01-01T00:00:00Z, so it reads as the stream time); --config\n" +
+			"applies the analysis, detectors and alarms sections of a configuration file.\n\n" +
+			"  trapline analyze bench-a.csv | jq .trapped_ml\n" +
+			"  trapline sim --speed max --duration 60s | trapline analyze --summary -\n\n" +
+			Caution,
+		Args: cobra.ExactArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return a.runAnalyze(cmd.Context(), args[0], f, cmd.OutOrStdout())
+		},
+	}
+	fl := cmd.Flags()
+	fl.StringVar(&f.columns, "columns", ingest.DefaultColumns, "column layout of input without a header line")
+	fl.Float64Var(&f.sampleRate, "sample-rate", 0, "sample rate in Hz, for input without a time column")
+	fl.StringVar(&f.stream, "stream", ingest.DefaultStream, "stream id of samples that name none")
+	fl.BoolVar(&f.summary, "summary", false, "print a table of breaths and their medians instead of NDJSON")
+	fl.StringVar(&f.config, "config", "", "configuration file whose analysis, detectors and alarms sections apply")
+	fl.StringVar(&f.start, "start", "", "wall time of stream time 0 for alert events (RFC 3339; default the Unix epoch)")
+	fl.BoolVar(&f.noAlerts, "no-alerts", false, "print breath records only")
+	return cmd
+}
+
+// offline analyses a recording: one pipeline (analyzer, detectors, alarm
+// lifecycle) per stream, fed one sample at a time so that breath records
+// and alert events come out in the order they happen.
+type offline struct {
+	cfg       analyze.Config
+	dcfg      analyze.DetectorConfig
+	lcfg      alerts.LifecycleConfig
+	start     time.Time
+	alerts    bool
+	pipelines map[string]*pipeline.Pipeline
+	nAlerts   int
+	keptAlert []alerts.Event // for --summary
+	out       *bufio.Writer
+	summary   bool
+	kept      []analyze.Breath // for --summary
+	line      []byte
+	writeErr  error
+	samples   uint64
+	breaths   int
+}
+
+func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
+	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
+		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
+		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
+	return o
+}
+
+// sample feeds one decoded sample to its stream's pipeline.
+func (o *offline) sample(stream string, s ingest.Sample) {
+	o.samples++
+	pl := o.pipelines[stream]
+	if pl == nil {
+		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+		o.pipelines[stream] = pl
+	}
+	pl.PushOne(s, o)
+}
+
+// Alert writes one alert event as a line of NDJSON.
+func (o *offline) Alert(e *alerts.Event) {
+	o.nAlerts++
+	if !o.alerts || o.writeErr != nil {
+		return
+	}
+	if o.summary {
+		o.keptAlert = append(o.keptAlert, *e)
+		return
+	}
+	b, err := e.Marshal()
+	if err != nil {
+		o.writeErr = err
+		return
+	}
+	o.line = append(append(o.line[:0], b...), '\n')
+	_, o.writeErr = o.out.Write(o.line)
+}
+
+// Breath handles one completed breath.
+func (o *offline) Breath(b *analyze.Breath) {
+	o.breaths++
+	if o.summary {
+		o.kept = append(o.kept, *b)
+		return
+	}
+	if o.writeErr != nil {
+		return
+	}
+	o.line = b.AppendJSON(o.line[:0])
+	o.line = append(o.line, '\n')
+	_, o.writeErr = o.out.Write(o.line)
+}
+
+// ctxReader stops a read loop when its context is cancelled.
+type ctxReader struct {
+	ctx context.Context
+	r   io.Reader
+}
+
+// Read returns the context's error once it is cancelled, else reads.
+func (c ctxReader) Read(p []byte) (int, error) {
+	if err := c.ctx.Err(); err != nil {
+		return 0, err
+	}
+	return c.r.Read(p)
+}
+
+// readAll decodes the recording at path ("-" for stdin) into o.
+func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offline) (ingest.DecoderStats, error) {
+	dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: f.columns, RateHz: f.sampleRate, Stream: f.stream}, o.sample)
+	if err != nil {
+		return ingest.DecoderStats{}, &daemon.UsageError{Err: err}
+	}
+	var r io.Reader = a.stdin
+	name := "stdin"
+	if path != "-" {
+		file, err := os.Open(path)
+		if err != nil {
+			return ingest.DecoderStats{}, fmt.Errorf("open recording: %w", err)
+		}
+		defer file.Close()
+		r, name = file, path
+	}
+	if err := ingest.Decode(ctxReader{ctx, r}, dec); err != nil {
+		return dec.Stats(), fmt.Errorf("read %s: %w", name, err)
+	}
+	st := dec.Stats()
+	if err := dec.Err(); err != nil {
+		return st, fmt.Errorf("read %s: %w", name, err)
+	}
+	if st.Samples == 0 {
+		return st, fmt.Errorf("read %s: no samples (%d bad lines): want the sample line format v1, e.g. %q", name, st.BadLines, ingest.DefaultColumns)
+	}
+	return st, nil
+}
+
+func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdout io.Writer) error {
+	if f.sampleRate < 0 || math.IsNaN(f.sampleRate) || math.IsInf(f.sampleRate, 0) {
+		return usageErrorf("--sample-rate %v: want a positive number of Hz", f.sampleRate)
+	}
+	o := newOffline(analyze.DefaultConfig(), stdout, f.summary)
+	if f.config != "" {
+		c, err := config.Load(f.config, nil)
+		if err != nil {
+			return &daemon.UsageError{Err: err}
+		}
+		o.cfg, o.dcfg, o.lcfg = c.Analysis, c.Detectors, c.Alarms
+	}
+	if f.start != "" {
+		t, err := time.Parse(time.RFC3339Nano, f.start)
+		if err != nil {
+			return usageErrorf("--start %q: want an RFC 3339 time such as 2026-12-01T10:00:00Z", f.start)
+		}
+		o.start = t.UTC()
+	}
+	o.alerts = o.alerts && !f.noAlerts
+	st, err := a.readAll(ctx, path, f, o)
+	if err != nil {
+		if errors.Is(err, context.Canceled) {
+			return nil
+		}
+		return err
+	}
+	log := a.log.With().Str("component", "analyze").Logger()
+	if st.BadLines > 0 {
+		log.Warn().Uint64("bad_lines", st.BadLines).Uint64("samples", st.Samples).Msg("skipped lines that did not parse")
+	}
+	if f.summary {
+		if err := writeSummary(o.out, o.kept); err != nil {
+			return fmt.Errorf("write summary: %w", err)
+		}
+		if err := writeAlertSummary(o.out, o.keptAlert); err != nil {
+			return fmt.Errorf("write summary: %w", err)
+		}
+	}
+	if err := o.out.Flush(); err != nil && o.writeErr == nil {
+		o.writeErr = err
+	}
+	if o.writeErr != nil {
+		return fmt.Errorf("write breaths: %w", o.writeErr)
+	}
+	if o.breaths == 0 {
+		log.Warn().Uint64("samples", st.Samples).Msg("no complete breath in the input (a breath completes when the next one starts)")
+	}
+	return nil
+}
+
+// writeAlertSummary prints the alert events of --summary as a table, one
+// state change per line, in the order they happened.
+func writeAlertSummary(w io.Writer, evs []alerts.Event) error {
+	if len(evs) == 0 {
+		_, err := fmt.Fprintln(w, "\nNo alert events.")
+		return err
+	}
+	fmt.Fprintf(w, "\n%d alert events:\n", len(evs))
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, "t s\tstream\tcondition\tstate\tpriority\tmessage")
+	for i := range evs {
+		e := &evs[i]
+		fmt.Fprintf(tw, "%.1f\t%s\t%s\t%s\t%s\t%s\n", e.TS, e.Stream, e.Condition, e.State, e.Priority, e.Message)
+	}
+	return tw.Flush()
+}
+
+// writeSummary prints the breaths as an aligned table and their medians.
+func writeSummary(w io.Writer, bs []analyze.Breath) error {
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	num := func(v float64, prec int) string {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return "-"
+		}
+		return strconv.FormatFloat(v, 'f', prec, 64)
+	}
+	fmt.Fprintln(tw, "stream\tseq\tt s\trate /min\tVTi mL\tVTe mL\tPpeak\tPplat\tPEEP\tR\tC mL/cmH2O\tτ s\tTe/τ\tEEF L/min\ttrapped mL\tPEEPi\tflags\t")
+	row := func(stream, seq, t string, s analyze.Summary, flags string) {
+		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n", stream, seq, t,
+			num(s.RateBPM, 1), num(s.VtiML, 0), num(s.VteML, 0), num(s.PeakCmH2O, 1), num(s.PlateauCmH2O, 1),
+			num(s.PEEPCmH2O, 1), num(s.RCmH2OSPerL, 1), num(s.CMLPerCmH2O, 1), num(s.TauS, 2), num(s.TeOverTau, 2),
+			num(s.EndExpFlowLPM, 1), num(s.TrappedML, 0), num(s.PEEPiCmH2O, 1), flags)
+	}
+	streams := []string{}
+	byStream := map[string][]analyze.Breath{}
+	for i := range bs {
+		b := &bs[i]
+		if _, ok := byStream[b.Stream]; !ok {
+			streams = append(streams, b.Stream)
+		}
+		byStream[b.Stream] = append(byStream[b.Stream], *b)
+		row(b.Stream, strconv.Itoa(b.Seq), num(b.StartS, 2), analyze.Summary{
+			RateBPM: b.RateBPM, VtiML: b.VtiML, VteML: b.VteML, PeakCmH2O: b.PeakCmH2O, PlateauCmH2O: b.PlateauCmH2O,
+			PEEPCmH2O: b.PEEPCmH2O, RCmH2OSPerL: b.RCmH2OSPerL, CMLPerCmH2O: b.CMLPerCmH2O, TauS: b.TauS,
+			TeOverTau: b.TeOverTau, EndExpFlowLPM: b.EndExpFlowLPM, TrappedML: b.TrappedML, PEEPiCmH2O: b.PEEPiCmH2O,
+		}, strings.Join(b.Flags, ","))
+	}
+	for _, st := range streams {
+		s := analyze.Summarize(byStream[st])
+		row(st, "median", "", s, fmt.Sprintf("%d breaths, %d reliable", s.Breaths, s.Reliable))
+	}
+	if err := tw.Flush(); err != nil {
+		return err
+	}
+	_, err := fmt.Fprintln(w, "Pressures in cmH2O, R in cmH2O·s/L; mechanics medians over reliable breaths only.\n"+Caution)
+	return err
+}
