@@ -101,6 +101,8 @@ type stream struct {
 	m      *metrics
 	alerts alertSink
 	bull   bulletinSink
+	// view is the live view, or nil; fed beside the bulletin.
+	view viewSink
 
 	up        atomic.Bool // pipeline running
 	connected atomic.Bool // source reading
@@ -340,6 +342,9 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			}
 			arrived := time.Now()
 			if ev.Status != ingest.StatusNone {
+				if s.view != nil {
+					s.view.Status(s.spec.ID, ev.Status)
+				}
 				if err := s.emit(pubCtx, pl.Status(ev, arrived), time.Time{}); err != nil {
 					return err
 				}
@@ -349,6 +354,9 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 					return err
 				}
 				s.analysed.Add(uint64(len(ev.Samples)))
+				if s.view != nil {
+					s.view.Samples(s.spec.ID, ev.Samples)
+				}
 			}
 		case now := <-tick.C:
 			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
@@ -383,6 +391,9 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
 		}
 		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
+		if s.view != nil {
+			s.view.Alert(ev)
+		}
 		if ev.Supersedes != "" {
 			delete(s.activeIDs, ev.Supersedes)
 		}
@@ -400,6 +411,9 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 			b.Stream = s.spec.ID
 		}
 		s.bull.Breath(b)
+		if s.view != nil {
+			s.view.Breath(*b)
+		}
 		s.breaths.Add(1)
 		s.m.breaths.WithLabelValues(s.spec.ID).Inc()
 		if !arrived.IsZero() {
