@@ -17,8 +17,8 @@ import (
 	"golang.org/x/term"
 
 	"trapline/alerts"
-	"trapline/analyze"
 	"trapline/alerts/alarmbook"
+	"trapline/analyze"
 	"trapline/daemon/bus"
 	"trapline/daemon/tui"
 )
