@@ -258,9 +258,10 @@ func (v *watchView) redraw() {
 func (v *watchView) plainLines() []string { return v.board.StreamLines(v.width()) }
 
 // summary counts the alarms seen (not the events): per condition and in
-// all, raised, escalated, acknowledged, cleared and still open.
-func (v *watchView) summary() []string {
+// all, raised, escalated, acknowledged, cleared and still open; the lines
+// fit the width less indent.
+func (v *watchView) summary(indent int) []string {
 	v.mu.Lock()
 	defer v.mu.Unlock()
-	return tui.SummaryLines(v.board.Book, v.width())
+	return tui.SummaryLines(v.board.Book, v.width()-indent)
 }

@@ -64,7 +64,7 @@ func TestWatchPlainGolden(t *testing.T) {
 		v.write(l + "\n")
 	}
 	v.mu.Unlock()
-	for _, l := range v.summary() {
+	for _, l := range v.summary(0) {
 		out.WriteString(l + "\n")
 	}
 	got := out.String()
