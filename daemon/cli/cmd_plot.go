@@ -152,6 +152,11 @@ func writeFigure(out, format string, data plot.Data, opts plot.Options) error {
 		tmp.Close()
 		return fmt.Errorf("write %s: %w", out, err)
 	}
+	// CreateTemp makes the file private; a figure is for sharing.
+	if err := tmp.Chmod(0o644); err != nil {
+		tmp.Close()
+		return fmt.Errorf("write %s: %w", out, err)
+	}
 	if err := tmp.Close(); err != nil {
 		return fmt.Errorf("write %s: %w", out, err)
 	}
