@@ -258,8 +258,11 @@ func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
+	ev := d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr)
+	if d.hub != nil {
+		ev = ev.Str("live_view", "http://"+info.HTTPAddr+web.Path)
+	}
+	ev.Bool("embedded_nats", b.Embedded()).Msg("trapline running")
 	if d.opts.Ready != nil {
 		d.opts.Ready(info)
 	}
