@@ -35,6 +35,8 @@ type watchOptions struct {
 	RedrawEvery time.Duration
 	// Footer, when set, closes the terminal view (the demo's caution).
 	Footer string
+	// Loc is the time zone of the wall times shown; nil means local time.
+	Loc *time.Location
 	// Width is the width of plain output (0: 80 columns); a terminal's
 	// own width is used on a terminal.
 	Width int

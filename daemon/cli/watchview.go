@@ -171,7 +171,7 @@ func (v *watchView) handle(kind string, data []byte) {
 			return
 		}
 		if !v.opts.JSON && !v.terminal {
-			for _, l := range tui.NewAlertFormat(v.width()).Lines(&ev, ch) {
+			for _, l := range v.alertFormat(v.width()).Lines(&ev, ch) {
 				v.write(l + "\n")
 			}
 		}
@@ -241,7 +241,7 @@ func (v *watchView) redraw() {
 	var b strings.Builder
 	b.WriteString("\x1b[H\x1b[2J")
 	b.WriteString(tui.Fit(fmt.Sprintf("trapline watch  %s  (research use only; not a medical device)", time.Now().Format(time.TimeOnly)), w) + "\n\n")
-	for _, l := range v.board.Render(w, tui.NewAlertFormat(w)) {
+	for _, l := range v.board.Render(w, v.alertFormat(w)) {
 		b.WriteString(l + "\n")
 	}
 	if v.opts.Footer != "" {
@@ -251,6 +251,14 @@ func (v *watchView) redraw() {
 		b.WriteString("\n")
 	}
 	v.write(b.String())
+}
+
+// alertFormat is the format of alert lines at width w, with wall times in
+// the view's time zone.
+func (v *watchView) alertFormat(w int) tui.AlertFormat {
+	f := tui.NewAlertFormat(w)
+	f.Loc = v.opts.Loc
+	return f
 }
 
 // plainLines is the periodic block of plain output: the streams with their

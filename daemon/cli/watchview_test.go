@@ -24,11 +24,8 @@ import (
 // no escape byte reaches the output. TRAPLINE_UPDATE_TESTDATA=1 rewrites
 // the file.
 func TestWatchPlainGolden(t *testing.T) {
-	loc := time.Local
-	time.Local = time.UTC
-	t.Cleanup(func() { time.Local = loc })
 	var out bytes.Buffer
-	v := newWatchView(&out, watchOptions{Plain: true})
+	v := newWatchView(&out, watchOptions{Plain: true, Loc: time.UTC})
 	send := func(kind string, x any) {
 		b, err := json.Marshal(x)
 		if err != nil {
