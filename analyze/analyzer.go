@@ -44,6 +44,22 @@ const (
 	// FlagPEEPiMismatch: the two intrinsic PEEP estimates disagree beyond
 	// the configured tolerance (flow limitation, heterogeneity or effort).
 	FlagPEEPiMismatch = "peepi-mismatch"
+	// FlagPEEPiBound: the end of expiration is slower than a single time
+	// constant (units with unequal time constants); the trapped volume and
+	// intrinsic PEEP are lower bounds, never zero when the flow says there
+	// is trapping.
+	FlagPEEPiBound = "peepi-bound"
+	// FlagRohrer: the residuals of the linear fit grow with flow; the
+	// resistance was fitted as K1 + K2·|V'| (Rohrer 1915) and intrinsic
+	// PEEP uses the resistance at the end-expiratory flow.
+	FlagRohrer = "rohrer"
+	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
+	// flow offset and a pressure-proportional leak estimated over many
+	// breaths (offset_lpm and leak fields of the record).
+	FlagOffsetCorrected = "offset-corrected"
+	// FlagSettingsChanged: the ventilator settings inferred from the
+	// waveform differ from those of the previous breaths.
+	FlagSettingsChanged = "settings-changed"
 )
 
 // phase is the segmentation state.
