@@ -130,6 +130,21 @@ type Analyzer struct {
 	pendVol float64
 	inHoldT float64 // time the flow first rose above the trigger
 
+	// nextStartT is the onset of the inspiratory rise found when the
+	// previous breath finished: the start of the open breath.
+	nextStartT float64
+	// crossStartT is the flow crossing that opened the breath; its
+	// volumes are counted from it.
+	crossStartT float64
+
+	// Flow correction applied to every sample: a constant offset (L/s) and
+	// a leak conductance (L/s per cmH2O) estimated from the volume balance
+	// of past breaths (see balance).
+	offB, leakK float64
+	bal         balance
+	prevTrapML  float64
+	settings    settingsTracker
+
 	ring ring
 	last Breath // the breath completed by the latest push
 }
@@ -159,6 +174,8 @@ func (a *Analyzer) Reset() {
 	a.inCand = false
 	a.ring.reset()
 	a.resetBreath()
+	a.settings.reset()
+	a.prevTrapML = math.NaN()
 }
 
 func (a *Analyzer) resetBreath() {
@@ -203,6 +220,8 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 		a.skipped++
 		return false
 	}
+	// The sensor's offset and the leak, as estimated so far.
+	f -= a.offB + a.leakK*p
 	if !a.havePrev {
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
@@ -312,6 +331,7 @@ func (a *Analyzer) begin() {
 	a.resetBreath()
 	a.ph = phaseInsp
 	a.startT = a.candT
+	a.crossStartT = a.candT
 	a.cur = a.pend
 	a.vol = a.pendVol
 	a.inCand = false
@@ -386,5 +406,6 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 	}
 	a.last = a.finish()
 	a.begin()
+	a.startT = a.nextStartT
 	return true
 }

@@ -97,11 +97,22 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	balance, slope := d.buildUp()
 	building := balance >= cfg.BalanceML && slope*float64(d.n-1) >= cfg.BalanceML/2
 
-	eefHit := cur.eefLPM >= cfg.EEFLPM
-	mag := func(k float64) bool { return cur.peepi >= k*cfg.PEEPiCmH2O || cur.trapped >= k*cfg.TrappedML }
+	// Scale-free criterion: the magnitude is intrinsic PEEP (a pressure,
+	// whatever the resistance), or the trapped volume when no pressure
+	// estimate exists; the end-expiratory flow in L/min only supports it
+	// (at a high resistance a small flow is a large pressure). The
+	// time-constant evidence must agree: expiration shorter than
+	// TeOverTauMax time constants (the end-expiratory one when the lung
+	// empties slower at the end).
+	mag := func(k float64) bool {
+		if !math.IsNaN(cur.peepi) {
+			return cur.peepi >= k*cfg.PEEPiCmH2O
+		}
+		return cur.trapped >= k*cfg.TrappedML
+	}
 	// Unknown Te/τ neither vetoes nor supports.
 	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	pos := eefHit && (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag("artifact")
+	pos := (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag(FlagArtifact)
 	d.ring[idx].positive = pos
 
 	count := 0

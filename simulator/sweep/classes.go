@@ -69,7 +69,12 @@ func caseClasses(c *Case) []string {
 	if c.Model == ModelScenario {
 		return append(out, "scenario="+c.Scenario)
 	}
-	return append(out, "setting="+c.Setting, "noise="+c.Noise, fmt.Sprintf("r=%g", c.RCmH2OSPerL))
+	out = append(out, "setting="+c.Setting, "noise="+c.Noise, fmt.Sprintf("r=%g", c.RCmH2OSPerL))
+	if c.Model == ModelLinear {
+		// The estimator targets on linear lungs are per sensor.
+		out = append(out, "linear/noise="+c.Noise)
+	}
+	return out
 }
 
 // classScores computes the per-class figures of detector set si.
