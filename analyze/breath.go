@@ -56,6 +56,7 @@ type Breath struct {
 
 	// Schema 2.
 	TauEndS         float64 // end-expiratory time constant (last 40 % of the exhaled volume)
+	TrappedExpFitML float64 // volume still to exhale from a two-exponential fit of expiration
 	RK1CmH2OSPerL   float64 // Rohrer K1, when the breath is flagged rohrer
 	RK2CmH2OS2PerL2 float64 // Rohrer K2, when the breath is flagged rohrer
 	FlowOffsetLPM   float64 // flow offset removed from the samples of this breath
@@ -84,7 +85,7 @@ func NewBreath() Breath {
 		TauS: n, TeOverTau: n, RCmH2OSPerL: n, CMLPerCmH2O: n, PTot0CmH2O: n, FitR2: n,
 		ROccCmH2OSPerL: n, CStatMLPerCmH2O: n,
 		TrappedML: n, PEEPiCmH2O: n, TrappedEEFML: n, PEEPiEEFCmH2O: n, PEEPiFitCmH2O: n,
-		TauEndS: n, RK1CmH2OSPerL: n, RK2CmH2OS2PerL2: n, FlowOffsetLPM: n, LeakLPMPerCmH2O: n,
+		TauEndS: n, TrappedExpFitML: n, RK1CmH2OSPerL: n, RK2CmH2OS2PerL2: n, FlowOffsetLPM: n, LeakLPMPerCmH2O: n,
 		SetFlowLPM: n, SetInspPressureCmH2O: n,
 	}
 }
@@ -137,6 +138,7 @@ var breathFields = []breathField{
 	{"peepi_eef_cmh2o", func(b *Breath) *float64 { return &b.PEEPiEEFCmH2O }, 2},
 	{"peepi_fit_cmh2o", func(b *Breath) *float64 { return &b.PEEPiFitCmH2O }, 2},
 	{"tau_end_s", func(b *Breath) *float64 { return &b.TauEndS }, 3},
+	{"trapped_expfit_ml", func(b *Breath) *float64 { return &b.TrappedExpFitML }, 1},
 	{"r_k1_cmh2o_s_per_l", func(b *Breath) *float64 { return &b.RK1CmH2OSPerL }, 2},
 	{"r_k2_cmh2o_s2_per_l2", func(b *Breath) *float64 { return &b.RK2CmH2OS2PerL2 }, 2},
 	{"flow_offset_lpm", func(b *Breath) *float64 { return &b.FlowOffsetLPM }, 3},

@@ -11,6 +11,13 @@ const (
 	ModePressure = "pc" // the ventilator set the inspiratory pressure
 )
 
+// pcFlatness is the largest relative departure of the inspiratory
+// pressure from a flat line under pressure control (our choice: 3 %, well
+// above sensor noise at adult pressures, well below the climb of volume
+// control, where the elastic pressure of the tidal volume adds tens of
+// per cent).
+const pcFlatness = 0.03
+
 // settingsConfirm is how many consecutive breaths must agree on new
 // settings before a change is reported (our choice: one odd breath, a
 // trigger or an artefact, is not a change of settings).
@@ -146,10 +153,11 @@ func (a *Analyzer) inferMode(peep float64) string {
 	if math.IsNaN(rp) || math.IsNaN(rf) {
 		return ""
 	}
-	// Pressure control holds the pressure flat (small residual and no
-	// slope); volume control holds the flow to a line (constant or a
+	// Pressure control holds the pressure flat: within pcFlatness of its
+	// level above PEEP, slope included. Volume control lets the pressure
+	// climb with volume while it holds the flow to a line (constant or a
 	// decelerating ramp).
-	if rp < rf {
+	if rp < pcFlatness || rp < rf/4 {
 		return ModePressure
 	}
 	return ModeVolume

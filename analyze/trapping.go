@@ -2,6 +2,10 @@ package analyze
 
 import "math"
 
+// expFitMaxRatio caps the two-exponential remaining volume at this many
+// times the end-expiratory-flow estimate (see trapping).
+const expFitMaxRatio = 1.5
+
 // trapping computes the time constants and the air-trapping estimates of
 // the breath: the expiratory time constant of mid-expiration, the
 // end-expiratory time constant (slow units), and intrinsic PEEP and trapped
@@ -40,13 +44,30 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 		tauTrap = tauEnd
 	}
 	b.TeOverTau = b.TeS / tauTrap
+	efl := math.Max(eef, 0)
 
 	// Route 1, end-expiratory flow: the volume still to exhale is τ·|EEF|
 	// (passive mono-exponential emptying), and the alveolar pressure above
 	// PEEP is the resistive drop of that flow, R(EEF)·|EEF|, with Rohrer's
 	// resistance taken at the end-expiratory flow, not the mean (derived).
-	efl := math.Max(eef, 0)
+	// Two exponentials: the volume still to exhale at the onset, from the
+	// whole expiration rather than its last points.
+	remML := math.NaN()
 	b.TrappedEEFML = 1000 * efl * tauTrap
+	if ef := a.fitTwoExp(vteOnset, endT); ef.ok && ef.two && ef.tau2 > 2*ef.tau1 && ef.tau2 <= 3*b.TeS {
+		// A slow component is identifiable only over an expiration of a
+		// few of its time constants; and the remaining volume of a sum of
+		// exponentials exceeds flow × local slope by a modest factor once
+		// the fast part has decayed, so the figure is capped at
+		// expFitMaxRatio times the end-expiratory route (our choice).
+		remML = math.Min(1000*ef.remaining(endT-a.expStartT), expFitMaxRatio*b.TrappedEEFML)
+	}
+	b.TrappedExpFitML = remML
+	if remML > 1.2*b.TrappedEEFML && efl > tauDepartureLPS/2 && !m.rohrer.ok {
+		// The whole expiration says two time constants and more volume
+		// left than the end-expiratory slope does.
+		slow = true
+	}
 	r := math.NaN()
 	switch {
 	case m.rohrer.ok:
@@ -96,7 +117,7 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 func (a *Analyzer) reportTrapping(b *Breath, flags *[]string, m *mechanics, slow, leak bool) {
 	switch {
 	case slow && m.fitOK:
-		b.TrappedML = b.TrappedEEFML
+		b.TrappedML = math.Max(b.TrappedEEFML, nanTo0(b.TrappedExpFitML))
 		b.PEEPiCmH2O = math.Max(b.TrappedML/1000*m.e, nanTo0(b.PEEPiFitCmH2O))
 		*flags = append(*flags, FlagPEEPiBound)
 	case m.fitOK && !m.effort && !leak && !math.IsNaN(b.PEEPiEEFCmH2O):
