@@ -126,7 +126,8 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	if m.fitOK && !m.effort {
 		// Rohrer's equation when it explains the residuals: R is reported
 		// at the mean inspiratory flow, E and P0 come from the same fit.
-		if rf := fitRohrer(a.buf.pts[:a.buf.n], endT); rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
+		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
+		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
 			m.rohrer = rf
 			mean := b.VtiML / 1000 / math.Max(b.TiS-nanTo0(a.pauseLenOK()), 1e-3)
 			m.r, m.e, m.p0 = rf.k1+rf.k2*mean, rf.e, rf.p0

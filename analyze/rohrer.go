@@ -13,11 +13,12 @@ type rohrerFit struct {
 }
 
 // Significance of the flow dependence (our choice): the Rohrer term must
-// remove at least rohrerMinGain of the linear fit's residual sum of
+// remove at least rohrerMinGain (at a high resistance most of the residual
+// is flow noise times R, so the share is small even when the term is real) of the linear fit's residual sum of
 // squares and pass an F test of one added parameter at rohrerMinF
 // (roughly p < 0.001 for the point counts of a breath).
 const (
-	rohrerMinGain = 0.2
+	rohrerMinGain = 0.05
 	rohrerMinF    = 12
 )
 
@@ -27,10 +28,21 @@ const (
 func fitRohrer(pts []point, endT float64) rohrerFit {
 	var s [5][5]float64 // normal equations of [f, f|f|, v, 1] against p in column 4
 	n := 0
+	// Points beside a step of flow (the valves switching) carry the
+	// sampling's timing error times the resistance; they are left out so
+	// that the fit sees the flow dependence, not the steps.
+	maxF := 0.0
+	for i := range pts {
+		maxF = math.Max(maxF, math.Abs(pts[i].f))
+	}
+	step := func(i int) bool { return i > 0 && i < len(pts) && math.Abs(pts[i].f-pts[i-1].f) > 0.15*maxF }
 	for i := range pts {
 		q := &pts[i]
 		if q.t >= endT {
 			break
+		}
+		if step(i) || step(i+1) {
+			continue
 		}
 		x := [5]float64{q.f, q.f * math.Abs(q.f), q.v, 1, q.p}
 		for r := range 5 {

@@ -157,7 +157,7 @@ func (a *Analyzer) inferMode(peep float64) string {
 	// level above PEEP, slope included. Volume control lets the pressure
 	// climb with volume while it holds the flow to a line (constant or a
 	// decelerating ramp).
-	if rp < pcFlatness || rp < rf/4 {
+	if rp < pcFlatness && rp < rf {
 		return ModePressure
 	}
 	return ModeVolume
