@@ -55,7 +55,7 @@ type Breath struct {
 	PEEPiFitCmH2O float64 // P0 − end-expiratory pressure
 
 	// Schema 2.
-	TauEndS         float64 // end-expiratory time constant (last 40 % of the exhaled volume)
+	TauEndS         float64 // end-expiratory time constant (last third of the expiration)
 	TrappedExpFitML float64 // volume still to exhale from a two-exponential fit of expiration
 	RK1CmH2OSPerL   float64 // Rohrer K1, when the breath is flagged rohrer
 	RK2CmH2OS2PerL2 float64 // Rohrer K2, when the breath is flagged rohrer

@@ -212,3 +212,29 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 	endFlow, endSE = l.predict(vte)
 	return tau, endFlow, endSE
 }
+
+// tauLate returns the end-expiratory time constant: the inverse slope of
+// the flow–volume curve over the last third of the expiratory time before
+// endT (Lourens MS et al., Intensive Care Med 2000;26:1612, use the last
+// part of the curve). The last third in time rather than in volume: units
+// with a long time constant hold little of the exhaled volume but most of
+// the late flow, so a volume window would still see the fast units.
+func (a *Analyzer) tauLate(endT float64) float64 {
+	from := a.expStartT + (endT-a.expStartT)*2/3
+	var l linreg
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t < from {
+			continue
+		}
+		if q.t >= endT {
+			break
+		}
+		l.add(a.expStartV-q.v, -q.f)
+	}
+	tau := l.tau()
+	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
+		return math.NaN()
+	}
+	return tau
+}

@@ -4,7 +4,7 @@ import "math"
 
 // expFitMaxRatio caps the two-exponential remaining volume at this many
 // times the end-expiratory-flow estimate (see trapping).
-const expFitMaxRatio = 1.5
+const expFitMaxRatio = 1.2
 
 // trapping computes the time constants and the air-trapping estimates of
 // the breath: the expiratory time constant of mid-expiration, the
@@ -21,10 +21,10 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	// 2000;26:1612: the slope of the expiratory flow–volume curve).
 	var lineEEF, lineSE float64
 	b.TauS, lineEEF, lineSE = a.tauFlowVolume(vteOnset, 0.25, 0.75, endT)
-	// End-expiratory time constant from the last 40 % of the exhaled
-	// volume (same source: the slope of the last part of the curve). Units
-	// with a longer time constant empty last, so this slope is theirs.
-	tauEnd, _, _ := a.tauFlowVolume(vteOnset, 0.6, 1, endT)
+	// End-expiratory time constant from the last third of the expiration
+	// (same source: the slope of the last part of the curve). Units with a
+	// longer time constant empty last, so this slope is theirs.
+	tauEnd := a.tauLate(endT)
 	b.TauEndS = tauEnd
 	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
 		add(FlagTauNonlinear)

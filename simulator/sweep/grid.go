@@ -28,6 +28,10 @@ const (
 	// airway resistance, with unit resistances that differ fourfold, so the
 	// exhalation is bi-exponential.
 	ModelTwoCompartment = "two-compartment"
+	// ModelTwoCompartment3 and ModelTwoCompartment10 are the same with
+	// unit time constants that differ threefold and tenfold.
+	ModelTwoCompartment3  = "two-compartment-3x"
+	ModelTwoCompartment10 = "two-compartment-10x"
 	// ModelFlowLimited is the linear model with an expiratory flow cap that
 	// falls as the lung empties.
 	ModelFlowLimited = "flow-limited"
@@ -40,12 +44,12 @@ const (
 
 // Models lists the grid's patient models in report order.
 func Models() []string {
-	return []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort}
+	return []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelTwoCompartment3, ModelTwoCompartment10, ModelFlowLimited, ModelEffort}
 }
 
 // Model constants of the non-linear patients (our choice: values that make
 // each model's signature visible at adult settings without leaving the
-// range of adult mechanics in /work/shared/REFERENCE.md §4).
+// range of adult mechanics).
 const (
 	// RohrerRefFlowLPS is the flow at which the Rohrer resistance equals
 	// the nominal R: 0.8 L/s (48 L/min), a typical inspiratory flow.
@@ -83,6 +87,10 @@ type CourseStep struct {
 	RampS            simulator.Seconds `yaml:"ramp"`
 	ResistanceFactor float64           `yaml:"resistance_factor"`
 	ComplianceFactor float64           `yaml:"compliance_factor"`
+	// Ventilator changes ventilator settings (timeline keys of the
+	// simulator, e.g. rate_bpm, peep_cmh2o) at the same moment: a settings
+	// change mid-recording.
+	Ventilator map[string]float64 `yaml:"ventilator"`
 }
 
 // Episodes holds the rules that turn per-breath truth into episodes.
@@ -182,7 +190,9 @@ func DefaultGrid() Grid {
 		SampleRatesHz:        []float64{50},
 		StepS:                0.004,
 		Seeds:                1,
-		Models:               Models(),
+		// The 3× and 10× two-compartment models are left to grid files
+		// (docs/sweep-acceptance.yaml) to keep the default run's size.
+		Models:               []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort},
 		ResistanceCmH2OSPerL: []float64{8, 15, 25, 35},
 		ComplianceMLPerCmH2O: []float64{30, 50, 80},
 		Settings:             defaultSettings(),
@@ -334,7 +344,7 @@ func (g Grid) Expand() (*Plan, error) {
 	}
 	for i, m := range g.Models {
 		switch m {
-		case ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort:
+		case ModelLinear, ModelRohrer, ModelTwoCompartment, ModelTwoCompartment3, ModelTwoCompartment10, ModelFlowLimited, ModelEffort:
 		default:
 			bad("models[%d]: unknown model %q (want %s)", i, m, strings.Join(Models(), ", "))
 		}
@@ -466,11 +476,12 @@ func (g *Grid) scenario(model string, r, c float64, st Setting, n Noise, seed ui
 		if cf == 0 {
 			cf = 1
 		}
-		sc.Timeline = append(sc.Timeline, simulator.Step{
-			AtS:     simulator.Seconds(cs.AtFraction * dur),
-			RampS:   cs.RampS,
-			Patient: patientKeys(patient(model, r, c, rf, cf)),
-		})
+		st := simulator.Step{AtS: simulator.Seconds(cs.AtFraction * dur), RampS: cs.RampS, Ventilator: cs.Ventilator}
+		// A step that only changes settings leaves the mechanics alone.
+		if cs.ResistanceFactor != 0 || cs.ComplianceFactor != 0 || len(cs.Ventilator) == 0 {
+			st.Patient = patientKeys(patient(model, r, c, rf, cf))
+		}
+		sc.Timeline = append(sc.Timeline, st)
 	}
 	return sc
 }
@@ -487,13 +498,16 @@ func patient(model string, r, c, rf, cf float64) simulator.Patient {
 		// K1 + K2·|V'| = R at the reference flow, half of it linear.
 		p.ResistanceCmH2OSPerL, p.K2CmH2OS2PerL2 = r/2, r/2/RohrerRefFlowLPS
 		p.ExpResistanceCmH2OSPerL, p.ExpK2CmH2OS2PerL2 = r/2, r/2/RohrerRefFlowLPS
-	case ModelTwoCompartment:
-		// Shared 0.4·R, units 0.75·R and 3·R in parallel (0.6·R): R in all,
-		// time constants of the units differ fourfold (Otis et al. 1956).
+	case ModelTwoCompartment, ModelTwoCompartment3, ModelTwoCompartment10:
+		// Shared 0.4·R, units k·R and q·k·R in parallel (0.6·R): R in all,
+		// time constants of the units differ q-fold (Otis et al. 1956);
+		// 1/k + 1/(q·k) = 1/0.6 gives k = 0.6·(1 + 1/q).
+		q := map[string]float64{ModelTwoCompartment: 4, ModelTwoCompartment3: 3, ModelTwoCompartment10: 10}[model]
+		k := 0.6 * (1 + 1/q)
 		p.Model = simulator.ModelTwoCompartment
 		p.AirwayResistanceCmH2OSPerL = 0.4 * r
-		p.ResistanceCmH2OSPerL, p.Resistance2CmH2OSPerL = 0.75*r, 3*r
-		p.ExpResistanceCmH2OSPerL = 0.75 * r
+		p.ResistanceCmH2OSPerL, p.Resistance2CmH2OSPerL = k*r, q*k*r
+		p.ExpResistanceCmH2OSPerL = k * r
 		p.ComplianceMLPerCmH2O, p.Compliance2MLPerCmH2O = c/2, c/2
 	case ModelFlowLimited:
 		p.FlowLimitLPS, p.FlowLimitSlopePerS = FlowLimitLPS, FlowLimitSlopePerS
