@@ -2,6 +2,7 @@ package analyze
 
 import (
 	"math"
+	"strings"
 	"testing"
 )
 
@@ -147,5 +148,39 @@ func TestPredictWarnings(t *testing.T) {
 	bs = []Breath{{Flags: []string{FlagEffort}}, {Flags: []string{FlagEffort}}, {}}
 	if _, refuse := PredictWarnings(bs); !refuse {
 		t.Error("mostly effort: want the prediction refused")
+	}
+}
+
+// TestRisingPeakAfterSettingsChange: a peak rise whose window holds an
+// inferred rate increase says so instead of blaming the patient; without
+// it, a plateau rise with a compliance trend that is not falling is of
+// unclear cause (the signs of the evidence disagree).
+func TestRisingPeakAfterSettingsChange(t *testing.T) {
+	run := func(change bool, cTrend float64) Finding {
+		d := NewRisingPeak(DefaultDetectorConfig().RisingPeak)
+		var f Finding
+		for i := range 80 {
+			tS := 3 * float64(i)
+			b := NewBreath()
+			b.Seq, b.StartS, b.EndS = i, tS, tS+3
+			b.PeakCmH2O = 25 + 0.05*tS // 3 cmH2O/min
+			b.PlateauCmH2O = 18 + 0.04*tS
+			b.CMLPerCmH2O = 50 + cTrend*tS
+			b.RCmH2OSPerL = 10
+			if change && i == 40 {
+				b.SettingsChanged = []string{"rate-up"}
+			}
+			f = d.Breath(&b, nil)[0]
+		}
+		return f
+	}
+	if f := run(true, 0.01); !f.Present || !strings.Contains(f.Message, "follows a rate increase") {
+		t.Errorf("with a rate increase: %v %q", f.Present, f.Message)
+	}
+	if f := run(false, 0.01); !f.Present || !strings.Contains(f.Message, "unclear cause") {
+		t.Errorf("compliance rising under a plateau rise: %v %q", f.Present, f.Message)
+	}
+	if f := run(false, -0.01); !f.Present || !strings.Contains(f.Message, "elastic") {
+		t.Errorf("compliance falling: %v %q", f.Present, f.Message)
 	}
 }

@@ -186,10 +186,10 @@ func defaultCourse() []CourseStep {
 // 500 simulated patient-hours at 50 Hz.
 func DefaultGrid() Grid {
 	return Grid{
-		DurationS:            65 * 60,
-		SampleRatesHz:        []float64{50},
-		StepS:                0.004,
-		Seeds:                1,
+		DurationS:     65 * 60,
+		SampleRatesHz: []float64{50},
+		StepS:         0.004,
+		Seeds:         1,
 		// The 3× and 10× two-compartment models are left to grid files
 		// (docs/sweep-acceptance.yaml) to keep the default run's size.
 		Models:               []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort},
