@@ -36,8 +36,8 @@ const (
 // offset grows with the breath's duration, a leak through a linear orifice
 // with its pressure–time integral, so an exponentially weighted least
 // squares regression of the balance on [Ttot, ∫Paw dt] over many breaths
-// separates the two when the breaths differ enough (REFERENCE: a leak
-// follows airway pressure, an offset does not). The regression has no
+// separates the two when the breaths differ enough (a leak follows
+// airway pressure, an offset does not; derived). The regression has no
 // intercept; its normal equations are kept as decaying sums.
 type balance struct {
 	stt, sti, sii, std, sid, w float64
