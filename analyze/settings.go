@@ -133,7 +133,7 @@ func changes(ref, cur *inferred) []string {
 // residual of a straight line, relative to the signal's mean above its
 // baseline.
 func (a *Analyzer) inferMode(peep float64) string {
-	from := a.startT + 0.3*(a.expStartT-a.startT)
+	from := a.startT + 0.5*(a.expStartT-a.startT)
 	to := a.expStartT
 	if !math.IsNaN(a.plateau) {
 		to -= a.pauseLen

@@ -2,9 +2,14 @@ package analyze
 
 import "math"
 
-// expFitMaxRatio caps the two-exponential remaining volume at this many
-// times the end-expiratory-flow estimate (see trapping).
-const expFitMaxRatio = 1.2
+// expFitMinRatio is how much more volume than the end-expiratory-flow
+// estimate the two-exponential fit must leave to mark a slow end, and
+// expFitMaxRatio caps the figure it reports at this many times that
+// estimate (see trapping; our choice).
+const (
+	expFitMinRatio = 1.5
+	expFitMaxRatio = 3.0
+)
 
 // trapping computes the time constants and the air-trapping estimates of
 // the breath: the expiratory time constant of mid-expiration, the
@@ -26,8 +31,10 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	// longer time constant empty last, so this slope is theirs.
 	tauEnd := a.tauLate(endT)
 	b.TauEndS = tauEnd
+	slowerEnd := false
 	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
 		add(FlagTauNonlinear)
+		slowerEnd = d > 0
 	}
 	tau := b.TauS
 	if math.IsNaN(tau) {
@@ -38,9 +45,11 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	}
 	// A slow end: the last part empties with a longer time constant than
 	// the middle, and there is still measurable flow to empty.
-	slow := tauEnd > slowEndRatio*tau && eef > math.Max(tauDepartureLPS/2, 3*nanTo0(eefSE))
+	// (or the end-expiratory flow lies above the mid-expiration line).
+	flowing := eef > math.Max(tauDepartureLPS/2, 3*nanTo0(eefSE))
+	slow := flowing && (tauEnd > slowEndRatio*tau || slowerEnd)
 	tauTrap := tau
-	if slow {
+	if slow && tauEnd > tau {
 		tauTrap = tauEnd
 	}
 	b.TeOverTau = b.TeS / tauTrap
@@ -60,14 +69,15 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 		// exponentials exceeds flow × local slope by a modest factor once
 		// the fast part has decayed, so the figure is capped at
 		// expFitMaxRatio times the end-expiratory route (our choice).
-		remML = math.Min(1000*ef.remaining(endT-a.expStartT), expFitMaxRatio*b.TrappedEEFML)
+		remML = 1000 * ef.remaining(endT-a.expStartT)
 	}
-	b.TrappedExpFitML = remML
-	if remML > 1.2*b.TrappedEEFML && efl > tauDepartureLPS/2 && !m.rohrer.ok {
+	if remML > expFitMinRatio*b.TrappedEEFML && efl > tauDepartureLPS/2 && !m.rohrer.ok {
 		// The whole expiration says two time constants and more volume
 		// left than the end-expiratory slope does.
 		slow = true
 	}
+	remML = math.Min(remML, expFitMaxRatio*b.TrappedEEFML)
+	b.TrappedExpFitML = remML
 	r := math.NaN()
 	switch {
 	case m.rohrer.ok:
