@@ -1,9 +1,6 @@
 package analyze
 
-import (
-	"math"
-	"sort"
-)
+import "math"
 
 // Limits of the search for the onset of the inspiratory rise.
 const (
@@ -15,7 +12,7 @@ const (
 	onsetLookbackS = 0.6
 	// onsetBaseS is the span of expiration, ending at the crossing, whose
 	// median airway pressure is the expiratory baseline.
-	onsetBaseS = 1.0
+	onsetBaseS = 0.5
 	// onsetMinRiseCmH2O is the smallest rise above the baseline that marks
 	// the ventilator's action; it must also exceed four times the
 	// pressure noise of the baseline.
@@ -52,13 +49,13 @@ func (a *Analyzer) inspOnset(tc float64) float64 {
 	if len(ps) < 5 {
 		return tc
 	}
-	sort.Float64s(ps)
-	base := ps[len(ps)/2]
+	// Medians by selection (linear time), not sorting: this runs once a
+	// breath but on up to a second of samples.
+	base := detSelect(ps, len(ps)/2)
 	for i := range ps {
 		ps[i] = math.Abs(ps[i] - base)
 	}
-	sort.Float64s(ps)
-	thr := base + math.Max(onsetMinRiseCmH2O, 4*1.4826*ps[len(ps)/2])
+	thr := base + math.Max(onsetMinRiseCmH2O, 4*1.4826*detSelect(ps, len(ps)/2))
 	// Walk back from the crossing while the pressure is above the
 	// threshold: the rise.
 	onset := tc

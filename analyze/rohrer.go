@@ -35,22 +35,37 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	for i := range pts {
 		maxF = math.Max(maxF, math.Abs(pts[i].f))
 	}
-	step := func(i int) bool { return i > 0 && i < len(pts) && math.Abs(pts[i].f-pts[i-1].f) > 0.15*maxF }
+	lim := 0.15 * maxF
 	for i := range pts {
 		q := &pts[i]
 		if q.t >= endT {
 			break
 		}
-		if step(i) || step(i+1) {
+		if i > 0 && math.Abs(q.f-pts[i-1].f) > lim || i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim {
 			continue
 		}
-		x := [5]float64{q.f, q.f * math.Abs(q.f), q.v, 1, q.p}
-		for r := range 5 {
-			for c := range 5 {
-				s[r][c] += x[r] * x[c]
-			}
-		}
+		fa := q.f * math.Abs(q.f)
+		s[0][0] += q.f * q.f
+		s[0][1] += q.f * fa
+		s[0][2] += q.f * q.v
+		s[0][3] += q.f
+		s[0][4] += q.f * q.p
+		s[1][1] += fa * fa
+		s[1][2] += fa * q.v
+		s[1][3] += fa
+		s[1][4] += fa * q.p
+		s[2][2] += q.v * q.v
+		s[2][3] += q.v
+		s[2][4] += q.v * q.p
+		s[3][3]++
+		s[3][4] += q.p
+		s[4][4] += q.p * q.p
 		n++
+	}
+	for r := range 5 {
+		for c := range r {
+			s[r][c] = s[c][r]
+		}
 	}
 	if n < 12 {
 		return rohrerFit{}

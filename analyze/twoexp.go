@@ -118,3 +118,11 @@ func (a *Analyzer) fitTwoExp(vte, endT float64) expFit {
 	}
 	return best
 }
+
+// fitTwoExpIf runs fitTwoExp when cond holds.
+func (a *Analyzer) fitTwoExpIf(cond bool, vte, endT float64) expFit {
+	if !cond {
+		return expFit{}
+	}
+	return a.fitTwoExp(vte, endT)
+}
