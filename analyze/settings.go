@@ -48,9 +48,9 @@ func (s *settingsTracker) reset() { *s = settingsTracker{} }
 func (s *settingsTracker) observe(b *Breath, flags *[]string, pauseS, maxFlowLPS float64) {
 	cur := inferred{mode: b.Mode, rate: b.RateBPM, vt: b.VtiML, flow: 60 * maxFlowLPS,
 		pinsp: b.PeakCmH2O - b.PEEPCmH2O, ti: b.TiS, pause: nanTo0(pauseS), peep: b.PEEPCmH2O}
-	if math.IsNaN(b.PlateauCmH2O) {
-		cur.pause = 0
-	}
+	// The pause is its measured length even when it is too short to
+	// yield a plateau: a set pause near min_pause_s would otherwise come
+	// and go with noise and read as settings changes.
 	if b.Mode == ModePressure {
 		b.SetInspPressureCmH2O = cur.pinsp
 	} else if b.Mode == ModeVolume {
