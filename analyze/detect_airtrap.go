@@ -69,22 +69,7 @@ func detFirstFinite(vs ...float64) float64 {
 // Breath implements BreathDetector.
 func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	cfg := &d.cfg
-	cur := atBreath{
-		seq:     b.Seq,
-		eefLPM:  b.EndExpFlowLPM,
-		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
-		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
-		teOvTau: b.TeOverTau,
-		tauS:    b.TauS,
-		teS:     b.TeS,
-		tiS:     b.TiS,
-		vtML:    detFirstFinite(b.VtiML, b.VteML),
-		dVolML:  b.VtiML - b.VteML,
-		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
-	}
-	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
-		cur.teOvTau = cur.teS / cur.tauS
-	}
+	cur := atBreathOf(b)
 	idx := d.next
 	d.ring[idx] = cur
 	d.next = (d.next + 1) % cfg.M
@@ -181,13 +166,22 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message += fmt.Sprintf(", trapped volume about %.0f mL", trapped)
 	}
 
+	d.predict(&f, &cur)
+	return append(dst, f)
+}
+
+// predict adds the what-if of a present finding: the expiratory time at
+// which the linear model's steady-state trapped volume falls below the
+// target, the rate that gives it with its CO2 cost, and how many breaths
+// of the window the single-compartment model cannot speak for.
+func (d *AirTrapping) predict(f *Finding, cur *atBreath) {
 	// What-if: the expiratory time at which the linear model's steady-state
 	// trapped volume would fall below the target, Te = τ·ln(1 + VT/target),
 	// and the rate that leaves it at the same inspiratory time.
 	if cur.tauS > 0 && cur.vtML > 0 {
-		te := TeForTrapped(cur.vtML, cur.tauS, cfg.TargetTrappedML)
+		te := TeForTrapped(cur.vtML, cur.tauS, d.cfg.TargetTrappedML)
 		if !math.IsNaN(te) && !math.IsInf(te, 0) {
-			tgt := fmt.Sprintf("%g", cfg.TargetTrappedML)
+			tgt := fmt.Sprintf("%g", d.cfg.TargetTrappedML)
 			f.Predict = map[string]float64{}
 			detPut(f.Predict, "te_s_for_trapped_below_"+tgt+"ml", te, 2)
 			if cur.tiS > 0 {
@@ -211,7 +205,6 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 			}
 		}
 	}
-	return append(dst, f)
 }
 
 // recentMedianPEEPi returns the median intrinsic PEEP estimate of the
@@ -243,6 +236,27 @@ func (d *AirTrapping) flaggedInWindow() int {
 		}
 	}
 	return n
+}
+
+// atBreathOf condenses a breath record to what the detector keeps.
+func atBreathOf(b *Breath) atBreath {
+	cur := atBreath{
+		seq:     b.Seq,
+		eefLPM:  b.EndExpFlowLPM,
+		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
+		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
+		teOvTau: b.TeOverTau,
+		tauS:    b.TauS,
+		teS:     b.TeS,
+		tiS:     b.TiS,
+		vtML:    detFirstFinite(b.VtiML, b.VteML),
+		dVolML:  b.VtiML - b.VteML,
+		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
+	}
+	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
+		cur.teOvTau = cur.teS / cur.tauS
+	}
+	return cur
 }
 
 // slot returns the ring index of the i-th oldest breath in the window.

@@ -120,6 +120,21 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message = fmt.Sprintf("peak pressure trend %+.2f %%/min over %.0f s", pct, spanS)
 		return append(dst, f)
 	}
+	kind := d.attribute(&f, first, count)
+	f.Severity = SeverityLow
+	if pct >= cfg.HighSlopePctPerMin {
+		f.Severity = SeverityMedium
+	}
+	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
+		slope, pct, spanS, kind)
+	return append(dst, f)
+}
+
+// attribute says why the peak rises, filling the evidence of f: the
+// resistive and elastic parts of the rise over breaths first..n−1 (count
+// of them), checked against the resistance and compliance trends, or a
+// settings change inside the window.
+func (d *RisingPeak) attribute(f *Finding, first, count int) string {
 	// Attribution (only for a present rise, to save the work): from the
 	// pause when most breaths have one, otherwise from the least-squares R
 	// and C.
@@ -168,13 +183,7 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 		f.Evidence["settings_changes"] = float64(len(ch))
 		kind = "after a settings change: it follows " + describeChanges(ch)
 	}
-	f.Severity = SeverityLow
-	if pct >= cfg.HighSlopePctPerMin {
-		f.Severity = SeverityMedium
-	}
-	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
-		slope, pct, spanS, kind)
-	return append(dst, f)
+	return kind
 }
 
 // changesSince lists the settings changes inferred over breaths

@@ -21,28 +21,7 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	add := func(f string) { *flags = append(*flags, f) }
 	vteOnset := a.expStartV - a.volumeAt(endT)
 
-	// Mid-expiration time constant from the flow–volume slope over 25–75 %
-	// of the exhaled volume (Lourens MS et al., Intensive Care Med
-	// 2000;26:1612: the slope of the expiratory flow–volume curve).
-	var lineEEF, lineSE float64
-	b.TauS, lineEEF, lineSE = a.tauFlowVolume(vteOnset, 0.25, 0.75, endT)
-	// End-expiratory time constant from the last third of the expiration
-	// (same source: the slope of the last part of the curve). Units with a
-	// longer time constant empty last, so this slope is theirs.
-	tauEnd := a.tauLate(endT)
-	b.TauEndS = tauEnd
-	slowerEnd := false
-	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
-		add(FlagTauNonlinear)
-		slowerEnd = d > 0
-	}
-	tau := b.TauS
-	if math.IsNaN(tau) {
-		add(FlagTauUnreliable)
-		if m.fitOK {
-			tau = m.r / m.e
-		}
-	}
+	tau, tauEnd, slowerEnd := a.timeConstants(b, flags, m, eef, eefSE, vteOnset, endT)
 	// A slow end: the last part empties with a longer time constant than
 	// the middle, and there is still measurable flow to empty.
 	// (or the end-expiratory flow lies above the mid-expiration line).
@@ -112,6 +91,35 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 		}
 	}
 	a.reportTrapping(b, flags, m, slow, leak)
+}
+
+// timeConstants sets the mid-expiration and end-expiratory time
+// constants of b and flags a departure from a single one. It returns the
+// time constant to use (the fit's R/E when the slope fails), the
+// end-expiratory one, and whether the end is slower than the middle.
+func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, eefSE, vteOnset, endT float64) (tau, tauEnd float64, slowerEnd bool) {
+	// Mid-expiration time constant from the flow–volume slope over 25–75 %
+	// of the exhaled volume (Lourens MS et al., Intensive Care Med
+	// 2000;26:1612: the slope of the expiratory flow–volume curve).
+	var lineEEF, lineSE float64
+	b.TauS, lineEEF, lineSE = a.tauFlowVolume(vteOnset, 0.25, 0.75, endT)
+	// End-expiratory time constant from the last third of the expiration
+	// (same source: the slope of the last part of the curve). Units with a
+	// longer time constant empty last, so this slope is theirs.
+	tauEnd = a.tauLate(endT)
+	b.TauEndS = tauEnd
+	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
+		*flags = append(*flags, FlagTauNonlinear)
+		slowerEnd = d > 0
+	}
+	tau = b.TauS
+	if math.IsNaN(tau) {
+		*flags = append(*flags, FlagTauUnreliable)
+		if m.fitOK {
+			tau = m.r / m.e
+		}
+	}
+	return tau, tauEnd, slowerEnd
 }
 
 // reportTrapping chooses the reported intrinsic PEEP and trapped volume.
