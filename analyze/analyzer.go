@@ -55,7 +55,8 @@ const (
 	FlagRohrer = "rohrer"
 	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
 	// flow offset and a pressure-proportional leak estimated over many
-	// breaths (offset_lpm and leak fields of the record).
+	// breaths (flow_offset_lpm and leak_lpm_per_cmh2o of the record) of at
+	// least 0.3 L/min at the mean airway pressure.
 	FlagOffsetCorrected = "offset-corrected"
 	// FlagSettingsChanged: the ventilator settings inferred from the
 	// waveform differ from those of the previous breaths.
@@ -141,6 +142,7 @@ type Analyzer struct {
 	// a leak conductance (L/s per cmH2O) estimated from the volume balance
 	// of past breaths (see balance).
 	offB, leakK float64
+	meanP       float64 // mean airway pressure of the breath the correction was last set on
 	bal         balance
 	prevTrapML  float64
 	settings    settingsTracker

@@ -20,7 +20,13 @@ const (
 	// maxOffsetLPS and maxLeakLPSPerCmH2O bound the corrections (3 L/min;
 	// 0.5 L/min per cmH2O, a leak of about half the tidal volume): beyond
 	// them the imbalance is not a sensor matter and nothing is corrected.
-	maxOffsetLPS       = 3.0 / 60
+	maxOffsetLPS = 3.0 / 60
+	// minFlagLPS is the smallest correction (offset plus leak at the mean
+	// airway pressure) that flags the breath offset-corrected: 0.3 L/min
+	// (our choice, above the 0.25 L/min the trapezoid rule leaves on
+	// synchronised 50 Hz signals). Smaller corrections are applied but not
+	// flagged, so that a clean sensor's records stay unflagged.
+	minFlagLPS         = 0.3 / 60
 	maxLeakLPSPerCmH2O = 0.5 / 60
 )
 
@@ -103,5 +109,6 @@ func (a *Analyzer) updateBalance(b *Breath) {
 	a.bal.add(tS, iP, d)
 	if off, k, ok := a.bal.solve(); ok {
 		a.offB, a.leakK = off, k
+		a.meanP = a.cur.p / a.cur.n
 	}
 }

@@ -76,7 +76,7 @@ func (a *Analyzer) finish() Breath {
 	if b.VtiML < a.cfg.MinBreathVolumeML {
 		flags = append(flags, FlagShort)
 	}
-	if a.offB != 0 || a.leakK != 0 {
+	if math.Abs(a.offB+a.leakK*a.meanP) >= minFlagLPS {
 		flags = append(flags, FlagOffsetCorrected)
 	}
 	b.Mode = a.inferMode(b.PEEPCmH2O)
