@@ -44,7 +44,7 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	b.TrappedEEFML = 1000 * efl * tauTrap
 	// Only when the end of expiration already hints at a slower end: the
 	// fit costs about a hundred microseconds, the rest of a breath a few.
-	hint := flowing && (slowerEnd || tauEnd > 1.15*tau)
+	hint := flowing && (slowerEnd || tauEnd > 1.15*tau || math.IsNaN(tauEnd))
 	if ef := a.fitTwoExpIf(hint, vteOnset, endT); ef.ok && ef.two && ef.tau2 > 2*ef.tau1 && ef.tau2 <= 3*b.TeS {
 		// A slow component is identifiable only over an expiration of a
 		// few of its time constants; and the remaining volume of a sum of
