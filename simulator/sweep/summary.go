@@ -57,6 +57,9 @@ type SetSummary struct {
 	// OtherAlerts counts fresh raises of conditions without ground truth
 	// (all of them are unexpected on simulated patients), per hour.
 	OtherAlerts map[string]int `json:"other_alerts"`
+	// Classes holds the air-trapping acceptance figures of every class of
+	// patients (one value of one grid dimension), "all" first.
+	Classes []ClassScore `json:"classes"`
 }
 
 // ModelScores holds the scores over the patients of one model.
@@ -224,6 +227,7 @@ func Summarize(r *Result) *Summary {
 			}
 			ss.BySampleRate = append(ss.BySampleRate, RateScores{SampleRateHz: hz, PatientHours: Num(hoursByRate[hz]), Conditions: byRate[ri]})
 		}
+		ss.Classes = classScores(r, si)
 		s.Sets = append(s.Sets, ss)
 	}
 	s.Estimators, s.ErrorVsR, s.ErrorVsC = estimatorErrors(r, s.Models)
