@@ -112,11 +112,6 @@ func TestLiveViewAgainstDaemon(t *testing.T) {
 	bctx := browsertest.Browser(t, 40*time.Second)
 	d, info, nc, stream := liveDaemon(t, bctx, "hyperinflation", 6)
 	subj := alerts.Subjects{Prefix: d.cfg.NATS.SubjectPrefix}
-	type raise struct {
-		ev      alerts.Event
-		at      time.Time
-		breaths uint64
-	}
 	raised := make(chan raise, 1)
 	sub, err := nc.Subscribe(subj.Alert(stream), func(m *nats.Msg) {
 		var ev alerts.Event
@@ -148,34 +143,7 @@ func TestLiveViewAgainstDaemon(t *testing.T) {
 	}
 	p1, t1 := points(), time.Now()
 
-	// Watch the page and NATS together: the alarm's NATS event and its
-	// first appearance on the page, each with the breaths analysed then.
-	var r raise
-	var got bool
-	var seen time.Time
-	var shown uint64
-	pageBreaths := ""
-	for end := time.Now().Add(15 * time.Second); !got || seen.IsZero(); {
-		if time.Now().After(end) {
-			t.Fatalf("within 15 s: air-trapping on NATS %v, on the page %v", got, !seen.IsZero())
-		}
-		select {
-		case r = <-raised:
-			got = true
-		default:
-		}
-		if seen.IsZero() {
-			txt, err := chromedp.Run(bctx, chromedp.Evaluate[string](
-				`(() => { const r = `+row+`; return r && r.cells[7].textContent.includes("air-trapping") ? r.cells[2].textContent : ""; })()`))
-			if err != nil {
-				t.Fatal(err)
-			}
-			if txt != "" {
-				seen, shown, pageBreaths = time.Now(), d.streams[0].breaths.Load(), txt
-			}
-		}
-		time.Sleep(50 * time.Millisecond)
-	}
+	r, seen := alarmOnPage(t, bctx, d, row, raised)
 	time.Sleep(time.Until(t1.Add(3 * time.Second)))
 	p2 := points()
 	t.Logf("waveform points: %d, 3 s later %d", p1, p2)
@@ -187,11 +155,11 @@ func TestLiveViewAgainstDaemon(t *testing.T) {
 		seq = *r.ev.BreathSeq
 	}
 	t.Logf("air-trapping raised at breath_seq %d, t=%.1f s; on NATS with %d breaths analysed; on the page %v later with %d analysed (page shows %s)",
-		seq, r.ev.TS, r.breaths, seen.Sub(r.at).Round(time.Millisecond), shown, pageBreaths)
-	if late := int64(shown) - int64(r.breaths); late > 10 {
+		seq, r.ev.TS, r.breaths, seen.at.Sub(r.at).Round(time.Millisecond), seen.breaths, seen.page)
+	if late := int64(seen.breaths) - int64(r.breaths); late > 10 {
 		t.Errorf("alarm shown %d breaths after its NATS event, want at most 10", late)
 	}
-	if n, err := strconv.Atoi(pageBreaths); err == nil && seq >= 0 && n-seq > 11 {
+	if n, err := strconv.Atoi(seen.page); err == nil && seq >= 0 && n-seq > 11 {
 		t.Errorf("page shows %d breaths with the alarm of breath %d: more than 10 later", n, seq)
 	}
 
@@ -212,6 +180,54 @@ func TestLiveViewAgainstDaemon(t *testing.T) {
 		`document.querySelector('#active tr[data-condition="air-trapping"][data-state="acknowledged"]') !== null`, 5*time.Second)
 	time.Sleep(1500 * time.Millisecond) // a few more breaths on the trends for the picture
 	browsertest.Screenshot(t, bctx, "live-view-daemon.png")
+}
+
+// raise is an alarm's raise as the test saw it on NATS, with the breaths
+// the daemon had analysed then.
+type raise struct {
+	ev      alerts.Event
+	at      time.Time
+	breaths uint64
+}
+
+// sighting is the alarm's first appearance on the page: when, the breaths
+// the daemon had analysed then, and the breath count the page showed.
+type sighting struct {
+	at      time.Time
+	breaths uint64
+	page    string
+}
+
+// alarmOnPage watches the page and NATS together, for at most 15 s, until
+// it has the air-trapping raise from NATS and the alarm in the page's row
+// of the stream.
+func alarmOnPage(t *testing.T, bctx context.Context, d *Daemon, row string, raised <-chan raise) (raise, sighting) {
+	t.Helper()
+	var r raise
+	var got bool
+	var seen sighting
+	for end := time.Now().Add(15 * time.Second); !got || seen.at.IsZero(); {
+		if time.Now().After(end) {
+			t.Fatalf("within 15 s: air-trapping on NATS %v, on the page %v", got, !seen.at.IsZero())
+		}
+		select {
+		case r = <-raised:
+			got = true
+		default:
+		}
+		if seen.at.IsZero() {
+			txt, err := chromedp.Run(bctx, chromedp.Evaluate[string](
+				`(() => { const r = `+row+`; return r && r.cells[7].textContent.includes("air-trapping") ? r.cells[2].textContent : ""; })()`))
+			if err != nil {
+				t.Fatal(err)
+			}
+			if txt != "" {
+				seen = sighting{time.Now(), d.streams[0].breaths.Load(), txt}
+			}
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	return r, seen
 }
 
 // ackedInJetStream reads the alerts stream until it holds the
