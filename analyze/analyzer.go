@@ -354,7 +354,10 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 	// End-inspiratory pause: smoothed |flow| under the pause threshold after
 	// flow has been delivered (common practice: below ~2–5 % of peak flow or
 	// 1–3 L/min).
-	thr := math.Max(a.pauseFlowLPS, a.cfg.PauseFlowFraction*a.cur.maxF)
+	thr := a.cfg.PauseFlowFraction * a.cur.maxF // plain compare: math.Max costs per sample
+	if thr < a.pauseFlowLPS {
+		thr = a.pauseFlowLPS
+	}
 	if math.IsNaN(a.pauseStartT) {
 		if a.cur.maxF > a.trigLPS && math.Abs(a.fs) < thr {
 			a.pauseStartT = t
