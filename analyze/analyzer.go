@@ -243,7 +243,10 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 		return false
 	}
 	a.ring.push(t, p, f)
-	if dt != a.alphaDt {
+	// Recomputed only when the step changes by more than rounding: the
+	// timestamps of a fixed sampling rate differ in their last bits, and
+	// a division per sample is a measurable share of the cost.
+	if math.Abs(dt-a.alphaDt) > 1e-9*dt {
 		a.alphaDt, a.alpha = dt, dt/(flowSmoothS+dt)
 	}
 	a.fs += (f - a.fs) * a.alpha
