@@ -299,7 +299,11 @@ func (l *Lifecycle) AckBy(id, by string, wall time.Time) ([]Event, error) {
 		if a.cc.AckExpiryS > 0 && a.phase == active {
 			msg += fmt.Sprintf("; announced again after %g s if still present", a.cc.AckExpiryS)
 		}
-		out := []Event{l.event(a, &a.last, wall, Acknowledged, msg)}
+		ack := l.event(a, &a.last, wall, Acknowledged, msg)
+		at := wall.UTC()
+		ack.AckedBy, ack.AckedAt = by, &at
+		a.lastOut = ack
+		out := []Event{ack}
 		if a.phase == latched {
 			a.phase = inactive
 			out = append(out, l.event(a, &a.last, wall, Cleared, "cleared on acknowledgement: "+a.last.Message))

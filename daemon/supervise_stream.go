@@ -386,7 +386,7 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 		if ev.Supersedes != "" {
 			delete(s.activeIDs, ev.Supersedes)
 		}
-		if ev.State == alerts.Cleared {
+		if ev.State.Terminal() {
 			delete(s.activeIDs, ev.ID)
 		} else {
 			s.activeIDs[ev.ID] = struct{}{}

@@ -195,7 +195,7 @@ func (v *watchView) handle(kind string, data []byte) {
 		if ev.Supersedes != "" {
 			delete(s.active, ev.Supersedes)
 		}
-		if ev.State == alerts.Cleared {
+		if ev.State.Terminal() {
 			delete(s.active, ev.ID)
 		} else {
 			s.active[ev.ID] = ev
