@@ -29,6 +29,7 @@ type metrics struct {
 	alertsActive  *prometheus.GaugeVec
 	breathLatency prometheus.Histogram
 	acks          *prometheus.CounterVec
+	trustMetrics
 
 	mu      sync.Mutex
 	sources map[string]func() ingest.Stats
@@ -45,8 +46,9 @@ const (
 
 func newMetrics() *metrics {
 	m := &metrics{
-		reg:     prometheus.NewRegistry(),
-		sources: map[string]func() ingest.Stats{},
+		reg:          prometheus.NewRegistry(),
+		sources:      map[string]func() ingest.Stats{},
+		trustMetrics: newTrustMetrics(),
 		breaths: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Namespace: metricNamespace, Name: "breaths_total",
 			Help: "Completed breaths analysed, per stream.",
@@ -92,6 +94,7 @@ func newMetrics() *metrics {
 		m.alertsActive, m.breathLatency, m.acks,
 		&scrapeCollector{m: m},
 	)
+	m.reg.MustRegister(m.trustMetrics.collectors()...)
 	return m
 }
 

@@ -73,6 +73,9 @@ type streamSpec struct {
 	// Overload is the source's resolved overload policy: OverloadBlock
 	// makes the stream's queue wait for the analysis too.
 	Overload ingest.OverloadPolicy
+	// Continuity, when set, resumes the pipeline from its checkpoint at
+	// start and writes the checkpoint while running and at stop.
+	Continuity *continuity
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -332,11 +335,16 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 	// pubCtx outlives ctx: alerts found while draining the queue at
 	// shutdown are still written to the spool.
 	pubCtx := context.WithoutCancel(ctx)
+	if err := s.resume(pubCtx, pl); err != nil {
+		return err
+	}
 	for {
 		select {
 		case ev, ok := <-queue:
 			if !ok {
-				return s.emit(pubCtx, pl.Flush(), time.Time{})
+				err := s.emit(pubCtx, pl.Flush(), time.Time{})
+				s.checkpoint(pl, time.Now(), true)
+				return err
 			}
 			arrived := time.Now()
 			if ev.Status != ingest.StatusNone {
@@ -345,7 +353,9 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				}
 			}
 			if len(ev.Samples) > 0 {
-				if err := s.emit(pubCtx, pl.Samples(ev.Samples), arrived); err != nil {
+				out := pl.Samples(ev.Samples)
+				s.checkpoint(pl, arrived, false) // before the breaths go out: their numbers are reserved
+				if err := s.emit(pubCtx, out, arrived); err != nil {
 					return err
 				}
 				s.analysed.Add(uint64(len(ev.Samples)))
@@ -354,6 +364,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
 				return err
 			}
+			s.checkpoint(pl, now, false)
 			if now.Sub(lastStatus) >= s.spec.StatusEvery {
 				lastStatus = now
 				s.heartbeat(now)

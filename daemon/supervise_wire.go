@@ -137,17 +137,24 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	if err != nil {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 	}
+	finite := u.Scheme == "file" || u.Scheme == "stdin"
+	var cont *continuity
+	if !finite { // a recording is analysed from its start every time
+		cont = newContinuity(cfg.DataDir, sc.ID)
+	}
 	return streamSpec{
-		ID:       sc.ID,
-		Finite:   u.Scheme == "file" || u.Scheme == "stdin",
-		Overload: opts.Overload.For(u.Scheme),
+		ID:         sc.ID,
+		Continuity: cont,
+		Finite:     finite,
+		Overload:   opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {
 				return nil, nil, err
 			}
 			return src, pipeline.New(pipeline.Options{Stream: sc.ID, Analysis: cfg.Analysis,
-				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats}), nil
+				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats,
+				KeepBreaths: pipeline.KeepBreaths(cfg.Detectors)}), nil
 		},
 		TickEvery: d.opts.TickEvery,
 	}, nil

@@ -103,6 +103,7 @@ type Pipeline struct {
 	recent   []analyze.Breath
 	terminal []Terminal
 	seqBase  int
+	reserved int // first breath number not reserved by a checkpoint
 	sink     Sink
 	alertFn  func(*alerts.Event)
 }

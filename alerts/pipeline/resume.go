@@ -35,7 +35,18 @@ type Checkpoint struct {
 	State    State            `json:"state"`
 	Breaths  []analyze.Breath `json:"breaths"`
 	Terminal []Terminal       `json:"terminal"`
+	// SeqReserved is the first breath number not yet promised: breaths up
+	// to it may have been published after the checkpoint was written, so
+	// after a kill the numbering resumes there rather than after
+	// State.LastBreathSeq, and never repeats a published number.
+	SeqReserved int `json:"seq_reserved"`
+	// Clean marks the checkpoint of a clean stop: nothing was published
+	// after it, and the numbering resumes right after State.LastBreathSeq.
+	Clean bool `json:"clean"`
 }
+
+// seqBlock is how many breath numbers a checkpoint reserves ahead.
+const seqBlock = 64
 
 // Terminal is what became of an alarm id that gets no further events.
 type Terminal struct {
@@ -102,10 +113,19 @@ func (p *Pipeline) remember(b *analyze.Breath) {
 	p.recent = append(p.recent, *b)
 }
 
-// Checkpoint returns the pipeline's checkpoint at wall time now.
-func (p *Pipeline) Checkpoint(now time.Time) Checkpoint {
+// SeqReservationDue reports whether the breath numbers reserved by the last
+// checkpoint run out: a new checkpoint must be written before more breaths
+// are published.
+func (p *Pipeline) SeqReservationDue() bool { return p.keep > 0 && p.lastBreath+1 >= p.reserved }
+
+// Checkpoint returns the pipeline's checkpoint at wall time now; clean
+// marks the last one of a clean stop. It reserves the next breath numbers
+// (see Checkpoint.SeqReserved).
+func (p *Pipeline) Checkpoint(now time.Time, clean bool) Checkpoint {
+	p.reserved = p.lastBreath + 1 + seqBlock
 	return Checkpoint{
 		Version: CheckpointVersion, SavedAt: now.UTC(), State: p.Snapshot(),
+		SeqReserved: p.reserved, Clean: clean,
 		Breaths:  append([]analyze.Breath(nil), p.recent...),
 		Terminal: append([]Terminal(nil), p.terminal...),
 	}
@@ -120,7 +140,8 @@ func (p *Pipeline) Checkpoint(now time.Time) Checkpoint {
 //   - otherwise the alarms resume as they were and the recent breaths are
 //     replayed into the detectors (their findings are not judged again).
 //
-// Breath numbers continue after the checkpoint's last one.
+// Breath numbers continue after the checkpoint's last one (after a clean
+// stop) or after its reserved ones (otherwise), never repeating one.
 func (p *Pipeline) Resume(cp Checkpoint, now time.Time, maxGap time.Duration) (Output, error) {
 	if cp.Version != CheckpointVersion {
 		return Output{}, fmt.Errorf("resume stream %s: checkpoint version %d, want %d", p.stream, cp.Version, CheckpointVersion)
@@ -129,7 +150,10 @@ func (p *Pipeline) Resume(cp Checkpoint, now time.Time, maxGap time.Duration) (O
 		return Output{}, fmt.Errorf("resume: %w", err)
 	}
 	p.seqBase = cp.State.LastBreathSeq + 1
-	p.lastBreath = cp.State.LastBreathSeq
+	if !cp.Clean {
+		p.seqBase = max(p.seqBase, cp.SeqReserved)
+	}
+	p.lastBreath = p.seqBase - 1
 	p.terminal = append(p.terminal[:0], cp.Terminal...)
 	if len(p.terminal) > recentTerminal {
 		p.terminal = p.terminal[len(p.terminal)-recentTerminal:]
@@ -164,3 +188,6 @@ func (p *Pipeline) ackAnswer(id string, err error) error {
 	}
 	return err
 }
+
+// Active returns the latest event of every open alarm.
+func (p *Pipeline) Active() []alerts.Event { return p.judge.Lifecycle().Active() }

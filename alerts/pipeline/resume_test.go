@@ -37,9 +37,9 @@ func eventKeys(evs []alerts.Event) []string {
 }
 
 // checkpointJSON takes a checkpoint through JSON, as the daemon's file does.
-func checkpointJSON(t *testing.T, p *Pipeline, now time.Time) Checkpoint {
+func checkpointJSON(t *testing.T, p *Pipeline, now time.Time, clean bool) Checkpoint {
 	t.Helper()
-	data, err := json.Marshal(p.Checkpoint(now))
+	data, err := json.Marshal(p.Checkpoint(now, clean))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -65,7 +65,7 @@ func TestResumeShortGapContinues(t *testing.T) {
 	whole := livePipeline("bed-3", &clock)
 	var first, wantSecond Output
 	liveRun(whole, &clock, ss[:half], &first)
-	cp := checkpointJSON(t, whole, clock)
+	cp := checkpointJSON(t, whole, clock, true)
 	liveRun(whole, &clock, ss[half:], &wantSecond)
 
 	clock = cp.SavedAt
@@ -120,7 +120,7 @@ func TestResumeLongGapEndsAlarms(t *testing.T) {
 	if len(open) == 0 {
 		t.Fatal("no alarm open at the checkpoint")
 	}
-	cp := checkpointJSON(t, p, clock)
+	cp := checkpointJSON(t, p, clock, false)
 	later := clock.Add(2 * DefaultMaxGap)
 	q := livePipeline("bed-4", &later)
 	out, err := q.Resume(cp, later, DefaultMaxGap)
@@ -152,6 +152,12 @@ func TestResumeLongGapEndsAlarms(t *testing.T) {
 	}
 	if len(q.judge.Lifecycle().Active()) != 0 {
 		t.Error("alarms still active after they ended")
+	}
+	var more Output
+	liveRun(q, &later, ss[len(ss)/2:], &more)
+	if len(more.Breaths) == 0 || more.Breaths[0].Seq < cp.SeqReserved || cp.SeqReserved <= cp.State.LastBreathSeq {
+		t.Errorf("after a checkpoint that was not clean, breaths resume at %d, want at the reserved %d (> last %d)",
+			more.Breaths[0].Seq, cp.SeqReserved, cp.State.LastBreathSeq)
 	}
 	id := out.Alerts[0].ID
 	_, err = q.Ack(id, "nurse", later)

@@ -1,0 +1,29 @@
+package daemon
+
+import "github.com/prometheus/client_golang/prometheus"
+
+// trustMetrics count what the daemon does to keep its alarms trustworthy
+// across restarts and faults: checkpoints that could not be written and
+// alert events the durable publisher refused (analysis went on without
+// them).
+type trustMetrics struct {
+	checkpointErrors *prometheus.CounterVec
+	alertsRefused    *prometheus.CounterVec
+}
+
+func newTrustMetrics() trustMetrics {
+	return trustMetrics{
+		checkpointErrors: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Namespace: metricNamespace, Name: "checkpoint_errors_total",
+			Help: "Stream checkpoints (alarm state for a restart) that could not be written, per stream.",
+		}, []string{"stream"}),
+		alertsRefused: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Namespace: metricNamespace, Name: "alerts_refused_total",
+			Help: "Alert events the durable publisher refused (spool full, disk full, oversized); analysis goes on.",
+		}, []string{"stream"}),
+	}
+}
+
+func (t trustMetrics) collectors() []prometheus.Collector {
+	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused}
+}
