@@ -242,7 +242,7 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 		Type: "alert", Schema: EventSchema,
 		ID: a.id, Stream: l.stream, Condition: a.condition, Class: string(f.Class),
 		Priority: a.priority, State: st, Time: wall.UTC(), TS: f.TimeS,
-		Evidence: finite(f.Evidence), Message: msg, Predict: finite(f.Predict),
+		Evidence: finite(f.Evidence), Message: CleanText(msg), Predict: finite(f.Predict),
 	}
 	if e.Evidence == nil {
 		e.Evidence = map[string]float64{}
@@ -293,7 +293,7 @@ func (l *Lifecycle) AckBy(id, by string, wall time.Time) ([]Event, error) {
 		}
 		a.acked, a.ackWall = true, wall
 		msg := "acknowledged"
-		if by != "" {
+		if by = CleanText(by); by != "" {
 			msg += " by " + by
 		}
 		if a.cc.AckExpiryS > 0 && a.phase == active {
@@ -301,7 +301,7 @@ func (l *Lifecycle) AckBy(id, by string, wall time.Time) ([]Event, error) {
 		}
 		ack := l.event(a, &a.last, wall, Acknowledged, msg)
 		at := wall.UTC()
-		ack.AckedBy, ack.AckedAt = by, &at
+		ack.AckedBy, ack.AckedAt = CleanText(by), &at
 		a.lastOut = ack
 		out := []Event{ack}
 		if a.phase == latched {

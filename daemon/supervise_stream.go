@@ -188,6 +188,9 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 	s.ackMu.RLock()
 	line := s.acks
 	s.ackMu.RUnlock()
+	if err := alerts.CheckAck(s.spec.ID, id, by); err != nil {
+		return err // refused here too: the browser view acknowledges through this path
+	}
 	notRunning := fmt.Errorf("stream %s is not running", s.spec.ID)
 	if line == nil {
 		return notRunning

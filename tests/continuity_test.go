@@ -4,8 +4,11 @@ import (
 	"context"
 	"encoding/json"
 	"path/filepath"
+	"strings"
 	"testing"
 	"time"
+
+	"github.com/nats-io/nats.go"
 
 	"trapline/alerts"
 	"trapline/analyze"
@@ -72,6 +75,9 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
 			waitFor(t, 60*time.Second, "an air-trapping alarm", func() bool { return metricsOf(httpPort)["trapline_alerts_active"] >= 1 })
 			time.Sleep(2 * time.Second) // a checkpoint with the alarm open
+			if !tc.kill {
+				checkBadAcks(t, ns.URL(), httpPort)
+			}
 			if tc.kill {
 				first.kill()
 			} else if err := first.stop(20 * time.Second); err != nil {
@@ -137,5 +143,53 @@ func checkTerminal(t *testing.T, stored []alerts.Event) {
 	}
 	if !gap {
 		t.Error("no monitoring-gap event marks the restart")
+	}
+}
+
+// checkBadAcks sends three bad acknowledgements of an open alarm: a 70 kB
+// one, one with control characters and one with a malformed id. Each is
+// answered ok:false, the stream is not restarted, and the alarm stays open.
+func checkBadAcks(t *testing.T, url string, httpPort int) {
+	t.Helper()
+	var openID string
+	for _, e := range storedAlerts(t, jetStreamOf(t, url), "TRAPLINE_ALERTS") {
+		if e.State == alerts.Raised {
+			openID = e.ID
+		}
+	}
+	if openID == "" {
+		t.Fatal("no raised alarm to acknowledge")
+	}
+	before := metricsOf(httpPort)
+	nc, err := nats.Connect(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	for name, body := range map[string]string{
+		"70 kB":              `{"id":"` + openID + `","by":"` + strings.Repeat("x", 70_000) + `"}`,
+		"control characters": `{"id":"` + openID + `","by":"\u001b[2J\u001b[Hforged line"}`,
+		"malformed id":       `{"id":"bed-5/air-trapping","by":"night shift"}`,
+	} {
+		m, err := nc.Request("trapline.ack.bed-5", []byte(body), 5*time.Second)
+		if err != nil {
+			t.Fatalf("%s ack: %v", name, err)
+		}
+		var rep struct {
+			OK    bool   `json:"ok"`
+			Error string `json:"error"`
+		}
+		if err := json.Unmarshal(m.Data, &rep); err != nil || rep.OK {
+			t.Errorf("%s ack answered %s, want ok:false", name, m.Data)
+		}
+		t.Logf("%s ack: %s", name, rep.Error)
+	}
+	after := metricsOf(httpPort)
+	if after["trapline_stream_restarts_total"] != 0 || after["trapline_stream_up"] != 1 {
+		t.Errorf("after bad acks: stream_restarts %v, stream_up %v; want 0 and 1",
+			after["trapline_stream_restarts_total"], after["trapline_stream_up"])
+	}
+	if after["trapline_alerts_active"] < 1 || after["trapline_alerts_active"] < before["trapline_alerts_active"] {
+		t.Errorf("after bad acks %v alarms active, before %v", after["trapline_alerts_active"], before["trapline_alerts_active"])
 	}
 }

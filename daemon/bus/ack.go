@@ -3,7 +3,6 @@ package bus
 import (
 	"context"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"strings"
 	"time"
@@ -61,13 +60,17 @@ func (s *AckService) handle(m *nats.Msg) {
 		}
 		return
 	}
+	if len(m.Data) > alerts.MaxAckRequestBytes {
+		s.reply(m, tok, fmt.Errorf("%w: %d bytes (at most %d)", alerts.ErrBadAck, len(m.Data), alerts.MaxAckRequestBytes))
+		return
+	}
 	var req AckRequest
 	if err := json.Unmarshal(m.Data, &req); err != nil {
 		s.reply(m, tok, fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
 		return
 	}
-	if req.ID == "" {
-		s.reply(m, tok, errors.New("bad ack request: empty id"))
+	if err := alerts.CheckAck("", req.ID, req.By); err != nil { // the stream itself checks the id is its own
+		s.reply(m, tok, err)
 		return
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), ackTimeout)
