@@ -81,6 +81,7 @@ type PublisherStats struct {
 	Found      uint64 // events found already at the end of the stream after an uncertain publish
 	Retries    uint64 // failed publish attempts (each one is retried)
 	Refused    uint64 // events refused because the spool was full or could not be written
+	Evicted    uint64 // spooled events given up for a higher-ranked one (spool full)
 	Depth      int    // events waiting in the spool
 	Corrupt    int    // unreadable spool files moved aside
 }
@@ -109,6 +110,7 @@ type Publisher struct {
 	wake chan struct{}
 
 	published, duplicates, found, retries, refused atomic.Uint64
+	evicted                                        atomic.Uint64
 
 	mu      sync.Mutex
 	closed  bool
@@ -180,7 +182,11 @@ func (p *Publisher) Publish(_ context.Context, ev Event) error {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert %s: %w (%d bytes, at most %d)", ev.DedupID(), ErrEventTooLarge, len(data), MaxEventBytes)
 	}
-	if _, err := p.spool.Append(data); err != nil {
+	_, evicted, err := p.spool.AppendRanked(data, EventRank(&ev))
+	if evicted {
+		p.evicted.Add(1)
+	}
+	if err != nil {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
 	}
@@ -193,6 +199,14 @@ func (p *Publisher) kick() {
 	case p.wake <- struct{}{}:
 	default:
 	}
+}
+
+// SpoolMax returns the spool's capacity in events (0 without a spool).
+func (p *Publisher) SpoolMax() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Max()
 }
 
 // Depth returns the number of events waiting in the spool.
@@ -211,6 +225,7 @@ func (p *Publisher) Stats() PublisherStats {
 		Found:      p.found.Load(),
 		Retries:    p.retries.Load(),
 		Refused:    p.refused.Load(),
+		Evicted:    p.evicted.Load(),
 		Depth:      p.Depth(),
 		Corrupt:    p.corrupt(),
 	}

@@ -51,12 +51,13 @@ func TestPublisherCollector(t *testing.T) {
 		"trapline_alert_publish_retries_total":    0,
 		"trapline_alert_publish_refused_total":    1,
 		"trapline_alert_spool_corrupt_total":      0,
+		"trapline_alert_spool_evicted_total":      0,
 	} {
 		if v, ok := got[name]; !ok || v != want {
 			t.Errorf("%s = %v (present %v), want %v", name, v, ok, want)
 		}
 	}
-	if len(got) != 6 {
-		t.Errorf("%d metrics, want 6", len(got))
+	if len(got) != 7 {
+		t.Errorf("%d metrics, want 7", len(got))
 	}
 }

@@ -9,6 +9,7 @@ import "github.com/prometheus/client_golang/prometheus"
 type trustMetrics struct {
 	checkpointErrors *prometheus.CounterVec
 	alertsRefused    *prometheus.CounterVec
+	alertsHigh       *prometheus.CounterVec
 }
 
 func newTrustMetrics() trustMetrics {
@@ -21,9 +22,13 @@ func newTrustMetrics() trustMetrics {
 			Namespace: metricNamespace, Name: "alerts_refused_total",
 			Help: "Alert events the durable publisher refused (spool full, disk full, oversized); analysis goes on.",
 		}, []string{"stream"}),
+		alertsHigh: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Namespace: metricNamespace, Name: "alerts_high_priority_total",
+			Help: "High-priority alert events made durable (spooled), per stream.",
+		}, []string{"stream"}),
 	}
 }
 
 func (t trustMetrics) collectors() []prometheus.Collector {
-	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused}
+	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused, t.alertsHigh}
 }

@@ -122,6 +122,7 @@ type stream struct {
 	acks  *ackLine
 
 	dropEpisode bool // touched by the source goroutine only
+	imp         impairment
 	// activeIDs are the alarms raised and not cleared; touched by the
 	// analysis goroutine only.
 	activeIDs map[string]struct{}
@@ -346,6 +347,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 		case ev, ok := <-queue:
 			if !ok {
 				err := s.emit(pubCtx, pl.Flush(), time.Time{})
+				s.recovered(pubCtx, time.Now(), alerts.Ended, "stream stopped")
 				s.checkpoint(pl, time.Now(), true)
 				return err
 			}
@@ -368,6 +370,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				return err
 			}
 			s.checkpoint(pl, now, false)
+			s.checkDelivery(pubCtx, now)
 			if now.Sub(lastStatus) >= s.spec.StatusEvery {
 				lastStatus = now
 				s.heartbeat(now)
@@ -388,14 +391,12 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 }
 
 // emit delivers what a step produced: alerts through the durable publisher
-// (an error here stops the stream so that the supervisor restarts it rather
-// than losing an alert), breaths through the non-blocking bulletin.
+// (a refusal degrades delivery but never stops the stream: see deliver),
+// breaths through the non-blocking bulletin.
 func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) error {
 	for i := range out.Alerts {
 		ev := out.Alerts[i]
-		if err := s.alerts.Publish(ctx, ev); err != nil {
-			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
-		}
+		s.deliver(ctx, ev)
 		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
 		if ev.Supersedes != "" {
 			delete(s.activeIDs, ev.Supersedes)

@@ -70,6 +70,11 @@ func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery
 // Publish hands an alert event to the durable publisher.
 func (d *delivery) Publish(ctx context.Context, ev alerts.Event) error { return d.pub.Publish(ctx, ev) }
 
+// Pressure is how full the alert spool is: 0 empty, 1 full.
+func (d *delivery) Pressure() float64 {
+	return float64(d.pub.Depth()) / float64(max(d.pub.SpoolMax(), 1))
+}
+
 // Breath hands a breath record to the bulletin.
 func (d *delivery) Breath(b *analyze.Breath) { d.bull.Breath(b) }
 
