@@ -27,7 +27,6 @@ func reconnectDelay(first time.Duration) func(attempts int) time.Duration {
 	}
 }
 
-
 // IsAuthError reports whether err is the server refusing the connection's
 // credentials or permissions to connect.
 func IsAuthError(err error) bool {
