@@ -85,3 +85,12 @@ func (s *Spool) lowestBelow(rank int) int {
 	}
 	return best
 }
+
+// OwnEvent reports whether seq was spooled by this process (not found on
+// disk at start, where an earlier process may already have sent it).
+func (s *Spool) OwnEvent(seq uint64) bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	_, ok := s.ranks[seq]
+	return ok
+}

@@ -5,6 +5,8 @@ import (
 	"strconv"
 	"time"
 
+	"github.com/rs/zerolog"
+
 	"trapline/alerts"
 )
 
@@ -110,5 +112,28 @@ func (s *stream) checkDelivery(ctx context.Context, now time.Time) {
 		s.impaired(ctx, now, "spool full")
 	case v < 0.5:
 		s.recovered(ctx, now, alerts.Cleared, "alert delivery restored: the spool is draining")
+	}
+}
+
+// CondIDPreempted is the technical event of an alert event that JetStream
+// dropped because another client had already stored a message under its
+// de-duplication id (a forgery, or a misconfigured second publisher).
+const CondIDPreempted = "alert-id-preempted"
+
+// preempted publishes the CondIDPreempted event for ev: high priority,
+// already terminal (nothing to clear), naming the id that was taken.
+func preempted(pub *alerts.Publisher, ev alerts.Event, log zerolog.Logger) {
+	now := time.Now().UTC()
+	out := alerts.Event{
+		Type: "alert", Schema: alerts.EventSchema,
+		ID:     ev.Stream + "/" + CondIDPreempted + "/" + strconv.FormatInt(now.UnixMilli(), 10),
+		Stream: ev.Stream, Condition: CondIDPreempted, Class: "technical", Priority: alerts.High,
+		State: alerts.Ended, Time: now, TS: ev.TS, Evidence: map[string]float64{},
+		Message: "alert " + ev.DedupID() + " was dropped by JetStream: another client had published under its id; " +
+			"check who may publish on the alert subjects",
+		Reason: "foreign publish",
+	}
+	if err := pub.Publish(context.Background(), out); err != nil {
+		log.Error().Err(err).Str("id", ev.DedupID()).Msg("could not raise the alert-id-preempted event")
 	}
 }

@@ -32,3 +32,15 @@ func newTrustMetrics() trustMetrics {
 func (t trustMetrics) collectors() []prometheus.Collector {
 	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused, t.alertsHigh}
 }
+
+// publisherCollector is implemented by the alert publisher.
+type publisherCollector interface {
+	Collector(namespace string) prometheus.Collector
+}
+
+// addPublisher puts the alert publisher's counters (acknowledged,
+// duplicates, foreign duplicates, retries, refused, evicted, corrupt) on
+// /metrics.
+func (m *metrics) addPublisher(p publisherCollector) {
+	m.reg.MustRegister(p.Collector(metricNamespace))
+}

@@ -46,11 +46,13 @@ func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery
 	if n := spool.Depth(); n > 0 {
 		log.Info().Int("events", n).Str("dir", spool.Dir()).Msg("alert spool holds events from an earlier run; sending them first")
 	}
-	pub, err := alerts.NewPublisher(b.Conn, spool, alerts.PublisherOptions{
+	var pub *alerts.Publisher
+	pub, err = alerts.NewPublisher(b.Conn, spool, alerts.PublisherOptions{
 		Streams:        sc,
 		RequestTimeout: cfg.NATS.PublishTimeout,
 		DrainTimeout:   cfg.ShutdownTimeout,
 		Log:            log,
+		OnForeign:      func(ev alerts.Event) { preempted(pub, ev, log) },
 	})
 	if err != nil {
 		spool.Close()
