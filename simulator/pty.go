@@ -31,7 +31,12 @@ type ptyOutput struct {
 	// dropped counts the bytes nobody read: the terminal's buffer was
 	// full, as a cable drops what the far end does not take.
 	dropped atomic.Uint64
+	// paced: drop what the reader does not take (a paced run); otherwise
+	// writes wait for the reader.
+	paced bool
 }
+
+func (o *ptyOutput) keepTime(paced bool) { o.paced = paced }
 
 // PTYPath returns the slave path of the current pseudo-terminal, or "" when
 // none is open. out must come from ParseOutput("pty", ...).
@@ -107,6 +112,12 @@ func (o *ptyOutput) Write(p []byte) error {
 	o.mu.Unlock()
 	if m == nil || len(p) == 0 {
 		return nil // disconnected: the samples are lost
+	}
+	if !o.paced {
+		if _, err := m.Write(p); err != nil {
+			return fmt.Errorf("write pseudo-terminal: %w", err)
+		}
+		return nil
 	}
 	n, err := writeNonBlocking(m, p)
 	if n < len(p) {
