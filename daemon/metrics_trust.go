@@ -10,6 +10,7 @@ type trustMetrics struct {
 	checkpointErrors *prometheus.CounterVec
 	alertsRefused    *prometheus.CounterVec
 	alertsHigh       *prometheus.CounterVec
+	foreignStream    *prometheus.CounterVec
 }
 
 func newTrustMetrics() trustMetrics {
@@ -22,6 +23,10 @@ func newTrustMetrics() trustMetrics {
 			Namespace: metricNamespace, Name: "alerts_refused_total",
 			Help: "Alert events the durable publisher refused (spool full, disk full, oversized); analysis goes on.",
 		}, []string{"stream"}),
+		foreignStream: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Namespace: metricNamespace, Name: "foreign_stream_samples_total",
+			Help: "Samples refused because they carried another stream's id on a source configured for one stream.",
+		}, []string{"stream"}),
 		alertsHigh: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Namespace: metricNamespace, Name: "alerts_high_priority_total",
 			Help: "High-priority alert events made durable (spooled), per stream.",
@@ -30,7 +35,7 @@ func newTrustMetrics() trustMetrics {
 }
 
 func (t trustMetrics) collectors() []prometheus.Collector {
-	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused, t.alertsHigh}
+	return []prometheus.Collector{t.checkpointErrors, t.alertsRefused, t.alertsHigh, t.foreignStream}
 }
 
 // publisherCollector is implemented by the alert publisher.

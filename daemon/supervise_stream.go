@@ -76,6 +76,9 @@ type streamSpec struct {
 	// Continuity, when set, resumes the pipeline from its checkpoint at
 	// start and writes the checkpoint while running and at stop.
 	Continuity *continuity
+	// SourceStream is the default stream id the source's URL names
+	// (?stream=), also accepted as this stream's own.
+	SourceStream string
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -121,7 +124,8 @@ type stream struct {
 	ackMu sync.RWMutex
 	acks  *ackLine
 
-	dropEpisode bool // touched by the source goroutine only
+	dropEpisode bool            // touched by the source goroutine only
+	foreignSeen map[string]bool // other stream ids seen; source goroutine only
 	imp         impairment
 	// activeIDs are the alarms raised and not cleared; touched by the
 	// analysis goroutine only.
@@ -298,6 +302,9 @@ func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}
 	} else if ev.Status == ingest.StatusDisconnected {
 		s.connected.Store(false)
 		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(0)
+	}
+	if !s.acceptsStream(&ev) {
+		return
 	}
 	if len(ev.Samples) > 0 {
 		// A source that delivers samples is reading, whether or not it

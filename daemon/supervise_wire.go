@@ -150,10 +150,11 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 		cont = newContinuity(cfg.DataDir, sc.ID)
 	}
 	return streamSpec{
-		ID:         sc.ID,
-		Continuity: cont,
-		Finite:     finite,
-		Overload:   opts.Overload.For(u.Scheme),
+		ID:           sc.ID,
+		Continuity:   cont,
+		SourceStream: u.Stream,
+		Finite:       finite,
+		Overload:     opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {
