@@ -250,10 +250,12 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 	if math.Abs(e.TS) < 1e12 {
 		e.TS = math.Round(e.TS*1000) / 1000 // milliseconds; beyond, v·1000 could overflow
 	}
-	// t_s never goes back within a condition: a finding judged on a clock
+	// t_s never goes back within an alarm id: a finding judged on a clock
 	// that restarted or was extrapolated ahead (signal lost, then the
-	// device's own time stamps resume earlier) is placed at the last one.
-	if a.lastOut.ID != "" && e.TS < a.lastOut.TS {
+	// device's own time stamps resume earlier) is placed at the id's last
+	// event. A new raise keeps its finding's time (a replay after a
+	// hand-over must make the same events as the first analysis).
+	if a.lastOut.ID == a.id && e.TS < a.lastOut.TS {
 		e.TS = a.lastOut.TS
 	}
 	if f.BreathSeq >= 0 {

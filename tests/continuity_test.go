@@ -78,6 +78,12 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			if !tc.kill {
 				checkBadAcks(t, ns.URL(), httpPort)
 			}
+			// The alarms the first daemon raised: each must reach a
+			// terminal state after the restart.
+			before := map[string]bool{}
+			for _, e := range storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS") {
+				before[e.ID] = true
+			}
 			if tc.kill {
 				first.kill()
 			} else if err := first.stop(20 * time.Second); err != nil {
@@ -96,7 +102,7 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 				t.Error(err)
 			}
 			stored := storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS")
-			checkTerminal(t, stored)
+			checkTerminal(t, stored, before)
 			t.Logf("%d alert events:\n%s", len(stored), describe(stored))
 			seqs := storedBreathSeqs(t, ns.URL())
 			seen := map[int]bool{}
@@ -111,10 +117,13 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 	}
 }
 
-// checkTerminal checks that every alarm id in stored ends in a terminal
-// state or is superseded, that the rising-peak alarm was raised, and that
-// a restart was marked by a monitoring-gap event.
-func checkTerminal(t *testing.T, stored []alerts.Event) {
+// checkTerminal checks that every alarm id of ids (those raised before the
+// restart) ends in stored in a terminal state or is superseded, that the
+// rising-peak alarm was raised, and that the restart was marked by a
+// monitoring-gap event. An alarm raised after the restart may still be
+// open when the scenario ends (the patient's state at its end); it is only
+// reported.
+func checkTerminal(t *testing.T, stored []alerts.Event, ids map[string]bool) {
 	t.Helper()
 	open := map[string]bool{}
 	rising, gap := false, false
@@ -135,8 +144,12 @@ func checkTerminal(t *testing.T, stored []alerts.Event) {
 			open[e.ID] = true
 		}
 	}
-	if len(open) != 0 {
-		t.Errorf("alarms without a terminal state in JetStream: %v", open)
+	for id := range open {
+		if ids[id] {
+			t.Errorf("alarm %s raised before the restart has no terminal state in JetStream", id)
+		} else {
+			t.Logf("alarm %s raised after the restart still open at the end of the scenario", id)
+		}
 	}
 	if !rising {
 		t.Error("the rising-peak-pressure alarm of the scenario was not raised")
