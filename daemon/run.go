@@ -202,6 +202,7 @@ func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
 	}
 	d.del = del
 	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
+	d.m.addPublisher(del.pub)
 	d.ready.set("nats", func() error {
 		if !b.Conn.IsConnected() {
 			return fmt.Errorf("not connected (%s)", b.Conn.Status())

@@ -185,6 +185,9 @@ streams:
 				waitFor(t, 10*time.Second, "the acknowledged event", func() bool {
 					return find(got.snapshot(), "air-trapping", alerts.Acknowledged) >= 0
 				})
+				// Nobody but the daemon may publish: a forged "cleared" of the
+				// real id never reaches JetStream (checkOnce below).
+				checkForgeryRefused(t, fmt.Sprintf("nats://127.0.0.1:%d", natsPort), "bed-1", id)
 			}
 			if err := <-simDone; err != nil {
 				t.Fatalf("simulator: %v", err)

@@ -61,6 +61,10 @@ func (s *AckService) handle(m *nats.Msg) {
 		}
 		return
 	}
+	if len(m.Data) > alerts.MaxAckRequestBytes {
+		s.reply(m, tok, fmt.Errorf("%w: %d bytes (at most %d)", alerts.ErrBadAck, len(m.Data), alerts.MaxAckRequestBytes))
+		return
+	}
 	var req AckRequest
 	if err := json.Unmarshal(m.Data, &req); err != nil {
 		s.reply(m, tok, fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
@@ -76,6 +80,11 @@ func (s *AckService) handle(m *nats.Msg) {
 func (s *AckService) check(ctx context.Context, tok string, req AckRequest) error {
 	if req.ID == "" {
 		return errors.New("bad ack request: empty id")
+	}
+	// Size caps, id format, no control characters; the stream itself
+	// checks that the id is its own.
+	if err := alerts.CheckAck("", req.ID, req.By); err != nil {
+		return err
 	}
 	return s.Ack(ctx, tok, req)
 }
