@@ -29,6 +29,7 @@ type conn struct {
 	pace      *pacer
 	silent    bool
 	lastData  time.Time
+	out       []Event // events of the last read, for Options.Direct
 }
 
 func (s *source) newConn(ctx context.Context, defStream string) *conn {
@@ -54,30 +55,33 @@ func (c *conn) write(p []byte) {
 	}
 	c.tap(TapData, p)
 	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
 	_, _ = c.dec.Write(p)
 	c.flushAll()
 	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
 }
 
 // end decodes what is left at the end of the input.
 func (c *conn) end() {
 	c.tap(TapEnd, nil)
 	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
 	c.dec.Flush()
 	c.flushAll()
 	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
 }
 
 // reset drops a partial line or frame when the link went down.
 func (c *conn) reset() {
 	c.tap(TapReset, nil)
 	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
 	c.dec.Reset()
 	c.flushAll()
 	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
 }
 
 // count moves the decoder's counters into the source's.
@@ -198,14 +202,31 @@ func (c *conn) flushAll() {
 }
 
 func (c *conn) push(e Event, buf *[]Sample) {
+	if c.s.opts.Direct != nil {
+		e.buf = buf
+		c.s.c.samples.Add(uint64(len(e.Samples)))
+		c.out = append(c.out, e)
+		return
+	}
 	_ = c.s.q.push(c.ctx, queued{ev: e, buf: buf})
+}
+
+// deliver hands the events of the last read to the direct sink, on the
+// reading goroutine and outside the source's lock. The sink owns their
+// samples from here on (Event.Release).
+func (c *conn) deliver() {
+	if len(c.out) == 0 {
+		return
+	}
+	c.s.opts.Direct(c.out)
+	clear(c.out)
+	c.out = c.out[:0]
 }
 
 // status reports a change of the link for every stream read through it
 // (the default stream before any was read).
 func (c *conn) status(st Status, err error) {
 	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
 	c.flushAll()
 	streams := c.seen
 	if len(streams) == 0 {
@@ -214,6 +235,8 @@ func (c *conn) status(st Status, err error) {
 	for _, id := range streams {
 		c.push(Event{Stream: id, Status: st, Err: err}, nil)
 	}
+	c.s.mu.Unlock()
+	c.deliver()
 }
 
 // checkSilence reports StatusDisconnected with ErrNoData once the link has

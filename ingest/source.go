@@ -53,6 +53,12 @@ type Options struct {
 	// Silence is how long a live source may read nothing before it reports
 	// StatusDisconnected with ErrNoData; 0 means 3 s, negative disables it.
 	Silence time.Duration
+	// Direct, when not nil, replaces the sink of Run: the events of each
+	// read go to it on the reading goroutine, with no buffer and no
+	// hand-off in between (Buffer and Overload are then unused; the
+	// sink decides). A tcp-listen source calls it from each client's
+	// goroutine, so it must be safe for concurrent use.
+	Direct BatchSink
 	// Tap, when not nil, receives every byte read before it is decoded,
 	// and every reset and end of input (for recording).
 	Tap Tap
@@ -212,7 +218,8 @@ func (s *source) warn(key string, f func(*zerolog.Event)) {
 }
 
 // Run reads until ctx is cancelled or a finite input (file, stdin) ends,
-// delivering events to sink from the calling goroutine. It returns nil on
+// delivering events to sink from the calling goroutine (or to
+// Options.Direct from the reading goroutines, sink then unused). It returns nil on
 // cancellation and at the end of a finite input, and an error when the
 // source cannot work at all (a missing file, a port already in use).
 func (s *source) Run(ctx context.Context, sink Sink) error {
@@ -220,6 +227,12 @@ func (s *source) Run(ctx context.Context, sink Sink) error {
 		return errors.New("source is already running")
 	}
 	defer s.running.Store(false)
+	if s.opts.Direct != nil {
+		if err := s.read(ctx); err != nil && ctx.Err() == nil {
+			return err
+		}
+		return nil
+	}
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
 	s.q = newQueue(s.opts.Buffer, s.opts.Overload, func(n int, start bool) {
