@@ -118,7 +118,8 @@ type stream struct {
 	ackMu sync.RWMutex
 	acks  *ackLine
 
-	dropEpisode bool // touched by the source goroutine only
+	dropEpisode   bool // touched by the source goroutine only
+	refusedWarned bool // touched by the source goroutine only
 	// activeIDs are the alarms raised and not cleared; touched by the
 	// analysis goroutine only.
 	activeIDs map[string]struct{}
@@ -185,7 +186,7 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 	s.ackMu.RLock()
 	line := s.acks
 	s.ackMu.RUnlock()
-	notRunning := fmt.Errorf("stream %s is not running", s.spec.ID)
+	notRunning := errNotRunning(s.spec.ID)
 	if line == nil {
 		return notRunning
 	}
@@ -285,6 +286,18 @@ func (s *stream) runSource(ctx context.Context) error {
 // the analysis fell behind: the batch is dropped and counted, with one
 // warning per episode. Status events are never dropped.
 func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}, ev ingest.Event) {
+	if ev.Stream != "" && ev.Stream != s.spec.ID {
+		// A single-stream source carries one id; others go to a
+		// multiplexed source (sources:), not into this pipeline.
+		if len(ev.Samples) > 0 {
+			s.m.refused.WithLabelValues(s.spec.ID).Add(float64(len(ev.Samples)))
+			if !s.refusedWarned {
+				s.refusedWarned = true
+				s.log.Warn().Str("other", ev.Stream).Msg("samples of another stream id on a single-stream source are refused; configure the link under sources: to analyse each id")
+			}
+		}
+		return
+	}
 	if ev.Status == ingest.StatusConnected {
 		s.connected.Store(true)
 		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(1)
@@ -411,20 +424,21 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 
 // heartbeat publishes the stream's status message.
 func (s *stream) heartbeat(now time.Time) {
+	publishStatus(s.bull, s.spec.ID, now, s.up.Load(), s.connected.Load(), s.breaths.Load(), s.active.Load(), s.restarts.Load())
+}
+
+// publishStatus publishes the status message of one stream.
+func publishStatus(bull bulletinSink, id string, now time.Time, running, connected bool, breaths uint64, active int64, restarts uint64) {
 	st := bus.StreamStatus{
-		Type:      "status",
-		Schema:    1,
-		Stream:    s.spec.ID,
-		Time:      now.UTC(),
-		Running:   s.up.Load(),
-		Connected: s.connected.Load(),
-		Breaths:   s.breaths.Load(),
-		Active:    s.active.Load(),
-		Restarts:  s.restarts.Load(),
+		Type: "status", Schema: 1, Stream: id, Time: now.UTC(),
+		Running: running, Connected: connected, Breaths: breaths, Active: active, Restarts: restarts,
 	}
 	b, err := st.Marshal()
 	if err != nil {
 		return
 	}
-	s.bull.Status(s.spec.ID, b)
+	bull.Status(id, b)
 }
+
+// errNotRunning answers an acknowledgement for a stream without a pipeline.
+func errNotRunning(id string) error { return fmt.Errorf("stream %s is not running", id) }
