@@ -301,3 +301,12 @@ func (r *muxRuntime) streams() int {
 	defer r.mu.RUnlock()
 	return len(r.byToken)
 }
+
+// pending returns the number of work batches waiting in the shards' queues.
+func (r *muxRuntime) pending() int {
+	n := 0
+	for _, sh := range r.shards {
+		n += len(sh.in)
+	}
+	return n
+}

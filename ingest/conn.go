@@ -21,9 +21,9 @@ type conn struct {
 	ctx       context.Context
 	dec       Decoder
 	defStream string
-	seen      []string             // streams read from this conn, for status events
-	pending   map[string]*[]Sample // samples waiting to be pushed, per stream
-	order     []string             // streams with pending samples
+	seen      []string               // streams read from this conn, for status events
+	streams   map[string]*connStream // per stream read from this conn
+	order     []*connStream          // streams with pending samples, in order
 	prev      DecoderStats
 	lastErr   error
 	pace      *pacer
@@ -33,7 +33,7 @@ type conn struct {
 }
 
 func (s *source) newConn(ctx context.Context, defStream string) *conn {
-	c := &conn{s: s, ctx: ctx, defStream: defStream, pending: map[string]*[]Sample{}, lastData: time.Now()}
+	c := &conn{s: s, ctx: ctx, defStream: defStream, streams: map[string]*connStream{}, lastData: time.Now()}
 	// Options were checked by OpenSpec; defStream is built from a valid id.
 	d, err := NewDecoder(s.opts.Format, s.decoderOptions(defStream), c.emit)
 	if err != nil {
@@ -109,17 +109,40 @@ func (c *conn) count() {
 	c.lastErr = c.dec.Err()
 }
 
+// connStream is what a conn keeps of one stream: its timeline (shared by
+// every conn of the source) and its samples waiting to be pushed. One map
+// lookup per sample finds both.
+type connStream struct {
+	id      string
+	tl      *timeline
+	pending *[]Sample
+}
+
+// stream returns the state of a stream on this conn, making it on its
+// first sample.
+func (c *conn) stream(id string) *connStream {
+	if cs := c.streams[id]; cs != nil {
+		return cs
+	}
+	s := c.s
+	tl := s.tls[id]
+	if tl == nil {
+		tl = newTimeline(s.opts.RateHz)
+		s.tls[id] = tl
+	}
+	if len(c.seen) < maxStreams {
+		c.seen = append(c.seen, id)
+	}
+	cs := &connStream{id: id, tl: tl}
+	c.streams[id] = cs
+	return cs
+}
+
 // emit is the decoder's callback; it runs with s.mu held.
 func (c *conn) emit(stream string, smp Sample) {
 	s := c.s
-	tl := s.tls[stream]
-	if tl == nil {
-		tl = newTimeline(s.opts.RateHz)
-		s.tls[stream] = tl
-	}
-	if !containsStr(c.seen, stream) && len(c.seen) < maxStreams {
-		c.seen = append(c.seen, stream)
-	}
+	cs := c.stream(stream)
+	tl := cs.tl
 	out, v, gapS, drift := tl.admit(smp.TimeS)
 	switch v {
 	case duplicate:
@@ -131,12 +154,12 @@ func (c *conn) emit(stream string, smp Sample) {
 		s.log.Debug().Str("stream", stream).Float64("t_s", smp.TimeS).Msg("out-of-order sample dropped")
 		return
 	case keepAfterGap:
-		c.flush(stream)
+		c.flush(cs)
 		s.c.gaps.Add(1)
 		s.log.Debug().Str("stream", stream).Float64("gap_s", gapS).Msg("gap in sample times")
 		c.push(Event{Stream: stream, Status: StatusGap, GapS: gapS}, nil)
 	case keepAfterReset:
-		c.flush(stream)
+		c.flush(cs)
 		s.c.resets.Add(1)
 		s.warn("reset-"+stream, func(e *zerolog.Event) {
 			e.Str("stream", stream).Msg("device time went back: continuing after a gap of unknown length")
@@ -151,40 +174,27 @@ func (c *conn) emit(stream string, smp Sample) {
 		})
 	}
 	smp.TimeS = out
-	b := c.pending[stream]
+	b := cs.pending
 	if b == nil {
 		b = getBatch()
-		c.pending[stream] = b
-		c.order = append(c.order, stream)
+		cs.pending = b
+		c.order = append(c.order, cs)
 	}
 	*b = append(*b, smp)
 	if len(*b) >= batchSamples || c.pace != nil && out-(*b)[0].TimeS >= 0.02 {
-		c.flush(stream)
+		c.flush(cs)
 	}
 }
 
-func containsStr(l []string, s string) bool {
-	for _, x := range l {
-		if x == s {
-			return true
-		}
-	}
-	return false
-}
-
-// flush pushes the pending samples of one stream.
-func (c *conn) flush(stream string) {
-	b := c.pending[stream]
+// flush pushes the pending samples of one stream. Its place in c.order is
+// left behind and skipped by flushAll.
+func (c *conn) flush(cs *connStream) {
+	b := cs.pending
 	if b == nil {
 		return
 	}
-	delete(c.pending, stream)
-	for i, x := range c.order {
-		if x == stream {
-			c.order = append(c.order[:i], c.order[i+1:]...)
-			break
-		}
-	}
+	cs.pending = nil
+	stream := cs.id
 	if len(*b) == 0 {
 		putBatch(b)
 		return
@@ -196,9 +206,12 @@ func (c *conn) flush(stream string) {
 }
 
 func (c *conn) flushAll() {
-	for len(c.order) > 0 {
-		c.flush(c.order[0])
+	// flush may wait (pacing) but never appends to c.order.
+	for _, cs := range c.order {
+		c.flush(cs)
 	}
+	clear(c.order)
+	c.order = c.order[:0]
 }
 
 func (c *conn) push(e Event, buf *[]Sample) {
