@@ -20,6 +20,13 @@ import (
 // the pipelines and the bulletin on an embedded NATS server. One op is one
 // sample; the sender's encoding is in the figure too.
 func BenchmarkMuxWard(b *testing.B) {
+	// A live sender writes every 10 ms: one sample per stream per write.
+	b.Run("write=tick", func(b *testing.B) { benchmarkMuxWard(b, 1) })
+	// A recording read in large chunks: many samples per stream per read.
+	b.Run("write=32KiB", func(b *testing.B) { benchmarkMuxWard(b, 32<<10) })
+}
+
+func benchmarkMuxWard(b *testing.B, chunk int) {
 	const streams = 100
 	cfg := config.Default()
 	cfg.DataDir = b.TempDir()
@@ -68,7 +75,7 @@ func BenchmarkMuxWard(b *testing.B) {
 			buf = strconv.AppendFloat(buf, s.FlowLPS*60, 'f', 2, 64)
 			buf = append(buf, '\n')
 		}
-		if len(buf) > 32<<10 || n == ticks-1 {
+		if len(buf) >= chunk || n == ticks-1 {
 			if _, err := conn.Write(buf); err != nil {
 				b.Fatal(err)
 			}
