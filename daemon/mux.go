@@ -31,12 +31,12 @@ import (
 // stream that goes quiet costs no goroutine and no wake-up of its own.
 //
 // Memory per stream is bounded: its pipeline (the analyzer's breath buffer
-// and the detectors' windows, a few KiB to tens of KiB, see
-// docs/operations.md) plus the samples in flight, which are bounded per
-// shard by shardQueue reads of at most 32 KiB of input each.
+// and the detectors' windows, about 100 KiB, see docs/sources.md) plus the samples in flight, which are bounded per
+// shard by shardQueue reads (2048, about 0.4 s of 100 connections) of at most
+// 32 KiB of input each.
 
 // shardQueue is the number of reads (work batches) a shard's queue holds.
-const shardQueue = 256
+const shardQueue = 2048
 
 // maxShards caps the pool; beyond it a goroutine per core buys nothing.
 const maxShards = 64

@@ -175,7 +175,11 @@ func (c *conn) emit(stream string, smp Sample) {
 	}
 	smp.TimeS = out
 	b := cs.pending
-	if b == nil {
+	if b == nil && s.opts.Direct != nil {
+		b = getSmallBatch()
+		cs.pending = b
+		c.order = append(c.order, cs)
+	} else if b == nil {
 		b = getBatch()
 		cs.pending = b
 		c.order = append(c.order, cs)

@@ -70,7 +70,7 @@ nats:
     port: %d
 sources:
   - name: ward
-    source: tcp-listen://127.0.0.1:%d
+    source: tcp-listen://127.0.0.1:%d?max-clients=1024
     pattern: "c*"
     max_streams: %d
 `, dir, httpPort, natsPort, srcPort, nStreams+perConn)
