@@ -21,6 +21,7 @@ import (
 	"trapline/config"
 	"trapline/daemon"
 	"trapline/ingest"
+	ingestoffline "trapline/ingest/offline"
 )
 
 // analyzeFlags are the options of `trapline analyze`.
@@ -104,15 +105,15 @@ func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	return o
 }
 
-// sample feeds one decoded sample to its stream's pipeline.
-func (o *offline) sample(stream string, s ingest.Sample) {
-	o.samples++
-	pl := o.pipelines[stream]
-	if pl == nil {
-		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-		o.pipelines[stream] = pl
+// handler returns the handler of a stream's samples: its pipeline, made
+// when the stream first appears.
+func (o *offline) handler(stream string) ingestoffline.Handler {
+	pl := pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+	o.pipelines[stream] = pl
+	return func(ss []ingest.Sample) {
+		o.samples += uint64(len(ss))
+		pl.Push(ss, o)
 	}
-	pl.PushOne(s, o)
 }
 
 // Alert writes one alert event as a line of NDJSON.
@@ -149,24 +150,13 @@ func (o *offline) Breath(b *analyze.Breath) {
 	_, o.writeErr = o.out.Write(o.line)
 }
 
-// ctxReader stops a read loop when its context is cancelled.
-type ctxReader struct {
-	ctx context.Context
-	r   io.Reader
-}
-
-// Read returns the context's error once it is cancelled, else reads.
-func (c ctxReader) Read(p []byte) (int, error) {
-	if err := c.ctx.Err(); err != nil {
-		return 0, err
-	}
-	return c.r.Read(p)
-}
-
-// readAll decodes the recording at path ("-" for stdin) into o.
+// readAll decodes the recording at path ("-" for stdin) into o: the
+// decoding on this goroutine, the analysis on one worker (ingest/offline),
+// so that the two overlap on two cores. The worker takes the samples in
+// input order, so the output is byte for byte that of one goroutine.
 func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offline) (ingest.DecoderStats, error) {
-	dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: f.columns, RateHz: f.sampleRate, Stream: f.stream}, o.sample)
-	if err != nil {
+	dopts := ingest.DecoderOptions{Columns: f.columns, RateHz: f.sampleRate, Stream: f.stream}
+	if _, err := ingest.NewTextDecoder(dopts, nil); err != nil {
 		return ingest.DecoderStats{}, &daemon.UsageError{Err: err}
 	}
 	var r io.Reader = a.stdin
@@ -179,11 +169,9 @@ func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offli
 		defer file.Close()
 		r, name = file, path
 	}
-	if err := ingest.Decode(ctxReader{ctx, r}, dec); err != nil {
-		return dec.Stats(), fmt.Errorf("read %s: %w", name, err)
-	}
-	st := dec.Stats()
-	if err := dec.Err(); err != nil {
+	st, err := ingestoffline.Run(ctx, r, ingestoffline.Options{Format: ingest.FormatText, Decoder: dopts,
+		Workers: 1, InOrder: true}, o.handler)
+	if err != nil {
 		return st, fmt.Errorf("read %s: %w", name, err)
 	}
 	if st.Samples == 0 {
