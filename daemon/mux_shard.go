@@ -93,17 +93,29 @@ type shard struct {
 	streams []*muxStream // in order of first event
 	cur     *muxStream   // the stream whose pipeline is running (pipeline.Sink)
 	arrived time.Time
-	pubCtx  context.Context
-	pubErr  error
+	// alerts go to the shard's publisher goroutine, so that making one
+	// durable (a write and fsync of the spool) does not hold up the
+	// analysis of the shard's other streams; a full queue waits (alerts
+	// are never dropped).
+	alerts chan alertJob
 }
+
+// alertJob is one alert event on its way to the durable publisher.
+type alertJob struct {
+	stream string
+	ev     alerts.Event
+}
+
+// alertQueue is the number of alert events a shard holds for its publisher.
+const alertQueue = 4096
 
 var _ pipeline.Sink = (*shard)(nil)
 
 func newShard(r *muxRuntime, i int) *shard {
 	return &shard{
 		r: r, idx: i, in: make(chan *work, shardQueue), acks: make(chan muxAck),
-		done: make(chan struct{}),
-		log:  r.d.log.With().Int("shard", i).Logger(),
+		done: make(chan struct{}), alerts: make(chan alertJob, alertQueue),
+		log: r.d.log.With().Int("shard", i).Logger(),
 	}
 }
 
@@ -112,7 +124,12 @@ func newShard(r *muxRuntime, i int) *shard {
 // what the drain finds still reaches the spool.
 func (sh *shard) run(stop, ctx context.Context) error {
 	defer close(sh.done)
-	sh.pubCtx = context.WithoutCancel(ctx)
+	published := make(chan struct{})
+	go sh.publish(context.WithoutCancel(ctx), published)
+	defer func() {
+		close(sh.alerts)
+		<-published
+	}()
 	every := sh.r.d.opts.TickEvery
 	if every <= 0 {
 		every = time.Second
@@ -238,15 +255,24 @@ func (sh *shard) Breath(b *analyze.Breath) {
 	}
 }
 
-// Alert makes an alert event of the current stream durable. A spool that
-// refuses it is logged; the shard goes on with its other streams.
+// publish makes the shard's alert events durable in order, until the
+// queue is closed and drained. A spool that refuses one is logged.
+func (sh *shard) publish(ctx context.Context, done chan<- struct{}) {
+	defer close(done)
+	for j := range sh.alerts {
+		if err := sh.r.d.del.Publish(ctx, j.ev); err != nil {
+			sh.log.Error().Err(err).Str("stream", j.stream).Str("alert", j.ev.DedupID()).Msg("alert not made durable")
+			continue
+		}
+		sh.r.d.m.alerts.WithLabelValues(j.stream, j.ev.Condition, string(j.ev.State)).Inc()
+	}
+}
+
+// Alert queues an alert event of the current stream for the publisher and
+// keeps the stream's set of raised alarms.
 func (sh *shard) Alert(ev *alerts.Event) {
 	st := sh.cur
-	if err := sh.r.d.del.Publish(sh.pubCtx, *ev); err != nil {
-		sh.log.Error().Err(err).Str("stream", st.id).Str("alert", ev.DedupID()).Msg("alert not made durable")
-		return
-	}
-	sh.r.d.m.alerts.WithLabelValues(st.id, ev.Condition, string(ev.State)).Inc()
+	sh.alerts <- alertJob{stream: st.id, ev: *ev}
 	if ev.Supersedes != "" {
 		delete(st.activeIDs, ev.Supersedes)
 	}
