@@ -85,6 +85,7 @@ type muxSource struct {
 	refused     prometheus.Counter
 	dropped     prometheus.Counter
 	dropEpisode atomic.Bool
+	lastWarn    atomic.Int64 // unix ns of the last warning about drops
 	finished    atomic.Bool
 }
 
@@ -199,7 +200,7 @@ func (ms *muxSource) send(sh *shard, w *work) {
 	select {
 	case sh.in <- w:
 		if ms.dropEpisode.Load() && ms.dropEpisode.CompareAndSwap(true, false) {
-			ms.log.Info().Msg("analysis caught up; no longer dropping samples")
+			ms.log.Debug().Msg("analysis caught up; no longer dropping samples")
 		}
 	default:
 		n := 0
@@ -207,7 +208,11 @@ func (ms *muxSource) send(sh *shard, w *work) {
 			n += len(w.items[i].ev.Samples)
 		}
 		ms.dropped.Add(float64(n))
-		if ms.dropEpisode.CompareAndSwap(false, true) {
+		// One warning per episode, and episodes that come and go within
+		// ten seconds count as one.
+		now := time.Now().UnixNano()
+		if ms.dropEpisode.CompareAndSwap(false, true) && now-ms.lastWarn.Load() >= int64(10*time.Second) {
+			ms.lastWarn.Store(now)
 			ms.log.Warn().Int("queue", cap(sh.in)).Msg("analysis is behind its source; dropping samples")
 		}
 		w.release()
