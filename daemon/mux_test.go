@@ -3,8 +3,10 @@ package daemon
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"net"
 	"slices"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -16,6 +18,7 @@ import (
 	"trapline/alerts"
 	"trapline/analyze"
 	"trapline/config"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 	"trapline/ingest/offline"
 	"trapline/simulator"
@@ -196,6 +199,21 @@ func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 		}
 		if n := m.GetCounter().GetValue(); n < 9000 {
 			t.Errorf("%s: %v samples of cot-1 refused, want its 90 s at 100 Hz", format, n)
+		}
+	}
+	// An acknowledgement reaches the shard that owns the stream: the
+	// pipeline answers that it has no such alarm (no alarm was raised).
+	for _, tc := range []struct{ stream, want string }{
+		{"bed-a", "bed-a/air-trapping/1"},
+		{"cot-1", `no stream "cot-1"`},
+	} {
+		msg, err := nc.Request(subj.Ack(tc.stream), []byte(`{"id":"`+tc.stream+`/air-trapping/1","by":"x"}`), 5*time.Second)
+		if err != nil {
+			t.Fatalf("ack %s: %v", tc.stream, err)
+		}
+		var r bus.AckReply
+		if err := json.Unmarshal(msg.Data, &r); err != nil || r.OK || !strings.Contains(r.Error, tc.want) {
+			t.Errorf("ack %s: reply %s, want an error containing %q", tc.stream, msg.Data, tc.want)
 		}
 	}
 }
