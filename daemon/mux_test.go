@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"net"
+	"os"
 	"slices"
 	"strings"
 	"sync"
@@ -214,6 +215,60 @@ func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 		var r bus.AckReply
 		if err := json.Unmarshal(msg.Data, &r); err != nil || r.OK || !strings.Contains(r.Error, tc.want) {
 			t.Errorf("ack %s: reply %s, want an error containing %q", tc.stream, msg.Data, tc.want)
+		}
+	}
+}
+
+// TestMuxFileSource: a recording of two patients as a multiplexed file
+// source is read to its end without a loss (a file waits for the shards),
+// each stream's breaths equal its patient's alone, and the streams finish.
+func TestMuxFileSource(t *testing.T) {
+	scs := twoPatients(t)
+	var ward memOutput
+	if _, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1])}, &ward,
+		simulator.WardOptions{Format: ingest.FormatText}); err != nil {
+		t.Fatal(err)
+	}
+	path := t.TempDir() + "/ward.csv"
+	if err := os.WriteFile(path, ward.Bytes(), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	cfg := config.Default()
+	cfg.DataDir = t.TempDir()
+	cfg.HTTP.Listen = ""
+	cfg.NATS.Embedded.Port = 0
+	cfg.Sources = []config.Source{{Name: "rec", URL: "file://" + path, Allow: []string{"bed-a", "bed-b"}}}
+	readyc := make(chan Info, 1)
+	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(t.Context())
+	done := make(chan error, 1)
+	go func() { done <- d.Run(ctx) }()
+	defer func() {
+		cancel()
+		select {
+		case <-done:
+		case <-time.After(20 * time.Second):
+			t.Error("Run did not return within 20 s of cancellation")
+		}
+	}()
+	select {
+	case <-readyc:
+	case err := <-done:
+		t.Fatalf("Run returned before it was ready: %v", err)
+	case <-time.After(30 * time.Second):
+		t.Fatal("daemon not ready within 30 s")
+	}
+	ms := d.mux.sources[0]
+	waitFor(t, 20*time.Second, "the file to be read to its end", func() bool { return ms.finished.Load() })
+	for _, sc := range scs {
+		st := ms.stream(sc.Stream)
+		want := len(aloneBreaths(t, sc, ingest.FormatText))
+		waitFor(t, 10*time.Second, "the breaths of "+sc.Stream, func() bool { return st.breaths.Load() >= uint64(want) })
+		if got := st.breaths.Load(); got != uint64(want) || want < 20 {
+			t.Errorf("%s: %d breaths, alone %d", sc.Stream, got, want)
 		}
 	}
 }
