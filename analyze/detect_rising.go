@@ -5,6 +5,7 @@ import (
 	"math"
 	"slices"
 	"strings"
+	"sync"
 )
 
 // RisingPeak detects a sustained rise of peak inspiratory pressure: the
@@ -22,7 +23,6 @@ type RisingPeak struct {
 	next, n int
 	present bool
 	xs, ys  []float64
-	buf     []float64
 }
 
 type rpBreath struct {
@@ -45,7 +45,6 @@ func NewRisingPeak(cfg RisingPeakConfig) *RisingPeak {
 		ring: make([]rpBreath, cfg.WindowBreaths),
 		xs:   make([]float64, 0, cfg.WindowBreaths),
 		ys:   make([]float64, 0, cfg.WindowBreaths),
-		buf:  make([]float64, 0, cfg.WindowBreaths*(cfg.WindowBreaths-1)/2),
 	}
 }
 
@@ -244,10 +243,18 @@ func (d *RisingPeak) slope(first int, get func(*rpBreath) float64) float64 {
 	if len(d.xs) < 3 {
 		return math.NaN()
 	}
+	// The pairwise slopes are scratch space used only here: shared through
+	// a pool rather than kept per stream, which would cost every stream
+	// window×(window−1)/2 floats (36 KiB at 96 breaths) for nothing.
+	buf := theilSenScratch.Get().(*[]float64)
 	var s float64
-	s, d.buf = detTheilSen(d.xs, d.ys, d.buf)
+	s, *buf = detTheilSen(d.xs, d.ys, *buf)
+	theilSenScratch.Put(buf)
 	return s
 }
+
+// theilSenScratch holds the pairwise-slope buffers of detTheilSen.
+var theilSenScratch = sync.Pool{New: func() any { return new([]float64) }}
 
 func (d *RisingPeak) median(first int, get func(*rpBreath) float64) float64 {
 	d.ys = d.ys[:0]

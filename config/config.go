@@ -33,6 +33,9 @@ type Config struct {
 	Recording Recording `mapstructure:"recording"`
 	// Streams are the signals to read, one per patient or bench channel.
 	Streams []Stream `mapstructure:"streams"`
+	// Sources are multiplexed links, each carrying the many streams its
+	// pattern or allow list admits (see Source).
+	Sources []Source `mapstructure:"sources"`
 	// Analysis holds the thresholds of breath segmentation and of the
 	// per-breath fits (owned by package analyze).
 	Analysis analyze.Config `mapstructure:"analysis"`

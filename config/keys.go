@@ -88,7 +88,15 @@ func fieldsOf(t reflect.Type) []field {
 		if name == "" {
 			name = f.Name
 		}
-		out = append(out, field{name: name, index: []int{i}, typ: f.Type})
+		typ := f.Type
+		if sec := f.Tag.Get("overrides"); sec != "" {
+			// An override section is checked against the section it
+			// overrides.
+			if g, ok := reflect.TypeFor[Config]().FieldByName(sec); ok {
+				typ = g.Type
+			}
+		}
+		out = append(out, field{name: name, index: []int{i}, typ: typ})
 	}
 	return out
 }

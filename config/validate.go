@@ -42,6 +42,7 @@ func (c *Config) validate(p *problems) {
 		p.addf("spool.max_events", "%d is out of range (want 1 to 10000000)", c.Spool.MaxEvents)
 	}
 	c.validateStreams(p)
+	c.validateSources(p)
 	c.validateRecording(p)
 	p.add(c.Analysis.Validate("analysis")...)
 	p.add(c.Detectors.Validate("detectors")...)

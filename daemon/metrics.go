@@ -30,6 +30,8 @@ type metrics struct {
 	breathLatency prometheus.Histogram
 	acks          *prometheus.CounterVec
 	trustMetrics
+	refused    *prometheus.CounterVec
+	muxStreams *prometheus.GaugeVec
 
 	mu      sync.Mutex
 	sources map[string]func() ingest.Stats
@@ -86,12 +88,20 @@ func newMetrics() *metrics {
 			Namespace: metricNamespace, Name: "ack_requests_total",
 			Help: "Acknowledgement requests received over NATS, per stream and result (ok, error).",
 		}, []string{"stream", "result"}),
+		refused: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Namespace: metricNamespace, Name: "refused_samples_total",
+			Help: "Samples of stream ids a source does not admit (no template matches, the source's maximum is reached, or another id on a single-stream source), per source.",
+		}, []string{"source"}),
+		muxStreams: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Namespace: metricNamespace, Name: "source_streams",
+			Help: "Streams a multiplexed source has admitted, per source.",
+		}, []string{"source"}),
 	}
 	m.reg.MustRegister(
 		collectors.NewGoCollector(),
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 		m.breaths, m.alerts, m.queueDropped, m.restarts, m.streamUp, m.sourceUp,
-		m.alertsActive, m.breathLatency, m.acks,
+		m.alertsActive, m.breathLatency, m.acks, m.refused, m.muxStreams,
 		&scrapeCollector{m: m},
 	)
 	m.reg.MustRegister(m.trustMetrics.collectors()...)

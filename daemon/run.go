@@ -51,6 +51,7 @@ type Daemon struct {
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
 	hub     *web.Hub           // the live view; nil without HTTP
+	mux     *muxRuntime        // the streams of multiplexed sources
 }
 
 // newDaemon checks what can be checked before anything starts.
@@ -113,6 +114,9 @@ func (d *Daemon) Run(ctx context.Context) error {
 	if err := d.addStreams(del); err != nil {
 		return err
 	}
+	if err := d.addSources(); err != nil {
+		return err
+	}
 
 	ackSub, err := acks.Subscribe(b.Conn, d.subj)
 	if err != nil {
@@ -134,6 +138,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		for _, s := range d.streams {
 			sg.Go(func() error { return s.Run(gctx) })
 		}
+		sg.Go(func() error { return d.mux.run(gctx) })
 		err := sg.Wait()
 		_ = ackSub.Unsubscribe()
 		return err
@@ -161,12 +166,17 @@ func (d *Daemon) finish(err error) error {
 // ackService serves the acknowledgements of the streams of this process.
 func (d *Daemon) ackService() *bus.AckService {
 	return &bus.AckService{
-		Here: func(tok string) bool { return d.byToken[tok] != nil },
+		Here: func(tok string) bool { return d.byToken[tok] != nil || d.mux.has(tok) },
 		Ack: func(ctx context.Context, tok string, req bus.AckRequest) error {
-			s := d.byToken[tok]
-			err := s.ack(ctx, req.ID, req.By)
+			var id string
+			var err error
+			if s := d.byToken[tok]; s != nil {
+				id, err = s.spec.ID, s.ack(ctx, req.ID, req.By)
+			} else {
+				id, err = d.mux.ack(ctx, tok, req.ID, req.By)
+			}
 			if err == nil {
-				d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+				d.log.Info().Str("stream", id).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
 			}
 			return err
 		},
@@ -229,6 +239,20 @@ func (d *Daemon) addStreams(del *delivery) error {
 	return nil
 }
 
+// addSources opens the multiplexed sources; their streams are admitted as
+// their first samples arrive.
+func (d *Daemon) addSources() error {
+	d.mux = newMuxRuntime(d)
+	for i, sc := range d.cfg.Sources {
+		ms, err := d.mux.addSource(i)
+		if err != nil {
+			return err
+		}
+		d.ready.set("source "+sc.Name, ms.ready)
+	}
+	return nil
+}
+
 // wait waits for g, or after ctx is cancelled for the shutdown, bounded by
 // shutdown_timeout plus a margin.
 func (d *Daemon) wait(ctx context.Context, g *errgroup.Group) error {
@@ -259,7 +283,7 @@ func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
-	ev := d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr)
+	ev := d.log.Info().Int("streams", len(d.streams)).Int("sources", len(d.cfg.Sources)).Str("nats", b.URL).Str("http", info.HTTPAddr)
 	if d.hub != nil {
 		ev = ev.Str("live_view", "http://"+info.HTTPAddr+web.Path)
 	}

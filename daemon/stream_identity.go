@@ -18,7 +18,7 @@ func (s *stream) acceptsStream(ev *ingest.Event) bool {
 	if !s.foreignSeen[ev.Stream] && len(s.foreignSeen) < 64 {
 		s.foreignSeen[ev.Stream] = true
 		s.log.Warn().Str("other_stream", ev.Stream).
-			Msg("samples of another stream on this stream's source: refused and counted (trapline_foreign_stream_samples_total)")
+			Msg("samples of another stream on this stream's source: refused and counted (trapline_foreign_stream_samples_total); configure the link under sources: to analyse each id")
 	}
 	return false
 }

@@ -198,7 +198,7 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 	if err := alerts.CheckAck(s.spec.ID, id, by); err != nil {
 		return err // refused here too: the browser view acknowledges through this path
 	}
-	notRunning := fmt.Errorf("stream %s is not running", s.spec.ID)
+	notRunning := errNotRunning(s.spec.ID)
 	if line == nil {
 		return notRunning
 	}
@@ -447,20 +447,21 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 
 // heartbeat publishes the stream's status message.
 func (s *stream) heartbeat(now time.Time) {
+	publishStatus(s.bull, s.spec.ID, now, s.up.Load(), s.connected.Load(), s.breaths.Load(), s.active.Load(), s.restarts.Load())
+}
+
+// publishStatus publishes the status message of one stream.
+func publishStatus(bull bulletinSink, id string, now time.Time, running, connected bool, breaths uint64, active int64, restarts uint64) {
 	st := bus.StreamStatus{
-		Type:      "status",
-		Schema:    1,
-		Stream:    s.spec.ID,
-		Time:      now.UTC(),
-		Running:   s.up.Load(),
-		Connected: s.connected.Load(),
-		Breaths:   s.breaths.Load(),
-		Active:    s.active.Load(),
-		Restarts:  s.restarts.Load(),
+		Type: "status", Schema: 1, Stream: id, Time: now.UTC(),
+		Running: running, Connected: connected, Breaths: breaths, Active: active, Restarts: restarts,
 	}
 	b, err := st.Marshal()
 	if err != nil {
 		return
 	}
-	s.bull.Status(s.spec.ID, b)
+	bull.Status(id, b)
 }
+
+// errNotRunning answers an acknowledgement for a stream without a pipeline.
+func errNotRunning(id string) error { return fmt.Errorf("stream %s is not running", id) }

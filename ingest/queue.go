@@ -74,11 +74,29 @@ var batchPool = sync.Pool{New: func() any {
 
 func getBatch() *[]Sample { return batchPool.Get().(*[]Sample) }
 
+// smallBatch is the starting capacity of the batches of a direct sink,
+// whose reads of a live link of many streams bring a sample or two per
+// stream: a batch that outgrows it is grown by append and pooled as large.
+const smallBatch = 8
+
+// smallPool recycles the small batches.
+var smallPool = sync.Pool{New: func() any {
+	b := make([]Sample, 0, smallBatch)
+	return &b
+}}
+
+func getSmallBatch() *[]Sample { return smallPool.Get().(*[]Sample) }
+
 func putBatch(b *[]Sample) {
-	if b != nil {
-		*b = (*b)[:0]
-		batchPool.Put(b)
+	if b == nil {
+		return
 	}
+	*b = (*b)[:0]
+	if cap(*b) < batchSamples {
+		smallPool.Put(b)
+		return
+	}
+	batchPool.Put(b)
 }
 
 // queued is an event and the pooled slice that holds its samples.

@@ -65,7 +65,27 @@ type Event struct {
 	GapS float64
 	// Err explains a StatusDisconnected; nil otherwise.
 	Err error
+
+	// buf is the pooled memory of Samples handed to a BatchSink.
+	buf *[]Sample
 }
+
+// Release returns the memory of the event's samples to the source's pool.
+// Only a BatchSink calls it, once per event, when it is done with them;
+// the samples must not be used afterwards.
+func (e *Event) Release() {
+	putBatch(e.buf)
+	e.buf, e.Samples = nil, nil
+}
+
+// BatchSink receives the events of one read (one chunk of a connection, one
+// datagram, one message) on the reading goroutine, stream after stream in
+// input order. Unlike a Sink it owns the samples of each event until it
+// calls Release on it, so it may hand them to another goroutine without a
+// copy; the slice evs itself is reused once the call returns. Blocking in
+// the sink holds the reading of that link back (what a file or stdin
+// wants); a live link's sink should drop and count instead.
+type BatchSink func(evs []Event)
 
 // Sink receives events from a source. It is called from the source's own
 // goroutine and must not block for long: a slow sink stalls the source.

@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"net"
 	"os"
 	"sync"
 	"sync/atomic"
@@ -13,8 +12,6 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
-
-	"trapline/ingest/backoff"
 )
 
 // ErrNoData explains a StatusDisconnected sent when a live source has read
@@ -56,6 +53,12 @@ type Options struct {
 	// Silence is how long a live source may read nothing before it reports
 	// StatusDisconnected with ErrNoData; 0 means 3 s, negative disables it.
 	Silence time.Duration
+	// Direct, when not nil, replaces the sink of Run: the events of each
+	// read go to it on the reading goroutine, with no buffer and no
+	// hand-off in between (Buffer and Overload are then unused; the
+	// sink decides). A tcp-listen source calls it from each client's
+	// goroutine, so it must be safe for concurrent use.
+	Direct BatchSink
 	// Tap, when not nil, receives every byte read before it is decoded,
 	// and every reset and end of input (for recording).
 	Tap Tap
@@ -215,7 +218,8 @@ func (s *source) warn(key string, f func(*zerolog.Event)) {
 }
 
 // Run reads until ctx is cancelled or a finite input (file, stdin) ends,
-// delivering events to sink from the calling goroutine. It returns nil on
+// delivering events to sink from the calling goroutine (or to
+// Options.Direct from the reading goroutines, sink then unused). It returns nil on
 // cancellation and at the end of a finite input, and an error when the
 // source cannot work at all (a missing file, a port already in use).
 func (s *source) Run(ctx context.Context, sink Sink) error {
@@ -223,6 +227,12 @@ func (s *source) Run(ctx context.Context, sink Sink) error {
 		return errors.New("source is already running")
 	}
 	defer s.running.Store(false)
+	if s.opts.Direct != nil {
+		if err := s.read(ctx); err != nil && ctx.Err() == nil {
+			return err
+		}
+		return nil
+	}
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
 	var ep dropEpisode
@@ -280,282 +290,4 @@ func (s *source) read(ctx context.Context) error {
 		return s.readNATS(ctx)
 	}
 	return fmt.Errorf("scheme %q has no reader", s.spec.Scheme)
-}
-
-// conn is one byte stream being decoded: a file, a connection, a serial
-// device across its reopenings, the datagrams of one peer or the messages
-// of one subject.
-type conn struct {
-	s         *source
-	ctx       context.Context
-	dec       Decoder
-	defStream string
-	seen      []string             // streams read from this conn, for status events
-	pending   map[string]*[]Sample // samples waiting to be pushed, per stream
-	order     []string             // streams with pending samples
-	prev      DecoderStats
-	lastErr   error
-	pace      *pacer
-	silent    bool
-	lastData  time.Time
-}
-
-func (s *source) newConn(ctx context.Context, defStream string) *conn {
-	c := &conn{s: s, ctx: ctx, defStream: defStream, pending: map[string]*[]Sample{}, lastData: time.Now()}
-	// Options were checked by OpenSpec; defStream is built from a valid id.
-	d, err := NewDecoder(s.opts.Format, s.decoderOptions(defStream), c.emit)
-	if err != nil {
-		d, _ = NewDecoder(s.opts.Format, s.decoderOptions(DefaultStream), c.emit)
-	}
-	c.dec = d
-	if s.spec.Realtime {
-		c.pace = &pacer{speed: s.spec.Speed}
-	}
-	return c
-}
-
-// write decodes p and pushes the resulting events.
-func (c *conn) write(p []byte) {
-	c.lastData = time.Now()
-	if c.silent {
-		c.silent = false
-		c.status(StatusConnected, nil)
-	}
-	c.tap(TapData, p)
-	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
-	_, _ = c.dec.Write(p)
-	c.flushAll()
-	c.count()
-}
-
-// end decodes what is left at the end of the input.
-func (c *conn) end() {
-	c.tap(TapEnd, nil)
-	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
-	c.dec.Flush()
-	c.flushAll()
-	c.count()
-}
-
-// reset drops a partial line or frame when the link went down.
-func (c *conn) reset() {
-	c.tap(TapReset, nil)
-	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
-	c.dec.Reset()
-	c.flushAll()
-	c.count()
-}
-
-// count moves the decoder's counters into the source's.
-func (c *conn) count() {
-	st := c.dec.Stats()
-	s := c.s
-	if d := st.BadLines - c.prev.BadLines; d > 0 {
-		s.c.badLines.Add(d)
-		s.warn("bad-lines", func(e *zerolog.Event) {
-			e.Uint64("bad_lines", s.c.badLines.Load()).Msg("text lines that do not parse are skipped")
-		})
-	}
-	if d := st.BadFrames - c.prev.BadFrames; d > 0 {
-		s.c.badFrames.Add(d)
-		s.warn("bad-frames", func(e *zerolog.Event) {
-			e.Uint64("bad_frames", s.c.badFrames.Load()).Uint64("skipped_bytes", s.c.skipped.Load()).
-				Msg("corrupt binary input is skipped")
-		})
-	}
-	s.c.skipped.Add(st.SkippedBytes - c.prev.SkippedBytes)
-	c.prev = st
-	if err := c.dec.Err(); err != nil && (c.lastErr == nil || err.Error() != c.lastErr.Error()) {
-		s.log.Warn().Err(err).Msg("input header cannot be used: samples are rejected until a valid header arrives")
-	}
-	c.lastErr = c.dec.Err()
-}
-
-// emit is the decoder's callback; it runs with s.mu held.
-func (c *conn) emit(stream string, smp Sample) {
-	s := c.s
-	tl := s.tls[stream]
-	if tl == nil {
-		tl = newTimeline(s.opts.RateHz)
-		s.tls[stream] = tl
-	}
-	if !containsStr(c.seen, stream) && len(c.seen) < maxStreams {
-		c.seen = append(c.seen, stream)
-	}
-	out, v, gapS, drift := tl.admit(smp.TimeS)
-	switch v {
-	case duplicate:
-		s.c.dups.Add(1)
-		s.log.Debug().Str("stream", stream).Float64("t_s", smp.TimeS).Msg("duplicate sample dropped")
-		return
-	case outOfOrder:
-		s.c.ooo.Add(1)
-		s.log.Debug().Str("stream", stream).Float64("t_s", smp.TimeS).Msg("out-of-order sample dropped")
-		return
-	case keepAfterGap:
-		c.flush(stream)
-		s.c.gaps.Add(1)
-		s.log.Debug().Str("stream", stream).Float64("gap_s", gapS).Msg("gap in sample times")
-		c.push(Event{Stream: stream, Status: StatusGap, GapS: gapS}, nil)
-	case keepAfterReset:
-		c.flush(stream)
-		s.c.resets.Add(1)
-		s.warn("reset-"+stream, func(e *zerolog.Event) {
-			e.Str("stream", stream).Msg("device time went back: continuing after a gap of unknown length")
-		})
-		c.push(Event{Stream: stream, Status: StatusGap, Err: ErrClockReset}, nil)
-	}
-	if drift {
-		s.c.drift.Add(1)
-		s.warn("drift-"+stream, func(e *zerolog.Event) {
-			e.Str("stream", stream).Float64("period_s", tl.periodS).Float64("mean_interval_s", tl.meanS).
-				Msg("sample rate drifts from the declared or first measured rate")
-		})
-	}
-	smp.TimeS = out
-	b := c.pending[stream]
-	if b == nil {
-		b = getBatch()
-		c.pending[stream] = b
-		c.order = append(c.order, stream)
-	}
-	*b = append(*b, smp)
-	if len(*b) >= batchSamples || c.pace != nil && out-(*b)[0].TimeS >= 0.02 {
-		c.flush(stream)
-	}
-}
-
-func containsStr(l []string, s string) bool {
-	for _, x := range l {
-		if x == s {
-			return true
-		}
-	}
-	return false
-}
-
-// flush pushes the pending samples of one stream.
-func (c *conn) flush(stream string) {
-	b := c.pending[stream]
-	if b == nil {
-		return
-	}
-	delete(c.pending, stream)
-	for i, x := range c.order {
-		if x == stream {
-			c.order = append(c.order[:i], c.order[i+1:]...)
-			break
-		}
-	}
-	if len(*b) == 0 {
-		putBatch(b)
-		return
-	}
-	if c.pace != nil {
-		c.pace.wait(c.ctx, (*b)[0].TimeS)
-	}
-	c.push(Event{Stream: stream, Samples: *b}, b)
-}
-
-func (c *conn) flushAll() {
-	for len(c.order) > 0 {
-		c.flush(c.order[0])
-	}
-}
-
-func (c *conn) push(e Event, buf *[]Sample) {
-	_ = c.s.q.push(c.ctx, queued{ev: e, buf: buf})
-}
-
-// status reports a change of the link for every stream read through it
-// (the default stream before any was read).
-func (c *conn) status(st Status, err error) {
-	c.s.mu.Lock()
-	defer c.s.mu.Unlock()
-	c.flushAll()
-	streams := c.seen
-	if len(streams) == 0 {
-		streams = []string{c.defStream}
-	}
-	for _, id := range streams {
-		c.push(Event{Stream: id, Status: st, Err: err}, nil)
-	}
-}
-
-// checkSilence reports StatusDisconnected with ErrNoData once the link has
-// been quiet for Options.Silence.
-func (c *conn) checkSilence() {
-	if c.s.opts.Silence < 0 || c.silent || time.Since(c.lastData) < c.s.opts.Silence {
-		return
-	}
-	c.silent = true
-	c.s.warn("silence", func(e *zerolog.Event) {
-		e.Dur("silence", c.s.opts.Silence).Msg("no data: reporting the signal as lost")
-	})
-	c.status(StatusDisconnected, fmt.Errorf("%w for %v", ErrNoData, c.s.opts.Silence))
-}
-
-// pacer holds a file's samples back to the pace of their time stamps.
-type pacer struct {
-	speed  float64
-	start  time.Time
-	firstS float64
-	set    bool
-}
-
-func (p *pacer) wait(ctx context.Context, tS float64) {
-	if !p.set {
-		p.start, p.firstS, p.set = time.Now(), tS, true
-		return
-	}
-	due := p.start.Add(time.Duration((tS - p.firstS) / p.speed * float64(time.Second)))
-	d := time.Until(due)
-	if d <= 0 {
-		return
-	}
-	backoff.Sleep(ctx, nil, d)
-}
-
-// readChunk is the buffer size of stream reads.
-const readChunk = 32 << 10
-
-// pump reads r until it fails and decodes what it reads. It returns the
-// read error (io.EOF at the end of a file). deadline, when not nil, is set
-// before each read so that a quiet link still returns to the loop after a
-// read that timed out.
-func (c *conn) pump(r io.Reader, deadline func(time.Time) error) error {
-	buf := make([]byte, readChunk)
-	for {
-		if c.ctx.Err() != nil {
-			return c.ctx.Err()
-		}
-		if deadline != nil {
-			_ = deadline(time.Now().Add(250 * time.Millisecond))
-		}
-		n, err := r.Read(buf)
-		if n > 0 {
-			c.write(buf[:n])
-		}
-		if err != nil {
-			var ne net.Error
-			if errors.As(err, &ne) && ne.Timeout() {
-				c.checkSilence()
-				continue
-			}
-			return err
-		}
-		if n == 0 {
-			c.checkSilence()
-		}
-	}
-}
-
-// streamFor returns the default stream of the n-th client of tcp-listen in
-// per-client mode: the configured id with "-<n>", cut to the longest id.
-func streamFor(base string, n uint64) string {
-	suffix := fmt.Sprintf("-%d", n)
-	return base[:min(len(base), maxStreamID-len(suffix))] + suffix
 }

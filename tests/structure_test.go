@@ -31,8 +31,6 @@ var sizeExceptions = map[string]bool{
 	"daemon/cli/cmd_predict.go:runPredict":             true,
 	"daemon/cli/cmd_sim.go:runSim":                     true,
 	"daemon/cli/cmd_sweep.go:runSweep":                 true,
-	"ingest/number.go:parseNumber":                     true,
-	"ingest/source.go":                                 true,
 	"simulator/params.go:validate":                     true,
 	"simulator/scenario.go:compile":                    true,
 	"simulator/sweep/grid.go":                          true,

@@ -47,21 +47,26 @@ func benchText(b *testing.B, pipeline bool) {
 	done := 0
 	for done < b.N {
 		o := newOffline(analyze.DefaultConfig(), io.Discard, false)
-		emit := o.sample
-		an := analyze.NewAnalyzer(ingest.DefaultStream, analyze.DefaultConfig())
-		if !pipeline {
-			emit = func(_ string, s ingest.Sample) {
+		if pipeline {
+			// The path of `trapline analyze`: decoding here, the
+			// pipelines on one worker.
+			a := &app{stdin: bytes.NewReader(text)}
+			if _, err := a.readAll(b.Context(), "-", analyzeFlags{}, o); err != nil {
+				b.Fatal(err)
+			}
+		} else {
+			an := analyze.NewAnalyzer(ingest.DefaultStream, analyze.DefaultConfig())
+			dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{}, func(_ string, s ingest.Sample) {
 				if _, ok := an.Push(s); ok {
 					o.breaths++
 				}
+			})
+			if err != nil {
+				b.Fatal(err)
 			}
-		}
-		dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{}, emit)
-		if err != nil {
-			b.Fatal(err)
-		}
-		if err := ingest.Decode(bytes.NewReader(text), dec); err != nil {
-			b.Fatal(err)
+			if err := ingest.Decode(bytes.NewReader(text), dec); err != nil {
+				b.Fatal(err)
+			}
 		}
 		if o.breaths == 0 {
 			b.Fatal("no breaths")

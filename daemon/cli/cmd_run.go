@@ -27,12 +27,12 @@ func (a *app) runCommand() *cobra.Command {
 			if err != nil {
 				return &daemon.UsageError{Err: err}
 			}
-			if len(cfg.Streams) == 0 && cfg.Role != config.RoleWorker {
+			if len(cfg.Streams) == 0 && len(cfg.Sources) == 0 && cfg.Role != config.RoleWorker {
 				where := "the configuration"
 				if cfgPath != "" {
 					where = cfgPath
 				}
-				return usageErrorf("no stream configured: add at least one entry under streams: in %s "+
+				return usageErrorf("no stream configured: add at least one entry under streams: or sources: in %s "+
 					"(see config/trapline.example.yaml), or try `trapline demo`", where)
 			}
 			// log.level and log.format come from the file, the environment

@@ -41,6 +41,12 @@ type Options struct {
 	Depth int
 	// ReadBytes is the size of a read; 0 means 256 KiB.
 	ReadBytes int
+	// InOrder calls the handlers in the order of the input, once per run
+	// of consecutive samples of one stream, rather than once per stream
+	// per batch. With one worker (or none) every handler call then comes
+	// in input order, so output that handlers write as it happens is the
+	// output of analysing the file sample by sample on one goroutine.
+	InOrder bool
 }
 
 // Handler receives the samples of one stream in order, always from the
@@ -70,7 +76,7 @@ func Run(ctx context.Context, r io.Reader, opts Options, open OpenFunc) (ingest.
 	if opts.ReadBytes <= 0 {
 		opts.ReadBytes = 256 << 10
 	}
-	d := &dispatch{ctx: ctx, open: open, batchSamples: opts.BatchSamples, index: map[string]int32{}}
+	d := &dispatch{ctx: ctx, open: open, batchSamples: opts.BatchSamples, index: map[string]int32{}, inOrder: opts.InOrder}
 	dec, err := ingest.NewDecoder(opts.Format, opts.Decoder, d.emit)
 	if err != nil {
 		return ingest.DecoderStats{}, fmt.Errorf("offline: %w", err)
@@ -100,16 +106,17 @@ type dispatch struct {
 	inline       *worker         // Workers 0: handlers run here
 	wg           sync.WaitGroup
 	cancelled    bool
+	inOrder      bool
 }
 
 func (d *dispatch) start(n, depth int) {
 	if n == 0 {
-		d.inline = &worker{open: d.open}
+		d.inline = &worker{open: d.open, inOrder: d.inOrder}
 		d.cur = []*ingest.Batch{{}}
 		return
 	}
 	for range n {
-		w := &worker{open: d.open, full: make(chan *ingest.Batch, depth), free: make(chan *ingest.Batch, depth)}
+		w := &worker{open: d.open, inOrder: d.inOrder, full: make(chan *ingest.Batch, depth), free: make(chan *ingest.Batch, depth)}
 		for range depth - 1 {
 			w.free <- &ingest.Batch{}
 		}
@@ -211,6 +218,7 @@ type worker struct {
 	free     chan *ingest.Batch
 	demux    ingest.Demux
 	handlers []Handler // by stream index
+	inOrder  bool
 }
 
 func (w *worker) run() {
@@ -221,19 +229,36 @@ func (w *worker) run() {
 	}
 }
 
-// handle splits a batch by stream and calls each stream's handler once.
+// handle splits a batch by stream and calls each stream's handler once,
+// or with InOrder once per run of one stream, in input order.
 func (w *worker) handle(b *ingest.Batch) {
-	for _, sp := range w.demux.Split(b) {
-		for int(sp.Index) >= len(w.handlers) {
-			w.handlers = append(w.handlers, nil)
-		}
-		h := w.handlers[sp.Index]
-		if h == nil {
-			if h = w.open(sp.Stream); h == nil {
-				h = func([]ingest.Sample) {} // the caller wants none of this stream
+	if w.inOrder {
+		for i := 0; i < len(b.Streams); {
+			x, j := b.Streams[i], i+1
+			for j < len(b.Streams) && b.Streams[j] == x {
+				j++
 			}
-			w.handlers[sp.Index] = h
+			w.handler(x, b.IDs[x])(b.Samples[i:j:j])
+			i = j
 		}
-		h(sp.Samples)
+		return
 	}
+	for _, sp := range w.demux.Split(b) {
+		w.handler(sp.Index, sp.Stream)(sp.Samples)
+	}
+}
+
+// handler returns the handler of stream index x, opening it the first time.
+func (w *worker) handler(x int32, stream string) Handler {
+	for int(x) >= len(w.handlers) {
+		w.handlers = append(w.handlers, nil)
+	}
+	h := w.handlers[x]
+	if h == nil {
+		if h = w.open(stream); h == nil {
+			h = func([]ingest.Sample) {} // the caller wants none of this stream
+		}
+		w.handlers[x] = h
+	}
+	return h
 }

@@ -1,0 +1,332 @@
+package ingest
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"net"
+	"time"
+
+	"github.com/rs/zerolog"
+
+	"trapline/ingest/backoff"
+)
+
+// conn is one byte stream being decoded: a file, a connection, a serial
+// device across its reopenings, the datagrams of one peer or the messages
+// of one subject.
+type conn struct {
+	s         *source
+	ctx       context.Context
+	dec       Decoder
+	defStream string
+	seen      []string               // streams read from this conn, for status events
+	streams   map[string]*connStream // per stream read from this conn
+	order     []*connStream          // streams with pending samples, in order
+	prev      DecoderStats
+	lastErr   error
+	pace      *pacer
+	silent    bool
+	lastData  time.Time
+	out       []Event // events of the last read, for Options.Direct
+}
+
+func (s *source) newConn(ctx context.Context, defStream string) *conn {
+	c := &conn{s: s, ctx: ctx, defStream: defStream, streams: map[string]*connStream{}, lastData: time.Now()}
+	// Options were checked by OpenSpec; defStream is built from a valid id.
+	d, err := NewDecoder(s.opts.Format, s.decoderOptions(defStream), c.emit)
+	if err != nil {
+		d, _ = NewDecoder(s.opts.Format, s.decoderOptions(DefaultStream), c.emit)
+	}
+	c.dec = d
+	if s.spec.Realtime {
+		c.pace = &pacer{speed: s.spec.Speed}
+	}
+	return c
+}
+
+// write decodes p and pushes the resulting events.
+func (c *conn) write(p []byte) {
+	c.lastData = time.Now()
+	if c.silent {
+		c.silent = false
+		c.status(StatusConnected, nil)
+	}
+	c.tap(TapData, p)
+	c.s.mu.Lock()
+	_, _ = c.dec.Write(p)
+	c.flushAll()
+	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
+}
+
+// end decodes what is left at the end of the input.
+func (c *conn) end() {
+	c.tap(TapEnd, nil)
+	c.s.mu.Lock()
+	c.dec.Flush()
+	c.flushAll()
+	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
+}
+
+// reset drops a partial line or frame when the link went down.
+func (c *conn) reset() {
+	c.tap(TapReset, nil)
+	c.s.mu.Lock()
+	c.dec.Reset()
+	c.flushAll()
+	c.count()
+	c.s.mu.Unlock()
+	c.deliver()
+}
+
+// count moves the decoder's counters into the source's.
+func (c *conn) count() {
+	st := c.dec.Stats()
+	s := c.s
+	if d := st.BadLines - c.prev.BadLines; d > 0 {
+		s.c.badLines.Add(d)
+		s.warn("bad-lines", func(e *zerolog.Event) {
+			e.Uint64("bad_lines", s.c.badLines.Load()).Msg("text lines that do not parse are skipped")
+		})
+	}
+	if d := st.BadFrames - c.prev.BadFrames; d > 0 {
+		s.c.badFrames.Add(d)
+		s.warn("bad-frames", func(e *zerolog.Event) {
+			e.Uint64("bad_frames", s.c.badFrames.Load()).Uint64("skipped_bytes", s.c.skipped.Load()).
+				Msg("corrupt binary input is skipped")
+		})
+	}
+	s.c.skipped.Add(st.SkippedBytes - c.prev.SkippedBytes)
+	c.prev = st
+	if err := c.dec.Err(); err != nil && (c.lastErr == nil || err.Error() != c.lastErr.Error()) {
+		s.log.Warn().Err(err).Msg("input header cannot be used: samples are rejected until a valid header arrives")
+	}
+	c.lastErr = c.dec.Err()
+}
+
+// connStream is what a conn keeps of one stream: its timeline (shared by
+// every conn of the source) and its samples waiting to be pushed. One map
+// lookup per sample finds both.
+type connStream struct {
+	id      string
+	tl      *timeline
+	pending *[]Sample
+}
+
+// stream returns the state of a stream on this conn, making it on its
+// first sample.
+func (c *conn) stream(id string) *connStream {
+	if cs := c.streams[id]; cs != nil {
+		return cs
+	}
+	s := c.s
+	tl := s.tls[id]
+	if tl == nil {
+		tl = newTimeline(s.opts.RateHz)
+		s.tls[id] = tl
+	}
+	if len(c.seen) < maxStreams {
+		c.seen = append(c.seen, id)
+	}
+	cs := &connStream{id: id, tl: tl}
+	c.streams[id] = cs
+	return cs
+}
+
+// emit is the decoder's callback; it runs with s.mu held.
+func (c *conn) emit(stream string, smp Sample) {
+	s := c.s
+	cs := c.stream(stream)
+	tl := cs.tl
+	out, v, gapS, drift := tl.admit(smp.TimeS)
+	switch v {
+	case duplicate:
+		s.c.dups.Add(1)
+		s.log.Debug().Str("stream", stream).Float64("t_s", smp.TimeS).Msg("duplicate sample dropped")
+		return
+	case outOfOrder:
+		s.c.ooo.Add(1)
+		s.log.Debug().Str("stream", stream).Float64("t_s", smp.TimeS).Msg("out-of-order sample dropped")
+		return
+	case keepAfterGap:
+		c.flush(cs)
+		s.c.gaps.Add(1)
+		s.log.Debug().Str("stream", stream).Float64("gap_s", gapS).Msg("gap in sample times")
+		c.push(Event{Stream: stream, Status: StatusGap, GapS: gapS}, nil)
+	case keepAfterReset:
+		c.flush(cs)
+		s.c.resets.Add(1)
+		s.warn("reset-"+stream, func(e *zerolog.Event) {
+			e.Str("stream", stream).Msg("device time went back: continuing after a gap of unknown length")
+		})
+		c.push(Event{Stream: stream, Status: StatusGap, Err: ErrClockReset}, nil)
+	}
+	if drift {
+		s.c.drift.Add(1)
+		s.warn("drift-"+stream, func(e *zerolog.Event) {
+			e.Str("stream", stream).Float64("period_s", tl.periodS).Float64("mean_interval_s", tl.meanS).
+				Msg("sample rate drifts from the declared or first measured rate")
+		})
+	}
+	smp.TimeS = out
+	b := cs.pending
+	if b == nil && s.opts.Direct != nil {
+		b = getSmallBatch()
+		cs.pending = b
+		c.order = append(c.order, cs)
+	} else if b == nil {
+		b = getBatch()
+		cs.pending = b
+		c.order = append(c.order, cs)
+	}
+	*b = append(*b, smp)
+	if len(*b) >= batchSamples || c.pace != nil && out-(*b)[0].TimeS >= 0.02 {
+		c.flush(cs)
+	}
+}
+
+// flush pushes the pending samples of one stream. Its place in c.order is
+// left behind and skipped by flushAll.
+func (c *conn) flush(cs *connStream) {
+	b := cs.pending
+	if b == nil {
+		return
+	}
+	cs.pending = nil
+	stream := cs.id
+	if len(*b) == 0 {
+		putBatch(b)
+		return
+	}
+	if c.pace != nil {
+		c.pace.wait(c.ctx, (*b)[0].TimeS)
+	}
+	c.push(Event{Stream: stream, Samples: *b}, b)
+}
+
+func (c *conn) flushAll() {
+	// flush may wait (pacing) but never appends to c.order.
+	for _, cs := range c.order {
+		c.flush(cs)
+	}
+	clear(c.order)
+	c.order = c.order[:0]
+}
+
+func (c *conn) push(e Event, buf *[]Sample) {
+	if c.s.opts.Direct != nil {
+		e.buf = buf
+		c.s.c.samples.Add(uint64(len(e.Samples)))
+		c.out = append(c.out, e)
+		return
+	}
+	_ = c.s.q.push(c.ctx, queued{ev: e, buf: buf})
+}
+
+// deliver hands the events of the last read to the direct sink, on the
+// reading goroutine and outside the source's lock. The sink owns their
+// samples from here on (Event.Release).
+func (c *conn) deliver() {
+	if len(c.out) == 0 {
+		return
+	}
+	c.s.opts.Direct(c.out)
+	clear(c.out)
+	c.out = c.out[:0]
+}
+
+// status reports a change of the link for every stream read through it
+// (the default stream before any was read).
+func (c *conn) status(st Status, err error) {
+	c.s.mu.Lock()
+	c.flushAll()
+	streams := c.seen
+	if len(streams) == 0 {
+		streams = []string{c.defStream}
+	}
+	for _, id := range streams {
+		c.push(Event{Stream: id, Status: st, Err: err}, nil)
+	}
+	c.s.mu.Unlock()
+	c.deliver()
+}
+
+// checkSilence reports StatusDisconnected with ErrNoData once the link has
+// been quiet for Options.Silence.
+func (c *conn) checkSilence() {
+	if c.s.opts.Silence < 0 || c.silent || time.Since(c.lastData) < c.s.opts.Silence {
+		return
+	}
+	c.silent = true
+	c.s.warn("silence", func(e *zerolog.Event) {
+		e.Dur("silence", c.s.opts.Silence).Msg("no data: reporting the signal as lost")
+	})
+	c.status(StatusDisconnected, fmt.Errorf("%w for %v", ErrNoData, c.s.opts.Silence))
+}
+
+// pacer holds a file's samples back to the pace of their time stamps.
+type pacer struct {
+	speed  float64
+	start  time.Time
+	firstS float64
+	set    bool
+}
+
+func (p *pacer) wait(ctx context.Context, tS float64) {
+	if !p.set {
+		p.start, p.firstS, p.set = time.Now(), tS, true
+		return
+	}
+	due := p.start.Add(time.Duration((tS - p.firstS) / p.speed * float64(time.Second)))
+	d := time.Until(due)
+	if d <= 0 {
+		return
+	}
+	backoff.Sleep(ctx, nil, d)
+}
+
+// readChunk is the buffer size of stream reads.
+const readChunk = 32 << 10
+
+// pump reads r until it fails and decodes what it reads. It returns the
+// read error (io.EOF at the end of a file). deadline, when not nil, is set
+// before each read so that a quiet link still returns to the loop after a
+// read that timed out.
+func (c *conn) pump(r io.Reader, deadline func(time.Time) error) error {
+	buf := make([]byte, readChunk)
+	for {
+		if c.ctx.Err() != nil {
+			return c.ctx.Err()
+		}
+		if deadline != nil {
+			_ = deadline(time.Now().Add(250 * time.Millisecond))
+		}
+		n, err := r.Read(buf)
+		if n > 0 {
+			c.write(buf[:n])
+		}
+		if err != nil {
+			var ne net.Error
+			if errors.As(err, &ne) && ne.Timeout() {
+				c.checkSilence()
+				continue
+			}
+			return err
+		}
+		if n == 0 {
+			c.checkSilence()
+		}
+	}
+}
+
+// streamFor returns the default stream of the n-th client of tcp-listen in
+// per-client mode: the configured id with "-<n>", cut to the longest id.
+func streamFor(base string, n uint64) string {
+	suffix := fmt.Sprintf("-%d", n)
+	return base[:min(len(base), maxStreamID-len(suffix))] + suffix
+}
