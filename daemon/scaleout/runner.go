@@ -1,4 +1,4 @@
-package daemon
+package scaleout
 
 import (
 	"context"
@@ -281,7 +281,7 @@ func (l *liveSink) Breath(b *analyze.Breath) {
 	b.Seq += l.sr.off
 	l.sr.lastBreath = b.Seq
 	l.pt.w.bull.Breath(b)
-	l.pt.w.m.breaths.WithLabelValues(l.sr.id).Inc()
+	l.pt.w.host.CountBreath(l.sr.id)
 }
 
 // Alert gathers an alert event. Its breath number needs no mapping: Breath
@@ -301,7 +301,7 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 		if err := pt.w.pub.PublishNow(ctx, evs[i]); err != nil {
 			return err
 		}
-		pt.w.m.alerts.WithLabelValues(sr.id, evs[i].Condition, string(evs[i].State)).Inc()
+		pt.w.host.CountAlert(sr.id, evs[i].Condition, string(evs[i].State))
 	}
 	return pt.saveStream(ctx, sr)
 }

@@ -1,4 +1,4 @@
-package daemon
+package scaleout
 
 import (
 	"context"
@@ -37,15 +37,15 @@ type edge struct {
 // to a second on a loaded replicated stream, 4096 was too few.
 const edgeMaxPending = 65536
 
-// runEdge runs the edge role until ctx is cancelled.
-func (d *Daemon) runEdge(ctx context.Context) error {
-	cfg := d.cfg
-	b, err := bus.Open(cfg, d.log)
+// RunEdge runs the edge role until ctx is cancelled.
+func RunEdge(ctx context.Context, h Host) error {
+	cfg := h.Config
+	b, err := bus.Open(cfg, h.Log)
 	if err != nil {
 		return err
 	}
 	defer b.Close()
-	e := &edge{cfg: cfg, log: d.log.With().Str("role", "edge").Logger(), names: newScaleNames(cfg.NATS.SubjectPrefix)}
+	e := &edge{cfg: cfg, log: h.Log.With().Str("role", "edge").Logger(), names: newScaleNames(cfg.NATS.SubjectPrefix)}
 	js, err := jetstream.New(b.Conn, jetstream.WithPublishAsyncMaxPending(edgeMaxPending),
 		jetstream.WithPublishAsyncErrHandler(func(_ jetstream.JetStream, m *nats.Msg, err error) {
 			if e.failed.Add(1) == 1 {
@@ -60,22 +60,22 @@ func (d *Daemon) runEdge(ctx context.Context) error {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	g, gctx := errgroup.WithContext(ctx)
-	if err := d.startRoleHTTP(gctx, g, b.Conn, func() uint64 { return 0 }); err != nil {
+	if err := h.StartHTTP(gctx, g, b.Conn, func() uint64 { return 0 }); err != nil {
 		return err
 	}
 	for _, sc := range cfg.Streams {
 		log := e.log.With().Str("stream", sc.ID).Logger()
 		opts := ingest.Options{Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: b.Conn}
 		if _, err := ingest.Open(sc.Source, opts); err != nil {
-			return &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
+			return h.Usage(fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err))
 		}
 		g.Go(func() error {
-			return supervise(gctx, log, defaultBackoff, func(ctx context.Context) error {
+			return h.Supervise(gctx, log, func(ctx context.Context) error {
 				src, err := ingest.Open(sc.Source, opts)
 				if err != nil {
 					return err
 				}
-				d.m.addSource(sc.ID, src.Stats)
+				h.AddSource(sc.ID, src.Stats)
 				if err := e.runSource(ctx, src); err != nil || ctx.Err() != nil {
 					return err
 				}
@@ -83,12 +83,12 @@ func (d *Daemon) runEdge(ctx context.Context) error {
 				log.Info().Msg("source ended; its samples are sent")
 				<-ctx.Done()
 				return nil
-			}, nil, nil)
+			})
 		})
 	}
 	e.log.Info().Int("streams", len(cfg.Streams)).Str("nats", b.URL).Dur("batch", cfg.ScaleOut.Batch).Msg("trapline edge running")
-	if d.opts.Ready != nil {
-		d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
+	if h.Ready != nil {
+		h.Ready(b)
 	}
 	err = g.Wait()
 	// Wait (bounded) for the acknowledgements of what was sent.
