@@ -7,6 +7,7 @@ import (
 	"trapline/daemon/scaleout"
 
 	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
 	"github.com/rs/zerolog"
 	"golang.org/x/sync/errgroup"
 )
@@ -31,7 +32,8 @@ func (d *Daemon) scaleHost() scaleout.Host {
 				d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
 			}
 		},
-		Usage: func(err error) error { return &UsageError{Err: err} },
+		Register: func(c prometheus.Collector) { d.m.reg.MustRegister(c) },
+		Usage:    func(err error) error { return &UsageError{Err: err} },
 	}
 }
 

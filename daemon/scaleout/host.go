@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
 	"github.com/rs/zerolog"
 	"golang.org/x/sync/errgroup"
 
@@ -43,6 +44,8 @@ type Host struct {
 	SetReady func(name string, check func() error)
 	// Ready, when not nil, is told once the role runs on the bus b.
 	Ready func(b *bus.Bus)
+	// Register adds a collector to the metrics; nil registers nothing.
+	Register func(prometheus.Collector)
 	// Usage marks an error as a configuration mistake.
 	Usage func(error) error
 }

@@ -69,10 +69,16 @@ func samplesStreamConfig(n scaleNames, so *config.ScaleOut, replicas int) jetstr
 		MaxAge:      so.SamplesMaxAge,
 		Storage:     jetstream.FileStorage,
 		Replicas:    replicas,
-		Duplicates:  min(30*time.Second, so.SamplesMaxAge),
+		Duplicates:  samplesDedupe(so),
 		PersistMode: persist,
 	}
 }
+
+// samplesDedupe is the de-duplication window of the samples stream: an edge
+// retries a message with the same id for this long (less one publish
+// timeout). Two minutes ride through a leader election (4 to 9 s in
+// nats-server) and a hang of a node many times over.
+func samplesDedupe(so *config.ScaleOut) time.Duration { return min(2*time.Minute, so.SamplesMaxAge) }
 
 // scaleReplicas is the replica count of the scale-out streams and buckets:
 // the configured one, or 3 when the server is part of a cluster and 1
