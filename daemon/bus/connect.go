@@ -35,6 +35,10 @@ type ClientOptions struct {
 	// ReconnectWait is the pause between reconnect attempts (default 1 s;
 	// nats.go adds jitter).
 	ReconnectWait time.Duration
+	// Meanwhile says in the log what happens to the data while the
+	// connection is lost; empty means the daemon's "alerts are spooled
+	// meanwhile" (the scale-out roles have no spool and say their own).
+	Meanwhile string
 }
 
 // Check reports conflicting or incomplete settings, all at once.
@@ -73,6 +77,10 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		o.ReconnectWait = time.Second
 	}
 	log = log.With().Str("component", "nats").Logger()
+	meanwhile := o.Meanwhile
+	if meanwhile == "" {
+		meanwhile = "alerts are spooled meanwhile"
+	}
 	opts := []nats.Option{
 		nats.Name(o.Name),
 		// nats.go gives up after 60 attempts by default: never give up.
@@ -80,7 +88,7 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		nats.RetryOnFailedConnect(true),
 		nats.ReconnectWait(o.ReconnectWait),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
-			log.Warn().Err(err).Msg("NATS connection lost; reconnecting (alerts are spooled meanwhile)")
+			log.Warn().Err(err).Msg("NATS connection lost; reconnecting (" + meanwhile + ")")
 		}),
 		nats.ReconnectHandler(func(nc *nats.Conn) {
 			log.Info().Str("url", nc.ConnectedUrlRedacted()).Msg("NATS connection restored")

@@ -80,9 +80,11 @@ func samplesStreamConfig(n scaleNames, so *config.ScaleOut, replicas int) jetstr
 // nats-server) and a hang of a node many times over.
 func samplesDedupe(so *config.ScaleOut) time.Duration { return min(2*time.Minute, so.SamplesMaxAge) }
 
-// scaleReplicas is the replica count of the scale-out streams and buckets:
-// the configured one, or 3 when the server is part of a cluster and 1
-// otherwise.
+// scaleReplicas is the one replica count of every stream and bucket of
+// the scale-out roles (samples, alerts, breaths, members, state):
+// scaleout.replicas, or 3 when the server is part of a cluster and 1
+// otherwise. nats.replicas (role all) is not used by these roles, so that
+// a worker without replica settings cannot weaken an R3 cluster.
 func scaleReplicas(nc *nats.Conn, so *config.ScaleOut) int {
 	if so.Replicas > 0 {
 		return so.Replicas
@@ -129,11 +131,7 @@ func ensureSamplesStream(ctx context.Context, js jetstream.JetStream, n scaleNam
 	return retry(ctx, log, "samples stream", func(ctx context.Context) error {
 		s, err := js.Stream(ctx, n.samples)
 		if errors.Is(err, jetstream.ErrStreamNotFound) {
-			_, err = js.CreateStream(ctx, want)
-			if err == nil {
-				log.Info().Str("stream", n.samples).Int("partitions", so.Partitions).Int("replicas", replicas).Msg("samples stream created")
-			}
-			return err
+			return createSamplesStream(ctx, js, want, so, log)
 		}
 		if err != nil {
 			return err
@@ -144,11 +142,81 @@ func ensureSamplesStream(ctx context.Context, js jetstream.JetStream, n scaleNam
 				"put the old value back, or delete the stream (its samples are short-lived)", n.samples,
 				have.SubjectTransform.Destination, want.SubjectTransform.Destination)}
 		}
-		// Replicas and ages may change; keep the rest as it is.
+		if have.Replicas > want.Replicas {
+			return lowerReplicasError(n.samples, have.Replicas, want.Replicas)
+		}
+		// Replicas (up), ages and a configured cap may change; keep the rest
+		// as it is (a derived cap stays as it was fitted at creation).
 		have.MaxAge, have.Replicas, have.Duplicates = want.MaxAge, want.Replicas, want.Duplicates
+		if so.SamplesMaxBytes > 0 {
+			have.MaxBytes = int64(so.SamplesMaxBytes)
+		}
 		_, err = js.UpdateStream(ctx, have)
 		return err
 	})
+}
+
+// createSamplesStream creates the samples stream with its byte cap:
+// scaleout.samples_max_bytes, or partitions × partition_bytes_per_s ×
+// samples_max_age. JetStream reserves a stream's cap in the store at
+// placement; when the store cannot hold a derived cap, it is halved until
+// it fits, and then halved once more, so that the samples take at most
+// half of what was free and leave the rest to the alerts and breaths.
+func createSamplesStream(ctx context.Context, js jetstream.JetStream, want jetstream.StreamConfig, so *config.ScaleOut, log zerolog.Logger) error {
+	want.MaxBytes = int64(so.SamplesMaxBytes)
+	derived := want.MaxBytes == 0
+	if derived {
+		want.MaxBytes = int64(so.Partitions) * int64(so.PartitionBytesPerS) * int64(so.SamplesMaxAge/time.Second)
+	}
+	fitted := false
+	for {
+		_, err := js.CreateStream(ctx, want)
+		var apiErr *jetstream.APIError
+		if derived && errors.As(err, &apiErr) && strings.Contains(apiErr.Description, "insufficient") && want.MaxBytes/2 >= minSamplesBytes {
+			want.MaxBytes /= 2
+			fitted = true
+			continue
+		}
+		if err != nil {
+			return err
+		}
+		break
+	}
+	if fitted && want.MaxBytes/2 >= minSamplesBytes {
+		want.MaxBytes /= 2
+		if _, err := js.UpdateStream(ctx, want); err != nil {
+			return err
+		}
+	}
+	log.Info().Str("stream", want.Name).Int("partitions", so.Partitions).Int("replicas", want.Replicas).
+		Int64("max_bytes", want.MaxBytes).Bool("fitted_to_store", fitted).Msg("samples stream created")
+	return nil
+}
+
+// minSamplesBytes is the smallest derived cap of the samples stream.
+const minSamplesBytes = 64 << 20
+
+// checkReplicas refuses to lower the replicas of an existing stream (a
+// bucket is the stream KV_<bucket>); a stream not found passes.
+func checkReplicas(ctx context.Context, js jetstream.JetStream, stream string, want int) error {
+	s, err := js.Stream(ctx, stream)
+	if errors.Is(err, jetstream.ErrStreamNotFound) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	if have := s.CachedInfo().Config.Replicas; have > want {
+		return lowerReplicasError(stream, have, want)
+	}
+	return nil
+}
+
+// lowerReplicasError explains why a role will not start.
+func lowerReplicasError(stream string, have, want int) error {
+	return permanentError{fmt.Errorf("stream %s has %d replicas and this process would set %d: refusing to lower them "+
+		"(set scaleout.replicas: %d, or 0 for automatic on a cluster; lower them by hand with the nats tool if that is meant)",
+		stream, have, want, have)}
 }
 
 // permanentError is a failure that retrying cannot mend.

@@ -32,13 +32,16 @@ func (w *worker) assign(ctx context.Context, changed <-chan []string) error {
 			want[p] = true
 		}
 		var lost, gained []int
+		// Runners stop in parallel: each writes its last checkpoint.
 		for p, r := range running {
 			if !want[p] {
 				r.stop()
-				<-r.done
-				delete(running, p)
 				lost = append(lost, p)
 			}
+		}
+		for _, p := range lost {
+			<-running[p].done
+			delete(running, p)
 		}
 		for p := range want {
 			if running[p] != nil {

@@ -13,6 +13,7 @@ import (
 	"trapline/alerts"
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 
@@ -36,6 +37,8 @@ type streamRun struct {
 	lastBreath     int // last published breath number
 	seq            uint64
 	dirty          bool
+	breaths        uint64    // breaths published by this runner
+	status         time.Time // last status heartbeat
 }
 
 // partition is the state of one partition runner.
@@ -280,7 +283,10 @@ type liveSink struct {
 func (l *liveSink) Breath(b *analyze.Breath) {
 	b.Seq += l.sr.off
 	l.sr.lastBreath = b.Seq
-	l.pt.w.bull.Breath(b)
+	// The id makes a breath published again after a hand-over (the replayed
+	// stretch) a duplicate the breaths stream drops.
+	l.pt.w.bull.BreathWithID(b, l.sr.id+"/"+strconv.Itoa(b.Seq)+"/"+strconv.FormatFloat(b.StartS, 'f', 3, 64))
+	l.sr.breaths++
 	l.pt.w.host.CountBreath(l.sr.id)
 }
 
@@ -318,6 +324,7 @@ func (pt *partition) tick(ctx context.Context, now time.Time) error {
 		if sr.warm {
 			continue
 		}
+		pt.heartbeat(sr, now)
 		evs = evs[:0]
 		sr.pl.TickTo(now, &liveSink{pt: pt, sr: sr, evs: &evs})
 		if err := pt.deliver(ctx, sr, evs); err != nil {
@@ -325,4 +332,23 @@ func (pt *partition) tick(ctx context.Context, now time.Time) error {
 		}
 	}
 	return nil
+}
+
+// statusEvery is the period of a stream's status heartbeat from its owner.
+const statusEvery = 5 * time.Second
+
+// heartbeat publishes the stream's status (<prefix>.status.<stream>) from
+// the worker that owns it, every statusEvery: a stream whose heartbeat
+// stops, or says connected false, is stalled. Connected means samples were
+// stored in the last 3 s.
+func (pt *partition) heartbeat(sr *streamRun, now time.Time) {
+	if now.Sub(sr.status) < statusEvery {
+		return
+	}
+	sr.status = now
+	st := bus.StreamStatus{Type: "status", Schema: 1, Stream: sr.id, Time: now.UTC(), Running: true,
+		Connected: now.Sub(sr.wall) < 3*time.Second, Breaths: sr.breaths, Worker: pt.w.id}
+	if b, err := st.Marshal(); err == nil {
+		pt.w.bull.Status(sr.id, b)
+	}
 }

@@ -98,11 +98,17 @@ func RunWorker(ctx context.Context, h Host) error {
 		return fmt.Errorf("samples stream: %w", err)
 	}
 	sc := cfg.JetStream()
+	sc.Replicas = reps // one replica count for every stream and bucket
 	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
 		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
 		return err
 	}
 	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
+		for _, name := range []string{sc.Alerts, sc.Breaths} {
+			if err := checkReplicas(ctx, js, name, reps); err != nil {
+				return err
+			}
+		}
 		return alerts.EnsureStreams(ctx, js, sc)
 	}); err != nil {
 		return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
@@ -198,7 +204,7 @@ func (w *worker) ensureStateBucket(ctx context.Context, reps int) error {
 	err := retry(ctx, w.log, "state bucket", func(ctx context.Context) error {
 		var err error
 		if w.state, err = w.js.KeyValue(ctx, w.names.state); err == nil {
-			return nil
+			return checkReplicas(ctx, w.js, "KV_"+w.names.state, reps)
 		}
 		w.state, err = w.js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
 			Bucket: w.names.state, Description: "trapline per-stream alarm state and partition checkpoints",
