@@ -147,10 +147,15 @@ func ensureSamplesStream(ctx context.Context, js jetstream.JetStream, n scaleNam
 		}
 		// Replicas (up), ages and a configured cap may change; keep the rest
 		// as it is (a derived cap stays as it was fitted at creation).
-		have.MaxAge, have.Replicas, have.Duplicates = want.MaxAge, want.Replicas, want.Duplicates
+		next := have
+		next.MaxAge, next.Replicas, next.Duplicates = want.MaxAge, want.Replicas, want.Duplicates
 		if so.SamplesMaxBytes > 0 {
-			have.MaxBytes = int64(so.SamplesMaxBytes)
+			next.MaxBytes = int64(so.SamplesMaxBytes)
 		}
+		if next.MaxAge == have.MaxAge && next.Replicas == have.Replicas && next.Duplicates == have.Duplicates && next.MaxBytes == have.MaxBytes {
+			return nil // an update would only ask the store for its reservation again
+		}
+		have = next
 		_, err = js.UpdateStream(ctx, have)
 		return err
 	})

@@ -94,24 +94,33 @@ func RunWorker(ctx context.Context, h Host) error {
 		w.tick = time.Second
 	}
 	reps := scaleReplicas(b.Conn, so)
-	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
-		return fmt.Errorf("samples stream: %w", err)
-	}
 	sc := cfg.JetStream()
 	sc.Replicas = reps // one replica count for every stream and bucket
+	// Nothing is created or changed before every existing stream and
+	// bucket is known to keep its replicas.
+	if err := retry(ctx, w.log, "replica check", func(ctx context.Context) error {
+		for _, name := range []string{w.names.samples, sc.Alerts, sc.Breaths, "KV_" + w.names.members, "KV_" + w.names.state} {
+			if err := checkReplicas(ctx, js, name, reps); err != nil {
+				return err
+			}
+		}
+		return nil
+	}); err != nil {
+		return err
+	}
 	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
 		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
 		return err
 	}
 	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
-		for _, name := range []string{sc.Alerts, sc.Breaths} {
-			if err := checkReplicas(ctx, js, name, reps); err != nil {
-				return err
-			}
-		}
 		return alerts.EnsureStreams(ctx, js, sc)
 	}); err != nil {
 		return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
+	}
+	// The samples stream comes after the alert and breath streams, so that
+	// its byte cap, fitted to the store, leaves them their room.
+	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
+		return fmt.Errorf("samples stream: %w", err)
 	}
 	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
 	if err != nil {
