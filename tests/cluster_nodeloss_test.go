@@ -23,6 +23,7 @@ type arrivals struct {
 	from  time.Time
 	last  map[string]time.Time
 	worst map[string]time.Duration
+	at    map[string]time.Duration // start of the worst pause, from start
 }
 
 func (a *arrivals) add(m *nats.Msg) {
@@ -37,6 +38,7 @@ func (a *arrivals) add(m *nats.Msg) {
 		}
 		if gap := now.Sub(ref); gap > a.worst[stream] {
 			a.worst[stream] = gap
+			a.at[stream] = ref.Sub(a.from)
 		}
 	}
 	a.last[stream] = now
@@ -49,8 +51,9 @@ func (a *arrivals) start() {
 	a.from = time.Now()
 }
 
-// longest returns the longest pause of any stream and its stream.
-func (a *arrivals) longest() (string, time.Duration) {
+// longest returns the longest pause of any stream, its stream and when it
+// began.
+func (a *arrivals) longest() (string, time.Duration, time.Duration) {
 	a.mu.Lock()
 	defer a.mu.Unlock()
 	var id string
@@ -60,7 +63,7 @@ func (a *arrivals) longest() (string, time.Duration) {
 			id, d = s, g
 		}
 	}
-	return id, d
+	return id, d, a.at[id]
 }
 
 // streamLeader returns the node that leads a stream, or -1.
@@ -223,7 +226,7 @@ func (s *scaleSetup) checkSamplesOnce(t *testing.T) {
 func TestClusterNodeLossLosesNothing(t *testing.T) {
 	s := newScaleSetup(t, 10, 300*time.Second, 12)
 	wantEv, _ := s.want(t)
-	arr := &arrivals{last: map[string]time.Time{}, worst: map[string]time.Duration{}}
+	arr := &arrivals{last: map[string]time.Time{}, worst: map[string]time.Duration{}, at: map[string]time.Duration{}}
 	if _, err := s.nc.Subscribe("trapline.breath.>", arr.add); err != nil {
 		t.Fatal(err)
 	}
@@ -247,14 +250,14 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 	if leader < 0 {
 		t.Fatal("no leader of the samples stream")
 	}
-	t.Logf("shutting down n%d (samples stream leader)", leader)
+	t.Logf("%.1f s: shutting down n%d (samples stream leader)", time.Since(arr.from).Seconds(), leader)
 	s.c.restartNode(t, leader, 3*time.Second)
 	s.c.waitReady(t)
 	edgeNode := s.c.publisherNode()
 	if edgeNode < 0 {
 		t.Fatal("no node carries the edge")
 	}
-	t.Logf("shutting down n%d (the edge's node)", edgeNode)
+	t.Logf("%.1f s: shutting down n%d (the edge's node)", time.Since(arr.from).Seconds(), edgeNode)
 	s.c.restartNode(t, edgeNode, 3*time.Second)
 
 	got := s.stored(t, len(wantEv))
@@ -264,8 +267,8 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 		t.Errorf("alerts differ from the single-node run across the node losses:\nmissing %v\nextra %v", onlyWant, onlyGot)
 	}
 	s.checkSamplesOnce(t)
-	id, gap := arr.longest()
-	t.Logf("%d clinical alert events; longest pause of breath records: %.1f s (%s)", len(wantEv), gap.Seconds(), id)
+	id, gap, at := arr.longest()
+	t.Logf("%d clinical alert events; longest pause of breath records: %.1f s (%s, from %.1f s)", len(wantEv), gap.Seconds(), id, at.Seconds())
 	if gap >= 5*time.Second {
 		t.Errorf("stream %s went %.1f s without a breath record (want < 5 s)", id, gap.Seconds())
 	}

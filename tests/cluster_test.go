@@ -282,7 +282,7 @@ func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) 
 		}
 		s.workers = append(s.workers, writeConfig(t, fmt.Sprintf(workerYAML, t.TempDir(), listen, s.c.urls(), w)))
 	}
-	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1))
+	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1), nats.ReconnectWait(100*time.Millisecond))
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -96,7 +96,10 @@ func (pt *partition) consume(ctx context.Context, start time.Time) (<-chan jetst
 	if err != nil {
 		return nil, nil, nil, fmt.Errorf("consumer of partition %d: %w", p, err)
 	}
-	it, err := cons.Messages(jetstream.PullMaxMessages(512))
+	// Short heartbeats: a consumer whose server went away (a node lost,
+	// a leader moved) is noticed after two missed heartbeats, 2 s, and
+	// made again by the ordered consumer, instead of after the 30 s default.
+	it, err := cons.Messages(jetstream.PullMaxMessages(512), jetstream.PullExpiry(5*time.Second), jetstream.PullHeartbeat(time.Second))
 	if err != nil {
 		return nil, nil, nil, fmt.Errorf("consume partition %d: %w", p, err)
 	}
