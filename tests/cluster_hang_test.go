@@ -2,7 +2,7 @@ package tests
 
 import (
 	"bufio"
-		"fmt"
+	"fmt"
 	"io"
 	"net"
 	"net/http"
