@@ -122,8 +122,8 @@ func fileSamples(t *testing.T, path string) int {
 
 // storedSamples reads the whole samples stream: per stream the samples
 // stored and the batch sequences of the message ids, each with its count.
-func storedSamples(ctx context.Context, js jetstream.JetStream) (map[string]int, map[string]map[uint64]int, error) {
-	ctx, cancel := context.WithTimeout(ctx, 20*time.Second)
+func storedSamples(ctx context.Context, js jetstream.JetStream, limit time.Duration) (map[string]int, map[string]map[uint64]int, error) {
+	ctx, cancel := context.WithTimeout(ctx, limit)
 	defer cancel()
 	c, err := js.OrderedConsumer(ctx, "TRAPLINE_SAMPLES", jetstream.OrderedConsumerConfig{})
 	if err != nil {
@@ -189,7 +189,7 @@ func (s *scaleSetup) checkSamplesOnce(t *testing.T) {
 	var seqs map[string]map[uint64]int
 	var err error
 	if !pollUntil(30*time.Second, func() bool {
-		samples, seqs, err = storedSamples(t.Context(), s.js)
+		samples, seqs, err = storedSamples(t.Context(), s.js, 20*time.Second)
 		if err != nil {
 			return false
 		}
@@ -208,12 +208,7 @@ func (s *scaleSetup) checkSamplesOnce(t *testing.T) {
 		if samples[id] != want[f] {
 			t.Errorf("stream %s: %d samples stored, the recording has %d", id, samples[id], want[f])
 		}
-		for q := range uint64(len(seqs[id])) {
-			if seqs[id][q] != 1 {
-				t.Errorf("stream %s: batch %d stored %d times (of %d batches)", id, q, seqs[id][q], len(seqs[id]))
-				break
-			}
-		}
+		checkBatches(t, id, seqs[id])
 	}
 	t.Logf("samples stored: %d in %d streams, each once", total, len(s.files))
 }
@@ -271,5 +266,17 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 	t.Logf("%d clinical alert events; longest pause of breath records: %.1f s (%s, from %.1f s)", len(wantEv), gap.Seconds(), id, at.Seconds())
 	if gap >= 5*time.Second {
 		t.Errorf("stream %s went %.1f s without a breath record (want < 5 s)", id, gap.Seconds())
+	}
+}
+
+// checkBatches checks that a stream's message ids are 0..n-1, each once:
+// no batch lost between two stored ones, none stored twice.
+func checkBatches(t *testing.T, id string, seqs map[uint64]int) {
+	t.Helper()
+	for q := range uint64(len(seqs)) {
+		if seqs[q] != 1 {
+			t.Errorf("stream %s: batch %d stored %d times (of %d batches)", id, q, seqs[q], len(seqs))
+			return
+		}
 	}
 }
