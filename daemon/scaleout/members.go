@@ -21,8 +21,8 @@ import (
 // followers wait an election timeout of 4 to 9 s, then campaign for 0.1 to
 // 0.8 s): while this worker's own heartbeat fails, the bucket is what is
 // away, not the others, so no member expires; once a heartbeat is stored
-// again, every member is counted as heard at that moment and has
-// member_ttl to be heard again. A worker is always live in its own view.
+// again, every member that was live when it began to fail is counted as
+// heard at that moment and has member_ttl to be heard again. A worker is always live in its own view.
 type members struct {
 	kv        jetstream.KeyValue
 	id        string
@@ -187,8 +187,10 @@ func (m *members) live(now time.Time) []string {
 		if id == m.id {
 			continue
 		}
-		if t.Before(m.back) {
-			t = m.back // nobody could be heard while the bucket was away
+		if t.Before(m.back) && m.failed.Sub(t) < m.ttl {
+			// Live when the bucket went away: nobody could be heard
+			// while it was away, so the TTL counts from its return.
+			t = m.back
 		}
 		if m.failing {
 			now = m.failed // the view as it was when the bucket went away
