@@ -37,7 +37,9 @@ type streamRun struct {
 	lastBreath     int // last published breath number
 	seq            uint64
 	dirty          bool
-	breaths        uint64    // breaths published by this runner
+	breaths        uint64  // breaths published by this runner
+	lastS, periodS float64 // last sample time; smallest interval seen
+	haveLast       bool
 	status         time.Time // last status heartbeat
 }
 
@@ -259,6 +261,7 @@ func (pt *partition) message(ctx context.Context, m jetstream.Msg) error {
 		}
 	}
 	sr.seq = seq
+	sr.gaps()
 	if sr.warm {
 		sr.pl.Push(sr.buf, warmSink{sr})
 		return nil
@@ -353,5 +356,25 @@ func (pt *partition) heartbeat(sr *streamRun, now time.Time) {
 		Connected: now.Sub(sr.wall) < 3*time.Second, Breaths: sr.breaths, Worker: pt.w.id}
 	if b, err := st.Marshal(); err == nil {
 		pt.w.bull.Status(sr.id, b)
+	}
+}
+
+// gaps reports holes in the stream's sample times to the pipeline as a
+// source reports them (a gap longer than 1.5 periods, the period being the
+// smallest interval seen), so that the sample-gaps alarm is raised for a
+// batch the edge had to drop as well as for one its source missed: an
+// edge drop is never silent downstream.
+func (sr *streamRun) gaps() {
+	for _, smp := range sr.buf {
+		if sr.haveLast {
+			d := smp.TimeS - sr.lastS
+			if d > 0 && (sr.periodS == 0 || d < sr.periodS) {
+				sr.periodS = d
+			}
+			if sr.periodS > 0 && d > 1.5*sr.periodS {
+				sr.pl.Status(ingest.Event{Stream: sr.id, Status: ingest.StatusGap, GapS: d - sr.periodS}, sr.wall)
+			}
+		}
+		sr.lastS, sr.haveLast = smp.TimeS, true
 	}
 }
