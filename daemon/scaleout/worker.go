@@ -94,39 +94,8 @@ func RunWorker(ctx context.Context, h Host) error {
 		w.tick = time.Second
 	}
 	reps := scaleReplicas(b.Conn, so)
-	sc := cfg.JetStream()
-	sc.Replicas = reps // one replica count for every stream and bucket
-	// Nothing is created or changed before every existing stream and
-	// bucket is known to keep its replicas.
-	if err := retry(ctx, w.log, "replica check", func(ctx context.Context) error {
-		for _, name := range []string{w.names.samples, sc.Alerts, sc.Breaths, "KV_" + w.names.members, "KV_" + w.names.state} {
-			if err := checkReplicas(ctx, js, name, reps); err != nil {
-				return err
-			}
-		}
-		return nil
-	}); err != nil {
-		return err
-	}
-	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
-		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
-		return err
-	}
-	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
-		return alerts.EnsureStreams(ctx, js, sc)
-	}); err != nil {
-		return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
-	}
-	// The samples stream comes after the alert and breath streams, so that
-	// its byte cap, fitted to the store, leaves them their room.
-	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
-		return fmt.Errorf("samples stream: %w", err)
-	}
-	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
+	mkv, err := w.ensureLayout(ctx, b, reps)
 	if err != nil {
-		return fmt.Errorf("membership bucket %s: %w", w.names.members, err)
-	}
-	if err := w.ensureStateBucket(ctx, reps); err != nil {
 		return err
 	}
 	w.bull = bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, w.log)
@@ -225,4 +194,48 @@ func (w *worker) ensureStateBucket(ctx context.Context, reps int) error {
 		return fmt.Errorf("state bucket %s: %w", w.names.state, err)
 	}
 	return nil
+}
+
+// ensureLayout checks the replicas of every existing stream and bucket,
+// then creates or updates them all with reps replicas, and returns the
+// membership bucket.
+func (w *worker) ensureLayout(ctx context.Context, b *bus.Bus, reps int) (jetstream.KeyValue, error) {
+	cfg, so, js := w.cfg, &w.cfg.ScaleOut, w.js
+	sc := cfg.JetStream()
+	sc.Replicas = reps // one replica count for every stream and bucket
+	// Nothing is created or changed before every existing stream and
+	// bucket is known to keep its replicas.
+	if err := retry(ctx, w.log, "replica check", func(ctx context.Context) error {
+		for _, name := range []string{w.names.samples, sc.Alerts, sc.Breaths, "KV_" + w.names.members, "KV_" + w.names.state} {
+			if err := checkReplicas(ctx, js, name, reps); err != nil {
+				return err
+			}
+		}
+		return nil
+	}); err != nil {
+		return nil, err
+	}
+	var err error
+	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
+		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
+		return nil, err
+	}
+	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
+		return alerts.EnsureStreams(ctx, js, sc)
+	}); err != nil {
+		return nil, fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
+	}
+	// The samples stream comes after the alert and breath streams, so that
+	// its byte cap, fitted to the store, leaves them their room.
+	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
+		return nil, fmt.Errorf("samples stream: %w", err)
+	}
+	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
+	if err != nil {
+		return nil, fmt.Errorf("membership bucket %s: %w", w.names.members, err)
+	}
+	if err := w.ensureStateBucket(ctx, reps); err != nil {
+		return nil, err
+	}
+	return mkv, nil
 }
