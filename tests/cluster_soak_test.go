@@ -139,8 +139,9 @@ scaleout: {partitions: 16, worker_id: %s}
 	// Nothing lost: every stream's batches stored once each, without a gap,
 	// and the edge neither failed nor dropped a message.
 	var seqs map[string]map[uint64]int
+	var perStream map[string]int
 	if !pollUntil(3*time.Minute, func() bool {
-		_, seqs, err = storedSamples(t.Context(), jsNew(t, nc), 5*time.Minute)
+		perStream, seqs, err = storedSamples(t.Context(), jsNew(t, nc), 5*time.Minute)
 		return err == nil
 	}) {
 		t.Errorf("read the samples stream: %v", err)
@@ -171,7 +172,10 @@ scaleout: {partitions: 16, worker_id: %s}
 		return lat[min(len(lat)-1, int(p*float64(len(lat))))]
 	}
 	mu.Unlock()
-	samples := float64(si.State.Msgs) * 5 // at least: 50 ms batches of 5 samples, several when coalesced
+	samples := 0.0 // counted in the stream (a message holds one batch or several)
+	for _, n := range perStream {
+		samples += float64(n)
+	}
 	t.Logf("streams %d at 100 Hz for %.0f s", streams, elapsed)
 	t.Logf("samples stream: %d messages (%.0f samples/s of %d offered, %.1f MB/s stored)", si.State.Msgs, samples/elapsed, streams*100, float64(si.State.Bytes)/elapsed/1e6)
 	t.Logf("breaths published: %d (%.0f/s)", breaths.Load(), float64(breaths.Load())/elapsed)

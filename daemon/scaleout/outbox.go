@@ -148,33 +148,13 @@ func (o *outbox) pendingBytes() int64 {
 	return o.pending
 }
 
-// inflight is a message sent and awaiting its acknowledgement.
-type inflight struct {
-	q   *streamQueue
-	m   *outMsg
-	fut jetstream.PubAckFuture
-}
-
-// run sends ready messages until ctx ends; a second goroutine waits for
-// the acknowledgements in order of sending (each is bounded by the
-// publish timeout of js).
+// run sends ready messages until ctx ends. Each message in flight has a
+// goroutine of its own waiting for its acknowledgement (bounded by the
+// publish timeout of js, and by the streams: one message in flight each),
+// so that a late acknowledgement holds up only its own stream.
 func (o *outbox) run(ctx context.Context, js jetstream.JetStream) {
-	waits := make(chan inflight, 1<<14)
 	var wg sync.WaitGroup
-	wg.Add(1)
-	go func() {
-		defer wg.Done()
-		for f := range waits {
-			select {
-			case <-f.fut.Ok():
-				o.done(f.q, nil)
-			case err := <-f.fut.Err():
-				o.done(f.q, err)
-			}
-		}
-	}()
 	defer wg.Wait()
-	defer close(waits)
 	for {
 		select {
 		case <-ctx.Done():
@@ -200,11 +180,16 @@ func (o *outbox) run(ctx context.Context, js jetstream.JetStream) {
 				o.done(q, err)
 				continue
 			}
-			select {
-			case waits <- inflight{q: q, m: m, fut: fut}:
-			case <-ctx.Done():
-				return
-			}
+			wg.Add(1)
+			go func() {
+				defer wg.Done()
+				select {
+				case <-fut.Ok():
+					o.done(q, nil)
+				case err := <-fut.Err():
+					o.done(q, err)
+				}
+			}()
 		}
 	}
 }
