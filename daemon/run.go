@@ -13,6 +13,7 @@ import (
 	"trapline/alerts"
 	"trapline/config"
 	"trapline/daemon/bus"
+	"trapline/daemon/web"
 )
 
 // Options are hooks for callers that run the daemon in-process (the
@@ -49,6 +50,7 @@ type Daemon struct {
 	del     *delivery
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
+	hub     *web.Hub           // the live view; nil without HTTP
 }
 
 // newDaemon checks what can be checked before anything starts.
@@ -78,12 +80,14 @@ func (d *Daemon) Run(ctx context.Context) error {
 		return d.runWorker(ctx)
 	}
 	var httpSrv *httpServer
+	acks := d.ackService()
 	if cfg.HTTP.Listen != "" {
 		h, err := newHTTPServer(cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
 		if err != nil {
 			return err
 		}
 		httpSrv = h
+		d.startLiveView(h, acks)
 		// Until Run serves it, the listener is ours to close.
 		defer func() {
 			if !d.serving {
@@ -110,7 +114,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		return err
 	}
 
-	ackSub, err := d.ackService().Subscribe(b.Conn, d.subj)
+	ackSub, err := acks.Subscribe(b.Conn, d.subj)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
 	}
@@ -137,6 +141,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 	if httpSrv != nil {
 		d.serving = true
 		g.Go(func() error { return httpSrv.Run(gctx) })
+		g.Go(func() error { return d.hub.Run(gctx) })
 	}
 
 	d.announce(b, httpSrv)
@@ -197,6 +202,7 @@ func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
 	}
 	d.del = del
 	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
+	d.m.addPublisher(del.pub)
 	d.ready.set("nats", func() error {
 		if !b.Conn.IsConnected() {
 			return fmt.Errorf("not connected (%s)", b.Conn.Status())
@@ -215,6 +221,7 @@ func (d *Daemon) addStreams(del *delivery) error {
 			return err
 		}
 		s := newStream(spec, d.log, d.m, del, del)
+		s.view = d.view()
 		d.streams = append(d.streams, s)
 		d.byToken[alerts.SubjectToken(sc.ID)] = s
 		d.ready.set("stream "+sc.ID, s.ready)
@@ -252,8 +259,11 @@ func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
+	ev := d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr)
+	if d.hub != nil {
+		ev = ev.Str("live_view", "http://"+info.HTTPAddr+web.Path)
+	}
+	ev.Bool("embedded_nats", b.Embedded()).Msg("trapline running")
 	if d.opts.Ready != nil {
 		d.opts.Ready(info)
 	}

@@ -56,6 +56,9 @@ type Options struct {
 	// Stats, when set, reads the source's counters for the decoder error
 	// rate; they are sampled on every tick.
 	Stats func() ingest.Stats
+	// KeepBreaths is how many recent breaths Checkpoint carries (see
+	// KeepBreaths); 0 keeps none.
+	KeepBreaths int
 }
 
 // Pipeline is the analysis of one stream. It owns the analyzer, the
@@ -92,6 +95,17 @@ type Pipeline struct {
 	breath analyze.Breath
 	one    [1]ingest.Sample
 	out    Output // gathers for Samples and Tick
+
+	// Continuity (resume.go): recent breaths and terminal ids for the
+	// checkpoint, the offset of breath numbers after a resume, and the
+	// sink of the current step with the alert function that notes ids.
+	keep     int
+	recent   []analyze.Breath
+	terminal []Terminal
+	seqBase  int
+	reserved int // first breath number not reserved by a checkpoint
+	sink     Sink
+	alertFn  func(*alerts.Event)
 }
 
 // New returns a live pipeline.
@@ -100,7 +114,7 @@ func New(o Options) *Pipeline {
 	if now == nil {
 		now = time.Now
 	}
-	return &Pipeline{
+	p := &Pipeline{
 		stream:     o.Stream,
 		an:         analyze.NewAnalyzer(o.Stream, o.Analysis),
 		judge:      alerts.NewJudge(o.Stream, o.Detectors, o.Alarms),
@@ -109,7 +123,16 @@ func New(o Options) *Pipeline {
 		stats:      o.Stats,
 		created:    now(),
 		lastBreath: -1,
+		keep:       o.KeepBreaths,
 	}
+	p.alertFn = p.alert
+	return p
+}
+
+// alert notes an event's id and passes it to the current step's sink.
+func (p *Pipeline) alert(e *alerts.Event) {
+	p.note(e)
+	p.sink.Alert(e)
 }
 
 // NewOffline returns a pipeline for a recording whose stream time 0 is wall
@@ -159,6 +182,7 @@ func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
 // Push is Samples with the output going to sink as it happens. It does not
 // allocate per sample.
 func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
+	p.sink = sink
 	wall := time.Time{}
 	if !p.offline() {
 		wall = p.now()
@@ -172,7 +196,7 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 			p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
 			wall = p.clock.Wall(s.TimeS)
 		}
-		p.judge.Samples(ss[i:i+1], s.TimeS, wall, sink.Alert)
+		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		b, ok := p.an.Push(s)
 		if !ok {
@@ -180,9 +204,11 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 		}
 		p.breath = b
 		p.breath.Stream = p.stream
-		p.lastBreath = b.Seq
+		p.breath.Seq += p.seqBase
+		p.lastBreath = p.breath.Seq
+		p.remember(&p.breath)
 		sink.Breath(&p.breath)
-		p.judge.Breath(&p.breath, wall, sink.Alert)
+		p.judge.Breath(&p.breath, wall, p.alertFn)
 	}
 }
 
@@ -219,7 +245,8 @@ func (p *Pipeline) TickTo(now time.Time, sink Sink) {
 		}, nowS)
 		p.last = st
 	}
-	p.judge.Tick(nowS, now, sink.Alert)
+	p.sink = sink
+	p.judge.Tick(nowS, now, p.alertFn)
 }
 
 // Finish makes the ticks due up to stream time tS, the end of a
@@ -233,7 +260,10 @@ func (p *Pipeline) Finish(tS float64, sink Sink) {
 // Ack acknowledges the alarm with id on behalf of by (may be empty).
 func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
-	return Output{Alerts: evs}, err
+	for i := range evs {
+		p.note(&evs[i])
+	}
+	return Output{Alerts: evs}, p.ackAnswer(id, err)
 }
 
 // Flush ends the stream: an open breath is incomplete and is not reported,
