@@ -41,6 +41,16 @@ type ClientOptions struct {
 	Meanwhile string
 }
 
+// lostMessage is the log line of a lost connection, saying what happens
+// to the data meanwhile.
+func (o ClientOptions) lostMessage() string {
+	meanwhile := o.Meanwhile
+	if meanwhile == "" {
+		meanwhile = "alerts are spooled meanwhile"
+	}
+	return "NATS connection lost; reconnecting (" + meanwhile + ")"
+}
+
 // Check reports conflicting or incomplete settings, all at once.
 func (o ClientOptions) Check() error {
 	var errs []error
@@ -77,10 +87,6 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		o.ReconnectWait = time.Second
 	}
 	log = log.With().Str("component", "nats").Logger()
-	meanwhile := o.Meanwhile
-	if meanwhile == "" {
-		meanwhile = "alerts are spooled meanwhile"
-	}
 	auth := &authLog{}
 	opts := []nats.Option{
 		nats.Name(o.Name),
@@ -95,7 +101,7 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		nats.ReconnectWait(o.ReconnectWait),
 		nats.CustomReconnectDelay(reconnectDelay(o.ReconnectWait)),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
-			log.Warn().Err(err).Msg("NATS connection lost; reconnecting (" + meanwhile + ")")
+			log.Warn().Err(err).Msg(o.lostMessage())
 		}),
 		nats.ReconnectErrHandler(func(_ *nats.Conn, err error) {
 			if IsAuthError(err) {
