@@ -464,6 +464,10 @@ func (p *Publisher) ensure(ctx context.Context) error {
 func (p *Publisher) noteFailure(err error, what string) {
 	if !p.failing {
 		p.failing = true
+		if p.spool == nil {
+			p.log.Warn().Err(err).Str("id", what).Msg("alert delivery failing; retrying with the same id until acknowledged")
+			return
+		}
 		p.log.Warn().Err(err).Str("id", what).Int("pending", p.spool.Depth()).
 			Msg("alert delivery failing; alerts are kept in the spool and retried in order")
 		return

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -300,9 +301,21 @@ func EnsureStreams(ctx context.Context, js jetstream.JetStream, cfg StreamsConfi
 		return fmt.Errorf("jetstream streams: %w", err)
 	}
 	for _, sc := range []jetstream.StreamConfig{cfg.AlertsStreamConfig(), cfg.BreathsStreamConfig()} {
+		if s, err := js.Stream(ctx, sc.Name); err == nil && sameLimits(s.CachedInfo().Config, sc) {
+			// Nothing to change: an update would only ask the servers to
+			// reserve the store again (and fail on a nearly full one).
+			continue
+		}
 		if _, err := js.CreateOrUpdateStream(ctx, sc); err != nil {
 			return fmt.Errorf("create or update stream %s: %w", sc.Name, err)
 		}
 	}
 	return nil
+}
+
+// sameLimits tells whether an existing stream already has what ensure
+// would set (a zero de-duplication window is the server's default).
+func sameLimits(have, want jetstream.StreamConfig) bool {
+	return slices.Equal(have.Subjects, want.Subjects) && have.MaxAge == want.MaxAge && have.MaxBytes == want.MaxBytes &&
+		(want.Duplicates == 0 || have.Duplicates == want.Duplicates) && have.Replicas == want.Replicas && have.Storage == want.Storage
 }

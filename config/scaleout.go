@@ -44,6 +44,21 @@ type ScaleOut struct {
 	// Checkpoint is how often a worker writes a stream's alarm state when
 	// no alert changed it.
 	Checkpoint time.Duration `mapstructure:"checkpoint"`
+	// EdgeBuffer bounds the bytes of samples an edge holds until JetStream
+	// acknowledges them. When it is full, a source that can wait (file,
+	// stdin, TCP) is made to wait; other sources drop and count.
+	EdgeBuffer Size `mapstructure:"edge_buffer"`
+	// PartitionBytesPerS is the expected sample bytes per second of one
+	// partition; with partitions and samples_max_age it sizes the byte cap
+	// of the samples stream.
+	PartitionBytesPerS Size `mapstructure:"partition_bytes_per_s"`
+	// SamplesMaxBytes caps the samples stream; 0 derives it as partitions ×
+	// partition_bytes_per_s × samples_max_age (at most half the account's
+	// store, leaving room for alerts and breaths).
+	SamplesMaxBytes Size `mapstructure:"samples_max_bytes"`
+	// StateExpiry is how long the state of a stream that sends nothing is
+	// kept before a worker removes it.
+	StateExpiry time.Duration `mapstructure:"state_expiry"`
 	// Warmup is the stretch of samples before its checkpoint that a new
 	// owner replays to rebuild a stream's analysis state.
 	Warmup time.Duration `mapstructure:"warmup"`
@@ -57,9 +72,15 @@ func defaultScaleOut() ScaleOut {
 		SamplesMaxAge: 15 * time.Minute,
 		Batch:         50 * time.Millisecond,
 		Heartbeat:     time.Second,
-		MemberTTL:     4 * time.Second,
+		MemberTTL:     5 * time.Second,
 		Checkpoint:    2 * time.Second,
 		Warmup:        3 * time.Minute,
+		// 32 MiB holds 20 s of 200 streams at 100 Hz many times over.
+		EdgeBuffer: 32 * MiB,
+		// 64 streams at 100 Hz of about 30 bytes a sample (framing and
+		// JetStream's per-message overhead included).
+		PartitionBytesPerS: 192 * KiB,
+		StateExpiry:        24 * time.Hour,
 	}
 }
 
@@ -78,6 +99,16 @@ func (c *Config) validateScaleOut(p *problems) {
 	durationIn(p, "scaleout.member_ttl", s.MemberTTL, 2*s.Heartbeat, 10*time.Minute)
 	durationIn(p, "scaleout.checkpoint", s.Checkpoint, 100*time.Millisecond, 10*time.Minute)
 	durationIn(p, "scaleout.warmup", s.Warmup, 0, time.Hour)
+	if s.EdgeBuffer < MiB {
+		p.addf("scaleout.edge_buffer", "%d bytes is too small (want at least 1MiB)", s.EdgeBuffer)
+	}
+	if s.PartitionBytesPerS < KiB {
+		p.addf("scaleout.partition_bytes_per_s", "%d is too small (want at least 1KiB)", s.PartitionBytesPerS)
+	}
+	if s.SamplesMaxBytes != 0 && s.SamplesMaxBytes < 64*MiB {
+		p.addf("scaleout.samples_max_bytes", "%d is too small (want 0 for derived, or at least 64MiB)", s.SamplesMaxBytes)
+	}
+	durationIn(p, "scaleout.state_expiry", s.StateExpiry, time.Minute, 365*24*time.Hour)
 	durationIn(p, "scaleout.samples_max_age", s.SamplesMaxAge, s.Warmup+s.Checkpoint+time.Minute, 7*24*time.Hour)
 	for _, r := range s.WorkerID {
 		if !(r >= 'a' && r <= 'z' || r >= 'A' && r <= 'Z' || r >= '0' && r <= '9' || r == '-' || r == '_') {

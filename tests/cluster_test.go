@@ -282,7 +282,7 @@ func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) 
 		}
 		s.workers = append(s.workers, writeConfig(t, fmt.Sprintf(workerYAML, t.TempDir(), listen, s.c.urls(), w)))
 	}
-	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1))
+	nc, err := nats.Connect(s.c.urls(), nats.MaxReconnects(-1), nats.ReconnectWait(100*time.Millisecond))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -424,19 +424,74 @@ func diffLists(a, b []string) (onlyA, onlyB []string) {
 }
 
 // checkBreaths compares the breaths per stream with the single-node run:
-// every breath once, the same number (the first and last breath of a feed
-// may be incomplete on either side: within 1).
+// every breath stored once in the breaths stream (a breath published again
+// after a hand-over carries the same message id and is dropped by the
+// stream's de-duplication), the same number (the first and last breath of
+// a feed may be incomplete on either side: within 1).
 func (s *scaleSetup) checkBreaths(t *testing.T, nb map[string]int) {
 	t.Helper()
-	per, dups := s.breaths.counts()
+	var seen map[string]int
+	var err error
+	if !pollUntil(20*time.Second, func() bool { seen, err = readBreaths(t.Context(), s.js); return err == nil }) {
+		t.Fatalf("read the breaths stream: %v", err)
+	}
+	per := map[string]int{}
+	var dups []string
+	for k, n := range seen {
+		per[k[:strings.IndexByte(k, '/')]]++
+		if n > 1 {
+			dups = append(dups, k)
+		}
+	}
 	if len(dups) > 0 {
-		t.Errorf("breaths published more than once: %v", dups)
+		t.Errorf("breaths stored more than once: %v", dups)
 	}
 	for id, n := range nb {
 		if math.Abs(float64(per[id]-n)) > 1 {
 			t.Errorf("stream %s: %d breaths, single node %d", id, per[id], n)
 		}
 	}
+}
+
+// readBreaths reads the whole breaths stream: "stream/seq" → copies.
+func readBreaths(ctx context.Context, js jetstream.JetStream) (map[string]int, error) {
+	ctx, cancel := context.WithTimeout(ctx, 10*time.Second)
+	defer cancel()
+	c, err := js.OrderedConsumer(ctx, "TRAPLINE_BREATHS", jetstream.OrderedConsumerConfig{})
+	if err != nil {
+		return nil, err
+	}
+	info, err := c.Info(ctx)
+	if err != nil {
+		return nil, err
+	}
+	out := map[string]int{}
+	for left := info.NumPending; left > 0; {
+		batch, err := c.Fetch(int(min(left, 1000)), jetstream.FetchMaxWait(2*time.Second))
+		if err != nil {
+			return nil, err
+		}
+		n := 0
+		for m := range batch.Messages() {
+			n++
+			var br struct {
+				Stream string `json:"stream"`
+				Seq    int    `json:"seq"`
+			}
+			if err := json.Unmarshal(m.Data(), &br); err != nil {
+				return nil, fmt.Errorf("stored message is not a breath record: %w", err)
+			}
+			out[fmt.Sprintf("%s/%d", br.Stream, br.Seq)]++
+		}
+		if batch.Error() != nil {
+			return nil, batch.Error()
+		}
+		if n == 0 {
+			return nil, fmt.Errorf("breaths stream: %d pending, none delivered", left)
+		}
+		left -= uint64(n)
+	}
+	return out, nil
 }
 
 // TestClusterTwoWorkersOneEdge plays 20 beds through an edge into a
@@ -533,8 +588,8 @@ func TestClusterTwoWorkersOneEdge(t *testing.T) {
 }
 
 // TestClusterWorkerKilled kills one of two workers (SIGKILL) while 20 beds
-// play: its streams are analysed again by the other within 10 s, and no
-// alert event is lost or stored twice.
+// play: its streams are analysed again by the other within 5 s, and no
+// alert event is lost or stored twice, nor any breath record.
 func TestClusterWorkerKilled(t *testing.T) {
 	s := newScaleSetup(t, 20, 300*time.Second, 20)
 	wantEv, _ := s.want(t)
@@ -557,8 +612,8 @@ func TestClusterWorkerKilled(t *testing.T) {
 	time.Sleep(2 * time.Second) // bounded: a stretch of analysis before the kill
 	victim.kill()
 	killed := time.Now()
-	// Every stream must produce breaths again within 10 s of the kill.
-	ok := pollUntil(10*time.Second, func() bool {
+	// Every stream must produce breaths again within 5 s of the kill.
+	ok := pollUntil(5*time.Second, func() bool {
 		s.breaths.mu.Lock()
 		defer s.breaths.mu.Unlock()
 		for id := range s.files {
@@ -569,7 +624,7 @@ func TestClusterWorkerKilled(t *testing.T) {
 		return true
 	})
 	if !ok {
-		t.Errorf("some streams had no breath within 10 s of the kill")
+		t.Errorf("some streams had no breath within 5 s of the kill")
 	} else {
 		t.Logf("every stream analysed again %.1f s after the kill", time.Since(killed).Seconds())
 	}
@@ -586,8 +641,17 @@ func TestClusterWorkerKilled(t *testing.T) {
 		}
 	}
 	_, dups := s.breaths.counts()
-	t.Logf("%d clinical alert events, %d of them from samples stored after the kill; %d breath records published twice (the replayed stretch since the last checkpoint)",
+	t.Logf("%d clinical alert events, %d of them from samples stored after the kill; %d breath records published twice (the replayed stretch since the last checkpoint), each stored once",
 		len(wantEv), after, len(dups))
+	seen, err := readBreaths(t.Context(), s.js)
+	if err != nil {
+		t.Fatalf("read the breaths stream: %v", err)
+	}
+	for k, n := range seen {
+		if n > 1 {
+			t.Errorf("breath %s stored %d times", k, n)
+		}
+	}
 }
 
 // pollUntil polls cond every 50 ms for at most d and reports whether it

@@ -22,6 +22,7 @@ const defaultBulletinQueue = 4096
 type bulletinMsg struct {
 	subject string
 	data    []byte
+	msgID   string // Nats-Msg-Id, or ""
 }
 
 // Bulletin publishes breath records and status heartbeats best effort: the
@@ -60,6 +61,14 @@ func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger)
 // <prefix>.breath.<stream>.
 func (b *Bulletin) Breath(br *analyze.Breath) {
 	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768))})
+}
+
+// BreathWithID queues the breath record with a message id (Nats-Msg-Id),
+// so that the breaths stream keeps one copy of a breath published again
+// within its de-duplication window (a scale-out worker replaying a stretch
+// after a hand-over).
+func (b *Bulletin) BreathWithID(br *analyze.Breath, msgID string) {
+	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768)), msgID: msgID})
 }
 
 // Status queues a status heartbeat (JSON built by the stream) for
@@ -129,7 +138,11 @@ func (b *Bulletin) Run(ctx context.Context) error {
 }
 
 func (b *Bulletin) send(m bulletinMsg) {
-	if err := b.nc.Publish(m.subject, m.data); err != nil {
+	msg := &nats.Msg{Subject: m.subject, Data: m.data}
+	if m.msgID != "" {
+		msg.Header = nats.Header{nats.MsgIdHdr: []string{m.msgID}}
+	}
+	if err := b.nc.PublishMsg(msg); err != nil {
 		b.drop(err.Error())
 		return
 	}

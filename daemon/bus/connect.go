@@ -35,6 +35,20 @@ type ClientOptions struct {
 	// ReconnectWait is the pause between reconnect attempts (default 1 s;
 	// nats.go adds jitter).
 	ReconnectWait time.Duration
+	// Meanwhile says in the log what happens to the data while the
+	// connection is lost; empty means the daemon's "alerts are spooled
+	// meanwhile" (the scale-out roles have no spool and say their own).
+	Meanwhile string
+}
+
+// lostMessage is the log line of a lost connection, saying what happens
+// to the data meanwhile.
+func (o ClientOptions) lostMessage() string {
+	meanwhile := o.Meanwhile
+	if meanwhile == "" {
+		meanwhile = "alerts are spooled meanwhile"
+	}
+	return "NATS connection lost; reconnecting (" + meanwhile + ")"
 }
 
 // Check reports conflicting or incomplete settings, all at once.
@@ -87,7 +101,7 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		nats.ReconnectWait(o.ReconnectWait),
 		nats.CustomReconnectDelay(reconnectDelay(o.ReconnectWait)),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
-			log.Warn().Err(err).Msg("NATS connection lost; reconnecting (alerts are spooled meanwhile)")
+			log.Warn().Err(err).Msg(o.lostMessage())
 		}),
 		nats.ReconnectErrHandler(func(_ *nats.Conn, err error) {
 			if IsAuthError(err) {

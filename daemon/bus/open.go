@@ -77,6 +77,13 @@ func (b *Bus) Close() {
 	}
 }
 
+// roleMeanwhile is what each scale-out role does while its connection is
+// lost, for the log.
+var roleMeanwhile = map[string]string{
+	config.RoleEdge:   "samples wait in the edge buffer and are sent again with the same ids",
+	config.RoleWorker: "analysis pauses; the samples stream keeps the samples",
+}
+
 // Open starts the embedded server (nats.url empty) or connects to the
 // configured one. An unreachable external server is not an error: the
 // connection keeps trying and alerts wait in the spool meanwhile.
@@ -85,6 +92,7 @@ func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
 	b := &Bus{log: log}
 	if !cfg.EmbeddedNATS() {
 		b.client = ClientFromConfig(n, "trapline")
+		b.client.Meanwhile = roleMeanwhile[cfg.Role]
 		nc, err := Connect(b.client, log)
 		if err != nil {
 			return nil, fmt.Errorf("nats.url: %w", err)

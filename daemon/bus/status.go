@@ -19,6 +19,9 @@ type StreamStatus struct {
 	Breaths   uint64    `json:"breaths"`
 	Active    int64     `json:"alerts_active"`
 	Restarts  uint64    `json:"restarts"`
+	// Worker names the scale-out worker that analyses the stream (empty in
+	// role all).
+	Worker string `json:"worker,omitempty"`
 }
 
 // Marshal encodes the heartbeat as JSON.

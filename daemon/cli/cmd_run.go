@@ -3,7 +3,6 @@ package cli
 import (
 	"fmt"
 	"io"
-	"time"
 
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
@@ -72,7 +71,7 @@ func configLogger(w io.Writer, level, format string) (zerolog.Logger, error) {
 	}
 	out := w
 	if format == "console" {
-		out = zerolog.ConsoleWriter{Out: w, TimeFormat: time.TimeOnly, NoColor: true}
+		out = zerolog.ConsoleWriter{Out: w, TimeFormat: consoleTimeFormat, NoColor: true}
 	}
 	return zerolog.New(out).Level(lvl).With().Timestamp().Logger(), nil
 }

@@ -1,4 +1,4 @@
-package daemon
+package scaleout
 
 import (
 	"context"
@@ -13,6 +13,7 @@ import (
 	"trapline/alerts"
 	"trapline/alerts/pipeline"
 	"trapline/analyze"
+	"trapline/daemon/bus"
 	"trapline/ingest"
 )
 
@@ -36,6 +37,10 @@ type streamRun struct {
 	lastBreath     int // last published breath number
 	seq            uint64
 	dirty          bool
+	breaths        uint64  // breaths published by this runner
+	lastS, periodS float64 // last sample time; smallest interval seen
+	haveLast       bool
+	status         time.Time // last status heartbeat
 }
 
 // partition is the state of one partition runner.
@@ -93,7 +98,10 @@ func (pt *partition) consume(ctx context.Context, start time.Time) (<-chan jetst
 	if err != nil {
 		return nil, nil, nil, fmt.Errorf("consumer of partition %d: %w", p, err)
 	}
-	it, err := cons.Messages(jetstream.PullMaxMessages(512))
+	// Short heartbeats: a consumer whose server went away (a node lost,
+	// a leader moved) is noticed after two missed heartbeats, 2 s, and
+	// made again by the ordered consumer, instead of after the 30 s default.
+	it, err := cons.Messages(jetstream.PullMaxMessages(512), jetstream.PullExpiry(5*time.Second), jetstream.PullHeartbeat(time.Second))
 	if err != nil {
 		return nil, nil, nil, fmt.Errorf("consume partition %d: %w", p, err)
 	}
@@ -253,6 +261,7 @@ func (pt *partition) message(ctx context.Context, m jetstream.Msg) error {
 		}
 	}
 	sr.seq = seq
+	sr.gaps()
 	if sr.warm {
 		sr.pl.Push(sr.buf, warmSink{sr})
 		return nil
@@ -280,8 +289,11 @@ type liveSink struct {
 func (l *liveSink) Breath(b *analyze.Breath) {
 	b.Seq += l.sr.off
 	l.sr.lastBreath = b.Seq
-	l.pt.w.bull.Breath(b)
-	l.pt.w.m.breaths.WithLabelValues(l.sr.id).Inc()
+	// The id makes a breath published again after a hand-over (the replayed
+	// stretch) a duplicate the breaths stream drops.
+	l.pt.w.bull.BreathWithID(b, l.sr.id+"/"+strconv.Itoa(b.Seq)+"/"+strconv.FormatFloat(b.StartS, 'f', 3, 64))
+	l.sr.breaths++
+	l.pt.w.host.CountBreath(l.sr.id)
 }
 
 // Alert gathers an alert event. Its breath number needs no mapping: Breath
@@ -301,7 +313,7 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 		if err := pt.w.pub.PublishNow(ctx, evs[i]); err != nil {
 			return err
 		}
-		pt.w.m.alerts.WithLabelValues(sr.id, evs[i].Condition, string(evs[i].State)).Inc()
+		pt.w.host.CountAlert(sr.id, evs[i].Condition, string(evs[i].State))
 	}
 	return pt.saveStream(ctx, sr)
 }
@@ -318,6 +330,7 @@ func (pt *partition) tick(ctx context.Context, now time.Time) error {
 		if sr.warm {
 			continue
 		}
+		pt.heartbeat(sr, now)
 		evs = evs[:0]
 		sr.pl.TickTo(now, &liveSink{pt: pt, sr: sr, evs: &evs})
 		if err := pt.deliver(ctx, sr, evs); err != nil {
@@ -325,4 +338,43 @@ func (pt *partition) tick(ctx context.Context, now time.Time) error {
 		}
 	}
 	return nil
+}
+
+// statusEvery is the period of a stream's status heartbeat from its owner.
+const statusEvery = 5 * time.Second
+
+// heartbeat publishes the stream's status (<prefix>.status.<stream>) from
+// the worker that owns it, every statusEvery: a stream whose heartbeat
+// stops, or says connected false, is stalled. Connected means samples were
+// stored in the last 3 s.
+func (pt *partition) heartbeat(sr *streamRun, now time.Time) {
+	if now.Sub(sr.status) < statusEvery {
+		return
+	}
+	sr.status = now
+	st := bus.StreamStatus{Type: "status", Schema: 1, Stream: sr.id, Time: now.UTC(), Running: true,
+		Connected: now.Sub(sr.wall) < 3*time.Second, Breaths: sr.breaths, Worker: pt.w.id}
+	if b, err := st.Marshal(); err == nil {
+		pt.w.bull.Status(sr.id, b)
+	}
+}
+
+// gaps reports holes in the stream's sample times to the pipeline as a
+// source reports them (a gap longer than 1.5 periods, the period being the
+// smallest interval seen), so that the sample-gaps alarm is raised for a
+// batch the edge had to drop as well as for one its source missed: an
+// edge drop is never silent downstream.
+func (sr *streamRun) gaps() {
+	for _, smp := range sr.buf {
+		if sr.haveLast {
+			d := smp.TimeS - sr.lastS
+			if d > 0 && (sr.periodS == 0 || d < sr.periodS) {
+				sr.periodS = d
+			}
+			if sr.periodS > 0 && d > 1.5*sr.periodS {
+				sr.pl.Status(ingest.Event{Stream: sr.id, Status: ingest.StatusGap, GapS: d - sr.periodS}, sr.wall)
+			}
+		}
+		sr.lastS, sr.haveLast = smp.TimeS, true
+	}
 }

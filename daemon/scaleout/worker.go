@@ -1,4 +1,4 @@
-package daemon
+package scaleout
 
 import (
 	"context"
@@ -46,7 +46,7 @@ type worker struct {
 	pub   *alerts.Publisher // direct: the samples stream and the checkpoints are the durable log
 	bull  *bus.Bulletin
 	tick  time.Duration
-	m     *metrics
+	host  Host
 	// routes maps a stream id to the acknowledgement queue of the
 	// partition runner that analyses it here.
 	routes sync.Map
@@ -55,18 +55,24 @@ type worker struct {
 // streamAck is an acknowledgement request on its way to a partition runner.
 type streamAck struct {
 	stream string
-	req    ackRequest
+	req    ackReq
+}
+
+// ackReq carries an acknowledgement to the runner that owns the stream.
+type ackReq struct {
+	ID, By string
+	Reply  chan error
 }
 
 // errFenced means another worker has written the partition's state since
 // this one read it: it owns the partition now.
 var errFenced = errors.New("fenced: another worker owns the partition now")
 
-// runWorker runs the worker role until ctx is cancelled.
-func (d *Daemon) runWorker(ctx context.Context) error {
-	cfg := d.cfg
+// RunWorker runs the worker role until ctx is cancelled.
+func RunWorker(ctx context.Context, h Host) error {
+	cfg := h.Config
 	so := &cfg.ScaleOut
-	b, err := bus.Open(cfg, d.log)
+	b, err := bus.Open(cfg, h.Log)
 	if err != nil {
 		return err
 	}
@@ -81,31 +87,15 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	}
 	w := &worker{
 		cfg: cfg, id: id, names: newScaleNames(cfg.NATS.SubjectPrefix), js: js,
-		log:  d.log.With().Str("role", "worker").Str("worker", id).Logger(),
-		subj: alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}, tick: d.opts.TickEvery, m: d.m,
+		log:  h.Log.With().Str("role", "worker").Str("worker", id).Logger(),
+		subj: alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}, tick: h.TickEvery, host: h,
 	}
 	if w.tick <= 0 {
 		w.tick = time.Second
 	}
 	reps := scaleReplicas(b.Conn, so)
-	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
-		return fmt.Errorf("samples stream: %w", err)
-	}
-	sc := cfg.JetStream()
-	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
-		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
-		return err
-	}
-	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
-		return alerts.EnsureStreams(ctx, js, sc)
-	}); err != nil {
-		return fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
-	}
-	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
+	mkv, err := w.ensureLayout(ctx, b, reps)
 	if err != nil {
-		return fmt.Errorf("membership bucket %s: %w", w.names.members, err)
-	}
-	if err := w.ensureStateBucket(ctx, reps); err != nil {
 		return err
 	}
 	w.bull = bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, w.log)
@@ -117,10 +107,10 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 	defer func() { _ = ackSub.Unsubscribe() }()
 
 	g, gctx := errgroup.WithContext(ctx)
-	if err := d.startRoleHTTP(gctx, g, b.Conn, w.bull.Dropped); err != nil {
+	if err := h.StartHTTP(gctx, g, b.Conn, w.bull.Dropped); err != nil {
 		return err
 	}
-	d.ready.set("membership", func() error {
+	h.SetReady("membership", func() error {
 		if !slices.Contains(mem.live(time.Now()), id) {
 			return errors.New("not a live member yet")
 		}
@@ -135,8 +125,8 @@ func (d *Daemon) runWorker(ctx context.Context) error {
 		return w.assign(gctx, mem.changed)
 	})
 	w.log.Info().Int("partitions", so.Partitions).Int("replicas", reps).Str("nats", b.URL).Msg("trapline worker running")
-	if d.opts.Ready != nil {
-		d.opts.Ready(Info{NATSURL: b.URL, Client: b.ClientOptions("")})
+	if h.Ready != nil {
+		h.Ready(b)
 	}
 	err = g.Wait()
 	w.log.Info().Msg("trapline worker stopped")
@@ -169,7 +159,7 @@ func (w *worker) ackService() *bus.AckService {
 			if !ok {
 				return fmt.Errorf("stream %s is being handed over; try again", tok)
 			}
-			req := streamAck{stream: tok, req: ackRequest{ID: body.ID, By: body.By, Reply: make(chan error, 1)}}
+			req := streamAck{stream: tok, req: ackReq{ID: body.ID, By: body.By, Reply: make(chan error, 1)}}
 			select {
 			case v.(chan streamAck) <- req:
 			case <-ctx.Done():
@@ -187,89 +177,12 @@ func (w *worker) ackService() *bus.AckService {
 	}
 }
 
-// assign starts and stops the partition runners as the live members change.
-func (w *worker) assign(ctx context.Context, changed <-chan []string) error {
-	type runner struct {
-		stop context.CancelFunc
-		done chan struct{}
-	}
-	running := map[int]*runner{}
-	defer func() {
-		for _, r := range running {
-			r.stop()
-		}
-		for _, r := range running {
-			<-r.done
-		}
-	}()
-	for {
-		var live []string
-		select {
-		case <-ctx.Done():
-			return nil
-		case live = <-changed:
-		}
-		want := map[int]bool{}
-		for _, p := range ownedPartitions(w.id, live, w.cfg.ScaleOut.Partitions) {
-			want[p] = true
-		}
-		var lost, gained []int
-		for p, r := range running {
-			if !want[p] {
-				r.stop()
-				<-r.done
-				delete(running, p)
-				lost = append(lost, p)
-			}
-		}
-		for p := range want {
-			if running[p] != nil {
-				continue
-			}
-			pctx, stop := context.WithCancel(ctx)
-			r := &runner{stop: stop, done: make(chan struct{})}
-			running[p] = r
-			gained = append(gained, p)
-			go func() {
-				defer close(r.done)
-				w.supervisePartition(pctx, p)
-			}()
-		}
-		if len(lost)+len(gained) > 0 {
-			w.log.Info().Ints("gained", gained).Ints("lost", lost).Int("owned", len(running)).Msg("partitions reassigned")
-		}
-	}
-}
-
-// supervisePartition runs a partition until ctx ends, starting it again
-// after a failure (or after being fenced out while this worker still
-// believes it owns the partition, which lasts until the views agree).
-func (w *worker) supervisePartition(ctx context.Context, p int) {
-	log := w.log.With().Int("partition", p).Logger()
-	wait := time.Duration(0)
-	for {
-		err := protect(ctx, func(ctx context.Context) error { return w.runPartition(ctx, p, log) })
-		if ctx.Err() != nil {
-			return
-		}
-		wait = min(max(2*wait, 250*time.Millisecond), 10*time.Second)
-		log.Warn().Err(err).Dur("restart_in", wait).Msg("partition stopped")
-		t := time.NewTimer(wait)
-		select {
-		case <-ctx.Done():
-			t.Stop()
-			return
-		case <-t.C:
-		}
-	}
-}
-
 // ensureStateBucket opens or creates the bucket of the checkpoints.
 func (w *worker) ensureStateBucket(ctx context.Context, reps int) error {
 	err := retry(ctx, w.log, "state bucket", func(ctx context.Context) error {
 		var err error
 		if w.state, err = w.js.KeyValue(ctx, w.names.state); err == nil {
-			return nil
+			return checkReplicas(ctx, w.js, "KV_"+w.names.state, reps)
 		}
 		w.state, err = w.js.CreateOrUpdateKeyValue(ctx, jetstream.KeyValueConfig{
 			Bucket: w.names.state, Description: "trapline per-stream alarm state and partition checkpoints",
@@ -281,4 +194,48 @@ func (w *worker) ensureStateBucket(ctx context.Context, reps int) error {
 		return fmt.Errorf("state bucket %s: %w", w.names.state, err)
 	}
 	return nil
+}
+
+// ensureLayout checks the replicas of every existing stream and bucket,
+// then creates or updates them all with reps replicas, and returns the
+// membership bucket.
+func (w *worker) ensureLayout(ctx context.Context, b *bus.Bus, reps int) (jetstream.KeyValue, error) {
+	cfg, so, js := w.cfg, &w.cfg.ScaleOut, w.js
+	sc := cfg.JetStream()
+	sc.Replicas = reps // one replica count for every stream and bucket
+	// Nothing is created or changed before every existing stream and
+	// bucket is known to keep its replicas.
+	if err := retry(ctx, w.log, "replica check", func(ctx context.Context) error {
+		for _, name := range []string{w.names.samples, sc.Alerts, sc.Breaths, "KV_" + w.names.members, "KV_" + w.names.state} {
+			if err := checkReplicas(ctx, js, name, reps); err != nil {
+				return err
+			}
+		}
+		return nil
+	}); err != nil {
+		return nil, err
+	}
+	var err error
+	if w.pub, err = alerts.NewDirectPublisher(b.Conn, alerts.PublisherOptions{Streams: sc, Log: w.log,
+		RequestTimeout: cfg.NATS.PublishTimeout, RetryMin: 100 * time.Millisecond, RetryMax: 2 * time.Second}); err != nil {
+		return nil, err
+	}
+	if err := retry(ctx, w.log, "alert and breath streams", func(ctx context.Context) error {
+		return alerts.EnsureStreams(ctx, js, sc)
+	}); err != nil {
+		return nil, fmt.Errorf("jetstream streams (nats.alerts_stream, nats.breaths_stream): %w", err)
+	}
+	// The samples stream comes after the alert and breath streams, so that
+	// its byte cap, fitted to the store, leaves them their room.
+	if err := ensureSamplesStream(ctx, js, w.names, so, reps, w.log); err != nil {
+		return nil, fmt.Errorf("samples stream: %w", err)
+	}
+	mkv, err := ensureMembersBucket(ctx, js, w.names.members, so.MemberTTL, reps, w.log)
+	if err != nil {
+		return nil, fmt.Errorf("membership bucket %s: %w", w.names.members, err)
+	}
+	if err := w.ensureStateBucket(ctx, reps); err != nil {
+		return nil, err
+	}
+	return mkv, nil
 }

@@ -1,4 +1,4 @@
-package daemon
+package scaleout
 
 import (
 	"context"
@@ -120,6 +120,10 @@ func (pt *partition) loadStreams(ctx context.Context) (time.Time, error) {
 		if rev == 0 {
 			continue
 		}
+		if pt.expired(rec.Time) {
+			pt.forget(ctx, k, rev)
+			continue
+		}
 		sr, err := pt.newStream(k[strings.LastIndexByte(k, '.')+1:])
 		if err != nil {
 			return start, err
@@ -149,7 +153,13 @@ func (pt *partition) checkpoint(ctx context.Context) error {
 	if pt.lastSeq <= pt.rec.Seq {
 		return nil // still replaying what is already covered
 	}
-	for _, sr := range pt.streams {
+	for id, sr := range pt.streams {
+		if !sr.dirty && sr.had && pt.expired(sr.wall) {
+			pt.forget(ctx, sr.key, sr.rev)
+			delete(pt.streams, id)
+			pt.w.routes.CompareAndDelete(id, pt.acks)
+			continue
+		}
 		if sr.dirty {
 			if err := pt.saveStream(ctx, sr); err != nil {
 				return err
@@ -163,4 +173,22 @@ func (pt *partition) checkpoint(ctx context.Context) error {
 	}
 	pt.rec, pt.rev = rec, rev
 	return nil
+}
+
+// expired tells whether a stream last stored samples longer than
+// scaleout.state_expiry before now: it has been removed or renamed.
+func (pt *partition) expired(last time.Time) bool {
+	return !last.IsZero() && time.Since(last) > pt.w.cfg.ScaleOut.StateExpiry
+}
+
+// forget deletes an expired stream's checkpoint, fenced by its revision
+// (a stream that came back in the meantime keeps it).
+func (pt *partition) forget(ctx context.Context, key string, rev uint64) {
+	cctx, cancel := context.WithTimeout(ctx, pt.w.cfg.NATS.PublishTimeout+time.Second)
+	defer cancel()
+	if err := pt.w.state.Delete(cctx, key, jetstream.LastRevision(rev)); err != nil {
+		pt.log.Warn().Err(err).Str("key", key).Msg("could not remove the state of an expired stream")
+		return
+	}
+	pt.log.Info().Str("key", key).Dur("state_expiry", pt.w.cfg.ScaleOut.StateExpiry).Msg("state of a stream silent too long removed")
 }

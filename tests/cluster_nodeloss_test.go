@@ -1,0 +1,286 @@
+package tests
+
+import (
+	"context"
+	"fmt"
+	"strconv"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/ingest"
+)
+
+// arrivals records, per stream, the longest pause between two breath
+// records seen after start.
+type arrivals struct {
+	mu    sync.Mutex
+	from  time.Time
+	last  map[string]time.Time
+	worst map[string]time.Duration
+	at    map[string]time.Duration // start of the worst pause, from start
+}
+
+func (a *arrivals) add(m *nats.Msg) {
+	stream := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
+	now := time.Now()
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	if !a.from.IsZero() {
+		ref := a.from
+		if prev := a.last[stream]; prev.After(ref) {
+			ref = prev
+		}
+		if gap := now.Sub(ref); gap > a.worst[stream] {
+			a.worst[stream] = gap
+			a.at[stream] = ref.Sub(a.from)
+		}
+	}
+	a.last[stream] = now
+}
+
+// start begins measuring pauses from now.
+func (a *arrivals) start() {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	a.from = time.Now()
+}
+
+// longest returns the longest pause of any stream, its stream and when it
+// began.
+func (a *arrivals) longest() (string, time.Duration, time.Duration) {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	var id string
+	var d time.Duration
+	for s, g := range a.worst {
+		if g > d {
+			id, d = s, g
+		}
+	}
+	return id, d, a.at[id]
+}
+
+// streamLeader returns the node that leads a stream, or -1.
+func (c *cluster) streamLeader(name string) int {
+	for i, s := range c.srv {
+		if s != nil && s.Running() && s.JetStreamIsStreamLeader("$G", name) {
+			return i
+		}
+	}
+	return -1
+}
+
+// publisherNode returns the node whose client connection has received the
+// most messages: the edge's, which publishes every sample message.
+func (c *cluster) publisherNode() int {
+	best, most := -1, int64(-1)
+	for i, s := range c.srv {
+		if s == nil || !s.Running() {
+			continue
+		}
+		cz, err := s.Connz(&server.ConnzOptions{Sort: server.ByInMsgs, Limit: 1})
+		if err != nil || len(cz.Conns) == 0 {
+			continue
+		}
+		if n := cz.Conns[0].InMsgs; n > most {
+			best, most = i, n
+		}
+	}
+	return best
+}
+
+// restartNode shuts node i down and starts it again on its store after
+// down; it returns when the node is back.
+func (c *cluster) restartNode(t *testing.T, i int, down time.Duration) {
+	t.Helper()
+	c.srv[i].Shutdown()
+	c.srv[i].WaitForShutdown()
+	c.srv[i] = nil
+	time.Sleep(down) // bounded: the node stays away this long
+	c.srv[i] = c.start(t, c.opts[i])
+}
+
+// fileSamples counts the samples of a recording as a source reads them.
+func fileSamples(t *testing.T, path string) int {
+	t.Helper()
+	src, err := ingest.Open("file://"+path, ingest.Options{Stream: "x"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	n := 0
+	if err := src.Run(t.Context(), func(ev ingest.Event) { n += len(ev.Samples) }); err != nil {
+		t.Fatal(err)
+	}
+	return n
+}
+
+// storedSamples reads the whole samples stream: per stream the samples
+// stored and the batch sequences of the message ids, each with its count.
+func storedSamples(ctx context.Context, js jetstream.JetStream, limit time.Duration) (map[string]int, map[string]map[uint64]int, error) {
+	ctx, cancel := context.WithTimeout(ctx, limit)
+	defer cancel()
+	c, err := js.OrderedConsumer(ctx, "TRAPLINE_SAMPLES", jetstream.OrderedConsumerConfig{})
+	if err != nil {
+		return nil, nil, err
+	}
+	info, err := c.Info(ctx)
+	if err != nil {
+		return nil, nil, err
+	}
+	samples, seqs := map[string]int{}, map[string]map[uint64]int{}
+	for left := info.NumPending; left > 0; {
+		batch, err := c.Fetch(int(min(left, 1000)), jetstream.FetchMaxWait(3*time.Second))
+		if err != nil {
+			return nil, nil, err
+		}
+		n := 0
+		for m := range batch.Messages() {
+			n++
+			id := m.Headers().Get(jetstream.MsgIDHeader)
+			parts := strings.Split(id, "/")
+			if len(parts) != 3 {
+				return nil, nil, fmt.Errorf("stored message without a batch id: %q", id)
+			}
+			seq, err := strconv.ParseUint(parts[2], 10, 64)
+			if err != nil {
+				return nil, nil, fmt.Errorf("message id %q: %w", id, err)
+			}
+			if seqs[parts[0]] == nil {
+				seqs[parts[0]] = map[uint64]int{}
+			}
+			seqs[parts[0]][seq]++
+			dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: parts[0]}, func(string, ingest.Sample) { samples[parts[0]]++ })
+			if err != nil {
+				return nil, nil, err
+			}
+			if _, err := dec.Write(m.Data()); err != nil {
+				return nil, nil, fmt.Errorf("message %s: %w", id, err)
+			}
+		}
+		if batch.Error() != nil {
+			return nil, nil, batch.Error()
+		}
+		if n == 0 {
+			return nil, nil, fmt.Errorf("samples stream: %d pending, none delivered", left)
+		}
+		left -= uint64(n)
+	}
+	return samples, seqs, nil
+}
+
+// checkSamplesOnce checks that every sample of every stream's recording is
+// stored exactly once: the message ids of a stream are 0..n-1, each once,
+// and the samples they hold are those of the file.
+func (s *scaleSetup) checkSamplesOnce(t *testing.T) {
+	t.Helper()
+	want := map[string]int{}
+	for _, f := range s.files {
+		if _, ok := want[f]; !ok {
+			want[f] = fileSamples(t, f)
+		}
+	}
+	var samples map[string]int
+	var seqs map[string]map[uint64]int
+	var err error
+	if !pollUntil(30*time.Second, func() bool {
+		samples, seqs, err = storedSamples(t.Context(), s.js, 20*time.Second)
+		if err != nil {
+			return false
+		}
+		for id, f := range s.files {
+			if samples[id] < want[f] {
+				return false
+			}
+		}
+		return true
+	}) && err != nil {
+		t.Fatalf("read the samples stream: %v", err)
+	}
+	total := 0
+	for id, f := range s.files {
+		total += samples[id]
+		if samples[id] != want[f] {
+			t.Errorf("stream %s: %d samples stored, the recording has %d", id, samples[id], want[f])
+		}
+		checkBatches(t, id, seqs[id])
+	}
+	t.Logf("samples stored: %d in %d streams, each once", total, len(s.files))
+}
+
+// TestClusterNodeLossLosesNothing plays 10 beds through an edge while the
+// node leading the samples stream, and then the node carrying the edge's
+// connection, are shut down (each restarted after 3 s). Every sample is
+// stored exactly once, the alert events equal the single-node analysis,
+// and no stream goes without a breath record for long (aim < 5 s; the
+// test fails at 10 s, see below).
+func TestClusterNodeLossLosesNothing(t *testing.T) {
+	s := newScaleSetup(t, 10, 300*time.Second, 12)
+	wantEv, _ := s.want(t)
+	arr := &arrivals{last: map[string]time.Time{}, worst: map[string]time.Duration{}, at: map[string]time.Duration{}}
+	if _, err := s.nc.Subscribe("trapline.breath.>", arr.add); err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer cancel()
+	var wg sync.WaitGroup
+	defer wg.Wait()
+	defer cancel()
+	for _, w := range s.workers {
+		wg.Add(1)
+		go func() { defer wg.Done(); s.run(ctx, w) }()
+	}
+	s.waitMembers(t, 2)
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+	if !pollUntil(30*time.Second, func() bool { per, _ := s.breaths.counts(); return len(per) == len(s.files) }) {
+		t.Fatal("not every stream produced a breath within 30 s")
+	}
+	arr.start()
+	leader := s.c.streamLeader("TRAPLINE_SAMPLES")
+	if leader < 0 {
+		t.Fatal("no leader of the samples stream")
+	}
+	t.Logf("%.1f s: shutting down n%d (samples stream leader)", time.Since(arr.from).Seconds(), leader)
+	s.c.restartNode(t, leader, 3*time.Second)
+	s.c.waitReady(t)
+	edgeNode := s.c.publisherNode()
+	if edgeNode < 0 {
+		t.Fatal("no node carries the edge")
+	}
+	t.Logf("%.1f s: shutting down n%d (the edge's node)", time.Since(arr.from).Seconds(), edgeNode)
+	s.c.restartNode(t, edgeNode, 3*time.Second)
+
+	got := s.stored(t, len(wantEv))
+	checkOnce(t, got, got)
+	onlyWant, onlyGot := diffLists(wantEv, clinical(got))
+	if len(onlyWant)+len(onlyGot) > 0 {
+		t.Errorf("alerts differ from the single-node run across the node losses:\nmissing %v\nextra %v", onlyWant, onlyGot)
+	}
+	s.checkSamplesOnce(t)
+	id, gap, at := arr.longest()
+	t.Logf("%d clinical alert events; longest pause of breath records: %.1f s (%s, from %.1f s)", len(wantEv), gap.Seconds(), id, at.Seconds())
+	// The aim is under 5 s (3.6 and 3.9 s measured alone); with the whole
+	// suite running on two cores it reached 7.6 s, so the test holds the
+	// line at 10 s and logs the figure.
+	if gap >= 10*time.Second {
+		t.Errorf("stream %s went %.1f s without a breath record (want < 10 s here, aim < 5 s)", id, gap.Seconds())
+	}
+}
+
+// checkBatches checks that a stream's message ids are 0..n-1, each once:
+// no batch lost between two stored ones, none stored twice.
+func checkBatches(t *testing.T, id string, seqs map[uint64]int) {
+	t.Helper()
+	for q := range uint64(len(seqs)) {
+		if seqs[q] != 1 {
+			t.Errorf("stream %s: batch %d stored %d times (of %d batches)", id, q, seqs[q], len(seqs))
+			return
+		}
+	}
+}
