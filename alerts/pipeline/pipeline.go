@@ -10,6 +10,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/config"
 	"trapline/ingest"
 )
 
@@ -56,6 +57,9 @@ type Options struct {
 	// Stats, when set, reads the source's counters for the decoder error
 	// rate; they are sampled on every tick.
 	Stats func() ingest.Stats
+	// Version is the program version stamped on every breath record and
+	// alert event; empty means config.ProgramVersion().
+	Version string
 }
 
 // Pipeline is the analysis of one stream. It owns the analyzer, the
@@ -75,6 +79,9 @@ type Pipeline struct {
 	an     *analyze.Analyzer
 	judge  *alerts.Judge
 	alarms alerts.LifecycleConfig
+
+	// version and digest are the provenance of every record.
+	version, digest string
 
 	now   func() time.Time
 	clock *alerts.OfflineClock // set offline
@@ -100,16 +107,23 @@ func New(o Options) *Pipeline {
 	if now == nil {
 		now = time.Now
 	}
-	return &Pipeline{
+	if o.Version == "" {
+		o.Version = config.ProgramVersion()
+	}
+	p := &Pipeline{
 		stream:     o.Stream,
 		an:         analyze.NewAnalyzer(o.Stream, o.Analysis),
 		judge:      alerts.NewJudge(o.Stream, o.Detectors, o.Alarms),
 		alarms:     o.Alarms,
+		version:    o.Version,
+		digest:     config.AnalysisDigest(o.Analysis, o.Detectors, o.Alarms),
 		now:        now,
 		stats:      o.Stats,
 		created:    now(),
 		lastBreath: -1,
 	}
+	p.judge.SetProvenance(p.version, p.digest)
+	return p
 }
 
 // NewOffline returns a pipeline for a recording whose stream time 0 is wall
@@ -180,6 +194,7 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 		}
 		p.breath = b
 		p.breath.Stream = p.stream
+		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
 		p.lastBreath = b.Seq
 		sink.Breath(&p.breath)
 		p.judge.Breath(&p.breath, wall, sink.Alert)
@@ -233,7 +248,18 @@ func (p *Pipeline) Finish(tS float64, sink Sink) {
 // Ack acknowledges the alarm with id on behalf of by (may be empty).
 func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
+	for i := range evs {
+		p.judge.Stamp(&evs[i])
+	}
 	return Output{Alerts: evs}, err
+}
+
+// Finding passes a finding about the program itself (not the signal),
+// such as an impaired recording, through the stream's alarm lifecycle at
+// wall time now.
+func (p *Pipeline) Finding(f analyze.Finding, now time.Time) Output {
+	p.judge.Finding(f, now, p.out.Alert)
+	return p.takeOut()
 }
 
 // Flush ends the stream: an open breath is incomplete and is not reported,

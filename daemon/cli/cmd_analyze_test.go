@@ -136,11 +136,16 @@ func TestAnalyzeBadInput(t *testing.T) {
 	}{
 		{"empty file", []string{"analyze", write("empty.csv", nil)}, ExitError, "no samples", true, ""},
 		{"random bytes", []string{"analyze", write("random.bin", random)}, ExitError, "no samples", true, ""},
-		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open recording", true, ""},
+		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open input", true, ""},
+		{"header only", []string{"analyze", write("head.csv", []byte("time[s],pressure[cmH2O],flow[L/min]\n"))}, ExitError,
+			"no samples after its header", true, ""},
+		{"every line bad", []string{"analyze", write("bad.csv", []byte("a;b;c\nd;e;f\n"))}, ExitError,
+			"with the columns assumed \"time[s],pressure[cmH2O],flow[L/min]\"", true, ""},
 		{"flat line", []string{"analyze", write("flat.csv", []byte(flat.String()))}, ExitOK, "no complete breath", false,
 			`"condition":"signal-implausible","class":"technical","priority":"medium","state":"raised"`},
 		{"bad columns", []string{"analyze", "--columns", "time[fortnight],flow", write("x.csv", []byte("1,2\n"))}, ExitUsage, "columns", true, ""},
-		{"no argument", []string{"analyze"}, ExitUsage, "arg", true, ""},
+		{"no argument", []string{"analyze"}, ExitUsage, "give a recording file, a recording directory or - for stdin", true, ""},
+		{"bad format", []string{"analyze", "--format", "csv", "-"}, ExitUsage, "want auto, text, binary or recording", true, ""},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
