@@ -13,6 +13,7 @@ import (
 	"trapline/alerts"
 	"trapline/config"
 	"trapline/daemon/bus"
+	"trapline/ingest/record"
 )
 
 // Options are hooks for callers that run the daemon in-process (the
@@ -23,6 +24,9 @@ type Options struct {
 	Ready func(Info)
 	// TickEvery overrides the period of the streams' time-based checks.
 	TickEvery time.Duration
+	// RecordFile, when set, creates the recording's segment files instead
+	// of the file system (tests play a full disk with it).
+	RecordFile func(path string) (record.File, error)
 }
 
 // Info tells an in-process caller where the daemon can be reached.
@@ -47,6 +51,7 @@ type Daemon struct {
 	nc      *nats.Conn
 	serving bool // the HTTP server runs (and closes its listener itself)
 	del     *delivery
+	rec     *recorder // nil when recording is off
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
 }
@@ -106,6 +111,16 @@ func (d *Daemon) Run(ctx context.Context) error {
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
+	// The recorder outlives the streams: it is closed (its buffer written,
+	// its segments synced) once every source has stopped.
+	rec, err := d.openRecorder(context.WithoutCancel(ctx))
+	if err != nil {
+		return err
+	}
+	d.rec = rec
+	if rec != nil {
+		defer rec.w.Close()
+	}
 	if err := d.addStreams(del); err != nil {
 		return err
 	}
@@ -132,6 +147,11 @@ func (d *Daemon) Run(ctx context.Context) error {
 		}
 		err := sg.Wait()
 		_ = ackSub.Unsubscribe()
+		if rec != nil {
+			if cerr := rec.w.Close(); cerr != nil {
+				d.log.Warn().Err(cerr).Msg("recording: closing the last segments failed")
+			}
+		}
 		return err
 	})
 	if httpSrv != nil {

@@ -258,6 +258,10 @@ func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 // such as an impaired recording, through the stream's alarm lifecycle at
 // wall time now.
 func (p *Pipeline) Finding(f analyze.Finding, now time.Time) Output {
+	if p.offline() {
+		now = p.clock.Wall(p.lastS)
+	}
+	f.TimeS, f.BreathSeq = p.streamNow(now), -1
 	p.judge.Finding(f, now, p.out.Alert)
 	return p.takeOut()
 }
