@@ -181,7 +181,7 @@ func (d *Daemon) ackService() *bus.AckService {
 			s := d.byToken[tok]
 			err := s.ack(ctx, req.ID, req.By)
 			if err == nil {
-				d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+				d.log.Info().Str("stream", s.spec.ID).Str("id", req.ID).Str("by", req.By).Str("why", req.Why).Msg("alert acknowledged")
 			}
 			return err
 		},

@@ -106,6 +106,9 @@ func (a *app) rootCommand() *cobra.Command {
 		a.simCommand(),
 		a.sweepCommand(),
 		a.versionCommand(),
+		a.configCommand(),
+		a.ackCommand(),
+		a.exportCommand(),
 	)
 	return root
 }
