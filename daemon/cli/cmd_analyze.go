@@ -271,7 +271,7 @@ func writeSummary(w io.Writer, bs []analyze.Breath) error {
 	}
 	for _, st := range streams {
 		s := analyze.Summarize(byStream[st])
-		row(st, "median", "", s, fmt.Sprintf("%d breaths, %d reliable", s.Breaths, s.Reliable))
+		row(st, "median", "", s, plural(s.Breaths, "breath", "breaths")+fmt.Sprintf(", %d reliable", s.Reliable))
 	}
 	if err := tw.Flush(); err != nil {
 		return err

@@ -96,7 +96,7 @@ func (a *app) settingsFrom(ctx context.Context, fs *pflag.FlagSet, f *predictFla
 	}
 	s := analyze.Summarize(bs)
 	if s.Reliable == 0 {
-		return fmt.Errorf("%s: no reliable breath (%d breaths) to estimate R and C from", f.from, s.Breaths)
+		return fmt.Errorf("%s: no reliable breath (of %s) to estimate R and C from", f.from, plural(s.Breaths, "breath", "breaths"))
 	}
 	pif := medianPIF(bs)
 	set := func(name string, dst *float64, v float64) {
