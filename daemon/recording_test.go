@@ -58,6 +58,7 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 	cfg := config.Default()
 	cfg.DataDir = t.TempDir()
 	cfg.NATS.Embedded.Port = 0
+	cfg.HTTP.Listen = ""
 	cfg.Recording.Enabled = true
 	cfg.Streams = []config.Stream{{ID: "bed-1", Source: "tcp-listen://127.0.0.1:" + strconv.Itoa(port)}}
 	if err := cfg.Validate(); err != nil {

@@ -32,6 +32,7 @@ func TestAckVerb(t *testing.T) {
 	cfg := config.Default()
 	cfg.DataDir = t.TempDir()
 	cfg.NATS.Embedded.Port = 0
+	cfg.HTTP.Listen = ""
 	cfg.Streams = []config.Stream{{ID: "bed-7", Source: "tcp-listen://127.0.0.1:" + port}}
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)

@@ -87,6 +87,9 @@ type offline struct {
 	start     time.Time
 	alerts    bool
 	pipelines map[string]*pipeline.Pipeline
+	// timing applies the live sources' timing checks (ingest.Timelines),
+	// so that re-analysis sees the samples the daemon saw.
+	timing    *ingest.Timelines
 	nAlerts   int
 	keptAlert []alerts.Event // for --summary
 	out       *bufio.Writer
@@ -112,6 +115,16 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 	if pl == nil {
 		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
 		o.pipelines[stream] = pl
+	}
+	if o.timing != nil {
+		var gap *ingest.Event
+		var ok bool
+		if s, gap, ok = o.timing.Admit(stream, s); !ok {
+			return
+		}
+		if gap != nil {
+			pl.Status(*gap, time.Time{})
+		}
 	}
 	pl.PushOne(s, o)
 }
@@ -157,6 +170,7 @@ func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offli
 	if err != nil {
 		return input.Stats{}, err
 	}
+	o.timing = ingest.NewTimelines(f.in.sampleRate)
 	defer in.Close()
 	st, err := in.Run(ctx, o.sample)
 	if err != nil {
