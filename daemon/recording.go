@@ -3,6 +3,7 @@ package daemon
 import (
 	"context"
 	"fmt"
+	"sync"
 	"sync/atomic"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -21,6 +22,7 @@ const CondRecordingImpaired = "recording-impaired"
 // fed through each source's tap (docs/recording.md).
 type recorder struct {
 	w     *record.Writer
+	once  sync.Once                    // closes w
 	state atomic.Pointer[record.Stats] // the writer's last reported state
 }
 
@@ -51,6 +53,31 @@ func (d *Daemon) openRecorder(ctx context.Context) (*recorder, error) {
 	d.m.reg.MustRegister(&recordCollector{w: w})
 	log.Info().Str("dir", opts.Dir).Msg("recording raw input")
 	return r, nil
+}
+
+// startRecorder opens the recording when it is enabled. The recorder
+// outlives the streams: closeRecorder, once every source has stopped,
+// writes its buffer and syncs its segments.
+func (d *Daemon) startRecorder(ctx context.Context) error {
+	rec, err := d.openRecorder(context.WithoutCancel(ctx))
+	if err != nil {
+		return err
+	}
+	d.rec = rec
+	return nil
+}
+
+// closeRecorder closes the recording, if any; a second call does nothing
+// more.
+func (d *Daemon) closeRecorder() {
+	if d.rec == nil {
+		return
+	}
+	d.rec.once.Do(func() {
+		if err := d.rec.w.Close(); err != nil {
+			d.log.Warn().Err(err).Msg("recording: closing the last segments failed")
+		}
+	})
 }
 
 // finding returns the recording-impaired finding of the moment: present

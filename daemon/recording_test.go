@@ -100,6 +100,9 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 		t.Fatal(err)
 	}
 
+	if err := nc.Flush(); err != nil { // the subscriptions are in place on the server
+		t.Fatal(err)
+	}
 	// A patient at 10× real time over TCP for the length of the test.
 	simCtx, stopSim := context.WithCancel(ctx)
 	defer stopSim()

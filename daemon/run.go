@@ -111,16 +111,10 @@ func (d *Daemon) Run(ctx context.Context) error {
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
-	// The recorder outlives the streams: it is closed (its buffer written,
-	// its segments synced) once every source has stopped.
-	rec, err := d.openRecorder(context.WithoutCancel(ctx))
-	if err != nil {
+	if err := d.startRecorder(ctx); err != nil {
 		return err
 	}
-	d.rec = rec
-	if rec != nil {
-		defer rec.w.Close()
-	}
+	defer d.closeRecorder()
 	if err := d.addStreams(del); err != nil {
 		return err
 	}
@@ -147,11 +141,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		}
 		err := sg.Wait()
 		_ = ackSub.Unsubscribe()
-		if rec != nil {
-			if cerr := rec.w.Close(); cerr != nil {
-				d.log.Warn().Err(cerr).Msg("recording: closing the last segments failed")
-			}
-		}
+		d.closeRecorder()
 		return err
 	})
 	if httpSrv != nil {

@@ -129,6 +129,9 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
+	if err := nc.Flush(); err != nil { // the subscriptions are in place on the server
+		t.Fatal(err)
+	}
 	var sims sync.WaitGroup
 	for i, sc := range scenarios {
 		sims.Add(1)

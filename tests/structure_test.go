@@ -30,8 +30,6 @@ var sizeExceptions = map[string]bool{
 	"config/validate.go:validateNATS":                  true,
 	"daemon/bus/server.go:StartEmbedded":               true,
 	"daemon/cli/cmd_demo.go:runDemo":                   true,
-	"daemon/cli/cmd_sim.go:runSim":                     true,
-	"daemon/cli/cmd_sweep.go:runSweep":                 true,
 	"ingest/number.go:parseNumber":                     true,
 	"ingest/source.go":                                 true,
 	"simulator/params.go:validate":                     true,

@@ -71,6 +71,9 @@ func TestAckVerb(t *testing.T) {
 	}); err != nil {
 		t.Fatal(err)
 	}
+	if err := nc.Flush(); err != nil { // the subscriptions are in place on the server
+		t.Fatal(err)
+	}
 	go Run(ctx, []string{"sim", "--scenario", "hyperinflation", "--speed", "20", "--out", "tcp://127.0.0.1:" + port,
 		"--log-level", "error"}, nil, &strings.Builder{}, &strings.Builder{})
 

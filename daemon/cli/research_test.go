@@ -237,3 +237,25 @@ func equalJSON(a, b any) bool {
 	y, _ := json.Marshal(b)
 	return bytes.Equal(x, y)
 }
+
+// TestSimWardAndStreamColumn writes three patients on one output and reads
+// them back as three streams; a single patient with --stream carries its
+// stream id in a column of the text.
+func TestSimWardAndStreamColumn(t *testing.T) {
+	ward := run(t, ExitOK, nil, "sim", "--patients", "3", "--ward", "stable,bronchospasm", "--speed", "max",
+		"--duration", "30s", "--sample-rate", "50")
+	breaths, _ := records(t, run(t, ExitOK, []byte(ward), "analyze", "-"))
+	per := map[any]int{}
+	for _, b := range breaths {
+		per[b["stream"]]++
+	}
+	if len(per) != 3 || per["bed-1"] == 0 || per["bed-2"] == 0 || per["bed-3"] == 0 {
+		t.Errorf("breaths per stream %v, want bed-1, bed-2 and bed-3", per)
+	}
+	one := run(t, ExitOK, nil, "sim", "--stream", "icu-9", "--speed", "max", "--duration", "10s")
+	head, _, _ := strings.Cut(one, "\n")
+	if !strings.HasPrefix(head, "stream,") || !strings.Contains(one, "\nicu-9,") {
+		t.Errorf("sim --stream: header %q and no icu-9 lines", head)
+	}
+	run(t, ExitUsage, nil, "sim", "--patients", "2", "--stream", "x")
+}
