@@ -44,6 +44,23 @@ const (
 	// FlagPEEPiMismatch: the two intrinsic PEEP estimates disagree beyond
 	// the configured tolerance (flow limitation, heterogeneity or effort).
 	FlagPEEPiMismatch = "peepi-mismatch"
+	// FlagPEEPiBound: the end of expiration is slower than a single time
+	// constant (units with unequal time constants); the trapped volume and
+	// intrinsic PEEP are lower bounds, never zero when the flow says there
+	// is trapping.
+	FlagPEEPiBound = "peepi-bound"
+	// FlagRohrer: the residuals of the linear fit grow with flow; the
+	// resistance was fitted as K1 + K2·|V'| (Rohrer 1915) and intrinsic
+	// PEEP uses the resistance at the end-expiratory flow.
+	FlagRohrer = "rohrer"
+	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
+	// flow offset and a pressure-proportional leak estimated over many
+	// breaths (flow_offset_lpm and leak_lpm_per_cmh2o of the record) of at
+	// least 0.3 L/min at the mean airway pressure.
+	FlagOffsetCorrected = "offset-corrected"
+	// FlagSettingsChanged: the ventilator settings inferred from the
+	// waveform differ from those of the previous breaths.
+	FlagSettingsChanged = "settings-changed"
 )
 
 // phase is the segmentation state.
@@ -114,6 +131,22 @@ type Analyzer struct {
 	pendVol float64
 	inHoldT float64 // time the flow first rose above the trigger
 
+	// nextStartT is the onset of the inspiratory rise found when the
+	// previous breath finished: the start of the open breath.
+	nextStartT float64
+	// crossStartT is the flow crossing that opened the breath; its
+	// volumes are counted from it.
+	crossStartT float64
+
+	// Flow correction applied to every sample: a constant offset (L/s) and
+	// a leak conductance (L/s per cmH2O) estimated from the volume balance
+	// of past breaths (see balance).
+	offB, leakK float64
+	meanP       float64 // mean airway pressure of the breath the correction was last set on
+	bal         balance
+	prevTrapML  float64
+	settings    settingsTracker
+
 	ring ring
 	last Breath // the breath completed by the latest push
 }
@@ -143,6 +176,8 @@ func (a *Analyzer) Reset() {
 	a.inCand = false
 	a.ring.reset()
 	a.resetBreath()
+	a.settings.reset()
+	a.prevTrapML = math.NaN()
 }
 
 func (a *Analyzer) resetBreath() {
@@ -187,6 +222,8 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 		a.skipped++
 		return false
 	}
+	// The sensor's offset and the leak, as estimated so far.
+	f -= a.offB + a.leakK*p
 	if !a.havePrev {
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
@@ -296,6 +333,7 @@ func (a *Analyzer) begin() {
 	a.resetBreath()
 	a.ph = phaseInsp
 	a.startT = a.candT
+	a.crossStartT = a.candT
 	a.cur = a.pend
 	a.vol = a.pendVol
 	a.inCand = false
@@ -370,5 +408,6 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 	}
 	a.last = a.finish()
 	a.begin()
+	a.startT = a.nextStartT
 	return true
 }

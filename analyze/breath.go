@@ -8,7 +8,8 @@ import (
 )
 
 // BreathSchema is the version of the breath record contract. Version 2
-// added the provenance fields trapline_version and config_digest.
+// added the air-trapping fields below and the provenance fields
+// trapline_version and config_digest.
 const BreathSchema = 2
 
 // Breath is the per-breath record (the breath record contract). A value that
@@ -55,6 +56,24 @@ type Breath struct {
 	PEEPiEEFCmH2O float64 // end-expiratory flow × R
 	PEEPiFitCmH2O float64 // P0 − end-expiratory pressure
 
+	// Schema 2.
+	TauEndS         float64 // end-expiratory time constant (last third of the expiration)
+	TrappedExpFitML float64 // volume still to exhale from a two-exponential fit of expiration
+	RK1CmH2OSPerL   float64 // Rohrer K1, when the breath is flagged rohrer
+	RK2CmH2OS2PerL2 float64 // Rohrer K2, when the breath is flagged rohrer
+	FlowOffsetLPM   float64 // flow offset removed from the samples of this breath
+	LeakLPMPerCmH2O float64 // leak conductance removed from the samples of this breath
+	// Settings inferred from the waveform: the set inspiratory flow
+	// (volume control) or pressure above PEEP (pressure control).
+	SetFlowLPM           float64
+	SetInspPressureCmH2O float64
+	// Mode is the inferred mode, ModeVolume or ModePressure; "" when it
+	// could not be told.
+	Mode string
+	// SettingsChanged lists the settings that changed with this breath,
+	// e.g. "rate-up", "peep-down", "mode-pc"; nil when none did.
+	SettingsChanged []string
+
 	Flags []string
 
 	// Provenance: the program version and the digest of the analysis,
@@ -75,6 +94,8 @@ func NewBreath() Breath {
 		TauS: n, TeOverTau: n, RCmH2OSPerL: n, CMLPerCmH2O: n, PTot0CmH2O: n, FitR2: n,
 		ROccCmH2OSPerL: n, CStatMLPerCmH2O: n,
 		TrappedML: n, PEEPiCmH2O: n, TrappedEEFML: n, PEEPiEEFCmH2O: n, PEEPiFitCmH2O: n,
+		TauEndS: n, TrappedExpFitML: n, RK1CmH2OSPerL: n, RK2CmH2OS2PerL2: n, FlowOffsetLPM: n, LeakLPMPerCmH2O: n,
+		SetFlowLPM: n, SetInspPressureCmH2O: n,
 	}
 }
 
@@ -125,6 +146,14 @@ var breathFields = []breathField{
 	{"trapped_eef_ml", func(b *Breath) *float64 { return &b.TrappedEEFML }, 1},
 	{"peepi_eef_cmh2o", func(b *Breath) *float64 { return &b.PEEPiEEFCmH2O }, 2},
 	{"peepi_fit_cmh2o", func(b *Breath) *float64 { return &b.PEEPiFitCmH2O }, 2},
+	{"tau_end_s", func(b *Breath) *float64 { return &b.TauEndS }, 3},
+	{"trapped_expfit_ml", func(b *Breath) *float64 { return &b.TrappedExpFitML }, 1},
+	{"r_k1_cmh2o_s_per_l", func(b *Breath) *float64 { return &b.RK1CmH2OSPerL }, 2},
+	{"r_k2_cmh2o_s2_per_l2", func(b *Breath) *float64 { return &b.RK2CmH2OS2PerL2 }, 2},
+	{"flow_offset_lpm", func(b *Breath) *float64 { return &b.FlowOffsetLPM }, 3},
+	{"leak_lpm_per_cmh2o", func(b *Breath) *float64 { return &b.LeakLPMPerCmH2O }, 4},
+	{"set_flow_lpm", func(b *Breath) *float64 { return &b.SetFlowLPM }, 1},
+	{"set_pinsp_cmh2o", func(b *Breath) *float64 { return &b.SetInspPressureCmH2O }, 1},
 }
 
 // AppendJSON appends the breath as one JSON object (no newline) to dst. It is
@@ -143,6 +172,20 @@ func (b *Breath) AppendJSON(dst []byte) []byte {
 		dst = append(dst, '"', ':')
 		dst = appendNumber(dst, *f.get(b), f.prec)
 	}
+	dst = append(dst, `,"mode":`...)
+	if b.Mode == "" {
+		dst = append(dst, "null"...)
+	} else {
+		dst = strconv.AppendQuote(dst, b.Mode)
+	}
+	dst = append(dst, `,"settings_changed":[`...)
+	for i, c := range b.SettingsChanged {
+		if i > 0 {
+			dst = append(dst, ',')
+		}
+		dst = strconv.AppendQuote(dst, c)
+	}
+	dst = append(dst, ']')
 	dst = append(dst, `,"flags":[`...)
 	for i, f := range b.Flags {
 		if i > 0 {
@@ -219,6 +262,19 @@ func (b *Breath) UnmarshalJSON(data []byte) error {
 		}
 		if p != nil {
 			*f.get(b) = *p
+		}
+	}
+	if v, ok := raw["mode"]; ok && string(v) != "null" {
+		if err := json.Unmarshal(v, &b.Mode); err != nil {
+			return fmt.Errorf("decode breath: mode: %w", err)
+		}
+	}
+	if v, ok := raw["settings_changed"]; ok {
+		if err := json.Unmarshal(v, &b.SettingsChanged); err != nil {
+			return fmt.Errorf("decode breath: settings_changed: %w", err)
+		}
+		if len(b.SettingsChanged) == 0 {
+			b.SettingsChanged = nil
 		}
 	}
 	if v, ok := raw["flags"]; ok {

@@ -37,6 +37,7 @@ type atBreath struct {
 	tiS      float64
 	vtML     float64
 	dVolML   float64 // inspired − expired volume
+	flagged  bool    // estimates a single-compartment what-if cannot rely on
 }
 
 var _ BreathDetector = (*AirTrapping)(nil)
@@ -68,21 +69,7 @@ func detFirstFinite(vs ...float64) float64 {
 // Breath implements BreathDetector.
 func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	cfg := &d.cfg
-	cur := atBreath{
-		seq:     b.Seq,
-		eefLPM:  b.EndExpFlowLPM,
-		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
-		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
-		teOvTau: b.TeOverTau,
-		tauS:    b.TauS,
-		teS:     b.TeS,
-		tiS:     b.TiS,
-		vtML:    detFirstFinite(b.VtiML, b.VteML),
-		dVolML:  b.VtiML - b.VteML,
-	}
-	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
-		cur.teOvTau = cur.teS / cur.tauS
-	}
+	cur := atBreathOf(b)
 	idx := d.next
 	d.ring[idx] = cur
 	d.next = (d.next + 1) % cfg.M
@@ -97,11 +84,25 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	balance, slope := d.buildUp()
 	building := balance >= cfg.BalanceML && slope*float64(d.n-1) >= cfg.BalanceML/2
 
-	eefHit := cur.eefLPM >= cfg.EEFLPM
-	mag := func(k float64) bool { return cur.peepi >= k*cfg.PEEPiCmH2O || cur.trapped >= k*cfg.TrappedML }
+	// Scale-free criterion: the magnitude is intrinsic PEEP (a pressure,
+	// whatever the resistance), or the trapped volume when no pressure
+	// estimate exists; the end-expiratory flow in L/min only supports it
+	// (at a high resistance a small flow is a large pressure). The
+	// time-constant evidence must agree: expiration shorter than
+	// TeOverTauMax time constants (the end-expiratory one when the lung
+	// empties slower at the end).
+	// The pressure is the median of this breath's estimate and the two
+	// before it: one noisy breath neither makes nor breaks a positive.
+	peepi := d.recentMedianPEEPi()
+	mag := func(k float64) bool {
+		if !math.IsNaN(peepi) {
+			return peepi >= k*cfg.PEEPiCmH2O
+		}
+		return cur.trapped >= k*cfg.TrappedML
+	}
 	// Unknown Te/τ neither vetoes nor supports.
 	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	pos := eefHit && (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag("artifact")
+	pos := (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag(FlagArtifact)
 	d.ring[idx].positive = pos
 
 	count := 0
@@ -165,21 +166,97 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message += fmt.Sprintf(", trapped volume about %.0f mL", trapped)
 	}
 
+	d.predict(&f, &cur)
+	return append(dst, f)
+}
+
+// predict adds the what-if of a present finding: the expiratory time at
+// which the linear model's steady-state trapped volume falls below the
+// target, the rate that gives it with its CO2 cost, and how many breaths
+// of the window the single-compartment model cannot speak for.
+func (d *AirTrapping) predict(f *Finding, cur *atBreath) {
 	// What-if: the expiratory time at which the linear model's steady-state
 	// trapped volume would fall below the target, Te = τ·ln(1 + VT/target),
 	// and the rate that leaves it at the same inspiratory time.
 	if cur.tauS > 0 && cur.vtML > 0 {
-		te := TeForTrapped(cur.vtML, cur.tauS, cfg.TargetTrappedML)
+		te := TeForTrapped(cur.vtML, cur.tauS, d.cfg.TargetTrappedML)
 		if !math.IsNaN(te) && !math.IsInf(te, 0) {
-			tgt := fmt.Sprintf("%g", cfg.TargetTrappedML)
+			tgt := fmt.Sprintf("%g", d.cfg.TargetTrappedML)
 			f.Predict = map[string]float64{}
 			detPut(f.Predict, "te_s_for_trapped_below_"+tgt+"ml", te, 2)
 			if cur.tiS > 0 {
-				detPut(f.Predict, "rr_bpm_for_trapped_below_"+tgt+"ml", 60/(cur.tiS+te), 1)
+				rr := 60 / (cur.tiS + te)
+				detPut(f.Predict, "rr_bpm_for_trapped_below_"+tgt+"ml", rr, 1)
+				// Its CO2 cost at the same tidal volume and dead space
+				// (alveolar ventilation equation, West JB, Respiratory
+				// Physiology): PaCO2 scales with the old over the new rate.
+				if old := 60 / (cur.tiS + cur.teS); rr > 0 && old > 0 {
+					k := PaCO2Factor(old, cur.vtML, rr, cur.vtML, 0)
+					detPut(f.Predict, "paco2_factor_at_rr_for_trapped_below_"+tgt+"ml", k, 2)
+					if k > 1.05 {
+						f.Message += fmt.Sprintf("; a rate of %.0f /min would leave under %s mL trapped but raise PaCO2 about %.1f-fold at the same tidal volume", rr, tgt, k)
+					}
+				}
+			}
+			if n := d.flaggedInWindow(); n > 0 {
+				// The what-if assumes one linear, passive compartment.
+				f.Predict["flagged_breaths"] = float64(n)
+				f.Message += fmt.Sprintf("; %d of the last %d breaths are flagged (two time constants, effort or a non-linear expiration): the prediction is optimistic", n, d.n)
 			}
 		}
 	}
-	return append(dst, f)
+}
+
+// recentMedianPEEPi returns the median intrinsic PEEP estimate of the
+// latest breath and up to two before it (NaN estimates left out; NaN when
+// the latest has none).
+func (d *AirTrapping) recentMedianPEEPi() float64 {
+	cur := d.ring[d.slot(d.n-1)].peepi
+	if math.IsNaN(cur) {
+		return cur
+	}
+	var v [3]float64
+	k := 0
+	for i := d.n - 1; i >= 0 && i >= d.n-3; i-- {
+		if p := d.ring[d.slot(i)].peepi; !math.IsNaN(p) {
+			v[k] = p
+			k++
+		}
+	}
+	return detMedian(v[:k])
+}
+
+// flaggedInWindow counts the window's breaths whose estimates carry a
+// flag that makes the single-compartment what-if unreliable.
+func (d *AirTrapping) flaggedInWindow() int {
+	n := 0
+	for i := range d.n {
+		if d.ring[d.slot(i)].flagged {
+			n++
+		}
+	}
+	return n
+}
+
+// atBreathOf condenses a breath record to what the detector keeps.
+func atBreathOf(b *Breath) atBreath {
+	cur := atBreath{
+		seq:     b.Seq,
+		eefLPM:  b.EndExpFlowLPM,
+		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
+		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
+		teOvTau: b.TeOverTau,
+		tauS:    b.TauS,
+		teS:     b.TeS,
+		tiS:     b.TiS,
+		vtML:    detFirstFinite(b.VtiML, b.VteML),
+		dVolML:  b.VtiML - b.VteML,
+		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
+	}
+	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
+		cur.teOvTau = cur.teS / cur.tauS
+	}
+	return cur
 }
 
 // slot returns the ring index of the i-th oldest breath in the window.

@@ -54,7 +54,7 @@ func (d *Limits) limits() [3]limitSpec {
 func (d *Limits) Breath(b *Breath, dst []Finding) []Finding {
 	t := detFirstFinite(b.EndS, b.StartS)
 	// Total PEEP: set (measured end-expiratory) PEEP plus the intrinsic PEEP
-	// estimate when there is one (the linear single-compartment model, docs/formulas.md).
+	// estimate when there is one (derived).
 	peepTot := b.PEEPCmH2O
 	if b.PEEPiCmH2O > 0 {
 		peepTot += b.PEEPiCmH2O

@@ -3,6 +3,8 @@ package analyze
 import (
 	"fmt"
 	"math"
+	"slices"
+	"strings"
 )
 
 // RisingPeak detects a sustained rise of peak inspiratory pressure: the
@@ -10,7 +12,7 @@ import (
 // relative to the window's median peak. The evidence splits the rise into
 // its resistive part (peak − plateau, or R × inspiratory flow) and its
 // elastic part (plateau, or VT/C): under constant-flow volume control
-// Ppeak = Pplat + R·V' and Pplat = total PEEP + VT/C (the linear single-compartment model, docs/formulas.md), so a
+// Ppeak = Pplat + R·V' and Pplat = total PEEP + VT/C (derived), so a
 // widening peak–plateau gap means rising resistance (secretions, kinked
 // tube, bronchospasm) and a rising plateau means falling compliance or
 // rising intrinsic PEEP.
@@ -30,6 +32,7 @@ type rpBreath struct {
 	resist  float64 // R·V'peak from the fit, cmH2O
 	elastic float64 // VT/C from the fit, cmH2O
 	r, c    float64
+	changes []string // settings changes inferred at this breath
 }
 
 var _ BreathDetector = (*RisingPeak)(nil)
@@ -71,7 +74,7 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 		d.Reset() // the stream clock went back: start a new window
 	}
 	e := rpBreath{tS: t, peak: b.PeakCmH2O, plat: b.PlateauCmH2O, r: b.RCmH2OSPerL, c: b.CMLPerCmH2O,
-		resist: math.NaN(), elastic: math.NaN()}
+		resist: math.NaN(), elastic: math.NaN(), changes: b.SettingsChanged}
 	if b.RCmH2OSPerL > 0 && b.PeakInspFlowLPM > 0 {
 		e.resist = b.RCmH2OSPerL * b.PeakInspFlowLPM / 60
 	}
@@ -117,6 +120,21 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message = fmt.Sprintf("peak pressure trend %+.2f %%/min over %.0f s", pct, spanS)
 		return append(dst, f)
 	}
+	kind := d.attribute(&f, first, count)
+	f.Severity = SeverityLow
+	if pct >= cfg.HighSlopePctPerMin {
+		f.Severity = SeverityMedium
+	}
+	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
+		slope, pct, spanS, kind)
+	return append(dst, f)
+}
+
+// attribute says why the peak rises, filling the evidence of f: the
+// resistive and elastic parts of the rise over breaths first..n−1 (count
+// of them), checked against the resistance and compliance trends, or a
+// settings change inside the window.
+func (d *RisingPeak) attribute(f *Finding, first, count int) string {
 	// Attribution (only for a present rise, to save the work): from the
 	// pause when most breaths have one, otherwise from the least-squares R
 	// and C.
@@ -138,26 +156,73 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	}
 	detPut(f.Evidence, "resistive_slope_cmh2o_per_min", res, 3)
 	detPut(f.Evidence, "elastic_slope_cmh2o_per_min", ela, 3)
-	detPut(f.Evidence, "r_slope_cmh2o_s_per_l_per_min", d.slope(first, func(e *rpBreath) float64 { return e.r }), 3)
-	detPut(f.Evidence, "c_slope_ml_per_cmh2o_per_min", d.slope(first, func(e *rpBreath) float64 { return e.c }), 3)
-	kind := "of undetermined cause"
+	rSlope := d.slope(first, func(e *rpBreath) float64 { return e.r })
+	cSlope := d.slope(first, func(e *rpBreath) float64 { return e.c })
+	detPut(f.Evidence, "r_slope_cmh2o_s_per_l_per_min", rSlope, 3)
+	detPut(f.Evidence, "c_slope_ml_per_cmh2o_per_min", cSlope, 3)
+	kind := "of unclear cause"
 	// Only rises count towards the split; a falling part is not a cause.
+	// A cause is named only when the signs of the evidence agree: a
+	// resistive rise needs the resistance trend up, an elastic one the
+	// compliance trend down (an unknown trend does not contradict).
 	rp, ep := max(res, 0), max(ela, 0)
 	if frac := rp / (rp + ep); !math.IsNaN(frac) && !math.IsInf(frac, 0) {
 		f.Evidence["resistive_fraction"] = detRound(frac, 2)
-		if frac >= 0.5 {
+		switch {
+		case frac >= 0.5 && !(rSlope <= 0):
 			kind = "resistive (peak–plateau gap widening, resistance rising)"
-		} else {
+		case frac < 0.5 && !(cSlope >= 0):
 			kind = "elastic (plateau rising, compliance falling)"
+		default:
+			kind = "of unclear cause (the resistance and compliance trends do not agree with the pressures)"
 		}
 	}
-	f.Severity = SeverityLow
-	if pct >= cfg.HighSlopePctPerMin {
-		f.Severity = SeverityMedium
+	// A settings change inside the window explains a rise better than the
+	// patient does.
+	if ch := d.changesSince(first); len(ch) > 0 {
+		f.Evidence["settings_changes"] = float64(len(ch))
+		kind = "after a settings change: it follows " + describeChanges(ch)
 	}
-	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
-		slope, pct, spanS, kind)
-	return append(dst, f)
+	return kind
+}
+
+// changesSince lists the settings changes inferred over breaths
+// first..n−1, oldest first, without repeats.
+func (d *RisingPeak) changesSince(first int) []string {
+	var out []string
+	for i := first; i < d.n; i++ {
+		for _, c := range d.at(i).changes {
+			if !slices.Contains(out, c) {
+				out = append(out, c)
+			}
+		}
+	}
+	return out
+}
+
+// changeWords names the inferred settings changes in plain words.
+var changeWords = map[string]string{
+	"rate-up": "a rate increase", "rate-down": "a rate decrease",
+	"peep-up": "a PEEP increase", "peep-down": "a PEEP decrease",
+	"vt-up": "a tidal volume increase", "vt-down": "a tidal volume decrease",
+	"flow-up": "an inspiratory flow increase", "flow-down": "an inspiratory flow decrease",
+	"pinsp-up": "a higher inspiratory pressure", "pinsp-down": "a lower inspiratory pressure",
+	"ti-up": "a longer inspiratory time", "ti-down": "a shorter inspiratory time",
+	"pause-up": "a longer pause", "pause-down": "a shorter pause",
+	"mode-vc": "a switch to volume control", "mode-pc": "a switch to pressure control",
+}
+
+// describeChanges joins the plain words of changes.
+func describeChanges(ch []string) string {
+	words := make([]string, 0, len(ch))
+	for _, c := range ch {
+		if w, ok := changeWords[c]; ok {
+			words = append(words, w)
+		} else {
+			words = append(words, c)
+		}
+	}
+	return strings.Join(words, " and ")
 }
 
 // at returns the i-th oldest breath in the ring.

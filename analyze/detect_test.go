@@ -167,10 +167,16 @@ func TestAirTrappingCriteria(t *testing.T) {
 		want   bool
 	}{
 		{"all criteria", func(*Breath) {}, true},
-		{"flow back to zero", func(b *Breath) { b.EndExpFlowLPM = 1 }, false},
-		{"eef unknown", func(b *Breath) { b.EndExpFlowLPM = math.NaN() }, false},
+		// The criterion is scale-free: a small end-expiratory flow does not
+		// veto an intrinsic PEEP estimate (at R 60 cmH2O·s/L, 1 L/min is
+		// 1 cmH2O; derived from PEEPi ≈ R·|EEF|).
+		{"small end-expiratory flow", func(b *Breath) { b.EndExpFlowLPM = 1 }, true},
+		{"eef unknown", func(b *Breath) { b.EndExpFlowLPM = math.NaN() }, true},
 		{"small magnitude", func(b *Breath) { b.PEEPiCmH2O, b.TrappedML = 1, 30 }, false},
-		{"trapped volume alone", func(b *Breath) { b.PEEPiCmH2O = 1 }, true},
+		{"trapped volume with a small pressure", func(b *Breath) { b.PEEPiCmH2O = 1 }, false},
+		{"trapped volume without a pressure", func(b *Breath) {
+			b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O = math.NaN(), math.NaN(), math.NaN()
+		}, true},
 		{"intrinsic PEEP alone", func(b *Breath) { b.TrappedML = 30 }, true},
 		{"fallback to flow estimate", func(b *Breath) { b.PEEPiCmH2O, b.TrappedML = math.NaN(), math.NaN() }, true},
 		{"long expiration", func(b *Breath) { b.TeOverTau = 3.5 }, false},

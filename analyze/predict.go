@@ -71,6 +71,14 @@ type Prediction struct {
 	PeakCmH2O       float64
 	MinuteVolLPM    float64
 	AlveolarVentLPM float64
+	// PaCO2Factor is the expected PaCO2 under these settings over PaCO2
+	// under the current ones (see WithCO2; NaN until set), and PaCO2MmHg
+	// the expected value when the current one is known.
+	PaCO2Factor float64
+	PaCO2MmHg   float64
+	// Warnings say which flags of the breaths relied on make the
+	// prediction less certain (see PredictWarnings).
+	Warnings []string
 }
 
 // ErrSettings is returned (wrapped) for settings that cannot be ventilated.
@@ -113,6 +121,7 @@ func Predict(pt Patient, s Settings) (Prediction, error) {
 		return Prediction{}, err
 	}
 	var p Prediction
+	p.PaCO2Factor, p.PaCO2MmHg = math.NaN(), math.NaN()
 	p.Settings = s
 	cL := pt.CMLPerCmH2O / 1000
 	p.TauS = pt.RCmH2OSPerL * cL
@@ -120,7 +129,8 @@ func Predict(pt Patient, s Settings) (Prediction, error) {
 	p.TeOverTau = p.TeS / p.TauS
 	p.TrappedML = SteadyTrappedML(s.VtML, p.TauS, p.TeS)
 	p.PEEPiCmH2O = p.TrappedML / pt.CMLPerCmH2O
-	// Pplat = PEEP + PEEPi + VT/C; Ppeak = Pplat + R·V' (the linear single-compartment model, docs/formulas.md).
+	// Pplat = PEEP + PEEPi + VT/C; Ppeak = Pplat + R·V' (derived from the
+	// equation of motion at the end of the pause and at peak flow).
 	p.PlateauCmH2O = s.PEEPCmH2O + p.PEEPiCmH2O + s.VtML/pt.CMLPerCmH2O
 	p.PeakCmH2O = p.PlateauCmH2O + pt.RCmH2OSPerL*s.FlowLPM/60
 	p.MinuteVolLPM = s.VtML / 1000 * s.RateBPM
@@ -169,4 +179,70 @@ func FlowForTrapped(s Settings, tauS, targetML float64) float64 {
 		return math.NaN()
 	}
 	return 60 * s.VtML / 1000 / ti
+}
+
+// PaCO2Factor returns the expected ratio of PaCO2 after a change of rate
+// and tidal volume to PaCO2 before it, from the alveolar ventilation
+// equation at constant CO2 production and dead space (West JB, Respiratory
+// Physiology): PaCO2 ∝ VCO2/VA with VA = RR·(VT − VD), so
+// PaCO2_new/PaCO2_old = VA_old/VA_new. NaN when either alveolar
+// ventilation is not positive.
+func PaCO2Factor(rateOldBPM, vtOldML, rateNewBPM, vtNewML, deadSpaceML float64) float64 {
+	vaOld := rateOldBPM * (vtOldML - deadSpaceML)
+	vaNew := rateNewBPM * (vtNewML - deadSpaceML)
+	if !(vaOld > 0) || !(vaNew > 0) || math.IsInf(vaOld, 0) || math.IsInf(vaNew, 0) {
+		return math.NaN()
+	}
+	return vaOld / vaNew
+}
+
+// WithCO2 returns p with its CO2 consequence against the current
+// settings' prediction base filled in: PaCO2Factor, and PaCO2MmHg when the
+// current PaCO2 (mmHg) is known (paco2MmHg > 0).
+func (p Prediction) WithCO2(base Prediction, paco2MmHg float64) Prediction {
+	p.PaCO2Factor = PaCO2Ratio(base, p)
+	p.PaCO2MmHg = math.NaN()
+	if paco2MmHg > 0 {
+		p.PaCO2MmHg = paco2MmHg * p.PaCO2Factor
+	}
+	return p
+}
+
+// Flags whose breaths make a single-compartment what-if unreliable, and
+// what each means for the prediction.
+var predictCaveats = []struct{ flag, why string }{
+	{FlagPEEPiBound, "two time constants: trapping is worse than a single time constant predicts"},
+	{FlagTauNonlinear, "the expiration does not follow one time constant"},
+	{FlagEffort, "the patient is not passive"},
+	{FlagRohrer, "the resistance depends on flow"},
+	{FlagTauUnreliable, "no usable time constant"},
+	{FlagLeak, "a leak the correction did not remove"},
+}
+
+// PredictWarnings returns one warning per kind of flag that the breaths a
+// prediction relies on carry, with how many carry it, and whether the
+// prediction should be refused: more than half of the breaths without a
+// usable time constant or passive mechanics.
+func PredictWarnings(bs []Breath) (warnings []string, refuse bool) {
+	if len(bs) == 0 {
+		return nil, true
+	}
+	bad := 0
+	for i := range bs {
+		if bs[i].HasFlag(FlagEffort) || bs[i].HasFlag(FlagTauUnreliable) || bs[i].HasFlag(FlagFitSingular) || bs[i].HasFlag(FlagFitImplausible) {
+			bad++
+		}
+	}
+	for _, c := range predictCaveats {
+		n := 0
+		for i := range bs {
+			if bs[i].HasFlag(c.flag) {
+				n++
+			}
+		}
+		if n > 0 {
+			warnings = append(warnings, fmt.Sprintf("%d of %d breaths flagged %s: %s", n, len(bs), c.flag, c.why))
+		}
+	}
+	return warnings, 2*bad > len(bs)
 }

@@ -150,6 +150,11 @@ type Sensor struct {
 	JitterS float64 `yaml:"jitter_s" json:"jitter_s"`
 	// DropProbability is the chance that a sample is lost.
 	DropProbability float64 `yaml:"drop_probability" json:"drop_probability"`
+	// LeakLPMPerCmH2O is a leak between the flow sensor and the patient
+	// (a cuff or circuit leak) through a linear orifice: the sensor reads
+	// the patient's flow plus LeakLPMPerCmH2O·Paw, so inspired volume
+	// exceeds expired volume by the leak's share of ∫Paw dt.
+	LeakLPMPerCmH2O float64 `yaml:"leak_lpm_per_cmh2o" json:"leak_lpm_per_cmh2o"`
 }
 
 // expResistance is the expiratory K1: NaN means the inspiratory one, so
@@ -317,7 +322,7 @@ func (p *params) validate() error {
 	}{
 		{"pressure_noise_cmh2o", s.PressureNoiseCmH2O}, {"flow_noise_lpm", s.FlowNoiseLPM},
 		{"pressure_step_cmh2o", s.PressureStepCmH2O}, {"flow_step_lpm", s.FlowStepLPM},
-		{"jitter_s", s.JitterS},
+		{"jitter_s", s.JitterS}, {"leak_lpm_per_cmh2o", s.LeakLPMPerCmH2O},
 	} {
 		if x.v < 0 {
 			bad("sensor.%s: %g must not be negative", x.name, x.v)

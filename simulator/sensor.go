@@ -6,7 +6,7 @@ import (
 )
 
 // sensor turns the true airway pressure and flow into readings: offset and
-// linear drift, white Gaussian noise, artifact bursts and quantization, in
+// linear drift, a pressure-driven leak, white Gaussian noise, artifact bursts and quantization, in
 // that order. Every random number comes from one PCG generator seeded from
 // the scenario seed, drawn in a fixed order per sample, so the same seed
 // gives the same readings.
@@ -38,7 +38,7 @@ func (s *sensor) dropped(cfg *Sensor) bool {
 // of an artifact burst in progress (zero when none).
 func (s *sensor) read(cfg *Sensor, t, pawCmH2O, flowLPS float64, art window) (pCmH2O, fLPS float64) {
 	p := pawCmH2O + cfg.PressureOffsetCmH2O + cfg.PressureDriftCmH2OPerH*t/3600
-	fLPM := flowLPS*60 + cfg.FlowOffsetLPM + cfg.FlowDriftLPMPerH*t/3600
+	fLPM := flowLPS*60 + cfg.FlowOffsetLPM + cfg.FlowDriftLPMPerH*t/3600 + cfg.LeakLPMPerCmH2O*pawCmH2O
 	if cfg.PressureNoiseCmH2O > 0 {
 		p += s.rng.NormFloat64() * cfg.PressureNoiseCmH2O
 	}

@@ -112,6 +112,7 @@ type reportData struct {
 	Example  string
 	Est      []EstimatorError
 	Other    []string
+	Classes  []ClassScore
 }
 
 type headRow struct {
@@ -174,7 +175,7 @@ func headlineDiff(a, b *ConditionScore) []string {
 // WriteReport writes the self-contained HTML report: tables and inline SVG
 // plots, no external resources. ex may be nil.
 func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
-	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators}
+	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators, Classes: s.Sets[0].Classes}
 	for _, set := range s.Sets {
 		d.Sets = append(d.Sets, set.Name)
 	}
@@ -359,6 +360,12 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 <p class="note">Breath sensitivity / specificity.</p>
 <table><tr><th>model</th><th>hours</th>{{range .Headline}}<th>{{.Condition}}</th>{{end}}</tr>
 {{range .ByModel}}<tr><td>{{.Model}}</td><td>{{.Hours}}</td>{{range .Cells}}<td>{{.}}</td>{{end}}</tr>
+{{end}}</table>
+
+<h2>Air trapping by class ({{index .Sets 0}})</h2>
+<p class="note">A class is every patient that shares one value of one grid dimension. Settled sensitivity: breaths with a true intrinsic PEEP ≥ 2 cmH2O from the 7th breath of their episode on. Onset in breaths from the first such breath. False raises: alarms that never overlapped a trapping breath. PEEPi ±1: estimates within 1 cmH2O of the truth, or flagged lower bounds that are honest (docs/sweep.md). R and C: median absolute relative error.</p>
+<table><tr><th>class</th><th>patients</th><th>hours</th><th>settled sens.</th><th>settled breaths</th><th>episodes</th><th>unalarmed</th><th>max onset (breaths)</th><th>onsets &gt; 6</th><th>false raises</th><th>non-trapping h</th><th>PEEPi ±1</th><th>bound</th><th>R err %</th><th>C err %</th></tr>
+{{range .Classes}}<tr><td>{{.Class}}</td><td>{{.Patients}}</td><td>{{num .PatientHours 1}}</td><td>{{num .SensitivitySettled 3}}</td><td>{{.SettledBreaths}}</td><td>{{.Episodes}}</td><td>{{.Unalarmed}}</td><td>{{num .OnsetMaxBreaths 0}}</td><td>{{.OnsetOver6}}</td><td>{{.FalseRaises}}</td><td>{{num .NonTrappingHours 1}}</td><td>{{num .PEEPiWithin 3}}</td><td>{{.PEEPiBound}}</td><td>{{num .RMedianRelPct 1}}</td><td>{{num .CMedianRelPct 1}}</td></tr>
 {{end}}</table>
 
 <h2>Estimators</h2>

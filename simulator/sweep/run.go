@@ -90,6 +90,9 @@ type Estimate struct {
 	TauS        float32
 	TrappedML   float32
 	PEEPiCmH2O  float32
+	// PEEPiBound is true when the record flags its intrinsic PEEP as a
+	// lower bound.
+	PEEPiBound bool
 }
 
 // CaseResult is everything one simulated patient produced.
@@ -318,6 +321,7 @@ func (r *CaseResult) match(b *analyze.Breath, ti int) int {
 		TauS:        float32(b.TauS),
 		TrappedML:   float32(b.TrappedML),
 		PEEPiCmH2O:  float32(b.PEEPiCmH2O),
+		PEEPiBound:  b.HasFlag(analyze.FlagPEEPiBound),
 	})
 	return best + 1
 }

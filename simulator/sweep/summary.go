@@ -57,6 +57,9 @@ type SetSummary struct {
 	// OtherAlerts counts fresh raises of conditions without ground truth
 	// (all of them are unexpected on simulated patients), per hour.
 	OtherAlerts map[string]int `json:"other_alerts"`
+	// Classes holds the air-trapping acceptance figures of every class of
+	// patients (one value of one grid dimension), "all" first.
+	Classes []ClassScore `json:"classes"`
 }
 
 // ModelScores holds the scores over the patients of one model.
@@ -152,20 +155,7 @@ func (r *Result) models() []string {
 func Summarize(r *Result) *Summary {
 	s := &Summary{Type: "sweep-summary", Schema: SummarySchema, Patients: len(r.Cases),
 		Workers: r.Workers, SampleRatesHz: r.Plan.Grid.SampleRatesHz, Models: r.models(), Episodes: r.Plan.Grid.Episodes}
-	hours := 0.0
-	hoursBy := map[string]float64{}
-	hoursByRate := map[float64]float64{}
-	for i := range r.Cases {
-		c := &r.Cases[i]
-		h := c.Case.DurationS / 3600
-		hours += h
-		hoursBy[c.Case.Model] += h
-		hoursByRate[c.Case.SampleRateHz] += h
-		s.Samples += c.Samples
-		s.BreathsSimulated += len(c.Truth)
-		s.BreathsAnalysed += c.Breaths
-		s.BreathsUnmatched += c.Unmatched
-	}
+	hours, hoursBy, hoursByRate := s.countCases(r)
 	s.PatientHours = Num(hours)
 	s.ElapsedS = Num(r.Elapsed.Seconds())
 	s.RealtimeFactor = Num(math.NaN())
@@ -224,10 +214,29 @@ func Summarize(r *Result) *Summary {
 			}
 			ss.BySampleRate = append(ss.BySampleRate, RateScores{SampleRateHz: hz, PatientHours: Num(hoursByRate[hz]), Conditions: byRate[ri]})
 		}
+		ss.Classes = classScores(r, si)
 		s.Sets = append(s.Sets, ss)
 	}
 	s.Estimators, s.ErrorVsR, s.ErrorVsC = estimatorErrors(r, s.Models)
 	return s
+}
+
+// countCases adds up the samples and breaths of every case into s and
+// returns the simulated patient-hours in all, by model and by sample rate.
+func (s *Summary) countCases(r *Result) (hours float64, byModel map[string]float64, byRate map[float64]float64) {
+	byModel, byRate = map[string]float64{}, map[float64]float64{}
+	for i := range r.Cases {
+		c := &r.Cases[i]
+		h := c.Case.DurationS / 3600
+		hours += h
+		byModel[c.Case.Model] += h
+		byRate[c.Case.SampleRateHz] += h
+		s.Samples += c.Samples
+		s.BreathsSimulated += len(c.Truth)
+		s.BreathsAnalysed += c.Breaths
+		s.BreathsUnmatched += c.Unmatched
+	}
+	return hours, byModel, byRate
 }
 
 func estimatorErrors(r *Result, models []string) (errs []EstimatorError, vsR, vsC []ErrorCurve) {

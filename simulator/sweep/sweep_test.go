@@ -301,7 +301,7 @@ func TestParseGrid(t *testing.T) {
 		check      func(t *testing.T, g Grid, err error)
 	}{
 		{"empty file is the default grid", "", func(t *testing.T, g Grid, err error) {
-			if err != nil || len(g.Models) != len(Models()) || len(g.SampleRatesHz) != 1 || g.SampleRatesHz[0] != 50 {
+			if err != nil || len(g.Models) != len(DefaultGrid().Models) || len(g.SampleRatesHz) != 1 || g.SampleRatesHz[0] != 50 {
 				t.Errorf("got %v, %+v", err, g)
 			}
 		}},

@@ -1,0 +1,114 @@
+package analyze
+
+import "math"
+
+// Memory and limits of the flow offset and leak estimate.
+const (
+	// balanceDecay weights past breaths by balanceDecay^age: a memory of
+	// about 30 breaths, long enough to average breath-to-breath noise,
+	// short enough to follow a sensor that drifts over minutes (our
+	// choice).
+	balanceDecay = 0.967
+	// balanceMinWeight is the weight of breaths needed before a correction
+	// is applied (about 10 breaths).
+	balanceMinWeight = 8.0
+	// balanceMinDecorrelation is the smallest 1 − ρ² between breath
+	// duration and ∫Paw dt (uncentred) for which an offset and a leak are
+	// told apart; below it the breaths are too alike and the imbalance is
+	// read as an offset alone.
+	balanceMinDecorrelation = 2e-3
+	// maxOffsetLPS and maxLeakLPSPerCmH2O bound the corrections (3 L/min;
+	// 0.5 L/min per cmH2O, a leak of about half the tidal volume): beyond
+	// them the imbalance is not a sensor matter and nothing is corrected.
+	maxOffsetLPS = 3.0 / 60
+	// minFlagLPS is the smallest correction (offset plus leak at the mean
+	// airway pressure) that flags the breath offset-corrected: 0.3 L/min
+	// (our choice, above the 0.25 L/min the trapezoid rule leaves on
+	// synchronised 50 Hz signals). Smaller corrections are applied but not
+	// flagged, so that a clean sensor's records stay unflagged.
+	minFlagLPS         = 0.3 / 60
+	maxLeakLPSPerCmH2O = 0.5 / 60
+)
+
+// balance estimates a constant flow offset b (L/s) and a leak
+// conductance k (L/s per cmH2O) between the sensor and the patient from
+// the volume balance of many breaths. Over breath i the measured inspired
+// minus expired volume is
+//
+//	VTi − VTe = ΔV_ee + b·Ttot + k·∫Paw dt,
+//
+// where ΔV_ee is the change of end-expiratory lung volume (zero on
+// average; the change of the trapped-volume estimate when known). An
+// offset grows with the breath's duration, a leak through a linear orifice
+// with its pressure–time integral, so an exponentially weighted least
+// squares regression of the balance on [Ttot, ∫Paw dt] over many breaths
+// separates the two when the breaths differ enough (a leak follows
+// airway pressure, an offset does not; derived). The regression has no
+// intercept; its normal equations are kept as decaying sums.
+type balance struct {
+	stt, sti, sii, std, sid, w float64
+}
+
+func (e *balance) reset() { *e = balance{} }
+
+// add accumulates one breath: duration tS, pressure–time integral iCmH2OS
+// and raw balance dL (litres, before any correction).
+func (e *balance) add(tS, iCmH2OS, dL float64) {
+	if !(tS > 0) || math.IsNaN(iCmH2OS) || math.IsNaN(dL) {
+		return
+	}
+	l := balanceDecay
+	e.stt = l*e.stt + tS*tS
+	e.sti = l*e.sti + tS*iCmH2OS
+	e.sii = l*e.sii + iCmH2OS*iCmH2OS
+	e.std = l*e.std + tS*dL
+	e.sid = l*e.sid + iCmH2OS*dL
+	e.w = l*e.w + 1
+}
+
+// solve returns the offset (L/s) and the leak conductance (L/s per
+// cmH2O), and whether enough breaths were seen. When breath duration and
+// ∫Paw are collinear the leak is not identifiable and the imbalance is
+// read as an offset (k = 0).
+func (e *balance) solve() (b, k float64, ok bool) {
+	if e.w < balanceMinWeight || !(e.stt > 0) {
+		return 0, 0, false
+	}
+	det := e.stt*e.sii - e.sti*e.sti
+	if e.sii > 0 && det > balanceMinDecorrelation*e.stt*e.sii {
+		b = (e.std*e.sii - e.sid*e.sti) / det
+		k = (e.sid*e.stt - e.std*e.sti) / det
+		if k >= 0 && k <= maxLeakLPSPerCmH2O && math.Abs(b) <= maxOffsetLPS {
+			return b, k, true
+		}
+	}
+	b = e.std / e.stt
+	if math.Abs(b) > maxOffsetLPS {
+		return 0, 0, false
+	}
+	return b, 0, true
+}
+
+// updateBalance feeds the finished breath to the offset and leak
+// estimate and sets the correction for the breaths to come. The balance
+// is taken back to raw (uncorrected) volumes, and the change of the
+// trapped-volume estimate, which is real volume kept in the lung, is
+// taken out of it.
+func (a *Analyzer) updateBalance(b *Breath) {
+	tS := a.candT - a.crossStartT
+	if b.HasFlag(FlagArtifact) || b.HasFlag(FlagShort) || !(tS > 0) || a.cur.n == 0 {
+		a.prevTrapML = math.NaN()
+		return
+	}
+	iP := a.cur.p / a.cur.n * tS
+	d := a.candV + a.offB*tS + a.leakK*iP
+	if !math.IsNaN(a.prevTrapML) && !math.IsNaN(b.TrappedML) {
+		d -= (b.TrappedML - a.prevTrapML) / 1000
+	}
+	a.prevTrapML = b.TrappedML
+	a.bal.add(tS, iP, d)
+	if off, k, ok := a.bal.solve(); ok {
+		a.offB, a.leakK = off, k
+		a.meanP = a.cur.p / a.cur.n
+	}
+}

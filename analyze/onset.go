@@ -1,0 +1,73 @@
+package analyze
+
+import "math"
+
+// Limits of the search for the onset of the inspiratory rise.
+const (
+	// onsetLookbackS is the longest time between the onset of the
+	// ventilator's pressure rise and the zero crossing of flow that
+	// confirmed the inspiration: a pressure rise of up to 0.4 s crosses
+	// the alveolar pressure before its end (common practice for rise
+	// times), with a margin.
+	onsetLookbackS = 0.6
+	// onsetBaseS is the span of expiration, ending at the crossing, whose
+	// median airway pressure is the expiratory baseline.
+	onsetBaseS = 0.5
+	// onsetMinRiseCmH2O is the smallest rise above the baseline that marks
+	// the ventilator's action; it must also exceed four times the
+	// pressure noise of the baseline.
+	onsetMinRiseCmH2O = 0.5
+)
+
+// inspOnset returns the onset of the inspiratory rise that led to the flow
+// zero crossing at tc: the time of the last sample before tc whose airway
+// pressure was still at the expiratory baseline. Under volume control and
+// with a pressure step the onset is the crossing itself; under pressure
+// control with a rise time the flow is still expiratory for a while after
+// the pressure starts to rise, and the end of expiration is the start of
+// that rise (the ventilator's action, not the flow). The baseline is the
+// median pressure of the late expiration, and the rise must exceed both
+// onsetMinRiseCmH2O and four times the baseline's spread (median absolute
+// deviation), so noise does not move the onset.
+func (a *Analyzer) inspOnset(tc float64) float64 {
+	from := math.Max(a.expStartT+0.25*(tc-a.expStartT), tc-onsetBaseS)
+	if !(tc-from > 0.1) {
+		return tc
+	}
+	var buf [ringSize]float64
+	ps := buf[:0]
+	for k := 1; k <= a.ring.n; k++ {
+		e := &a.ring.s[(a.ring.next-k)&(ringSize-1)]
+		if e.t >= tc {
+			continue
+		}
+		if e.t < from {
+			break
+		}
+		ps = append(ps, e.p)
+	}
+	if len(ps) < 5 {
+		return tc
+	}
+	// Medians by selection (linear time), not sorting: this runs once a
+	// breath but on up to a second of samples.
+	base := detSelect(ps, len(ps)/2)
+	for i := range ps {
+		ps[i] = math.Abs(ps[i] - base)
+	}
+	thr := base + math.Max(onsetMinRiseCmH2O, 4*1.4826*detSelect(ps, len(ps)/2))
+	// Walk back from the crossing while the pressure is above the
+	// threshold: the rise.
+	onset := tc
+	for k := 1; k <= a.ring.n; k++ {
+		e := &a.ring.s[(a.ring.next-k)&(ringSize-1)]
+		if e.t >= tc {
+			continue
+		}
+		if e.t < tc-onsetLookbackS || e.p <= thr {
+			break
+		}
+		onset = e.t
+	}
+	return onset
+}

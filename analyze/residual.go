@@ -1,0 +1,240 @@
+package analyze
+
+import "math"
+
+func nanTo0(v float64) float64 {
+	if math.IsNaN(v) {
+		return 0
+	}
+	return v
+}
+
+func hasFlag(flags []string, f string) bool {
+	for _, g := range flags {
+		if g == f {
+			return true
+		}
+	}
+	return false
+}
+
+// effortWindowS is the span over which fit residuals are averaged before
+// looking for a dip: short against a muscle effort (0.5–1 s), long enough
+// that sensor noise averages out.
+const effortWindowS = 0.2
+
+// inspResidual tests whether the inspiration follows the passive equation
+// of motion P = R·V' + E·V + P0, fitted to the inspiration alone (start of
+// the breath to the start of expiration, pause included). It returns the
+// largest departure, averaged over effortWindowS and expressed in cmH2O, and
+// the noise of that average; the caller compares the two.
+//
+// A passive patient follows the model closely there, even with a
+// flow-dependent resistance under constant flow (the Rohrer term is then a
+// constant); inspiratory muscle effort bends the curves in a way no R, E and
+// P0 can follow. The departure shows in pressure when the ventilator sets
+// the flow (volume control), and in flow when it sets the pressure
+// (pressure control), so both are tested: pressure regressed on flow and
+// volume, and flow regressed on pressure and volume (its residual scaled to
+// pressure by rScale, the breath's fitted R; skipped when rScale is
+// unknown). A regression whose regressors are collinear is reduced (constant
+// flow) or skipped (pressure and volume collinear, which is the square-flow
+// case the first test covers).
+func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
+	n := 0
+	for n < a.buf.n && a.buf.pts[n].t < a.expStartT {
+		n++
+	}
+	pts := a.buf.pts[:n]
+	if n < 6 {
+		return 0, 0
+	}
+	step := (pts[n-1].t - pts[0].t) / float64(n-1)
+	k := 1
+	if step > 0 {
+		k = max(1, int(effortWindowS/step+0.5))
+	}
+	k = min(k, n)
+
+	var s, sf segment
+	for i := range pts {
+		s.add(pts[i].f, pts[i].v, pts[i].p)
+		sf.add(pts[i].p, pts[i].v, pts[i].f)
+	}
+	fr := s.fit()
+	if fr.singular {
+		// Constant flow: P = E·V + P1 by simple regression.
+		mv, mp := s.v/s.n, s.p/s.n
+		svv := s.vv - s.n*mv*mv
+		if !(svv > 0) {
+			return 0, 0
+		}
+		e := (s.vp - s.n*mv*mp) / svv
+		fr = fitResult{r: 0, e: e, p0: mp - e*mv}
+	}
+	dev, noise = windowedResidual(pts, k, func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) })
+	if ff := sf.fit(); !ff.singular && rScale > 0 {
+		d, nz := windowedResidual(pts, k, func(q *point) float64 { return rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0)) })
+		if d-4*nz > dev-4*noise {
+			dev, noise = d, nz
+		}
+	}
+	return dev, noise
+}
+
+// windowedResidual returns the largest |mean| of res over k consecutive
+// points, and the noise of such a mean estimated from successive
+// differences (white noise: twice its variance), which a smooth departure
+// does not inflate.
+func windowedResidual(pts []point, k int, res func(*point) float64) (worst, noise float64) {
+	n := len(pts)
+	sum, sd, prev := 0.0, 0.0, 0.0
+	for i := range pts {
+		r := res(&pts[i])
+		if i > 0 {
+			sd += (r - prev) * (r - prev)
+		}
+		prev = r
+		sum += r
+		if i >= k {
+			sum -= res(&pts[i-k])
+		}
+		if i >= k-1 {
+			worst = math.Max(worst, math.Abs(sum)/float64(k))
+		}
+	}
+	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))
+	return worst, noise
+}
+
+// linreg accumulates a simple linear regression y = a + b·x.
+type linreg struct{ n, sx, sy, sxx, sxy, syy float64 }
+
+func (l *linreg) add(x, y float64) {
+	l.n++
+	l.sx += x
+	l.sy += y
+	l.sxx += x * x
+	l.sxy += x * y
+	l.syy += y * y
+}
+
+// predict returns the fitted y at x and its standard error (ordinary least
+// squares: s·√(1/n + (x − x̄)²/Sxx)); NaN below three points.
+func (l *linreg) predict(x float64) (y, se float64) {
+	if l.n < 3 {
+		return math.NaN(), math.NaN()
+	}
+	mx, my := l.sx/l.n, l.sy/l.n
+	cxx := l.sxx - l.n*mx*mx
+	cxy := l.sxy - l.n*mx*my
+	if !(cxx > 0) {
+		return math.NaN(), math.NaN()
+	}
+	b := cxy / cxx
+	ss := math.Max(0, l.syy-l.n*my*my-b*cxy)
+	return my + b*(x-mx), math.Sqrt(ss/(l.n-2)) * math.Sqrt(1/l.n+(x-mx)*(x-mx)/cxx)
+}
+
+// r2 returns the squared correlation of x and y, or NaN below three
+// points.
+func (l *linreg) r2() float64 {
+	if l.n < 3 {
+		return math.NaN()
+	}
+	cxx := l.sxx - l.sx*l.sx/l.n
+	cyy := l.syy - l.sy*l.sy/l.n
+	cxy := l.sxy - l.sx*l.sy/l.n
+	if !(cxx > 0 && cyy > 0) {
+		return math.NaN()
+	}
+	return cxy * cxy / (cxx * cyy)
+}
+
+// tau returns −1/slope when the slope is defined and negative enough to
+// give a plausible time constant, else NaN.
+func (l *linreg) tau() float64 {
+	if l.n < 3 {
+		return math.NaN()
+	}
+	den := l.n*l.sxx - l.sx*l.sx
+	if !(den > 0) {
+		return math.NaN()
+	}
+	tau := -1 / ((l.n*l.sxy - l.sx*l.sy) / den)
+	if !(tau >= minTauS && tau <= maxTauS) {
+		return math.NaN()
+	}
+	return tau
+}
+
+// tauDepartureLPS is the smallest departure of the end-expiratory flow
+// from the mid-expiration flow–volume line that counts (2 L/min; it must
+// also exceed four standard errors).
+const tauDepartureLPS = 2.0 / 60
+
+// tauMinR2 is the smallest squared correlation of the flow–volume line
+// that gives a time constant (our choice: below it the segment is noise or
+// not a line).
+const tauMinR2 = 0.8
+
+// tauFlowVolume fits |V'| = a − V_ex/τ over the decimated expiration
+// points before endT whose exhaled volume V_ex lies between lo and hi
+// (fractions) of vte (L). In passive mono-exponential emptying the volume
+// still to exhale is τ·|V'|, so the slope of the flow–volume curve is −1/τ
+// (Lourens MS et al., Intensive Care Med 2000;26:1612). It returns NaN when
+// fewer than three points qualify or the slope is not plausible. It also
+// returns the line's |V'| at V_ex = vte (the end of expiration) and the
+// standard error of that extrapolation.
+func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE float64) {
+	nan := math.NaN()
+	if !(vte > 0) {
+		return nan, nan, nan
+	}
+	lo, hi = lo*vte, hi*vte
+	var l linreg
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t < a.expStartT {
+			continue
+		}
+		if q.t >= endT {
+			break
+		}
+		if x := a.expStartV - q.v; x >= lo && x <= hi {
+			l.add(x, -q.f)
+		}
+	}
+	tau = l.tau()
+	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
+		return nan, nan, nan
+	}
+	endFlow, endSE = l.predict(vte)
+	return tau, endFlow, endSE
+}
+
+// tauLate returns the end-expiratory time constant: the inverse slope of
+// the flow–volume curve over the last third of the expiratory time before
+// endT (Lourens MS et al., Intensive Care Med 2000;26:1612, use the last
+// part of the curve). The last third in time rather than in volume: units
+// with a long time constant hold little of the exhaled volume but most of
+// the late flow, so a volume window would still see the fast units.
+func (a *Analyzer) tauLate(endT float64) float64 {
+	from := a.expStartT + (endT-a.expStartT)*2/3
+	var l linreg
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t < from {
+			continue
+		}
+		if q.t >= endT {
+			break
+		}
+		l.add(a.expStartV-q.v, -q.f)
+	}
+	tau := l.tau()
+	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
+		return math.NaN()
+	}
+	return tau
+}
