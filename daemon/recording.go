@@ -64,6 +64,9 @@ func (d *Daemon) startRecorder(ctx context.Context) error {
 		return err
 	}
 	d.rec = rec
+	if rec != nil {
+		d.recPtr.Store(rec)
+	}
 	return nil
 }
 
@@ -78,6 +81,17 @@ func (d *Daemon) closeRecorder() {
 			d.log.Warn().Err(err).Msg("recording: closing the last segments failed")
 		}
 	})
+}
+
+// recStats returns the recorder's counters, or nil before it is open
+// (tests).
+func (d *Daemon) recStats() *record.Stats {
+	r := d.recPtr.Load()
+	if r == nil {
+		return nil
+	}
+	st := r.w.Stats()
+	return &st
 }
 
 // finding returns the recording-impaired finding of the moment: present

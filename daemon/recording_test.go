@@ -147,3 +147,70 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 		t.Fatal("Run did not return within 20 s")
 	}
 }
+
+// TestRecordingRetentionInTheDaemon leaves the segments of an earlier run
+// in the recording directory and starts the daemon with recording.max_age
+// or recording.max_bytes: the daemon's writer adopts them and deletes what
+// the configured limit no longer allows.
+func TestRecordingRetentionInTheDaemon(t *testing.T) {
+	for _, tc := range []struct {
+		name  string
+		limit func(*config.Recording)
+		check func(st record.Stats) bool
+	}{
+		{"age", func(r *config.Recording) { r.MaxAge, r.MaxBytes = time.Minute, 0 },
+			func(st record.Stats) bool { return st.Segments == 0 }},
+		{"bytes", func(r *config.Recording) { r.MaxAge, r.MaxBytes = 0, config.MiB },
+			func(st record.Stats) bool { return st.DiskBytes <= int64(config.MiB) }},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			cfg := config.Default()
+			cfg.DataDir = t.TempDir()
+			cfg.NATS.Embedded.Port = 0
+			cfg.HTTP.Listen = ""
+			cfg.Recording.Enabled = true
+			tc.limit(&cfg.Recording)
+			cfg.Streams = []config.Stream{{ID: "bed-1", Source: "tcp-listen://127.0.0.1:0"}}
+			if err := cfg.Validate(); err != nil {
+				t.Fatal(err)
+			}
+			// An earlier run, two hours ago: 8 one-minute segments of 256 KiB.
+			then := time.Now().Add(-2 * time.Hour)
+			old, err := record.Open(t.Context(), record.Options{Dir: cfg.RecordingDir(), SegmentLength: time.Minute,
+				Now: func() time.Time { return then }})
+			if err != nil {
+				t.Fatal(err)
+			}
+			src := record.Source{Stream: "bed-1", Format: ingest.FormatText}
+			chunk := []byte(strings.Repeat("0.010,5.0,0.0\n", 256<<10/14))
+			for i := 0; i < 8; i++ {
+				old.Write(src, chunk)
+				waitFor(t, 5*time.Second, "the chunk on disk", func() bool { return old.Stats().Records == uint64(i+1) })
+				then = then.Add(time.Minute)
+			}
+			if err := old.Close(); err != nil {
+				t.Fatal(err)
+			}
+
+			ctx, cancel := context.WithCancel(t.Context())
+			defer cancel()
+			d, err := New(cfg, zerolog.Nop(), Options{})
+			if err != nil {
+				t.Fatal(err)
+			}
+			done := make(chan error, 1)
+			go func() { done <- d.Run(ctx) }()
+			waitFor(t, 20*time.Second, "the recorder", func() bool { return d.recStats() != nil })
+			waitFor(t, 20*time.Second, "retention", func() bool {
+				st := d.recStats()
+				return st.Deleted > 0 && tc.check(*st)
+			})
+			cancel()
+			select {
+			case <-done:
+			case <-time.After(20 * time.Second):
+				t.Fatal("daemon did not stop")
+			}
+		})
+	}
+}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"sync/atomic"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -52,6 +53,7 @@ type Daemon struct {
 	serving bool // the HTTP server runs (and closes its listener itself)
 	del     *delivery
 	rec     *recorder // nil when recording is off
+	recPtr  atomic.Pointer[recorder]
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
 }
