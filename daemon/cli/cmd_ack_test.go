@@ -4,6 +4,8 @@ import (
 	"context"
 	"encoding/json"
 	"net"
+	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"sync"
@@ -21,7 +23,8 @@ import (
 // TestAckVerb runs the daemon in-process (embedded NATS on a free port),
 // feeds it a trapping patient over TCP at 20× real time, waits for the
 // air-trapping alarm and acknowledges it with the verb; a second ack of an
-// unknown id is refused with exit 1.
+// unknown id is refused with exit 1. Then export reads the same daemon's
+// JetStream streams.
 func TestAckVerb(t *testing.T) {
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
@@ -108,6 +111,19 @@ func TestAckVerb(t *testing.T) {
 		"--log-level", "error"}, nil, &stdout, &stderr)
 	if code != ExitError || !strings.Contains(stderr.String(), "refused") {
 		t.Errorf("ack of an unknown id: exit %d, stdout %q, stderr %q", code, stdout.String(), stderr.String())
+	}
+	// The same daemon's JetStream streams, exported: the alarm's raise and
+	// acknowledgement are rows of the alerts file.
+	exp := filepath.Join(t.TempDir(), "x")
+	msg := run(t, ExitOK, nil, "export", "--from-nats", "--nats-url", info.NATSURL, "--stream", "bed-7",
+		"--formats", "csv", "--wait", "2s", "--out", exp)
+	csvData, err := os.ReadFile(filepath.Join(exp, "trapline-alerts.csv"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(string(csvData), id+",bed-7,air-trapping,physiological,medium,acknowledged") ||
+		!strings.Contains(msg, "breath records") {
+		t.Errorf("export from JetStream: %s\n%s", msg, csvData)
 	}
 	cancel()
 	select {
