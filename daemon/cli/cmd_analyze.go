@@ -89,16 +89,17 @@ type offline struct {
 	pipelines map[string]*pipeline.Pipeline
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
-	timing    *ingest.Timelines
-	nAlerts   int
-	keptAlert []alerts.Event // for --summary
-	out       *bufio.Writer
-	summary   bool
-	kept      []analyze.Breath // for --summary
-	line      []byte
-	writeErr  error
-	samples   uint64
-	breaths   int
+	timing     *ingest.Timelines
+	outOfOrder uint64 // samples the timing checks dropped
+	nAlerts    int
+	keptAlert  []alerts.Event // for --summary
+	out        *bufio.Writer
+	summary    bool
+	kept       []analyze.Breath // for --summary
+	line       []byte
+	writeErr   error
+	samples    uint64
+	breaths    int
 }
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
@@ -120,6 +121,7 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 		var gap *ingest.Event
 		var ok bool
 		if s, gap, ok = o.timing.Admit(stream, s); !ok {
+			o.outOfOrder++
 			return
 		}
 		if gap != nil {
@@ -205,6 +207,10 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 			return nil
 		}
 		return err
+	}
+	if n := st.Decode.Samples; st.Kind == input.KindText && n > 0 && o.outOfOrder*2 > n {
+		return fmt.Errorf("%d of %d samples are not in time order: the time column is probably another one%s",
+			o.outOfOrder, n, columnsHint(st, f.in))
 	}
 	log := a.log.With().Str("component", "analyze").Logger()
 	if d := st.Decode; d.BadLines > 0 || d.BadFrames > 0 {
