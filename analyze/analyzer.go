@@ -243,7 +243,10 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 		return false
 	}
 	a.ring.push(t, p, f)
-	if dt != a.alphaDt {
+	// Recomputed only when the step changes by more than rounding: the
+	// timestamps of a fixed sampling rate differ in their last bits, and
+	// a division per sample is a measurable share of the cost.
+	if math.Abs(dt-a.alphaDt) > 1e-9*dt {
 		a.alphaDt, a.alpha = dt, dt/(flowSmoothS+dt)
 	}
 	a.fs += (f - a.fs) * a.alpha
@@ -354,7 +357,10 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 	// End-inspiratory pause: smoothed |flow| under the pause threshold after
 	// flow has been delivered (common practice: below ~2–5 % of peak flow or
 	// 1–3 L/min).
-	thr := math.Max(a.pauseFlowLPS, a.cfg.PauseFlowFraction*a.cur.maxF)
+	thr := a.cfg.PauseFlowFraction * a.cur.maxF // plain compare: math.Max costs per sample
+	if thr < a.pauseFlowLPS {
+		thr = a.pauseFlowLPS
+	}
 	if math.IsNaN(a.pauseStartT) {
 		if a.cur.maxF > a.trigLPS && math.Abs(a.fs) < thr {
 			a.pauseStartT = t

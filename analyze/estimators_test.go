@@ -184,3 +184,40 @@ func TestRisingPeakAfterSettingsChange(t *testing.T) {
 		t.Errorf("compliance falling: %v %q", f.Present, f.Message)
 	}
 }
+
+// TestExpGramClosedForm checks the closed-form inner products of the
+// two-exponential fit on evenly spaced points against the sums computed
+// point by point: Σᵢ qⁱ = (1 − qⁿ)/(1 − q), the finite geometric series
+// (Abramowitz M, Stegun IA, Handbook of Mathematical Functions, 1964,
+// 3.6.1 notation; any calculus text).
+func TestExpGramClosedForm(t *testing.T) {
+	cases := []struct {
+		s0, h float64
+		n     int
+	}{
+		{0.05, 0.005, 200}, {0.3, 0.02, 64}, {0.01, 0.04, 8}, {1.2, 0.01, 256},
+	}
+	for _, tc := range cases {
+		s := make([]float64, tc.n)
+		y := make([]float64, tc.n)
+		for i := range s {
+			s[i] = tc.s0 + float64(i)*tc.h
+			y[i] = 0.4*math.Exp(-s[i]/0.3) + 0.1*math.Exp(-s[i]/2) + 0.01*math.Sin(7*s[i])
+		}
+		var by, bb, by2, bb2 [expGridN]float64
+		var c, c2 [expGridN][expGridN]float64
+		expGram(s, y, &by, &bb, &c)
+		expGramDirect(s, y, &by2, &bb2, &c2)
+		rel := func(a, b float64) float64 { return math.Abs(a-b) / math.Max(math.Abs(b), 1e-300) }
+		for j := range expGridN {
+			if rel(by[j], by2[j]) > 1e-9 || rel(bb[j], bb2[j]) > 1e-9 {
+				t.Fatalf("%+v j=%d: by %g/%g bb %g/%g", tc, j, by[j], by2[j], bb[j], bb2[j])
+			}
+			for k := j + 2; k < expGridN; k++ {
+				if rel(c[j][k], c2[j][k]) > 1e-9 {
+					t.Fatalf("%+v (%d,%d): %g vs %g", tc, j, k, c[j][k], c2[j][k])
+				}
+			}
+		}
+	}
+}

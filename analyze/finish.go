@@ -63,7 +63,9 @@ func (a *Analyzer) finish() Breath {
 		eef, eefSE = -fe, se
 	}
 
-	var flags []string
+	// One allocation a breath (the record keeps its flags), sized for the
+	// usual count so that appending does not grow it.
+	flags := make([]string, 0, 8)
 	if !math.IsNaN(a.plateau) {
 		flags = append(flags, FlagPause)
 		b.PlateauCmH2O = a.plateau

@@ -36,6 +36,7 @@ func (a *Analyzer) inspOnset(tc float64) float64 {
 	}
 	var buf [ringSize]float64
 	ps := buf[:0]
+	below := 0 // samples lower than the last one minus onsetMinRiseCmH2O
 	for k := 1; k <= a.ring.n; k++ {
 		e := &a.ring.s[(a.ring.next-k)&(ringSize-1)]
 		if e.t >= tc {
@@ -45,8 +46,16 @@ func (a *Analyzer) inspOnset(tc float64) float64 {
 			break
 		}
 		ps = append(ps, e.p)
+		if e.p < ps[0]-onsetMinRiseCmH2O {
+			below++
+		}
 	}
-	if len(ps) < 5 {
+	// The threshold lies at least onsetMinRiseCmH2O above the median: when
+	// no more than half the samples lie below the last one minus that
+	// rise, the median is at least that high, the last pressure is not
+	// above the threshold, and the onset is the crossing (a pressure step,
+	// volume control). A count costs less than the medians.
+	if len(ps) < 5 || below <= len(ps)/2 {
 		return tc
 	}
 	// Medians by selection (linear time), not sorting: this runs once a

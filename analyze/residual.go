@@ -88,19 +88,23 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 // does not inflate.
 func windowedResidual(pts []point, k int, res func(*point) float64) (worst, noise float64) {
 	n := len(pts)
+	var rs [bufCap]float64 // each residual computed once
 	sum, sd, prev := 0.0, 0.0, 0.0
 	for i := range pts {
 		r := res(&pts[i])
+		rs[i] = r
 		if i > 0 {
 			sd += (r - prev) * (r - prev)
 		}
 		prev = r
 		sum += r
 		if i >= k {
-			sum -= res(&pts[i-k])
+			sum -= rs[i-k]
 		}
 		if i >= k-1 {
-			worst = math.Max(worst, math.Abs(sum)/float64(k))
+			if m := math.Abs(sum) / float64(k); m > worst {
+				worst = m
+			}
 		}
 	}
 	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))

@@ -33,15 +33,20 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	// that the fit sees the flow dependence, not the steps.
 	maxF := 0.0
 	for i := range pts {
-		maxF = math.Max(maxF, math.Abs(pts[i].f))
+		if af := math.Abs(pts[i].f); af > maxF {
+			maxF = af
+		}
 	}
 	lim := 0.15 * maxF
+	nextStep := false // whether the flow steps from point i to point i+1
 	for i := range pts {
 		q := &pts[i]
 		if q.t >= endT {
 			break
 		}
-		if i > 0 && math.Abs(q.f-pts[i-1].f) > lim || i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim {
+		prevStep := nextStep
+		nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
+		if prevStep || nextStep {
 			continue
 		}
 		fa := q.f * math.Abs(q.f)

@@ -70,16 +70,9 @@ func (a *Analyzer) fitTwoExp(vte, endT float64) expFit {
 	if n < 8 {
 		return expFit{}
 	}
-	var basis [expGridN][bufCap]float64
 	var by, bb [expGridN]float64
-	for j, tau := range expGrid {
-		for i := range n {
-			e := math.Exp(-s[i] / tau)
-			basis[j][i] = e
-			by[j] += e * y[i]
-			bb[j] += e * e
-		}
-	}
+	var c [expGridN][expGridN]float64
+	expGram(s[:n], y[:n], &by, &bb, &c)
 	yy := 0.0
 	for i := range n {
 		yy += y[i] * y[i]
@@ -96,16 +89,13 @@ func (a *Analyzer) fitTwoExp(vte, endT float64) expFit {
 	oneSS := bestSS
 	for j := range expGridN {
 		for k := j + 2; k < expGridN; k++ {
-			c := 0.0
-			for i := range n {
-				c += basis[j][i] * basis[k][i]
-			}
-			det := bb[j]*bb[k] - c*c
+			cjk := c[j][k]
+			det := bb[j]*bb[k] - cjk*cjk
 			if !(det > 1e-12*bb[j]*bb[k]) {
 				continue
 			}
-			a1 := (by[j]*bb[k] - by[k]*c) / det
-			a2 := (by[k]*bb[j] - by[j]*c) / det
+			a1 := (by[j]*bb[k] - by[k]*cjk) / det
+			a2 := (by[k]*bb[j] - by[j]*cjk) / det
 			if !(a1 > 0 && a2 > 0) {
 				continue
 			}
@@ -125,4 +115,86 @@ func (a *Analyzer) fitTwoExpIf(cond bool, vte, endT float64) expFit {
 		return expFit{}
 	}
 	return a.fitTwoExp(vte, endT)
+}
+
+// expGram fills the inner products of the exponential basis e^(−s/τⱼ) of
+// the grid with the flow y (by), with itself (bb), and between pairs of
+// time constants at least two grid steps apart (c). The decimated points
+// are evenly spaced in time when the samples are; then every inner product
+// of two exponentials is a geometric series with a closed form, and the
+// basis is a running product, so the fit needs no exponential per point
+// and no pass over the points per pair.
+func expGram(s, y []float64, by, bb *[expGridN]float64, c *[expGridN][expGridN]float64) {
+	n := len(s)
+	h := (s[n-1] - s[0]) / float64(n-1)
+	if !evenlySpaced(s, h) {
+		expGramDirect(s, y, by, bb, c)
+		return
+	}
+	// Σᵢ qⁱ over i < n is (1 − qⁿ)/(1 − q); with q = rⱼ·rₖ both factors
+	// are written with expm1 so that q near 1 loses no precision:
+	// 1 − rⱼrₖ = (1 − rⱼ) + rⱼ(1 − rₖ).
+	var e0, r, om, rn, omn [expGridN]float64
+	fn := float64(n)
+	for j, tau := range expGrid {
+		lam := 1 / tau
+		e0[j] = math.Exp(-s[0] * lam)
+		r[j] = math.Exp(-h * lam)
+		om[j] = -math.Expm1(-h * lam)
+		rn[j] = math.Exp(-fn * h * lam)
+		omn[j] = -math.Expm1(-fn * h * lam)
+		e, sum := e0[j], 0.0
+		for i := range n {
+			sum += e * y[i]
+			e *= r[j]
+		}
+		by[j] = sum
+	}
+	series := func(j, k int) float64 {
+		return e0[j] * e0[k] * (omn[j] + rn[j]*omn[k]) / (om[j] + r[j]*om[k])
+	}
+	for j := range expGridN {
+		bb[j] = series(j, j)
+		for k := j + 2; k < expGridN; k++ {
+			c[j][k] = series(j, k)
+		}
+	}
+}
+
+// evenlySpaced reports whether the times s lie on a grid of step h within
+// 1e-4 of the step (sampling at a fixed rate; decimation keeps it).
+func evenlySpaced(s []float64, h float64) bool {
+	if !(h > 0) {
+		return false
+	}
+	tol := 1e-4 * h
+	for i := range s {
+		if math.Abs(s[i]-s[0]-float64(i)*h) > tol {
+			return false
+		}
+	}
+	return true
+}
+
+// expGramDirect computes the same inner products as expGram point by
+// point, for unevenly spaced samples.
+func expGramDirect(s, y []float64, by, bb *[expGridN]float64, c *[expGridN][expGridN]float64) {
+	var basis [expGridN][bufCap]float64
+	for j, tau := range expGrid {
+		for i := range s {
+			e := math.Exp(-s[i] / tau)
+			basis[j][i] = e
+			by[j] += e * y[i]
+			bb[j] += e * e
+		}
+	}
+	for j := range expGridN {
+		for k := j + 2; k < expGridN; k++ {
+			v := 0.0
+			for i := range s {
+				v += basis[j][i] * basis[k][i]
+			}
+			c[j][k] = v
+		}
+	}
 }

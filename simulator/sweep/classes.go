@@ -43,8 +43,12 @@ type ClassScore struct {
 	OnsetMaxBreaths Num `json:"onset_max_breaths"`
 	OnsetOver6      int `json:"onset_over_6"`
 	// FalseRaises counts raises whose alarm never overlapped a trapping
-	// breath; NonTrappingHours is the time of patients that never trapped.
+	// breath nor a grey-zone one (true intrinsic PEEP ≥ GreyZoneCmH2O);
+	// GreyRaises counts those that overlapped only grey-zone breaths.
+	// NonTrappingHours is the time of patients whose true intrinsic PEEP
+	// stayed below GreyZoneCmH2O throughout.
 	FalseRaises      int `json:"false_raises"`
+	GreyRaises       int `json:"grey_raises"`
 	NonTrappingHours Num `json:"non_trapping_hours"`
 	// PEEPiWithin is the fraction of matched breaths whose intrinsic PEEP
 	// estimate is within ±1 cmH2O of the truth, or, when the record flags
@@ -88,7 +92,8 @@ func classScores(r *Result, si int) []ClassScore {
 		var one ConditionScore
 		one.Condition = analyze.CondAirTrapping
 		caseScore(c.Truth, c.Alerts[si], ci, ep, &one)
-		trapped := slices.ContainsFunc(c.Truth, func(t TruthBreath) bool { return t.Has(ci) })
+		trapped := slices.ContainsFunc(c.Truth, func(t TruthBreath) bool { return t.Has(ci) }) ||
+			greyZone(Scored()[ci], c.Truth)
 		settled, hit := settledCounts(c.Truth, c.Alerts[si], ci, ep)
 		for _, name := range caseClasses(c.Case) {
 			cs := byName[name]
@@ -107,6 +112,7 @@ func classScores(r *Result, si int) []ClassScore {
 			cs.Episodes += one.Episode.Positive
 			cs.Unalarmed += one.Episode.Positive - one.Episode.Detected
 			cs.FalseRaises += one.FalseAlerts
+			cs.GreyRaises += one.GreyAlerts
 			for _, b := range one.onsetBreaths {
 				if b > SettleBreaths {
 					cs.OnsetOver6++

@@ -148,7 +148,9 @@ func countIndependently(cr *CaseResult, set int, ci int, ep Episodes, out *indep
 				break
 			}
 			first = false
-			if tr[i].Has(ci) {
+			// Grey zone of air trapping: a true intrinsic PEEP of 1 cmH2O or
+			// more makes a raise not false (docs/sweep.md).
+			if tr[i].Has(ci) || cond == analyze.CondAirTrapping && tr[i].PEEPiCmH2O >= 1 {
 				hit = true
 				break
 			}
@@ -571,6 +573,23 @@ func TestCaseScoreByHand(t *testing.T) {
 	// Intrinsic PEEP 0 on every breath: all 20 in the first bin, 7 alarmed.
 	if sc.Curve[0].Breaths != 20 || sc.Curve[0].Alarmed != 7 {
 		t.Errorf("curve bin 0 %+v", sc.Curve[0])
+	}
+	// A raise whose span holds only grey-zone breaths (true intrinsic PEEP
+	// 1–2 cmH2O) is a grey raise, one over breaths below 1 cmH2O is false.
+	for _, tc := range []struct {
+		peepi        float64
+		grey, falseN int
+	}{{1.7, 1, 0}, {0.5, 0, 1}} {
+		gt := make([]TruthBreath, 20)
+		for i := range gt {
+			gt[i].StartS, gt[i].EndS = float64(3*i), float64(3*i+3)
+			gt[i].PEEPiCmH2O = tc.peepi
+		}
+		var g ConditionScore
+		caseScore(gt, ev[:3], ci, ep, &g)
+		if g.Alerts != 1 || g.GreyAlerts != tc.grey || g.FalseAlerts != tc.falseN {
+			t.Errorf("PEEPi %v: alerts %d, grey %d, false %d; want 1, %d, %d", tc.peepi, g.Alerts, g.GreyAlerts, g.FalseAlerts, tc.grey, tc.falseN)
+		}
 	}
 	// A raise with no breath of the condition in its span is false.
 	var fp ConditionScore
