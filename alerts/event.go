@@ -22,7 +22,19 @@ const (
 	Acknowledged State = "acknowledged"
 	// Cleared: the condition is gone (after hysteresis, or reset when latched).
 	Cleared State = "cleared"
+	// Ended: the alarm was closed because the stream went unmonitored for
+	// too long to resume it honestly (Reason says why); like Cleared it is
+	// terminal: the id gets no further events.
+	Ended State = "ended"
 )
+
+// ReasonInterrupted is the Reason of an alarm ended because monitoring was
+// interrupted (a restart after too long a gap).
+const ReasonInterrupted = "monitoring interrupted"
+
+// Terminal reports whether s ends an alarm id: after it the id gets no
+// further events.
+func (s State) Terminal() bool { return s == Cleared || s == Ended }
 
 // Priority is an IEC 60601-1-8 alarm priority: high calls for an immediate
 // response, medium for a prompt one, low for awareness.
@@ -64,6 +76,16 @@ type Event struct {
 	// pipeline fills them in.
 	TraplineVersion string `json:"trapline_version"`
 	ConfigDigest    string `json:"config_digest"`
+	// AckedBy and AckedAt, on an acknowledged event: who acknowledged (as
+	// the request named it, cleaned of control characters) and when.
+	AckedBy string     `json:"acked_by,omitempty"`
+	AckedAt *time.Time `json:"acked_at,omitempty"`
+	// Reason says why an alarm ended (ReasonInterrupted).
+	Reason string `json:"reason,omitempty"`
+	// GapFrom and GapTo, on the technical monitoring-gap event: the wall
+	// interval during which the stream was not analysed.
+	GapFrom *time.Time `json:"gap_from,omitempty"`
+	GapTo   *time.Time `json:"gap_to,omitempty"`
 }
 
 // DedupID is the JetStream message id of the event: the alert id plus its
@@ -81,7 +103,7 @@ func (e *Event) Validate() error {
 		return fmt.Errorf("alert event %s: empty condition", e.ID)
 	}
 	switch e.State {
-	case Raised, Escalated, Acknowledged, Cleared:
+	case Raised, Escalated, Acknowledged, Cleared, Ended:
 	default:
 		return fmt.Errorf("alert event %s: unknown state %q", e.ID, e.State)
 	}

@@ -130,3 +130,9 @@ func (c *OfflineClock) Until(tS float64, tick func(tickS float64)) {
 		c.nextS += OfflineTickS
 	}
 }
+
+// Warm passes a breath to the detectors only, without judging the
+// findings: a restored pipeline replays its recent breaths this way so that
+// the detectors' windows are as they were, while the alarm lifecycle is
+// restored from the snapshot.
+func (j *Judge) Warm(b *analyze.Breath) { j.scratch = j.det.Breath(b, j.scratch[:0]) }

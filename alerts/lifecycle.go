@@ -242,13 +242,21 @@ func (l *Lifecycle) event(a *alarm, f *analyze.Finding, wall time.Time, st State
 		Type: "alert", Schema: EventSchema,
 		ID: a.id, Stream: l.stream, Condition: a.condition, Class: string(f.Class),
 		Priority: a.priority, State: st, Time: wall.UTC(), TS: f.TimeS,
-		Evidence: finite(f.Evidence), Message: msg, Predict: finite(f.Predict),
+		Evidence: finite(f.Evidence), Message: CleanText(msg), Predict: finite(f.Predict),
 	}
 	if e.Evidence == nil {
 		e.Evidence = map[string]float64{}
 	}
 	if math.Abs(e.TS) < 1e12 {
 		e.TS = math.Round(e.TS*1000) / 1000 // milliseconds; beyond, v·1000 could overflow
+	}
+	// t_s never goes back within an alarm id: a finding judged on a clock
+	// that restarted or was extrapolated ahead (signal lost, then the
+	// device's own time stamps resume earlier) is placed at the id's last
+	// event. A new raise keeps its finding's time (a replay after a
+	// hand-over must make the same events as the first analysis).
+	if a.lastOut.ID == a.id && e.TS < a.lastOut.TS {
+		e.TS = a.lastOut.TS
 	}
 	if f.BreathSeq >= 0 {
 		seq := f.BreathSeq
@@ -293,13 +301,17 @@ func (l *Lifecycle) AckBy(id, by string, wall time.Time) ([]Event, error) {
 		}
 		a.acked, a.ackWall = true, wall
 		msg := "acknowledged"
-		if by != "" {
+		if by = CleanText(by); by != "" {
 			msg += " by " + by
 		}
 		if a.cc.AckExpiryS > 0 && a.phase == active {
 			msg += fmt.Sprintf("; announced again after %g s if still present", a.cc.AckExpiryS)
 		}
-		out := []Event{l.event(a, &a.last, wall, Acknowledged, msg)}
+		ack := l.event(a, &a.last, wall, Acknowledged, msg)
+		at := wall.UTC()
+		ack.AckedBy, ack.AckedAt = CleanText(by), &at
+		a.lastOut = ack
+		out := []Event{ack}
 		if a.phase == latched {
 			a.phase = inactive
 			out = append(out, l.event(a, &a.last, wall, Cleared, "cleared on acknowledgement: "+a.last.Message))

@@ -52,6 +52,11 @@ type PublisherOptions struct {
 	DrainTimeout time.Duration
 	// Log receives the publisher's messages (a disabled logger when unset).
 	Log zerolog.Logger
+	// OnForeign, when set, is called (from the drainer) for every event
+	// JetStream answered "duplicate" on its first attempt although this
+	// process spooled it: another client stored a message under its
+	// de-duplication id first, and the real event was dropped.
+	OnForeign func(ev Event)
 }
 
 func (o PublisherOptions) withDefaults() PublisherOptions {
@@ -81,6 +86,8 @@ type PublisherStats struct {
 	Found      uint64 // events found already at the end of the stream after an uncertain publish
 	Retries    uint64 // failed publish attempts (each one is retried)
 	Refused    uint64 // events refused because the spool was full or could not be written
+	Evicted    uint64 // spooled events given up for a higher-ranked one (spool full)
+	Foreign    uint64 // duplicates of events this process never sent before (a foreign publish)
 	Depth      int    // events waiting in the spool
 	Corrupt    int    // unreadable spool files moved aside
 }
@@ -109,6 +116,8 @@ type Publisher struct {
 	wake chan struct{}
 
 	published, duplicates, found, retries, refused atomic.Uint64
+	foreign                                        atomic.Uint64
+	evicted                                        atomic.Uint64
 
 	mu      sync.Mutex
 	closed  bool
@@ -117,6 +126,7 @@ type Publisher struct {
 
 	// Drainer state, touched only by the drainer goroutine.
 	uncertain uint64 // seq of the entry whose last publish may have landed
+	tried     uint64 // seq of the entry last attempted; a duplicate on the first attempt is foreign
 	failing   bool   // inside an episode of failed publishes
 }
 
@@ -180,7 +190,11 @@ func (p *Publisher) Publish(_ context.Context, ev Event) error {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert %s: %w (%d bytes, at most %d)", ev.DedupID(), ErrEventTooLarge, len(data), MaxEventBytes)
 	}
-	if _, err := p.spool.Append(data); err != nil {
+	_, evicted, err := p.spool.AppendRanked(data, EventRank(&ev))
+	if evicted {
+		p.evicted.Add(1)
+	}
+	if err != nil {
 		p.refused.Add(1)
 		return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
 	}
@@ -193,6 +207,14 @@ func (p *Publisher) kick() {
 	case p.wake <- struct{}{}:
 	default:
 	}
+}
+
+// SpoolMax returns the spool's capacity in events (0 without a spool).
+func (p *Publisher) SpoolMax() int {
+	if p.spool == nil {
+		return 0
+	}
+	return p.spool.Max()
 }
 
 // Depth returns the number of events waiting in the spool.
@@ -211,6 +233,8 @@ func (p *Publisher) Stats() PublisherStats {
 		Found:      p.found.Load(),
 		Retries:    p.retries.Load(),
 		Refused:    p.refused.Load(),
+		Evicted:    p.evicted.Load(),
+		Foreign:    p.foreign.Load(),
 		Depth:      p.Depth(),
 		Corrupt:    p.corrupt(),
 	}
@@ -351,6 +375,7 @@ func (p *Publisher) send(ctx context.Context, e SpoolEntry) error {
 	subject := p.subj.Alert(e.Event.Stream)
 	id := e.Event.DedupID()
 	if p.uncertain == e.Seq {
+		p.tried = e.Seq // a check counts as an attempt: what it finds may be ours
 		landed, err := p.landed(ctx, subject, id)
 		if err != nil {
 			return err
@@ -386,6 +411,16 @@ func (p *Publisher) send(ctx context.Context, e SpoolEntry) error {
 		return fmt.Errorf("publish %s: %w", id, err)
 	}
 	p.uncertain = 0
+	first := p.tried != e.Seq
+	p.tried = e.Seq
+	if ack.Duplicate && first && p.spool.OwnEvent(e.Seq) {
+		p.foreign.Add(1)
+		p.log.Error().Str("id", id).Str("subject", subject).
+			Msg("JetStream already held this alert id, which this daemon never sent: another client published under it; the real event was dropped")
+		if p.opts.OnForeign != nil {
+			p.opts.OnForeign(e.Event)
+		}
+	}
 	if ack.Duplicate {
 		p.duplicates.Add(1)
 	} else {

@@ -9,7 +9,7 @@ import (
 type publisherCollector struct {
 	p                                              *Publisher
 	published, duplicates, found, retries, refused *prometheus.Desc
-	corrupt                                        *prometheus.Desc
+	corrupt, evicted, foreign                      *prometheus.Desc
 }
 
 // Collector returns a Prometheus collector for the publisher's counters,
@@ -21,6 +21,8 @@ type publisherCollector struct {
 //	<ns>_alert_publish_retries_total     failed publish attempts, each retried
 //	<ns>_alert_publish_refused_total     events refused by Publish (spool full, invalid, too large)
 //	<ns>_alert_spool_corrupt_total       unreadable spool files moved aside
+//	<ns>_alert_spool_evicted_total       spooled events given up for higher-ranked ones
+//	<ns>_alert_publish_foreign_duplicates_total  first publishes answered "duplicate" (a forgery)
 //
 // The spool depth is Publisher.Depth (a gauge the daemon already exports).
 func (p *Publisher) Collector(namespace string) prometheus.Collector {
@@ -35,11 +37,13 @@ func (p *Publisher) Collector(namespace string) prometheus.Collector {
 		retries:    d("alert_publish_retries_total", "Failed alert publish attempts; each is retried, in order."),
 		refused:    d("alert_publish_refused_total", "Alert events refused before spooling (spool full, invalid or too large); each is logged as an error."),
 		corrupt:    d("alert_spool_corrupt_total", "Unreadable alert spool files moved aside into corrupt/."),
+		foreign:    d("alert_publish_foreign_duplicates_total", "Alert events JetStream called duplicates on their first publish: another client stored a message under the id first."),
+		evicted:    d("alert_spool_evicted_total", "Spooled alert events given up, with the spool full, for a higher-ranked one (priority, then raise or end)."),
 	}
 }
 
 func (c *publisherCollector) Describe(ch chan<- *prometheus.Desc) {
-	for _, d := range []*prometheus.Desc{c.published, c.duplicates, c.found, c.retries, c.refused, c.corrupt} {
+	for _, d := range []*prometheus.Desc{c.published, c.duplicates, c.found, c.retries, c.refused, c.corrupt, c.evicted, c.foreign} {
 		ch <- d
 	}
 }
@@ -51,7 +55,7 @@ func (c *publisherCollector) Collect(ch chan<- prometheus.Metric) {
 		v uint64
 	}{
 		{c.published, st.Published}, {c.duplicates, st.Duplicates}, {c.found, st.Found},
-		{c.retries, st.Retries}, {c.refused, st.Refused}, {c.corrupt, uint64(st.Corrupt)},
+		{c.retries, st.Retries}, {c.refused, st.Refused}, {c.corrupt, uint64(st.Corrupt)}, {c.evicted, st.Evicted}, {c.foreign, st.Foreign},
 	} {
 		ch <- prometheus.MustNewConstMetric(m.d, prometheus.CounterValue, float64(m.v))
 	}

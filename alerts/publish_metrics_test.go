@@ -45,18 +45,20 @@ func TestPublisherCollector(t *testing.T) {
 		got[mf.GetName()] = mf.GetMetric()[0].GetCounter().GetValue()
 	}
 	for name, want := range map[string]float64{
-		"trapline_alert_publish_acked_total":      3,
-		"trapline_alert_publish_duplicates_total": 0,
-		"trapline_alert_publish_found_total":      0,
-		"trapline_alert_publish_retries_total":    0,
-		"trapline_alert_publish_refused_total":    1,
-		"trapline_alert_spool_corrupt_total":      0,
+		"trapline_alert_publish_acked_total":              3,
+		"trapline_alert_publish_duplicates_total":         0,
+		"trapline_alert_publish_found_total":              0,
+		"trapline_alert_publish_retries_total":            0,
+		"trapline_alert_publish_refused_total":            1,
+		"trapline_alert_spool_corrupt_total":              0,
+		"trapline_alert_spool_evicted_total":              0,
+		"trapline_alert_publish_foreign_duplicates_total": 0,
 	} {
 		if v, ok := got[name]; !ok || v != want {
 			t.Errorf("%s = %v (present %v), want %v", name, v, ok, want)
 		}
 	}
-	if len(got) != 6 {
-		t.Errorf("%d metrics, want 6", len(got))
+	if len(got) != 8 {
+		t.Errorf("%d metrics, want 8", len(got))
 	}
 }

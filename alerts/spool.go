@@ -67,7 +67,8 @@ type Spool struct {
 
 	mu      sync.Mutex
 	lock    *os.File
-	pending []uint64 // sequence numbers on disk, oldest first
+	pending []uint64       // sequence numbers on disk, oldest first
+	ranks   map[uint64]int // rank of events appended by this process (spool_rank.go)
 	next    uint64
 	corrupt int
 	closed  bool
@@ -147,21 +148,8 @@ func (s *Spool) Corrupt() int {
 // number. data must be the JSON of a valid Event (Event.Marshal); it is what
 // will be published, byte for byte.
 func (s *Spool) Append(data []byte) (uint64, error) {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.closed {
-		return 0, ErrSpoolClosed
-	}
-	if len(s.pending) >= s.max {
-		return 0, fmt.Errorf("%w: %d events pending in %s", ErrSpoolFull, len(s.pending), s.dir)
-	}
-	seq := s.next
-	if err := s.write(seq, data); err != nil {
-		return 0, err
-	}
-	s.next++
-	s.pending = append(s.pending, seq)
-	return seq, nil
+	seq, _, err := s.AppendRanked(data, 0)
+	return seq, err
 }
 
 // write stores data as the file for seq: temporary file, fsync, rename,
@@ -231,10 +219,10 @@ func (s *Spool) Remove(seq uint64) error {
 	if s.closed {
 		return ErrSpoolClosed
 	}
-	err := os.Remove(s.path(seq))
-	if err != nil && !errors.Is(err, os.ErrNotExist) {
-		return fmt.Errorf("remove delivered alert: %w", err)
+	if err := s.removeFile(seq); err != nil {
+		return err
 	}
+	delete(s.ranks, seq)
 	switch i := slices.Index(s.pending, seq); {
 	case i == 0:
 		// The usual case: the oldest was delivered. Re-slicing keeps a
@@ -246,6 +234,15 @@ func (s *Spool) Remove(seq uint64) error {
 	// The directory is not synced here: if the removal is lost in a crash,
 	// the event is sent again with the same de-duplication id and the
 	// stream drops it (or the publisher's last-message check catches it).
+	return nil
+}
+
+// removeFile deletes the file of seq; a file already gone is no error.
+func (s *Spool) removeFile(seq uint64) error {
+	err := os.Remove(s.path(seq))
+	if err != nil && !errors.Is(err, os.ErrNotExist) {
+		return fmt.Errorf("remove delivered alert: %w", err)
+	}
 	return nil
 }
 

@@ -56,7 +56,7 @@ func (l *Lifecycle) Snapshot() LifecycleState {
 		}
 		as.Last.Evidence, as.Last.Predict = finite(a.last.Evidence), finite(a.last.Predict)
 		as.Last.TimeS = finiteOr0(as.Last.TimeS)
-		for _, s := range []State{Raised, Escalated, Acknowledged, Cleared} {
+		for _, s := range []State{Raised, Escalated, Acknowledged, Cleared, Ended} {
 			if a.used[s] {
 				as.Used = append(as.Used, s)
 			}

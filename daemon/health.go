@@ -83,6 +83,7 @@ type httpServer struct {
 	srv   *http.Server
 	log   zerolog.Logger
 	ready *readiness
+	mux   *http.ServeMux // where the live view is mounted
 }
 
 // newHTTPServer listens at once, so that a port in use fails the start of
@@ -101,6 +102,7 @@ func newHTTPServer(addr string, m *metrics, ready *readiness, log zerolog.Logger
 	})
 	mux.HandleFunc("GET /readyz", h.readyz)
 	mux.Handle("GET /metrics", promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{Registry: m.reg}))
+	h.mux = mux
 	h.srv = &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	return h, nil
 }

@@ -29,6 +29,7 @@ type metrics struct {
 	alertsActive  *prometheus.GaugeVec
 	breathLatency prometheus.Histogram
 	acks          *prometheus.CounterVec
+	trustMetrics
 
 	mu      sync.Mutex
 	sources map[string]func() ingest.Stats
@@ -45,8 +46,9 @@ const (
 
 func newMetrics() *metrics {
 	m := &metrics{
-		reg:     prometheus.NewRegistry(),
-		sources: map[string]func() ingest.Stats{},
+		reg:          prometheus.NewRegistry(),
+		sources:      map[string]func() ingest.Stats{},
+		trustMetrics: newTrustMetrics(),
 		breaths: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Namespace: metricNamespace, Name: "breaths_total",
 			Help: "Completed breaths analysed, per stream.",
@@ -92,6 +94,7 @@ func newMetrics() *metrics {
 		m.alertsActive, m.breathLatency, m.acks,
 		&scrapeCollector{m: m},
 	)
+	m.reg.MustRegister(m.trustMetrics.collectors()...)
 	return m
 }
 
@@ -122,6 +125,8 @@ var (
 		"Samples a stream's source dropped (overload, out of order).", []string{"stream"}, nil)
 	descGaps = prometheus.NewDesc(metricNamespace+"_sample_gaps_total",
 		"Gaps detected in a stream's time stamps or counters.", []string{"stream"}, nil)
+	descSkipped = prometheus.NewDesc(metricNamespace+"_decoder_skipped_bytes_total",
+		"Bytes a stream's decoder discarded while resynchronising (binary framing).", []string{"stream"}, nil)
 	descReconnects = prometheus.NewDesc(metricNamespace+"_source_reconnects_total",
 		"Times a stream's source reopened its device or connection.", []string{"stream"}, nil)
 	descSpool = prometheus.NewDesc(metricNamespace+"_spool_depth",
@@ -137,7 +142,7 @@ var (
 type scrapeCollector struct{ m *metrics }
 
 func (c *scrapeCollector) Describe(ch chan<- *prometheus.Desc) {
-	for _, d := range []*prometheus.Desc{descSamples, descDecodeErrors, descDropped, descGaps, descReconnects, descSpool, descNATS, descBulletinDropped} {
+	for _, d := range []*prometheus.Desc{descSamples, descDecodeErrors, descDropped, descGaps, descSkipped, descReconnects, descSpool, descNATS, descBulletinDropped} {
 		ch <- d
 	}
 }
@@ -158,6 +163,7 @@ func (c *scrapeCollector) Collect(ch chan<- prometheus.Metric) {
 		ch <- prometheus.MustNewConstMetric(descDecodeErrors, prometheus.CounterValue, float64(s.BadFrames), stream, "frame")
 		ch <- prometheus.MustNewConstMetric(descDropped, prometheus.CounterValue, float64(s.Dropped+s.OutOfOrder), stream)
 		ch <- prometheus.MustNewConstMetric(descGaps, prometheus.CounterValue, float64(s.Gaps), stream)
+		ch <- prometheus.MustNewConstMetric(descSkipped, prometheus.CounterValue, float64(s.SkippedBytes), stream)
 		ch <- prometheus.MustNewConstMetric(descReconnects, prometheus.CounterValue, float64(s.Reconnects), stream)
 	}
 	if spool != nil {

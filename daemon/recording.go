@@ -70,6 +70,15 @@ func (d *Daemon) startRecorder(ctx context.Context) error {
 	return nil
 }
 
+// startStreams opens the recording, if enabled, and then makes the
+// streams, whose sources feed it.
+func (d *Daemon) startStreams(ctx context.Context, del *delivery) error {
+	if err := d.startRecorder(ctx); err != nil {
+		return err
+	}
+	return d.addStreams(del)
+}
+
 // closeRecorder closes the recording, if any; a second call does nothing
 // more.
 func (d *Daemon) closeRecorder() {

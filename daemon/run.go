@@ -14,6 +14,7 @@ import (
 	"trapline/alerts"
 	"trapline/config"
 	"trapline/daemon/bus"
+	"trapline/daemon/web"
 	"trapline/ingest/record"
 )
 
@@ -56,6 +57,7 @@ type Daemon struct {
 	recPtr  atomic.Pointer[recorder]
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
+	hub     *web.Hub           // the live view; nil without HTTP
 }
 
 // newDaemon checks what can be checked before anything starts.
@@ -85,12 +87,14 @@ func (d *Daemon) Run(ctx context.Context) error {
 		return d.runWorker(ctx)
 	}
 	var httpSrv *httpServer
+	acks := d.ackService()
 	if cfg.HTTP.Listen != "" {
 		h, err := newHTTPServer(cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
 		if err != nil {
 			return err
 		}
 		httpSrv = h
+		d.startLiveView(h, acks)
 		// Until Run serves it, the listener is ours to close.
 		defer func() {
 			if !d.serving {
@@ -113,15 +117,12 @@ func (d *Daemon) Run(ctx context.Context) error {
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
-	if err := d.startRecorder(ctx); err != nil {
-		return err
-	}
 	defer d.closeRecorder()
-	if err := d.addStreams(del); err != nil {
+	if err := d.startStreams(ctx, del); err != nil {
 		return err
 	}
 
-	ackSub, err := d.ackService().Subscribe(b.Conn, d.subj)
+	ackSub, err := acks.Subscribe(b.Conn, d.subj)
 	if err != nil {
 		return fmt.Errorf("subscribe %s: %w", d.subj.All(alerts.KindAck), err)
 	}
@@ -149,6 +150,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 	if httpSrv != nil {
 		d.serving = true
 		g.Go(func() error { return httpSrv.Run(gctx) })
+		g.Go(func() error { return d.hub.Run(gctx) })
 	}
 
 	d.announce(b, httpSrv)
@@ -209,6 +211,7 @@ func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
 	}
 	d.del = del
 	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
+	d.m.addPublisher(del.pub)
 	d.ready.set("nats", func() error {
 		if !b.Conn.IsConnected() {
 			return fmt.Errorf("not connected (%s)", b.Conn.Status())
@@ -227,6 +230,7 @@ func (d *Daemon) addStreams(del *delivery) error {
 			return err
 		}
 		s := newStream(spec, d.log, d.m, del, del)
+		s.view = d.view()
 		d.streams = append(d.streams, s)
 		d.byToken[alerts.SubjectToken(sc.ID)] = s
 		d.ready.set("stream "+sc.ID, s.ready)
@@ -264,8 +268,11 @@ func (d *Daemon) announce(b *bus.Bus, httpSrv *httpServer) {
 	if httpSrv != nil {
 		info.HTTPAddr = httpSrv.Addr()
 	}
-	d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr).
-		Bool("embedded_nats", b.Embedded()).Msg("trapline running")
+	ev := d.log.Info().Int("streams", len(d.streams)).Str("nats", b.URL).Str("http", info.HTTPAddr)
+	if d.hub != nil {
+		ev = ev.Str("live_view", "http://"+info.HTTPAddr+web.Path)
+	}
+	ev.Bool("embedded_nats", b.Embedded()).Msg("trapline running")
 	if d.opts.Ready != nil {
 		d.opts.Ready(info)
 	}

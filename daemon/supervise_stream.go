@@ -79,6 +79,12 @@ type streamSpec struct {
 	// Health, when set, is asked on every tick for a finding about the
 	// program itself (recording-impaired), judged like any other.
 	Health func() analyze.Finding
+	// Continuity, when set, resumes the pipeline from its checkpoint at
+	// start and writes the checkpoint while running and at stop.
+	Continuity *continuity
+	// SourceStream is the default stream id the source's URL names
+	// (?stream=), also accepted as this stream's own.
+	SourceStream string
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -107,6 +113,8 @@ type stream struct {
 	m      *metrics
 	alerts alertSink
 	bull   bulletinSink
+	// view is the live view, or nil; fed beside the bulletin.
+	view viewSink
 
 	up        atomic.Bool // pipeline running
 	connected atomic.Bool // source reading
@@ -124,7 +132,9 @@ type stream struct {
 	ackMu sync.RWMutex
 	acks  *ackLine
 
-	dropEpisode bool // touched by the source goroutine only
+	dropEpisode bool            // touched by the source goroutine only
+	foreignSeen map[string]bool // other stream ids seen; source goroutine only
+	imp         impairment
 	// activeIDs are the alarms raised and not cleared; touched by the
 	// analysis goroutine only.
 	activeIDs map[string]struct{}
@@ -191,6 +201,9 @@ func (s *stream) ack(ctx context.Context, id, by string) error {
 	s.ackMu.RLock()
 	line := s.acks
 	s.ackMu.RUnlock()
+	if err := alerts.CheckAck(s.spec.ID, id, by); err != nil {
+		return err // refused here too: the browser view acknowledges through this path
+	}
 	notRunning := fmt.Errorf("stream %s is not running", s.spec.ID)
 	if line == nil {
 		return notRunning
@@ -298,6 +311,9 @@ func (s *stream) enqueue(queue chan<- ingest.Event, analysisDone <-chan struct{}
 		s.connected.Store(false)
 		s.m.sourceUp.WithLabelValues(s.spec.ID).Set(0)
 	}
+	if !s.acceptsStream(&ev) {
+		return
+	}
 	if len(ev.Samples) > 0 {
 		// A source that delivers samples is reading, whether or not it
 		// announced it.
@@ -338,23 +354,37 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 	// pubCtx outlives ctx: alerts found while draining the queue at
 	// shutdown are still written to the spool.
 	pubCtx := context.WithoutCancel(ctx)
+	if err := s.resume(pubCtx, pl); err != nil {
+		return err
+	}
 	for {
 		select {
 		case ev, ok := <-queue:
 			if !ok {
-				return s.emit(pubCtx, pl.Flush(), time.Time{})
+				err := s.emit(pubCtx, pl.Flush(), time.Time{})
+				s.recovered(pubCtx, time.Now(), alerts.Ended, "stream stopped")
+				s.checkpoint(pl, time.Now(), true)
+				return err
 			}
 			arrived := time.Now()
 			if ev.Status != ingest.StatusNone {
+				if s.view != nil {
+					s.view.Status(s.spec.ID, ev.Status)
+				}
 				if err := s.emit(pubCtx, pl.Status(ev, arrived), time.Time{}); err != nil {
 					return err
 				}
 			}
 			if len(ev.Samples) > 0 {
-				if err := s.emit(pubCtx, pl.Samples(ev.Samples), arrived); err != nil {
+				out := pl.Samples(ev.Samples)
+				s.checkpoint(pl, arrived, false) // before the breaths go out: their numbers are reserved
+				if err := s.emit(pubCtx, out, arrived); err != nil {
 					return err
 				}
 				s.analysed.Add(uint64(len(ev.Samples)))
+				if s.view != nil {
+					s.view.Samples(s.spec.ID, ev.Samples)
+				}
 			}
 		case now := <-tick.C:
 			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
@@ -365,6 +395,8 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 					return err
 				}
 			}
+			s.checkpoint(pl, now, false)
+			s.checkDelivery(pubCtx, now)
 			if now.Sub(lastStatus) >= s.spec.StatusEvery {
 				lastStatus = now
 				s.heartbeat(now)
@@ -385,19 +417,20 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 }
 
 // emit delivers what a step produced: alerts through the durable publisher
-// (an error here stops the stream so that the supervisor restarts it rather
-// than losing an alert), breaths through the non-blocking bulletin.
+// (a refusal degrades delivery but never stops the stream: see deliver),
+// breaths through the non-blocking bulletin.
 func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) error {
 	for i := range out.Alerts {
 		ev := out.Alerts[i]
-		if err := s.alerts.Publish(ctx, ev); err != nil {
-			return fmt.Errorf("publish alert %s: %w", ev.DedupID(), err)
-		}
+		s.deliver(ctx, ev)
 		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
+		if s.view != nil {
+			s.view.Alert(ev)
+		}
 		if ev.Supersedes != "" {
 			delete(s.activeIDs, ev.Supersedes)
 		}
-		if ev.State == alerts.Cleared {
+		if ev.State.Terminal() {
 			delete(s.activeIDs, ev.ID)
 		} else {
 			s.activeIDs[ev.ID] = struct{}{}
@@ -411,6 +444,9 @@ func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) e
 			b.Stream = s.spec.ID
 		}
 		s.bull.Breath(b)
+		if s.view != nil {
+			s.view.Breath(*b)
+		}
 		s.breaths.Add(1)
 		s.m.breaths.WithLabelValues(s.spec.ID).Inc()
 		if !arrived.IsZero() {

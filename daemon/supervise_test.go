@@ -13,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	dto "github.com/prometheus/client_model/go"
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
@@ -417,5 +418,49 @@ func runToEnd(t *testing.T, s *stream) {
 		}
 	case <-time.After(30 * time.Second):
 		t.Fatal("the stream of a finished recording did not end within 30 s")
+	}
+}
+
+// TestForeignStreamSamplesRefused: a recording of bed-7 that also carries
+// rows of bed-8 in its stream column: only bed-7's samples are analysed,
+// bed-8's are refused and counted.
+func TestForeignStreamSamplesRefused(t *testing.T) {
+	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 3})
+	if err != nil {
+		t.Fatal(err)
+	}
+	enc = enc.WithStream()
+	data := enc.Header()
+	const n = 300
+	for i := range n {
+		s := ingest.Sample{TimeS: float64(i) / 100, PressureCmH2O: 5}
+		data = enc.Append(data, "bed-7", s)
+		data = enc.Append(data, "bed-8", s)
+	}
+	path := t.TempDir() + "/mixed.txt"
+	if err := os.WriteFile(path, data, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	var analysed atomic.Int64
+	sink := newMemSink()
+	m := newMetrics()
+	s := newStream(streamSpec{
+		ID: "bed-7", Finite: true,
+		Open: func() (ingest.Source, streamPipeline, error) {
+			src, err := ingest.Open("file://"+path+"?pace=max", ingest.Options{Stream: "bed-7"})
+			return src, &sampleCounter{countingPipeline{stream: "bed-7"}, &analysed}, err
+		},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+	}, zerolog.Nop(), m, sink, sink)
+	runToEnd(t, s)
+	if got := analysed.Load(); got != n {
+		t.Errorf("analysed %d samples, want bed-7's %d only", got, n)
+	}
+	var pb dto.Metric
+	if err := m.foreignStream.WithLabelValues("bed-7").Write(&pb); err != nil {
+		t.Fatal(err)
+	}
+	if got := pb.GetCounter().GetValue(); got != n {
+		t.Errorf("refused %v samples of bed-8, want %d", got, n)
 	}
 }

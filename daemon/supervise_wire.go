@@ -46,11 +46,13 @@ func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery
 	if n := spool.Depth(); n > 0 {
 		log.Info().Int("events", n).Str("dir", spool.Dir()).Msg("alert spool holds events from an earlier run; sending them first")
 	}
-	pub, err := alerts.NewPublisher(b.Conn, spool, alerts.PublisherOptions{
+	var pub *alerts.Publisher
+	pub, err = alerts.NewPublisher(b.Conn, spool, alerts.PublisherOptions{
 		Streams:        sc,
 		RequestTimeout: cfg.NATS.PublishTimeout,
 		DrainTimeout:   cfg.ShutdownTimeout,
 		Log:            log,
+		OnForeign:      func(ev alerts.Event) { preempted(pub, ev, log) },
 	})
 	if err != nil {
 		spool.Close()
@@ -69,6 +71,11 @@ func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery
 
 // Publish hands an alert event to the durable publisher.
 func (d *delivery) Publish(ctx context.Context, ev alerts.Event) error { return d.pub.Publish(ctx, ev) }
+
+// Pressure is how full the alert spool is: 0 empty, 1 full.
+func (d *delivery) Pressure() float64 {
+	return float64(d.pub.Depth()) / float64(max(d.pub.SpoolMax(), 1))
+}
 
 // Breath hands a breath record to the bulletin.
 func (d *delivery) Breath(b *analyze.Breath) { d.bull.Breath(b) }
@@ -141,17 +148,25 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	if err != nil {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
 	}
+	finite := u.Scheme == "file" || u.Scheme == "stdin"
+	var cont *continuity
+	if !finite { // a recording is analysed from its start every time
+		cont = newContinuity(cfg.DataDir, sc.ID)
+	}
 	return streamSpec{
-		ID:       sc.ID,
-		Finite:   u.Scheme == "file" || u.Scheme == "stdin",
-		Overload: opts.Overload.For(u.Scheme),
+		ID:           sc.ID,
+		Continuity:   cont,
+		SourceStream: u.Stream,
+		Finite:       finite,
+		Overload:     opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
 			if err != nil {
 				return nil, nil, err
 			}
 			return src, pipeline.New(pipeline.Options{Stream: sc.ID, Analysis: cfg.Analysis,
-				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats}), nil
+				Detectors: cfg.Detectors, Alarms: cfg.Alarms, Stats: src.Stats,
+				KeepBreaths: pipeline.KeepBreaths(cfg.Detectors)}), nil
 		},
 		TickEvery: d.opts.TickEvery,
 		Health:    health,

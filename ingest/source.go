@@ -225,12 +225,10 @@ func (s *source) Run(ctx context.Context, sink Sink) error {
 	defer s.running.Store(false)
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	s.q = newQueue(s.opts.Buffer, s.opts.Overload, func(n int, start bool) {
+	var ep dropEpisode
+	s.q = newQueue(s.opts.Buffer, s.opts.Overload, func(n int, _ bool) {
 		s.c.dropped.Add(uint64(n))
-		if start {
-			s.log.Warn().Str("policy", s.opts.Overload.String()).
-				Msg("sink falls behind: dropping samples until the buffer drains")
-		}
+		ep.drop(n, time.Now(), s.log, s.opts.Overload.String())
 	})
 	readErr := make(chan error, 1)
 	go func() {
@@ -255,6 +253,9 @@ func (s *source) Run(ctx context.Context, sink Sink) error {
 		s.c.samples.Add(uint64(len(e.ev.Samples)))
 		sink(e.ev)
 		putBatch(e.buf)
+		if ep.open.Load() {
+			ep.check(time.Now(), s.log)
+		}
 	}
 	cancel()
 	return <-readErr

@@ -6,6 +6,7 @@ import (
 	"os"
 	"path/filepath"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/creack/pty"
@@ -27,7 +28,15 @@ type ptyOutput struct {
 	closed bool
 	header []byte
 	onPTY  func(string)
+	// dropped counts the bytes nobody read: the terminal's buffer was
+	// full, as a cable drops what the far end does not take.
+	dropped atomic.Uint64
+	// paced: drop what the reader does not take (a paced run); otherwise
+	// writes wait for the reader.
+	paced bool
 }
+
+func (o *ptyOutput) keepTime(paced bool) { o.paced = paced }
 
 // PTYPath returns the slave path of the current pseudo-terminal, or "" when
 // none is open. out must come from ParseOutput("pty", ...).
@@ -104,11 +113,28 @@ func (o *ptyOutput) Write(p []byte) error {
 	if m == nil || len(p) == 0 {
 		return nil // disconnected: the samples are lost
 	}
-	if _, err := m.Write(p); err != nil {
+	if !o.paced {
+		if _, err := m.Write(p); err != nil {
+			return fmt.Errorf("write pseudo-terminal: %w", err)
+		}
+		return nil
+	}
+	n, err := writeNonBlocking(m, p)
+	if n < len(p) {
+		// A cable does not wait for its reader: what the terminal's
+		// buffer cannot take now is lost, and the run keeps time.
+		if o.dropped.Add(uint64(len(p)-n)) == uint64(len(p)-n) {
+			o.status("nobody reads the pseudo-terminal: dropping what does not fit, as a cable would")
+		}
+	}
+	if err != nil {
 		return fmt.Errorf("write pseudo-terminal: %w", err)
 	}
 	return nil
 }
+
+// Dropped returns the bytes dropped because nobody read them.
+func (o *ptyOutput) Dropped() uint64 { return o.dropped.Load() }
 
 func (o *ptyOutput) Disconnect() error {
 	o.mu.Lock()
@@ -128,6 +154,9 @@ func (o *ptyOutput) Reconnect(_ context.Context) error { return o.open() }
 func (o *ptyOutput) Close() error {
 	o.mu.Lock()
 	o.closed = true
+	if n := o.dropped.Load(); n > 0 {
+		o.status(fmt.Sprintf("%d bytes nobody read were dropped", n))
+	}
 	m, s := o.master, o.slave
 	o.master, o.slave, o.path = nil, nil, ""
 	o.mu.Unlock()
@@ -151,6 +180,10 @@ func (o *ptyOutput) MaxWrite() int { return 0 }
 // samples with 100 ms on a busy two-core machine).
 const drainQuietTicks = 60
 
+// drainStalledTicks: a queue that has not moved for 1 s (5 ms ticks) has
+// no reader.
+const drainStalledTicks = 200
+
 // drain waits until the reader has taken everything written, or until ctx
 // ends, so that closing the master at the end of a run loses nothing. The
 // input queue must read empty several times in a row: bytes written to the
@@ -165,6 +198,7 @@ func (o *ptyOutput) drain(ctx context.Context) {
 	}
 	tick := time.NewTicker(5 * time.Millisecond)
 	defer tick.Stop()
+	prev, stalled := -1, 0
 	for empty := 0; empty < drainQuietTicks; {
 		n, err := inputQueued(s)
 		if err != nil {
@@ -175,6 +209,16 @@ func (o *ptyOutput) drain(ctx context.Context) {
 		} else {
 			empty = 0
 		}
+		// Nobody reads: the queue does not move. Waiting longer would
+		// only make the run late.
+		if n > 0 && n == prev {
+			if stalled++; stalled >= drainStalledTicks {
+				return
+			}
+		} else {
+			stalled = 0
+		}
+		prev = n
 		select {
 		case <-ctx.Done():
 			return

@@ -64,6 +64,11 @@ func Stream(ctx context.Context, sim *Sim, out Output, opts StreamOptions) (Stre
 	if err != nil {
 		return StreamStats{}, err
 	}
+	if c, ok := out.(interface{ keepTime(bool) }); ok {
+		// A paced run keeps time like a cable; "as fast as the output
+		// takes it" waits for the reader.
+		c.keepTime(opts.Speed > 0 && !math.IsInf(opts.Speed, 1))
+	}
 	defer w.close()
 	if err := w.open(); err != nil {
 		return w.st, err

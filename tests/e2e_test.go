@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"sync"
 	"testing"
@@ -184,6 +185,9 @@ streams:
 				waitFor(t, 10*time.Second, "the acknowledged event", func() bool {
 					return find(got.snapshot(), "air-trapping", alerts.Acknowledged) >= 0
 				})
+				// Nobody but the daemon may publish: a forged "cleared" of the
+				// real id never reaches JetStream (checkOnce below).
+				checkForgeryRefused(t, fmt.Sprintf("nats://127.0.0.1:%d", natsPort), "bed-1", id)
 			}
 			if err := <-simDone; err != nil {
 				t.Fatalf("simulator: %v", err)
@@ -299,33 +303,54 @@ func checkOnce(t *testing.T, stored, want []alerts.Event) {
 	}
 }
 
-// TestDemoRunsToItsSummary runs `trapline demo` (fast, plain output) as a
-// user would and reads its summary.
+// TestDemoRunsToItsSummary runs `trapline demo` on its default scenario
+// (bronchospasm: air trapping that settings changes then resolve; fast,
+// plain output) as a user would: it prints the live view's address and its
+// caution at the start and the end, an escalation reads as one alarm moving
+// up, its own lines fit 80 columns, and the summary counts alarms and ends
+// with none still open.
 func TestDemoRunsToItsSummary(t *testing.T) {
 	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
 	defer cancel()
-	code, out := runDaemon(ctx, "demo", "--speed", "120", "--plain")
+	code, out := runDaemon(ctx, "demo", "--speed", "200", "--plain")
 	if code != cli.ExitOK {
 		t.Fatalf("demo exit code %d:\n%s", code, out)
 	}
 	if n := strings.Count(out, cli.Caution); n != 2 {
 		t.Errorf("caution printed %d times, want at the start and at the end", n)
 	}
-	for _, want := range []string{
-		"demo: finished after",
-		"RAISED       air-trapping",
-		"CLEARED      air-trapping",
-	} {
+	if !regexp.MustCompile(`demo: live view in your browser at http://127\.0\.0\.1:\d+/live/`).MatchString(out) {
+		t.Errorf("no live view address in the output")
+	}
+	for _, want := range []string{"RAISED    air-trapping (low)", "ESCALATED air-trapping low → medium", "CLEARED   air-trapping"} {
 		if !strings.Contains(out, want) {
 			t.Errorf("demo output lacks %q", want)
 		}
 	}
-	i := strings.Index(out, "Alerts raised and cleared:")
+	for _, l := range strings.Split(out, "\n") {
+		if l != cli.Caution && !strings.HasPrefix(l, "{") && len([]rune(l)) > 80 {
+			t.Errorf("line wider than 80 columns: %q", l)
+		}
+	}
+	i := strings.LastIndex(out, "demo: finished after")
 	if i < 0 {
 		t.Fatalf("no summary:\n%s", out)
 	}
 	sum := out[i:]
-	if !strings.Contains(sum, "air-trapping") || strings.Contains(sum, "air-trapping             raised 0") {
-		t.Errorf("summary does not show air trapping raised:\n%s", sum)
+	// The total line, in the long or the short wording of tui.SummaryLines.
+	total := regexp.MustCompile(`(?m)^all +(\d+) alarms?: .*$`).FindStringSubmatch(sum)
+	if total == nil || !strings.Contains(sum, "air-trapping") {
+		t.Fatalf("no total line or no air-trapping alarm in the summary:\n%s", sum)
 	}
+	count := func(what string) string {
+		m := regexp.MustCompile(`(\d+) ` + what + `\b|` + what + ` (\d+)`).FindStringSubmatch(total[0])
+		if m == nil {
+			t.Fatalf("total line %q does not count %s", total[0], what)
+		}
+		return m[1] + m[2]
+	}
+	if count("open") != "0" || count("cleared") != total[1] || total[1] == "0" {
+		t.Errorf("summary total %q: want some alarms, all cleared, 0 open", total[0])
+	}
+	t.Logf("%s", sum)
 }

@@ -28,8 +28,6 @@ var sizeExceptions = map[string]bool{
 	"analyze/finish.go:finish":                         true,
 	"config/load.go:load":                              true,
 	"config/validate.go:validateNATS":                  true,
-	"daemon/bus/server.go:StartEmbedded":               true,
-	"daemon/cli/cmd_demo.go:runDemo":                   true,
 	"ingest/number.go:parseNumber":                     true,
 	"ingest/source.go":                                 true,
 	"simulator/params.go:validate":                     true,

@@ -118,7 +118,7 @@ func rank(p alerts.Priority) int {
 // whose state is not of the contract, is a Duplicate and changes nothing.
 func (b *Book) Apply(ev *alerts.Event) Change {
 	switch ev.State {
-	case alerts.Raised, alerts.Escalated, alerts.Acknowledged, alerts.Cleared:
+	case alerts.Raised, alerts.Escalated, alerts.Acknowledged, alerts.Cleared, alerts.Ended:
 	default:
 		return Change{Kind: Duplicate} // not a state of the contract: ignored
 	}
@@ -159,7 +159,7 @@ func (b *Book) Apply(ev *alerts.Event) Change {
 		ch.Kind = Acknowledged
 		a.Acked = true
 		a.Acks++
-	case alerts.Cleared:
+	case alerts.Cleared, alerts.Ended:
 		ch.Kind = Cleared
 		a.Open = false
 	}

@@ -60,6 +60,9 @@ type Options struct {
 	// Version is the program version stamped on every breath record and
 	// alert event; empty means config.ProgramVersion().
 	Version string
+	// KeepBreaths is how many recent breaths Checkpoint carries (see
+	// KeepBreaths); 0 keeps none.
+	KeepBreaths int
 }
 
 // Pipeline is the analysis of one stream. It owns the analyzer, the
@@ -99,6 +102,17 @@ type Pipeline struct {
 	breath analyze.Breath
 	one    [1]ingest.Sample
 	out    Output // gathers for Samples and Tick
+
+	// Continuity (resume.go): recent breaths and terminal ids for the
+	// checkpoint, the offset of breath numbers after a resume, and the
+	// sink of the current step with the alert function that notes ids.
+	keep     int
+	recent   []analyze.Breath
+	terminal []Terminal
+	seqBase  int
+	reserved int // first breath number not reserved by a checkpoint
+	sink     Sink
+	alertFn  func(*alerts.Event)
 }
 
 // New returns a live pipeline.
@@ -121,9 +135,17 @@ func New(o Options) *Pipeline {
 		stats:      o.Stats,
 		created:    now(),
 		lastBreath: -1,
+		keep:       o.KeepBreaths,
 	}
 	p.judge.SetProvenance(p.version, p.digest)
+	p.alertFn = p.alert
 	return p
+}
+
+// alert notes an event's id and passes it to the current step's sink.
+func (p *Pipeline) alert(e *alerts.Event) {
+	p.note(e)
+	p.sink.Alert(e)
 }
 
 // NewOffline returns a pipeline for a recording whose stream time 0 is wall
@@ -173,6 +195,7 @@ func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
 // Push is Samples with the output going to sink as it happens. It does not
 // allocate per sample.
 func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
+	p.sink = sink
 	wall := time.Time{}
 	if !p.offline() {
 		wall = p.now()
@@ -186,7 +209,7 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 			p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
 			wall = p.clock.Wall(s.TimeS)
 		}
-		p.judge.Samples(ss[i:i+1], s.TimeS, wall, sink.Alert)
+		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		b, ok := p.an.Push(s)
 		if !ok {
@@ -195,9 +218,11 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 		p.breath = b
 		p.breath.Stream = p.stream
 		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
-		p.lastBreath = b.Seq
+		p.breath.Seq += p.seqBase
+		p.lastBreath = p.breath.Seq
+		p.remember(&p.breath)
 		sink.Breath(&p.breath)
-		p.judge.Breath(&p.breath, wall, sink.Alert)
+		p.judge.Breath(&p.breath, wall, p.alertFn)
 	}
 }
 
@@ -234,7 +259,8 @@ func (p *Pipeline) TickTo(now time.Time, sink Sink) {
 		}, nowS)
 		p.last = st
 	}
-	p.judge.Tick(nowS, now, sink.Alert)
+	p.sink = sink
+	p.judge.Tick(nowS, now, p.alertFn)
 }
 
 // Finish makes the ticks due up to stream time tS, the end of a
@@ -250,8 +276,9 @@ func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
 	for i := range evs {
 		p.judge.Stamp(&evs[i])
+		p.note(&evs[i])
 	}
-	return Output{Alerts: evs}, err
+	return Output{Alerts: evs}, p.ackAnswer(id, err)
 }
 
 // Finding passes a finding about the program itself (not the signal),
@@ -262,7 +289,8 @@ func (p *Pipeline) Finding(f analyze.Finding, now time.Time) Output {
 		now = p.clock.Wall(p.lastS)
 	}
 	f.TimeS, f.BreathSeq = p.streamNow(now), -1
-	p.judge.Finding(f, now, p.out.Alert)
+	p.sink = &p.out
+	p.judge.Finding(f, now, p.alertFn)
 	return p.takeOut()
 }
 

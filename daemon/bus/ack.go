@@ -64,29 +64,70 @@ func (s *AckService) handle(m *nats.Msg) {
 		}
 		return
 	}
+	if len(m.Data) > alerts.MaxAckRequestBytes {
+		s.reply(m, tok, fmt.Errorf("%w: %d bytes (at most %d)", alerts.ErrBadAck, len(m.Data), alerts.MaxAckRequestBytes))
+		return
+	}
 	var req AckRequest
 	if err := json.Unmarshal(m.Data, &req); err != nil {
 		s.reply(m, tok, fmt.Errorf("bad ack request: %v (want {\"id\":\"...\",\"by\":\"...\"})", err))
 		return
 	}
-	if req.ID == "" {
-		s.reply(m, tok, errors.New("bad ack request: empty id"))
-		return
-	}
 	ctx, cancel := context.WithTimeout(context.Background(), ackTimeout)
 	defer cancel()
-	s.reply(m, tok, s.Ack(ctx, tok, req))
+	s.reply(m, tok, s.check(ctx, tok, req))
+}
+
+// check validates a decoded request for the stream with subject token tok
+// (here) and hands it to Ack.
+func (s *AckService) check(ctx context.Context, tok string, req AckRequest) error {
+	if req.ID == "" {
+		return errors.New("bad ack request: empty id")
+	}
+	// Size caps, id format, no control characters; the stream itself
+	// checks that the id is its own.
+	if err := alerts.CheckAck("", req.ID, req.By); err != nil {
+		return err
+	}
+	return s.Ack(ctx, tok, req)
+}
+
+// Request acknowledges on behalf of a caller in this process (the live
+// view's page) with the same checks, permissions and counting as a request
+// over NATS, and returns the answer the NATS requester would get as an
+// error.
+func (s *AckService) Request(ctx context.Context, stream string, req AckRequest) error {
+	tok := alerts.SubjectToken(stream)
+	var err error
+	if !s.Here(tok) {
+		err = fmt.Errorf("no stream %q here", stream)
+	} else {
+		ctx, cancel := context.WithTimeout(ctx, ackTimeout)
+		defer cancel()
+		err = s.check(ctx, tok, req)
+	}
+	s.count(tok, err)
+	return err
+}
+
+// count counts one answer by result ("ok", "error").
+func (s *AckService) count(tok string, err error) {
+	if s.Counted == nil {
+		return
+	}
+	result := "ok"
+	if err != nil {
+		result = "error"
+	}
+	s.Counted(tok, result)
 }
 
 func (s *AckService) reply(m *nats.Msg, tok string, err error) {
 	r := AckReply{OK: err == nil}
-	result := "ok"
 	if err != nil {
-		r.Error, result = err.Error(), "error"
+		r.Error = err.Error()
 	}
-	if s.Counted != nil {
-		s.Counted(tok, result)
-	}
+	s.count(tok, err)
 	if m.Reply == "" {
 		return
 	}

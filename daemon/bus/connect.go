@@ -73,16 +73,31 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		o.ReconnectWait = time.Second
 	}
 	log = log.With().Str("component", "nats").Logger()
+	auth := &authLog{}
 	opts := []nats.Option{
 		nats.Name(o.Name),
 		// nats.go gives up after 60 attempts by default: never give up.
 		nats.MaxReconnects(-1),
 		nats.RetryOnFailedConnect(true),
+		// nats.go closes the connection for good after the same
+		// authorization error twice: a server restarted with other
+		// credentials, or credentials fixed on the server later, must
+		// find trapline still trying.
+		nats.IgnoreAuthErrorAbort(),
 		nats.ReconnectWait(o.ReconnectWait),
+		nats.CustomReconnectDelay(reconnectDelay(o.ReconnectWait)),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
 			log.Warn().Err(err).Msg("NATS connection lost; reconnecting (alerts are spooled meanwhile)")
 		}),
+		nats.ReconnectErrHandler(func(_ *nats.Conn, err error) {
+			if IsAuthError(err) {
+				auth.log(log, err)
+				return
+			}
+			log.Debug().Err(err).Msg("NATS reconnect attempt failed")
+		}),
 		nats.ReconnectHandler(func(nc *nats.Conn) {
+			auth.reset(log)
 			log.Info().Str("url", nc.ConnectedUrlRedacted()).Msg("NATS connection restored")
 		}),
 		nats.ConnectHandler(func(nc *nats.Conn) {
@@ -90,6 +105,10 @@ func Connect(o ClientOptions, log zerolog.Logger) (*nats.Conn, error) {
 		}),
 		nats.ClosedHandler(func(*nats.Conn) { log.Debug().Msg("NATS connection closed") }),
 		nats.ErrorHandler(func(_ *nats.Conn, sub *nats.Subscription, err error) {
+			if IsAuthError(err) {
+				auth.log(log, err)
+				return
+			}
 			ev := log.Warn().Err(err)
 			if sub != nil {
 				ev = ev.Str("subject", sub.Subject)

@@ -93,11 +93,19 @@ func Open(cfg *config.Config, log zerolog.Logger) (*Bus, error) {
 		return b, nil
 	}
 	tls := TLS{CAFile: n.TLS.CAFile, CertFile: n.TLS.CertFile, KeyFile: n.TLS.KeyFile}
-	srv, err := StartEmbedded(EmbeddedOptions{
+	eo := EmbeddedOptions{
 		Host: n.Embedded.Host, Port: n.Embedded.Port, StoreDir: cfg.NATSStoreDir(),
 		MaxStoreBytes: int64(n.Embedded.MaxStore), MaxMemoryBytes: int64(n.Embedded.MaxMemory),
-		User: n.User, Password: n.Password, Token: n.Token, TLS: tls,
-	}, log)
+		User: n.User, Password: n.Password, Token: n.Token, TLS: tls, Prefix: n.SubjectPrefix,
+	}
+	if n.User == "" && n.Token == "" {
+		id, err := LoadOrCreateIdentity(cfg.DataDir)
+		if err != nil {
+			return nil, err
+		}
+		eo.Identity = &id
+	}
+	srv, err := StartEmbedded(eo, log)
 	if err != nil {
 		if errors.Is(err, syscall.EADDRINUSE) {
 			return nil, fmt.Errorf("embedded NATS: %w: another process (perhaps another trapline or a nats-server) holds the port; "+

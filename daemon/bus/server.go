@@ -41,6 +41,13 @@ type EmbeddedOptions struct {
 	// TLS is the server's certificate; with a CAFile, clients must present
 	// certificates signed by it.
 	TLS TLS
+	// Identity, when set and neither User nor Token is, turns
+	// authorization on: only this login may publish records, and every
+	// client without credentials is the observer (ObserverPermissions).
+	Identity *Identity
+	// Prefix is the subject prefix the observer's permissions are written
+	// for (alerts.DefaultPrefix when empty).
+	Prefix string
 }
 
 // Embedded is a running embedded nats-server.
@@ -108,21 +115,9 @@ func (o EmbeddedOptions) check() error {
 // StartEmbedded starts the embedded server and returns once it accepts
 // connections with JetStream up.
 func StartEmbedded(opts EmbeddedOptions, log zerolog.Logger) (*Embedded, error) {
-	if opts.Host == "" {
-		opts.Host = "127.0.0.1"
-	}
+	opts = opts.withDefaults()
 	if err := opts.check(); err != nil {
 		return nil, err
-	}
-	if opts.Name == "" {
-		h, _ := os.Hostname()
-		opts.Name = "trapline-" + strings.ReplaceAll(h, ".", "-")
-	}
-	if opts.MaxStoreBytes <= 0 {
-		opts.MaxStoreBytes = defaultNATSMaxStore
-	}
-	if opts.MaxMemoryBytes <= 0 {
-		opts.MaxMemoryBytes = defaultNATSMaxMemory
 	}
 	if err := os.MkdirAll(opts.StoreDir, 0o750); err != nil {
 		return nil, fmt.Errorf("embedded nats store %s: %w", opts.StoreDir, err)
@@ -138,61 +133,9 @@ func StartEmbedded(opts EmbeddedOptions, log zerolog.Logger) (*Embedded, error) 
 		}
 	}()
 	log = log.With().Str("component", "nats-server").Logger()
-
-	so := &server.Options{
-		ServerName:         opts.Name,
-		Host:               opts.Host,
-		Port:               opts.Port,
-		JetStream:          true,
-		StoreDir:           opts.StoreDir,
-		JetStreamMaxStore:  opts.MaxStoreBytes,
-		JetStreamMaxMemory: opts.MaxMemoryBytes,
-		// One node: a stored alert must survive a power cut, so every
-		// write is synced (the breaths stream opts out per stream).
-		SyncAlways: true,
-		NoSigs:     true,
-		Username:   opts.User,
-		Password:   opts.Password,
-		// The auth token field.
-		Authorization: opts.Token,
-	}
-	switch opts.Port {
-	case 0:
-		so.Port = server.RANDOM_PORT
-	case -1:
-		so.DontListen = true
-		so.Port = server.RANDOM_PORT
-	default:
-		// nats-server reports a busy port through its logger's Fatalf,
-		// as text; a probe gives the caller a real error to show.
-		if err := probeListen(opts.Host, opts.Port); err != nil {
-			return nil, err
-		}
-	}
-	if opts.TLS.CertFile != "" {
-		tc, err := server.GenTLSConfig(&server.TLSConfigOpts{
-			CertFile: opts.TLS.CertFile, KeyFile: opts.TLS.KeyFile, CaFile: opts.TLS.CAFile,
-			Verify: opts.TLS.CAFile != "", Timeout: 2,
-		})
-		if err != nil {
-			return nil, fmt.Errorf("embedded nats tls: %w", err)
-		}
-		tc.MinVersion = tls.VersionTLS12
-		so.TLSConfig, so.TLSVerify, so.TLSTimeout = tc, opts.TLS.CAFile != "", 2
-	}
-
-	if so.Password != "" {
-		// Give the server a bcrypt hash (nats-server recognises the $2a$
-		// prefix) so that it does not warn about a plaintext password.
-		// The hash lives only in this process's memory, next to the
-		// plaintext the daemon's own client needs, so the lowest cost
-		// loses nothing and keeps every client's login fast (each one
-		// pays a bcrypt comparison).
-		h, err := bcrypt.GenerateFromPassword([]byte(so.Password), bcrypt.MinCost)
-		if err != nil {
-			return nil, fmt.Errorf("embedded nats password: %w", err)
-		}
-		so.Password = string(h)
+	so, err := opts.serverOptions()
+	if err != nil {
+		return nil, err
 	}
 	srv, err := server.NewServer(so)
 	if err != nil {
@@ -210,7 +153,7 @@ func StartEmbedded(opts EmbeddedOptions, log zerolog.Logger) (*Embedded, error) 
 		e.Shutdown(5 * time.Second)
 		return nil, fmt.Errorf("embedded nats: jetstream did not start (store %s)%s", opts.StoreDir, sl.fatalSuffix())
 	}
-	ev := log.Info().Str("store", opts.StoreDir)
+	ev := log.Info().Str("store", opts.StoreDir).Bool("authorization", so.NoAuthUser != "" || opts.User != "" || opts.Token != "")
 	if opts.Port == -1 {
 		ev = ev.Str("listen", "in-process only")
 	} else {
@@ -219,6 +162,99 @@ func StartEmbedded(opts EmbeddedOptions, log zerolog.Logger) (*Embedded, error) 
 	ev.Msg("embedded NATS server ready")
 	started = true
 	return e, nil
+}
+
+// withDefaults fills the listen host, the server name and the JetStream
+// limits.
+func (o EmbeddedOptions) withDefaults() EmbeddedOptions {
+	if o.Host == "" {
+		o.Host = "127.0.0.1"
+	}
+	if o.Name == "" {
+		h, _ := os.Hostname()
+		o.Name = "trapline-" + strings.ReplaceAll(h, ".", "-")
+	}
+	if o.MaxStoreBytes <= 0 {
+		o.MaxStoreBytes = defaultNATSMaxStore
+	}
+	if o.MaxMemoryBytes <= 0 {
+		o.MaxMemoryBytes = defaultNATSMaxMemory
+	}
+	return o
+}
+
+// serverOptions maps the options onto nats-server's: listener, JetStream,
+// TLS and authorization.
+func (o EmbeddedOptions) serverOptions() (*server.Options, error) {
+	so := &server.Options{
+		ServerName:         o.Name,
+		Host:               o.Host,
+		Port:               o.Port,
+		JetStream:          true,
+		StoreDir:           o.StoreDir,
+		JetStreamMaxStore:  o.MaxStoreBytes,
+		JetStreamMaxMemory: o.MaxMemoryBytes,
+		// One node: a stored alert must survive a power cut, so every
+		// write is synced (the breaths stream opts out per stream).
+		SyncAlways: true,
+		NoSigs:     true,
+		Username:   o.User,
+		// The auth token field.
+		Authorization: o.Token,
+	}
+	switch o.Port {
+	case 0:
+		so.Port = server.RANDOM_PORT
+	case -1:
+		so.DontListen = true
+		so.Port = server.RANDOM_PORT
+	default:
+		// nats-server reports a busy port through its logger's Fatalf,
+		// as text; a probe gives the caller a real error to show.
+		if err := probeListen(o.Host, o.Port); err != nil {
+			return nil, err
+		}
+	}
+	if err := o.serverTLS(so); err != nil {
+		return nil, err
+	}
+	if o.Password != "" {
+		// Give the server a bcrypt hash (nats-server recognises the $2a$
+		// prefix) so that it does not warn about a plaintext password.
+		// The hash lives only in this process's memory, next to the
+		// plaintext the daemon's own client needs, so the lowest cost
+		// loses nothing and keeps every client's login fast (each one
+		// pays a bcrypt comparison).
+		h, err := bcrypt.GenerateFromPassword([]byte(o.Password), bcrypt.MinCost)
+		if err != nil {
+			return nil, fmt.Errorf("embedded nats password: %w", err)
+		}
+		so.Password = string(h)
+	}
+	if o.Identity != nil && o.User == "" && o.Token == "" {
+		if err := authorize(so, *o.Identity, o.Prefix); err != nil {
+			return nil, err
+		}
+	}
+	return so, nil
+}
+
+// serverTLS sets the server's certificate and, with a CA file, demands
+// client certificates.
+func (o EmbeddedOptions) serverTLS(so *server.Options) error {
+	if o.TLS.CertFile == "" {
+		return nil
+	}
+	tc, err := server.GenTLSConfig(&server.TLSConfigOpts{
+		CertFile: o.TLS.CertFile, KeyFile: o.TLS.KeyFile, CaFile: o.TLS.CAFile,
+		Verify: o.TLS.CAFile != "", Timeout: 2,
+	})
+	if err != nil {
+		return fmt.Errorf("embedded nats tls: %w", err)
+	}
+	tc.MinVersion = tls.VersionTLS12
+	so.TLSConfig, so.TLSVerify, so.TLSTimeout = tc, o.TLS.CAFile != "", 2
+	return nil
 }
 
 // probeListen fails with "nats listen HOST:PORT: address already in use"
@@ -274,6 +310,9 @@ func (e *Embedded) ClientOptions(name string) ClientOptions {
 		URL: e.URL(), Name: name,
 		User: e.opts.User, Password: e.opts.Password, Token: e.opts.Token,
 		TLS: TLS{CAFile: e.opts.TLS.CAFile},
+	}
+	if id := e.opts.Identity; id != nil && c.User == "" && c.Token == "" {
+		c.User, c.Password = id.User, id.Password
 	}
 	if e.opts.TLS.CAFile != "" {
 		c.TLS.CertFile, c.TLS.KeyFile = e.opts.TLS.CertFile, e.opts.TLS.KeyFile

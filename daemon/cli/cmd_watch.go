@@ -33,6 +33,11 @@ type watchOptions struct {
 	RedrawEvery time.Duration
 	// Footer, when set, closes the terminal view (the demo's caution).
 	Footer string
+	// Loc is the time zone of the wall times shown; nil means local time.
+	Loc *time.Location
+	// Width is the width of plain output (0: 80 columns); a terminal's
+	// own width is used on a terminal.
+	Width int
 }
 
 func (a *app) watchCommand() *cobra.Command {
@@ -44,12 +49,17 @@ func (a *app) watchCommand() *cobra.Command {
 		Use:   "watch",
 		Short: "Show live breaths and alerts from NATS (a terminal view, or NDJSON with --json)",
 		Long: "watch subscribes to the breath, status and alert subjects of a running trapline and shows\n" +
-			"one line per stream with its latest breath figures and active alerts, and a log of alert\n" +
-			"events. On start it replays the alerts of the last --since from JetStream.\n" +
+			"one line per stream with its latest breath figures (in columns with units, fitted to the\n" +
+			"terminal: EEF and Te/τ always, more on wider terminals) and open alarms, and a log of alert\n" +
+			"events in which an escalation reads as one alarm moving up. On start it replays the alerts\n" +
+			"of the last --since from JetStream.\n" +
 			"With --json it prints the breath records and alert events as NDJSON, for scripts (--status\n" +
 			"adds the status heartbeats).\n\n" + Caution,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
+			if opts.Width != 0 && (opts.Width < 40 || opts.Width > 1000) {
+				return usageErrorf("--width %d: want 40 to 1000 columns", opts.Width)
+			}
 			if opts.Since < 0 {
 				return usageErrorf("--since %v: must not be negative", opts.Since)
 			}
@@ -91,6 +101,7 @@ func (a *app) watchCommand() *cobra.Command {
 	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
 	f.BoolVar(&opts.JSON, "json", false, "print breath records and alert events as NDJSON instead of the view")
 	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
+	f.IntVar(&opts.Width, "width", 0, "width of plain output in columns (default 80; a terminal's own width is used on a terminal)")
 	f.BoolVar(&opts.Status, "status", false, "with --json, also print the status heartbeats")
 	f.StringSliceVar(&opts.Streams, "stream", nil, "show only these streams (repeat or comma-separate)")
 	return cmd

@@ -100,6 +100,7 @@ func (a *app) rootCommand() *cobra.Command {
 	root.AddCommand(
 		a.analyzeCommand(),
 		a.predictCommand(),
+		a.plotCommand(),
 		a.runCommand(),
 		a.watchCommand(),
 		a.demoCommand(),

@@ -5,9 +5,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
-	"math"
 	"os"
-	"sort"
 	"strings"
 	"sync"
 	"time"
@@ -19,36 +17,28 @@ import (
 	"golang.org/x/term"
 
 	"trapline/alerts"
+	"trapline/alerts/alarmbook"
 	"trapline/analyze"
 	"trapline/daemon/bus"
+	"trapline/daemon/tui"
 )
 
 // logFunc starts a log event; zerolog's Logger.Warn has this shape.
 type logFunc = func() *zerolog.Event
 
-// watchView is the state behind the live view: the latest breath and the
-// active alarms of every stream, and the log of alert events. It is safe
-// for concurrent use by the NATS callbacks and the render loop.
+// watchView is the state behind the live view: a tui.Board with the
+// latest breath and the alarms of every stream and the last alert events.
+// It is safe for concurrent use by the NATS callbacks and the render loop.
 type watchView struct {
 	opts     watchOptions
 	out      io.Writer
 	terminal bool
 	width    func() int
 
-	mu      sync.Mutex
-	streams map[string]*streamView
-	log     []string
-	seen    map[string]bool // alert DedupIDs, so a replayed event is shown once
-	tally   map[string]map[alerts.State]int
-	dirty   bool
-	err     error
-}
-
-type streamView struct {
-	breath    analyze.Breath
-	hasBreath bool
-	status    *bus.StreamStatus
-	active    map[string]alerts.Event
+	mu    sync.Mutex
+	board *tui.Board
+	dirty bool
+	err   error
 }
 
 // maxLogLines is how many alert events the terminal view keeps on screen.
@@ -61,21 +51,19 @@ func newWatchView(out io.Writer, opts watchOptions) *watchView {
 	if opts.RedrawEvery <= 0 {
 		opts.RedrawEvery = 250 * time.Millisecond
 	}
-	v := &watchView{
-		opts:    opts,
-		out:     out,
-		streams: map[string]*streamView{},
-		seen:    map[string]bool{},
-		tally:   map[string]map[alerts.State]int{},
-		width:   func() int { return 120 },
+	v := &watchView{opts: opts, out: out, board: tui.NewBoard(maxLogLines)}
+	plainWidth := opts.Width
+	if plainWidth <= 0 {
+		plainWidth = tui.DefaultWidth
 	}
+	v.width = func() int { return plainWidth }
 	if f, ok := out.(*os.File); ok && !opts.JSON && !opts.Plain && isatty.IsTerminal(f.Fd()) {
 		v.terminal = true
 		v.width = func() int {
 			if w, _, err := term.GetSize(int(f.Fd())); err == nil && w > 20 {
 				return w
 			}
-			return 80
+			return tui.DefaultWidth
 		}
 	}
 	return v
@@ -155,15 +143,6 @@ func (v *watchView) wanted(stream string) bool {
 	return false
 }
 
-func (v *watchView) stream(id string) *streamView {
-	s := v.streams[id]
-	if s == nil {
-		s = &streamView{active: map[string]alerts.Event{}}
-		v.streams[id] = s
-	}
-	return s
-}
-
 // handle takes one message of the given kind (breath, status, alert).
 func (v *watchView) handle(kind string, data []byte) {
 	v.mu.Lock()
@@ -174,43 +153,27 @@ func (v *watchView) handle(kind string, data []byte) {
 		if err := json.Unmarshal(data, &b); err != nil || !v.wanted(b.Stream) {
 			return
 		}
-		s := v.stream(b.Stream)
-		s.breath, s.hasBreath = b, true
+		v.board.Breath(&b)
 	case "status":
 		var st bus.StreamStatus
 		if err := json.Unmarshal(data, &st); err != nil || !v.wanted(st.Stream) {
 			return
 		}
-		v.stream(st.Stream).status = &st
+		v.board.Signal(st.Stream, st.Connected)
 	case "alert":
 		var ev alerts.Event
 		if err := json.Unmarshal(data, &ev); err != nil || !v.wanted(ev.Stream) {
 			return
 		}
-		if v.seen[ev.DedupID()] {
+		// A replayed event (same id and state) is a Duplicate: shown once.
+		ch := v.board.Alert(&ev)
+		if ch.Kind == alarmbook.Duplicate {
 			return
 		}
-		v.seen[ev.DedupID()] = true
-		s := v.stream(ev.Stream)
-		if ev.Supersedes != "" {
-			delete(s.active, ev.Supersedes)
-		}
-		if ev.State == alerts.Cleared {
-			delete(s.active, ev.ID)
-		} else {
-			s.active[ev.ID] = ev
-		}
-		if v.tally[ev.Condition] == nil {
-			v.tally[ev.Condition] = map[alerts.State]int{}
-		}
-		v.tally[ev.Condition][ev.State]++
-		line := alertLine(&ev)
-		v.log = append(v.log, line)
-		if len(v.log) > maxLogLines {
-			v.log = v.log[len(v.log)-maxLogLines:]
-		}
 		if !v.opts.JSON && !v.terminal {
-			v.write(line + "\n")
+			for _, l := range v.alertFormat(v.width()).Lines(&ev, ch) {
+				v.write(l + "\n")
+			}
 		}
 	}
 	if v.opts.JSON && (kind != "status" || v.opts.Status) {
@@ -257,7 +220,7 @@ func (v *watchView) loop(ctx context.Context) {
 				v.redraw()
 			}
 		default:
-			for _, l := range v.streamLines() {
+			for _, l := range v.plainLines() {
 				v.write(l + "\n")
 			}
 		}
@@ -270,135 +233,43 @@ func (v *watchView) loop(ctx context.Context) {
 	}
 }
 
-// redraw paints the whole terminal view: a title, one line per stream, the
-// alert log. Caller holds v.mu.
+// redraw paints the whole terminal view at the terminal's width now: a
+// title, the streams with their open alarms, the alert log. Caller holds
+// v.mu.
 func (v *watchView) redraw() {
 	w := v.width()
 	var b strings.Builder
 	b.WriteString("\x1b[H\x1b[2J")
-	b.WriteString(clip(fmt.Sprintf("trapline watch  %s  (research use only; not a medical device)", time.Now().Format(time.TimeOnly)), w) + "\n\n")
-	ids := v.streamIDs()
-	if len(ids) == 0 {
-		b.WriteString("waiting for breaths...\n")
-	}
-	for _, id := range ids {
-		s := v.streams[id]
-		b.WriteString(clip(streamFigures(id, s), w) + "\n")
-		b.WriteString(clip("           "+streamAlarms(s), w) + "\n")
-	}
-	b.WriteString("\nalert events:\n")
-	for _, l := range v.log {
-		b.WriteString(clip(l, w) + "\n")
+	b.WriteString(tui.Fit(fmt.Sprintf("trapline watch  %s  (research use only; not a medical device)", time.Now().Format(time.TimeOnly)), w) + "\n\n")
+	for _, l := range v.board.Render(w, v.alertFormat(w)) {
+		b.WriteString(l + "\n")
 	}
 	if v.opts.Footer != "" {
-		b.WriteString("\n" + v.opts.Footer + "\n")
+		for _, l := range tui.Wrap(v.opts.Footer, w, 0, 0) {
+			b.WriteString("\n" + l)
+		}
+		b.WriteString("\n")
 	}
 	v.write(b.String())
 }
 
-// streamIDs returns the ids of the streams seen, sorted. Caller holds v.mu.
-func (v *watchView) streamIDs() []string {
-	ids := make([]string, 0, len(v.streams))
-	for id := range v.streams {
-		ids = append(ids, id)
-	}
-	sort.Strings(ids)
-	return ids
+// alertFormat is the format of alert lines at width w, with wall times in
+// the view's time zone.
+func (v *watchView) alertFormat(w int) tui.AlertFormat {
+	f := tui.NewAlertFormat(w)
+	f.Loc = v.opts.Loc
+	return f
 }
 
-// streamLines renders one line per stream, sorted by id. Caller holds v.mu.
-func (v *watchView) streamLines() []string {
-	ids := v.streamIDs()
-	out := make([]string, 0, len(ids))
-	for _, id := range ids {
-		out = append(out, streamLine(id, v.streams[id]))
-	}
-	return out
-}
+// plainLines is the periodic block of plain output: the streams with their
+// open alarms. Caller holds v.mu.
+func (v *watchView) plainLines() []string { return v.board.StreamLines(v.width()) }
 
-// streamLine is one stream's figures and active alarms on one line.
-func streamLine(id string, s *streamView) string {
-	return streamFigures(id, s) + "  | " + streamAlarms(s)
-}
-
-// streamFigures is the stream's latest breath, with "-" for a value the
-// analysis could not give.
-func streamFigures(id string, s *streamView) string {
-	var b strings.Builder
-	fmt.Fprintf(&b, "%-10s", id)
-	if s.status != nil && !s.status.Connected {
-		b.WriteString(" [no signal]")
-	}
-	if !s.hasBreath {
-		b.WriteString(" no breath yet")
-		return b.String()
-	}
-	br := &s.breath
-	fmt.Fprintf(&b, " #%-5d RR %s  VTe %s mL  PIP %s  PEEP %s  PEEPi %s  trapped %s mL  EEF %s L/min  Te/tau %s",
-		br.Seq, num(br.RateBPM, 0), num(br.VteML, 0), num(br.PeakCmH2O, 1), num(br.PEEPCmH2O, 1),
-		num(br.PEEPiCmH2O, 1), num(br.TrappedML, 0), num(br.EndExpFlowLPM, 1), num(br.TeOverTau, 2))
-	return b.String()
-}
-
-// streamAlarms lists the stream's active alarms with their priority.
-func streamAlarms(s *streamView) string {
-	if len(s.active) == 0 {
-		return "no alerts"
-	}
-	act := make([]string, 0, len(s.active))
-	for _, ev := range s.active {
-		tag := ev.Condition + "(" + string(ev.Priority)
-		if ev.State == alerts.Acknowledged {
-			tag += ",ack"
-		}
-		act = append(act, tag+")")
-	}
-	sort.Strings(act)
-	return "ALERTS: " + strings.Join(act, " ")
-}
-
-// alertLine is one entry of the alert log.
-func alertLine(ev *alerts.Event) string {
-	ts := ev.Time.Local().Format(time.TimeOnly)
-	if ev.Time.IsZero() {
-		ts = "--:--:--"
-	}
-	return fmt.Sprintf("%s %-10s %-12s %-22s %-6s %s [%s]", ts, ev.Stream, strings.ToUpper(string(ev.State)),
-		ev.Condition, ev.Priority, ev.Message, ev.ID)
-}
-
-// summary returns, per condition, how many alarms were raised and cleared
-// (and escalated or acknowledged), sorted by condition.
-func (v *watchView) summary() []string {
+// summary counts the alarms seen (not the events): per condition and in
+// all, raised, escalated, acknowledged, cleared and still open; the lines
+// fit the width less indent.
+func (v *watchView) summary(indent int) []string {
 	v.mu.Lock()
 	defer v.mu.Unlock()
-	conds := make([]string, 0, len(v.tally))
-	for c := range v.tally {
-		conds = append(conds, c)
-	}
-	sort.Strings(conds)
-	var out []string
-	for _, c := range conds {
-		t := v.tally[c]
-		out = append(out, fmt.Sprintf("%-24s raised %d, escalated %d, acknowledged %d, cleared %d",
-			c, t[alerts.Raised], t[alerts.Escalated], t[alerts.Acknowledged], t[alerts.Cleared]))
-	}
-	return out
-}
-
-// num formats v with the given decimals, or "-" when unknown.
-func num(v float64, prec int) string {
-	if math.IsNaN(v) || math.IsInf(v, 0) {
-		return "-"
-	}
-	return fmt.Sprintf("%.*f", prec, v)
-}
-
-// clip cuts s to w runes so that a redraw never wraps.
-func clip(s string, w int) string {
-	r := []rune(s)
-	if len(r) <= w {
-		return s
-	}
-	return string(r[:w])
+	return tui.SummaryLines(v.board.Book, v.width()-indent)
 }

@@ -73,10 +73,27 @@ func (b *Board) Alert(ev *alerts.Event) alarmbook.Change {
 }
 
 // Render lays the board out at width columns (DefaultWidth when ≤ 0): the
-// breath table with one line per stream (sorted by id) followed by the
-// stream's open alarms, then the latest alert events in format f (its Width
-// is set to width). No line is wider than width.
+// stream lines (StreamLines), then the latest alert events in format f (its
+// Width is set to width). No line is wider than width.
 func (b *Board) Render(width int, f AlertFormat) []string {
+	if width <= 0 {
+		width = DefaultWidth
+	}
+	out := append(b.StreamLines(width), "", "alert events:")
+	if len(b.log) == 0 {
+		out = append(out, "  none yet")
+	}
+	f.Width = width
+	for i := range b.log {
+		out = append(out, f.Lines(&b.log[i].ev, b.log[i].ch)...)
+	}
+	return out
+}
+
+// StreamLines lays out the streams at width columns (DefaultWidth when
+// ≤ 0): the breath table's header, then per stream (sorted by id) its
+// latest breath and a line with its open alarms.
+func (b *Board) StreamLines(width int) []string {
 	if width <= 0 {
 		width = DefaultWidth
 	}
@@ -103,14 +120,6 @@ func (b *Board) Render(width int, f AlertFormat) []string {
 			out = append(out, Fit(table.Line(&s.breath), width))
 		}
 		out = append(out, "  "+ActiveLine(b.Book.Open(id), width-2))
-	}
-	out = append(out, "", "alert events:")
-	if len(b.log) == 0 {
-		out = append(out, "  none yet")
-	}
-	f.Width = width
-	for i := range b.log {
-		out = append(out, f.Lines(&b.log[i].ev, b.log[i].ch)...)
 	}
 	return out
 }

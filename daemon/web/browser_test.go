@@ -1,16 +1,12 @@
 package web
 
 import (
-	"bytes"
 	"context"
 	"errors"
 	"fmt"
-	"image/png"
 	"math"
 	"net/http"
 	"net/http/httptest"
-	"os"
-	"os/exec"
 	"strings"
 	"sync"
 	"testing"
@@ -19,87 +15,17 @@ import (
 	"github.com/chromedp/chromedp"
 
 	"trapline/alerts"
+	"trapline/daemon/internal/browsertest"
 )
 
-// The browser tests drive headless Chromium (the Debian package chromium)
-// through the DevTools protocol against a real HTTP server on 127.0.0.1.
-// They are skipped, saying so, only when no Chromium binary is found.
+// The browser tests drive headless Chromium through daemon/internal/browsertest
+// against a real HTTP server on 127.0.0.1; they skip, saying so, only when
+// no Chromium binary is found.
 
-// chromium returns the browser binary: $TRAPLINE_CHROMIUM, or the first of
-// the usual names on PATH.
-func chromium(t *testing.T) string {
-	t.Helper()
-	if p := os.Getenv("TRAPLINE_CHROMIUM"); p != "" {
-		return p
-	}
-	for _, name := range []string{"chromium", "chromium-browser", "google-chrome", "/usr/bin/chromium"} {
-		if p, err := exec.LookPath(name); err == nil {
-			return p
-		}
-	}
-	t.Skip("no Chromium binary found (install the Debian package: apt-get install -y chromium, or set TRAPLINE_CHROMIUM); the browser test did not run")
-	return ""
-}
-
-// browser starts a headless Chromium with a fresh profile; the returned
-// context ends it. At the end of the test it fails the test for every
-// error the page wrote to the console (an exception, a refused resource, a
-// violation of the content security policy).
-func browser(t *testing.T, timeout time.Duration) context.Context {
-	t.Helper()
-	opts := []chromedp.ExecAllocatorOption{
-		chromedp.ExecPath(chromium(t)),
-		chromedp.Flag("headless", true),
-		chromedp.NoSandbox,
-		chromedp.DisableGPU,
-		chromedp.Flag("disable-quic", true),
-		chromedp.NoFirstRun,
-		chromedp.Flag("disable-background-networking", true),
-		chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true),
-		chromedp.Flag("hide-scrollbars", true),
-		chromedp.UserDataDir(t.TempDir()),
-		chromedp.WindowSize(1200, 1600),
-	}
-	ctx, cancel := context.WithTimeout(context.Background(), timeout)
-	actx, acancel := chromedp.NewExecAllocator(ctx, opts...)
-	bctx, bcancel := chromedp.NewContext(actx)
-	if err := chromedp.Do(bctx); err != nil {
-		bcancel()
-		acancel()
-		cancel()
-		t.Fatalf("start chromium: %v", err)
-	}
-	var mu sync.Mutex
-	var problems []string
-	done := make(chan struct{})
-	messages := chromedp.Console(bctx)
-	go func() {
-		defer close(done)
-		for m, err := range messages {
-			if err != nil {
-				return
-			}
-			if m.Type == chromedp.ConsoleError || m.IsException() {
-				mu.Lock()
-				problems = append(problems, m.String())
-				mu.Unlock()
-			}
-		}
-	}()
-	t.Cleanup(func() {
-		bcancel()
-		acancel()
-		cancel()
-		<-done
-		mu.Lock()
-		defer mu.Unlock()
-		for _, p := range problems {
-			t.Errorf("page console: %s", p)
-		}
-	})
-	return bctx
-}
+var (
+	browser = browsertest.Browser
+	waitJS  = browsertest.WaitJS
+)
 
 // liveServer serves the live view of hub on 127.0.0.1 and runs the hub.
 func liveServer(t *testing.T, hub *Hub, acker Acker) string {
@@ -116,25 +42,6 @@ func liveServer(t *testing.T, hub *Hub, acker Acker) string {
 		srv.Close()
 	})
 	return srv.URL + Path
-}
-
-// waitJS evaluates expr every 50 ms until it is true, for at most d.
-func waitJS(t *testing.T, ctx context.Context, what, expr string, d time.Duration) time.Time {
-	t.Helper()
-	end := time.Now().Add(d)
-	for {
-		ok, err := chromedp.Run(ctx, chromedp.Evaluate[bool](expr))
-		if err != nil {
-			t.Fatalf("%s: %v", what, err)
-		}
-		if ok {
-			return time.Now()
-		}
-		if time.Now().After(end) {
-			t.Fatalf("%s: not seen within %v", what, d)
-		}
-		time.Sleep(50 * time.Millisecond)
-	}
 }
 
 // xssStream is a stream id that would run script if it were ever put into
@@ -216,7 +123,7 @@ func TestBrowserLiveView(t *testing.T) {
 	waitJS(t, bctx, "acknowledgement in the timeline",
 		`Array.from(document.querySelectorAll('#timeline td')).some(td => td.textContent.includes("acknowledged by <b>tester</b>"))`, 5*time.Second)
 	time.Sleep(1500 * time.Millisecond) // a few more breaths on the trends for the picture
-	screenshot(t, bctx, "live-view.png")
+	browsertest.Screenshot(t, bctx, "live-view.png")
 }
 
 // acknowledgeOnPage shows icu-04, acknowledges its air-trapping alarm with
@@ -262,32 +169,6 @@ func checkEscaped(t *testing.T, bctx context.Context) {
 	if xss || markup || !strings.Contains(row, xssStream) {
 		t.Errorf("data rendered as markup: script ran %v, element from data %v, ids %q", xss, markup, row)
 	}
-}
-
-// screenshot saves the whole page: in the test's temporary directory, or
-// where $TRAPLINE_SHOT_DIR says (docs/img to refresh the documentation).
-func screenshot(t *testing.T, ctx context.Context, name string) {
-	t.Helper()
-	buf, err := chromedp.Run(ctx, chromedp.FullScreenshot(100))
-	if err != nil {
-		t.Fatalf("screenshot: %v", err)
-	}
-	img, err := png.Decode(bytes.NewReader(buf))
-	if err != nil {
-		t.Fatalf("screenshot is not a PNG: %v", err)
-	}
-	if b := img.Bounds(); b.Dx() < 1000 || b.Dy() < 1000 {
-		t.Errorf("screenshot %v, want at least 1000×1000", b)
-	}
-	dir := os.Getenv("TRAPLINE_SHOT_DIR")
-	if dir == "" {
-		dir = t.TempDir()
-	}
-	p := dir + "/" + name
-	if err := os.WriteFile(p, buf, 0o644); err != nil {
-		t.Fatalf("write %s: %v", p, err)
-	}
-	t.Logf("screenshot %s", p)
 }
 
 // TestBrowser200Streams: with 200 streams breathing, the page's update
@@ -337,7 +218,7 @@ func TestBrowser200Streams(t *testing.T) {
 	if best >= 16 {
 		t.Errorf("update work reached 16 ms or more per frame in every window (best max %.1f ms)", best)
 	}
-	screenshot(t, bctx, "live-view-200.png")
+	browsertest.Screenshot(t, bctx, "live-view-200.png")
 }
 
 // frameStats is what the page reports of its own update work.

@@ -141,7 +141,7 @@ func (s *stream) addAlert(ev *alerts.Event) {
 	s.version++
 	i := slices.IndexFunc(s.active, func(a alerts.Event) bool { return a.Condition == ev.Condition })
 	switch {
-	case ev.State == alerts.Cleared:
+	case ev.State.Terminal():
 		if i >= 0 && s.active[i].ID == ev.ID {
 			s.active = slices.Delete(s.active, i, i+1)
 		}

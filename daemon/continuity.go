@@ -1,0 +1,149 @@
+package daemon
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io/fs"
+	"net/url"
+	"os"
+	"path/filepath"
+	"time"
+
+	"trapline/alerts"
+	"trapline/alerts/pipeline"
+)
+
+// checkpointEvery is how often a running stream writes its checkpoint: it
+// bounds what a kill -9 loses to about two seconds of alarm state.
+const checkpointEvery = 2 * time.Second
+
+// resumable is a pipeline that can be checkpointed and resumed; the live
+// pipeline is.
+type resumable interface {
+	Checkpoint(now time.Time, clean bool) pipeline.Checkpoint
+	SeqReservationDue() bool
+	Resume(cp pipeline.Checkpoint, now time.Time, maxGap time.Duration) (pipeline.Output, error)
+	Active() []alerts.Event
+}
+
+// continuity keeps one stream's checkpoint file in the data directory
+// (<data_dir>/state/<stream>.json). A nil *continuity does nothing.
+type continuity struct {
+	path   string
+	maxGap time.Duration
+	last   time.Time // last write; touched by the analysis goroutine only
+}
+
+// newContinuity returns the checkpoint keeper of stream under dataDir.
+func newContinuity(dataDir, stream string) *continuity {
+	return &continuity{
+		path:   filepath.Join(dataDir, "state", url.PathEscape(stream)+".json"),
+		maxGap: pipeline.DefaultMaxGap,
+	}
+}
+
+// resume puts the stream's last checkpoint, if any, into pl and returns
+// the events that makes (see pipeline.Resume) and the alarms left open.
+func (c *continuity) resume(pl streamPipeline, now time.Time) (stageOutput, []alerts.Event, error) {
+	r, ok := pl.(resumable)
+	if c == nil || !ok {
+		return stageOutput{}, nil, nil
+	}
+	data, err := os.ReadFile(c.path)
+	if errors.Is(err, fs.ErrNotExist) {
+		return stageOutput{}, nil, nil
+	}
+	if err != nil {
+		return stageOutput{}, nil, fmt.Errorf("read checkpoint: %w", err)
+	}
+	var cp pipeline.Checkpoint
+	if err := json.Unmarshal(data, &cp); err != nil {
+		return stageOutput{}, nil, fmt.Errorf("checkpoint %s: %w", c.path, err)
+	}
+	out, err := r.Resume(cp, now, c.maxGap)
+	if err != nil {
+		return stageOutput{}, nil, fmt.Errorf("checkpoint %s: %w", c.path, err)
+	}
+	c.last = now
+	return out, r.Active(), nil
+}
+
+// due reports whether a checkpoint is due at now.
+func (c *continuity) due(pl streamPipeline, now time.Time) bool {
+	if c == nil {
+		return false
+	}
+	r, ok := pl.(resumable)
+	return ok && (now.Sub(c.last) >= checkpointEvery || r.SeqReservationDue())
+}
+
+// save writes pl's checkpoint atomically: a temporary file, synced, then
+// renamed over the old one, so that a kill at any moment leaves either the
+// old checkpoint or the new one.
+func (c *continuity) save(pl streamPipeline, now time.Time, clean bool) error {
+	r, ok := pl.(resumable)
+	if c == nil || !ok {
+		return nil
+	}
+	c.last = now
+	data, err := json.Marshal(r.Checkpoint(now, clean))
+	if err != nil {
+		return fmt.Errorf("encode checkpoint: %w", err)
+	}
+	if err := os.MkdirAll(filepath.Dir(c.path), 0o750); err != nil {
+		return fmt.Errorf("checkpoint dir: %w", err)
+	}
+	tmp := c.path + ".tmp"
+	f, err := os.OpenFile(tmp, os.O_CREATE|os.O_WRONLY|os.O_TRUNC, 0o600)
+	if err != nil {
+		return fmt.Errorf("write checkpoint: %w", err)
+	}
+	_, werr := f.Write(data)
+	serr := f.Sync()
+	cerr := f.Close()
+	if err := errors.Join(werr, serr, cerr); err != nil {
+		return fmt.Errorf("write checkpoint %s: %w", tmp, err)
+	}
+	if err := os.Rename(tmp, c.path); err != nil {
+		return fmt.Errorf("checkpoint: %w", err)
+	}
+	return nil
+}
+
+// resume restores the stream's checkpoint into a fresh pipeline and
+// delivers what that makes; the restored open alarms count as active. A
+// checkpoint that cannot be read is logged and set aside: the stream then
+// starts afresh rather than not at all.
+func (s *stream) resume(ctx context.Context, pl streamPipeline) error {
+	c := s.spec.Continuity
+	out, open, err := c.resume(pl, time.Now())
+	if err != nil {
+		s.log.Error().Err(err).Msg("checkpoint not usable; the stream starts without its earlier alarm state")
+		if rerr := os.Rename(c.path, c.path+".bad"); rerr != nil {
+			s.log.Warn().Err(rerr).Msg("could not set the bad checkpoint aside")
+		}
+		return nil
+	}
+	for _, e := range open {
+		s.activeIDs[e.ID] = struct{}{}
+	}
+	if len(open) > 0 || len(out.Alerts) > 0 {
+		s.log.Info().Int("open_alarms", len(open)).Int("events", len(out.Alerts)).Msg("resumed from checkpoint")
+	}
+	return s.emit(ctx, out, time.Time{})
+}
+
+// checkpoint writes the stream's checkpoint when one is due, or always at
+// a clean stop; a failure is logged and counted, never fatal.
+func (s *stream) checkpoint(pl streamPipeline, now time.Time, stop bool) {
+	c := s.spec.Continuity
+	if c == nil || (!stop && !c.due(pl, now)) {
+		return
+	}
+	if err := c.save(pl, now, stop); err != nil {
+		s.m.checkpointErrors.WithLabelValues(s.spec.ID).Inc()
+		s.log.Warn().Err(err).Msg("checkpoint not written")
+	}
+}
