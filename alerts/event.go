@@ -6,8 +6,9 @@ import (
 	"time"
 )
 
-// EventSchema is the version of the alert event contract.
-const EventSchema = 1
+// EventSchema is the version of the alert event contract. Version 2 added
+// the provenance fields trapline_version and config_digest.
+const EventSchema = 2
 
 // State is where an alarm condition is in its lifecycle.
 type State string
@@ -70,6 +71,11 @@ type Event struct {
 	// announced again under a new id (a second escalation, or after an
 	// acknowledgement); the old id gets no further events.
 	Supersedes string `json:"supersedes,omitempty"`
+	// TraplineVersion and ConfigDigest say which program and which
+	// analysis, detector and alarm settings produced the event; the
+	// pipeline fills them in.
+	TraplineVersion string `json:"trapline_version"`
+	ConfigDigest    string `json:"config_digest"`
 	// AckedBy and AckedAt, on an acknowledged event: who acknowledged (as
 	// the request named it, cleaned of control characters) and when.
 	AckedBy string     `json:"acked_by,omitempty"`

@@ -15,7 +15,16 @@ type Judge struct {
 	det     *analyze.Detectors
 	life    *Lifecycle
 	scratch []analyze.Finding
+	// version and digest are stamped on every event (SetProvenance).
+	version, digest string
 }
+
+// SetProvenance sets the program version and configuration digest that
+// every event of the judge carries from now on.
+func (j *Judge) SetProvenance(version, digest string) { j.version, j.digest = version, digest }
+
+// Stamp writes the judge's provenance into e.
+func (j *Judge) Stamp(e *Event) { e.TraplineVersion, e.ConfigDigest = j.version, j.digest }
 
 // NewJudge returns the judge of stream; the configurations must be valid.
 func NewJudge(stream string, dcfg analyze.DetectorConfig, lcfg LifecycleConfig) *Judge {
@@ -39,6 +48,7 @@ func (j *Judge) update(wall time.Time, emit func(*Event)) {
 	for _, f := range j.scratch {
 		evs := j.life.Update(f, wall)
 		for i := range evs {
+			j.Stamp(&evs[i])
 			emit(&evs[i])
 		}
 	}
@@ -61,6 +71,13 @@ func (j *Judge) Breath(b *analyze.Breath, wall time.Time, emit func(*Event)) {
 // at stream time nowS.
 func (j *Judge) Tick(nowS float64, wall time.Time, emit func(*Event)) {
 	j.scratch = j.det.Tick(nowS, j.scratch[:0])
+	j.update(wall, emit)
+}
+
+// Finding passes a finding made outside the detectors (a condition of the
+// program itself, such as an impaired recording) to the lifecycle.
+func (j *Judge) Finding(f analyze.Finding, wall time.Time, emit func(*Event)) {
+	j.scratch = append(j.scratch[:0], f)
 	j.update(wall, emit)
 }
 

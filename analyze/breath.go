@@ -7,7 +7,9 @@ import (
 	"strconv"
 )
 
-// BreathSchema is the version of the breath record contract.
+// BreathSchema is the version of the breath record contract. Version 2
+// added the air-trapping fields below and the provenance fields
+// trapline_version and config_digest.
 const BreathSchema = 2
 
 // Breath is the per-breath record (the breath record contract). A value that
@@ -73,6 +75,13 @@ type Breath struct {
 	SettingsChanged []string
 
 	Flags []string
+
+	// Provenance: the program version and the digest of the analysis,
+	// detector and alarm configuration that produced the record. The
+	// pipeline fills them in; they are empty in records made by the
+	// analyzer alone.
+	TraplineVersion string
+	ConfigDigest    string
 }
 
 // NewBreath returns a breath record with every measured value unknown (NaN).
@@ -184,7 +193,11 @@ func (b *Breath) AppendJSON(dst []byte) []byte {
 		}
 		dst = strconv.AppendQuote(dst, f)
 	}
-	return append(dst, ']', '}')
+	dst = append(dst, `],"trapline_version":`...)
+	dst = strconv.AppendQuote(dst, b.TraplineVersion)
+	dst = append(dst, `,"config_digest":`...)
+	dst = strconv.AppendQuote(dst, b.ConfigDigest)
+	return append(dst, '}')
 }
 
 // appendNumber writes v rounded to prec decimals, or null when v is not finite.
@@ -267,6 +280,13 @@ func (b *Breath) UnmarshalJSON(data []byte) error {
 	if v, ok := raw["flags"]; ok {
 		if err := json.Unmarshal(v, &b.Flags); err != nil {
 			return fmt.Errorf("decode breath: flags: %w", err)
+		}
+	}
+	for key, dst := range map[string]*string{"trapline_version": &b.TraplineVersion, "config_digest": &b.ConfigDigest} {
+		if v, ok := raw[key]; ok {
+			if err := json.Unmarshal(v, dst); err != nil {
+				return fmt.Errorf("decode breath: %s: %w", key, err)
+			}
 		}
 	}
 	return nil

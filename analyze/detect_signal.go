@@ -257,7 +257,11 @@ func (s *Signal) Tick(nowS float64, dst []Finding) []Finding {
 	gaps.Present = len(s.gaps) >= c.GapsPerMin || longest >= c.GapS
 	if gaps.Present {
 		gaps.Severity = SeverityLow
-		gaps.Message = fmt.Sprintf("%d sample gaps in the last minute, the longest %.2f s", len(s.gaps), longest)
+		noun := "sample gaps"
+		if len(s.gaps) == 1 {
+			noun = "sample gap"
+		}
+		gaps.Message = fmt.Sprintf("%d %s in the last minute, the longest %.2f s", len(s.gaps), noun, longest)
 	} else {
 		gaps.Message = "no significant sample gaps"
 	}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"sync/atomic"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -14,6 +15,7 @@ import (
 	"trapline/config"
 	"trapline/daemon/bus"
 	"trapline/daemon/web"
+	"trapline/ingest/record"
 )
 
 // Options are hooks for callers that run the daemon in-process (the
@@ -24,6 +26,9 @@ type Options struct {
 	Ready func(Info)
 	// TickEvery overrides the period of the streams' time-based checks.
 	TickEvery time.Duration
+	// RecordFile, when set, creates the recording's segment files instead
+	// of the file system (tests play a full disk with it).
+	RecordFile func(path string) (record.File, error)
 }
 
 // Info tells an in-process caller where the daemon can be reached.
@@ -48,6 +53,8 @@ type Daemon struct {
 	nc      *nats.Conn
 	serving bool // the HTTP server runs (and closes its listener itself)
 	del     *delivery
+	rec     *recorder // nil when recording is off
+	recPtr  atomic.Pointer[recorder]
 	streams []*stream
 	byToken map[string]*stream // ack subject token → stream
 	hub     *web.Hub           // the live view; nil without HTTP
@@ -111,7 +118,8 @@ func (d *Daemon) Run(ctx context.Context) error {
 	// Close after Run has returned releases the spool; what is left in it
 	// is sent at the next start.
 	defer del.pub.Close()
-	if err := d.addStreams(del); err != nil {
+	defer d.closeRecorder()
+	if err := d.startStreams(ctx, del); err != nil {
 		return err
 	}
 	if err := d.addSources(); err != nil {
@@ -141,6 +149,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 		sg.Go(func() error { return d.mux.run(gctx) })
 		err := sg.Wait()
 		_ = ackSub.Unsubscribe()
+		d.closeRecorder()
 		return err
 	})
 	if httpSrv != nil {
@@ -176,7 +185,7 @@ func (d *Daemon) ackService() *bus.AckService {
 				id, err = d.mux.ack(ctx, tok, req.ID, req.By)
 			}
 			if err == nil {
-				d.log.Info().Str("stream", id).Str("id", req.ID).Str("by", req.By).Msg("alert acknowledged")
+				d.log.Info().Str("stream", id).Str("id", req.ID).Str("by", req.By).Str("why", req.Why).Msg("alert acknowledged")
 			}
 			return err
 		},

@@ -36,6 +36,9 @@ type streamPipeline interface {
 	Ack(id, by string, now time.Time) (stageOutput, error)
 	// Flush finishes what is pending at shutdown.
 	Flush() stageOutput
+	// Finding passes a finding about the program itself (an impaired
+	// recording) through the alarm lifecycle at wall time now.
+	Finding(f analyze.Finding, now time.Time) stageOutput
 }
 
 // alertSink makes alert events durable and delivers them; Publish returns
@@ -73,6 +76,9 @@ type streamSpec struct {
 	// Overload is the source's resolved overload policy: OverloadBlock
 	// makes the stream's queue wait for the analysis too.
 	Overload ingest.OverloadPolicy
+	// Health, when set, is asked on every tick for a finding about the
+	// program itself (recording-impaired), judged like any other.
+	Health func() analyze.Finding
 	// Continuity, when set, resumes the pipeline from its checkpoint at
 	// start and writes the checkpoint while running and at stop.
 	Continuity *continuity
@@ -383,6 +389,11 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 		case now := <-tick.C:
 			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
 				return err
+			}
+			if s.spec.Health != nil {
+				if err := s.emit(pubCtx, pl.Finding(s.spec.Health(), now), time.Time{}); err != nil {
+					return err
+				}
 			}
 			s.checkpoint(pl, now, false)
 			s.checkDelivery(pubCtx, now)

@@ -86,6 +86,8 @@ func (p *countingPipeline) Ack(id, by string, _ time.Time) (stageOutput, error) 
 	}
 	return stageOutput{Alerts: []alerts.Event{p.event(alerts.Acknowledged)}}, nil
 }
+func (p *countingPipeline) Finding(analyze.Finding, time.Time) stageOutput { return stageOutput{} }
+
 func (p *countingPipeline) Flush() stageOutput {
 	if p.flushed != nil {
 		p.flushed.Store(true)
@@ -245,6 +247,7 @@ func (panicPipeline) Status(ingest.Event, time.Time) stageOutput         { retur
 func (panicPipeline) Tick(time.Time) stageOutput                         { return stageOutput{} }
 func (panicPipeline) Ack(string, string, time.Time) (stageOutput, error) { return stageOutput{}, nil }
 func (panicPipeline) Flush() stageOutput                                 { return stageOutput{} }
+func (panicPipeline) Finding(analyze.Finding, time.Time) stageOutput     { return stageOutput{} }
 
 func TestHTTPHealthReadyMetrics(t *testing.T) {
 	m := newMetrics()

@@ -136,6 +136,10 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 	opts := ingest.Options{
 		Stream: sc.ID, Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &log, NATS: d.nc,
 	}
+	var health func() analyze.Finding
+	if d.rec != nil {
+		opts.Tap, health = d.rec.w.Tap, d.rec.finding
+	}
 	// Check the URL now, so that a bad source fails the start.
 	if _, err := ingest.Open(sc.Source, opts); err != nil {
 		return streamSpec{}, &UsageError{Err: fmt.Errorf("stream %s: source %s: %w", sc.ID, sc.Source, err)}
@@ -165,5 +169,6 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 				KeepBreaths: pipeline.KeepBreaths(cfg.Detectors)}), nil
 		},
 		TickEvery: d.opts.TickEvery,
+		Health:    health,
 	}, nil
 }

@@ -116,3 +116,43 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 	}
 	return out, keep, 0, false
 }
+
+// Timelines applies to offline input (a file or a recording read by
+// `trapline analyze`) the same timing checks that a live source makes, one
+// timeline per stream, so that re-analysis sees the samples the live
+// analysis saw: duplicates and out-of-order samples dropped, the time kept
+// monotonic across clock resets, and a StatusGap before the first sample
+// after a gap.
+type Timelines struct {
+	rateHz float64
+	tls    map[string]*timeline
+}
+
+// NewTimelines returns the timelines of input with the declared sample
+// rate rateHz (0 = none), as ingest.Options.RateHz.
+func NewTimelines(rateHz float64) *Timelines {
+	return &Timelines{rateHz: rateHz, tls: map[string]*timeline{}}
+}
+
+// Admit checks one sample of stream. It returns the sample with its
+// delivered time, a StatusGap event to hand on before it (nil when there
+// was no gap), and false when the sample is dropped.
+func (t *Timelines) Admit(stream string, smp Sample) (Sample, *Event, bool) {
+	tl := t.tls[stream]
+	if tl == nil {
+		tl = newTimeline(t.rateHz)
+		t.tls[stream] = tl
+	}
+	out, v, gapS, _ := tl.admit(smp.TimeS)
+	var ev *Event
+	switch v {
+	case duplicate, outOfOrder:
+		return smp, nil, false
+	case keepAfterGap:
+		ev = &Event{Stream: stream, Status: StatusGap, GapS: gapS}
+	case keepAfterReset:
+		ev = &Event{Stream: stream, Status: StatusGap, Err: ErrClockReset}
+	}
+	smp.TimeS = out
+	return smp, ev, true
+}

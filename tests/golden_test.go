@@ -5,6 +5,7 @@ import (
 	"context"
 	"os"
 	"path/filepath"
+	"regexp"
 	"testing"
 	"time"
 
@@ -48,6 +49,11 @@ func TestAnalyzeGolden(t *testing.T) {
 				bytes.NewReader(rec.Bytes()), &out, &stderr); code != cli.ExitOK {
 				t.Fatalf("analyze exit %d: %s", code, stderr.String())
 			}
+			// The program version depends on the build; the golden files
+			// hold "dev" in its place.
+			got := versionField.ReplaceAll(out.Bytes(), []byte(`"trapline_version":"dev"`))
+			out.Reset()
+			out.Write(got)
 			path := filepath.Join("testdata", "golden", tc.scenario+".ndjson")
 			if update {
 				if err := os.WriteFile(path, out.Bytes(), 0o644); err != nil {
@@ -66,6 +72,9 @@ func TestAnalyzeGolden(t *testing.T) {
 		})
 	}
 }
+
+// versionField matches the trapline_version field of a record.
+var versionField = regexp.MustCompile(`"trapline_version":"[^"]*"`)
 
 // firstDiffLine returns the 1-based line number where a and b first differ.
 func firstDiffLine(a, b []byte) int {

@@ -10,6 +10,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/config"
 	"trapline/ingest"
 )
 
@@ -56,6 +57,9 @@ type Options struct {
 	// Stats, when set, reads the source's counters for the decoder error
 	// rate; they are sampled on every tick.
 	Stats func() ingest.Stats
+	// Version is the program version stamped on every breath record and
+	// alert event; empty means config.ProgramVersion().
+	Version string
 	// KeepBreaths is how many recent breaths Checkpoint carries (see
 	// KeepBreaths); 0 keeps none.
 	KeepBreaths int
@@ -78,6 +82,9 @@ type Pipeline struct {
 	an     *analyze.Analyzer
 	judge  *alerts.Judge
 	alarms alerts.LifecycleConfig
+
+	// version and digest are the provenance of every record.
+	version, digest string
 
 	now   func() time.Time
 	clock *alerts.OfflineClock // set offline
@@ -114,17 +121,23 @@ func New(o Options) *Pipeline {
 	if now == nil {
 		now = time.Now
 	}
+	if o.Version == "" {
+		o.Version = config.ProgramVersion()
+	}
 	p := &Pipeline{
 		stream:     o.Stream,
 		an:         analyze.NewAnalyzer(o.Stream, o.Analysis),
 		judge:      alerts.NewJudge(o.Stream, o.Detectors, o.Alarms),
 		alarms:     o.Alarms,
+		version:    o.Version,
+		digest:     config.AnalysisDigest(o.Analysis, o.Detectors, o.Alarms),
 		now:        now,
 		stats:      o.Stats,
 		created:    now(),
 		lastBreath: -1,
 		keep:       o.KeepBreaths,
 	}
+	p.judge.SetProvenance(p.version, p.digest)
 	p.alertFn = p.alert
 	return p
 }
@@ -204,6 +217,7 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 		}
 		p.breath = b
 		p.breath.Stream = p.stream
+		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
 		p.breath.Seq += p.seqBase
 		p.lastBreath = p.breath.Seq
 		p.remember(&p.breath)
@@ -261,9 +275,23 @@ func (p *Pipeline) Finish(tS float64, sink Sink) {
 func (p *Pipeline) Ack(id, by string, now time.Time) (Output, error) {
 	evs, err := p.judge.Lifecycle().AckBy(id, by, now)
 	for i := range evs {
+		p.judge.Stamp(&evs[i])
 		p.note(&evs[i])
 	}
 	return Output{Alerts: evs}, p.ackAnswer(id, err)
+}
+
+// Finding passes a finding about the program itself (not the signal),
+// such as an impaired recording, through the stream's alarm lifecycle at
+// wall time now.
+func (p *Pipeline) Finding(f analyze.Finding, now time.Time) Output {
+	if p.offline() {
+		now = p.clock.Wall(p.lastS)
+	}
+	f.TimeS, f.BreathSeq = p.streamNow(now), -1
+	p.sink = &p.out
+	p.judge.Finding(f, now, p.alertFn)
+	return p.takeOut()
 }
 
 // Flush ends the stream: an open breath is incomplete and is not reported,

@@ -19,6 +19,9 @@ import (
 type AckRequest struct {
 	ID string `json:"id"`
 	By string `json:"by"`
+	// Why is the reason given with the acknowledgement (optional); the
+	// daemon logs it.
+	Why string `json:"why,omitempty"`
 }
 
 // AckReply is the answer to an acknowledgement request.

@@ -244,7 +244,7 @@ func TestAlertSubscriptionLikeCLI(t *testing.T) {
 		}
 		// The fields of the alert event contract (docs/schema/alert.schema.json).
 		for k, want := range map[string]any{
-			"type": "alert", "schema": 1.0, "id": "bench-a/air-trapping/3", "stream": "bench-a",
+			"type": "alert", "schema": 2.0, "id": "bench-a/air-trapping/3", "stream": "bench-a",
 			"condition": "air-trapping", "class": "physiological", "priority": "medium",
 			"state": "raised", "time": "2026-12-01T10:00:03.2Z", "t_s": 54.2, "breath_seq": 43.0,
 		} {

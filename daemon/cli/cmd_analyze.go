@@ -7,7 +7,6 @@ import (
 	"fmt"
 	"io"
 	"math"
-	"os"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -21,14 +20,13 @@ import (
 	"trapline/config"
 	"trapline/daemon"
 	"trapline/ingest"
+	"trapline/ingest/input"
 )
 
 // analyzeFlags are the options of `trapline analyze`.
 type analyzeFlags struct {
-	columns    string
-	sampleRate float64
-	stream     string
-	summary    bool
+	in      inputFlags
+	summary bool
 	// Alert options: the configuration file whose analysis, detectors and
 	// alarms sections apply, the wall time of stream time 0, and whether
 	// alert events are printed at all.
@@ -45,9 +43,12 @@ var offlineEpoch = time.Unix(0, 0).UTC()
 func (a *app) analyzeCommand() *cobra.Command {
 	var f analyzeFlags
 	cmd := &cobra.Command{
-		Use:   "analyze FILE|-",
+		Use:   "analyze FILE|DIR|-",
 		Short: "Split a recording into breaths and print NDJSON breath records and alert events",
-		Long: "analyze reads samples in the sample line format v1 from FILE (or stdin for -), splits\n" +
+		Long: "analyze reads samples from FILE (or stdin for -) in the sample line format v1 or the\n" +
+			"binary framing (found by itself, or --format), or a recording directory written by run\n" +
+			"(--stream, --from and --to choose what is read). It shows a progress bar on a terminal.\n" +
+			"It splits\n" +
 			"them into breaths and prints one breath record per line as NDJSON: timing, volumes,\n" +
 			"pressures, flows, the least-squares mechanics (R, C, total PEEP), the expiratory time\n" +
 			"constant, trapped volume and intrinsic PEEP, with flags where a value is unreliable.\n" +
@@ -58,17 +59,17 @@ func (a *app) analyzeCommand() *cobra.Command {
 			"stream time (default 1970-01-01T00:00:00Z, so it reads as the stream time); --config\n" +
 			"applies the analysis, detectors and alarms sections of a configuration file.\n\n" +
 			"  trapline analyze bench-a.csv | jq .trapped_ml\n" +
+			"  trapline analyze --config other.yaml --stream bed-1 /var/lib/trapline/recording\n" +
 			"  trapline sim --speed max --duration 60s | trapline analyze --summary -\n\n" +
 			Caution,
-		Args: cobra.ExactArgs(1),
+		Args: inputArg,
 		RunE: func(cmd *cobra.Command, args []string) error {
+			f.in.streamSet = cmd.Flags().Changed("stream")
 			return a.runAnalyze(cmd.Context(), args[0], f, cmd.OutOrStdout())
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.columns, "columns", ingest.DefaultColumns, "column layout of input without a header line")
-	fl.Float64Var(&f.sampleRate, "sample-rate", 0, "sample rate in Hz, for input without a time column")
-	fl.StringVar(&f.stream, "stream", ingest.DefaultStream, "stream id of samples that name none")
+	f.in.register(fl, true)
 	fl.BoolVar(&f.summary, "summary", false, "print a table of breaths and their medians instead of NDJSON")
 	fl.StringVar(&f.config, "config", "", "configuration file whose analysis, detectors and alarms sections apply")
 	fl.StringVar(&f.start, "start", "", "wall time of stream time 0 for alert events (RFC 3339; default the Unix epoch)")
@@ -86,15 +87,19 @@ type offline struct {
 	start     time.Time
 	alerts    bool
 	pipelines map[string]*pipeline.Pipeline
-	nAlerts   int
-	keptAlert []alerts.Event // for --summary
-	out       *bufio.Writer
-	summary   bool
-	kept      []analyze.Breath // for --summary
-	line      []byte
-	writeErr  error
-	samples   uint64
-	breaths   int
+	// timing applies the live sources' timing checks (ingest.Timelines),
+	// so that re-analysis sees the samples the daemon saw.
+	timing     *ingest.Timelines
+	outOfOrder uint64 // samples the timing checks dropped
+	nAlerts    int
+	keptAlert  []alerts.Event // for --summary
+	out        *bufio.Writer
+	summary    bool
+	kept       []analyze.Breath // for --summary
+	line       []byte
+	writeErr   error
+	samples    uint64
+	breaths    int
 }
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
@@ -111,6 +116,17 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 	if pl == nil {
 		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
 		o.pipelines[stream] = pl
+	}
+	if o.timing != nil {
+		var gap *ingest.Event
+		var ok bool
+		if s, gap, ok = o.timing.Admit(stream, s); !ok {
+			o.outOfOrder++
+			return
+		}
+		if gap != nil {
+			pl.Status(*gap, time.Time{})
+		}
 	}
 	pl.PushOne(s, o)
 }
@@ -149,52 +165,25 @@ func (o *offline) Breath(b *analyze.Breath) {
 	_, o.writeErr = o.out.Write(o.line)
 }
 
-// ctxReader stops a read loop when its context is cancelled.
-type ctxReader struct {
-	ctx context.Context
-	r   io.Reader
-}
-
-// Read returns the context's error once it is cancelled, else reads.
-func (c ctxReader) Read(p []byte) (int, error) {
-	if err := c.ctx.Err(); err != nil {
-		return 0, err
-	}
-	return c.r.Read(p)
-}
-
-// readAll decodes the recording at path ("-" for stdin) into o.
-func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offline) (ingest.DecoderStats, error) {
-	dec, err := ingest.NewTextDecoder(ingest.DecoderOptions{Columns: f.columns, RateHz: f.sampleRate, Stream: f.stream}, o.sample)
+// readAll reads the input at path ("-" for stdin: text, binary framing or
+// a recording directory, see ingest/input) into o.
+func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offline) (input.Stats, error) {
+	in, err := openInput(path, f.in, a.stdin, a.stderr, "analyze")
 	if err != nil {
-		return ingest.DecoderStats{}, &daemon.UsageError{Err: err}
+		return input.Stats{}, err
 	}
-	var r io.Reader = a.stdin
-	name := "stdin"
-	if path != "-" {
-		file, err := os.Open(path)
-		if err != nil {
-			return ingest.DecoderStats{}, fmt.Errorf("open recording: %w", err)
-		}
-		defer file.Close()
-		r, name = file, path
-	}
-	if err := ingest.Decode(ctxReader{ctx, r}, dec); err != nil {
-		return dec.Stats(), fmt.Errorf("read %s: %w", name, err)
-	}
-	st := dec.Stats()
-	if err := dec.Err(); err != nil {
-		return st, fmt.Errorf("read %s: %w", name, err)
-	}
-	if st.Samples == 0 {
-		return st, fmt.Errorf("read %s: no samples (%d bad lines): want the sample line format v1, e.g. %q", name, st.BadLines, ingest.DefaultColumns)
+	o.timing = ingest.NewTimelines(f.in.sampleRate)
+	defer in.Close()
+	st, err := in.Run(ctx, o.sample)
+	if err != nil {
+		return st, noSamplesHint(err, st, in.Size(), f.in)
 	}
 	return st, nil
 }
 
 func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdout io.Writer) error {
-	if f.sampleRate < 0 || math.IsNaN(f.sampleRate) || math.IsInf(f.sampleRate, 0) {
-		return usageErrorf("--sample-rate %v: want a positive number of Hz", f.sampleRate)
+	if err := f.in.check(); err != nil {
+		return err
 	}
 	o := newOffline(analyze.DefaultConfig(), stdout, f.summary)
 	if f.config != "" {
@@ -219,9 +208,18 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 		}
 		return err
 	}
+	if n := st.Decode.Samples; st.Kind == input.KindText && n > 0 && o.outOfOrder*2 > n {
+		return fmt.Errorf("%d of %d samples are not in time order: the time column is probably another one%s",
+			o.outOfOrder, n, columnsHint(st, f.in))
+	}
 	log := a.log.With().Str("component", "analyze").Logger()
-	if st.BadLines > 0 {
-		log.Warn().Uint64("bad_lines", st.BadLines).Uint64("samples", st.Samples).Msg("skipped lines that did not parse")
+	if d := st.Decode; d.BadLines > 0 || d.BadFrames > 0 {
+		log.Warn().Uint64("bad_lines", d.BadLines).Uint64("bad_frames", d.BadFrames).Uint64("samples", d.Samples).
+			Msg("skipped input that did not parse")
+	}
+	if sc := st.Scan; sc.BadSegments+sc.Truncated+sc.Corrupt > 0 {
+		log.Warn().Int("bad_segments", sc.BadSegments).Int("truncated", sc.Truncated).Int("corrupt", sc.Corrupt).
+			Uint64("skipped_bytes", sc.SkippedBytes).Msg("recording has damaged segments; read what was intact")
 	}
 	if f.summary {
 		if err := writeSummary(o.out, o.kept); err != nil {
@@ -238,7 +236,8 @@ func (a *app) runAnalyze(ctx context.Context, path string, f analyzeFlags, stdou
 		return fmt.Errorf("write breaths: %w", o.writeErr)
 	}
 	if o.breaths == 0 {
-		log.Warn().Uint64("samples", st.Samples).Msg("no complete breath in the input (a breath completes when the next one starts)")
+		log.Warn().Uint64("samples", st.Decode.Samples).Msg("no complete breath in the input (a breath completes when the next one starts)" +
+			columnsHint(st, f.in))
 	}
 	return nil
 }
@@ -250,7 +249,7 @@ func writeAlertSummary(w io.Writer, evs []alerts.Event) error {
 		_, err := fmt.Fprintln(w, "\nNo alert events.")
 		return err
 	}
-	fmt.Fprintf(w, "\n%d alert events:\n", len(evs))
+	fmt.Fprintf(w, "\n%s:\n", plural(len(evs), "alert event", "alert events"))
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, "t s\tstream\tcondition\tstate\tpriority\tmessage")
 	for i := range evs {
@@ -292,7 +291,7 @@ func writeSummary(w io.Writer, bs []analyze.Breath) error {
 	}
 	for _, st := range streams {
 		s := analyze.Summarize(byStream[st])
-		row(st, "median", "", s, fmt.Sprintf("%d breaths, %d reliable", s.Breaths, s.Reliable))
+		row(st, "median", "", s, plural(s.Breaths, "breath", "breaths")+fmt.Sprintf(", %d reliable", s.Reliable))
 	}
 	if err := tw.Flush(); err != nil {
 		return err

@@ -126,6 +126,14 @@ func TestAnalyzeBadInput(t *testing.T) {
 	for i := 0; i < 60000; i++ { // ten minutes at 100 Hz
 		flat.WriteString(strconv.FormatFloat(float64(i)/100, 'f', 2, 64) + ",5.0,0.0\n")
 	}
+	// A headerless file whose columns are pressure, flow, time: read as
+	// time, pressure, flow, its "times" go up and down with the breaths.
+	var reo strings.Builder
+	for i := 0; i < 3000; i++ {
+		p := 5 + 10*math.Sin(float64(i)/50)
+		reo.WriteString(strconv.FormatFloat(p, 'f', 3, 64) + ",0.0," + strconv.FormatFloat(float64(i)/100, 'f', 2, 64) + "\n")
+	}
+	reordered := reo.String()
 	tests := []struct {
 		name     string
 		args     []string
@@ -136,11 +144,18 @@ func TestAnalyzeBadInput(t *testing.T) {
 	}{
 		{"empty file", []string{"analyze", write("empty.csv", nil)}, ExitError, "no samples", true, ""},
 		{"random bytes", []string{"analyze", write("random.bin", random)}, ExitError, "no samples", true, ""},
-		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open recording", true, ""},
+		{"missing file", []string{"analyze", filepath.Join(dir, "nope.csv")}, ExitError, "open input", true, ""},
+		{"header only", []string{"analyze", write("head.csv", []byte("time[s],pressure[cmH2O],flow[L/min]\n"))}, ExitError,
+			"no samples after its header", true, ""},
+		{"every line bad", []string{"analyze", write("bad.csv", []byte("a;b;c\nd;e;f\n"))}, ExitError,
+			"with the columns assumed \"time[s],pressure[cmH2O],flow[L/min]\"", true, ""},
 		{"flat line", []string{"analyze", write("flat.csv", []byte(flat.String()))}, ExitOK, "no complete breath", false,
 			`"condition":"signal-implausible","class":"technical","priority":"medium","state":"raised"`},
 		{"bad columns", []string{"analyze", "--columns", "time[fortnight],flow", write("x.csv", []byte("1,2\n"))}, ExitUsage, "columns", true, ""},
-		{"no argument", []string{"analyze"}, ExitUsage, "arg", true, ""},
+		{"columns out of order", []string{"analyze", write("reordered.csv", []byte(reordered))}, ExitError,
+			"not in time order", true, ""},
+		{"no argument", []string{"analyze"}, ExitUsage, "give a recording file, a recording directory or - for stdin", true, ""},
+		{"bad format", []string{"analyze", "--format", "csv", "-"}, ExitUsage, "want auto, text, binary or recording", true, ""},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {

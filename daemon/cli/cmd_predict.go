@@ -12,7 +12,6 @@ import (
 	"github.com/spf13/pflag"
 
 	"trapline/analyze"
-	"trapline/ingest"
 )
 
 // predictFlags are the options of `trapline predict`.
@@ -22,16 +21,14 @@ type predictFlags struct {
 	vt, flow, ti, pause, rate, peep     float64
 	candVT, candFlow, candTi, candPause []float64
 	candRate, candPEEP                  []float64
-	columns                             string
-	sampleRate                          float64
-	stream                              string
+	in                                  inputFlags // of --from
 }
 
 // maxPredictRows bounds the table over the candidate lists.
 const maxPredictRows = 500
 
 func (a *app) predictCommand() *cobra.Command {
-	f := predictFlags{deadSpace: 150, target: 50, columns: "", stream: ""}
+	f := predictFlags{deadSpace: 150, target: 50}
 	cmd := &cobra.Command{
 		Use:   "predict",
 		Short: "What-if: steady-state trapped volume and intrinsic PEEP at other ventilator settings",
@@ -48,13 +45,14 @@ func (a *app) predictCommand() *cobra.Command {
 			Caution,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
+			f.in.streamSet = cmd.Flags().Changed("stream")
 			return a.runPredict(cmd.Context(), cmd.Flags(), f, cmd.OutOrStdout())
 		},
 	}
 	fl := cmd.Flags()
 	fl.Float64Var(&f.r, "r", 0, "resistance, cmH2O·s/L")
 	fl.Float64Var(&f.c, "c", 0, "compliance, mL/cmH2O")
-	fl.StringVar(&f.from, "from", "", "estimate R, C and the current settings from a recording (FILE or -)")
+	fl.StringVar(&f.from, "from", "", "estimate R, C and the current settings from a recording (FILE, DIR or -)")
 	fl.Float64Var(&f.vt, "vt", 0, "current tidal volume, mL")
 	fl.Float64Var(&f.flow, "flow", 0, "current inspiratory flow, L/min (square)")
 	fl.Float64Var(&f.ti, "ti", 0, "current inspiratory flow time, s (instead of --flow)")
@@ -70,9 +68,7 @@ func (a *app) predictCommand() *cobra.Command {
 	fl.Float64Var(&f.target, "target-trapped", f.target, "target trapped volume, mL")
 	fl.Float64Var(&f.deadSpace, "dead-space", f.deadSpace, "dead space for alveolar ventilation, mL (about 150 mL in an adult: common practice)")
 	fl.Float64Var(&f.paco2, "paco2", 0, "current PaCO2 (any unit) to print the expected values instead of ratios")
-	fl.StringVar(&f.columns, "columns", "", "with --from: column layout of a recording without a header line")
-	fl.Float64Var(&f.sampleRate, "sample-rate", 0, "with --from: sample rate in Hz, for input without a time column")
-	fl.StringVar(&f.stream, "stream", "", "with --from: use only this stream of the recording")
+	f.in.register(fl, false)
 	return cmd
 }
 
@@ -80,22 +76,19 @@ func (a *app) predictCommand() *cobra.Command {
 // medians of its breaths (mechanics over reliable breaths only). Flags that
 // were set explicitly win.
 func (a *app) settingsFrom(ctx context.Context, fs *pflag.FlagSet, f *predictFlags) error {
-	af := analyzeFlags{columns: f.columns, sampleRate: f.sampleRate, stream: f.stream, summary: true}
-	if af.columns == "" {
-		af.columns = ingest.DefaultColumns
-	}
-	if af.stream == "" {
-		af.stream = ingest.DefaultStream
+	af := analyzeFlags{in: f.in, summary: true}
+	if err := af.in.check(); err != nil {
+		return err
 	}
 	o := newOffline(analyze.DefaultConfig(), io.Discard, true)
 	if _, err := a.readAll(ctx, f.from, af, o); err != nil {
 		return err
 	}
 	bs := o.kept
-	if f.stream != "" {
+	if f.in.streamSet {
 		keep := bs[:0]
 		for _, b := range bs {
-			if b.Stream == f.stream {
+			if b.Stream == f.in.stream {
 				keep = append(keep, b)
 			}
 		}
@@ -103,7 +96,7 @@ func (a *app) settingsFrom(ctx context.Context, fs *pflag.FlagSet, f *predictFla
 	}
 	s := analyze.Summarize(bs)
 	if s.Reliable == 0 {
-		return fmt.Errorf("%s: no reliable breath (%d breaths) to estimate R and C from", f.from, s.Breaths)
+		return fmt.Errorf("%s: no reliable breath (of %s) to estimate R and C from", f.from, plural(s.Breaths, "breath", "breaths"))
 	}
 	pif := medianPIF(bs)
 	set := func(name string, dst *float64, v float64) {
@@ -160,9 +153,59 @@ func (a *app) runPredict(ctx context.Context, fs *pflag.FlagSet, f predictFlags,
 	if err != nil {
 		return usageErrorf("current settings: %v", err)
 	}
+	rows, err := predictRows(pt, base, f)
+	if err != nil {
+		return err
+	}
+	tau := base.TauS
 	cur = base.Settings
+	fmt.Fprintf(w, "MODEL PREDICTION (passive linear single compartment, square flow, steady state)\n")
+	fmt.Fprintf(w, "patient: R %.1f cmH2O·s/L, C %.1f mL/cmH2O, τ %.2f s (%s); dead space %g mL\n", f.r, f.c, tau, source, f.deadSpace)
+	fmt.Fprintf(w, "expiratory time for trapped volume ≤ %g mL at VT %.0f mL: %.2f s\n\n", f.target, cur.VtML, analyze.TeForTrapped(cur.VtML, tau, f.target))
+	if err := writePredictTable(w, base, rows, f.paco2); err != nil {
+		return fmt.Errorf("write table: %w", err)
+	}
+	_, err = fmt.Fprintf(w, "\nPressures in cmH2O. Flow limitation, unequal time constants and effort make real trapping\n"+
+		"worse than this model predicts; measure after any change.\n%s\n", Caution)
+	return err
+}
 
-	// Candidates: the product of the lists, each defaulting to the current value.
+// predictRow is one line of the prediction table.
+type predictRow struct {
+	label string
+	p     analyze.Prediction
+}
+
+// candidateLists checks the --cand lists: every value finite and positive
+// (PEEP and pause may be 0), so that an impossible candidate is a usage
+// error before any table is printed.
+func candidateLists(f predictFlags) error {
+	for _, l := range []struct {
+		name   string
+		vs     []float64
+		zeroOK bool
+	}{{"cand-vt", f.candVT, false}, {"cand-flow", f.candFlow, false}, {"cand-ti", f.candTi, false},
+		{"cand-pause", f.candPause, true}, {"cand-rate", f.candRate, false}, {"cand-peep", f.candPEEP, true}} {
+		for _, v := range l.vs {
+			if math.IsNaN(v) || math.IsInf(v, 0) || v < 0 || (v == 0 && !l.zeroOK) {
+				want := "positive numbers"
+				if l.zeroOK {
+					want = "numbers of 0 or more"
+				}
+				return usageErrorf("--%s %g: want %s", l.name, v, want)
+			}
+		}
+	}
+	return nil
+}
+
+// predictRows predicts every combination of the candidate lists (each
+// defaulting to the current value) and the settings that reach the target.
+func predictRows(pt analyze.Patient, base analyze.Prediction, f predictFlags) ([]predictRow, error) {
+	if err := candidateLists(f); err != nil {
+		return nil, err
+	}
+	cur := base.Settings
 	or := func(l []float64, v float64) []float64 {
 		if len(l) == 0 {
 			return []float64{v}
@@ -173,57 +216,60 @@ func (a *app) runPredict(ctx context.Context, fs *pflag.FlagSet, f predictFlags,
 	if len(f.candTi) > 0 {
 		flows, tis = []float64{0}, f.candTi
 	}
-	type row struct {
-		label string
-		p     analyze.Prediction
-		err   error
-	}
-	rows := []row{{label: "current", p: base}}
-	n := 0
+	var cands []analyze.Settings
 	for _, vt := range or(f.candVT, cur.VtML) {
 		for _, fl := range flows {
 			for _, ti := range tis {
 				for _, pa := range or(f.candPause, cur.PauseS) {
 					for _, rr := range or(f.candRate, cur.RateBPM) {
 						for _, pe := range or(f.candPEEP, cur.PEEPCmH2O) {
-							if n++; n > maxPredictRows {
-								return usageErrorf("more than %d candidate combinations: shorten the --cand lists", maxPredictRows)
-							}
-							s := analyze.Settings{VtML: vt, FlowLPM: fl, InspTimeS: ti, PauseS: pa, RateBPM: rr, PEEPCmH2O: pe}
-							p, err := analyze.Predict(pt, s)
-							if err == nil && p.Settings == cur {
-								continue
-							}
-							rows = append(rows, row{label: "candidate", p: p, err: err})
+							cands = append(cands, analyze.Settings{VtML: vt, FlowLPM: fl, InspTimeS: ti, PauseS: pa, RateBPM: rr, PEEPCmH2O: pe})
 						}
 					}
 				}
 			}
 		}
 	}
+	if len(cands) > maxPredictRows {
+		return nil, usageErrorf("%d candidate combinations, more than %d: shorten the --cand lists", len(cands), maxPredictRows)
+	}
+	rows := []predictRow{{label: "current", p: base}}
+	for _, s := range cands {
+		p, err := analyze.Predict(pt, s)
+		if err != nil {
+			return nil, usageErrorf("candidate VT %g mL, flow %g L/min, Ti %g s, pause %g s, rate %g /min, PEEP %g: %v",
+				s.VtML, s.FlowLPM, s.InspTimeS, s.PauseS, s.RateBPM, s.PEEPCmH2O, err)
+		}
+		if p.Settings != cur {
+			rows = append(rows, predictRow{label: "candidate", p: p})
+		}
+	}
 	tau := base.TauS
 	if r := analyze.RateForTrapped(cur, tau, f.target); !math.IsNaN(r) {
 		s := cur
 		s.RateBPM = r
-		p, err := analyze.Predict(pt, s)
-		rows = append(rows, row{label: fmt.Sprintf("rate for ≤ %g mL", f.target), p: p, err: err})
+		if p, err := analyze.Predict(pt, s); err == nil {
+			rows = append(rows, predictRow{label: fmt.Sprintf("rate for ≤ %g mL", f.target), p: p})
+		}
 	}
 	if fl := analyze.FlowForTrapped(cur, tau, f.target); !math.IsNaN(fl) {
 		s := cur
 		s.FlowLPM, s.InspTimeS = fl, 0
-		p, err := analyze.Predict(pt, s)
-		rows = append(rows, row{label: fmt.Sprintf("flow for ≤ %g mL", f.target), p: p, err: err})
+		if p, err := analyze.Predict(pt, s); err == nil {
+			rows = append(rows, predictRow{label: fmt.Sprintf("flow for ≤ %g mL", f.target), p: p})
+		}
 	}
+	return rows, nil
+}
 
-	fmt.Fprintf(w, "MODEL PREDICTION (passive linear single compartment, square flow, steady state)\n")
-	fmt.Fprintf(w, "patient: R %.1f cmH2O·s/L, C %.1f mL/cmH2O, τ %.2f s (%s); dead space %g mL\n", f.r, f.c, tau, source, f.deadSpace)
-	fmt.Fprintf(w, "expiratory time for trapped volume ≤ %g mL at VT %.0f mL: %.2f s\n\n", f.target, cur.VtML, analyze.TeForTrapped(cur.VtML, tau, f.target))
+// writePredictTable prints the rows as an aligned table.
+func writePredictTable(w io.Writer, base analyze.Prediction, rows []predictRow, paco2 float64) error {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-	paco2 := "PaCO2 ×"
-	if f.paco2 > 0 {
-		paco2 = "PaCO2"
+	head := "PaCO2 ×"
+	if paco2 > 0 {
+		head = "PaCO2"
 	}
-	fmt.Fprintf(tw, "\tVT mL\tflow L/min\tTi s\tpause s\trate /min\tPEEP\tTe s\tTe/τ\ttrapped mL\tPEEPi\tPplat\tPpeak\tVE L/min\t%s\t\n", paco2)
+	fmt.Fprintf(tw, "\tVT mL\tflow L/min\tTi s\tpause s\trate /min\tPEEP\tTe s\tTe/τ\ttrapped mL\tPEEPi\tPplat\tPpeak\tVE L/min\t%s\t\n", head)
 	num := func(v float64, prec int) string {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			return "-"
@@ -232,23 +278,14 @@ func (a *app) runPredict(ctx context.Context, fs *pflag.FlagSet, f predictFlags,
 	}
 	for _, r := range rows {
 		s := r.p.Settings
-		if r.err != nil {
-			fmt.Fprintf(tw, "%s\t%s\t\t\t\t\t\t%v\t\n", r.label, "", r.err)
-			continue
-		}
 		ratio := analyze.PaCO2Ratio(base, r.p)
-		if f.paco2 > 0 {
-			ratio *= f.paco2
+		if paco2 > 0 {
+			ratio *= paco2
 		}
 		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n", r.label,
 			num(s.VtML, 0), num(s.FlowLPM, 1), num(s.InspTimeS, 2), num(s.PauseS, 2), num(s.RateBPM, 1), num(s.PEEPCmH2O, 1),
 			num(r.p.TeS, 2), num(r.p.TeOverTau, 2), num(r.p.TrappedML, 0), num(r.p.PEEPiCmH2O, 1),
 			num(r.p.PlateauCmH2O, 1), num(r.p.PeakCmH2O, 1), num(r.p.MinuteVolLPM, 2), num(ratio, 2))
 	}
-	if err := tw.Flush(); err != nil {
-		return fmt.Errorf("write table: %w", err)
-	}
-	_, err = fmt.Fprintf(w, "\nPressures in cmH2O. Flow limitation, unequal time constants and effort make real trapping\n"+
-		"worse than this model predicts; measure after any change.\n%s\n", Caution)
-	return err
+	return tw.Flush()
 }

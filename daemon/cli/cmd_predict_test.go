@@ -54,10 +54,16 @@ func TestPredictBadUsage(t *testing.T) {
 		{"predict", "--vt", "500", "--flow", "40", "--rate", "20"},                           // no R, C
 		{"predict", "--r", "10", "--c", "50", "--vt", "500", "--flow", "10", "--rate", "30"}, // Ti 3 s > cycle
 		{"predict", "--r", "10", "--c", "50", "--vt", "500", "--flow", "40", "--rate", "20", "--target-trapped", "0"},
+		// An impossible candidate is refused before any table is printed.
+		{"predict", "--r", "25", "--c", "60", "--vt", "600", "--flow", "45", "--rate", "24", "--peep", "5", "--cand-rate", "0,-5"},
+		{"predict", "--r", "10", "--c", "50", "--vt", "500", "--flow", "40", "--rate", "20", "--cand-rate", "12,200"}, // Ti longer than the cycle
 	} {
 		var stdout, stderr bytes.Buffer
 		if code := Run(t.Context(), args, nil, &stdout, &stderr); code != ExitUsage {
 			t.Errorf("%v: exit %d, want %d (%s)", args, code, ExitUsage, stderr.String())
+		}
+		if stdout.Len() != 0 {
+			t.Errorf("%v: printed %q", args, stdout.String())
 		}
 	}
 }

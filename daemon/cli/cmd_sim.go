@@ -12,6 +12,7 @@ import (
 	"text/tabwriter"
 	"time"
 
+	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
 	"github.com/spf13/pflag"
 
@@ -24,7 +25,8 @@ import (
 type simFlags struct {
 	scenario, speed, format, out, link, truth, stream string
 	list, noise                                       bool
-	decimals                                          int
+	decimals, patients                                int
+	ward                                              []string
 	duration                                          time.Duration
 	seed                                              uint64
 	resistance, compliance, tidalVolume, flow         float64
@@ -47,7 +49,8 @@ func (a *app) simCommand() *cobra.Command {
 			"and events; without one, the flags describe a steady passive patient on volume control.\n" +
 			"--truth writes the true mechanics and conditions of every breath as NDJSON.\n\n" +
 			"  trapline sim --resistance 25 --compliance 60 --tidal-volume 600 --flow 45 --rate 24 --peep 5 --speed max\n" +
-			"  trapline sim --scenario bronchospasm --speed 10 --out pty --link /tmp/vent0 --truth truth.ndjson\n\n" +
+			"  trapline sim --scenario bronchospasm --speed 10 --out pty --link /tmp/vent0 --truth truth.ndjson\n" +
+			"  trapline sim --patients 20 --ward stable,bronchospasm --speed 1 --out tcp://127.0.0.1:5501\n\n" +
 			Caution,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
@@ -78,7 +81,9 @@ func (a *app) simCommand() *cobra.Command {
 	fl.StringVar(&f.out, "out", f.out, "output: -, a file path, tcp://HOST:PORT, tcp-listen://HOST:PORT, udp://HOST:PORT, or pty")
 	fl.StringVar(&f.link, "link", "", "with --out pty: keep a symbolic link at PATH to the current pseudo-terminal")
 	fl.StringVar(&f.truth, "truth", "", "write the ground truth of every breath as NDJSON to FILE (- for stdout)")
-	fl.StringVar(&f.stream, "stream", "", "stream id written with the samples")
+	fl.StringVar(&f.stream, "stream", "", "stream id written with the samples (in text, as a stream column)")
+	fl.IntVar(&f.patients, "patients", 0, "simulate N patients on one output as streams bed-1 … bed-N (scenarios of --ward in turn)")
+	fl.StringSliceVar(&f.ward, "ward", nil, "scenarios of a ward, taken in turn by the patients (comma-separated)")
 	return cmd
 }
 
@@ -160,27 +165,89 @@ func parseSpeed(s string) (float64, error) {
 	return v, nil
 }
 
-func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout io.Writer) error {
-	speed, err := parseSpeed(f.speed)
+// checkSimFlags validates the flags that need no scenario.
+func checkSimFlags(f simFlags) (speed float64, format ingest.Format, err error) {
+	if speed, err = parseSpeed(f.speed); err != nil {
+		return 0, format, err
+	}
+	if format, err = ingest.ParseFormat(f.format); err != nil {
+		return 0, format, &daemon.UsageError{Err: fmt.Errorf("--format: %w", err)}
+	}
+	switch {
+	case f.decimals < 0 || f.decimals > 17:
+		return 0, format, usageErrorf("--decimals %d: want 0 to 17", f.decimals)
+	case f.link != "" && f.out != "pty":
+		return 0, format, usageErrorf("--link needs --out pty")
+	case f.truth == "-" && f.out == "-":
+		return 0, format, usageErrorf("--truth -: stdout already carries the samples; give --truth a file")
+	case f.patients < 0 || f.patients > 1000:
+		return 0, format, usageErrorf("--patients %d: want 1 to 1000", f.patients)
+	case f.patients > 0 && f.stream != "":
+		return 0, format, usageErrorf("--stream names one patient; with --patients the streams are bed-1 … bed-N")
+	}
+	return speed, format, nil
+}
+
+// simOutput opens the output of --out; on a pseudo-terminal it prints the
+// slave path on stdout unless stdout carries the truth.
+func simOutput(f simFlags, stdout io.Writer, log zerolog.Logger) (simulator.Output, error) {
+	out, err := simulator.ParseOutput(f.out, simulator.OutputOptions{
+		Stdout:   stdout,
+		Link:     f.link,
+		OnStatus: func(msg string) { log.Info().Msg(msg) },
+		OnPTY: func(path string) {
+			if f.truth != "-" {
+				fmt.Fprintln(stdout, path)
+			}
+		},
+	})
 	if err != nil {
+		return nil, &daemon.UsageError{Err: fmt.Errorf("--out: %w", err)}
+	}
+	return out, nil
+}
+
+// simTruth opens the --truth writer; close releases it.
+func simTruth(f simFlags, stdout io.Writer) (w io.Writer, close func(), err error) {
+	switch f.truth {
+	case "":
+		return nil, func() {}, nil
+	case "-":
+		return stdout, func() {}, nil
+	}
+	tf, err := os.Create(f.truth)
+	if err != nil {
+		return nil, nil, fmt.Errorf("--truth: %w", err)
+	}
+	return tf, func() { tf.Close() }, nil
+}
+
+// simEnded turns the end of a simulation into the verb's result.
+func simEnded(log zerolog.Logger, st simulator.StreamStats, err error) error {
+	switch {
+	case errors.Is(err, context.Canceled):
+		log.Info().Uint64("samples", st.Samples).Msg("stopped")
+		return nil
+	case errors.Is(err, syscall.EPIPE):
+		return nil // the reader went away (trapline sim | head)
+	case err != nil:
 		return err
 	}
-	format, err := ingest.ParseFormat(f.format)
+	log.Info().Uint64("samples", st.Samples).Uint64("breaths", st.Breaths).Msg("done")
+	return nil
+}
+
+func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout io.Writer) error {
+	speed, format, err := checkSimFlags(f)
 	if err != nil {
-		return &daemon.UsageError{Err: fmt.Errorf("--format: %w", err)}
-	}
-	if f.decimals < 0 || f.decimals > 17 {
-		return usageErrorf("--decimals %d: want 0 to 17", f.decimals)
-	}
-	if f.link != "" && f.out != "pty" {
-		return usageErrorf("--link needs --out pty")
-	}
-	if f.truth == "-" && f.out == "-" {
-		return usageErrorf("--truth -: stdout already carries the samples; give --truth a file")
+		return err
 	}
 	sc, err := simScenario(fl, f)
 	if err != nil {
 		return err
+	}
+	if f.patients > 0 || len(f.ward) > 0 {
+		return a.runWard(ctx, f, sc, speed, format, stdout)
 	}
 	sim, err := simulator.New(sc)
 	if err != nil {
@@ -196,56 +263,75 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 		return fmt.Errorf("encoder: %w", err)
 	}
 	log := a.log.With().Str("component", "sim").Str("stream", sim.Stream()).Logger()
-	out, err := simulator.ParseOutput(f.out, simulator.OutputOptions{
-		Stdout:   stdout,
-		Link:     f.link,
-		OnStatus: func(msg string) { log.Info().Msg(msg) },
-		OnPTY: func(path string) {
-			// The slave path on stdout, one line per (re)connection, for
-			// scripts that open it; not when stdout carries the truth.
-			if f.truth != "-" {
-				fmt.Fprintln(stdout, path)
-			}
-		},
-	})
+	out, err := simOutput(f, stdout, log)
 	if err != nil {
-		return &daemon.UsageError{Err: fmt.Errorf("--out: %w", err)}
+		return err
 	}
+	truth, closeTruth, err := simTruth(f, stdout)
+	if err != nil {
+		return err
+	}
+	defer closeTruth()
 	opts := simulator.StreamOptions{
-		Encoder: enc,
-		Speed:   speed,
+		Encoder: enc, Speed: speed, Truth: truth,
+		// A stream id given on purpose goes into the text too, so that
+		// several writers on one source stay apart at the reader.
+		StreamColumn: fl.Changed("stream"),
 		OnLink: func(ev simulator.LinkEvent) {
-			state := "disconnected"
-			if ev.Up {
-				state = "reconnected"
-			}
-			log.Info().Float64("t_s", ev.TimeS).Msg("scripted " + state)
+			log.Info().Float64("t_s", ev.TimeS).Bool("up", ev.Up).Msg("scripted link change")
 		},
-	}
-	if f.truth != "" {
-		w := stdout
-		if f.truth != "-" {
-			tf, err := os.Create(f.truth)
-			if err != nil {
-				return fmt.Errorf("--truth: %w", err)
-			}
-			defer tf.Close()
-			w = tf
-		}
-		opts.Truth = w
 	}
 	log.Info().Str("scenario", sc.Name).Float64("duration_s", sim.DurationS()).Float64("sample_rate_hz", sim.SampleRateHz()).
 		Str("speed", f.speed).Str("out", f.out).Msg("simulating")
 	st, err := simulator.Stream(ctx, sim, out, opts)
-	switch {
-	case errors.Is(err, context.Canceled):
-		log.Info().Uint64("samples", st.Samples).Msg("stopped")
-		return nil
-	case errors.Is(err, syscall.EPIPE):
-		return nil // the reader went away (trapline sim | head)
-	case err != nil:
+	return simEnded(log, st, err)
+}
+
+// runWard writes several patients to one output (--patients, --ward): the
+// scenarios of --ward (or the one of the other flags) taken in turn, as
+// streams bed-1 … bed-N, every line or frame naming its stream.
+func (a *app) runWard(ctx context.Context, f simFlags, base simulator.Scenario, speed float64, format ingest.Format, stdout io.Writer) error {
+	scs := []simulator.Scenario{base}
+	if len(f.ward) > 0 {
+		scs = scs[:0]
+		for _, name := range f.ward {
+			sc, err := simulator.LoadScenario(name)
+			if err != nil {
+				return &daemon.UsageError{Err: fmt.Errorf("--ward: %w", err)}
+			}
+			scs = append(scs, sc)
+		}
+	}
+	n := f.patients
+	if n == 0 {
+		n = len(scs)
+	}
+	ward, err := simulator.WardScenarios(scs, n, "bed")
+	if err != nil {
+		return &daemon.UsageError{Err: err}
+	}
+	sims := make([]*simulator.Sim, len(ward))
+	for i, sc := range ward {
+		if sims[i], err = simulator.New(sc); err != nil {
+			return &daemon.UsageError{Err: fmt.Errorf("patient %s: %w", sc.Stream, err)}
+		}
+	}
+	log := a.log.With().Str("component", "sim").Int("patients", n).Logger()
+	out, err := simOutput(f, stdout, log)
+	if err != nil {
 		return err
 	}
-	log.Info().Uint64("samples", st.Samples).Uint64("breaths", st.Breaths).Msg("done")
-	return nil
+	truth, closeTruth, err := simTruth(f, stdout)
+	if err != nil {
+		return err
+	}
+	defer closeTruth()
+	log.Info().Str("speed", f.speed).Str("out", f.out).Msg("simulating a ward")
+	st, err := simulator.StreamWard(ctx, sims, out, simulator.WardOptions{
+		Format: format, Decimals: f.decimals, Speed: speed, Truth: truth,
+		OnLink: func(stream string, ev simulator.LinkEvent) {
+			log.Info().Str("stream", stream).Float64("t_s", ev.TimeS).Bool("up", ev.Up).Msg("scripted link change")
+		},
+	})
+	return simEnded(log, st, err)
 }

@@ -79,12 +79,13 @@ func sweepSet(path string) (sweep.DetectorSet, *analyze.Config, error) {
 	return sweep.DetectorSet{Name: name, Detectors: cfg.Detectors, Alarms: cfg.Alarms}, &cfg.Analysis, nil
 }
 
-func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
+// sweepPlan builds the grid of the flags and expands it.
+func sweepPlan(f *sweepFlags) (sweep.Grid, *sweep.Plan, error) {
 	if f.quick && f.grid != "" {
-		return usageErrorf("sweep: --quick and --grid exclude each other")
+		return sweep.Grid{}, nil, usageErrorf("sweep: --quick and --grid exclude each other")
 	}
 	if f.workers < 0 || f.seeds < 0 {
-		return usageErrorf("sweep: --workers and --seeds must not be negative")
+		return sweep.Grid{}, nil, usageErrorf("sweep: --workers and --seeds must not be negative")
 	}
 	g := sweep.DefaultGrid()
 	switch {
@@ -93,7 +94,7 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	case f.grid != "":
 		var err error
 		if g, err = sweep.LoadGrid(f.grid); err != nil {
-			return &daemon.UsageError{Err: fmt.Errorf("sweep: %w", err)}
+			return g, nil, &daemon.UsageError{Err: fmt.Errorf("sweep: %w", err)}
 		}
 	}
 	if f.seeds > 0 {
@@ -101,56 +102,82 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	}
 	plan, err := g.Expand()
 	if err != nil {
-		return &daemon.UsageError{Err: fmt.Errorf("sweep: grid: %w", err)}
+		return g, plan, &daemon.UsageError{Err: fmt.Errorf("sweep: grid: %w", err)}
 	}
+	return g, plan, nil
+}
+
+// sweepOptions builds the detector sets of --config and --compare.
+func sweepOptions(f *sweepFlags) (sweep.Options, error) {
 	opt := sweep.Options{Workers: f.workers}
 	first := sweep.DefaultDetectorSet()
 	if f.configPath != "" {
+		var err error
 		if first, opt.Analysis, err = sweepSet(f.configPath); err != nil {
-			return err
+			return opt, err
 		}
 	}
 	opt.Sets = []sweep.DetectorSet{first}
 	if f.compare != "" {
 		second, _, err := sweepSet(f.compare)
 		if err != nil {
-			return err
+			return opt, err
 		}
 		if second.Name == first.Name {
 			second.Name += " (compare)"
 		}
 		opt.Sets = append(opt.Sets, second)
 	}
+	return opt, nil
+}
+
+// sweepProgress draws a progress bar of simulated seconds on a terminal;
+// done ends it.
+func sweepProgress(w io.Writer, totalS float64) (progress func(float64), done func()) {
+	if !isTerminal(w) {
+		return nil, func() {}
+	}
+	bar := progressbar.NewOptions64(int64(totalS),
+		progressbar.OptionSetWriter(w),
+		progressbar.OptionSetDescription("simulating"),
+		progressbar.OptionSetPredictTime(true),
+		progressbar.OptionSetElapsedTime(true),
+		progressbar.OptionSetWidth(40),
+		progressbar.OptionThrottle(200*time.Millisecond),
+		progressbar.OptionClearOnFinish(),
+	)
+	var mu sync.Mutex
+	acc := 0.0
+	return func(s float64) {
+		mu.Lock()
+		acc += s
+		whole := int64(acc)
+		acc -= float64(whole)
+		mu.Unlock()
+		_ = bar.Add64(whole)
+	}, func() { _ = bar.Exit() }
+}
+
+func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
+	g, plan, err := sweepPlan(f)
+	if err != nil {
+		return err
+	}
+	opt, err := sweepOptions(f)
+	if err != nil {
+		return err
+	}
 	if err := os.MkdirAll(f.out, 0o755); err != nil {
 		return fmt.Errorf("sweep: %w", err)
 	}
-
 	stderr := cmd.ErrOrStderr()
-	fmt.Fprintf(stderr, "sweep: %d patients, %.1f simulated patient-hours at %v Hz, detector sets: %s\n",
-		len(plan.Cases), plan.TotalS()/3600, g.SampleRatesHz, setNames(opt.Sets))
-	if !f.noProgress && isTerminal(stderr) {
-		bar := progressbar.NewOptions64(int64(plan.TotalS()),
-			progressbar.OptionSetWriter(stderr),
-			progressbar.OptionSetDescription("simulating"),
-			progressbar.OptionSetPredictTime(true),
-			progressbar.OptionSetElapsedTime(true),
-			progressbar.OptionSetWidth(40),
-			progressbar.OptionThrottle(200*time.Millisecond),
-			progressbar.OptionClearOnFinish(),
-		)
-		var mu sync.Mutex
-		acc := 0.0
-		opt.Progress = func(s float64) {
-			mu.Lock()
-			acc += s
-			whole := int64(acc)
-			acc -= float64(whole)
-			mu.Unlock()
-			_ = bar.Add64(whole)
-		}
-		defer func() { _ = bar.Exit() }()
+	fmt.Fprintf(stderr, "sweep: %s, %.1f simulated patient-hours at %v Hz, detector sets: %s\n",
+		plural(len(plan.Cases), "patient", "patients"), plan.TotalS()/3600, g.SampleRatesHz, setNames(opt.Sets))
+	if !f.noProgress {
+		var done func()
+		opt.Progress, done = sweepProgress(stderr, plan.TotalS())
+		defer done()
 	}
-
 	res, err := sweep.Run(cmd.Context(), plan, opt)
 	if err != nil {
 		if errors.Is(err, cmd.Context().Err()) && cmd.Context().Err() != nil {
@@ -163,29 +190,38 @@ func (a *app) runSweep(cmd *cobra.Command, f *sweepFlags) error {
 	if err != nil {
 		return fmt.Errorf("sweep: %w", err)
 	}
-	js, err := sum.JSON()
+	jsonPath, htmlPath, err := writeSweepFiles(f.out, res, sum, ex)
 	if err != nil {
 		return err
-	}
-	jsonPath := filepath.Join(f.out, "summary.json")
-	if err := os.WriteFile(jsonPath, js, 0o644); err != nil {
-		return fmt.Errorf("sweep: %w", err)
-	}
-	htmlPath := filepath.Join(f.out, "report.html")
-	hf, err := os.Create(htmlPath)
-	if err != nil {
-		return fmt.Errorf("sweep: %w", err)
-	}
-	if err := sweep.WriteReport(hf, res, sum, ex); err != nil {
-		hf.Close()
-		return fmt.Errorf("sweep: %w", err)
-	}
-	if err := hf.Close(); err != nil {
-		return fmt.Errorf("sweep: %w", err)
 	}
 	printSweepHeadline(cmd.OutOrStdout(), sum)
 	fmt.Fprintf(cmd.OutOrStdout(), "report: %s\nsummary: %s\n", htmlPath, jsonPath)
 	return nil
+}
+
+// writeSweepFiles writes summary.json and report.html into dir.
+func writeSweepFiles(dir string, res *sweep.Result, sum *sweep.Summary, ex *sweep.Example) (jsonPath, htmlPath string, err error) {
+	js, err := sum.JSON()
+	if err != nil {
+		return "", "", err
+	}
+	jsonPath = filepath.Join(dir, "summary.json")
+	if err := os.WriteFile(jsonPath, js, 0o644); err != nil {
+		return "", "", fmt.Errorf("sweep: %w", err)
+	}
+	htmlPath = filepath.Join(dir, "report.html")
+	hf, err := os.Create(htmlPath)
+	if err != nil {
+		return "", "", fmt.Errorf("sweep: %w", err)
+	}
+	if err := sweep.WriteReport(hf, res, sum, ex); err != nil {
+		hf.Close()
+		return "", "", fmt.Errorf("sweep: %w", err)
+	}
+	if err := hf.Close(); err != nil {
+		return "", "", fmt.Errorf("sweep: %w", err)
+	}
+	return jsonPath, htmlPath, nil
 }
 
 func setNames(sets []sweep.DetectorSet) string {

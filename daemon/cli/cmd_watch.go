@@ -9,8 +9,6 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/spf13/cobra"
 
-	"trapline/config"
-	"trapline/daemon"
 	"trapline/daemon/bus"
 )
 
@@ -99,7 +97,7 @@ func (a *app) watchCommand() *cobra.Command {
 	f := cmd.Flags()
 	f.StringVar(&url, "nats-url", defaultNATSURL, "NATS server to read from")
 	f.StringVarP(&cfgPath, "config", "c", "", "configuration file whose nats section (url, credentials, TLS) applies")
-	f.StringVar(&opts.Prefix, "prefix", opts.Prefix, "subject prefix of the daemon (nats.prefix)")
+	f.StringVar(&opts.Prefix, "prefix", opts.Prefix, "subject prefix of the daemon (nats.subject_prefix)")
 	f.DurationVar(&opts.Since, "since", opts.Since, "replay the alert events of this last period on start (0: none)")
 	f.BoolVar(&opts.JSON, "json", false, "print breath records and alert events as NDJSON instead of the view")
 	f.BoolVar(&opts.Plain, "plain", false, "plain line output even on a terminal")
@@ -114,18 +112,7 @@ func (a *app) watchCommand() *cobra.Command {
 // set, overrides its url), else the plain --nats-url. With a file it also
 // returns the file's subject prefix.
 func watchClient(url, cfgPath string, urlSet bool) (bus.ClientOptions, string, error) {
-	if cfgPath == "" {
-		return bus.ClientOptions{URL: url, Name: "trapline watch"}, "", nil
-	}
-	cfg, err := config.Load(cfgPath, nil)
-	if err != nil {
-		return bus.ClientOptions{}, "", &daemon.UsageError{Err: err}
-	}
-	co := bus.ClientFromConfig(&cfg.NATS, "trapline watch")
-	if urlSet || co.URL == "" {
-		co.URL = url
-	}
-	return co, cfg.NATS.SubjectPrefix, nil
+	return natsClient("trapline watch", url, cfgPath, urlSet)
 }
 
 // runWatch shows what arrives on nc until ctx is cancelled. warn logs

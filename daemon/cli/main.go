@@ -107,6 +107,9 @@ func (a *app) rootCommand() *cobra.Command {
 		a.simCommand(),
 		a.sweepCommand(),
 		a.versionCommand(),
+		a.configCommand(),
+		a.ackCommand(),
+		a.exportCommand(),
 	)
 	return root
 }

@@ -68,6 +68,9 @@ var intKeys = map[string]bool{"schema": true, "seq": true}
 // that they stay in step with the contract.
 func breathColumns() []Column {
 	b := analyze.NewBreath()
+	// String fields that may be null in a record are set, so that their
+	// column is typed as text.
+	b.Mode = analyze.ModeVolume
 	dec := json.NewDecoder(bytes.NewReader(b.AppendJSON(nil)))
 	dec.UseNumber()
 	_, _ = dec.Token() // {

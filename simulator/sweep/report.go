@@ -204,7 +204,11 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 	}
 	for _, set := range s.Sets {
 		for cond, n := range set.OtherAlerts {
-			d.Other = append(d.Other, fmt.Sprintf("%s: %s raised %d times (%.3f per hour)", set.Name, cond, n, float64(n)/float64(s.PatientHours)))
+			times := fmt.Sprintf("%d times", n)
+			if n == 1 {
+				times = "once"
+			}
+			d.Other = append(d.Other, fmt.Sprintf("%s: %s raised %s (%.3f per hour)", set.Name, cond, times, float64(n)/float64(s.PatientHours)))
 		}
 	}
 
