@@ -71,12 +71,16 @@ func aloneBreaths(t *testing.T, sc simulator.Scenario, format ingest.Format) []s
 		t.Fatal(err)
 	}
 	var got []string
+	def := config.Default()
+	version, digest := config.ProgramVersion(), config.AnalysisDigest(def.Analysis, def.Detectors, def.Alarms)
 	_, err := offline.Run(t.Context(), bytes.NewReader(out.Bytes()), offline.Options{Format: format},
 		func(stream string) offline.Handler {
-			a := analyze.NewAnalyzer(stream, config.Default().Analysis)
+			a := analyze.NewAnalyzer(stream, def.Analysis)
 			return func(samples []ingest.Sample) {
 				for _, s := range samples {
 					if b, ok := a.Push(s); ok {
+						// The daemon's pipeline stamps its provenance.
+						b.TraplineVersion, b.ConfigDigest = version, digest
 						got = append(got, string(b.AppendJSON(nil)))
 					}
 				}

@@ -87,22 +87,17 @@ func (d *Daemon) Run(ctx context.Context) error {
 	case config.RoleWorker:
 		return d.runWorker(ctx)
 	}
-	var httpSrv *httpServer
 	acks := d.ackService()
-	if cfg.HTTP.Listen != "" {
-		h, err := newHTTPServer(cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
-		if err != nil {
-			return err
-		}
-		httpSrv = h
-		d.startLiveView(h, acks)
-		// Until Run serves it, the listener is ours to close.
-		defer func() {
-			if !d.serving {
-				h.ln.Close()
-			}
-		}()
+	httpSrv, err := d.openHTTP(acks)
+	if err != nil {
+		return err
 	}
+	// Until Run serves it, the listener is ours to close.
+	defer func() {
+		if httpSrv != nil && !d.serving {
+			httpSrv.ln.Close()
+		}
+	}()
 
 	b, err := bus.Open(cfg, d.log)
 	if err != nil {
@@ -161,6 +156,21 @@ func (d *Daemon) Run(ctx context.Context) error {
 	d.announce(b, httpSrv)
 
 	return d.wait(ctx, g)
+}
+
+// openHTTP opens the listener of health, metrics and the live view when
+// http.listen is set (nil otherwise); the live view acknowledges through
+// acks, the same service as the NATS requests.
+func (d *Daemon) openHTTP(acks *bus.AckService) (*httpServer, error) {
+	if d.cfg.HTTP.Listen == "" {
+		return nil, nil
+	}
+	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
+	if err != nil {
+		return nil, err
+	}
+	d.startLiveView(h, acks)
+	return h, nil
 }
 
 // finish logs the end of the run.
