@@ -81,6 +81,7 @@ func streamScenario(ctx context.Context, t *testing.T, name, stream, link string
 // pseudo-terminal, the daemon reads it as a serial port and publishes to
 // its embedded NATS server, a subscriber receives the alerts.
 func TestEndToEndOverPseudoTerminal(t *testing.T) {
+	t.Parallel() // waits on the simulator most of the time
 	for _, tc := range []struct {
 		scenario    string
 		speed       float64
