@@ -208,6 +208,18 @@ func simOutput(f simFlags, stdout io.Writer, log zerolog.Logger) (simulator.Outp
 }
 
 // simTruth opens the --truth writer; close releases it.
+// simSinks opens the output of the samples and the writer of the ground
+// truth (nil without --truth); closeTruth is always safe to call.
+func simSinks(f simFlags, stdout io.Writer, log zerolog.Logger) (out simulator.Output, truth io.Writer, closeTruth func(), err error) {
+	if out, err = simOutput(f, stdout, log); err != nil {
+		return nil, nil, nil, err
+	}
+	if truth, closeTruth, err = simTruth(f, stdout); err != nil {
+		return nil, nil, nil, err
+	}
+	return out, truth, closeTruth, nil
+}
+
 func simTruth(f simFlags, stdout io.Writer) (w io.Writer, close func(), err error) {
 	switch f.truth {
 	case "":
@@ -263,11 +275,7 @@ func (a *app) runSim(ctx context.Context, fl *pflag.FlagSet, f simFlags, stdout 
 		return fmt.Errorf("encoder: %w", err)
 	}
 	log := a.log.With().Str("component", "sim").Str("stream", sim.Stream()).Logger()
-	out, err := simOutput(f, stdout, log)
-	if err != nil {
-		return err
-	}
-	truth, closeTruth, err := simTruth(f, stdout)
+	out, truth, closeTruth, err := simSinks(f, stdout, log)
 	if err != nil {
 		return err
 	}
@@ -317,11 +325,7 @@ func (a *app) runWard(ctx context.Context, f simFlags, base simulator.Scenario, 
 		}
 	}
 	log := a.log.With().Str("component", "sim").Int("patients", n).Logger()
-	out, err := simOutput(f, stdout, log)
-	if err != nil {
-		return err
-	}
-	truth, closeTruth, err := simTruth(f, stdout)
+	out, truth, closeTruth, err := simSinks(f, stdout, log)
 	if err != nil {
 		return err
 	}
