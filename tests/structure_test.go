@@ -30,7 +30,6 @@ var sizeExceptions = map[string]bool{
 	"config/validate.go:validateNATS":                  true,
 	"simulator/params.go:validate":                     true,
 	"simulator/scenario.go:compile":                    true,
-	"simulator/sweep/grid.go":                          true,
 	"simulator/sweep/grid.go:Expand":                   true,
 	"simulator/sweep/metrics.go:caseScore":             true,
 	"simulator/sweep/report.go:WriteReport":            true,
