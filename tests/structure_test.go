@@ -32,7 +32,6 @@ var sizeExceptions = map[string]bool{
 	"simulator/sweep/metrics.go:caseScore":             true,
 	"simulator/sweep/report.go:WriteReport":            true,
 	"simulator/sweep/report_plot.go:waveformPlots":     true,
-	"simulator/truth.go:finish":                        true,
 }
 
 // TestCodeSize fails on a non-test Go file over maxFileLines lines or a
