@@ -27,7 +27,6 @@ var sizeExceptions = map[string]bool{
 	"config/load.go:load":                              true,
 	"config/validate.go:validateNATS":                  true,
 	"simulator/params.go:validate":                     true,
-	"simulator/scenario.go:compile":                    true,
 	"simulator/sweep/grid.go:Expand":                   true,
 	"simulator/sweep/metrics.go:caseScore":             true,
 	"simulator/sweep/report.go:WriteReport":            true,
