@@ -182,7 +182,6 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 	if err := d.addLatencyPlots(s); err != nil {
 		return err
 	}
-	var err error
 	ls, err := latencyScatter(s, analyze.CondAirTrapping, "air-trapping: onset latency vs true intrinsic PEEP", "median true intrinsic PEEP of the episode (cmH2O)")
 	if err != nil {
 		return err
