@@ -26,7 +26,6 @@ var sizeExceptions = map[string]bool{
 	"analyze/detect_airtrap.go:Breath":                 true,
 	"config/load.go:load":                              true,
 	"config/validate.go:validateNATS":                  true,
-	"simulator/sweep/report_plot.go:waveformPlots":     true,
 }
 
 // TestCodeSize fails on a non-test Go file over maxFileLines lines or a
