@@ -105,12 +105,7 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	pos := (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag(FlagArtifact)
 	d.ring[idx].positive = pos
 
-	count := 0
-	for i := range d.n {
-		if d.ring[d.slot(i)].positive {
-			count++
-		}
-	}
+	count := d.positiveCount()
 	// N of M to become present, ClearN of M to stay present (hysteresis).
 	present := count >= cfg.N || (d.present && count >= cfg.ClearN)
 	d.present = present
@@ -129,14 +124,7 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	if math.IsNaN(f.TimeS) {
 		f.TimeS = b.StartS
 	}
-	detPut(f.Evidence, "balance_ml", balance, 1)
-	if building {
-		f.Evidence["building_up"] = 1
-	}
-	detPut(f.Evidence, "eef_lpm", cur.eefLPM, 2)
-	detPut(f.Evidence, "te_over_tau", cur.teOvTau, 3)
-	detPut(f.Evidence, "tau_s", cur.tauS, 3)
-	detPut(f.Evidence, "trapped_slope_ml_per_breath", slope, 1)
+	putBuildUpEvidence(f.Evidence, &cur, balance, slope, building)
 
 	// Magnitude: the median over the positive breaths is robust to one
 	// outlying estimate; when absent, report the current breath.
@@ -151,11 +139,47 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message = fmt.Sprintf("no air trapping: %d of the last %d breaths show it (need %d)", count, d.n, cfg.N)
 		return append(dst, f)
 	}
+	d.grade(&f, count, peepi, trapped)
+
+	d.predict(&f, &cur)
+	return append(dst, f)
+}
+
+// positiveCount returns how many breaths of the window are positive.
+func (d *AirTrapping) positiveCount() int {
+	count := 0
+	for i := range d.n {
+		if d.ring[d.slot(i)].positive {
+			count++
+		}
+	}
+	return count
+}
+
+// putBuildUpEvidence adds to evidence the build-up and time-constant
+// figures of the current breath cur: volume balance over the window,
+// whether trapping is building up, end-expiratory flow, Te/τ, τ and the
+// slope of the trapped-volume estimate.
+func putBuildUpEvidence(evidence map[string]float64, cur *atBreath, balance, slope float64, building bool) {
+	detPut(evidence, "balance_ml", balance, 1)
+	if building {
+		evidence["building_up"] = 1
+	}
+	detPut(evidence, "eef_lpm", cur.eefLPM, 2)
+	detPut(evidence, "te_over_tau", cur.teOvTau, 3)
+	detPut(evidence, "tau_s", cur.tauS, 3)
+	detPut(evidence, "trapped_slope_ml_per_breath", slope, 1)
+}
+
+// grade sets the severity and message of a present finding from count
+// positive breaths of the window and the median intrinsic PEEP and
+// trapped volume of the positive breaths.
+func (d *AirTrapping) grade(f *Finding, count int, peepi, trapped float64) {
 	f.Severity = SeverityLow
-	if peepi >= cfg.MediumPEEPiCmH2O || trapped >= cfg.MediumTrappedML {
+	if peepi >= d.cfg.MediumPEEPiCmH2O || trapped >= d.cfg.MediumTrappedML {
 		f.Severity = SeverityMedium
 	}
-	if peepi >= cfg.HighPEEPiCmH2O || trapped >= cfg.HighTrappedML {
+	if peepi >= d.cfg.HighPEEPiCmH2O || trapped >= d.cfg.HighTrappedML {
 		f.Severity = SeverityHigh
 	}
 	f.Message = fmt.Sprintf("expiratory flow has not returned to zero for %d of the last %d breaths", count, d.n)
@@ -165,9 +189,6 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	if !math.IsNaN(trapped) {
 		f.Message += fmt.Sprintf(", trapped volume about %.0f mL", trapped)
 	}
-
-	d.predict(&f, &cur)
-	return append(dst, f)
 }
 
 // predict adds the what-if of a present finding: the expiratory time at

@@ -105,39 +105,8 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, laye
 		p.addf("", "merge %s: %v", format, err)
 		return nil, layers{}, p.err(file)
 	}
-	v.AllowEmptyEnv(true)
-	for _, key := range leaves {
-		// An empty variable clears a string (TRAPLINE_HTTP_LISTEN= turns
-		// HTTP off); for a number, a duration or a switch it is a mistake,
-		// not a quiet zero.
-		if val, ok := os.LookupEnv(EnvName(key)); ok && strings.TrimSpace(val) == "" {
-			if t := keyType(reflect.TypeFor[Config](), key); t == nil || t.Kind() != reflect.String {
-				p.addf(key, "is set but empty")
-				continue
-			}
-		}
-		if err := v.BindEnv(key, EnvName(key)); err != nil {
-			p.addf(key, "bind %s: %v", EnvName(key), err)
-		}
-	}
-	fromFlag := map[string]string{}
-	if flags != nil {
-		byFlag := map[string]string{}
-		for _, key := range leaves {
-			byFlag[FlagName(key)] = key
-		}
-		flags.Visit(func(f *pflag.Flag) {
-			key, ok := byFlag[f.Name]
-			if !ok {
-				return
-			}
-			if err := v.BindPFlag(key, f); err != nil {
-				p.addf(key, "bind --%s: %v", f.Name, err)
-				return
-			}
-			fromFlag[key] = f.Name
-		})
-	}
+	bindEnv(v, leaves, &p)
+	fromFlag := bindFlags(v, leaves, flags, &p)
 
 	var c Config
 	err := v.Unmarshal(&c, viper.DecodeHook(mapstructure.ComposeDecodeHookFunc(
@@ -165,6 +134,50 @@ func load(data []byte, format, file string, flags *pflag.FlagSet) (*Config, laye
 		return nil, layers{}, err
 	}
 	return &c, layers{file: raw, fromFlag: fromFlag}, nil
+}
+
+// bindEnv binds each leaf key to its environment variable, reporting to
+// p a variable set but empty where an empty value is not meaningful.
+func bindEnv(v *viper.Viper, leaves []string, p *problems) {
+	v.AllowEmptyEnv(true)
+	for _, key := range leaves {
+		// An empty variable clears a string (TRAPLINE_HTTP_LISTEN= turns
+		// HTTP off); for a number, a duration or a switch it is a mistake,
+		// not a quiet zero.
+		if val, ok := os.LookupEnv(EnvName(key)); ok && strings.TrimSpace(val) == "" {
+			if t := keyType(reflect.TypeFor[Config](), key); t == nil || t.Kind() != reflect.String {
+				p.addf(key, "is set but empty")
+				continue
+			}
+		}
+		if err := v.BindEnv(key, EnvName(key)); err != nil {
+			p.addf(key, "bind %s: %v", EnvName(key), err)
+		}
+	}
+}
+
+// bindFlags binds each leaf key to the command-line flag of its name when
+// that flag was set, and returns the flag names of the keys so bound.
+func bindFlags(v *viper.Viper, leaves []string, flags *pflag.FlagSet, p *problems) map[string]string {
+	fromFlag := map[string]string{}
+	if flags != nil {
+		byFlag := map[string]string{}
+		for _, key := range leaves {
+			byFlag[FlagName(key)] = key
+		}
+		flags.Visit(func(f *pflag.Flag) {
+			key, ok := byFlag[f.Name]
+			if !ok {
+				return
+			}
+			if err := v.BindPFlag(key, f); err != nil {
+				p.addf(key, "bind --%s: %v", f.Name, err)
+				return
+			}
+			fromFlag[key] = f.Name
+		})
+	}
+	return fromFlag
 }
 
 // keyType returns the type of the value at a dotted key below t, or nil.

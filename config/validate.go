@@ -76,7 +76,32 @@ func (c *Config) validateNATS(p *problems) {
 	sizeAtLeast(p, "nats.embedded.max_store", e.MaxStore, MiB)
 	sizeAtLeast(p, "nats.embedded.max_memory", e.MaxMemory, MiB)
 
-	// Authentication: one method, complete.
+	auth := n.validateAuth(p, embedded)
+
+	// TLS: certificate and key go together; the files must exist.
+	t := &n.TLS
+	if (t.CertFile == "") != (t.KeyFile == "") {
+		p.addf("nats.tls", "cert_file and key_file must be set together")
+	}
+	fileExists(p, "nats.tls.ca_file", t.CAFile)
+	fileExists(p, "nats.tls.cert_file", t.CertFile)
+	fileExists(p, "nats.tls.key_file", t.KeyFile)
+	tlsOn := t.CertFile != "" && t.KeyFile != ""
+	if embedded && t.CAFile != "" && !tlsOn {
+		p.addf("nats.tls.ca_file", "the embedded server needs cert_file and key_file to verify client certificates")
+	}
+	if embedded && e.Port != -1 && e.Host != "" && !isLoopback(e.Host) && !(tlsOn && auth) {
+		p.addf("nats.embedded.host", "%q is not a loopback address: listening beyond this machine needs nats.tls.cert_file and key_file and nats.user/password or nats.token", e.Host)
+	}
+
+	c.validateJetStream(p, embedded)
+	durationIn(p, "nats.publish_timeout", n.PublishTimeout, 100*time.Millisecond, time.Minute)
+}
+
+// validateAuth checks that at most one authentication method is set, and
+// completely; it reports whether one is. embedded tells whether trapline
+// runs its own server, which takes neither a creds nor an nkey seed file.
+func (n *NATS) validateAuth(p *problems, embedded bool) bool {
 	methods := []string{}
 	if n.User != "" || n.Password != "" {
 		methods = append(methods, "user/password")
@@ -103,25 +128,14 @@ func (c *Config) validateNATS(p *problems) {
 	if len(methods) > 1 {
 		p.addf("nats", "%s are set: choose one authentication method", strings.Join(methods, " and "))
 	}
-	auth := len(methods) > 0
+	return len(methods) > 0
+}
 
-	// TLS: certificate and key go together; the files must exist.
-	t := &n.TLS
-	if (t.CertFile == "") != (t.KeyFile == "") {
-		p.addf("nats.tls", "cert_file and key_file must be set together")
-	}
-	fileExists(p, "nats.tls.ca_file", t.CAFile)
-	fileExists(p, "nats.tls.cert_file", t.CertFile)
-	fileExists(p, "nats.tls.key_file", t.KeyFile)
-	tlsOn := t.CertFile != "" && t.KeyFile != ""
-	if embedded && t.CAFile != "" && !tlsOn {
-		p.addf("nats.tls.ca_file", "the embedded server needs cert_file and key_file to verify client certificates")
-	}
-	if embedded && e.Port != -1 && e.Host != "" && !isLoopback(e.Host) && !(tlsOn && auth) {
-		p.addf("nats.embedded.host", "%q is not a loopback address: listening beyond this machine needs nats.tls.cert_file and key_file and nats.user/password or nats.token", e.Host)
-	}
-
-	// JetStream streams.
+// validateJetStream checks the names, replicas, ages and sizes of the
+// alerts and breaths streams; embedded tells whether trapline runs its own
+// single-node server, whose store must hold both streams.
+func (c *Config) validateJetStream(p *problems, embedded bool) {
+	n, e := &c.NATS, &c.NATS.Embedded
 	as, bs := &n.AlertsStream, &n.BreathsStream
 	if as.Name != "" {
 		streamName(p, "nats.alerts_stream.name", as.Name)
@@ -158,7 +172,6 @@ func (c *Config) validateNATS(p *problems) {
 			p.addf("nats.embedded.max_store", "%v is less than alerts_stream.max_bytes %v plus breaths_stream.max_bytes %v (JetStream reserves both)", e.MaxStore, as.MaxBytes, bs.MaxBytes)
 		}
 	}
-	durationIn(p, "nats.publish_timeout", n.PublishTimeout, 100*time.Millisecond, time.Minute)
 }
 
 // validateStreams checks each stream and that ids are unique.

@@ -222,7 +222,47 @@ func (p *params) validate() error {
 	if len(errs) > 0 {
 		return errors.Join(errs...)
 	}
-	pt := p.Patient
+	validatePatient(p.Patient, bad)
+
+	v := p.Ventilator
+	if v.RateBPM <= 0 || v.RateBPM > 100 {
+		bad("ventilator.rate_bpm: %g out of range (0, 100]", v.RateBPM)
+	}
+	if v.PEEPCmH2O < 0 || v.PEEPCmH2O > 40 {
+		bad("ventilator.peep_cmh2o: %g out of range [0, 40]", v.PEEPCmH2O)
+	}
+	if v.PauseS < 0 || v.RiseTimeS < 0 || v.TriggerLPM < 0 {
+		bad("ventilator.pause_s, rise_time_s, trigger_lpm: must not be negative")
+	}
+	validateMode(v, bad)
+	if len(errs) == 0 {
+		if ti := inspTimeS(v); ti >= 60/v.RateBPM-minExpTimeS {
+			bad("ventilator: inspiratory time %.3g s leaves less than %.2g s for expiration at %g /min", ti, minExpTimeS, v.RateBPM)
+		}
+	}
+
+	s := p.Sensor
+	for _, x := range []struct {
+		name string
+		v    float64
+	}{
+		{"pressure_noise_cmh2o", s.PressureNoiseCmH2O}, {"flow_noise_lpm", s.FlowNoiseLPM},
+		{"pressure_step_cmh2o", s.PressureStepCmH2O}, {"flow_step_lpm", s.FlowStepLPM},
+		{"jitter_s", s.JitterS}, {"leak_lpm_per_cmh2o", s.LeakLPMPerCmH2O},
+	} {
+		if x.v < 0 {
+			bad("sensor.%s: %g must not be negative", x.name, x.v)
+		}
+	}
+	if s.DropProbability < 0 || s.DropProbability >= 1 {
+		bad("sensor.drop_probability: %g out of range [0, 1)", s.DropProbability)
+	}
+	return errors.Join(errs...)
+}
+
+// validatePatient reports to bad every out-of-range patient setting,
+// each prefixed by its key.
+func validatePatient(pt Patient, bad func(format string, args ...any)) {
 	switch pt.Model {
 	case ModelSingle, ModelTwoCompartment:
 	default:
@@ -266,17 +306,11 @@ func (p *params) validate() error {
 	if pt.EffortTimeS < 0 || pt.EffortOffsetS < 0 {
 		bad("patient.effort_time_s, effort_offset_s: must not be negative")
 	}
+}
 
-	v := p.Ventilator
-	if v.RateBPM <= 0 || v.RateBPM > 100 {
-		bad("ventilator.rate_bpm: %g out of range (0, 100]", v.RateBPM)
-	}
-	if v.PEEPCmH2O < 0 || v.PEEPCmH2O > 40 {
-		bad("ventilator.peep_cmh2o: %g out of range [0, 40]", v.PEEPCmH2O)
-	}
-	if v.PauseS < 0 || v.RiseTimeS < 0 || v.TriggerLPM < 0 {
-		bad("ventilator.pause_s, rise_time_s, trigger_lpm: must not be negative")
-	}
+// validateMode reports to bad an unknown ventilation mode and every
+// out-of-range setting of the mode in force, each prefixed by its key.
+func validateMode(v Ventilator, bad func(format string, args ...any)) {
 	switch v.Mode {
 	case ModeVC:
 		if v.TidalVolumeML <= 0 || v.TidalVolumeML > 3000 {
@@ -309,29 +343,6 @@ func (p *params) validate() error {
 	default:
 		bad("ventilator.mode: unknown mode %q (want %s or %s)", v.Mode, ModeVC, ModePC)
 	}
-	if len(errs) == 0 {
-		if ti := inspTimeS(v); ti >= 60/v.RateBPM-minExpTimeS {
-			bad("ventilator: inspiratory time %.3g s leaves less than %.2g s for expiration at %g /min", ti, minExpTimeS, v.RateBPM)
-		}
-	}
-
-	s := p.Sensor
-	for _, x := range []struct {
-		name string
-		v    float64
-	}{
-		{"pressure_noise_cmh2o", s.PressureNoiseCmH2O}, {"flow_noise_lpm", s.FlowNoiseLPM},
-		{"pressure_step_cmh2o", s.PressureStepCmH2O}, {"flow_step_lpm", s.FlowStepLPM},
-		{"jitter_s", s.JitterS}, {"leak_lpm_per_cmh2o", s.LeakLPMPerCmH2O},
-	} {
-		if x.v < 0 {
-			bad("sensor.%s: %g must not be negative", x.name, x.v)
-		}
-	}
-	if s.DropProbability < 0 || s.DropProbability >= 1 {
-		bad("sensor.drop_probability: %g out of range [0, 1)", s.DropProbability)
-	}
-	return errors.Join(errs...)
 }
 
 // minExpTimeS is the shortest expiration the settings may leave.

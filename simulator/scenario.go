@@ -277,32 +277,7 @@ func compile(sc *Scenario) (*timeline, error) {
 		}
 		cs := compiledStep{startS: at, endS: at + ramp}
 		from := tl.at(at) // the values the step starts from
-		for sec, m := range []map[string]float64{st.Patient, st.Ventilator, st.Sensor} {
-			keys := []map[string]int{patientKeys, ventilatorKeys, sensorKeys}[sec]
-			name := []string{"patient", "ventilator", "sensor"}[sec]
-			names := make([]string, 0, len(m))
-			for k := range m {
-				names = append(names, k)
-			}
-			sort.Strings(names)
-			for _, k := range names {
-				f, ok := keys[k]
-				if !ok {
-					bad("%s.%s.%s: unknown setting (want one of %s)", key, name, k, sortedKeys(keys))
-					continue
-				}
-				if math.IsNaN(m[k]) || math.IsInf(m[k], 0) {
-					bad("%s.%s.%s: not a finite number", key, name, k)
-					continue
-				}
-				start := from.field(sec, f)
-				if math.IsNaN(start) { // an expiratory coefficient that followed the inspiratory one
-					start = map[string]float64{"exp_resistance_cmh2o_s_per_l": from.Patient.ResistanceCmH2OSPerL,
-						"exp_k2_cmh2o_s2_per_l2": from.Patient.K2CmH2OS2PerL2}[k]
-				}
-				cs.changes = append(cs.changes, change{section: sec, field: f, from: start, to: m[k]})
-			}
-		}
+		cs.changes = stepChanges(key, st, from, bad)
 		if len(cs.changes) > 0 {
 			tl.steps = append(tl.steps, cs)
 			after := tl.at(cs.endS)
@@ -314,36 +289,7 @@ func compile(sc *Scenario) (*timeline, error) {
 			}
 		}
 		end := at + math.Max(ramp, dur)
-		switch st.Event {
-		case "":
-		case EventDisconnect:
-			if dur > 0 {
-				tl.disconnect = append(tl.disconnect, window{startS: at, endS: at + dur})
-			} else if openDisconnect < 0 {
-				openDisconnect = at
-			}
-		case EventReconnect:
-			if openDisconnect < 0 {
-				bad("%s: reconnect without an open disconnect", key)
-			} else {
-				tl.disconnect = append(tl.disconnect, window{startS: openDisconnect, endS: at})
-				openDisconnect = -1
-			}
-		case EventArtifact:
-			if dur <= 0 {
-				bad("%s: an artifact needs a duration", key)
-			}
-			w := window{startS: at, endS: at + dur, pressureCmH2O: st.ArtifactPressureCmH2O, flowLPM: st.ArtifactFlowLPM}
-			if w.pressureCmH2O == 0 && w.flowLPM == 0 {
-				w.pressureCmH2O, w.flowLPM = 8, 40
-			}
-			if w.pressureCmH2O < 0 || w.flowLPM < 0 {
-				bad("%s: artifact pressure_cmh2o and flow_lpm must not be negative", key)
-			}
-			tl.artifacts = append(tl.artifacts, w)
-		default:
-			bad("%s.event: unknown event %q (want %s, %s or %s)", key, st.Event, EventDisconnect, EventReconnect, EventArtifact)
-		}
+		openDisconnect = tl.addEvent(key, st, at, dur, openDisconnect, bad)
 		if len(st.Labels) > 0 {
 			tl.labeled = append(tl.labeled, window{startS: at, endS: end, labels: st.Labels})
 		}
@@ -367,6 +313,79 @@ func compile(sc *Scenario) (*timeline, error) {
 		return nil, errors.Join(errs...)
 	}
 	return tl, nil
+}
+
+// stepChanges lists the setting changes of timeline step st (named key
+// in messages), in section order and by setting name, each starting from
+// the value in force in from. Unknown or non-finite settings go to bad.
+func stepChanges(key string, st Step, from params, bad func(format string, args ...any)) []change {
+	var changes []change
+	for sec, m := range []map[string]float64{st.Patient, st.Ventilator, st.Sensor} {
+		keys := []map[string]int{patientKeys, ventilatorKeys, sensorKeys}[sec]
+		name := []string{"patient", "ventilator", "sensor"}[sec]
+		names := make([]string, 0, len(m))
+		for k := range m {
+			names = append(names, k)
+		}
+		sort.Strings(names)
+		for _, k := range names {
+			f, ok := keys[k]
+			if !ok {
+				bad("%s.%s.%s: unknown setting (want one of %s)", key, name, k, sortedKeys(keys))
+				continue
+			}
+			if math.IsNaN(m[k]) || math.IsInf(m[k], 0) {
+				bad("%s.%s.%s: not a finite number", key, name, k)
+				continue
+			}
+			start := from.field(sec, f)
+			if math.IsNaN(start) { // an expiratory coefficient that followed the inspiratory one
+				start = map[string]float64{"exp_resistance_cmh2o_s_per_l": from.Patient.ResistanceCmH2OSPerL,
+					"exp_k2_cmh2o_s2_per_l2": from.Patient.K2CmH2OS2PerL2}[k]
+			}
+			changes = append(changes, change{section: sec, field: f, from: start, to: m[k]})
+		}
+	}
+	return changes
+}
+
+// addEvent records the event of timeline step st (named key in
+// messages), starting at at and lasting dur seconds: disconnect windows,
+// closed by a later reconnect when dur is 0, and artifact windows.
+// openDisconnect is the start of a disconnect still open, or negative;
+// addEvent returns its new value. Bad events go to bad.
+func (tl *timeline) addEvent(key string, st Step, at, dur, openDisconnect float64, bad func(format string, args ...any)) float64 {
+	switch st.Event {
+	case "":
+	case EventDisconnect:
+		if dur > 0 {
+			tl.disconnect = append(tl.disconnect, window{startS: at, endS: at + dur})
+		} else if openDisconnect < 0 {
+			openDisconnect = at
+		}
+	case EventReconnect:
+		if openDisconnect < 0 {
+			bad("%s: reconnect without an open disconnect", key)
+		} else {
+			tl.disconnect = append(tl.disconnect, window{startS: openDisconnect, endS: at})
+			openDisconnect = -1
+		}
+	case EventArtifact:
+		if dur <= 0 {
+			bad("%s: an artifact needs a duration", key)
+		}
+		w := window{startS: at, endS: at + dur, pressureCmH2O: st.ArtifactPressureCmH2O, flowLPM: st.ArtifactFlowLPM}
+		if w.pressureCmH2O == 0 && w.flowLPM == 0 {
+			w.pressureCmH2O, w.flowLPM = 8, 40
+		}
+		if w.pressureCmH2O < 0 || w.flowLPM < 0 {
+			bad("%s: artifact pressure_cmh2o and flow_lpm must not be negative", key)
+		}
+		tl.artifacts = append(tl.artifacts, w)
+	default:
+		bad("%s.event: unknown event %q (want %s, %s or %s)", key, st.Event, EventDisconnect, EventReconnect, EventArtifact)
+	}
+	return openDisconnect
 }
 
 // at returns the settings in force at time t.

@@ -164,30 +164,39 @@ func (a *accum) finish(tl *timeline, l *lung, stream string, endS, vEnd, eefLPS 
 	if tr.DrivingCmH2O > HighDrivingCmH2O {
 		tr.Labels = append(tr.Labels, LabelHighDriving)
 	}
+	tr.Labels = a.timelineLabels(tr.Labels, tl, endS)
+	return tr
+}
+
+// timelineLabels appends to labels the labels of the timeline windows
+// that touch the breath ending at endS: a rising-peak window holding the
+// breath's start, and disconnect, artifact and labelled windows that
+// overlap the breath at all.
+func (a *accum) timelineLabels(labels []string, tl *timeline, endS float64) []string {
 	overlaps := func(w window) bool { return w.startS < endS && w.endS > a.startS }
 	for _, w := range tl.risingPeak {
 		if a.startS >= w.startS && a.startS <= w.endS {
-			tr.Labels = addLabel(tr.Labels, LabelRisingPeak)
+			labels = addLabel(labels, LabelRisingPeak)
 		}
 	}
 	for _, w := range tl.disconnect {
 		if overlaps(w) {
-			tr.Labels = addLabel(tr.Labels, LabelSignalLost)
+			labels = addLabel(labels, LabelSignalLost)
 		}
 	}
 	for _, w := range tl.artifacts {
 		if overlaps(w) {
-			tr.Labels = addLabel(tr.Labels, LabelArtifact)
+			labels = addLabel(labels, LabelArtifact)
 		}
 	}
 	for _, w := range tl.labeled {
 		if overlaps(w) {
 			for _, lb := range w.labels {
-				tr.Labels = addLabel(tr.Labels, lb)
+				labels = addLabel(labels, lb)
 			}
 		}
 	}
-	return tr
+	return labels
 }
 
 // HasLabel reports whether the breath carries label lb.

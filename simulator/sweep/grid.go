@@ -320,6 +320,59 @@ func (p *Plan) TotalS() float64 {
 func (g Grid) Expand() (*Plan, error) {
 	var errs []error
 	bad := func(format string, args ...any) { errs = append(errs, fmt.Errorf(format, args...)) }
+	g.checkFields(bad)
+	if n := g.Seeds * len(g.SampleRatesHz) * len(g.Models) * len(g.ResistanceCmH2OSPerL) * len(g.ComplianceMLPerCmH2O) * len(g.Settings) * len(g.Noise); len(errs) == 0 && n > MaxCases {
+		bad("the grid has %d patients, more than %d: split it", n, MaxCases)
+	}
+	if len(errs) > 0 {
+		return nil, errors.Join(errs...)
+	}
+
+	p := &Plan{Grid: g}
+	add := func(c Case) {
+		c.Index = len(p.Cases)
+		c.scenario.Stream = fmt.Sprintf("sweep-%d", c.Index)
+		c.DurationS = float64(c.scenario.DurationS)
+		if err := c.scenario.Validate(); err != nil {
+			bad("%s: %w", c.Name, err)
+			return
+		}
+		p.Cases = append(p.Cases, c)
+	}
+	for seed := 1; seed <= g.Seeds; seed++ {
+		for _, hz := range g.SampleRatesHz {
+			for _, m := range g.Models {
+				for _, r := range g.ResistanceCmH2OSPerL {
+					for _, c := range g.ComplianceMLPerCmH2O {
+						for _, st := range g.Settings {
+							for _, n := range g.Noise {
+								sc := g.scenario(m, r, c, st, n, uint64(seed))
+								sc.SampleRateHz = hz
+								add(Case{
+									Name:  fmt.Sprintf("%s/R%g/C%g/%s/%s/%gHz/s%d", m, r, c, st.Name, n.Name, hz, seed),
+									Model: m, RCmH2OSPerL: r, CMLPerCmH2O: c, Setting: st.Name, Noise: n.Name,
+									SampleRateHz: hz, Seed: uint64(seed), scenario: sc,
+								})
+							}
+						}
+					}
+				}
+			}
+		}
+	}
+	g.addScenarios(add, bad)
+	if len(errs) > 0 {
+		return nil, errors.Join(errs...)
+	}
+	if len(p.Cases) == 0 {
+		return nil, errors.New("the grid has no patients: give models or scenarios")
+	}
+	return p, nil
+}
+
+// checkFields reports to bad every grid field out of range, each
+// prefixed by its key.
+func (g Grid) checkFields(bad func(format string, args ...any)) {
 	if len(g.SampleRatesHz) == 0 {
 		bad("sample_rates_hz: needs at least one rate")
 	}
@@ -375,45 +428,11 @@ func (g Grid) Expand() (*Plan, error) {
 	if !(g.ScenarioDurationS >= 0) {
 		bad("scenario_duration: must not be negative")
 	}
-	if n := g.Seeds * len(g.SampleRatesHz) * len(g.Models) * len(g.ResistanceCmH2OSPerL) * len(g.ComplianceMLPerCmH2O) * len(g.Settings) * len(g.Noise); len(errs) == 0 && n > MaxCases {
-		bad("the grid has %d patients, more than %d: split it", n, MaxCases)
-	}
-	if len(errs) > 0 {
-		return nil, errors.Join(errs...)
-	}
+}
 
-	p := &Plan{Grid: g}
-	add := func(c Case) {
-		c.Index = len(p.Cases)
-		c.scenario.Stream = fmt.Sprintf("sweep-%d", c.Index)
-		c.DurationS = float64(c.scenario.DurationS)
-		if err := c.scenario.Validate(); err != nil {
-			bad("%s: %w", c.Name, err)
-			return
-		}
-		p.Cases = append(p.Cases, c)
-	}
-	for seed := 1; seed <= g.Seeds; seed++ {
-		for _, hz := range g.SampleRatesHz {
-			for _, m := range g.Models {
-				for _, r := range g.ResistanceCmH2OSPerL {
-					for _, c := range g.ComplianceMLPerCmH2O {
-						for _, st := range g.Settings {
-							for _, n := range g.Noise {
-								sc := g.scenario(m, r, c, st, n, uint64(seed))
-								sc.SampleRateHz = hz
-								add(Case{
-									Name:  fmt.Sprintf("%s/R%g/C%g/%s/%s/%gHz/s%d", m, r, c, st.Name, n.Name, hz, seed),
-									Model: m, RCmH2OSPerL: r, CMLPerCmH2O: c, Setting: st.Name, Noise: n.Name,
-									SampleRateHz: hz, Seed: uint64(seed), scenario: sc,
-								})
-							}
-						}
-					}
-				}
-			}
-		}
-	}
+// addScenarios passes to add the cases of the scenarios the grid names
+// ("all": every shipped one), one per seed and rate; load errors go to bad.
+func (g Grid) addScenarios(add func(Case), bad func(format string, args ...any)) {
 	var names []string
 	for _, s := range g.Scenarios {
 		if s == "all" {
@@ -448,13 +467,6 @@ func (g Grid) Expand() (*Plan, error) {
 			}
 		}
 	}
-	if len(errs) > 0 {
-		return nil, errors.Join(errs...)
-	}
-	if len(p.Cases) == 0 {
-		return nil, errors.New("the grid has no patients: give models or scenarios")
-	}
-	return p, nil
 }
 
 // scenario builds the simulated patient of one grid point.

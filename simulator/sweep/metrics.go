@@ -158,6 +158,30 @@ func curveFor(cond string) *curveSpec {
 // one detector set. It uses the truth labels and the alert events only.
 func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc *ConditionScore) {
 	cond := Scored()[ci]
+	at := trackAlarms(truth, events, cond, ep)
+	cs := curveFor(cond)
+	scoreBreaths(truth, at.act, ci, cs, sc)
+	scoreEpisodes(truth, &at, ci, cs, ep, sc)
+	scoreAlerts(truth, &at, cond, ci, ep, sc)
+}
+
+// alarmRaise is a fresh raise of an alarm, attributed to a breath.
+type alarmRaise struct {
+	breath int
+	tS     float64
+}
+
+// alarmTrack is the alarm of one condition seen breath by breath.
+type alarmTrack struct {
+	act     []bool       // the alarm was on at the end of breath i (plus the match tolerance)
+	raises  []alarmRaise // fresh raises, in time order
+	clearTS []float64    // time of the event that ended the alarm at breath i
+}
+
+// trackAlarms follows the alert events of condition cond over the truth
+// breaths: an event belongs to the first breath ending no earlier than
+// the event less ep.MatchTolS, events after the last breath to the last.
+func trackAlarms(truth []TruthBreath, events []AlertEvent, cond string, ep Episodes) alarmTrack {
 	var ev []AlertEvent
 	for _, e := range events {
 		if e.Condition == cond {
@@ -167,12 +191,8 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 	sort.SliceStable(ev, func(a, b int) bool { return ev[a].TS < ev[b].TS })
 	n := len(truth)
 	act := make([]bool, n)
-	type raise struct {
-		breath int
-		tS     float64
-	}
-	var raises []raise
-	clearTS := make([]float64, n) // time of the event that ended the alarm at breath i
+	var raises []alarmRaise
+	clearTS := make([]float64, n)
 	active := false
 	j := 0
 	for i := range truth {
@@ -186,7 +206,7 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 				continue
 			}
 			if ev[j].Fresh {
-				raises = append(raises, raise{i, ev[j].TS})
+				raises = append(raises, alarmRaise{i, ev[j].TS})
 			}
 			active = true
 		}
@@ -194,12 +214,15 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 	}
 	for ; j < len(ev); j++ { // after the last breath: attributed to it
 		if ev[j].Fresh && n > 0 {
-			raises = append(raises, raise{n - 1, ev[j].TS})
+			raises = append(raises, alarmRaise{n - 1, ev[j].TS})
 		}
 	}
+	return alarmTrack{act: act, raises: raises, clearTS: clearTS}
+}
 
-	// Per breath.
-	cs := curveFor(cond)
+// scoreBreaths counts the breaths of condition ci by truth and alarm state
+// (act), and fills the detection curve of quantity cs when there is one.
+func scoreBreaths(truth []TruthBreath, act []bool, ci int, cs *curveSpec, sc *ConditionScore) {
 	if cs != nil && sc.Curve == nil {
 		sc.Quantity = cs.quantity
 		for k := 0; k+1 < len(cs.edges); k++ {
@@ -227,8 +250,14 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 			}
 		}
 	}
+}
 
-	// Episodes and latencies.
+// scoreEpisodes finds the runs of breaths with and without condition ci
+// and scores those of at least ep.MinBreaths: detection, onset and
+// clearing latency of positive runs, and whether negative runs stay clean.
+func scoreEpisodes(truth []TruthBreath, at *alarmTrack, ci int, cs *curveSpec, ep Episodes, sc *ConditionScore) {
+	act, raises, clearTS := at.act, at.raises, at.clearTS
+	n := len(truth)
 	for a := 0; a < n; {
 		b := a
 		for b+1 < n && truth[b+1].Has(ci) == truth[a].Has(ci) {
@@ -298,7 +327,12 @@ func caseScore(truth []TruthBreath, events []AlertEvent, ci int, ep Episodes, sc
 		}
 		a = b + 1
 	}
+}
 
+// scoreAlerts sorts the fresh raises into true, grey-zone and false alerts.
+func scoreAlerts(truth []TruthBreath, at *alarmTrack, cond string, ci int, ep Episodes, sc *ConditionScore) {
+	act, raises := at.act, at.raises
+	n := len(truth)
 	// False alerts: fresh raises whose alarm span (extended back by the
 	// grace breaths) has no breath with the condition.
 	for _, r := range raises {

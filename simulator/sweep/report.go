@@ -175,90 +175,12 @@ func headlineDiff(a, b *ConditionScore) []string {
 // WriteReport writes the self-contained HTML report: tables and inline SVG
 // plots, no external resources. ex may be nil.
 func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
-	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators, Classes: s.Sets[0].Classes}
-	for _, set := range s.Sets {
-		d.Sets = append(d.Sets, set.Name)
-	}
-	for ci, cond := range Scored() {
-		row := headRow{Condition: cond}
-		for si := range s.Sets {
-			row.Cells = append(row.Cells, headline(&s.Sets[si].Conditions[ci]))
-		}
-		if d.Compare {
-			row.Cells = append(row.Cells, headlineDiff(&s.Sets[0].Conditions[ci], &s.Sets[1].Conditions[ci]))
-		}
-		d.Headline = append(d.Headline, row)
-	}
-	group := func(name string, hours Num, cs []ConditionScore) modelRow {
-		row := modelRow{Model: name, Hours: num(hours, 1)}
-		for ci := range cs {
-			row.Cells = append(row.Cells, pct(cs[ci].Breath.Sensitivity)+" / "+pct(cs[ci].Breath.Specificity))
-		}
-		return row
-	}
-	for _, m := range s.Sets[0].ByModel {
-		d.ByModel = append(d.ByModel, group(m.Model, m.PatientHours, m.Conditions))
-	}
-	for _, r := range s.Sets[0].BySampleRate {
-		d.ByModel = append(d.ByModel, group(fmt.Sprintf("all models at %g Hz", r.SampleRateHz), r.PatientHours, r.Conditions))
-	}
-	for _, set := range s.Sets {
-		for cond, n := range set.OtherAlerts {
-			times := fmt.Sprintf("%d times", n)
-			if n == 1 {
-				times = "once"
-			}
-			d.Other = append(d.Other, fmt.Sprintf("%s: %s raised %s (%.3f per hour)", set.Name, cond, times, float64(n)/float64(s.PatientHours)))
-		}
-	}
-
-	var err error
-	cp, err := curvePlot(s, analyze.CondAirTrapping, "air-trapping: alarm vs true intrinsic PEEP", "true intrinsic PEEP (cmH2O)")
-	if err != nil {
+	d := reportTables(s)
+	if err := d.addCurvePlots(s); err != nil {
 		return err
 	}
-	if d.Curve, err = svgHTML(vg.Points(760), vg.Points(380), 1, cp); err != nil {
+	if err := d.addLatencyPlots(s); err != nil {
 		return err
-	}
-	var lim []*plot.Plot
-	for _, x := range []struct{ cond, title, label string }{
-		{analyze.CondHighPlateauPressure, "high plateau", "true plateau (cmH2O)"},
-		{analyze.CondHighDrivingPressure, "high driving pressure", "true driving pressure (cmH2O)"},
-		{analyze.CondHighPeakPressure, "high peak pressure", "true peak pressure (cmH2O)"},
-	} {
-		p, err := curvePlot(s, x.cond, x.title, x.label)
-		if err != nil {
-			return err
-		}
-		lim = append(lim, p)
-	}
-	if d.Limits, err = svgHTML(vg.Points(900), vg.Points(300), 1, lim...); err != nil {
-		return err
-	}
-	for ci, cond := range Scored() {
-		var on, cl [][]float64
-		total := 0
-		for si := range s.Sets {
-			c := &s.Sets[si].Conditions[ci]
-			on, cl = append(on, c.onsetS), append(cl, c.clearS)
-			total += len(c.onsetS) + len(c.clearS)
-		}
-		if total == 0 {
-			continue
-		}
-		po, err := histPlot(cond+": onset latency", on, d.Sets)
-		if err != nil {
-			return err
-		}
-		pc, err := histPlot(cond+": clearing latency", cl, d.Sets)
-		if err != nil {
-			return err
-		}
-		h, err := svgHTML(vg.Points(760), vg.Points(230), 1, po, pc)
-		if err != nil {
-			return err
-		}
-		d.Latency = append(d.Latency, h)
 	}
 	ls, err := latencyScatter(s, analyze.CondAirTrapping, "air-trapping: onset latency vs true intrinsic PEEP", "median true intrinsic PEEP of the episode (cmH2O)")
 	if err != nil {
@@ -308,6 +230,109 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 	}
 	if err := reportTmpl.Execute(w, d); err != nil {
 		return fmt.Errorf("write report: %w", err)
+	}
+	return nil
+}
+
+// reportTables fills the tables of the report: the headline per
+// condition and detector set, the rows per model and per sample rate,
+// and the alerts of conditions that are not scored.
+func reportTables(s *Summary) reportData {
+	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators, Classes: s.Sets[0].Classes}
+	for _, set := range s.Sets {
+		d.Sets = append(d.Sets, set.Name)
+	}
+	for ci, cond := range Scored() {
+		row := headRow{Condition: cond}
+		for si := range s.Sets {
+			row.Cells = append(row.Cells, headline(&s.Sets[si].Conditions[ci]))
+		}
+		if d.Compare {
+			row.Cells = append(row.Cells, headlineDiff(&s.Sets[0].Conditions[ci], &s.Sets[1].Conditions[ci]))
+		}
+		d.Headline = append(d.Headline, row)
+	}
+	group := func(name string, hours Num, cs []ConditionScore) modelRow {
+		row := modelRow{Model: name, Hours: num(hours, 1)}
+		for ci := range cs {
+			row.Cells = append(row.Cells, pct(cs[ci].Breath.Sensitivity)+" / "+pct(cs[ci].Breath.Specificity))
+		}
+		return row
+	}
+	for _, m := range s.Sets[0].ByModel {
+		d.ByModel = append(d.ByModel, group(m.Model, m.PatientHours, m.Conditions))
+	}
+	for _, r := range s.Sets[0].BySampleRate {
+		d.ByModel = append(d.ByModel, group(fmt.Sprintf("all models at %g Hz", r.SampleRateHz), r.PatientHours, r.Conditions))
+	}
+	for _, set := range s.Sets {
+		for cond, n := range set.OtherAlerts {
+			times := fmt.Sprintf("%d times", n)
+			if n == 1 {
+				times = "once"
+			}
+			d.Other = append(d.Other, fmt.Sprintf("%s: %s raised %s (%.3f per hour)", set.Name, cond, times, float64(n)/float64(s.PatientHours)))
+		}
+	}
+	return d
+}
+
+// addCurvePlots draws the detection curves: air trapping against the true
+// intrinsic PEEP, and the pressure limits against their true pressures.
+func (d *reportData) addCurvePlots(s *Summary) error {
+	var err error
+	cp, err := curvePlot(s, analyze.CondAirTrapping, "air-trapping: alarm vs true intrinsic PEEP", "true intrinsic PEEP (cmH2O)")
+	if err != nil {
+		return err
+	}
+	if d.Curve, err = svgHTML(vg.Points(760), vg.Points(380), 1, cp); err != nil {
+		return err
+	}
+	var lim []*plot.Plot
+	for _, x := range []struct{ cond, title, label string }{
+		{analyze.CondHighPlateauPressure, "high plateau", "true plateau (cmH2O)"},
+		{analyze.CondHighDrivingPressure, "high driving pressure", "true driving pressure (cmH2O)"},
+		{analyze.CondHighPeakPressure, "high peak pressure", "true peak pressure (cmH2O)"},
+	} {
+		p, err := curvePlot(s, x.cond, x.title, x.label)
+		if err != nil {
+			return err
+		}
+		lim = append(lim, p)
+	}
+	if d.Limits, err = svgHTML(vg.Points(900), vg.Points(300), 1, lim...); err != nil {
+		return err
+	}
+	return nil
+}
+
+// addLatencyPlots draws the onset and clearing latency histograms of each
+// condition that has any, all detector sets on the same axes.
+func (d *reportData) addLatencyPlots(s *Summary) error {
+	for ci, cond := range Scored() {
+		var on, cl [][]float64
+		total := 0
+		for si := range s.Sets {
+			c := &s.Sets[si].Conditions[ci]
+			on, cl = append(on, c.onsetS), append(cl, c.clearS)
+			total += len(c.onsetS) + len(c.clearS)
+		}
+		if total == 0 {
+			continue
+		}
+		po, err := histPlot(cond+": onset latency", on, d.Sets)
+		if err != nil {
+			return err
+		}
+		pc, err := histPlot(cond+": clearing latency", cl, d.Sets)
+		if err != nil {
+			return err
+		}
+		h, err := svgHTML(vg.Points(760), vg.Points(230), 1, po, pc)
+		if err != nil {
+			return err
+		}
+		d.Latency = append(d.Latency, h)
 	}
 	return nil
 }

@@ -337,25 +337,8 @@ func waveformPlots(ex *Example) (*plot.Plot, *plot.Plot, error) {
 	}
 	pMin, fMin = pMin-2, fMin-5
 	pMax, fMax = pMax+6, fMax+5
-	// Breaths that truly trap air: a band along the bottom of both plots.
-	for _, t := range ex.Truth {
-		if !t.Has(indexOf(Scored(), analyze.CondAirTrapping)) || t.EndS < ex.FromS || t.StartS > ex.ToS {
-			continue
-		}
-		for _, band := range []struct {
-			p      *plot.Plot
-			lo, hi float64
-		}{{pp, pMin, pMin + 0.04*(pMax-pMin)}, {fp, fMin, fMin + 0.04*(fMax-fMin)}} {
-			poly, err := plotter.NewPolygon(plotter.XYs{
-				{X: math.Max(t.StartS, ex.FromS), Y: band.lo}, {X: math.Min(t.EndS, ex.ToS), Y: band.lo},
-				{X: math.Min(t.EndS, ex.ToS), Y: band.hi}, {X: math.Max(t.StartS, ex.FromS), Y: band.hi}})
-			if err != nil {
-				return nil, nil, err
-			}
-			poly.Color = withAlpha(colour(3), 160)
-			poly.LineStyle.Width = 0
-			band.p.Add(poly)
-		}
+	if err := trappingBands(ex, pp, fp, pMin, pMax, fMin, fMax); err != nil {
+		return nil, nil, err
 	}
 	// Analysed breath starts.
 	for _, b := range ex.rec.breaths {
@@ -380,6 +363,47 @@ func waveformPlots(ex *Example) (*plot.Plot, *plot.Plot, error) {
 		l.Width = vg.Points(1)
 		x.p.Add(l)
 	}
+	if err := alertMarks(ex, pp, fp, pMin, pMax, fMin, fMax); err != nil {
+		return nil, nil, err
+	}
+	for _, x := range []*plot.Plot{pp, fp} {
+		x.X.Min, x.X.Max = ex.FromS, ex.ToS
+	}
+	pp.Y.Min, pp.Y.Max = pMin, pMax
+	fp.Y.Min, fp.Y.Max = fMin, fMax
+	return pp, fp, nil
+}
+
+// trappingBands marks the breaths of the example that truly trap air with
+// a band along the bottom of both plots, whose axes span pMin–pMax and
+// fMin–fMax.
+func trappingBands(ex *Example, pp, fp *plot.Plot, pMin, pMax, fMin, fMax float64) error {
+	// Breaths that truly trap air: a band along the bottom of both plots.
+	for _, t := range ex.Truth {
+		if !t.Has(indexOf(Scored(), analyze.CondAirTrapping)) || t.EndS < ex.FromS || t.StartS > ex.ToS {
+			continue
+		}
+		for _, band := range []struct {
+			p      *plot.Plot
+			lo, hi float64
+		}{{pp, pMin, pMin + 0.04*(pMax-pMin)}, {fp, fMin, fMin + 0.04*(fMax-fMin)}} {
+			poly, err := plotter.NewPolygon(plotter.XYs{
+				{X: math.Max(t.StartS, ex.FromS), Y: band.lo}, {X: math.Min(t.EndS, ex.ToS), Y: band.lo},
+				{X: math.Min(t.EndS, ex.ToS), Y: band.hi}, {X: math.Max(t.StartS, ex.FromS), Y: band.hi}})
+			if err != nil {
+				return err
+			}
+			poly.Color = withAlpha(colour(3), 160)
+			poly.LineStyle.Width = 0
+			band.p.Add(poly)
+		}
+	}
+	return nil
+}
+
+// alertMarks marks the alert events of the example on both plots, whose
+// axes span pMin–pMax and fMin–fMax, and labels them on the pressure plot.
+func alertMarks(ex *Example, pp, fp *plot.Plot, pMin, pMax, fMin, fMax float64) error {
 	// Alert events.
 	var lxy plotter.XYs
 	var ltext []string
@@ -396,7 +420,7 @@ func waveformPlots(ex *Example) (*plot.Plot, *plot.Plot, error) {
 			lo, hi float64
 		}{{pp, pMin, pMax}, {fp, fMin, fMax}} {
 			if err := vline(x.p, e.TS, x.lo, x.hi, c, true); err != nil {
-				return nil, nil, err
+				return err
 			}
 		}
 		lxy = append(lxy, plotter.XY{X: e.TS, Y: pMax - 1.5 - float64(len(lxy)%3)*1.6})
@@ -405,19 +429,14 @@ func waveformPlots(ex *Example) (*plot.Plot, *plot.Plot, error) {
 	if len(lxy) > 0 {
 		lb, err := plotter.NewLabels(plotter.XYLabels{XYs: lxy, Labels: ltext})
 		if err != nil {
-			return nil, nil, err
+			return err
 		}
 		for i := range lb.TextStyle {
 			lb.TextStyle[i].Color = colour(1)
 		}
 		pp.Add(lb)
 	}
-	for _, x := range []*plot.Plot{pp, fp} {
-		x.X.Min, x.X.Max = ex.FromS, ex.ToS
-	}
-	pp.Y.Min, pp.Y.Max = pMin, pMax
-	fp.Y.Min, fp.Y.Max = fMin, fMax
-	return pp, fp, nil
+	return nil
 }
 
 func indexOf(xs []string, x string) int {
