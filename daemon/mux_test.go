@@ -111,30 +111,7 @@ func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	defer func() {
-		cancel()
-		select {
-		case <-done:
-		case <-time.After(20 * time.Second):
-			t.Error("Run did not return within 20 s of cancellation")
-		}
-	}()
-	var info Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		t.Fatalf("Run returned before it was ready: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready within 30 s")
-	}
+	d, info := startDaemon(t, cfg)
 	nc, err := nats.Connect(info.NATSURL)
 	if err != nil {
 		t.Fatal(err)
@@ -242,29 +219,7 @@ func TestMuxFileSource(t *testing.T) {
 	cfg.HTTP.Listen = ""
 	cfg.NATS.Embedded.Port = 0
 	cfg.Sources = []config.Source{{Name: "rec", URL: "file://" + path, Allow: []string{"bed-a", "bed-b"}}}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	defer func() {
-		cancel()
-		select {
-		case <-done:
-		case <-time.After(20 * time.Second):
-			t.Error("Run did not return within 20 s of cancellation")
-		}
-	}()
-	select {
-	case <-readyc:
-	case err := <-done:
-		t.Fatalf("Run returned before it was ready: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready within 30 s")
-	}
+	d, _ := startDaemon(t, cfg)
 	ms := d.mux.sources[0]
 	waitFor(t, 20*time.Second, "the file to be read to its end", func() bool { return ms.finished.Load() })
 	for _, sc := range scs {
@@ -275,4 +230,35 @@ func TestMuxFileSource(t *testing.T) {
 			t.Errorf("%s: %d breaths, alone %d", sc.Stream, got, want)
 		}
 	}
+}
+
+// startDaemon runs a daemon on cfg until the test ends and returns it once
+// it is ready.
+func startDaemon(t *testing.T, cfg *config.Config) (*Daemon, Info) {
+	t.Helper()
+	readyc := make(chan Info, 1)
+	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(t.Context())
+	done := make(chan error, 1)
+	go func() { done <- d.Run(ctx) }()
+	t.Cleanup(func() {
+		cancel()
+		select {
+		case <-done:
+		case <-time.After(20 * time.Second):
+			t.Error("Run did not return within 20 s of cancellation")
+		}
+	})
+	select {
+	case info := <-readyc:
+		return d, info
+	case err := <-done:
+		t.Fatalf("Run returned before it was ready: %v", err)
+	case <-time.After(30 * time.Second):
+		t.Fatal("daemon not ready within 30 s")
+	}
+	return nil, Info{}
 }
