@@ -66,6 +66,16 @@ func (a *arrivals) longest() (string, time.Duration, time.Duration) {
 	return id, d, a.at[id]
 }
 
+// metaLeader returns the node that leads the JetStream meta group, or -1.
+func (c *cluster) metaLeader() int {
+	for i, s := range c.srv {
+		if s != nil && s.Running() && s.JetStreamIsLeader() {
+			return i
+		}
+	}
+	return -1
+}
+
 // streamLeader returns the node that leads a stream, or -1.
 func (c *cluster) streamLeader(name string) int {
 	for i, s := range c.srv {
@@ -93,6 +103,37 @@ func (c *cluster) publisherNode() int {
 		}
 	}
 	return best
+}
+
+// waitReplicasCurrent waits until every stream, the key-value buckets
+// among them, has a leader and every replica current.
+func (s *scaleSetup) waitReplicasCurrent(t *testing.T) {
+	t.Helper()
+	if !pollUntil(30*time.Second, func() bool {
+		ctx, cancel := context.WithTimeout(t.Context(), 2*time.Second)
+		defer cancel()
+		names := s.js.StreamNames(ctx)
+		n := 0
+		for name := range names.Name() {
+			st, err := s.js.Stream(ctx, name)
+			if err != nil {
+				return false
+			}
+			ci := st.CachedInfo().Cluster
+			if ci == nil || ci.Leader == "" || len(ci.Replicas) < 2 {
+				return false
+			}
+			for _, r := range ci.Replicas {
+				if !r.Current || r.Offline {
+					return false
+				}
+			}
+			n++
+		}
+		return names.Err() == nil && n > 0
+	}) {
+		t.Fatal("the streams did not get every replica current within 30 s")
+	}
 }
 
 // restartNode shuts node i down and starts it again on its store after
@@ -217,8 +258,7 @@ func (s *scaleSetup) checkSamplesOnce(t *testing.T) {
 // node leading the samples stream, and then the node carrying the edge's
 // connection, are shut down (each restarted after 3 s). Every sample is
 // stored exactly once, the alert events equal the single-node analysis,
-// and no stream goes without a breath record for long (aim < 5 s; the
-// test fails at 10 s, see below).
+// and no stream goes without a breath record for 5 s or more.
 func TestClusterNodeLossLosesNothing(t *testing.T) {
 	s := newScaleSetup(t, 10, 300*time.Second, 12)
 	wantEv, _ := s.want(t)
@@ -246,14 +286,19 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 	if leader < 0 {
 		t.Fatal("no leader of the samples stream")
 	}
-	t.Logf("%.1f s: shutting down n%d (samples stream leader)", time.Since(arr.from).Seconds(), leader)
+	t.Logf("%.1f s: shutting down n%d (samples stream leader; meta leader n%d)", time.Since(arr.from).Seconds(), leader, s.c.metaLeader())
 	s.c.restartNode(t, leader, 3*time.Second)
 	s.c.waitReady(t)
+	// The second loss comes after the first has healed: every stream and
+	// bucket has its three replicas current again. Two nodes down at once
+	// (or one down while another catches up) is a loss of quorum, which
+	// R3 does not promise to ride through.
+	s.waitReplicasCurrent(t)
 	edgeNode := s.c.publisherNode()
 	if edgeNode < 0 {
 		t.Fatal("no node carries the edge")
 	}
-	t.Logf("%.1f s: shutting down n%d (the edge's node)", time.Since(arr.from).Seconds(), edgeNode)
+	t.Logf("%.1f s: shutting down n%d (the edge's node; meta leader n%d)", time.Since(arr.from).Seconds(), edgeNode, s.c.metaLeader())
 	s.c.restartNode(t, edgeNode, 3*time.Second)
 
 	got := s.stored(t, len(wantEv))
@@ -265,11 +310,11 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 	s.checkSamplesOnce(t)
 	id, gap, at := arr.longest()
 	t.Logf("%d clinical alert events; longest pause of breath records: %.1f s (%s, from %.1f s)", len(wantEv), gap.Seconds(), id, at.Seconds())
-	// The aim is under 5 s (3.6 and 3.9 s measured alone); with the whole
-	// suite running on two cores it reached 7.6 s, so the test holds the
-	// line at 10 s and logs the figure.
-	if gap >= 10*time.Second {
-		t.Errorf("stream %s went %.1f s without a breath record (want < 10 s here, aim < 5 s)", id, gap.Seconds())
+	// A node loss must interrupt analysis for less than 5 s: the partition
+	// reader notices a lost consumer within 1 s and makes it again with
+	// short requests (1.1 to 2.2 s measured alone).
+	if gap >= 5*time.Second {
+		t.Errorf("stream %s went %.1f s without a breath record (want < 5 s)", id, gap.Seconds())
 	}
 }
 

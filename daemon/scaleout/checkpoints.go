@@ -35,27 +35,53 @@ type streamCheckpoint struct {
 
 // fencedPut writes key only if it is still at revision rev (0: only if it
 // does not exist) and returns the new revision; a conflict is errFenced.
+//
+// A write whose answer was lost (a timeout during a leader election) may
+// have been stored all the same, and the next write, at the old revision,
+// would then conflict with this worker's own record. So a conflict is
+// looked at: if the record names this worker, it is ours, and the write is
+// made again at its revision. Only one runner of a partition runs in a
+// worker at a time, so a record of ours is never another runner's.
 func (w *worker) fencedPut(ctx context.Context, key string, v any, rev uint64) (uint64, error) {
 	data, err := json.Marshal(v)
 	if err != nil {
 		return rev, fmt.Errorf("encode %s: %w", key, err)
 	}
+	nrev, err := w.put(ctx, key, data, rev)
+	if errors.Is(err, errFenced) {
+		var cur struct {
+			Owner string `json:"owner"`
+		}
+		if crev, gerr := w.getJSON(ctx, key, &cur); gerr == nil && crev != 0 && crev != rev && cur.Owner == w.id {
+			nrev, err = w.put(ctx, key, data, crev)
+		}
+	}
+	if err != nil {
+		return rev, fmt.Errorf("write %s: %w", key, err)
+	}
+	return nrev, nil
+}
+
+// put is one fenced write of data at revision rev; a conflict is errFenced.
+func (w *worker) put(ctx context.Context, key string, data []byte, rev uint64) (uint64, error) {
 	cctx, cancel := context.WithTimeout(ctx, w.cfg.NATS.PublishTimeout+time.Second)
 	defer cancel()
 	var nrev uint64
+	var err error
 	if rev == 0 {
 		nrev, err = w.state.Create(cctx, key, data)
 	} else {
 		nrev, err = w.state.Update(cctx, key, data, rev)
 	}
 	var apiErr *jetstream.APIError
-	if errors.Is(err, jetstream.ErrKeyExists) || errors.As(err, &apiErr) && apiErr.ErrorCode == jetstream.JSErrCodeStreamWrongLastSequence {
-		return rev, fmt.Errorf("write %s: %w", key, errFenced)
+	// A replicated bucket reports a revision conflict with code 10164,
+	// a single-replica one with 10071; both mean another writer won.
+	if errors.Is(err, jetstream.ErrKeyExists) || errors.Is(err, jetstream.ErrKeyRevisionMismatch) ||
+		errors.As(err, &apiErr) && (apiErr.ErrorCode == jetstream.JSErrCodeStreamWrongLastSequence ||
+			apiErr.ErrorCode == jetstream.JSErrCodeStreamWrongLastSequenceConstant) {
+		return rev, errFenced
 	}
-	if err != nil {
-		return rev, fmt.Errorf("write %s: %w", key, err)
-	}
-	return nrev, nil
+	return nrev, err
 }
 
 // getJSON reads key into v and returns its revision (0 when absent).

@@ -19,10 +19,19 @@ import (
 //
 // Liveness rides through a leader election of the bucket (nats-server:
 // followers wait an election timeout of 4 to 9 s, then campaign for 0.1 to
-// 0.8 s): while this worker's own heartbeat fails, the bucket is what is
-// away, not the others, so no member expires; once a heartbeat is stored
-// again, every member that was live when it began to fail is counted as
-// heard at that moment and has member_ttl to be heard again. A worker is always live in its own view.
+// 0.8 s): while this worker cannot see the bucket, the bucket is what is
+// away, not the others, so no member expires; once it sees the bucket
+// again, every member that was live when it went away is counted as heard
+// at that moment and has member_ttl to be heard again. A worker is always
+// live in its own view.
+//
+// Two things hide the bucket. A heartbeat that fails is the plain one. A
+// stale watch is the other: a watch served by a node that died delivers
+// nothing until it is made again, while heartbeats are stored through the
+// new node, and every other worker would seem to expire (each worker then
+// claims every partition). This worker's own key is the canary: when its
+// stored heartbeats stop coming back through the watch for staleAfter, the
+// view is held in the same way and the watch is made again.
 type members struct {
 	kv        jetstream.KeyValue
 	id        string
@@ -33,8 +42,11 @@ type members struct {
 	mu      sync.Mutex
 	seen    map[string]time.Time // worker id → local time it was last heard
 	failing bool                 // this worker's heartbeat is failing
-	failed  time.Time            // when the heartbeat began to fail
-	back    time.Time            // when the heartbeat was stored again
+	blind   bool                 // the watch has gone stale
+	awayAt  time.Time            // when the bucket went out of sight (the last episode)
+	back    time.Time            // when it came back into sight
+	stored  time.Time            // when a heartbeat was last stored
+	echoed  time.Time            // when this worker's key last came back through the watch, or the watch began
 
 	// changed receives the sorted live members whenever they change; it
 	// holds only the latest view.
@@ -72,11 +84,18 @@ func newMembers(kv jetstream.KeyValue, id string, heartbeat, ttl time.Duration, 
 		seen: map[string]time.Time{}, changed: make(chan []string, 1)}
 }
 
-// Run heartbeats and watches the bucket until ctx is cancelled, watching
-// again when a watch ends (a leader election may end it). A stopped worker
-// does not remove its key: its partitions move after member_ttl, as they
-// would after a crash, and the others replay from its last checkpoint.
+// Run heartbeats and watches the bucket until ctx is cancelled. The
+// heartbeat has a goroutine of its own, so that it goes on while a watch is
+// being made again (a leader election or a stale watch ends one). A stopped
+// worker does not remove its key: its partitions move after member_ttl, as
+// they would after a crash, and the others replay from its last checkpoint.
 func (m *members) Run(ctx context.Context) error {
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		m.beat(ctx)
+	}()
+	defer func() { <-done }()
 	var last []string
 	for ctx.Err() == nil {
 		err := m.watch(ctx, &last)
@@ -94,25 +113,40 @@ func (m *members) Run(ctx context.Context) error {
 	return nil
 }
 
-// watch runs one watch of the bucket until it ends or ctx does.
+// beat puts this worker's key every heartbeat until ctx ends.
+func (m *members) beat(ctx context.Context) {
+	t := time.NewTicker(m.heartbeat)
+	defer t.Stop()
+	for {
+		m.put(ctx)
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+		}
+	}
+}
+
+// watch runs one watch of the bucket until it ends, goes stale, or ctx
+// ends.
 func (m *members) watch(ctx context.Context, last *[]string) error {
-	w, err := m.kv.WatchAll(ctx)
+	wctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	w, err := m.kv.WatchAll(wctx)
 	if err != nil {
 		return err
 	}
 	defer func() { _ = w.Stop() }()
-	beat := time.NewTicker(m.heartbeat)
-	defer beat.Stop()
+	m.mu.Lock()
+	m.echoed = time.Now() // a new watch has its own staleAfter to deliver
+	m.mu.Unlock()
 	check := time.NewTicker(m.heartbeat / 2)
 	defer check.Stop()
 	initial := true
-	m.put(ctx)
 	for {
 		select {
 		case <-ctx.Done():
 			return nil
-		case <-beat.C:
-			m.put(ctx)
 		case e, ok := <-w.Updates():
 			if !ok {
 				return errors.New("membership watch ended")
@@ -123,6 +157,9 @@ func (m *members) watch(ctx context.Context, last *[]string) error {
 			}
 			m.heard(e, initial)
 		case <-check.C:
+			if m.stale(time.Now()) {
+				return errors.New("membership watch delivers nothing although heartbeats are stored")
+			}
 		}
 		live := m.live(time.Now())
 		if !slices.Equal(live, *last) {
@@ -139,7 +176,8 @@ func (m *members) watch(ctx context.Context, last *[]string) error {
 
 // heard notes a watched entry.
 func (m *members) heard(e jetstream.KeyValueEntry, initial bool) {
-	heard := time.Now()
+	now := time.Now()
+	heard := now
 	if initial {
 		// A stored value may be old: a worker that died just now.
 		if c := e.Created(); c.Before(heard) {
@@ -148,6 +186,16 @@ func (m *members) heard(e jetstream.KeyValueEntry, initial bool) {
 	}
 	m.mu.Lock()
 	defer m.mu.Unlock()
+	if e.Key() == m.id && !initial {
+		m.echoed = now
+		if m.blind {
+			m.blind = false
+			if !m.failing {
+				m.back = now
+			}
+			m.log.Info().Msg("membership watch delivers again")
+		}
+	}
 	if e.Operation() == jetstream.KeyValuePut {
 		m.seen[e.Key()] = heard
 	} else {
@@ -164,36 +212,67 @@ func (m *members) put(ctx context.Context) {
 	if ctx.Err() != nil {
 		return
 	}
+	now := time.Now()
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	switch {
 	case err != nil && !m.failing:
-		m.failing, m.failed = true, time.Now()
+		m.failing = true
+		if !m.blind {
+			m.awayAt = now
+		}
 		m.log.Warn().Err(err).Msg("membership heartbeat failed; holding the view of the members until it is stored again")
 	case err == nil && m.failing:
-		m.failing, m.back = false, time.Now()
+		m.failing = false
+		if !m.blind {
+			m.back = now
+		}
 		m.log.Info().Msg("membership heartbeat stored again")
+	}
+	if err == nil {
+		m.stored = now
 	}
 }
 
+// staleAfter is how long stored heartbeats may go without coming back
+// through the watch before the watch counts as stale: two heartbeats and
+// the round trip of a loaded machine.
+func (m *members) staleAfter() time.Duration { return 2*m.heartbeat + 500*time.Millisecond }
+
+// stale tells whether the watch has stopped delivering although this
+// worker's heartbeats are stored. It marks the view blind from the last
+// echo, so that live holds the view as it was then.
+func (m *members) stale(now time.Time) bool {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	if m.failing || !m.stored.After(m.echoed) || now.Sub(m.echoed) < m.staleAfter() {
+		return false
+	}
+	if !m.blind {
+		m.blind, m.awayAt = true, m.echoed
+		m.log.Warn().Dur("since", now.Sub(m.echoed)).Msg("membership watch stale; holding the view of the members and watching again")
+	}
+	return true
+}
+
 // live returns the sorted ids heard from within the TTL, this worker
-// always among them, and the last view unchanged while the heartbeat
-// fails.
+// always among them, and the view as it was when the bucket went out of
+// sight while it is out of sight.
 func (m *members) live(now time.Time) []string {
 	m.mu.Lock()
 	defer m.mu.Unlock()
+	if m.failing || m.blind {
+		now = m.awayAt
+	}
 	out := []string{m.id}
 	for id, t := range m.seen {
 		if id == m.id {
 			continue
 		}
-		if t.Before(m.back) && m.failed.Sub(t) < m.ttl {
+		if t.Before(m.back) && m.awayAt.Sub(t) < m.ttl {
 			// Live when the bucket went away: nobody could be heard
 			// while it was away, so the TTL counts from its return.
 			t = m.back
-		}
-		if m.failing {
-			now = m.failed // the view as it was when the bucket went away
 		}
 		if now.Sub(t) < m.ttl {
 			out = append(out, id)

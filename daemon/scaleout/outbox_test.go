@@ -89,28 +89,3 @@ func TestOutboxRetriesWithinWindow(t *testing.T) {
 		t.Errorf("failed %d, %d messages, %d bytes: want the message given up", o.failed.Load(), len(q.msgs), o.pendingBytes())
 	}
 }
-
-// TestMembersHoldDuringBucketOutage checks the liveness rule: while this
-// worker's heartbeat fails nobody expires; after it is stored again every
-// member has member_ttl from that moment; a member silent beyond that is
-// gone; this worker is always live.
-func TestMembersHoldDuringBucketOutage(t *testing.T) {
-	m := newMembers(nil, "w1", time.Second, 4*time.Second, zerolog.Nop())
-	t0 := time.Now()
-	m.seen["w2"] = t0
-	m.seen["w3"] = t0.Add(-10 * time.Second) // long gone
-	if got := m.live(t0); len(got) != 2 || got[0] != "w1" || got[1] != "w2" {
-		t.Fatalf("live at start: %v, want [w1 w2]", got)
-	}
-	m.failing, m.failed = true, t0.Add(time.Second)
-	if got := m.live(t0.Add(30 * time.Second)); len(got) != 2 || got[1] != "w2" {
-		t.Errorf("live during the outage: %v, want the view held [w1 w2]", got)
-	}
-	m.failing, m.back = false, t0.Add(30*time.Second)
-	if got := m.live(t0.Add(33 * time.Second)); len(got) != 2 {
-		t.Errorf("live 3 s after the outage: %v, want [w1 w2] (member_ttl counts from the recovery)", got)
-	}
-	if got := m.live(t0.Add(35 * time.Second)); len(got) != 1 || got[0] != "w1" {
-		t.Errorf("live 5 s after the outage: %v, want only [w1]", got)
-	}
-}

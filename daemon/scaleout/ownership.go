@@ -69,11 +69,15 @@ func (w *worker) supervisePartition(ctx context.Context, p int) {
 	log := w.log.With().Int("partition", p).Logger()
 	wait := time.Duration(0)
 	for {
+		began := time.Now()
 		err := w.host.Protect(ctx, func(ctx context.Context) error { return w.runPartition(ctx, p, log) })
 		if ctx.Err() != nil {
 			return
 		}
-		wait = min(max(2*wait, 250*time.Millisecond), 10*time.Second)
+		if time.Since(began) > healthyRun {
+			wait = 0 // a run that went well starts the backoff afresh
+		}
+		wait = min(max(2*wait, 250*time.Millisecond), 5*time.Second)
 		log.Warn().Err(err).Dur("restart_in", wait).Msg("partition stopped")
 		t := time.NewTimer(wait)
 		select {
@@ -84,3 +88,7 @@ func (w *worker) supervisePartition(ctx context.Context, p int) {
 		}
 	}
 }
+
+// healthyRun is how long a partition runner must have run for its failure
+// to count as a new episode rather than one more of a run of failures.
+const healthyRun = 10 * time.Second

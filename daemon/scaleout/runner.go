@@ -54,6 +54,9 @@ type partition struct {
 	lastSeq uint64
 	lastT   time.Time
 	caught  bool // the consumer has nothing pending
+	// ckptFailing is set while checkpoint writes fail for a reason other
+	// than fencing; it keeps the warning to one per episode.
+	ckptFailing bool
 	acks    chan streamAck
 }
 
@@ -75,66 +78,39 @@ func (w *worker) runPartition(ctx context.Context, p int, log zerolog.Logger) er
 	if err != nil {
 		return err
 	}
-	msgs, readErr, stop, err := pt.consume(ctx, start)
-	if err != nil {
-		return err
-	}
+	msgs, stop := pt.consume(ctx, start)
 	defer stop()
 	log.Info().Str("previous_owner", prev).Uint64("checkpoint_seq", pt.rec.Seq).Int("streams", len(pt.streams)).
 		Time("replay_from", start.Add(-w.cfg.ScaleOut.Warmup)).Msg("partition claimed")
-	return pt.loop(ctx, msgs, readErr)
+	return pt.loop(ctx, msgs)
 }
 
 // consume reads the partition's samples from start minus the warm-up (all
-// of them when start is zero) on a goroutine of its own; stop ends it.
-func (pt *partition) consume(ctx context.Context, start time.Time) (<-chan jetstream.Msg, <-chan error, func(), error) {
-	w, p := pt.w, pt.p
-	cfg := jetstream.OrderedConsumerConfig{FilterSubjects: []string{w.names.partSubject(p)}, DeliverPolicy: jetstream.DeliverAllPolicy}
+// of them when start is zero) on a goroutine of its own (see partReader);
+// stop ends it.
+func (pt *partition) consume(ctx context.Context, start time.Time) (<-chan jetstream.Msg, func()) {
+	w := pt.w
+	r := &partReader{js: w.js, stream: w.names.samples, subject: w.names.partSubject(pt.p), log: pt.log}
 	if !start.IsZero() {
-		t := start.Add(-w.cfg.ScaleOut.Warmup)
-		cfg.DeliverPolicy, cfg.OptStartTime = jetstream.DeliverByStartTimePolicy, &t
+		r.start = start.Add(-w.cfg.ScaleOut.Warmup)
 	}
-	cons, err := w.js.OrderedConsumer(ctx, w.names.samples, cfg)
-	if err != nil {
-		return nil, nil, nil, fmt.Errorf("consumer of partition %d: %w", p, err)
-	}
-	// Short heartbeats: a consumer whose server went away (a node lost,
-	// a leader moved) is noticed after two missed heartbeats, 2 s, and
-	// made again by the ordered consumer, instead of after the 30 s default.
-	it, err := cons.Messages(jetstream.PullMaxMessages(512), jetstream.PullExpiry(5*time.Second), jetstream.PullHeartbeat(time.Second))
-	if err != nil {
-		return nil, nil, nil, fmt.Errorf("consume partition %d: %w", p, err)
-	}
+	rctx, cancel := context.WithCancel(ctx)
 	msgs := make(chan jetstream.Msg, 256)
-	readErr := make(chan error, 1)
 	go func() {
 		defer close(msgs)
-		for {
-			m, err := it.Next()
-			if err != nil {
-				if !errors.Is(err, jetstream.ErrMsgIteratorClosed) {
-					readErr <- err
-				}
-				return
-			}
-			select {
-			case msgs <- m:
-			case <-ctx.Done():
-				return
-			}
-		}
+		r.run(rctx, msgs)
 	}()
 	stop := func() {
-		it.Stop()
+		cancel()
 		for range msgs { //nolint:revive // drain so the reader can end
 		}
 	}
-	return msgs, readErr, stop, nil
+	return msgs, stop
 }
 
 // loop analyses the partition's messages, ticks, writes checkpoints and
 // serves acknowledgements until ctx ends or something fails.
-func (pt *partition) loop(ctx context.Context, msgs <-chan jetstream.Msg, readErr <-chan error) error {
+func (pt *partition) loop(ctx context.Context, msgs <-chan jetstream.Msg) error {
 	tick := time.NewTicker(pt.w.tick)
 	defer tick.Stop()
 	ckpt := time.NewTicker(pt.w.cfg.ScaleOut.Checkpoint)
@@ -143,8 +119,6 @@ func (pt *partition) loop(ctx context.Context, msgs <-chan jetstream.Msg, readEr
 		select {
 		case <-ctx.Done():
 			return nil
-		case err := <-readErr:
-			return fmt.Errorf("read partition %d: %w", pt.p, err)
 		case m, ok := <-msgs:
 			if !ok {
 				if ctx.Err() != nil {
@@ -160,7 +134,7 @@ func (pt *partition) loop(ctx context.Context, msgs <-chan jetstream.Msg, readEr
 				return err
 			}
 		case <-ckpt.C:
-			if err := pt.checkpoint(ctx); err != nil {
+			if err := pt.settle(pt.checkpoint(ctx)); err != nil {
 				return err
 			}
 		case a := <-pt.acks:
@@ -315,7 +289,29 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 		}
 		pt.w.host.CountAlert(sr.id, evs[i].Condition, string(evs[i].State))
 	}
-	return pt.saveStream(ctx, sr)
+	return pt.settle(pt.saveStream(ctx, sr))
+}
+
+// settle decides what a failed checkpoint write means. Fenced: another
+// worker owns the partition, and the runner must stop. Anything else (a
+// leader election of the state bucket, a lost connection) only delays the
+// checkpoint: the stream stays dirty and the next period writes it, while
+// analysis goes on. A checkpoint may lag; it never runs ahead of what is
+// stored, so a lagging one costs only a longer replay after a hand-over.
+func (pt *partition) settle(err error) error {
+	if err == nil || errors.Is(err, errFenced) || pt.ckptFailing {
+		if err == nil && pt.ckptFailing {
+			pt.ckptFailing = false
+			pt.log.Info().Msg("checkpoints stored again")
+		}
+		if errors.Is(err, errFenced) {
+			return err
+		}
+		return nil
+	}
+	pt.ckptFailing = true
+	pt.log.Warn().Err(err).Msg("checkpoint not stored; analysis goes on and the next period tries again")
+	return nil
 }
 
 // tick runs the time-based checks of the live streams, only once the
