@@ -47,6 +47,9 @@ func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
 	cfg.M = min(max(cfg.M, 1), maxAirTrappingWindow)
 	cfg.N = min(max(cfg.N, 1), cfg.M)
 	cfg.ClearN = min(max(cfg.ClearN, 1), cfg.N)
+	if !(cfg.ClearFraction > 0 && cfg.ClearFraction <= 1) {
+		cfg.ClearFraction = 1 // no hysteresis of the magnitude
+	}
 	return &AirTrapping{cfg: cfg, buf: make([]float64, 0, maxAirTrappingWindow)}
 }
 
@@ -102,7 +105,15 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	}
 	// Unknown Te/τ neither vetoes nor supports.
 	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	pos := (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag(FlagArtifact)
+	// Hysteresis of the magnitude: once present, a breath counts from
+	// ClearFraction of the thresholds, so estimates scattering around the
+	// raising threshold for an unchanged patient do not clear the alarm
+	// only to raise it again a few breaths later.
+	k := 1.0
+	if d.present {
+		k = cfg.ClearFraction
+	}
+	pos := (mag(k) || (building && mag(0.5*k))) && tauOK && !b.HasFlag(FlagArtifact)
 	d.ring[idx].positive = pos
 
 	count := d.positiveCount()
