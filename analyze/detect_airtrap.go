@@ -87,33 +87,7 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	balance, slope := d.buildUp()
 	building := balance >= cfg.BalanceML && slope*float64(d.n-1) >= cfg.BalanceML/2
 
-	// Scale-free criterion: the magnitude is intrinsic PEEP (a pressure,
-	// whatever the resistance), or the trapped volume when no pressure
-	// estimate exists; the end-expiratory flow in L/min only supports it
-	// (at a high resistance a small flow is a large pressure). The
-	// time-constant evidence must agree: expiration shorter than
-	// TeOverTauMax time constants (the end-expiratory one when the lung
-	// empties slower at the end).
-	// The pressure is the median of this breath's estimate and the two
-	// before it: one noisy breath neither makes nor breaks a positive.
-	peepi := d.recentMedianPEEPi()
-	mag := func(k float64) bool {
-		if !math.IsNaN(peepi) {
-			return peepi >= k*cfg.PEEPiCmH2O
-		}
-		return cur.trapped >= k*cfg.TrappedML
-	}
-	// Unknown Te/τ neither vetoes nor supports.
-	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	// Hysteresis of the magnitude: once present, a breath counts from
-	// ClearFraction of the thresholds, so estimates scattering around the
-	// raising threshold for an unchanged patient do not clear the alarm
-	// only to raise it again a few breaths later.
-	k := 1.0
-	if d.present {
-		k = cfg.ClearFraction
-	}
-	pos := (mag(k) || (building && mag(0.5*k))) && tauOK && !b.HasFlag(FlagArtifact)
+	pos := d.positive(b, &cur, building)
 	d.ring[idx].positive = pos
 
 	count := d.positiveCount()
@@ -154,6 +128,38 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 
 	d.predict(&f, &cur)
 	return append(dst, f)
+}
+
+// positive judges one breath as a trapping breath.
+func (d *AirTrapping) positive(b *Breath, cur *atBreath, building bool) bool {
+	cfg := &d.cfg
+	// Scale-free criterion: the magnitude is intrinsic PEEP (a pressure,
+	// whatever the resistance), or the trapped volume when no pressure
+	// estimate exists; the end-expiratory flow in L/min only supports it
+	// (at a high resistance a small flow is a large pressure). The
+	// time-constant evidence must agree: expiration shorter than
+	// TeOverTauMax time constants (the end-expiratory one when the lung
+	// empties slower at the end).
+	// The pressure is the median of this breath's estimate and the two
+	// before it: one noisy breath neither makes nor breaks a positive.
+	peepi := d.recentMedianPEEPi()
+	mag := func(k float64) bool {
+		if !math.IsNaN(peepi) {
+			return peepi >= k*cfg.PEEPiCmH2O
+		}
+		return cur.trapped >= k*cfg.TrappedML
+	}
+	// Unknown Te/τ neither vetoes nor supports.
+	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
+	// Hysteresis of the magnitude: once present, a breath counts from
+	// ClearFraction of the thresholds, so estimates scattering around the
+	// raising threshold for an unchanged patient do not clear the alarm
+	// only to raise it again a few breaths later.
+	k := 1.0
+	if d.present {
+		k = cfg.ClearFraction
+	}
+	return (mag(k) || (building && mag(0.5*k))) && tauOK && !b.HasFlag(FlagArtifact)
 }
 
 // offsetShare returns the factor that takes out of a slow-end bound
