@@ -113,6 +113,14 @@ func (c *OfflineClock) Wall(tS float64) time.Time {
 	return c.Epoch.Add(time.Duration(tS * float64(time.Second)))
 }
 
+// Due reports whether Until(tS, …) has anything to do: the first call, a
+// clock that went back, or a tick due. A caller that feeds every sample
+// asks it first, so that it makes no tick function for the samples between
+// ticks.
+func (c *OfflineClock) Due(tS float64) bool {
+	return !c.started || tS < c.nextS-OfflineTickS || c.nextS <= tS
+}
+
 // Until calls tick for every tick due up to stream time tS, in order. A
 // clock that went back restarts the ticks; a gap longer than an hour gets an
 // hour of ticks, then the ticks jump to the present.

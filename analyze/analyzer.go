@@ -207,6 +207,17 @@ func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
 	return Breath{}, false
 }
 
+// Next is Push without the copy of the record: it returns the breath that
+// the sample completed, or nil. The record belongs to the analyzer and is
+// valid until the next call of Next, Push or Reset; a caller that keeps it
+// copies it.
+func (a *Analyzer) Next(s ingest.Sample) *Breath {
+	if a.push(s) {
+		return &a.last
+	}
+	return nil
+}
+
 // push is Push without the copy of the record (a Breath is a few hundred
 // bytes; copying one per sample would dominate the cost of analysis). It
 // reports whether a.last holds a newly completed breath.

@@ -206,16 +206,18 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 			continue // no place on the time axis; the analyzer skips it too
 		}
 		if p.offline() {
-			p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+			if p.clock.Due(s.TimeS) {
+				p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+			}
 			wall = p.clock.Wall(s.TimeS)
 		}
 		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
-		b, ok := p.an.Push(s)
-		if !ok {
+		b := p.an.Next(s)
+		if b == nil {
 			continue
 		}
-		p.breath = b
+		p.breath = *b
 		p.breath.Stream = p.stream
 		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
 		p.breath.Seq += p.seqBase
