@@ -97,10 +97,11 @@ type decimator struct {
 	stride int
 	acc    point
 	accN   int
+	inv    float64 // 1/stride: a bin is emitted when it holds stride samples
 }
 
 func (d *decimator) reset() {
-	d.n, d.stride, d.accN = 0, 1, 0
+	d.n, d.stride, d.accN, d.inv = 0, 1, 0, 1
 	d.acc = point{}
 }
 
@@ -113,7 +114,7 @@ func (d *decimator) add(t, f, v, p float64) {
 	if d.accN < d.stride {
 		return
 	}
-	k := 1 / float64(d.accN)
+	k := d.inv // 1/float64(d.accN), computed once a stride
 	d.pts[d.n] = point{d.acc.t * k, d.acc.f * k, d.acc.v * k, d.acc.p * k}
 	d.n++
 	d.acc = point{}
@@ -127,4 +128,5 @@ func (d *decimator) add(t, f, v, p float64) {
 	}
 	d.n = bufCap / 2
 	d.stride *= 2
+	d.inv = 1 / float64(d.stride)
 }

@@ -72,9 +72,20 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 		e := (s.vp - s.n*mv*mp) / svv
 		fr = fitResult{r: 0, e: e, p0: mp - e*mv}
 	}
-	dev, noise = windowedResidual(pts, k, func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) })
+	// Each residual is computed once, into rs, by a plain loop (a function
+	// value per point costs an indirect call that cannot be inlined).
+	var rs [bufCap]float64
+	for i := range pts {
+		q := &pts[i]
+		rs[i] = q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
+	}
+	dev, noise = windowedResidual(rs[:n], k)
 	if ff := sf.fit(); !ff.singular && rScale > 0 {
-		d, nz := windowedResidual(pts, k, func(q *point) float64 { return rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0)) })
+		for i := range pts {
+			q := &pts[i]
+			rs[i] = rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0))
+		}
+		d, nz := windowedResidual(rs[:n], k)
 		if d-4*nz > dev-4*noise {
 			dev, noise = d, nz
 		}
@@ -82,17 +93,14 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	return dev, noise
 }
 
-// windowedResidual returns the largest |mean| of res over k consecutive
-// points, and the noise of such a mean estimated from successive
-// differences (white noise: twice its variance), which a smooth departure
-// does not inflate.
-func windowedResidual(pts []point, k int, res func(*point) float64) (worst, noise float64) {
-	n := len(pts)
-	var rs [bufCap]float64 // each residual computed once
+// windowedResidual returns the largest |mean| of the residuals rs over k
+// consecutive points, and the noise of such a mean estimated from
+// successive differences (white noise: twice its variance), which a smooth
+// departure does not inflate.
+func windowedResidual(rs []float64, k int) (worst, noise float64) {
+	n := len(rs)
 	sum, sd, prev := 0.0, 0.0, 0.0
-	for i := range pts {
-		r := res(&pts[i])
-		rs[i] = r
+	for i, r := range rs {
 		if i > 0 {
 			sd += (r - prev) * (r - prev)
 		}
