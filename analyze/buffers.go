@@ -106,6 +106,14 @@ func (d *decimator) reset() {
 }
 
 func (d *decimator) add(t, f, v, p float64) {
+	if d.stride == 1 && d.n < bufCap-1 {
+		// A bin of one sample: its mean is the sample itself. 0+x, not
+		// x, so that a −0 becomes +0 as the sum starting from zero makes
+		// it, and the points are the same as through the sums.
+		d.pts[d.n] = point{0 + t, 0 + f, 0 + v, 0 + p}
+		d.n++
+		return
+	}
 	d.acc.t += t
 	d.acc.f += f
 	d.acc.v += v
