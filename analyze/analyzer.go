@@ -269,6 +269,14 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	case phaseInsp:
 		a.stepInsp(t, f, p, dt)
 	case phaseExp:
+		if !a.inCand && !(a.prevF <= a.trigLPS && f > a.trigLPS) {
+			// Most samples: expiration, no start of inspiration in
+			// sight. What track would do, without its two calls.
+			a.vol += 0.5 * (a.prevF + f) * dt
+			a.cur.add(f, a.vol, p)
+			a.buf.add(t, f, a.vol, p)
+			break
+		}
 		done = a.stepExp(t, f, p, dt)
 	}
 	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {

@@ -56,11 +56,15 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	}
 	k = min(k, n)
 
-	var s, sf segment
+	var s segment
 	for i := range pts {
 		s.add(pts[i].f, pts[i].v, pts[i].p)
-		sf.add(pts[i].p, pts[i].v, pts[i].f)
 	}
+	// The sums of flow regressed on pressure and volume are those of
+	// pressure on flow and volume with flow and pressure swapped: the same
+	// products added in the same order (a product of two float64 does not
+	// depend on their order), so no second pass is needed.
+	sf := segment{n: s.n, f: s.p, v: s.v, p: s.f, ff: s.pp, fv: s.vp, vv: s.vv, fp: s.fp, vp: s.fv, pp: s.ff}
 	fr := s.fit()
 	if fr.singular {
 		// Constant flow: P = E·V + P1 by simple regression.
