@@ -61,6 +61,16 @@ func (j *Judge) Samples(ss []ingest.Sample, nowS float64, wall time.Time, emit f
 	j.update(wall, emit)
 }
 
+// SamplesAt is Samples for a caller whose wall time is a function of the
+// stream time (offline, see OfflineClock.Wall): wallOf(nowS) is made only
+// when a finding is to be judged, not for every sample.
+func (j *Judge) SamplesAt(ss []ingest.Sample, nowS float64, wallOf func(float64) time.Time, emit func(*Event)) {
+	j.scratch = j.det.Samples(ss, nowS, j.scratch[:0])
+	if len(j.scratch) > 0 {
+		j.update(wallOf(nowS), emit)
+	}
+}
+
 // Breath judges a completed breath (the physiological conditions).
 func (j *Judge) Breath(b *analyze.Breath, wall time.Time, emit func(*Event)) {
 	j.scratch = j.det.Breath(b, j.scratch[:0])
