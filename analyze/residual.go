@@ -56,10 +56,23 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	}
 	k = min(k, n)
 
-	var s segment
+	// The sums of segment.add, in locals (registers, not memory) and in
+	// the same order; the extremes are not needed here.
+	var sn, sF, sV, sP, sFF, sFV, sVV, sFP, sVP, sPP float64
 	for i := range pts {
-		s.add(pts[i].f, pts[i].v, pts[i].p)
+		f, v, p := pts[i].f, pts[i].v, pts[i].p
+		sn++
+		sF += f
+		sV += v
+		sP += p
+		sFF += f * f
+		sFV += f * v
+		sVV += v * v
+		sFP += f * p
+		sVP += v * p
+		sPP += p * p
 	}
+	s := segment{n: sn, f: sF, v: sV, p: sP, ff: sFF, fv: sFV, vv: sVV, fp: sFP, vp: sVP, pp: sPP}
 	// The sums of flow regressed on pressure and volume are those of
 	// pressure on flow and volume with flow and pressure swapped: the same
 	// products added in the same order (a product of two float64 does not
@@ -208,7 +221,7 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 		return nan, nan, nan
 	}
 	lo, hi = lo*vte, hi*vte
-	var l linreg
+	var n, sx, sy, sxx, sxy, syy float64 // linreg.add in registers
 	for i := 0; i < a.buf.n; i++ {
 		q := &a.buf.pts[i]
 		if q.t < a.expStartT {
@@ -218,9 +231,16 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 			break
 		}
 		if x := a.expStartV - q.v; x >= lo && x <= hi {
-			l.add(x, -q.f)
+			y := -q.f
+			n++
+			sx += x
+			sy += y
+			sxx += x * x
+			sxy += x * y
+			syy += y * y
 		}
 	}
+	l := linreg{n, sx, sy, sxx, sxy, syy}
 	tau = l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
 		return nan, nan, nan
@@ -237,7 +257,7 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 // the late flow, so a volume window would still see the fast units.
 func (a *Analyzer) tauLate(endT float64) float64 {
 	from := a.expStartT + (endT-a.expStartT)*2/3
-	var l linreg
+	var n, sx, sy, sxx, sxy, syy float64 // linreg.add in registers
 	for i := 0; i < a.buf.n; i++ {
 		q := &a.buf.pts[i]
 		if q.t < from {
@@ -246,8 +266,15 @@ func (a *Analyzer) tauLate(endT float64) float64 {
 		if q.t >= endT {
 			break
 		}
-		l.add(a.expStartV-q.v, -q.f)
+		x, y := a.expStartV-q.v, -q.f
+		n++
+		sx += x
+		sy += y
+		sxx += x * x
+		sxy += x * y
+		syy += y * y
 	}
+	l := linreg{n, sx, sy, sxx, sxy, syy}
 	tau := l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
 		return math.NaN()
