@@ -111,6 +111,14 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 		t.meanS += (d - t.meanS) / float64(t.nMean)
 	}
 	if t.nMean >= window {
+		if math.Abs(t.meanS-p) <= 0.8*(DriftTolerance/2)*p {
+			// The mean is well within both thresholds (a fifth below the
+			// lower one, far beyond rounding), as on almost every sample:
+			// the relative deviation, a division, would not change the
+			// verdict, which is no drift.
+			t.drifting = false
+			return out, keep, 0, false
+		}
 		dev := math.Abs(t.meanS/p - 1)
 		switch {
 		case !t.drifting && dev > DriftTolerance:
