@@ -117,6 +117,10 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 func windowedResidual(rs []float64, k int) (worst, noise float64) {
 	n := len(rs)
 	sum, sd, prev := 0.0, 0.0, 0.0
+	// The largest |sum|, divided by k once at the end: a correctly rounded
+	// division by a positive number never reverses an order, so the
+	// largest quotient is the quotient of the largest sum.
+	worstSum := 0.0
 	for i, r := range rs {
 		if i > 0 {
 			sd += (r - prev) * (r - prev)
@@ -127,13 +131,13 @@ func windowedResidual(rs []float64, k int) (worst, noise float64) {
 			sum -= rs[i-k]
 		}
 		if i >= k-1 {
-			if m := math.Abs(sum) / float64(k); m > worst {
-				worst = m
+			if m := math.Abs(sum); m > worstSum {
+				worstSum = m
 			}
 		}
 	}
 	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))
-	return worst, noise
+	return worstSum / float64(k), noise
 }
 
 // linreg accumulates a simple linear regression y = a + b·x.

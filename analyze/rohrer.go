@@ -40,7 +40,7 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	// Go array lives in memory, and a load and store per term and point
 	// cost more than the arithmetic. The order of the additions is the
 	// same, so the sums are the same.
-	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s33, s34, s44 float64
+	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s34, s44 float64
 	n := 0
 	nextStep := false // whether the flow steps from point i to point i+1
 	for i := range pts {
@@ -67,11 +67,11 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		s22 += v * v
 		s23 += v
 		s24 += v * p
-		s33++
 		s34 += p
 		s44 += p * p
 		n++
 	}
+	s33 := float64(n) // the count, exact as a float64
 	s := [5][5]float64{ // normal equations of [f, f|f|, v, 1] against p in column 4
 		{s00, s01, s02, s03, s04},
 		{s01, s11, s12, s13, s14},
