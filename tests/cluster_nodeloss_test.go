@@ -166,53 +166,88 @@ func fileSamples(t *testing.T, path string) int {
 func storedSamples(ctx context.Context, js jetstream.JetStream, limit time.Duration) (map[string]int, map[string]map[uint64]int, error) {
 	ctx, cancel := context.WithTimeout(ctx, limit)
 	defer cancel()
-	c, err := js.OrderedConsumer(ctx, "TRAPLINE_SAMPLES", jetstream.OrderedConsumerConfig{})
-	if err != nil {
-		return nil, nil, err
+	samples, seqs := map[string]int{}, map[string]map[uint64]int{}
+	next, read := uint64(1), 0
+	// A consumer that fails mid-read (a node still catching up, a pull
+	// request that finds nobody) is made again from the next sequence, a
+	// few times, so a long read-back does not start over.
+	for failures := 0; ; {
+		done, err := readSamplesFrom(ctx, js, &next, &read, samples, seqs)
+		if done {
+			return samples, seqs, nil
+		}
+		if failures++; failures > 5 || ctx.Err() != nil {
+			return nil, nil, fmt.Errorf("after %d messages: %w", read, err)
+		}
+		time.Sleep(500 * time.Millisecond) // bounded by the five attempts
 	}
+}
+
+// readSamplesFrom reads the samples stream from sequence *next to its end
+// through one consumer, counting into samples and seqs; done is false when
+// the consumer failed before the end.
+func readSamplesFrom(ctx context.Context, js jetstream.JetStream, next *uint64, read *int, samples map[string]int, seqs map[string]map[uint64]int) (bool, error) {
+	c, err := js.CreateConsumer(ctx, "TRAPLINE_SAMPLES", jetstream.ConsumerConfig{AckPolicy: jetstream.AckNonePolicy,
+		DeliverPolicy: jetstream.DeliverByStartSequencePolicy, OptStartSeq: *next, MemoryStorage: true, InactiveThreshold: time.Minute})
+	if err != nil {
+		return false, err
+	}
+	defer func() { _ = js.DeleteConsumer(context.WithoutCancel(ctx), "TRAPLINE_SAMPLES", c.CachedInfo().Name) }()
 	info, err := c.Info(ctx)
 	if err != nil {
-		return nil, nil, err
+		return false, err
 	}
-	samples, seqs := map[string]int{}, map[string]map[uint64]int{}
 	for left := info.NumPending; left > 0; {
 		batch, err := c.Fetch(int(min(left, 1000)), jetstream.FetchMaxWait(3*time.Second))
 		if err != nil {
-			return nil, nil, err
+			return false, err
 		}
 		n := 0
 		for m := range batch.Messages() {
 			n++
-			id := m.Headers().Get(jetstream.MsgIDHeader)
-			parts := strings.Split(id, "/")
-			if len(parts) != 3 {
-				return nil, nil, fmt.Errorf("stored message without a batch id: %q", id)
+			if err := countSamples(m, samples, seqs); err != nil {
+				return false, err
 			}
-			seq, err := strconv.ParseUint(parts[2], 10, 64)
-			if err != nil {
-				return nil, nil, fmt.Errorf("message id %q: %w", id, err)
-			}
-			if seqs[parts[0]] == nil {
-				seqs[parts[0]] = map[uint64]int{}
-			}
-			seqs[parts[0]][seq]++
-			dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: parts[0]}, func(string, ingest.Sample) { samples[parts[0]]++ })
-			if err != nil {
-				return nil, nil, err
-			}
-			if _, err := dec.Write(m.Data()); err != nil {
-				return nil, nil, fmt.Errorf("message %s: %w", id, err)
+			if meta, err := m.Metadata(); err == nil {
+				*next = meta.Sequence.Stream + 1
 			}
 		}
+		*read += n
 		if batch.Error() != nil {
-			return nil, nil, batch.Error()
+			return false, batch.Error()
 		}
 		if n == 0 {
-			return nil, nil, fmt.Errorf("samples stream: %d pending, none delivered", left)
+			return false, fmt.Errorf("samples stream: %d pending, none delivered", left)
 		}
 		left -= uint64(n)
 	}
-	return samples, seqs, nil
+	return true, nil
+}
+
+// countSamples counts one samples message: its batch under its stream and
+// the samples it holds.
+func countSamples(m jetstream.Msg, samples map[string]int, seqs map[string]map[uint64]int) error {
+	id := m.Headers().Get(jetstream.MsgIDHeader)
+	parts := strings.Split(id, "/")
+	if len(parts) != 3 {
+		return fmt.Errorf("stored message without a batch id: %q", id)
+	}
+	seq, err := strconv.ParseUint(parts[2], 10, 64)
+	if err != nil {
+		return fmt.Errorf("message id %q: %w", id, err)
+	}
+	if seqs[parts[0]] == nil {
+		seqs[parts[0]] = map[uint64]int{}
+	}
+	seqs[parts[0]][seq]++
+	dec, err := ingest.NewBinaryDecoder(ingest.DecoderOptions{Stream: parts[0]}, func(string, ingest.Sample) { samples[parts[0]]++ })
+	if err != nil {
+		return err
+	}
+	if _, err := dec.Write(m.Data()); err != nil {
+		return fmt.Errorf("message %s: %w", id, err)
+	}
+	return nil
 }
 
 // checkSamplesOnce checks that every sample of every stream's recording is

@@ -114,6 +114,12 @@ scaleout: {partitions: 16, worker_id: %s}
 	// In the middle, one node is shut down and restarted 10 s later.
 	time.Sleep(time.Duration(secs/2) * time.Second) // bounded: the first half
 	c.restartNode(t, 1, 10*time.Second)
+	back := time.Now()
+	if pollUntil(3*time.Minute, func() bool { return c.srv[1].JetStreamIsCurrent() }) {
+		t.Logf("restarted node current again %.1f s after its restart", time.Since(back).Seconds())
+	} else {
+		t.Log("restarted node not current 3 min after its restart")
+	}
 	time.Sleep(time.Until(start.Add(time.Duration(secs) * time.Second))) // bounded: the rest
 	elapsed := time.Since(start).Seconds()
 	var ru1 syscall.Rusage
@@ -140,8 +146,17 @@ scaleout: {partitions: 16, worker_id: %s}
 	// and the edge neither failed nor dropped a message.
 	var seqs map[string]map[uint64]int
 	var perStream map[string]int
+	// Read back through a node whose JetStream is current: a node that is
+	// still recovering its store answers its clients' API requests with no
+	// responders.
 	if !pollUntil(3*time.Minute, func() bool {
-		perStream, seqs, err = storedSamples(t.Context(), jsNew(t, nc), 5*time.Minute)
+		rc, cerr := nats.Connect(c.currentURL())
+		if cerr != nil {
+			err = cerr
+			return false
+		}
+		defer rc.Close()
+		perStream, seqs, err = storedSamples(t.Context(), jsNew(t, rc), 5*time.Minute)
 		return err == nil
 	}) {
 		t.Errorf("read the samples stream: %v", err)
@@ -195,6 +210,17 @@ scaleout: {partitions: 16, worker_id: %s}
 }
 
 // jsNew returns a JetStream context on nc.
+// currentURL returns the client URL of a running node whose JetStream is
+// current, or of every node when none is.
+func (c *cluster) currentURL() string {
+	for _, s := range c.srv {
+		if s != nil && s.Running() && s.JetStreamIsCurrent() {
+			return s.ClientURL()
+		}
+	}
+	return c.urls()
+}
+
 func jsNew(t *testing.T, nc *nats.Conn) jetstream.JetStream {
 	t.Helper()
 	js, err := jetstream.New(nc)

@@ -186,7 +186,9 @@ func (m *members) heard(e jetstream.KeyValueEntry, initial bool) {
 	}
 	m.mu.Lock()
 	defer m.mu.Unlock()
-	if e.Key() == m.id && !initial {
+	// This worker's own key, even as a stored value delivered when the
+	// watch begins, shows that the watch delivers.
+	if e.Key() == m.id {
 		m.echoed = now
 		if m.blind {
 			m.blind = false

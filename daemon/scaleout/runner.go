@@ -57,7 +57,7 @@ type partition struct {
 	// ckptFailing is set while checkpoint writes fail for a reason other
 	// than fencing; it keeps the warning to one per episode.
 	ckptFailing bool
-	acks    chan streamAck
+	acks        chan streamAck
 }
 
 // runPartition claims partition p, rebuilds the state of its streams from
