@@ -71,7 +71,7 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		s44 += p * p
 		n++
 	}
-	s33 := float64(n) // the count, exact as a float64
+	s33 := float64(n)   // the count, exact as a float64
 	s := [5][5]float64{ // normal equations of [f, f|f|, v, 1] against p in column 4
 		{s00, s01, s02, s03, s04},
 		{s01, s11, s12, s13, s14},
