@@ -47,6 +47,9 @@ func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
 	cfg.M = min(max(cfg.M, 1), maxAirTrappingWindow)
 	cfg.N = min(max(cfg.N, 1), cfg.M)
 	cfg.ClearN = min(max(cfg.ClearN, 1), cfg.N)
+	if !(cfg.ClearFraction > 0 && cfg.ClearFraction <= 1) {
+		cfg.ClearFraction = 1 // no hysteresis of the magnitude
+	}
 	return &AirTrapping{cfg: cfg, buf: make([]float64, 0, maxAirTrappingWindow)}
 }
 
@@ -102,7 +105,15 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 	}
 	// Unknown Te/τ neither vetoes nor supports.
 	tauOK := math.IsNaN(cur.teOvTau) || cur.teOvTau < cfg.TeOverTauMax
-	pos := (mag(1) || (building && mag(0.5))) && tauOK && !b.HasFlag(FlagArtifact)
+	// Hysteresis of the magnitude: once present, a breath counts from
+	// ClearFraction of the thresholds, so estimates scattering around the
+	// raising threshold for an unchanged patient do not clear the alarm
+	// only to raise it again a few breaths later.
+	k := 1.0
+	if d.present {
+		k = cfg.ClearFraction
+	}
+	pos := (mag(k) || (building && mag(0.5*k))) && tauOK && !b.HasFlag(FlagArtifact)
 	d.ring[idx].positive = pos
 
 	count := d.positiveCount()
@@ -143,6 +154,29 @@ func (d *AirTrapping) Breath(b *Breath, dst []Finding) []Finding {
 
 	d.predict(&f, &cur)
 	return append(dst, f)
+}
+
+// offsetShare returns the factor that takes out of a slow-end bound
+// (flag peepi-bound) the part an expiratory flow offset not yet removed
+// would explain, 1 when there is none. Before the analyzer's offset and
+// leak estimate is ready (no correction applied to b), a constant
+// expiratory offset c makes a breath expire c·Ttot more than it received
+// and adds c to the end-expiratory flow, which is what a slow compartment
+// still emptying looks like; the end-expiratory-flow route scales with
+// that flow (trapped volume τ·|EEF|), so the bound is scaled by
+// (|EEF| − c)/|EEF|, c read from the breath's own volume balance (mass
+// balance; derived). A lung that truly loses volume in its first breaths
+// is read low for those breaths, the safer error while the flow is not
+// yet trustworthy.
+func offsetShare(b *Breath) float64 {
+	if !b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
+		return 1
+	}
+	lostL, tS, eef := (b.VteML-b.VtiML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
+	if !(lostL > 0 && tS > 0 && eef > 0) {
+		return 1
+	}
+	return math.Max(0, 1-60*lostL/tS/eef)
 }
 
 // positiveCount returns how many breaths of the window are positive.
@@ -273,6 +307,9 @@ func atBreathOf(b *Breath) atBreath {
 		vtML:    detFirstFinite(b.VtiML, b.VteML),
 		dVolML:  b.VtiML - b.VteML,
 		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
+	}
+	if k := offsetShare(b); k < 1 {
+		cur.peepi, cur.trapped = k*cur.peepi, k*cur.trapped
 	}
 	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
 		cur.teOvTau = cur.teS / cur.tauS

@@ -21,6 +21,7 @@ func TestDetectorConfigValidate(t *testing.T) {
 		{"n above m", func(c *DetectorConfig) { c.AirTrapping.N = 7 }, []string{"detectors.air_trapping.n: must be between 1 and m (6)"}},
 		{"n zero", func(c *DetectorConfig) { c.AirTrapping.N, c.AirTrapping.ClearN = 0, 1 }, []string{"detectors.air_trapping.n: must be between 1 and m (6)"}},
 		{"clear_n above n", func(c *DetectorConfig) { c.AirTrapping.ClearN = 5 }, []string{"detectors.air_trapping.clear_n: must be between 1 and n (4)"}},
+		{"clear fraction above one", func(c *DetectorConfig) { c.AirTrapping.ClearFraction = 1.2 }, []string{"detectors.air_trapping.clear_fraction: must be above 0 and at most 1"}},
 		{"negative eef", func(c *DetectorConfig) { c.AirTrapping.EEFLPM = -1 }, []string{"detectors.air_trapping.eef_lpm: must be a positive number"}},
 		{"high below medium", func(c *DetectorConfig) { c.AirTrapping.HighPEEPiCmH2O = 4 }, []string{"detectors.air_trapping.high_peepi_cmh2o: must be at least medium_peepi_cmh2o (5)"}},
 		{"clear slope above slope", func(c *DetectorConfig) { c.RisingPeak.ClearSlopePctPerMin = 2 }, []string{"detectors.rising_peak_pressure.clear_slope_pct_per_min: must be between 0 and slope_pct_per_min (1.5)"}},

@@ -1,0 +1,91 @@
+package analyze_test
+
+import (
+	"math"
+	"testing"
+
+	"trapline/analyze"
+	"trapline/simulator"
+)
+
+// TestAirTrappingUncorrectedExpiratoryOffset runs a lung of two units whose
+// time constants differ tenfold (parallel units behind a shared airway,
+// after Otis AB et al., J Appl Physiol 1956;8:427) at a resistance of 5
+// cmH2O·s/L on pressure control, seen by a sensor that reads 1 L/min too
+// much expiratory flow. Its true intrinsic PEEP stays near 0.6 cmH2O, under
+// the 1 cmH2O below which trapping is taken as absent (docs/sweep.md). In
+// the first breaths, before the analyzer's offset estimate is ready, the
+// offset keeps the flow expiratory at the end of every expiration, the
+// breaths carry a slow-end bound of about 1.8 cmH2O, and the alarm was
+// raised: it must not be. The same lung without the offset is the control.
+func TestAirTrappingUncorrectedExpiratoryOffset(t *testing.T) {
+	for _, offsetLPM := range []float64{-1, 0} {
+		sc := simulator.NewScenario()
+		sc.DurationS, sc.SampleRateHz, sc.Seed, sc.StepS = 120, 50, 1, 0.004
+		const r, q = 5.0, 10.0
+		k := 0.6 * (1 + 1/q) // units k·R and q·k·R in parallel: 0.6·R
+		sc.Patient.Model = simulator.ModelTwoCompartment
+		sc.Patient.AirwayResistanceCmH2OSPerL = 0.4 * r
+		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.Resistance2CmH2OSPerL = k*r, q*k*r
+		sc.Patient.ExpResistanceCmH2OSPerL = k * r
+		sc.Patient.ComplianceMLPerCmH2O, sc.Patient.Compliance2MLPerCmH2O = 25, 25
+		sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
+			RateBPM: 20, PEEPCmH2O: 5}
+		sc.Sensor = simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3, FlowOffsetLPM: offsetLPM}
+		pairs := simulate(t, sc)
+		d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
+		maxTrue := 0.0
+		for i := range pairs {
+			maxTrue = math.Max(maxTrue, pairs[i].tr.PEEPiCmH2O)
+			if f := d.Breath(&pairs[i].b, nil)[0]; f.Present {
+				t.Errorf("offset %g L/min, breath %d: air trapping present (%s) at a true intrinsic PEEP of %.2f cmH2O",
+					offsetLPM, pairs[i].b.Seq, f.Message, pairs[i].tr.PEEPiCmH2O)
+				break
+			}
+		}
+		if len(pairs) < 30 || maxTrue >= 1 {
+			t.Fatalf("offset %g L/min: %d breaths, true intrinsic PEEP up to %.2f cmH2O; want about 40 breaths under 1 cmH2O", offsetLPM, len(pairs), maxTrue)
+		}
+	}
+}
+
+// TestOffsetShareRemovesAConstantOffset: a constant expiratory flow offset
+// c adds c·Ttot to the expired volume and c to the end-expiratory flow
+// (mass balance; derived), so the share of a slow-end bound that remains
+// is |EEF|/(|EEF| + c). The lung is check case 1 of docs/formulas.md (end-
+// expiratory flow 11.40 L/min, Ttot 2.5 s, derived from the steady state
+// of the linear single compartment; Marini JJ, Crooke PS, Truwit JD, J
+// Appl Physiol 1989;67:1081 for the analogous forms) seen with an offset of
+// 2 L/min, which makes it expire 83.3 mL more than it received.
+func TestOffsetShareRemovesAConstantOffset(t *testing.T) {
+	const eefLPM, cLPM, tiS, teS = 11.40, 2.0, 0.8, 1.7
+	const trueIntrinsic = 4.75
+	b := analyze.NewBreath()
+	b.Flags = []string{analyze.FlagPEEPiBound}
+	b.TiS, b.TeS = tiS, teS
+	b.VtiML, b.VteML = 600, 600+cLPM/60*(tiS+teS)*1000
+	b.EndExpFlowLPM = eefLPM + cLPM
+	// The bound of the end-expiratory-flow route scales with the flow.
+	b.PEEPiCmH2O = trueIntrinsic * (eefLPM + cLPM) / eefLPM
+	b.TrappedML, b.FlowOffsetLPM, b.LeakLPMPerCmH2O = 285*(eefLPM+cLPM)/eefLPM, 0, 0
+	b.TeOverTau = 3.5 // never positive: only the reported evidence is read
+	for _, tt := range []struct {
+		name   string
+		change func(*analyze.Breath)
+		want   float64
+	}{
+		{"uncorrected bound", func(*analyze.Breath) {}, trueIntrinsic},
+		{"offset already removed", func(b *analyze.Breath) { b.FlowOffsetLPM = -2 }, b.PEEPiCmH2O},
+		{"not a bound", func(b *analyze.Breath) { b.Flags = nil }, b.PEEPiCmH2O},
+	} {
+		t.Run(tt.name, func(t *testing.T) {
+			c := b
+			tt.change(&c)
+			d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
+			f := d.Breath(&c, nil)[0]
+			if got := f.Evidence["peepi_cmh2o"]; math.Abs(got-tt.want) > 0.01 {
+				t.Errorf("intrinsic PEEP evidence %.3f cmH2O, want %.3f", got, tt.want)
+			}
+		})
+	}
+}
