@@ -207,6 +207,17 @@ func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
 	return Breath{}, false
 }
 
+// Next is Push without the copy of the record: it returns the breath that
+// the sample completed, or nil. The record belongs to the analyzer and is
+// valid until the next call of Next, Push or Reset; a caller that keeps it
+// copies it.
+func (a *Analyzer) Next(s ingest.Sample) *Breath {
+	if a.push(s) {
+		return &a.last
+	}
+	return nil
+}
+
 // push is Push without the copy of the record (a Breath is a few hundred
 // bytes; copying one per sample would dominate the cost of analysis). It
 // reports whether a.last holds a newly completed breath.
@@ -258,6 +269,14 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	case phaseInsp:
 		a.stepInsp(t, f, p, dt)
 	case phaseExp:
+		if !a.inCand && !(a.prevF <= a.trigLPS && f > a.trigLPS) {
+			// Most samples: expiration, no start of inspiration in
+			// sight. What track would do, without its two calls.
+			a.vol += 0.5 * (a.prevF + f) * dt
+			a.cur.add(f, a.vol, p)
+			a.buf.add(t, f, a.vol, p)
+			break
+		}
 		done = a.stepExp(t, f, p, dt)
 	}
 	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {

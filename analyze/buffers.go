@@ -97,14 +97,23 @@ type decimator struct {
 	stride int
 	acc    point
 	accN   int
+	inv    float64 // 1/stride: a bin is emitted when it holds stride samples
 }
 
 func (d *decimator) reset() {
-	d.n, d.stride, d.accN = 0, 1, 0
+	d.n, d.stride, d.accN, d.inv = 0, 1, 0, 1
 	d.acc = point{}
 }
 
 func (d *decimator) add(t, f, v, p float64) {
+	if d.stride == 1 && d.n < bufCap-1 {
+		// A bin of one sample: its mean is the sample itself. 0+x, not
+		// x, so that a −0 becomes +0 as the sum starting from zero makes
+		// it, and the points are the same as through the sums.
+		d.pts[d.n] = point{0 + t, 0 + f, 0 + v, 0 + p}
+		d.n++
+		return
+	}
 	d.acc.t += t
 	d.acc.f += f
 	d.acc.v += v
@@ -113,7 +122,7 @@ func (d *decimator) add(t, f, v, p float64) {
 	if d.accN < d.stride {
 		return
 	}
-	k := 1 / float64(d.accN)
+	k := d.inv // 1/float64(d.accN), computed once a stride
 	d.pts[d.n] = point{d.acc.t * k, d.acc.f * k, d.acc.v * k, d.acc.p * k}
 	d.n++
 	d.acc = point{}
@@ -127,4 +136,5 @@ func (d *decimator) add(t, f, v, p float64) {
 	}
 	d.n = bufCap / 2
 	d.stride *= 2
+	d.inv = 1 / float64(d.stride)
 }
