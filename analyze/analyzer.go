@@ -157,6 +157,11 @@ func NewAnalyzer(stream string, cfg Config) *Analyzer {
 	a := &Analyzer{stream: stream, cfg: cfg}
 	a.trigLPS = cfg.TriggerFlowLPM / 60
 	a.pauseFlowLPS = cfg.PauseFlowLPM / 60
+	// The ring must reach back past the longest window read from it: the
+	// onset search (onsetLookbackS, or onsetBaseS of baseline) and the end
+	// windows, each seen up to a confirmation delay later; twice that
+	// leaves a margin.
+	a.ring = newRing(2 * (onsetLookbackS + cfg.HoldS + max(onsetBaseS, cfg.EndExpWindowS, cfg.PlateauWindowS)))
 	a.Reset()
 	return a
 }
@@ -235,6 +240,9 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	}
 	// The sensor's offset and the leak, as estimated so far.
 	f -= a.offB + a.leakK*p
+	if a.ring.next == 0 {
+		a.ring.lap(t) // before the write that comes back to slot 0
+	}
 	if !a.havePrev {
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
