@@ -172,6 +172,18 @@ func traplineAnalyze(b *testing.B, path string, workers int) (samples, breaths i
 	return int(st.Samples), int(total.Load())
 }
 
+// naiveFile runs the naive baseline on the file at path and returns the
+// samples read and the breaths cut.
+func naiveFile(b *testing.B, path string) (samples, breaths int) {
+	f, err := os.Open(path)
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer f.Close()
+	samples, breaths, _ = naiveAnalyze(f)
+	return samples, breaths
+}
+
 // BenchmarkOfflineVsNaive reads a 1 h, 200 Hz recording of one patient
 // with the naive baseline and with trapline (decoding and analysis on one
 // goroutine, then on two), each iteration running all three, and reports
@@ -182,16 +194,7 @@ func BenchmarkOfflineVsNaive(b *testing.B) {
 	var naive, serial, piped measure
 	var nb, sb, pb int
 	for b.Loop() {
-		naive.run(func() int {
-			f, err := os.Open(path)
-			if err != nil {
-				b.Fatal(err)
-			}
-			defer f.Close()
-			k, br, _ := naiveAnalyze(f)
-			nb = br
-			return k
-		})
+		naive.run(func() int { k, br := naiveFile(b, path); nb = br; return k })
 		serial.run(func() int { k, br := traplineAnalyze(b, path, 0); sb = br; return k })
 		piped.run(func() int { k, br := traplineAnalyze(b, path, 1); pb = br; return k })
 	}
@@ -224,16 +227,7 @@ func BenchmarkAnalyzeVsNaive(b *testing.B) {
 	var nb int
 	var out lineCounter
 	for b.Loop() {
-		naive.run(func() int {
-			f, err := os.Open(path)
-			if err != nil {
-				b.Fatal(err)
-			}
-			defer f.Close()
-			k, br, _ := naiveAnalyze(f)
-			nb = br
-			return k
-		})
+		naive.run(func() int { k, br := naiveFile(b, path); nb = br; return k })
 		full.run(func() int {
 			out = lineCounter{}
 			var stderr strings.Builder
