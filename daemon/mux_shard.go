@@ -64,6 +64,7 @@ type muxStream struct {
 	shard *shard
 
 	pl        *pipeline.Pipeline // nil until the shard sees the stream
+	queued    []queuedItem       // its events of the reads a shard takes at once
 	activeIDs map[string]struct{}
 	done      bool // its finite source ended
 
@@ -91,6 +92,8 @@ type shard struct {
 	log  zerolog.Logger
 
 	streams []*muxStream // in order of first event
+	taken   []*work      // reads taken at once (see take)
+	touched []*muxStream // streams with queued events
 	cur     *muxStream   // the stream whose pipeline is running (pipeline.Sink)
 	arrived time.Time
 	// alerts go to the shard's publisher goroutine, so that making one
@@ -140,7 +143,7 @@ func (sh *shard) run(stop, ctx context.Context) error {
 	for {
 		select {
 		case w := <-sh.in:
-			sh.work(w)
+			sh.take(w)
 		case now := <-tick.C:
 			sh.tick(now)
 			if now.Sub(lastStatus) >= 5*time.Second {
@@ -179,26 +182,29 @@ func (sh *shard) work(w *work) {
 			}
 		}
 	}
-	sh.arrived = w.arrived
 	for i := range w.items {
-		it := &w.items[i]
-		st := it.st
-		if st.pl == nil {
-			sh.started(st)
-		}
-		sh.cur = st
-		if it.ev.Status != ingest.StatusNone {
-			st.connected.Store(it.ev.Status != ingest.StatusDisconnected)
-			sh.emit(st.pl.Status(it.ev, w.arrived))
-		}
-		if len(it.ev.Samples) > 0 {
-			st.connected.Store(true)
-			st.pl.Push(it.ev.Samples, sh)
-		}
+		sh.item(&w.items[i], w.arrived)
 	}
 	sh.cur = nil
 	sh.arrived = time.Time{}
 	w.release()
+}
+
+// item runs one stream's event of a read that arrived at arrived.
+func (sh *shard) item(it *workItem, arrived time.Time) {
+	st := it.st
+	if st.pl == nil {
+		sh.started(st)
+	}
+	sh.cur, sh.arrived = st, arrived
+	if it.ev.Status != ingest.StatusNone {
+		st.connected.Store(it.ev.Status != ingest.StatusDisconnected)
+		sh.emit(st.pl.Status(it.ev, arrived))
+	}
+	if len(it.ev.Samples) > 0 {
+		st.connected.Store(true)
+		st.pl.Push(it.ev.Samples, sh)
+	}
 }
 
 // tick lets every stream's time-based conditions advance; a stream that
