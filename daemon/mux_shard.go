@@ -91,10 +91,11 @@ type shard struct {
 	done chan struct{}
 	log  zerolog.Logger
 
-	streams []*muxStream // in order of first event
-	taken   []*work      // reads taken at once (see take)
-	touched []*muxStream // streams with queued events
-	cur     *muxStream   // the stream whose pipeline is running (pipeline.Sink)
+	streams []*muxStream    // in order of first event
+	taken   []*work         // reads taken at once (see take)
+	joined  []ingest.Sample // one stream's samples of the reads taken at once
+	touched []*muxStream    // streams with queued events
+	cur     *muxStream      // the stream whose pipeline is running (pipeline.Sink)
 	arrived time.Time
 	// alerts go to the shard's publisher goroutine, so that making one
 	// durable (a write and fsync of the spool) does not hold up the
@@ -202,9 +203,16 @@ func (sh *shard) item(it *workItem, arrived time.Time) {
 		sh.emit(st.pl.Status(it.ev, arrived))
 	}
 	if len(it.ev.Samples) > 0 {
-		st.connected.Store(true)
-		st.pl.Push(it.ev.Samples, sh)
+		sh.push(st, it.ev.Samples)
 	}
+}
+
+// push analyses samples of st, a started stream that sh.cur names.
+func (sh *shard) push(st *muxStream, samples []ingest.Sample) {
+	if !st.connected.Load() {
+		st.connected.Store(true)
+	}
+	st.pl.Push(samples, sh)
 }
 
 // tick lets every stream's time-based conditions advance; a stream that
@@ -311,10 +319,20 @@ func (sh *shard) started(st *muxStream) {
 	s := st.src
 	st.pl = pipeline.New(pipeline.Options{
 		Stream: st.id, Analysis: s.settings.Analysis, Detectors: s.settings.Detectors,
-		Alarms: s.settings.Alarms, Stats: s.src.Stats,
+		Alarms: s.settings.Alarms, Stats: s.src.Stats, Now: sh.wall,
 	})
 	st.activeIDs = map[string]struct{}{}
 	sh.streams = append(sh.streams, st)
+}
+
+// wall is the pipelines' clock: the time the read being analysed was
+// decoded, which is when its samples arrived (and saves reading the clock
+// for every read of every stream), or the present outside a read.
+func (sh *shard) wall() time.Time {
+	if !sh.arrived.IsZero() {
+		return sh.arrived
+	}
+	return time.Now()
 }
 
 // ticked runs after each tick of a running stream.

@@ -1,6 +1,10 @@
 package daemon
 
-import "time"
+import (
+	"time"
+
+	"trapline/ingest"
+)
 
 // When a shard falls behind, its queue holds many reads, each with one or a
 // few samples of each of many streams, and running them read by read
@@ -65,9 +69,7 @@ func (sh *shard) runTogether(ws []*work) {
 		}
 	}
 	for _, st := range touched {
-		for _, q := range st.queued {
-			sh.item(q.it, q.arrived)
-		}
+		sh.runQueued(st)
 		clear(st.queued)
 		st.queued = st.queued[:0]
 	}
@@ -77,4 +79,28 @@ func (sh *shard) runTogether(ws []*work) {
 	for _, w := range ws {
 		w.release()
 	}
+}
+
+// runQueued runs st's queued events in order. Samples alone (no change of
+// the source's condition among them) are joined and analysed in one push:
+// one visit of the pipeline, one reading of the clock. The breath latency
+// then counts from the earliest of the reads.
+func (sh *shard) runQueued(st *muxStream) {
+	q := st.queued
+	joined := sh.joined[:0]
+	for _, x := range q {
+		if x.it.ev.Status != ingest.StatusNone || st.pl == nil {
+			for _, x := range q {
+				sh.item(x.it, x.arrived)
+			}
+			return
+		}
+		joined = append(joined, x.it.ev.Samples...)
+	}
+	sh.joined = joined[:0]
+	if len(joined) == 0 {
+		return
+	}
+	sh.cur, sh.arrived = st, q[0].arrived
+	sh.push(st, joined)
 }

@@ -78,7 +78,11 @@ sources:
 	if err := os.WriteFile(cfgPath, []byte(cfg), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	proc := startDaemonProcess(t, "run", "--config", cfgPath)
+	args := []string{"run", "--config", cfgPath}
+	if prof := os.Getenv("TRAPLINE_SOAK_CPU_PROFILE"); prof != "" {
+		args = append(args, "--cpu-profile", prof) // written when the daemon stops
+	}
+	proc := startDaemonProcess(t, args...)
 	var nc *nats.Conn
 	waitFor(t, 30*time.Second, "the daemon's NATS server", func() bool {
 		c, err := nats.Connect(fmt.Sprintf("nats://127.0.0.1:%d", natsPort))

@@ -7,6 +7,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"runtime/pprof"
 	"strings"
 	"syscall"
 
@@ -42,6 +43,9 @@ type app struct {
 	stderr   io.Writer
 	logLevel string
 	log      zerolog.Logger
+	// cpuProfile is the file of --cpu-profile; stopProfile ends it.
+	cpuProfile  string
+	stopProfile func()
 }
 
 // Main runs the trapline command line with args (without the program name)
@@ -67,6 +71,9 @@ func Run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	root.SetOut(stdout)
 	root.SetErr(stderr)
 	err := root.ExecuteContext(ctx)
+	if a.stopProfile != nil {
+		a.stopProfile()
+	}
 	if err == nil {
 		return ExitOK
 	}
@@ -92,10 +99,11 @@ func (a *app) rootCommand() *cobra.Command {
 				return &daemon.UsageError{Err: err}
 			}
 			a.log = log
-			return nil
+			return a.startProfile()
 		},
 	}
 	root.PersistentFlags().StringVar(&a.logLevel, "log-level", "info", "log level: trace, debug, info, warn, error")
+	root.PersistentFlags().StringVar(&a.cpuProfile, "cpu-profile", "", "write a CPU profile of the whole run to `FILE` (go tool pprof)")
 	root.SetFlagErrorFunc(func(_ *cobra.Command, err error) error { return &daemon.UsageError{Err: err} })
 	root.AddCommand(
 		a.analyzeCommand(),
@@ -112,6 +120,30 @@ func (a *app) rootCommand() *cobra.Command {
 		a.exportCommand(),
 	)
 	return root
+}
+
+// startProfile starts the CPU profile of --cpu-profile, if one is asked for;
+// Run stops it when the verb returns, so a daemon stopped by a signal
+// writes it too.
+func (a *app) startProfile() error {
+	if a.cpuProfile == "" {
+		return nil
+	}
+	f, err := os.Create(a.cpuProfile)
+	if err != nil {
+		return &daemon.UsageError{Err: fmt.Errorf("--cpu-profile: %w", err)}
+	}
+	if err := pprof.StartCPUProfile(f); err != nil {
+		_ = f.Close()
+		return fmt.Errorf("--cpu-profile: %w", err)
+	}
+	a.stopProfile = func() {
+		pprof.StopCPUProfile()
+		if err := f.Close(); err != nil {
+			a.log.Warn().Err(err).Str("file", a.cpuProfile).Msg("CPU profile not written")
+		}
+	}
+	return nil
 }
 
 // isCobraUsageError recognises cobra's own argument errors (unknown verb,
