@@ -50,9 +50,7 @@ func (f *expFit) remaining(s float64) float64 {
 // the volume still to exhale at the end of expiration is then the sum of
 // each component's amplitude × time constant × its remaining fraction. The
 // second exponential is kept only when it removes twoExpMinGain of the
-// single exponential's residual and both amplitudes are positive. The
-// grid's pair is then refined off the grid and lowered to a confidence
-// bound (expPts.refine).
+// single exponential's residual and both amplitudes are positive.
 func (a *Analyzer) fitTwoExp(vte, endT float64) expFit {
 	var s, y [bufCap]float64
 	n := 0
@@ -108,17 +106,8 @@ func (a *Analyzer) fitTwoExp(vte, endT float64) expFit {
 			}
 		}
 	}
-	if best.two {
-		p := expPts{s: s[:n], y: y[:n]}
-		if h := (s[n-1] - s[0]) / float64(n-1); evenlySpaced(s[:n], h) {
-			p.h = h
-		}
-		p.refine(&best, endT-a.expStartT)
-	}
 	return best
 }
-
-var twoExpRefine = 1
 
 // fitTwoExpIf runs fitTwoExp when cond holds.
 func (a *Analyzer) fitTwoExpIf(cond bool, vte, endT float64) expFit {
