@@ -61,6 +61,16 @@ func (j *Judge) Samples(ss []ingest.Sample, nowS float64, wall time.Time, emit f
 	j.update(wall, emit)
 }
 
+// SamplesAt is Samples for a caller whose wall time is a function of the
+// stream time (offline, see OfflineClock.Wall): wallOf(nowS) is made only
+// when a finding is to be judged, not for every sample.
+func (j *Judge) SamplesAt(ss []ingest.Sample, nowS float64, wallOf func(float64) time.Time, emit func(*Event)) {
+	j.scratch = j.det.Samples(ss, nowS, j.scratch[:0])
+	if len(j.scratch) > 0 {
+		j.update(wallOf(nowS), emit)
+	}
+}
+
 // Breath judges a completed breath (the physiological conditions).
 func (j *Judge) Breath(b *analyze.Breath, wall time.Time, emit func(*Event)) {
 	j.scratch = j.det.Breath(b, j.scratch[:0])
@@ -111,6 +121,14 @@ type OfflineClock struct {
 // Wall returns the wall time of stream time tS.
 func (c *OfflineClock) Wall(tS float64) time.Time {
 	return c.Epoch.Add(time.Duration(tS * float64(time.Second)))
+}
+
+// Due reports whether Until(tS, …) has anything to do: the first call, a
+// clock that went back, or a tick due. A caller that feeds every sample
+// asks it first, so that it makes no tick function for the samples between
+// ticks.
+func (c *OfflineClock) Due(tS float64) bool {
+	return !c.started || tS < c.nextS-OfflineTickS || c.nextS <= tS
 }
 
 // Until calls tick for every tick due up to stream time tS, in order. A

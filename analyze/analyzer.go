@@ -157,6 +157,11 @@ func NewAnalyzer(stream string, cfg Config) *Analyzer {
 	a := &Analyzer{stream: stream, cfg: cfg}
 	a.trigLPS = cfg.TriggerFlowLPM / 60
 	a.pauseFlowLPS = cfg.PauseFlowLPM / 60
+	// The ring must reach back past the longest window read from it: the
+	// onset search (onsetLookbackS, or onsetBaseS of baseline) and the end
+	// windows, each seen up to a confirmation delay later; twice that
+	// leaves a margin.
+	a.ring = newRing(2 * (onsetLookbackS + cfg.HoldS + max(onsetBaseS, cfg.EndExpWindowS, cfg.PlateauWindowS)))
 	a.Reset()
 	return a
 }
@@ -207,6 +212,17 @@ func (a *Analyzer) Push(s ingest.Sample) (Breath, bool) {
 	return Breath{}, false
 }
 
+// Next is Push without the copy of the record: it returns the breath that
+// the sample completed, or nil. The record belongs to the analyzer and is
+// valid until the next call of Next, Push or Reset; a caller that keeps it
+// copies it.
+func (a *Analyzer) Next(s ingest.Sample) *Breath {
+	if a.push(s) {
+		return &a.last
+	}
+	return nil
+}
+
 // push is Push without the copy of the record (a Breath is a few hundred
 // bytes; copying one per sample would dominate the cost of analysis). It
 // reports whether a.last holds a newly completed breath.
@@ -224,6 +240,9 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	}
 	// The sensor's offset and the leak, as estimated so far.
 	f -= a.offB + a.leakK*p
+	if a.ring.next == 0 {
+		a.ring.lap(t) // before the write that comes back to slot 0
+	}
 	if !a.havePrev {
 		a.havePrev = true
 		a.prevT, a.prevF, a.fs = t, f, f
@@ -258,6 +277,14 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	case phaseInsp:
 		a.stepInsp(t, f, p, dt)
 	case phaseExp:
+		if !a.inCand && !(a.prevF <= a.trigLPS && f > a.trigLPS) {
+			// Most samples: expiration, no start of inspiration in
+			// sight. What track would do, without its two calls.
+			a.vol += 0.5 * (a.prevF + f) * dt
+			a.cur.add(f, a.vol, p)
+			a.buf.add(t, f, a.vol, p)
+			break
+		}
 		done = a.stepExp(t, f, p, dt)
 	}
 	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {

@@ -205,6 +205,7 @@ func appendNumber(dst []byte, v float64, prec int) []byte {
 	if math.IsNaN(v) || math.IsInf(v, 0) {
 		return append(dst, "null"...)
 	}
+	start := len(dst)
 	dst = strconv.AppendFloat(dst, v, 'f', prec, 64)
 	// Trim trailing zeros of the fraction so records stay short and read well.
 	if prec > 0 {
@@ -216,9 +217,10 @@ func appendNumber(dst []byte, v float64, prec int) []byte {
 			i--
 		}
 		dst = dst[:i]
-		if len(dst) == 2 && dst[0] == '-' && dst[1] == '0' {
-			dst = append(dst[:0], '0')
-		}
+	}
+	// A small negative value rounds to "-0": write it as 0.
+	if len(dst)-start == 2 && dst[start] == '-' && dst[start+1] == '0' {
+		dst = append(dst[:start], '0')
 	}
 	return dst
 }

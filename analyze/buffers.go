@@ -2,30 +2,69 @@ package analyze
 
 import "math"
 
-// ringSize is the number of raw samples kept for the end-of-phase windows
-// (plateau, end-expiratory pressure and flow): about one second at 1000 Hz,
-// enough for the longest window plus the confirmation delay.
+// ringSize is the most raw samples kept for the end-of-phase windows
+// (plateau, end-expiratory pressure and flow, the onset of the rise):
+// about one second at 1000 Hz, enough for the longest window plus the
+// confirmation delay.
 const ringSize = 1024
+
+// ringMin is the capacity a ring starts with. It grows, doubling up to
+// ringSize, only while a full ring spans less than its keep time, so a
+// 100 Hz stream holds 256 samples (6 KiB) rather than 1024 (24 KiB): with
+// thousands of streams in one process the rings were a third of the memory
+// of a stream.
+const ringMin = 64
 
 // rawSample is one accepted sample in the ring.
 type rawSample struct{ t, p, f float64 }
 
-// ring keeps the last ringSize samples; it never allocates.
+// ring keeps the last len(s) samples; it allocates only when it grows.
 type ring struct {
-	s    [ringSize]rawSample
-	next int // index of the next write
-	n    int // number of valid entries
+	s     []rawSample
+	mask  int     // len(s) - 1 (a power of two)
+	next  int     // index of the next write
+	n     int     // number of valid entries
+	keepS float64 // the span a full ring must cover before it stops growing
+}
+
+func newRing(keepS float64) ring {
+	return ring{s: make([]rawSample, ringMin), mask: ringMin - 1, keepS: keepS}
 }
 
 func (r *ring) reset() { r.next, r.n = 0, 0 }
 
+// push writes a sample. The caller first calls lap when next is 0 (see
+// Analyzer.push): a check inside push would keep it from being inlined
+// where it runs for every sample.
 func (r *ring) push(t, p, f float64) {
 	r.s[r.next] = rawSample{t, p, f}
-	r.next = (r.next + 1) & (ringSize - 1)
-	if r.n < ringSize {
+	r.next = (r.next + 1) & r.mask
+	if r.n <= r.mask {
 		r.n++
 	}
 }
+
+// lap grows a full ring whose oldest sample (slot 0, about to be
+// overwritten) is less than keepS older than t: once a lap, so growing
+// costs one predictable branch per sample. Out of line: it runs once a lap.
+//
+//go:noinline
+func (r *ring) lap(t float64) {
+	if r.n > r.mask && r.mask < ringSize-1 && t-r.s[0].t < r.keepS {
+		r.grow()
+	}
+}
+
+// grow doubles a full ring, keeping its samples in order.
+func (r *ring) grow() {
+	s := make([]rawSample, 2*len(r.s))
+	k := copy(s, r.s[r.next:])
+	copy(s[k:], r.s[:r.next])
+	r.s, r.mask, r.next = s, len(s)-1, len(r.s)
+}
+
+// at returns the k-th newest sample (1: the newest); k <= r.n.
+func (r *ring) at(k int) *rawSample { return &r.s[(r.next-k)&r.mask] }
 
 // window returns the mean pressure and the count of the samples with time in
 // [from, to), and, when at least two are present, the flow at time `to`
@@ -35,7 +74,7 @@ func (r *ring) window(from, to float64) (meanP, flowAtTo, seFlow float64, count 
 	var sp, st, sf, stt, stf, sff float64
 	lastF := 0.0
 	for k := 1; k <= r.n; k++ {
-		e := &r.s[(r.next-k)&(ringSize-1)]
+		e := r.at(k)
 		if e.t >= to {
 			continue
 		}
@@ -97,14 +136,23 @@ type decimator struct {
 	stride int
 	acc    point
 	accN   int
+	inv    float64 // 1/stride: a bin is emitted when it holds stride samples
 }
 
 func (d *decimator) reset() {
-	d.n, d.stride, d.accN = 0, 1, 0
+	d.n, d.stride, d.accN, d.inv = 0, 1, 0, 1
 	d.acc = point{}
 }
 
 func (d *decimator) add(t, f, v, p float64) {
+	if d.stride == 1 && d.n < bufCap-1 {
+		// A bin of one sample: its mean is the sample itself. 0+x, not
+		// x, so that a −0 becomes +0 as the sum starting from zero makes
+		// it, and the points are the same as through the sums.
+		d.pts[d.n] = point{0 + t, 0 + f, 0 + v, 0 + p}
+		d.n++
+		return
+	}
 	d.acc.t += t
 	d.acc.f += f
 	d.acc.v += v
@@ -113,7 +161,7 @@ func (d *decimator) add(t, f, v, p float64) {
 	if d.accN < d.stride {
 		return
 	}
-	k := 1 / float64(d.accN)
+	k := d.inv // 1/float64(d.accN), computed once a stride
 	d.pts[d.n] = point{d.acc.t * k, d.acc.f * k, d.acc.v * k, d.acc.p * k}
 	d.n++
 	d.acc = point{}
@@ -127,4 +175,5 @@ func (d *decimator) add(t, f, v, p float64) {
 	}
 	d.n = bufCap / 2
 	d.stride *= 2
+	d.inv = 1 / float64(d.stride)
 }

@@ -13,12 +13,22 @@ import (
 type Limits struct {
 	cfg     LimitsConfig
 	present [3]bool
+	// below holds the message of each limit when absent, which depends
+	// on the configuration only: made once rather than formatted for
+	// every breath.
+	below [3]string
 }
 
 var _ BreathDetector = (*Limits)(nil)
 
 // NewLimits returns the absolute-limit detector; cfg must be valid.
-func NewLimits(cfg LimitsConfig) *Limits { return &Limits{cfg: cfg} }
+func NewLimits(cfg LimitsConfig) *Limits {
+	d := &Limits{cfg: cfg}
+	for i, l := range d.limits() {
+		d.below[i] = fmt.Sprintf("%s below the limit of %g cmH2O", l.name, l.cfg.LimitCmH2O)
+	}
+	return d
+}
 
 // Conditions implements BreathDetector.
 func (d *Limits) Conditions() []string {
@@ -98,15 +108,17 @@ func (d *Limits) Breath(b *Breath, dst []Finding) []Finding {
 			if v >= l.cfg.LimitCmH2O+l.cfg.HighMarginCmH2O {
 				f.Severity = SeverityHigh
 			}
+		}
+		switch {
+		case math.IsNaN(v):
+			f.Message = l.name + " unknown on this breath; verdict unchanged"
+		case f.Present:
 			f.Message = fmt.Sprintf("%s %.1f cmH2O at or above the limit of %g cmH2O", l.name, v, l.cfg.LimitCmH2O)
-		} else {
-			f.Message = fmt.Sprintf("%s below the limit of %g cmH2O", l.name, l.cfg.LimitCmH2O)
+		default:
+			f.Message = d.below[i]
 		}
-		if estimated && i > 0 {
+		if estimated && i > 0 && !math.IsNaN(v) {
 			f.Message += " (estimated from the fit, no pause)"
-		}
-		if math.IsNaN(v) {
-			f.Message = fmt.Sprintf("%s unknown on this breath; verdict unchanged", l.name)
 		}
 		dst = append(dst, f)
 	}

@@ -38,7 +38,7 @@ func (a *Analyzer) inspOnset(tc float64) float64 {
 	ps := buf[:0]
 	below := 0 // samples lower than the last one minus onsetMinRiseCmH2O
 	for k := 1; k <= a.ring.n; k++ {
-		e := &a.ring.s[(a.ring.next-k)&(ringSize-1)]
+		e := a.ring.at(k)
 		if e.t >= tc {
 			continue
 		}
@@ -69,7 +69,7 @@ func (a *Analyzer) inspOnset(tc float64) float64 {
 	// threshold: the rise.
 	onset := tc
 	for k := 1; k <= a.ring.n; k++ {
-		e := &a.ring.s[(a.ring.next-k)&(ringSize-1)]
+		e := a.ring.at(k)
 		if e.t >= tc {
 			continue
 		}

@@ -56,11 +56,28 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	}
 	k = min(k, n)
 
-	var s, sf segment
+	// The sums of segment.add, in locals (registers, not memory) and in
+	// the same order; the extremes are not needed here.
+	var sn, sF, sV, sP, sFF, sFV, sVV, sFP, sVP, sPP float64
 	for i := range pts {
-		s.add(pts[i].f, pts[i].v, pts[i].p)
-		sf.add(pts[i].p, pts[i].v, pts[i].f)
+		f, v, p := pts[i].f, pts[i].v, pts[i].p
+		sn++
+		sF += f
+		sV += v
+		sP += p
+		sFF += f * f
+		sFV += f * v
+		sVV += v * v
+		sFP += f * p
+		sVP += v * p
+		sPP += p * p
 	}
+	s := segment{n: sn, f: sF, v: sV, p: sP, ff: sFF, fv: sFV, vv: sVV, fp: sFP, vp: sVP, pp: sPP}
+	// The sums of flow regressed on pressure and volume are those of
+	// pressure on flow and volume with flow and pressure swapped: the same
+	// products added in the same order (a product of two float64 does not
+	// depend on their order), so no second pass is needed.
+	sf := segment{n: s.n, f: s.p, v: s.v, p: s.f, ff: s.pp, fv: s.vp, vv: s.vv, fp: s.fp, vp: s.fv, pp: s.ff}
 	fr := s.fit()
 	if fr.singular {
 		// Constant flow: P = E·V + P1 by simple regression.
@@ -72,9 +89,20 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 		e := (s.vp - s.n*mv*mp) / svv
 		fr = fitResult{r: 0, e: e, p0: mp - e*mv}
 	}
-	dev, noise = windowedResidual(pts, k, func(q *point) float64 { return q.p - (fr.r*q.f + fr.e*q.v + fr.p0) })
+	// Each residual is computed once, into rs, by a plain loop (a function
+	// value per point costs an indirect call that cannot be inlined).
+	var rs [bufCap]float64
+	for i := range pts {
+		q := &pts[i]
+		rs[i] = q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
+	}
+	dev, noise = windowedResidual(rs[:n], k)
 	if ff := sf.fit(); !ff.singular && rScale > 0 {
-		d, nz := windowedResidual(pts, k, func(q *point) float64 { return rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0)) })
+		for i := range pts {
+			q := &pts[i]
+			rs[i] = rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0))
+		}
+		d, nz := windowedResidual(rs[:n], k)
 		if d-4*nz > dev-4*noise {
 			dev, noise = d, nz
 		}
@@ -82,17 +110,18 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	return dev, noise
 }
 
-// windowedResidual returns the largest |mean| of res over k consecutive
-// points, and the noise of such a mean estimated from successive
-// differences (white noise: twice its variance), which a smooth departure
-// does not inflate.
-func windowedResidual(pts []point, k int, res func(*point) float64) (worst, noise float64) {
-	n := len(pts)
-	var rs [bufCap]float64 // each residual computed once
+// windowedResidual returns the largest |mean| of the residuals rs over k
+// consecutive points, and the noise of such a mean estimated from
+// successive differences (white noise: twice its variance), which a smooth
+// departure does not inflate.
+func windowedResidual(rs []float64, k int) (worst, noise float64) {
+	n := len(rs)
 	sum, sd, prev := 0.0, 0.0, 0.0
-	for i := range pts {
-		r := res(&pts[i])
-		rs[i] = r
+	// The largest |sum|, divided by k once at the end: a correctly rounded
+	// division by a positive number never reverses an order, so the
+	// largest quotient is the quotient of the largest sum.
+	worstSum := 0.0
+	for i, r := range rs {
 		if i > 0 {
 			sd += (r - prev) * (r - prev)
 		}
@@ -102,13 +131,13 @@ func windowedResidual(pts []point, k int, res func(*point) float64) (worst, nois
 			sum -= rs[i-k]
 		}
 		if i >= k-1 {
-			if m := math.Abs(sum) / float64(k); m > worst {
-				worst = m
+			if m := math.Abs(sum); m > worstSum {
+				worstSum = m
 			}
 		}
 	}
 	noise = math.Sqrt(sd/float64(2*(n-1))) / math.Sqrt(float64(k))
-	return worst, noise
+	return worstSum / float64(k), noise
 }
 
 // linreg accumulates a simple linear regression y = a + b·x.
@@ -196,7 +225,7 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 		return nan, nan, nan
 	}
 	lo, hi = lo*vte, hi*vte
-	var l linreg
+	var n, sx, sy, sxx, sxy, syy float64 // linreg.add in registers
 	for i := 0; i < a.buf.n; i++ {
 		q := &a.buf.pts[i]
 		if q.t < a.expStartT {
@@ -206,9 +235,16 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 			break
 		}
 		if x := a.expStartV - q.v; x >= lo && x <= hi {
-			l.add(x, -q.f)
+			y := -q.f
+			n++
+			sx += x
+			sy += y
+			sxx += x * x
+			sxy += x * y
+			syy += y * y
 		}
 	}
+	l := linreg{n, sx, sy, sxx, sxy, syy}
 	tau = l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
 		return nan, nan, nan
@@ -225,7 +261,7 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 // the late flow, so a volume window would still see the fast units.
 func (a *Analyzer) tauLate(endT float64) float64 {
 	from := a.expStartT + (endT-a.expStartT)*2/3
-	var l linreg
+	var n, sx, sy, sxx, sxy, syy float64 // linreg.add in registers
 	for i := 0; i < a.buf.n; i++ {
 		q := &a.buf.pts[i]
 		if q.t < from {
@@ -234,8 +270,15 @@ func (a *Analyzer) tauLate(endT float64) float64 {
 		if q.t >= endT {
 			break
 		}
-		l.add(a.expStartV-q.v, -q.f)
+		x, y := a.expStartV-q.v, -q.f
+		n++
+		sx += x
+		sy += y
+		sxx += x * x
+		sxy += x * y
+		syy += y * y
 	}
+	l := linreg{n, sx, sy, sxx, sxy, syy}
 	tau := l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
 		return math.NaN()

@@ -26,8 +26,6 @@ const (
 // the breath before endT. It returns ok only when the flow-dependent term
 // is significant, positive, and leaves a positive K1 and elastance.
 func fitRohrer(pts []point, endT float64) rohrerFit {
-	var s [5][5]float64 // normal equations of [f, f|f|, v, 1] against p in column 4
-	n := 0
 	// Points beside a step of flow (the valves switching) carry the
 	// sampling's timing error times the resistance; they are left out so
 	// that the fit sees the flow dependence, not the steps.
@@ -38,6 +36,12 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		}
 	}
 	lim := 0.15 * maxF
+	// The sums are kept in locals (registers) rather than in the matrix: a
+	// Go array lives in memory, and a load and store per term and point
+	// cost more than the arithmetic. The order of the additions is the
+	// same, so the sums are the same.
+	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s34, s44 float64
+	n := 0
 	nextStep := false // whether the flow steps from point i to point i+1
 	for i := range pts {
 		q := &pts[i]
@@ -49,28 +53,31 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		if prevStep || nextStep {
 			continue
 		}
-		fa := q.f * math.Abs(q.f)
-		s[0][0] += q.f * q.f
-		s[0][1] += q.f * fa
-		s[0][2] += q.f * q.v
-		s[0][3] += q.f
-		s[0][4] += q.f * q.p
-		s[1][1] += fa * fa
-		s[1][2] += fa * q.v
-		s[1][3] += fa
-		s[1][4] += fa * q.p
-		s[2][2] += q.v * q.v
-		s[2][3] += q.v
-		s[2][4] += q.v * q.p
-		s[3][3]++
-		s[3][4] += q.p
-		s[4][4] += q.p * q.p
+		f, v, p := q.f, q.v, q.p
+		fa := f * math.Abs(f)
+		s00 += f * f
+		s01 += f * fa
+		s02 += f * v
+		s03 += f
+		s04 += f * p
+		s11 += fa * fa
+		s12 += fa * v
+		s13 += fa
+		s14 += fa * p
+		s22 += v * v
+		s23 += v
+		s24 += v * p
+		s34 += p
+		s44 += p * p
 		n++
 	}
-	for r := range 5 {
-		for c := range r {
-			s[r][c] = s[c][r]
-		}
+	s33 := float64(n)   // the count, exact as a float64
+	s := [5][5]float64{ // normal equations of [f, f|f|, v, 1] against p in column 4
+		{s00, s01, s02, s03, s04},
+		{s01, s11, s12, s13, s14},
+		{s02, s12, s22, s23, s24},
+		{s03, s13, s23, s33, s34},
+		{s04, s14, s24, s34, s44},
 	}
 	if n < 12 {
 		return rohrerFit{}
@@ -80,8 +87,8 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	if !okFull || !okLin {
 		return rohrerFit{}
 	}
-	sse := residualSS(s, []int{0, 1, 2, 3}, full)
-	sseLin := residualSS(s, []int{0, 2, 3}, lin)
+	sse := residualSS(s, []int{0, 1, 2, 3}, &full)
+	sseLin := residualSS(s, []int{0, 2, 3}, &lin)
 	f := rohrerFit{k1: full[0], k2: full[1], e: full[2], p0: full[3], sse: sse, sseLin: sseLin, n: n}
 	gain := sseLin - sse
 	f.ok = f.k2 > 0 && f.k1 > 0 && f.e > 0 && sse > 0 &&
@@ -92,7 +99,7 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 // solveNormal solves the normal equations s restricted to the columns
 // idx (the response in column 4) by Gaussian elimination with partial
 // pivoting.
-func solveNormal(s [5][5]float64, idx []int) ([]float64, bool) {
+func solveNormal(s [5][5]float64, idx []int) ([4]float64, bool) {
 	m := len(idx)
 	var a [4][5]float64
 	for r := range m {
@@ -109,7 +116,7 @@ func solveNormal(s [5][5]float64, idx []int) ([]float64, bool) {
 			}
 		}
 		if a[p][c] == 0 {
-			return nil, false
+			return [4]float64{}, false
 		}
 		a[c], a[p] = a[p], a[c]
 		for r := c + 1; r < m; r++ {
@@ -119,7 +126,7 @@ func solveNormal(s [5][5]float64, idx []int) ([]float64, bool) {
 			}
 		}
 	}
-	x := make([]float64, m)
+	var x [4]float64 // an array, not a slice: no allocation a breath
 	for r := m - 1; r >= 0; r-- {
 		v := a[r][m]
 		for j := r + 1; j < m; j++ {
@@ -127,7 +134,7 @@ func solveNormal(s [5][5]float64, idx []int) ([]float64, bool) {
 		}
 		x[r] = v / a[r][r]
 		if math.IsNaN(x[r]) || math.IsInf(x[r], 0) {
-			return nil, false
+			return [4]float64{}, false
 		}
 	}
 	return x, true
@@ -135,7 +142,7 @@ func solveNormal(s [5][5]float64, idx []int) ([]float64, bool) {
 
 // residualSS is the residual sum of squares Σ(p − x·β)² of a solution β
 // over columns idx, from the normal equations: Σp² − 2β·Xᵀp + βᵀXᵀXβ.
-func residualSS(s [5][5]float64, idx []int, beta []float64) float64 {
+func residualSS(s [5][5]float64, idx []int, beta *[4]float64) float64 {
 	ss := s[4][4]
 	for i, r := range idx {
 		ss -= 2 * beta[i] * s[r][4]

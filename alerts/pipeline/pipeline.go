@@ -88,8 +88,11 @@ type Pipeline struct {
 
 	now   func() time.Time
 	clock *alerts.OfflineClock // set offline
-	stats func() ingest.Stats
-	last  ingest.Stats
+	// wallOf is clock.Wall, made once: a method value made for every
+	// sample would cost an allocation.
+	wallOf func(float64) time.Time
+	stats  func() ingest.Stats
+	last   ingest.Stats
 
 	haveSample bool
 	lastS      float64   // stream time of the last sample
@@ -153,6 +156,7 @@ func (p *Pipeline) alert(e *alerts.Event) {
 func NewOffline(o Options, start time.Time) *Pipeline {
 	p := New(o)
 	p.clock, p.created = &alerts.OfflineClock{Epoch: start}, start
+	p.wallOf = p.clock.Wall
 	return p
 }
 
@@ -167,6 +171,11 @@ func (p *Pipeline) offline() bool { return p.clock != nil }
 func (p *Pipeline) streamNow(wall time.Time) float64 {
 	if !p.haveSample {
 		return wall.Sub(p.created).Seconds()
+	}
+	if p.offline() {
+		// Offline the last sample's wall time is not kept: it is a
+		// function of its stream time.
+		return p.lastS + wall.Sub(p.clock.Wall(p.lastS)).Seconds()
 	}
 	return p.lastS + wall.Sub(p.lastWall).Seconds()
 }
@@ -206,16 +215,25 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 			continue // no place on the time axis; the analyzer skips it too
 		}
 		if p.offline() {
-			p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
-			wall = p.clock.Wall(s.TimeS)
+			if p.clock.Due(s.TimeS) {
+				p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+			}
+			// The wall time of a sample is the clock's Wall(TimeS),
+			// made only when something needs it (see streamNow).
+			p.judge.SamplesAt(ss[i:i+1], s.TimeS, p.wallOf, p.alertFn)
+			p.haveSample, p.lastS = true, s.TimeS
+		} else {
+			p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
+			p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		}
-		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
-		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
-		b, ok := p.an.Push(s)
-		if !ok {
+		b := p.an.Next(s)
+		if b == nil {
 			continue
 		}
-		p.breath = b
+		if p.offline() {
+			wall = p.clock.Wall(s.TimeS)
+		}
+		p.breath = *b
 		p.breath.Stream = p.stream
 		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
 		p.breath.Seq += p.seqBase

@@ -87,6 +87,10 @@ type offline struct {
 	start     time.Time
 	alerts    bool
 	pipelines map[string]*pipeline.Pipeline
+	// The stream of the previous sample and its pipeline, so that a run
+	// of samples of one stream does not look the map up for each.
+	lastStream string
+	lastPl     *pipeline.Pipeline
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
 	timing     *ingest.Timelines
@@ -112,10 +116,13 @@ func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 // sample feeds one decoded sample to its stream's pipeline.
 func (o *offline) sample(stream string, s ingest.Sample) {
 	o.samples++
-	pl := o.pipelines[stream]
-	if pl == nil {
-		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-		o.pipelines[stream] = pl
+	pl := o.lastPl
+	if pl == nil || stream != o.lastStream {
+		if pl = o.pipelines[stream]; pl == nil {
+			pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+			o.pipelines[stream] = pl
+		}
+		o.lastStream, o.lastPl = stream, pl
 	}
 	if o.timing != nil {
 		var gap *ingest.Event

@@ -2,6 +2,7 @@ package offline_test
 
 import (
 	"bufio"
+	"bytes"
 	"context"
 	"io"
 	"math"
@@ -14,6 +15,7 @@ import (
 	"time"
 
 	"trapline/analyze"
+	"trapline/daemon/cli"
 	"trapline/ingest"
 	"trapline/ingest/offline"
 	"trapline/simulator"
@@ -170,6 +172,18 @@ func traplineAnalyze(b *testing.B, path string, workers int) (samples, breaths i
 	return int(st.Samples), int(total.Load())
 }
 
+// naiveFile runs the naive baseline on the file at path and returns the
+// samples read and the breaths cut.
+func naiveFile(b *testing.B, path string) (samples, breaths int) {
+	f, err := os.Open(path)
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer f.Close()
+	samples, breaths, _ = naiveAnalyze(f)
+	return samples, breaths
+}
+
 // BenchmarkOfflineVsNaive reads a 1 h, 200 Hz recording of one patient
 // with the naive baseline and with trapline (decoding and analysis on one
 // goroutine, then on two), each iteration running all three, and reports
@@ -180,16 +194,7 @@ func BenchmarkOfflineVsNaive(b *testing.B) {
 	var naive, serial, piped measure
 	var nb, sb, pb int
 	for b.Loop() {
-		naive.run(func() int {
-			f, err := os.Open(path)
-			if err != nil {
-				b.Fatal(err)
-			}
-			defer f.Close()
-			k, br, _ := naiveAnalyze(f)
-			nb = br
-			return k
-		})
+		naive.run(func() int { k, br := naiveFile(b, path); nb = br; return k })
 		serial.run(func() int { k, br := traplineAnalyze(b, path, 0); sb = br; return k })
 		piped.run(func() int { k, br := traplineAnalyze(b, path, 1); pb = br; return k })
 	}
@@ -209,6 +214,50 @@ func BenchmarkOfflineVsNaive(b *testing.B) {
 	b.ReportMetric(serial.wallNs(), "trapline-wall-ns/sample")
 	b.ReportMetric(naive.wallNs(), "naive-wall-ns/sample")
 	b.ReportMetric(0, "ns/op")
+}
+
+// BenchmarkAnalyzeVsNaive runs the whole `trapline analyze` verb (reading,
+// the timing checks, analysis, detectors, the alarm lifecycle and the
+// NDJSON output of every breath record and alert event) on a 1 h, 200 Hz
+// recording of one patient, side by side with the naive baseline in each
+// iteration, and reports the CPU time of both per sample and their ratio.
+func BenchmarkAnalyzeVsNaive(b *testing.B) {
+	path, n := recording(b, 1, 3600)
+	var naive, full measure
+	var nb int
+	var out lineCounter
+	for b.Loop() {
+		naive.run(func() int { k, br := naiveFile(b, path); nb = br; return k })
+		full.run(func() int {
+			out = lineCounter{}
+			var stderr strings.Builder
+			if code := cli.Run(b.Context(), []string{"analyze", "--log-level", "error", path}, nil, &out, &stderr); code != cli.ExitOK {
+				b.Fatalf("analyze: exit %d: %s", code, stderr.String())
+			}
+			return n
+		})
+	}
+	// One breath record a breath (15 a minute for an hour, less the first
+	// and last) and no alert event for a steady patient: a check that the
+	// verb did the whole work and that the baseline does comparable work.
+	if nb < 890 || nb > 900 || out.breaths < 890 || out.breaths > 900 {
+		b.Fatalf("breaths: naive %d, analyze %d records, want about 900", nb, out.breaths)
+	}
+	b.ReportMetric(naive.cpuNs(), "naive-cpu-ns/sample")
+	b.ReportMetric(full.cpuNs(), "analyze-cpu-ns/sample")
+	b.ReportMetric(full.cpuNs()/naive.cpuNs(), "cpu-ratio")
+	b.ReportMetric(full.wallNs(), "analyze-wall-ns/sample")
+	b.ReportMetric(naive.wallNs(), "naive-wall-ns/sample")
+	b.ReportMetric(0, "ns/op")
+}
+
+// lineCounter is the standard output of the analyze verb in
+// BenchmarkAnalyzeVsNaive: it counts the breath records written.
+type lineCounter struct{ breaths int }
+
+func (w *lineCounter) Write(p []byte) (int, error) {
+	w.breaths += bytes.Count(p, []byte(`{"type":"breath"`))
+	return len(p), nil
 }
 
 // BenchmarkOfflineStreams reads a recording of four patients interleaved
