@@ -24,20 +24,7 @@ import (
 // together changes the order across streams, never within one.
 func TestShardTakesQueuedReadsTogether(t *testing.T) {
 	scs := twoPatients(t)
-	cfg := config.Default()
-	cfg.DataDir = t.TempDir()
-	cfg.HTTP.Listen = ""
-	cfg.NATS.Embedded.Port = 0
-	cfg.Sources = []config.Source{{Name: "ward", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"}}
-	if err := cfg.Validate(); err != nil {
-		t.Fatal(err)
-	}
-	d, info := startDaemon(t, cfg)
-	nc, err := nats.Connect(info.NATSURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
+	d, cfg, nc := startMuxDaemon(t, config.Source{Name: "ward", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"})
 	var mu sync.Mutex
 	got := map[string][]string{}
 	subj := alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}

@@ -100,23 +100,9 @@ func aloneBreaths(t *testing.T, sc simulator.Scenario, format ingest.Format) []s
 // counted.
 func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 	scs := twoPatients(t)
-	cfg := config.Default()
-	cfg.DataDir = t.TempDir()
-	cfg.HTTP.Listen = ""
-	cfg.NATS.Embedded.Port = 0
-	cfg.Sources = []config.Source{
-		{Name: "text", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"},
-		{Name: "binary", URL: "tcp-listen://127.0.0.1:0?format=binary", Pattern: "bed-*"},
-	}
-	if err := cfg.Validate(); err != nil {
-		t.Fatal(err)
-	}
-	d, info := startDaemon(t, cfg)
-	nc, err := nats.Connect(info.NATSURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
+	d, cfg, nc := startMuxDaemon(t,
+		config.Source{Name: "text", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"},
+		config.Source{Name: "binary", URL: "tcp-listen://127.0.0.1:0?format=binary", Pattern: "bed-*"})
 	var mu sync.Mutex
 	got := map[string][]string{} // "source/stream" → breath records
 	subj := alerts.Subjects{Prefix: cfg.NATS.SubjectPrefix}
@@ -230,6 +216,27 @@ func TestMuxFileSource(t *testing.T) {
 			t.Errorf("%s: %d breaths, alone %d", sc.Stream, got, want)
 		}
 	}
+}
+
+// startMuxDaemon runs the daemon (embedded NATS on a free port, no HTTP)
+// with the multiplexed sources given, and connects a NATS client to it.
+func startMuxDaemon(t *testing.T, sources ...config.Source) (*Daemon, *config.Config, *nats.Conn) {
+	t.Helper()
+	cfg := config.Default()
+	cfg.DataDir = t.TempDir()
+	cfg.HTTP.Listen = ""
+	cfg.NATS.Embedded.Port = 0
+	cfg.Sources = sources
+	if err := cfg.Validate(); err != nil {
+		t.Fatal(err)
+	}
+	d, info := startDaemon(t, cfg)
+	nc, err := nats.Connect(info.NATSURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(nc.Close)
+	return d, cfg, nc
 }
 
 // startDaemon runs a daemon on cfg until the test ends and returns it once
