@@ -13,7 +13,6 @@ import (
 	"github.com/chromedp/chromedp"
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
-	"github.com/rs/zerolog"
 
 	"trapline/alerts"
 	"trapline/config"
@@ -54,51 +53,28 @@ func liveDaemon(t *testing.T, ctx context.Context, scenario string, speed float6
 	if cfg.Role != config.RoleAll {
 		t.Fatalf("default role %q, want %q", cfg.Role, config.RoleAll)
 	}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	dctx, stop := context.WithCancel(ctx)
-	done := make(chan error, 1)
-	go func() { done <- d.Run(dctx) }()
-	var info Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		stop()
-		t.Fatalf("daemon stopped before it was ready: %v", err)
-	case <-time.After(15 * time.Second):
-		stop()
-		t.Fatal("daemon not ready within 15 s")
-	}
+	r := startDaemonWith(t, cfg, Options{})
+	d, info := r.d, r.info
 	waitFor(t, 10*time.Second, "the JetStream streams", func() bool { return d.AlertStreamsReady() == nil })
 	nc, err := nats.Connect(info.NATSURL)
 	if err != nil {
-		stop()
 		t.Fatal(err)
 	}
 	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 3})
 	if err != nil {
 		t.Fatal(err)
 	}
+	simCtx, stopSim := context.WithCancel(ctx)
 	simDone := make(chan struct{})
 	go func() {
 		defer close(simDone)
-		_, _ = simulator.Stream(dctx, sim, port, simulator.StreamOptions{Encoder: enc, Speed: speed})
+		_, _ = simulator.Stream(simCtx, sim, port, simulator.StreamOptions{Encoder: enc, Speed: speed})
 	}()
+	// Cleanups run last first: the simulator stops before the daemon.
 	t.Cleanup(func() {
 		nc.Close()
-		stop()
+		stopSim()
 		<-simDone
-		select {
-		case err := <-done:
-			if err != nil {
-				t.Errorf("daemon: %v", err)
-			}
-		case <-time.After(20 * time.Second):
-			t.Error("daemon did not stop within 20 s")
-		}
 	})
 	return d, info, nc, sim.Stream()
 }

@@ -1,14 +1,11 @@
 package daemon
 
 import (
-	"context"
 	"fmt"
 	"net"
 	"strconv"
 	"testing"
 	"time"
-
-	"github.com/rs/zerolog"
 
 	"trapline/config"
 	"trapline/ingest"
@@ -34,20 +31,7 @@ func benchmarkMuxWard(b *testing.B, chunk int) {
 	cfg.NATS.Embedded.Port = 0
 	cfg.Log.Level = "warn"
 	cfg.Sources = []config.Source{{Name: "ward", URL: "tcp-listen://127.0.0.1:0", Pattern: "bed-*"}}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
-	if err != nil {
-		b.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	defer func() { cancel(); <-done }()
-	select {
-	case <-readyc:
-	case <-time.After(30 * time.Second):
-		b.Fatal("daemon not ready")
-	}
+	d := startDaemonWith(b, cfg, Options{}).d
 	src := d.mux.sources[0].src
 	for src.(ingest.Listener).Addr() == "" {
 		time.Sleep(time.Millisecond)

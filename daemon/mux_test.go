@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"errors"
 	"net"
 	"os"
 	"slices"
@@ -243,29 +244,63 @@ func startMuxDaemon(t *testing.T, sources ...config.Source) (*Daemon, *config.Co
 // it is ready.
 func startDaemon(t *testing.T, cfg *config.Config) (*Daemon, Info) {
 	t.Helper()
+	r := startDaemonWith(t, cfg, Options{})
+	return r.d, r.info
+}
+
+// runningDaemon is a daemon started by startDaemonWith. (Tests of other
+// packages have daemontest; this package's own tests cannot import it.)
+type runningDaemon struct {
+	d      *Daemon
+	info   Info
+	cancel context.CancelFunc
+	done   chan error
+	err    error
+	ended  bool
+}
+
+// startDaemonWith runs a daemon on cfg with opts (Ready is its own) until
+// stop or the end of the test, and returns it once it is ready.
+func startDaemonWith(tb testing.TB, cfg *config.Config, opts Options) *runningDaemon {
+	tb.Helper()
 	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
+	opts.Ready = func(i Info) { readyc <- i }
+	d, err := New(cfg, zerolog.Nop(), opts)
 	if err != nil {
-		t.Fatal(err)
+		tb.Fatal(err)
 	}
-	ctx, cancel := context.WithCancel(t.Context())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	t.Cleanup(func() {
-		cancel()
-		select {
-		case <-done:
-		case <-time.After(20 * time.Second):
-			t.Error("Run did not return within 20 s of cancellation")
+	ctx, cancel := context.WithCancel(context.Background())
+	r := &runningDaemon{d: d, cancel: cancel, done: make(chan error, 1)}
+	go func() { r.done <- d.Run(ctx) }()
+	tb.Cleanup(func() {
+		if err := r.stop(); err != nil {
+			tb.Errorf("daemon: %v", err)
 		}
 	})
 	select {
-	case info := <-readyc:
-		return d, info
-	case err := <-done:
-		t.Fatalf("Run returned before it was ready: %v", err)
+	case r.info = <-readyc:
+	case err := <-r.done:
+		r.ended, r.err = true, err
+		tb.Fatalf("Run returned before it was ready: %v", err)
 	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready within 30 s")
+		tb.Fatal("daemon not ready within 30 s")
 	}
-	return nil, Info{}
+	return r
+}
+
+// stop cancels the daemon and returns what Run returned (the same again
+// when stopped twice); a daemon that does not return within 20 s is an
+// error.
+func (r *runningDaemon) stop() error {
+	if r.ended {
+		return r.err
+	}
+	r.cancel()
+	select {
+	case r.err = <-r.done:
+	case <-time.After(20 * time.Second):
+		r.err = errors.New("Run did not return within 20 s of cancellation")
+	}
+	r.ended = true
+	return r.err
 }

@@ -13,7 +13,6 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
-	"github.com/rs/zerolog"
 
 	"trapline/alerts"
 	"trapline/config"
@@ -64,24 +63,9 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i },
-		TickEvery: 50 * time.Millisecond, RecordFile: fullDisk})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	var info Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		t.Fatalf("Run returned early: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready within 30 s")
-	}
-	nc, err := nats.Connect(info.NATSURL)
+	r := startDaemonWith(t, cfg, Options{TickEvery: 50 * time.Millisecond, RecordFile: fullDisk})
+	d := r.d
+	nc, err := nats.Connect(r.info.NATSURL)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -104,7 +88,7 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 		t.Fatal(err)
 	}
 	// A patient at 10× real time over TCP for the length of the test.
-	simCtx, stopSim := context.WithCancel(ctx)
+	simCtx, stopSim := context.WithCancel(t.Context())
 	defer stopSim()
 	go func() {
 		sc, _ := simulator.Shipped("hyperinflation")
@@ -137,14 +121,8 @@ func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
 	if st := d.rec.w.Stats(); !st.Degraded || st.DroppedRecords == 0 {
 		t.Errorf("recorder stats %+v: want degraded with drops", st)
 	}
-	cancel()
-	select {
-	case err := <-done:
-		if err != nil {
-			t.Errorf("Run: %v", err)
-		}
-	case <-time.After(20 * time.Second):
-		t.Fatal("Run did not return within 20 s")
+	if err := r.stop(); err != nil {
+		t.Errorf("Run: %v", err)
 	}
 }
 
@@ -192,24 +170,15 @@ func TestRecordingRetentionInTheDaemon(t *testing.T) {
 				t.Fatal(err)
 			}
 
-			ctx, cancel := context.WithCancel(t.Context())
-			defer cancel()
-			d, err := New(cfg, zerolog.Nop(), Options{})
-			if err != nil {
-				t.Fatal(err)
-			}
-			done := make(chan error, 1)
-			go func() { done <- d.Run(ctx) }()
+			r := startDaemonWith(t, cfg, Options{})
+			d := r.d
 			waitFor(t, 20*time.Second, "the recorder", func() bool { return d.recStats() != nil })
 			waitFor(t, 20*time.Second, "retention", func() bool {
 				st := d.recStats()
 				return st.Deleted > 0 && tc.check(*st)
 			})
-			cancel()
-			select {
-			case <-done:
-			case <-time.After(20 * time.Second):
-				t.Fatal("daemon did not stop")
+			if err := r.stop(); err != nil {
+				t.Fatalf("daemon: %v", err)
 			}
 		})
 	}

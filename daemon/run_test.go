@@ -1,7 +1,6 @@
 package daemon
 
 import (
-	"context"
 	"encoding/json"
 	"io"
 	"net/http"
@@ -11,7 +10,6 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
-	"github.com/rs/zerolog"
 
 	"trapline/config"
 	"trapline/daemon/bus"
@@ -32,22 +30,8 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan Info, 1)
-	d, err := New(cfg, zerolog.Nop(), Options{Ready: func(i Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	var info Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		t.Fatalf("Run returned before it was ready: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready within 30 s")
-	}
+	r := startDaemonWith(t, cfg, Options{})
+	d, info := r.d, r.info
 
 	client := http.Client{Timeout: 5 * time.Second, Transport: &http.Transport{DisableKeepAlives: true}}
 	get := func(path string) (int, string) {
@@ -94,14 +78,8 @@ func TestRunStartsAndStopsCleanly(t *testing.T) {
 	}
 	nc.Close()
 
-	cancel()
-	select {
-	case err := <-done:
-		if err != nil {
-			t.Errorf("Run returned %v after cancellation", err)
-		}
-	case <-time.After(20 * time.Second):
-		t.Fatal("Run did not return within 20 s of cancellation")
+	if err := r.stop(); err != nil {
+		t.Errorf("Run returned %v after cancellation", err)
 	}
 	// Every goroutine the daemon started has ended (a few of the runtime's
 	// and the test's own may come and go: allow two).

@@ -2,7 +2,6 @@ package tests
 
 import (
 	"bytes"
-	"context"
 	"encoding/json"
 	"fmt"
 	"net"
@@ -14,11 +13,11 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
-	"github.com/rs/zerolog"
 
 	"trapline/config"
 	"trapline/daemon"
 	"trapline/daemon/cli"
+	"trapline/daemon/daemontest"
 )
 
 // liveLog gathers what the daemon publishes, per stream, as received.
@@ -101,24 +100,8 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan daemon.Info, 1)
-	d, err := daemon.New(cfg, zerolog.Nop(), daemon.Options{Ready: func(i daemon.Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	defer cancel()
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	var info daemon.Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		t.Fatalf("daemon: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready in 30 s")
-	}
-	nc, err := nats.Connect(info.NATSURL)
+	run := daemontest.Start(t, cfg, daemon.Options{})
+	nc, err := nats.Connect(run.Info.NATSURL)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -138,7 +121,7 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 		go func() {
 			defer sims.Done()
 			var errb bytes.Buffer
-			if code := cli.Run(ctx, []string{"sim", "--scenario", sc, "--speed", "20", "--duration", "60s", "--seed", "5",
+			if code := cli.Run(t.Context(), []string{"sim", "--scenario", sc, "--speed", "20", "--duration", "60s", "--seed", "5",
 				"--out", "tcp://127.0.0.1:" + ports[i], "--log-level", "error"}, nil, &bytes.Buffer{}, &errb); code != cli.ExitOK {
 				t.Errorf("sim %s: exit %d: %s", sc, code, errb.String())
 			}
@@ -151,14 +134,8 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 		last = n
 		time.Sleep(300 * time.Millisecond)
 	}
-	cancel()
-	select {
-	case err := <-done:
-		if err != nil {
-			t.Fatalf("daemon: %v", err)
-		}
-	case <-time.After(20 * time.Second):
-		t.Fatal("daemon did not stop in 20 s")
+	if err := run.Stop(); err != nil {
+		t.Fatalf("daemon: %v", err)
 	}
 
 	var out, errb bytes.Buffer

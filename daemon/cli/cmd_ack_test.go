@@ -1,7 +1,6 @@
 package cli
 
 import (
-	"context"
 	"encoding/json"
 	"net"
 	"os"
@@ -13,11 +12,11 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
-	"github.com/rs/zerolog"
 
 	"trapline/alerts"
 	"trapline/config"
 	"trapline/daemon"
+	"trapline/daemon/daemontest"
 )
 
 // TestAckVerb runs the daemon in-process (embedded NATS on a free port),
@@ -40,24 +39,8 @@ func TestAckVerb(t *testing.T) {
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	readyc := make(chan daemon.Info, 1)
-	d, err := daemon.New(cfg, zerolog.Nop(), daemon.Options{Ready: func(i daemon.Info) { readyc <- i }})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(t.Context())
-	defer cancel()
-	done := make(chan error, 1)
-	go func() { done <- d.Run(ctx) }()
-	var info daemon.Info
-	select {
-	case info = <-readyc:
-	case err := <-done:
-		t.Fatalf("daemon: %v", err)
-	case <-time.After(30 * time.Second):
-		t.Fatal("daemon not ready in 30 s")
-	}
-	nc, err := nats.Connect(info.NATSURL)
+	dm := daemontest.Start(t, cfg, daemon.Options{})
+	nc, err := nats.Connect(dm.Info.NATSURL)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -77,7 +60,7 @@ func TestAckVerb(t *testing.T) {
 	if err := nc.Flush(); err != nil { // the subscriptions are in place on the server
 		t.Fatal(err)
 	}
-	go Run(ctx, []string{"sim", "--scenario", "hyperinflation", "--speed", "20", "--out", "tcp://127.0.0.1:" + port,
+	go Run(t.Context(), []string{"sim", "--scenario", "hyperinflation", "--speed", "20", "--out", "tcp://127.0.0.1:" + port,
 		"--log-level", "error"}, nil, &strings.Builder{}, &strings.Builder{})
 
 	var id string
@@ -92,7 +75,7 @@ func TestAckVerb(t *testing.T) {
 		}
 		return false
 	})
-	out := run(t, ExitOK, nil, "ack", id, "--by", "tester", "--why", "settings changed", "--nats-url", info.NATSURL)
+	out := run(t, ExitOK, nil, "ack", id, "--by", "tester", "--why", "settings changed", "--nats-url", dm.Info.NATSURL)
 	if !strings.Contains(out, `"ok":true`) {
 		t.Errorf("ack printed %q", out)
 	}
@@ -107,7 +90,7 @@ func TestAckVerb(t *testing.T) {
 		return false
 	})
 	var stdout, stderr strings.Builder
-	code := Run(t.Context(), []string{"ack", "bed-7/air-trapping/1", "--by", "tester", "--nats-url", info.NATSURL,
+	code := Run(t.Context(), []string{"ack", "bed-7/air-trapping/1", "--by", "tester", "--nats-url", dm.Info.NATSURL,
 		"--log-level", "error"}, nil, &stdout, &stderr)
 	if code != ExitError || !strings.Contains(stderr.String(), "refused") {
 		t.Errorf("ack of an unknown id: exit %d, stdout %q, stderr %q", code, stdout.String(), stderr.String())
@@ -115,7 +98,7 @@ func TestAckVerb(t *testing.T) {
 	// The same daemon's JetStream streams, exported: the alarm's raise and
 	// acknowledgement are rows of the alerts file.
 	exp := filepath.Join(t.TempDir(), "x")
-	msg := run(t, ExitOK, nil, "export", "--from-nats", "--nats-url", info.NATSURL, "--stream", "bed-7",
+	msg := run(t, ExitOK, nil, "export", "--from-nats", "--nats-url", dm.Info.NATSURL, "--stream", "bed-7",
 		"--formats", "csv", "--wait", "2s", "--out", exp)
 	csvData, err := os.ReadFile(filepath.Join(exp, "trapline-alerts.csv"))
 	if err != nil {
@@ -125,10 +108,7 @@ func TestAckVerb(t *testing.T) {
 		!strings.Contains(msg, "breath records") {
 		t.Errorf("export from JetStream: %s\n%s", msg, csvData)
 	}
-	cancel()
-	select {
-	case <-done:
-	case <-time.After(20 * time.Second):
-		t.Fatal("daemon did not stop in 20 s")
+	if err := dm.Stop(); err != nil {
+		t.Fatalf("daemon: %v", err)
 	}
 }
