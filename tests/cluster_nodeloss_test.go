@@ -301,18 +301,7 @@ func TestClusterNodeLossLosesNothing(t *testing.T) {
 	if _, err := s.nc.Subscribe("trapline.breath.>", arr.add); err != nil {
 		t.Fatal(err)
 	}
-	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
-	defer cancel()
-	var wg sync.WaitGroup
-	defer wg.Wait()
-	defer cancel()
-	for _, w := range s.workers {
-		wg.Add(1)
-		go func() { defer wg.Done(); s.run(ctx, w) }()
-	}
-	s.waitMembers(t, 2)
-	wg.Add(1)
-	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+	s.startRoles(t)
 	if !pollUntil(30*time.Second, func() bool { per, _ := s.breaths.counts(); return len(per) == len(s.files) }) {
 		t.Fatal("not every stream produced a breath within 30 s")
 	}

@@ -306,6 +306,23 @@ func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) 
 	return s
 }
 
+// startRoles runs the workers (in the test's process), waits until both
+// are members, then runs the edge; all of them stop when the test ends
+// (at most 2 min), before the test's logs are written.
+func (s *scaleSetup) startRoles(t *testing.T) {
+	t.Helper()
+	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
+	var wg sync.WaitGroup
+	t.Cleanup(func() { cancel(); wg.Wait() })
+	for _, w := range s.workers {
+		wg.Add(1)
+		go func() { defer wg.Done(); s.run(ctx, w) }()
+	}
+	s.waitMembers(t, 2)
+	wg.Add(1)
+	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+}
+
 // waitMembers waits until the membership bucket lists n workers.
 func (s *scaleSetup) waitMembers(t *testing.T, n int) {
 	t.Helper()
@@ -503,18 +520,7 @@ func TestClusterTwoWorkersOneEdge(t *testing.T) {
 	if len(wantEv) == 0 {
 		t.Fatal("the signals raise no alert: the comparison would be empty")
 	}
-	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
-	defer cancel()
-	var wg sync.WaitGroup
-	defer wg.Wait()
-	defer cancel()
-	for _, w := range s.workers {
-		wg.Add(1)
-		go func() { defer wg.Done(); s.run(ctx, w) }()
-	}
-	s.waitMembers(t, 2)
-	wg.Add(1)
-	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+	s.startRoles(t)
 
 	got := s.stored(t, len(wantEv))
 	// The feeds last 6 s; give the last breaths time to arrive.
@@ -705,18 +711,7 @@ func (c *cluster) localAlerts(i int) int64 {
 func TestClusterAlertLeaderDown(t *testing.T) {
 	s := newScaleSetup(t, 20, 300*time.Second, 20)
 	wantEv, _ := s.want(t)
-	ctx, cancel := context.WithTimeout(t.Context(), 2*time.Minute)
-	defer cancel()
-	var wg sync.WaitGroup
-	defer wg.Wait()
-	defer cancel()
-	for _, w := range s.workers {
-		wg.Add(1)
-		go func() { defer wg.Done(); s.run(ctx, w) }()
-	}
-	s.waitMembers(t, 2)
-	wg.Add(1)
-	go func() { defer wg.Done(); s.run(ctx, s.edgeCfg) }()
+	s.startRoles(t)
 
 	// Once some alerts are stored, shut the alert stream's leader down.
 	var before int
