@@ -40,8 +40,8 @@ func TestShardTakesQueuedReadsTogether(t *testing.T) {
 	}
 
 	// The samples of each patient, as the text source decodes them.
-	var ward memOutput
-	if _, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1])}, &ward,
+	var ward bytes.Buffer
+	if _, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1])}, simulator.WriterOutput(&ward),
 		simulator.WardOptions{Format: ingest.FormatText}); err != nil {
 		t.Fatal(err)
 	}

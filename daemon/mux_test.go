@@ -26,16 +26,6 @@ import (
 	"trapline/simulator"
 )
 
-// memOutput is a simulator output into memory.
-type memOutput struct{ bytes.Buffer }
-
-func (o *memOutput) Open(_ context.Context, header []byte) error { o.Write(header); return nil }
-func (o *memOutput) Write(p []byte) error                        { o.Buffer.Write(p); return nil }
-func (o *memOutput) Disconnect() error                           { return nil }
-func (o *memOutput) Reconnect(context.Context) error             { return nil }
-func (o *memOutput) Close() error                                { return nil }
-func (o *memOutput) MaxWrite() int                               { return 0 }
-
 // twoPatients are two steady patients of different rates (15 and 20
 // breaths a minute), with noise and seeds of their own.
 func twoPatients(t *testing.T) []simulator.Scenario {
@@ -67,8 +57,8 @@ func aloneBreaths(t *testing.T, sc simulator.Scenario, format ingest.Format) []s
 	} else {
 		enc, _ = ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{RateHz: sc.SampleRateHz, Time: true})
 	}
-	var out memOutput
-	if _, err := simulator.Stream(t.Context(), newSim(t, sc), &out, simulator.StreamOptions{Encoder: enc, StreamColumn: true}); err != nil {
+	var out bytes.Buffer
+	if _, err := simulator.Stream(t.Context(), newSim(t, sc), simulator.WriterOutput(&out), simulator.StreamOptions{Encoder: enc, StreamColumn: true}); err != nil {
 		t.Fatal(err)
 	}
 	var got []string
@@ -123,9 +113,9 @@ func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 		}
 		intruder := scs[0]
 		intruder.Stream = "cot-1"
-		var ward memOutput
+		var ward bytes.Buffer
 		sims := []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1]), newSim(t, intruder)}
-		if _, err := simulator.StreamWard(t.Context(), sims, &ward, simulator.WardOptions{Format: format}); err != nil {
+		if _, err := simulator.StreamWard(t.Context(), sims, simulator.WriterOutput(&ward), simulator.WardOptions{Format: format}); err != nil {
 			t.Fatal(err)
 		}
 		want := map[string][]string{}
@@ -192,8 +182,8 @@ func TestMuxSourcesEachPatientAsAlone(t *testing.T) {
 // each stream's breaths equal its patient's alone, and the streams finish.
 func TestMuxFileSource(t *testing.T) {
 	scs := twoPatients(t)
-	var ward memOutput
-	if _, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1])}, &ward,
+	var ward bytes.Buffer
+	if _, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(t, scs[0]), newSim(t, scs[1])}, simulator.WriterOutput(&ward),
 		simulator.WardOptions{Format: ingest.FormatText}); err != nil {
 		t.Fatal(err)
 	}

@@ -91,6 +91,11 @@ func ParseOutput(spec string, opts OutputOptions) (Output, error) {
 	return nil, fmt.Errorf("output %s: unknown scheme %q (want -, pty, tcp://, tcp-listen://, udp:// or a file path)", spec, scheme)
 }
 
+// WriterOutput returns an output that writes to w (a buffer, a pipe): the
+// stream as it would go to stdout. A disconnection shows only as a gap in
+// the time stamps.
+func WriterOutput(w io.Writer) Output { return &writerOutput{w: w} }
+
 // writerOutput writes to an io.Writer (stdout). A disconnection shows only
 // as a gap in the time stamps.
 type writerOutput struct {

@@ -2,7 +2,6 @@ package offline_test
 
 import (
 	"bytes"
-	"context"
 	"slices"
 	"sync"
 	"testing"
@@ -12,16 +11,6 @@ import (
 	"trapline/ingest/offline"
 	"trapline/simulator"
 )
-
-// memOutput is a simulator output into memory.
-type memOutput struct{ bytes.Buffer }
-
-func (o *memOutput) Open(_ context.Context, header []byte) error { o.Write(header); return nil }
-func (o *memOutput) Write(p []byte) error                        { o.Buffer.Write(p); return nil }
-func (o *memOutput) Disconnect() error                           { return nil }
-func (o *memOutput) Reconnect(context.Context) error             { return nil }
-func (o *memOutput) Close() error                                { return nil }
-func (o *memOutput) MaxWrite() int                               { return 0 }
 
 // breathsOf analyses a recording with one analyzer per stream and returns
 // each stream's breath records as JSON lines.
@@ -78,15 +67,15 @@ func TestTwoPatientsOneSource(t *testing.T) {
 				} else {
 					enc, _ = ingest.NewBinaryEncoder(ingest.BinaryEncoderOptions{RateHz: sc.SampleRateHz, Time: true})
 				}
-				var alone memOutput
-				_, err := simulator.Stream(t.Context(), newSim(sc), &alone, simulator.StreamOptions{Encoder: enc, StreamColumn: true})
+				var alone bytes.Buffer
+				_, err := simulator.Stream(t.Context(), newSim(sc), simulator.WriterOutput(&alone), simulator.StreamOptions{Encoder: enc, StreamColumn: true})
 				if err != nil {
 					t.Fatal(err)
 				}
 				want[sc.Stream] = breathsOf(t, alone.Bytes(), format, 0)[sc.Stream]
 			}
-			var ward memOutput
-			_, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(scs[0]), newSim(scs[1])}, &ward,
+			var ward bytes.Buffer
+			_, err := simulator.StreamWard(t.Context(), []*simulator.Sim{newSim(scs[0]), newSim(scs[1])}, simulator.WriterOutput(&ward),
 				simulator.WardOptions{Format: format})
 			if err != nil {
 				t.Fatal(err)
