@@ -67,12 +67,8 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
 			ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 			defer cancel()
-			first := startDaemonProcess(t, "run", "--config", cfg)
-			waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
-			// 18 simulated minutes at 60× take 18 s; air trapping builds
-			// from minute 2 and resolves after minute 11.
-			simDone := make(chan error, 1)
-			go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+			// Air trapping builds from minute 2 and resolves after minute 11.
+			first, simDone := runBronchospasm(ctx, t, cfg, httpPort, link)
 			waitFor(t, 60*time.Second, "an air-trapping alarm", func() bool { return metricsOf(httpPort)["trapline_alerts_active"] >= 1 })
 			time.Sleep(2 * time.Second) // a checkpoint with the alarm open
 			if !tc.kill {

@@ -46,10 +46,7 @@ streams:
 `, dir, httpPort, ns.URL(), link))
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 	defer cancel()
-	d := startDaemonProcess(t, "run", "--config", cfg)
-	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
-	simDone := make(chan error, 1)
-	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+	d, simDone := runBronchospasm(ctx, t, cfg, httpPort, link)
 	waitFor(t, 30*time.Second, "the first breath", func() bool { return metricsOf(httpPort)["trapline_breaths_total"] >= 1 })
 	ns.stop()
 	prev := metricsOf(httpPort)["trapline_breaths_total"]

@@ -18,6 +18,20 @@ import (
 	"trapline/daemon/cli"
 )
 
+// runBronchospasm starts `trapline run --config cfg` as a child process,
+// waits for its /metrics on httpPort, and plays the bronchospasm scenario as
+// bed-5 over the pseudo-terminal link at 60× real time (18 simulated
+// minutes in 18 s) until it has played or ctx ends; simDone then receives
+// the simulator's error.
+func runBronchospasm(ctx context.Context, t *testing.T, cfg string, httpPort int, link string) (*daemonProcess, <-chan error) {
+	t.Helper()
+	proc := startDaemonProcess(t, "run", "--config", cfg)
+	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
+	simDone := make(chan error, 1)
+	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+	return proc, simDone
+}
+
 // outageConfig is a daemon reading the pseudo-terminal link and publishing
 // to the external server at natsURL.
 func outageConfig(t *testing.T, dir, link, natsURL string, httpPort int) string {
@@ -205,12 +219,7 @@ func TestKilledDuringOutageLosesNoAlert(t *testing.T) {
 
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 	defer cancel()
-	first := startDaemonProcess(t, "run", "--config", cfg)
-	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
-
-	// 18 simulated minutes at 60× take 18 s.
-	simDone := make(chan error, 1)
-	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+	first, simDone := runBronchospasm(ctx, t, cfg, httpPort, link)
 	waitFor(t, 60*time.Second, "the first alert event", func() bool { return metricsOf(httpPort)["trapline_alerts_total"] >= 1 })
 	ns.stop()
 	if err := <-simDone; err != nil {
