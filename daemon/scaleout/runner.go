@@ -299,18 +299,16 @@ func (pt *partition) deliver(ctx context.Context, sr *streamRun, evs []alerts.Ev
 // analysis goes on. A checkpoint may lag; it never runs ahead of what is
 // stored, so a lagging one costs only a longer replay after a hand-over.
 func (pt *partition) settle(err error) error {
-	if err == nil || errors.Is(err, errFenced) || pt.ckptFailing {
-		if err == nil && pt.ckptFailing {
-			pt.ckptFailing = false
-			pt.log.Info().Msg("checkpoints stored again")
-		}
-		if errors.Is(err, errFenced) {
-			return err
-		}
-		return nil
+	switch {
+	case errors.Is(err, errFenced):
+		return err
+	case err == nil && pt.ckptFailing:
+		pt.ckptFailing = false
+		pt.log.Info().Msg("checkpoints stored again")
+	case err != nil && !pt.ckptFailing:
+		pt.ckptFailing = true
+		pt.log.Warn().Err(err).Msg("checkpoint not stored; analysis goes on and the next period tries again")
 	}
-	pt.ckptFailing = true
-	pt.log.Warn().Err(err).Msg("checkpoint not stored; analysis goes on and the next period tries again")
 	return nil
 }
 
