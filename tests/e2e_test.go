@@ -54,24 +54,25 @@ func find(evs []alerts.Event, condition string, state alerts.State) int {
 }
 
 // streamScenario plays a shipped scenario over a pseudo-terminal whose
-// stable link is link, at speed, and returns when it has played.
-func streamScenario(ctx context.Context, t *testing.T, name, stream, link string, speed float64) error {
+// stable link is link, at speed, and returns when it has played. It runs on
+// goroutines of its own, so it returns its errors rather than failing t.
+func streamScenario(ctx context.Context, _ *testing.T, name, stream, link string, speed float64) error {
 	sc, err := simulator.Shipped(name)
 	if err != nil {
-		t.Fatal(err)
+		return err
 	}
 	sc.Stream = stream
 	sim, err := simulator.New(sc)
 	if err != nil {
-		t.Fatal(err)
+		return err
 	}
 	out, err := simulator.ParseOutput("pty", simulator.OutputOptions{Link: link})
 	if err != nil {
-		t.Fatal(err)
+		return err
 	}
 	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 4})
 	if err != nil {
-		t.Fatal(err)
+		return err
 	}
 	_, err = simulator.Stream(ctx, sim, out, simulator.StreamOptions{Encoder: enc, Speed: speed})
 	return err
