@@ -55,8 +55,9 @@ func find(evs []alerts.Event, condition string, state alerts.State) int {
 
 // streamScenario plays a shipped scenario over a pseudo-terminal whose
 // stable link is link, at speed, and returns when it has played. It runs on
-// goroutines of its own, so it returns its errors rather than failing t.
-func streamScenario(ctx context.Context, _ *testing.T, name, stream, link string, speed float64) error {
+// goroutines of its own, so it returns its errors rather than failing the
+// test.
+func streamScenario(ctx context.Context, name, stream, link string, speed float64) error {
 	sc, err := simulator.Shipped(name)
 	if err != nil {
 		return err
@@ -155,7 +156,7 @@ streams:
 			defer bsub.Unsubscribe()
 
 			simDone := make(chan error, 1)
-			go func() { simDone <- streamScenario(ctx, t, tc.scenario, "bed-1", link, tc.speed) }()
+			go func() { simDone <- streamScenario(ctx, tc.scenario, "bed-1", link, tc.speed) }()
 			if tc.wantTrapped {
 				// When air trapping is raised, someone acknowledges it over
 				// NATS; the acknowledged state follows on the alert subject.

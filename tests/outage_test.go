@@ -28,7 +28,7 @@ func runBronchospasm(ctx context.Context, t *testing.T, cfg string, httpPort int
 	proc := startDaemonProcess(t, "run", "--config", cfg)
 	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
 	simDone := make(chan error, 1)
-	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 60) }()
+	go func() { simDone <- streamScenario(ctx, "bronchospasm", "bed-5", link, 60) }()
 	return proc, simDone
 }
 
@@ -145,7 +145,7 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 
 	// The patient plays at 30× for 36 s; its alerts come from about 6 s on.
 	simDone := make(chan error, 1)
-	go func() { simDone <- streamScenario(ctx, t, "bronchospasm", "bed-5", link, 30) }()
+	go func() { simDone <- streamScenario(ctx, "bronchospasm", "bed-5", link, 30) }()
 
 	// At the first alert event, the server goes down for 30 s.
 	waitFor(t, 60*time.Second, "the first alert event", func() bool { return metricsOf(httpPort)["trapline_alerts_total"] >= 1 })
