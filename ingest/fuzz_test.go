@@ -46,6 +46,13 @@ func checkDecoder(t *testing.T, format Format, opts DecoderOptions, input []byte
 	if dw.Stats() != ds.Stats() || len(whole.samples) != len(split.samples) {
 		t.Fatalf("whole %+v, split at %d %+v", dw.Stats(), cut, ds.Stats())
 	}
+	if format == FormatText {
+		// The general path alone (one byte at a time, so never the fast
+		// lane) gives the same samples and counters.
+		if ref, st := decodeBytewise(opts, input); st != dw.Stats() || !sameSamples(ref, whole) {
+			t.Fatalf("whole %+v, byte by byte %+v", dw.Stats(), st)
+		}
+	}
 	st := dw.Stats()
 	if st.Samples != uint64(len(whole.samples)) {
 		t.Fatalf("stats count %d samples, emitted %d", st.Samples, len(whole.samples))

@@ -102,6 +102,7 @@ type TextDecoder struct {
 	emit     EmitFunc
 	rateHz   float64
 	layout   layout
+	fast     bool // the layout's lines may take the fast lane (fastLines)
 	err      error
 	streams  streamTable
 	carry    []byte
@@ -139,6 +140,7 @@ func NewTextDecoder(opts DecoderOptions, emit EmitFunc) (*TextDecoder, error) {
 		emit:    emit,
 		rateHz:  opts.RateHz,
 		layout:  l,
+		fast:    fastLayout(l),
 		streams: newStreamTable(stream),
 		carry:   make([]byte, 0, MaxLineBytes+1),
 	}, nil
@@ -155,6 +157,11 @@ func (d *TextDecoder) Err() error { return d.err }
 func (d *TextDecoder) Write(p []byte) (int, error) {
 	n := len(p)
 	for len(p) > 0 {
+		if d.fast && d.err == nil && !d.skipping && len(d.carry) == 0 {
+			if p = p[d.fastLines(p):]; len(p) == 0 {
+				break
+			}
+		}
 		i := bytes.IndexByte(p, '\n')
 		if d.skipping {
 			if i < 0 {
@@ -235,7 +242,7 @@ func (d *TextDecoder) line(b []byte) {
 			d.stats.BadLines++
 			return
 		}
-		d.layout, d.err = l, nil
+		d.layout, d.fast, d.err = l, fastLayout(l), nil
 		return
 	}
 	d.stats.BadLines++
@@ -309,45 +316,6 @@ func (d *TextDecoder) data(b []byte) bool {
 	d.stats.Samples++
 	d.emit(st.id, s)
 	return true
-}
-
-// numberField reads the number at the start of b and finds the end of its
-// field in one pass. It returns the value, what follows the field's comma
-// (nil when no field follows), whether the field was blank, and false when
-// the field is neither a number nor blank.
-func numberField(b []byte) (v float64, rest []byte, empty, ok bool) {
-	b = trimLeft(b)
-	n := 0
-	if len(b) > 0 && b[0] != ',' {
-		if v, n, ok = scanNumber(b); !ok {
-			return 0, nil, false, false
-		}
-	}
-	if b = trimLeft(b[n:]); len(b) > 0 {
-		if b[0] != ',' {
-			return 0, nil, false, false
-		}
-		rest = b[1:]
-	}
-	return v, rest, n == 0, true
-}
-
-// trimLeft drops the blanks at the start of f.
-func trimLeft(f []byte) []byte {
-	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
-		f = f[1:]
-	}
-	return f
-}
-
-func trimSpace(f []byte) []byte {
-	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
-		f = f[1:]
-	}
-	for len(f) > 0 && (f[len(f)-1] == ' ' || f[len(f)-1] == '\t') {
-		f = f[:len(f)-1]
-	}
-	return f
 }
 
 // TextEncoderOptions choose the columns and units that a TextEncoder writes.

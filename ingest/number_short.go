@@ -1,0 +1,55 @@
+package ingest
+
+import "math/bits"
+
+// fastReach is how many bytes from the start of a field the fast lane
+// reads: a sign, 7 digits, a '.', the 8 bytes of the fraction's word, and
+// the two bytes of a line end.
+const fastReach = 19
+
+// pow10u holds the powers of ten that an integer part is scaled by when
+// its digits and the fraction's do not fit one word.
+var pow10u = [...]uint64{1, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8}
+
+// leadingDigits returns how many of the 8 bytes of w, first byte in the
+// low bits, are ASCII digits before the first byte that is not one. Each
+// byte's test is done in its own lane: the sums below stay under 0x100 per
+// byte, so no carry crosses into the next (bit-parallel byte tests, common
+// practice; Warren H.S., "Hacker's Delight", 2nd ed., 2012, ch. 6, from
+// memory).
+func leadingDigits(w uint64) int {
+	const (
+		lo7  = 0x7F7F7F7F7F7F7F7F
+		high = 0x8080808080808080
+		ones = 0x0101010101010101
+	)
+	atLeast0 := (w & lo7) + (0x80-'0')*ones       // high bit: low 7 bits ≥ '0'
+	above9 := (w & lo7) + (0x80-'9'-1)*ones       // high bit: low 7 bits > '9'
+	digit := atLeast0 &^ above9 &^ w & high       // and the byte's own high bit clear
+	return bits.TrailingZeros64(^digit&high) >> 3 // 8 when all are digits
+}
+
+// digitsValue returns the value of the first k (0 to 8) digits of w, first
+// byte in the low bits, as a decimal integer. The digits are moved to the
+// top of the word, below zeros that read as leading zeros, and combined in
+// three multiplications: pairs, then quadruples, then all eight (Lemire D.,
+// "Number parsing at a gigabyte per second", Software: Practice and
+// Experience 51(8), 2021, eight-digit parsing, from memory).
+func digitsValue(w uint64, k int) uint64 {
+	v := (w & 0x0F0F0F0F0F0F0F0F) << (8 * (8 - uint(k))) // k = 0 shifts everything out
+	v = (v * (10<<8 + 1)) >> 8
+	v = ((v & 0x00FF00FF00FF00FF) * (100<<16 + 1)) >> 16
+	return ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
+}
+
+// mantissa returns the digits of an integer part (the first k1 bytes of
+// word) followed by those of a fraction (the first k2 bytes of frac) as one
+// integer, k1 and k2 at most 7.
+func mantissa(word uint64, k1 int, frac uint64, k2 int) uint64 {
+	if k1+k2 <= 8 {
+		// Both runs fit one word: the fraction's digits right after the
+		// integer's, read in one go.
+		return digitsValue(word&(1<<(8*uint(k1))-1)|frac<<(8*uint(k1)), k1+k2)
+	}
+	return digitsValue(word, k1)*pow10u[k2] + digitsValue(frac, k2)
+}

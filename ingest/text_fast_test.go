@@ -1,0 +1,174 @@
+package ingest
+
+import (
+	"math"
+	"math/rand/v2"
+	"strconv"
+	"strings"
+	"testing"
+)
+
+// decodeBytewise decodes input one byte per Write: no line then reaches
+// the fast lane (fastLines needs a field's shortReach bytes in one Write),
+// so this is the general path alone, the reference of the fast lane.
+func decodeBytewise(opts DecoderOptions, input []byte) (got, DecoderStats) {
+	var g got
+	d, _ := NewTextDecoder(opts, g.emit)
+	for i := range input {
+		_, _ = d.Write(input[i : i+1])
+	}
+	d.Flush()
+	return g, d.Stats()
+}
+
+// sameSamples reports whether two decodings emitted the same samples, bit
+// for bit, on the same streams.
+func sameSamples(a, b got) bool {
+	if len(a.samples) != len(b.samples) {
+		return false
+	}
+	bitsOf := func(s Sample) [4]uint64 {
+		return [4]uint64{math.Float64bits(s.TimeS), math.Float64bits(s.PressureCmH2O), math.Float64bits(s.FlowLPS),
+			math.Float64bits(s.VolumeL)}
+	}
+	for i := range a.samples {
+		if bitsOf(a.samples[i]) != bitsOf(b.samples[i]) || a.streams[i] != b.streams[i] {
+			return false
+		}
+	}
+	return true
+}
+
+// TestTextFastLaneAgainstGeneral decodes random input, mostly ordinary
+// sample lines with now and then a line the fast lane must leave to the
+// general path (blanks, an exponent, a long number, an empty or extra
+// field, a comment, "\r\n", a stray '\r', a header that changes the
+// layout), in random chunks, and compares it with the general path alone:
+// the same samples bit for bit and the same counters.
+func TestTextFastLaneAgainstGeneral(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 17))
+	number := func() string {
+		switch r.IntN(12) {
+		case 0:
+			return strconv.FormatFloat((r.Float64()-0.5)*1e9, 'f', r.IntN(9), 64) // long
+		case 1:
+			return strconv.FormatFloat(r.Float64(), 'e', 3, 64)
+		case 2:
+			return " " + strconv.Itoa(r.IntN(100))
+		case 3:
+			return ""
+		}
+		return strconv.FormatFloat((r.Float64()-0.3)*math.Pow(10, float64(r.IntN(6))), 'f', r.IntN(6), 64)
+	}
+	headers := []string{"time[s],pressure[cmH2O],flow[L/min]", "pressure[hPa],flow[L/s],time[ms]",
+		"time[s],pressure[cmH2O],flow[L/min],volume[mL]", "stream,time[s],pressure[cmH2O],flow[L/min]",
+		"time[s],note,pressure[cmH2O],flow[L/min]", "time[s],pressure[cmH2O],flow[L/min],note"}
+	for round := range 200 {
+		var sb strings.Builder
+		cols := 3
+		for range 300 {
+			switch k := r.IntN(60); {
+			case k == 0:
+				h := headers[r.IntN(len(headers))]
+				cols = strings.Count(h, ",") + 1
+				sb.WriteString(h)
+			case k == 1:
+				sb.WriteString("# a comment")
+			default:
+				for c := range cols + r.IntN(8)/7 {
+					if c > 0 {
+						sb.WriteByte(',')
+					}
+					sb.WriteString(number())
+				}
+			}
+			sb.WriteString([]string{"\n", "\n", "\n", "\n", "\n", "\n", "\r\n", "\r\r\n"}[r.IntN(8)])
+		}
+		input := []byte(sb.String())
+		opts := DecoderOptions{RateHz: 50}
+		want, wantStats := decodeBytewise(opts, input)
+		var g got
+		d, _ := NewTextDecoder(opts, g.emit)
+		for p := input; len(p) > 0; {
+			k := min(len(p), 1+r.IntN(4096))
+			_, _ = d.Write(p[:k])
+			p = p[k:]
+		}
+		d.Flush()
+		if d.Stats() != wantStats || !sameSamples(g, want) {
+			t.Fatalf("round %d: fast lane %+v (%d samples), general path %+v (%d samples)", round, d.Stats(),
+				len(g.samples), wantStats, len(want.samples))
+		}
+		if round == 0 && wantStats.Samples < 150 {
+			t.Fatalf("only %d samples: the input is not mostly sample lines", wantStats.Samples)
+		}
+	}
+}
+
+// TestTextFastLaneTakesOrdinaryLines checks that ordinary sample lines do
+// take the fast lane, so that it cannot fall silently out of use.
+func TestTextFastLaneTakesOrdinaryLines(t *testing.T) {
+	var g got
+	d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
+	_, _ = d.Write([]byte("time[s],pressure[cmH2O],flow[L/min]\n"))
+	in := []byte("0.0050,15.1852,-50.0000\n0.0100,5.0000,0.5000\r\n0.0150,1234567.1234567,3\n")
+	n := d.fastLines(append(in, "0.0200,1.0000,1.0000\n"...)) // the last line lacks room for its words
+	if n != len(in) || len(g.samples) != 3 || g.samples[2].PressureCmH2O != 1234567.1234567 {
+		t.Fatalf("fast lane took %d of %d bytes, %d samples: %+v", n, len(in), len(g.samples), g.samples)
+	}
+}
+
+// checkFastNumber reads s as the first field of a line in the fast lane and
+// compares what it takes with strconv.ParseFloat, the standard library's
+// correctly rounded conversion: the same float64, bit for bit (the sign of
+// zero included), and only numbers of the documented syntax. What it leaves
+// goes to the general path, checked against strconv in number_test.go.
+func checkFastNumber(t *testing.T, s string) {
+	t.Helper()
+	if strings.ContainsAny(s, ",\r\n") {
+		return // not one field
+	}
+	cols := []column{{kind: colPressure, unit: unit{mul: 1}}, {kind: colFlow, unit: unit{mul: 1}}}
+	line := []byte(s + ",1\n" + "99999999.99999999e99,1\n") // room for the words, digits beyond the line
+	smp, n, ok := fastLine(line, cols)
+	if !ok {
+		return
+	}
+	want, err := strconv.ParseFloat(s, 64)
+	if n != len(s)+3 || !decimalSyntax.MatchString(s) || err != nil ||
+		math.Float64bits(smp.PressureCmH2O) != math.Float64bits(want) || smp.FlowLPS != 1 {
+		t.Fatalf("fast lane read %q as %v (%x), %d bytes; strconv %v (%x), %v", s, smp.PressureCmH2O,
+			math.Float64bits(smp.PressureCmH2O), n, want, math.Float64bits(want), err)
+	}
+}
+
+// TestFastLineAgainstStrconv runs the comparison on the edges of the fast
+// lane's number form and on many random numbers.
+func TestFastLineAgainstStrconv(t *testing.T) {
+	taken := 0
+	for _, s := range []string{"0", "-0", "+0", "0.0", "-0.0000", "5.", ".5", "-.5", "+.5", "-", "+", ".", "-.",
+		"9999999.9999999", "-9999999.9999999", "99999999.5", "0.99999999", "12345678", "1234567.12345678",
+		"0000000.0000001", "1e5", "1.5e", "1.2.3", "1..2", "--1", "1\xff", "\xb9", "1\x80", "0.1", "0.3", "3599.9950"} {
+		checkFastNumber(t, s)
+	}
+	r := rand.New(rand.NewPCG(8, 13))
+	for range 200000 {
+		s := strconv.FormatFloat((r.Float64()-0.5)*math.Pow(10, float64(r.IntN(16)-8)), 'f', r.IntN(10), 64)
+		if _, _, ok := fastLine([]byte(s+",1\n"+strings.Repeat("7", fastReach)), []column{{kind: colPressure}, {kind: colFlow}}); ok {
+			taken++
+		}
+		checkFastNumber(t, s)
+	}
+	if taken < 50000 {
+		t.Fatalf("the fast lane took only %d of 200000 ordinary numbers", taken)
+	}
+}
+
+// FuzzFastLine compares the fast lane's numbers with strconv.ParseFloat on
+// any input.
+func FuzzFastLine(f *testing.F) {
+	for _, s := range []string{"0", "-12.5", "15.1852", "9999999.9999999", "1e5", ".5", "5.", "0x1p3"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) { checkFastNumber(t, s) })
+}

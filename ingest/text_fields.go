@@ -1,0 +1,149 @@
+package ingest
+
+import (
+	"encoding/binary"
+	"math"
+)
+
+// fastLines decodes the data lines at the start of p that take the fast
+// lane, and returns how many bytes they took; it stops at the first line
+// that does not, which the general path (line) then reads. A line takes the
+// fast lane when the layout's first columns are all numbers (no stream or
+// ignored column before the last one needed), each of its needed fields is
+// a number of fastLine's form followed directly by a comma, the last one by
+// "\n" or "\r\n". Such a line decodes here to what line would make of it,
+// without finding its end first and without the general path's checks for
+// blanks, comments, headers and empty fields, which it cannot have.
+func (d *TextDecoder) fastLines(p []byte) int {
+	cols := d.layout.cols[:d.layout.need]
+	st := d.streams.def
+	done := 0
+	for {
+		s, n, ok := fastLine(p[done:], cols)
+		if !ok {
+			return done
+		}
+		if !d.layout.hasTime {
+			s.TimeS = float64(st.n) / d.rateHz
+		}
+		if math.IsInf(s.TimeS, 0) || math.IsInf(s.PressureCmH2O, 0) || math.IsInf(s.FlowLPS, 0) || math.IsInf(s.VolumeL, 0) {
+			return done // the general path counts it as bad
+		}
+		done += n
+		st.n++
+		d.stats.Samples++
+		d.emit(st.id, s)
+	}
+}
+
+// fastLine reads one line of the fast lane at the start of b and returns
+// its sample (its time as read), its length with the line end, and false
+// when it is not such a line. Its numbers are those samples are written
+// with: an optional sign, at most 7 digits, and optionally a '.' and at
+// most 7 more. Each run of digits is read as one 64-bit word rather than a
+// byte at a time (leadingDigits, digitsValue), so no branch guesses where a
+// number ends; it reads only within b, and needs fastReach bytes from the
+// start of each field.
+//
+// The value: at most 14 digits make an integer below 2^53, exact as a
+// float64, and dividing it by an exact power of ten up to 1e7 is one
+// correctly rounded operation, hence the correctly rounded result (Clinger
+// W.D., "How to read floating point numbers accurately", PLDI 1990), the
+// same float64 as strconv.ParseFloat (FuzzFastLine checks it).
+func fastLine(b []byte, cols []column) (Sample, int, bool) {
+	vals := [8]float64{colVolume: NoVolume} // by column kind, in internal units
+	i := 0
+	for j, c := range cols {
+		if len(b)-i < fastReach {
+			return Sample{}, 0, false
+		}
+		w := b[i : i+fastReach]
+		neg := w[0] == '-'
+		e := 0
+		if neg || w[0] == '+' {
+			e = 1
+		}
+		word := binary.LittleEndian.Uint64(w[e:])
+		k1, k2 := leadingDigits(word), 0
+		e += k1
+		var mant uint64
+		if w[e] == '.' {
+			frac := binary.LittleEndian.Uint64(w[e+1:])
+			k2 = leadingDigits(frac)
+			e += 1 + k2
+			mant = mantissa(word, k1, frac, k2)
+		} else {
+			mant = digitsValue(word, k1)
+		}
+		if k1 == 8 || k2 == 8 || k1+k2 == 0 {
+			return Sample{}, 0, false // perhaps more digits; a sign or a point alone
+		}
+		v := float64(int64(mant)) / pow10[k2]
+		if neg {
+			v = -v
+		}
+		switch end := w[e]; {
+		case j < len(cols)-1 && end == ',':
+			i += e + 1
+		case j == len(cols)-1 && end == '\n':
+			i += e + 1
+		case j == len(cols)-1 && end == '\r' && w[e+1] == '\n':
+			i += e + 2
+		default:
+			return Sample{}, 0, false
+		}
+		vals[c.kind&7] = c.unit.toInternal(v)
+	}
+	return Sample{TimeS: vals[colTime], PressureCmH2O: vals[colPressure], FlowLPS: vals[colFlow],
+		VolumeL: vals[colVolume]}, i, true
+}
+
+// fastLayout reports whether lines of layout l may take the fast lane: its
+// needed columns are all numbers.
+func fastLayout(l layout) bool {
+	for _, c := range l.cols[:l.need] {
+		if c.kind == colIgnore || c.kind == colStream {
+			return false
+		}
+	}
+	return l.need > 0
+}
+
+// numberField reads the number at the start of b and finds the end of its
+// field in one pass. It returns the value, what follows the field's comma
+// (nil when no field follows), whether the field was blank, and false when
+// the field is neither a number nor blank.
+func numberField(b []byte) (v float64, rest []byte, empty, ok bool) {
+	b = trimLeft(b)
+	n := 0
+	if len(b) > 0 && b[0] != ',' {
+		if v, n, ok = scanNumber(b); !ok {
+			return 0, nil, false, false
+		}
+	}
+	if b = trimLeft(b[n:]); len(b) > 0 {
+		if b[0] != ',' {
+			return 0, nil, false, false
+		}
+		rest = b[1:]
+	}
+	return v, rest, n == 0, true
+}
+
+// trimLeft drops the blanks at the start of f.
+func trimLeft(f []byte) []byte {
+	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
+		f = f[1:]
+	}
+	return f
+}
+
+func trimSpace(f []byte) []byte {
+	for len(f) > 0 && (f[0] == ' ' || f[0] == '\t') {
+		f = f[1:]
+	}
+	for len(f) > 0 && (f[len(f)-1] == ' ' || f[len(f)-1] == '\t') {
+		f = f[:len(f)-1]
+	}
+	return f
+}
