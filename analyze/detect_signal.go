@@ -17,6 +17,7 @@ import (
 // stream's time axis; offline analysis passes the sample time.
 type Signal struct {
 	cfg SignalConfig
+	lim sigLimits
 
 	started    bool
 	lastS      float64 // nowS of the last sample batch
@@ -45,6 +46,27 @@ type sigWindow struct {
 	outOfRange, clipped    int
 }
 
+// sigLimits are the thresholds Samples compares every sample with, worked
+// out from the configuration once rather than for each sample (the same
+// expressions, so the same float64 values).
+type sigLimits struct {
+	flowMaxLPS        float64 // FlowMaxLPM in L/s
+	clipPHi, clipPLo  float64 // pressures within the clipping margin of the range's ends
+	clipFlowLPS       float64 // |flow| within the clipping margin of the maximum
+	pressureMin, pMax float64
+	windowS           float64
+	clipRun           int
+}
+
+func newSigLimits(c SignalConfig) sigLimits {
+	flowMaxLPS := c.FlowMaxLPM / 60
+	pSpan := c.PressureMaxCmH2O - c.PressureMinCmH2O
+	return sigLimits{flowMaxLPS: flowMaxLPS,
+		clipPHi: c.PressureMaxCmH2O - c.ClipMarginFrac*pSpan, clipPLo: c.PressureMinCmH2O + c.ClipMarginFrac*pSpan,
+		clipFlowLPS: flowMaxLPS * (1 - c.ClipMarginFrac), pressureMin: c.PressureMinCmH2O, pMax: c.PressureMaxCmH2O,
+		windowS: c.WindowS, clipRun: c.ClipRun}
+}
+
 type gapEntry struct{ tS, lenS float64 }
 
 type errBucket struct {
@@ -58,7 +80,7 @@ const maxGapTimes = 1024
 
 // NewSignal returns the technical-condition detector; cfg must be valid.
 func NewSignal(cfg SignalConfig) *Signal {
-	s := &Signal{cfg: cfg}
+	s := &Signal{cfg: cfg, lim: newSigLimits(cfg)}
 	s.win.reset(math.NaN())
 	return s
 }
@@ -85,45 +107,57 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 		dst = append(dst, Finding{Condition: CondSignalLost, Class: Technical, TimeS: nowS, BreathSeq: -1,
 			Evidence: map[string]float64{}, Message: "samples are arriving again"})
 	}
-	c := &s.cfg
-	flowMaxLPS := c.FlowMaxLPM / 60
-	pSpan := c.PressureMaxCmH2O - c.PressureMinCmH2O
+	lim := &s.lim
+	w := &s.win
 	for _, x := range samples {
 		p, f := x.PressureCmH2O, x.FlowLPS
 		if math.IsNaN(p) || math.IsNaN(f) || math.IsInf(p, 0) || math.IsInf(f, 0) {
 			continue
 		}
-		w := &s.win
 		if math.IsNaN(w.startS) || x.TimeS < w.startS {
 			w.reset(x.TimeS)
 		}
-		if x.TimeS-w.startS >= c.WindowS {
+		if x.TimeS-w.startS >= lim.windowS {
 			dst = append(dst, s.evalWindow(x.TimeS))
 			w.reset(x.TimeS)
 		}
 		w.n++
-		w.pMin, w.pMax = min(w.pMin, p), max(w.pMax, p)
-		w.fMin, w.fMax = min(w.fMin, f), max(w.fMax, f)
+		// p and f are finite here, so plain comparisons give the extremes
+		// (Go's min and max also order NaNs and zeros' signs, at a cost per
+		// sample; a zero's sign cannot change a range).
+		if p < w.pMin {
+			w.pMin = p
+		}
+		if p > w.pMax {
+			w.pMax = p
+		}
+		if f < w.fMin {
+			w.fMin = f
+		}
+		if f > w.fMax {
+			w.fMax = f
+		}
 		w.sp += p
 		w.sf += f
 		w.spp += p * p
 		w.sff += f * f
 		w.spf += p * f
-		if p < c.PressureMinCmH2O || p > c.PressureMaxCmH2O || math.Abs(f) > flowMaxLPS {
+		af := math.Abs(f)
+		if p < lim.pressureMin || p > lim.pMax || af > lim.flowMaxLPS {
 			w.outOfRange++
 		}
 		// Clipping: a run of identical values at the ends of the range.
-		if p == s.prevP && (p >= c.PressureMaxCmH2O-c.ClipMarginFrac*pSpan || p <= c.PressureMinCmH2O+c.ClipMarginFrac*pSpan) {
+		if p == s.prevP && (p >= lim.clipPHi || p <= lim.clipPLo) {
 			s.runP++
 		} else {
 			s.runP = 1
 		}
-		if f == s.prevF && math.Abs(f) >= flowMaxLPS*(1-c.ClipMarginFrac) {
+		if f == s.prevF && af >= lim.clipFlowLPS {
 			s.runF++
 		} else {
 			s.runF = 1
 		}
-		if s.runP == c.ClipRun || s.runF == c.ClipRun {
+		if s.runP == lim.clipRun || s.runF == lim.clipRun {
 			w.clipped++
 		}
 		s.prevP, s.prevF = p, f
