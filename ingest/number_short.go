@@ -42,14 +42,10 @@ func digitsValue(w uint64, k int) uint64 {
 	return ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
 }
 
-// mantissa returns the digits of an integer part (the first k1 bytes of
-// word) followed by those of a fraction (the first k2 bytes of frac) as one
-// integer, k1 and k2 at most 7.
-func mantissa(word uint64, k1 int, frac uint64, k2 int) uint64 {
-	if k1+k2 <= 8 {
-		// Both runs fit one word: the fraction's digits right after the
-		// integer's, read in one go.
-		return digitsValue(word&(1<<(8*uint(k1))-1)|frac<<(8*uint(k1)), k1+k2)
-	}
+// mantissaLong returns the digits of an integer part (the first k1 bytes
+// of word) followed by those of a fraction (the first k2 bytes of frac) as
+// one integer, k1 and k2 at most 7: the fast lane's numbers of more than 8
+// digits in all.
+func mantissaLong(word uint64, k1 int, frac uint64, k2 int) uint64 {
 	return digitsValue(word, k1)*pow10u[k2] + digitsValue(frac, k2)
 }

@@ -66,17 +66,22 @@ func fastLine(b []byte, cols []column) (Sample, int, bool) {
 		word := binary.LittleEndian.Uint64(w[e:])
 		k1, k2 := leadingDigits(word), 0
 		e += k1
-		var mant uint64
+		var frac uint64
 		if w[e] == '.' {
-			frac := binary.LittleEndian.Uint64(w[e+1:])
+			frac = binary.LittleEndian.Uint64(w[e+1:])
 			k2 = leadingDigits(frac)
 			e += 1 + k2
-			mant = mantissa(word, k1, frac, k2)
-		} else {
-			mant = digitsValue(word, k1)
 		}
 		if k1 == 8 || k2 == 8 || k1+k2 == 0 {
 			return Sample{}, 0, false // perhaps more digits; a sign or a point alone
+		}
+		var mant uint64
+		if k1+k2 <= 8 {
+			// Both runs fit one word: the fraction's digits right after
+			// the integer's, read in one go.
+			mant = digitsValue(word&(1<<(8*uint(k1))-1)|frac<<(8*uint(k1)), k1+k2)
+		} else {
+			mant = mantissaLong(word, k1, frac, k2)
 		}
 		v := float64(int64(mant)) / pow10[k2]
 		if neg {
