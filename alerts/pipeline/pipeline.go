@@ -197,6 +197,11 @@ func (p *Pipeline) takeOut() Output {
 
 // PushOne is Push for a single sample, without a slice from the caller.
 func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
+	if p.offline() {
+		p.sink = sink
+		p.pushOffline(s, sink)
+		return
+	}
 	p.one[0] = s
 	p.Push(p.one[:], sink)
 }
@@ -205,43 +210,55 @@ func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
 // allocate per sample.
 func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 	p.sink = sink
-	wall := time.Time{}
-	if !p.offline() {
-		wall = p.now()
+	if p.offline() {
+		for i := range ss {
+			p.pushOffline(ss[i], sink)
+		}
+		return
 	}
+	wall := p.now()
 	for i := range ss {
 		s := ss[i]
 		if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
 			continue // no place on the time axis; the analyzer skips it too
 		}
-		if p.offline() {
-			if p.clock.Due(s.TimeS) {
-				p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
-			}
-			// The wall time of a sample is the clock's Wall(TimeS),
-			// made only when something needs it (see streamNow).
-			p.judge.SamplesAt(ss[i:i+1], s.TimeS, p.wallOf, p.alertFn)
-			p.haveSample, p.lastS = true, s.TimeS
-		} else {
-			p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
-			p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
+		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
+		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
+		if b := p.an.Next(s); b != nil {
+			p.breathOut(b, wall, sink)
 		}
-		b := p.an.Next(s)
-		if b == nil {
-			continue
-		}
-		if p.offline() {
-			wall = p.clock.Wall(s.TimeS)
-		}
-		p.breath = *b
-		p.breath.Stream = p.stream
-		p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
-		p.breath.Seq += p.seqBase
-		p.lastBreath = p.breath.Seq
-		p.remember(&p.breath)
-		sink.Breath(&p.breath)
-		p.judge.Breath(&p.breath, wall, p.alertFn)
 	}
+}
+
+// pushOffline is Push of one sample for an offline pipeline: the ticks due
+// first, on the stream's time axis, and the wall time of a sample made only
+// when something needs it (see streamNow).
+func (p *Pipeline) pushOffline(s ingest.Sample, sink Sink) {
+	if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
+		return // no place on the time axis; the analyzer skips it too
+	}
+	if p.clock.Due(s.TimeS) {
+		p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+	}
+	p.one[0] = s
+	p.judge.SamplesAt(p.one[:], s.TimeS, p.wallOf, p.alertFn)
+	p.haveSample, p.lastS = true, s.TimeS
+	if b := p.an.Next(s); b != nil {
+		p.breathOut(b, p.clock.Wall(s.TimeS), sink)
+	}
+}
+
+// breathOut stamps a completed breath with the stream and provenance,
+// hands it to sink and judges it.
+func (p *Pipeline) breathOut(b *analyze.Breath, wall time.Time, sink Sink) {
+	p.breath = *b
+	p.breath.Stream = p.stream
+	p.breath.TraplineVersion, p.breath.ConfigDigest = p.version, p.digest
+	p.breath.Seq += p.seqBase
+	p.lastBreath = p.breath.Seq
+	p.remember(&p.breath)
+	sink.Breath(&p.breath)
+	p.judge.Breath(&p.breath, wall, p.alertFn)
 }
 
 // Status takes a change of the source's condition. A disconnection resets
