@@ -25,6 +25,12 @@ type Config struct {
 	HTTP HTTP `mapstructure:"http"`
 	// ShutdownTimeout bounds the drain of pending alerts at shutdown.
 	ShutdownTimeout time.Duration `mapstructure:"shutdown_timeout"`
+	// MemoryLimit is the soft limit of the daemon's memory (the Go runtime's
+	// memory limit): near it the collector runs more often and returns
+	// freed pages sooner, so that a daemon of thousands of streams stays
+	// within its budget (docs/operations.md). 0 leaves the runtime's own
+	// default (none, or the GOMEMLIMIT environment variable).
+	MemoryLimit Size `mapstructure:"memory_limit"`
 	// NATS is where breath records and alerts go.
 	NATS NATS `mapstructure:"nats"`
 	// Spool keeps alerts on disk while NATS is unreachable.
