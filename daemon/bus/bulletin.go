@@ -13,10 +13,11 @@ import (
 	"trapline/analyze"
 )
 
-// defaultBulletinQueue bounds the breath and status messages waiting to be
+// DefaultBulletinQueue bounds the breath and status messages waiting to be
 // written to the connection: a minute of 30 breaths per minute on 50 streams
 // with a heartbeat every 5 s, well above what a healthy link ever holds.
-const defaultBulletinQueue = 4096
+// A daemon of many streams adds room for their heartbeats.
+const DefaultBulletinQueue = 4096
 
 // bulletinMsg is one message waiting in the bulletin's queue.
 type bulletinMsg struct {
@@ -45,10 +46,10 @@ type Bulletin struct {
 }
 
 // NewBulletin returns a Bulletin for nc under the subject prefix, with a
-// queue of queueLen messages (defaultBulletinQueue when <= 0).
+// queue of queueLen messages (DefaultBulletinQueue when <= 0).
 func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger) *Bulletin {
 	if queueLen <= 0 {
-		queueLen = defaultBulletinQueue
+		queueLen = DefaultBulletinQueue
 	}
 	return &Bulletin{
 		nc: nc, subj: alerts.Subjects{Prefix: prefix},
