@@ -72,6 +72,7 @@ type muxSource struct {
 	r        *muxRuntime
 	cfg      config.Source
 	settings config.SourceSettings
+	digest   string // of settings, shared by the source's pipelines
 	src      ingest.Source
 	adm      *ingest.Admission
 	finite   bool
@@ -108,6 +109,7 @@ func (r *muxRuntime) addSource(i int) (*muxSource, error) {
 	}
 	ms := &muxSource{
 		r: r, cfg: sc, settings: st, adm: adm,
+		digest:  config.AnalysisDigest(st.Analysis, st.Detectors, st.Alarms),
 		finite:  u.Scheme == "file" || u.Scheme == "stdin",
 		log:     d.log.With().Str("source", sc.Name).Logger(),
 		streams: map[string]*muxStream{},
