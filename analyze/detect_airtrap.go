@@ -17,9 +17,9 @@ const maxAirTrappingWindow = 64
 // expired volume over the window while the trapped-volume estimate rises.
 type AirTrapping struct {
 	cfg     AirTrappingConfig
-	ring    [maxAirTrappingWindow]atBreath
-	next    int // index of the next slot to write
-	n       int // breaths in the ring (≤ M)
+	ring    []atBreath // the last M breaths, M entries
+	next    int        // index of the next slot to write
+	n       int        // breaths in the ring (≤ M)
 	present bool
 	buf     []float64
 }
@@ -50,7 +50,7 @@ func NewAirTrapping(cfg AirTrappingConfig) *AirTrapping {
 	if !(cfg.ClearFraction > 0 && cfg.ClearFraction <= 1) {
 		cfg.ClearFraction = 1 // no hysteresis of the magnitude
 	}
-	return &AirTrapping{cfg: cfg, buf: make([]float64, 0, maxAirTrappingWindow)}
+	return &AirTrapping{cfg: cfg, ring: make([]atBreath, cfg.M), buf: make([]float64, 0, maxAirTrappingWindow)}
 }
 
 // Conditions implements BreathDetector.

@@ -25,6 +25,12 @@ type Config struct {
 	HTTP HTTP `mapstructure:"http"`
 	// ShutdownTimeout bounds the drain of pending alerts at shutdown.
 	ShutdownTimeout time.Duration `mapstructure:"shutdown_timeout"`
+	// MemoryLimit is the soft limit of the daemon's memory (the Go runtime's
+	// memory limit): near it the collector runs more often and returns
+	// freed pages sooner, so that a daemon of thousands of streams stays
+	// within its budget (docs/operations.md). 0 leaves the runtime's own
+	// default (none, or the GOMEMLIMIT environment variable).
+	MemoryLimit Size `mapstructure:"memory_limit"`
 	// NATS is where breath records and alerts go.
 	NATS NATS `mapstructure:"nats"`
 	// Spool keeps alerts on disk while NATS is unreachable.
@@ -66,6 +72,10 @@ type HTTP struct {
 	// Listen is host:port for /healthz, /readyz and /metrics; empty disables
 	// the endpoint.
 	Listen string `mapstructure:"listen"`
+	// Pprof also serves the Go runtime's profiles under /debug/pprof/
+	// (CPU, heap, goroutines) for measuring a running daemon. Off by
+	// default; like the rest of the endpoint it belongs on loopback.
+	Pprof bool `mapstructure:"pprof"`
 }
 
 // NATS configures the message bus: an embedded server by default, or an

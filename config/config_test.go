@@ -231,7 +231,7 @@ func TestBadConfigs(t *testing.T) {
 				"detectors: {limits: {high_peak_pressure: {limit: 40}}}\nalarms: {conditions: {air_traping: {n: 1}}}\n",
 			want: []string{
 				`alarms.conditions.air_traping: unknown key (did you mean "air_trapping"?)`,
-				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, nats, spool, recording, streams, sources, analysis, detectors, alarms, role, scaleout)`,
+				`colour: unknown key (want one of data_dir, log, http, shutdown_timeout, memory_limit, nats, spool, recording, streams, sources, analysis, detectors, alarms, role, scaleout)`,
 				`detectors.limits.high_peak_pressure.limit: unknown key (want one of enabled, limit_cmh2o, high_margin_cmh2o, hysteresis_cmh2o)`,
 				`nats.embedded.prot: unknown key (did you mean "port"?)`,
 				`nats.embeded: unknown key (did you mean "embedded"?)`,

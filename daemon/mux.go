@@ -72,6 +72,7 @@ type muxSource struct {
 	r        *muxRuntime
 	cfg      config.Source
 	settings config.SourceSettings
+	digest   string // of settings, shared by the source's pipelines
 	src      ingest.Source
 	adm      *ingest.Admission
 	finite   bool
@@ -108,6 +109,7 @@ func (r *muxRuntime) addSource(i int) (*muxSource, error) {
 	}
 	ms := &muxSource{
 		r: r, cfg: sc, settings: st, adm: adm,
+		digest:  config.AnalysisDigest(st.Analysis, st.Detectors, st.Alarms),
 		finite:  u.Scheme == "file" || u.Scheme == "stdin",
 		log:     d.log.With().Str("source", sc.Name).Logger(),
 		streams: map[string]*muxStream{},
@@ -116,6 +118,7 @@ func (r *muxRuntime) addSource(i int) (*muxSource, error) {
 	}
 	opts := ingest.Options{
 		Columns: sc.Columns, RateHz: sc.SampleRateHz, Log: &ms.log, NATS: d.nc, Direct: ms.deliver,
+		Hold: sc.BatchWindow,
 	}
 	ms.block = opts.Overload.For(u.Scheme) == ingest.OverloadBlock
 	if ms.src, err = ingest.Open(sc.URL, opts); err != nil {
@@ -186,8 +189,9 @@ func (ms *muxSource) deliver(evs []ingest.Event) {
 
 // send queues a work batch on a shard: behind a source that blocks (a
 // file, stdin) it waits; behind a live one a full queue means the shard is
-// behind, and the batch is dropped and counted with one warning per
-// episode.
+// behind, and the read waits up to liveWait for room (meanwhile the
+// sender's data waits in the connection's socket buffers), then the batch
+// is dropped and counted with one warning per episode.
 func (ms *muxSource) send(sh *shard, w *work) {
 	if ms.block {
 		select {
@@ -202,21 +206,45 @@ func (ms *muxSource) send(sh *shard, w *work) {
 		if ms.dropEpisode.Load() && ms.dropEpisode.CompareAndSwap(true, false) {
 			ms.log.Debug().Msg("analysis caught up; no longer dropping samples")
 		}
+		return
 	default:
-		n := 0
-		for i := range w.items {
-			n += len(w.items[i].ev.Samples)
-		}
-		ms.dropped.Add(float64(n))
-		// One warning per episode, and episodes that come and go within
-		// ten seconds count as one.
-		now := time.Now().UnixNano()
-		if ms.dropEpisode.CompareAndSwap(false, true) && now-ms.lastWarn.Load() >= int64(10*time.Second) {
-			ms.lastWarn.Store(now)
-			ms.log.Warn().Int("queue", cap(sh.in)).Msg("analysis is behind its source; dropping samples")
-		}
-		w.release()
 	}
+	if ms.waitRoom(sh, w) {
+		return
+	}
+	n := 0
+	for i := range w.items {
+		n += len(w.items[i].ev.Samples)
+	}
+	ms.dropped.Add(float64(n))
+	// One warning per episode, and episodes that come and go within ten
+	// seconds count as one.
+	now := time.Now().UnixNano()
+	if ms.dropEpisode.CompareAndSwap(false, true) && now-ms.lastWarn.Load() >= int64(10*time.Second) {
+		ms.lastWarn.Store(now)
+		ms.log.Warn().Int("queue", cap(sh.in)).Msg("analysis is behind its source; dropping samples")
+	}
+	w.release()
+}
+
+// liveWait is how long a read of a live source waits for room in a full
+// shard queue before its samples are dropped: long enough to ride out a
+// burst (thousands of pipelines made at once when a ward connects, a
+// collection), short enough that a shard that cannot keep up sheds load
+// instead of holding its links.
+const liveWait = time.Second
+
+// waitRoom waits up to liveWait for room for w in sh's queue.
+func (ms *muxSource) waitRoom(sh *shard, w *work) bool {
+	t := time.NewTimer(liveWait)
+	defer t.Stop()
+	select {
+	case sh.in <- w:
+		return true
+	case <-t.C:
+	case <-ms.ctx.Done():
+	}
+	return false
 }
 
 // run reads the source until ctx ends, restarting it with backoff when it

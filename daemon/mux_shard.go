@@ -319,7 +319,7 @@ func (sh *shard) started(st *muxStream) {
 	s := st.src
 	st.pl = pipeline.New(pipeline.Options{
 		Stream: st.id, Analysis: s.settings.Analysis, Detectors: s.settings.Detectors,
-		Alarms: s.settings.Alarms, Stats: s.src.Stats, Now: sh.wall,
+		Alarms: s.settings.Alarms, Stats: s.src.Stats, Now: sh.wall, Digest: s.digest,
 	})
 	st.activeIDs = map[string]struct{}{}
 	sh.streams = append(sh.streams, st)

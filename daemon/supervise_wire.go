@@ -65,7 +65,7 @@ func openDelivery(cfg *config.Config, b *bus.Bus, log zerolog.Logger) (*delivery
 	}
 	return &delivery{
 		pub: pub, js: js, streams: sc, log: log,
-		bull: bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, 0, log),
+		bull: bus.NewBulletin(b.Conn, cfg.NATS.SubjectPrefix, bulletinQueue(cfg), log),
 	}, nil
 }
 
@@ -171,4 +171,16 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 		TickEvery: d.opts.TickEvery,
 		Health:    health,
 	}, nil
+}
+
+// bulletinQueue sizes the breath and status queue to the streams the
+// daemon may carry: every shard publishes the heartbeats of all its streams
+// at once, every 5 s, so a ward of thousands needs room for two messages a
+// stream besides the default.
+func bulletinQueue(cfg *config.Config) int {
+	n := len(cfg.Streams)
+	for _, s := range cfg.Sources {
+		n += s.Streams()
+	}
+	return bus.DefaultBulletinQueue + 2*n
 }

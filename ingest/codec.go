@@ -145,6 +145,9 @@ type streamState struct {
 	// counter of the next sample (binary).
 	n       int64
 	started bool
+	// next is the stream whose sample followed this one's last time: a
+	// link of many streams repeats their order, so it is usually the next.
+	next *streamState
 }
 
 // streamTable interns stream ids without allocating for ids already seen.
@@ -168,15 +171,18 @@ func (t *streamTable) get(b []byte) *streamState {
 	if string(b) == t.last.id {
 		return t.last
 	}
-	if s, ok := t.m[string(b)]; ok {
-		t.last = s
-		return s
+	if n := t.last.next; n != nil && string(b) == n.id {
+		t.last = n
+		return n
 	}
-	if !validStreamID(b) || len(t.m) >= maxStreams {
-		return nil
+	s, ok := t.m[string(b)]
+	if !ok {
+		if !validStreamID(b) || len(t.m) >= maxStreams {
+			return nil
+		}
+		s = &streamState{id: string(b)}
+		t.m[s.id] = s
 	}
-	s := &streamState{id: string(b)}
-	t.m[s.id] = s
-	t.last = s
+	t.last.next, t.last = s, s
 	return s
 }

@@ -23,6 +23,7 @@ type conn struct {
 	defStream string
 	seen      []string               // streams read from this conn, for status events
 	streams   map[string]*connStream // per stream read from this conn
+	last      *connStream            // the stream of the last sample
 	order     []*connStream          // streams with pending samples, in order
 	prev      DecoderStats
 	lastErr   error
@@ -116,11 +117,33 @@ type connStream struct {
 	id      string
 	tl      *timeline
 	pending *[]Sample
+	next    *connStream // the stream that followed this one last time
 }
 
 // stream returns the state of a stream on this conn, making it on its
 // first sample.
 func (c *conn) stream(id string) *connStream {
+	// A link of many streams repeats their order: the stream after the
+	// last one is found without hashing its id.
+	if l := c.last; l != nil {
+		if l.id == id {
+			return l
+		}
+		if n := l.next; n != nil && n.id == id {
+			c.last = n
+			return n
+		}
+	}
+	cs := c.lookup(id)
+	if c.last != nil {
+		c.last.next = cs
+	}
+	c.last = cs
+	return cs
+}
+
+// lookup finds or makes the state of stream id on this conn.
+func (c *conn) lookup(id string) *connStream {
 	if cs := c.streams[id]; cs != nil {
 		return cs
 	}
@@ -296,32 +319,116 @@ const readChunk = 32 << 10
 // pump reads r until it fails and decodes what it reads. It returns the
 // read error (io.EOF at the end of a file). deadline, when not nil, is set
 // before each read so that a quiet link still returns to the loop after a
-// read that timed out.
+// read that timed out; such a link also holds its reads for Options.Hold.
 func (c *conn) pump(r io.Reader, deadline func(time.Time) error) error {
-	buf := make([]byte, readChunk)
+	var h holder
+	if deadline != nil {
+		h.hold = c.s.opts.Hold
+	}
+	h.buf = make([]byte, 0, h.size())
 	for {
 		if c.ctx.Err() != nil {
+			h.flush(c)
 			return c.ctx.Err()
 		}
 		if deadline != nil {
-			_ = deadline(time.Now().Add(250 * time.Millisecond))
+			_ = deadline(h.deadline(time.Now()))
 		}
-		n, err := r.Read(buf)
+		n, err := r.Read(h.buf[len(h.buf):cap(h.buf)])
 		if n > 0 {
-			c.write(buf[:n])
+			h.add(c, n)
 		}
 		if err != nil {
 			var ne net.Error
 			if errors.As(err, &ne) && ne.Timeout() {
+				h.due(c, time.Now())
 				c.checkSilence()
 				continue
 			}
+			h.flush(c)
 			return err
 		}
 		if n == 0 {
 			c.checkSilence()
 		}
 	}
+}
+
+// A holder keeps the bytes of a live link's reads for up to hold and
+// decodes them together (Options.Hold). A live sender writes every few
+// milliseconds, one sample of each of its streams per write; decoding the
+// writes of 50 ms at once visits each stream's state once for five
+// samples, while it is still in the processor's caches, and hands five
+// samples at a time to the analysis. With hold 0 every read is decoded as
+// it comes.
+type holder struct {
+	hold  time.Duration
+	buf   []byte
+	since time.Time // when the oldest held byte was read
+}
+
+// size is the capacity of the read buffer: one readChunk, or eight when
+// reads are held, so that a read always has a readChunk of room.
+func (h *holder) size() int {
+	if h.hold > 0 {
+		return 8 * readChunk
+	}
+	return readChunk
+}
+
+// deadline is when the next read gives up: in 250 ms, or when the held
+// bytes are due.
+func (h *holder) deadline(now time.Time) time.Time {
+	d := now.Add(250 * time.Millisecond)
+	if len(h.buf) > 0 {
+		if due := h.since.Add(h.hold); due.Before(d) {
+			return due
+		}
+	}
+	return d
+}
+
+// add takes the n bytes just read into the buffer and decodes what is
+// held once it is due or the buffer has less than a readChunk of room;
+// otherwise it waits until the held bytes are due.
+func (h *holder) add(c *conn, n int) {
+	if h.hold <= 0 {
+		c.write(h.buf[:n])
+		return
+	}
+	now := time.Now()
+	if len(h.buf) == 0 {
+		h.since = now
+	}
+	h.buf = h.buf[:len(h.buf)+n]
+	if cap(h.buf)-len(h.buf) < readChunk {
+		h.flush(c)
+		return
+	}
+	if now.Sub(h.since) >= h.hold {
+		h.flush(c)
+		return
+	}
+	// Not due yet: rather than wake for every write of the sender, let
+	// its writes gather in the socket's buffer until they are, and take
+	// them in one read.
+	backoff.Sleep(c.ctx, nil, h.since.Add(h.hold).Sub(now))
+}
+
+// due decodes the held bytes if their time has come.
+func (h *holder) due(c *conn, now time.Time) {
+	if len(h.buf) > 0 && now.Sub(h.since) >= h.hold {
+		h.flush(c)
+	}
+}
+
+// flush decodes every held byte.
+func (h *holder) flush(c *conn) {
+	if len(h.buf) == 0 {
+		return
+	}
+	c.write(h.buf)
+	h.buf = h.buf[:0]
 }
 
 // streamFor returns the default stream of the n-th client of tcp-listen in

@@ -59,6 +59,15 @@ type Options struct {
 	// sink decides). A tcp-listen source calls it from each client's
 	// goroutine, so it must be safe for concurrent use.
 	Direct BatchSink
+	// Hold, when positive, lets a connection read by a network stream
+	// (tcp, tcp-listen) keep what it reads for up to this long and decode
+	// it together, rather than read by read. A live sender writes every few
+	// milliseconds, so each read brings one sample of each of its streams;
+	// held for 50 ms, every stream's state is visited once for five samples
+	// instead of five times, which is most of what carrying thousands of
+	// streams costs (docs/operations.md). It delays every sample by at most
+	// Hold. 0 decodes each read at once.
+	Hold time.Duration
 	// Tap, when not nil, receives every byte read before it is decoded,
 	// and every reset and end of input (for recording).
 	Tap Tap

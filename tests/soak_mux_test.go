@@ -9,6 +9,12 @@ package tests
 //	TRAPLINE_SOAK_STREAMS=1000 TRAPLINE_SOAK_SECONDS=60 \
 //	  go test -tags soak -run TestSoakWard -v -timeout 20m ./tests/
 //
+// TRAPLINE_SOAK_BATCH_WINDOW (the source's batch_window, e.g. 50ms) and
+// TRAPLINE_SOAK_MEMORY_LIMIT (the daemon's memory_limit, e.g. 900MiB) set
+// the two knobs of a large ward; TRAPLINE_SOAK_CPU_PROFILE=FILE writes the
+// daemon's CPU profile, TRAPLINE_SOAK_HEAP_PROFILE=FILE its heap profile at
+// the end of the window.
+//
 // Senders replay a pre-encoded breath (defaultLung) with a per-stream phase,
 // paced on the wall clock every 10 ms. A NATS subscriber to the streams of
 // the first connection measures the latency from the write of the sample
@@ -18,7 +24,9 @@ package tests
 import (
 	"encoding/json"
 	"fmt"
+	"io"
 	"net"
+	"net/http"
 	"os"
 	"path/filepath"
 	"slices"
@@ -61,8 +69,10 @@ func TestSoakWard(t *testing.T) {
 	natsPort, httpPort, srcPort := freePort(t), freePort(t), freePort(t)
 	cfg := fmt.Sprintf(`data_dir: %s
 shutdown_timeout: 10s
+memory_limit: %s
 http:
   listen: 127.0.0.1:%d
+  pprof: true
 log:
   level: warn
 nats:
@@ -73,7 +83,8 @@ sources:
     source: tcp-listen://127.0.0.1:%d?max-clients=1024
     pattern: "c*"
     max_streams: %d
-`, dir, httpPort, natsPort, srcPort, nStreams+perConn)
+    batch_window: %s
+`, dir, envString("TRAPLINE_SOAK_MEMORY_LIMIT", "0"), httpPort, natsPort, srcPort, nStreams+perConn, envString("TRAPLINE_SOAK_BATCH_WINDOW", "0s"))
 	cfgPath := filepath.Join(dir, "ward.yaml")
 	if err := os.WriteFile(cfgPath, []byte(cfg), 0o600); err != nil {
 		t.Fatal(err)
@@ -165,6 +176,9 @@ sources:
 		t.Fatalf("daemon exited during the soak:\n%s", proc.out.String())
 	}
 	cpu := procCPUSeconds(t, pid) - cpu0
+	if path := os.Getenv("TRAPLINE_SOAK_HEAP_PROFILE"); path != "" {
+		saveURL(t, fmt.Sprintf("http://127.0.0.1:%d/debug/pprof/heap", httpPort), path)
+	}
 	wall := time.Since(start).Seconds()
 	rss, hwm := procMemory(t, pid)
 	m1 := metricsOf(httpPort)
@@ -175,11 +189,14 @@ sources:
 		sent += wc.sent.Load() * int64(len(wc.ids))
 	}
 	var got, dropped float64
+	var drops string
 	waitFor(t, 30*time.Second, "every sample to be counted", func() bool {
 		m := metricsOf(httpPort)
 		got = m["trapline_samples_total"]
 		dropped = m["trapline_queue_dropped_samples_total"] + m["trapline_source_dropped_samples_total"] +
 			m["trapline_refused_samples_total"]
+		drops = fmt.Sprintf("queue %.0f, source %.0f, refused %.0f", m["trapline_queue_dropped_samples_total"],
+			m["trapline_source_dropped_samples_total"], m["trapline_refused_samples_total"])
 		return got >= float64(sent)
 	})
 	if err := proc.stop(30 * time.Second); err != nil {
@@ -193,10 +210,12 @@ sources:
 		nStreams, len(conns), lung.SampleRateHz, wall, sent, got, dropped)
 	t.Logf("ward: daemon CPU %.3f cores (%.1f s of %.1f s), %.1f µs per stream-second; RSS %.0f MiB (peak %.0f MiB); goroutines %.0f",
 		cpu/wall, cpu, wall, cpu/wall/float64(nStreams)*1e6, rss/1024, hwm/1024, m1["go_goroutines"])
+	t.Logf("ward: Go heap in use %.0f MiB, heap objects %.0f, next GC at %.0f MiB",
+		m1["go_memstats_heap_inuse_bytes"]/(1<<20), m1["go_memstats_heap_objects"], m1["go_memstats_next_gc_bytes"]/(1<<20))
 	t.Logf("ward: breaths %0.f in the window; confirming sample → subscriber latency p50 %.2f ms, p99 %.2f ms (%d breaths of %d streams)",
 		m1["trapline_breaths_total"]-m0["trapline_breaths_total"], p50*1000, p99*1000, len(lat), len(conns[0].ids))
 	if dropped != 0 {
-		t.Errorf("%.0f samples dropped or refused, want none", dropped)
+		t.Errorf("%.0f samples dropped or refused (%s), want none", dropped, drops)
 	}
 	if cpu/wall >= 1 {
 		t.Errorf("daemon used %.2f cores, want less than 1", cpu/wall)
@@ -278,4 +297,23 @@ func confirmingSample(tEndS float64, phase, period int, rateHz, holdS float64) i
 		n++
 	}
 	return n
+}
+
+// saveURL writes what url serves to path.
+func saveURL(t *testing.T, url, path string) {
+	t.Helper()
+	resp, err := http.Get(url)
+	if err != nil {
+		t.Errorf("GET %s: %v", url, err)
+		return
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	if err != nil {
+		t.Errorf("GET %s: %v", url, err)
+		return
+	}
+	if err := os.WriteFile(path, b, 0o644); err != nil {
+		t.Error(err)
+	}
 }

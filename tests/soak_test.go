@@ -250,3 +250,11 @@ func procMemory(t *testing.T, pid int) (rss, hwm float64) {
 	}
 	return rss, hwm
 }
+
+// envString returns the environment variable name, or def when it is empty.
+func envString(name, def string) string {
+	if v := os.Getenv(name); v != "" {
+		return v
+	}
+	return def
+}

@@ -13,16 +13,18 @@ import (
 	"trapline/analyze"
 )
 
-// defaultBulletinQueue bounds the breath and status messages waiting to be
+// DefaultBulletinQueue bounds the breath and status messages waiting to be
 // written to the connection: a minute of 30 breaths per minute on 50 streams
 // with a heartbeat every 5 s, well above what a healthy link ever holds.
-const defaultBulletinQueue = 4096
+// A daemon of many streams adds room for their heartbeats.
+const DefaultBulletinQueue = 4096
 
 // bulletinMsg is one message waiting in the bulletin's queue.
 type bulletinMsg struct {
 	subject string
 	data    []byte
 	msgID   string // Nats-Msg-Id, or ""
+	pooled  bool   // data came from recordPool
 }
 
 // Bulletin publishes breath records and status heartbeats best effort: the
@@ -45,10 +47,10 @@ type Bulletin struct {
 }
 
 // NewBulletin returns a Bulletin for nc under the subject prefix, with a
-// queue of queueLen messages (defaultBulletinQueue when <= 0).
+// queue of queueLen messages (DefaultBulletinQueue when <= 0).
 func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger) *Bulletin {
 	if queueLen <= 0 {
-		queueLen = defaultBulletinQueue
+		queueLen = DefaultBulletinQueue
 	}
 	return &Bulletin{
 		nc: nc, subj: alerts.Subjects{Prefix: prefix},
@@ -60,7 +62,20 @@ func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger)
 // Breath queues the breath record (the breath record contract) for
 // <prefix>.breath.<stream>.
 func (b *Bulletin) Breath(br *analyze.Breath) {
-	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768))})
+	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(getRecordBuf()), pooled: true})
+}
+
+// recordPool recycles the buffers of breath records: the connection copies
+// a message into its own buffer when it is published, so the record's
+// buffer is free again once send returns.
+var recordPool = sync.Pool{New: func() any { b := make([]byte, 0, 1024); return &b }}
+
+func getRecordBuf() []byte { return (*recordPool.Get().(*[]byte))[:0] }
+
+func putRecordBuf(b []byte) {
+	if cap(b) <= 4096 {
+		recordPool.Put(&b)
+	}
 }
 
 // BreathWithID queues the breath record with a message id (Nats-Msg-Id),
@@ -81,7 +96,15 @@ func (b *Bulletin) offer(m bulletinMsg) {
 	select {
 	case b.q <- m:
 	default:
+		m.release()
 		b.drop("queue full: NATS is slow or away")
+	}
+}
+
+// release returns a pooled buffer.
+func (m *bulletinMsg) release() {
+	if m.pooled {
+		putRecordBuf(m.data)
 	}
 }
 
@@ -142,7 +165,9 @@ func (b *Bulletin) send(m bulletinMsg) {
 	if m.msgID != "" {
 		msg.Header = nats.Header{nats.MsgIdHdr: []string{m.msgID}}
 	}
-	if err := b.nc.PublishMsg(msg); err != nil {
+	err := b.nc.PublishMsg(msg)
+	m.release()
+	if err != nil {
 		b.drop(err.Error())
 		return
 	}

@@ -3,6 +3,7 @@ package cli
 import (
 	"fmt"
 	"io"
+	"runtime/debug"
 
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
@@ -39,6 +40,10 @@ func (a *app) runCommand() *cobra.Command {
 			log, err := configLogger(a.stderr, cfg.Log.Level, cfg.Log.Format)
 			if err != nil {
 				return &daemon.UsageError{Err: err}
+			}
+			if cfg.MemoryLimit > 0 {
+				debug.SetMemoryLimit(int64(cfg.MemoryLimit))
+				log.Info().Int64("memory_limit_bytes", int64(cfg.MemoryLimit)).Msg("soft memory limit set")
 			}
 			d, err := daemon.New(cfg, log, daemon.Options{})
 			if err != nil {
