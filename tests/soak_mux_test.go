@@ -268,6 +268,8 @@ func sendWard(t *testing.T, addr string, wc *wardConn, c int, suffix [][]byte, r
 					buf = append(buf, suffix[(n+phase[j])%len(suffix)]...)
 				}
 			}
+			// A daemon that stopped reading must not hold the test.
+			_ = conn.SetWriteDeadline(time.Now().Add(10 * time.Second))
 			if _, err := conn.Write(buf); err != nil {
 				return
 			}
