@@ -101,34 +101,62 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 		return out, keepAfterGap, d - p, false
 	}
 	// Rate drift: compare the mean of ordinary intervals with the period.
-	const window = 512
 	t.nMean++
-	if t.nMean >= window {
-		// window is a power of two: multiplying by its reciprocal gives
-		// the same float64 as dividing, without a division per sample.
-		t.meanS += (d - t.meanS) * (1.0 / window)
-	} else {
-		t.meanS += (d - t.meanS) / float64(t.nMean)
+	if t.nMean >= driftWindow {
+		// driftWindow is a power of two: multiplying by its reciprocal
+		// gives the same float64 as dividing, without a division per
+		// sample.
+		t.meanS += (d - t.meanS) * (1.0 / driftWindow)
+		return out, keep, 0, t.driftVerdict(p)
 	}
-	if t.nMean >= window {
-		if math.Abs(t.meanS-p) <= 0.8*(DriftTolerance/2)*p {
-			// The mean is well within both thresholds (a fifth below the
-			// lower one, far beyond rounding), as on almost every sample:
-			// the relative deviation, a division, would not change the
-			// verdict, which is no drift.
-			t.drifting = false
-			return out, keep, 0, false
-		}
-		dev := math.Abs(t.meanS/p - 1)
-		switch {
-		case !t.drifting && dev > DriftTolerance:
-			t.drifting = true
-			return out, keep, 0, true
-		case t.drifting && dev < DriftTolerance/2:
-			t.drifting = false
-		}
-	}
+	t.meanS += (d - t.meanS) / float64(t.nMean)
 	return out, keep, 0, false
+}
+
+// driftWindow is how many ordinary intervals the running mean of the drift
+// check weighs, once it has seen that many.
+const driftWindow = 512
+
+// steady is admit's common case, small enough to be inlined into the
+// caller: an ordinary interval (more than a quarter and at most one and a
+// half periods) once the drift check's mean is running and stays well
+// within tolerance. It makes the same changes to t as admit and returns the
+// delivered time; for any other sample it changes nothing and reports
+// false, and admit takes the sample.
+func (t *timeline) steady(tS float64) (float64, bool) {
+	out := tS + t.offsetS
+	d, p := out-t.lastS, t.periodS
+	mean := t.meanS + (d-t.meanS)*(1.0/driftWindow)
+	// A running mean implies a first sample and a period (p > 0, which
+	// p/4 < d ≤ 1.5·p also implies).
+	if t.nMean < driftWindow-1 || !(d > p/4 && d <= 1.5*p) || !(math.Abs(mean-p) <= 0.8*(DriftTolerance/2)*p) {
+		return 0, false
+	}
+	t.lastS, t.meanS, t.drifting = out, mean, false
+	t.nMean++
+	return out, true
+}
+
+// driftVerdict updates the drift episode from the running mean interval and
+// reports whether one started.
+func (t *timeline) driftVerdict(p float64) bool {
+	if math.Abs(t.meanS-p) <= 0.8*(DriftTolerance/2)*p {
+		// The mean is well within both thresholds (a fifth below the
+		// lower one, far beyond rounding), as on almost every sample: the
+		// relative deviation, a division, would not change the verdict,
+		// which is no drift.
+		t.drifting = false
+		return false
+	}
+	dev := math.Abs(t.meanS/p - 1)
+	switch {
+	case !t.drifting && dev > DriftTolerance:
+		t.drifting = true
+		return true
+	case t.drifting && dev < DriftTolerance/2:
+		t.drifting = false
+	}
+	return false
 }
 
 // Timelines applies to offline input (a file or a recording read by
@@ -163,6 +191,10 @@ func (t *Timelines) Admit(stream string, smp Sample) (Sample, *Event, bool) {
 			t.tls[stream] = tl
 		}
 		t.lastStream, t.lastTL = stream, tl
+	}
+	if out, ok := tl.steady(smp.TimeS); ok {
+		smp.TimeS = out
+		return smp, nil, true
 	}
 	out, v, gapS, _ := tl.admit(smp.TimeS)
 	var ev *Event
