@@ -12,21 +12,17 @@ const fastReach = 19
 var pow10u = [...]uint64{1, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8}
 
 // leadingDigits returns how many of the 8 bytes of w, first byte in the
-// low bits, are ASCII digits before the first byte that is not one. Each
-// byte's test is done in its own lane: the sums below stay under 0x100 per
-// byte, so no carry crosses into the next (bit-parallel byte tests, common
-// practice; Warren H.S., "Hacker's Delight", 2nd ed., 2012, ch. 6, from
-// memory).
+// low bits, are ASCII digits before the first byte that is not one. It
+// subtracts '0' from every byte and tests t < 10 per byte as the high bit
+// of t+0x76 or of t itself. Borrows and carries between bytes only run
+// from a byte that is not a digit into the later ones, whose results no
+// longer matter; the bytes up to the first non-digit are exact
+// (bit-parallel byte tests, common practice; Warren H.S., "Hacker's
+// Delight", 2nd ed., 2012, ch. 6, from memory).
 func leadingDigits(w uint64) int {
-	const (
-		lo7  = 0x7F7F7F7F7F7F7F7F
-		high = 0x8080808080808080
-		ones = 0x0101010101010101
-	)
-	atLeast0 := (w & lo7) + (0x80-'0')*ones       // high bit: low 7 bits ≥ '0'
-	above9 := (w & lo7) + (0x80-'9'-1)*ones       // high bit: low 7 bits > '9'
-	digit := atLeast0 &^ above9 &^ w & high       // and the byte's own high bit clear
-	return bits.TrailingZeros64(^digit&high) >> 3 // 8 when all are digits
+	t := w - 0x3030303030303030
+	nonDigit := ((t + 0x7676767676767676) | t) & 0x8080808080808080
+	return bits.TrailingZeros64(nonDigit) >> 3 // 8 when all are digits
 }
 
 // digitsValue returns the value of the first k (0 to 8) digits of w, first

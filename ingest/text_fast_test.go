@@ -1,6 +1,7 @@
 package ingest
 
 import (
+	"encoding/binary"
 	"math"
 	"math/rand/v2"
 	"strconv"
@@ -171,4 +172,42 @@ func FuzzFastLine(f *testing.F) {
 		f.Add(s)
 	}
 	f.Fuzz(func(t *testing.T, s string) { checkFastNumber(t, s) })
+}
+
+// TestLeadingDigits compares the word-at-a-time digit count with a byte
+// loop: every byte value after every count of leading digits, followed by
+// random bytes, and random words.
+func TestLeadingDigits(t *testing.T) {
+	r := rand.New(rand.NewPCG(1, 2))
+	loop := func(b []byte) int {
+		n := 0
+		for n < len(b) && b[n] >= '0' && b[n] <= '9' {
+			n++
+		}
+		return n
+	}
+	check := func(b []byte) {
+		if got, want := leadingDigits(binary.LittleEndian.Uint64(b)), loop(b); got != want {
+			t.Fatalf("leadingDigits(%q) = %d, want %d", b, got, want)
+		}
+	}
+	b := make([]byte, 8)
+	for k := range 8 {
+		for c := range 256 {
+			for range 20 {
+				for i := range b {
+					b[i] = byte(r.Uint32())
+				}
+				for i := range k {
+					b[i] = byte('0' + r.IntN(10))
+				}
+				b[k] = byte(c)
+				check(b)
+			}
+		}
+	}
+	for range 100000 {
+		binary.LittleEndian.PutUint64(b, r.Uint64())
+		check(b)
+	}
 }
