@@ -149,7 +149,7 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 		b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2 = rf.k1, rf.k2
 		add(FlagRohrer)
 	}
-	if m.fitOK {
+	if m.fitOK && !m.effort {
 		b.RCmH2OSPerL = m.r
 		b.CMLPerCmH2O = 1000 / m.e
 		b.PTot0CmH2O = m.p0
