@@ -72,6 +72,10 @@ type HTTP struct {
 	// Listen is host:port for /healthz, /readyz and /metrics; empty disables
 	// the endpoint.
 	Listen string `mapstructure:"listen"`
+	// Pprof also serves the Go runtime's profiles under /debug/pprof/
+	// (CPU, heap, goroutines) for measuring a running daemon. Off by
+	// default; like the rest of the endpoint it belongs on loopback.
+	Pprof bool `mapstructure:"pprof"`
 }
 
 // NATS configures the message bus: an embedded server by default, or an

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"net"
 	"net/http"
+	"net/http/pprof"
 	"sort"
 	"strings"
 	"sync"
@@ -105,6 +106,15 @@ func newHTTPServer(addr string, m *metrics, ready *readiness, log zerolog.Logger
 	h.mux = mux
 	h.srv = &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	return h, nil
+}
+
+// mountProfiles serves the Go runtime's profiles under /debug/pprof/
+// (http.pprof).
+func (h *httpServer) mountProfiles() {
+	h.mux.HandleFunc("GET /debug/pprof/", pprof.Index)
+	h.mux.HandleFunc("GET /debug/pprof/profile", pprof.Profile)
+	h.mux.HandleFunc("GET /debug/pprof/symbol", pprof.Symbol)
+	h.mux.HandleFunc("GET /debug/pprof/trace", pprof.Trace)
 }
 
 func (h *httpServer) readyz(w http.ResponseWriter, _ *http.Request) {

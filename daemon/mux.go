@@ -17,6 +17,7 @@ import (
 	"trapline/alerts"
 	"trapline/config"
 	"trapline/ingest"
+	"trapline/ingest/backoff"
 )
 
 // The runtime of multiplexed sources (config sources:) has no goroutine per
@@ -31,9 +32,9 @@ import (
 // stream that goes quiet costs no goroutine and no wake-up of its own.
 //
 // Memory per stream is bounded: its pipeline (the analyzer's breath buffer
-// and the detectors' windows, about 100 KiB, see docs/sources.md) plus the samples in flight, which are bounded per
-// shard by shardQueue reads (2048, about 0.4 s of 100 connections) of at most
-// 32 KiB of input each.
+// and the detectors' windows, about 40 KiB, see docs/sources.md) plus the
+// samples in flight, which are bounded per shard by shardQueue reads (2048)
+// and by maxQueuedSamples samples (32 MiB), whichever comes first.
 
 // shardQueue is the number of reads (work batches) a shard's queue holds.
 const shardQueue = 2048
@@ -72,6 +73,7 @@ type muxSource struct {
 	r        *muxRuntime
 	cfg      config.Source
 	settings config.SourceSettings
+	digest   string // of settings, shared by the source's pipelines
 	src      ingest.Source
 	adm      *ingest.Admission
 	finite   bool
@@ -108,6 +110,7 @@ func (r *muxRuntime) addSource(i int) (*muxSource, error) {
 	}
 	ms := &muxSource{
 		r: r, cfg: sc, settings: st, adm: adm,
+		digest:  config.AnalysisDigest(st.Analysis, st.Detectors, st.Alarms),
 		finite:  u.Scheme == "file" || u.Scheme == "stdin",
 		log:     d.log.With().Str("source", sc.Name).Logger(),
 		streams: map[string]*muxStream{},
@@ -174,6 +177,7 @@ func (ms *muxSource) deliver(evs []ingest.Event) {
 			parts[st.shard.idx] = w
 		}
 		w.items = append(w.items, workItem{st: st, ev: evs[i]})
+		w.samples += len(evs[i].Samples)
 	}
 	if refused > 0 {
 		ms.refused.Add(float64(refused))
@@ -186,12 +190,15 @@ func (ms *muxSource) deliver(evs []ingest.Event) {
 }
 
 // send queues a work batch on a shard: behind a source that blocks (a
-// file, stdin) it waits; behind a live one a full queue means the shard is
-// behind, and the read waits up to liveWait for room (meanwhile the
-// sender's data waits in the connection's socket buffers), then the batch
-// is dropped and counted with one warning per episode.
+// file, stdin) it waits; behind a live one a full queue (by reads or by
+// samples, see maxQueuedSamples) means the shard is behind, and the read
+// waits up to liveWait for room (meanwhile the sender's data waits in the
+// connection's socket buffers), then the batch is dropped and counted with
+// one warning per episode.
 func (ms *muxSource) send(sh *shard, w *work) {
 	if ms.block {
+		sh.queued.Add(int64(w.samples))
+		w.sh = sh
 		select {
 		case sh.in <- w:
 		case <-ms.ctx.Done():
@@ -199,28 +206,27 @@ func (ms *muxSource) send(sh *shard, w *work) {
 		}
 		return
 	}
-	select {
-	case sh.in <- w:
-		if ms.dropEpisode.Load() && ms.dropEpisode.CompareAndSwap(true, false) {
-			ms.log.Debug().Msg("analysis caught up; no longer dropping samples")
+	if sh.reserve(w) {
+		select {
+		case sh.in <- w:
+			if ms.dropEpisode.Load() && ms.dropEpisode.CompareAndSwap(true, false) {
+				ms.log.Debug().Msg("analysis caught up; no longer dropping samples")
+			}
+			return
+		default:
 		}
-		return
-	default:
 	}
 	if ms.waitRoom(sh, w) {
 		return
 	}
-	n := 0
-	for i := range w.items {
-		n += len(w.items[i].ev.Samples)
-	}
-	ms.dropped.Add(float64(n))
+	ms.dropped.Add(float64(w.samples))
 	// One warning per episode, and episodes that come and go within ten
 	// seconds count as one.
 	now := time.Now().UnixNano()
 	if ms.dropEpisode.CompareAndSwap(false, true) && now-ms.lastWarn.Load() >= int64(10*time.Second) {
 		ms.lastWarn.Store(now)
-		ms.log.Warn().Int("queue", cap(sh.in)).Msg("analysis is behind its source; dropping samples")
+		ms.log.Warn().Int("queue", cap(sh.in)).Int64("queued_samples", sh.queued.Load()).
+			Msg("analysis is behind its source; dropping samples")
 	}
 	w.release()
 }
@@ -232,9 +238,16 @@ func (ms *muxSource) send(sh *shard, w *work) {
 // instead of holding its links.
 const liveWait = time.Second
 
-// waitRoom waits up to liveWait for room for w in sh's queue.
+// waitRoom waits up to liveWait for room for w in sh's queue, looking
+// again every few milliseconds while the queue is full by samples.
 func (ms *muxSource) waitRoom(sh *shard, w *work) bool {
-	t := time.NewTimer(liveWait)
+	deadline := time.Now().Add(liveWait)
+	for w.sh == nil && !sh.reserve(w) {
+		if time.Now().After(deadline) || !backoff.Sleep(ms.ctx, nil, 2*time.Millisecond) {
+			return false
+		}
+	}
+	t := time.NewTimer(time.Until(deadline))
 	defer t.Stop()
 	select {
 	case sh.in <- w:

@@ -25,6 +25,8 @@ type workItem struct {
 // work is what one read of a source brings to one shard.
 type work struct {
 	items   []workItem
+	samples int       // in items
+	sh      *shard    // whose queued count holds samples, once reserved
 	arrived time.Time // when the read was decoded
 	// finished, when set, says that this finite source reached its end.
 	finished *muxSource
@@ -43,9 +45,30 @@ func (w *work) release() {
 	for i := range w.items {
 		w.items[i].ev.Release()
 	}
+	if w.sh != nil {
+		w.sh.queued.Add(-int64(w.samples))
+	}
 	clear(w.items)
-	w.items, w.finished = w.items[:0], nil
+	w.items, w.finished, w.sh, w.samples = w.items[:0], nil, nil, 0
 	workPool.Put(w)
+}
+
+// maxQueuedSamples bounds the samples waiting in one shard's queue (32 MiB
+// of samples): a read of a held link can carry a thousand times more than
+// one of a link read as it comes, so the queue's bound in reads alone would
+// not bound its memory.
+const maxQueuedSamples = 1 << 20
+
+// reserve counts w's samples as queued on sh if they fit under
+// maxQueuedSamples (a batch larger than the bound fits an empty queue).
+func (sh *shard) reserve(w *work) bool {
+	n := int64(w.samples)
+	if q := sh.queued.Add(n); q > maxQueuedSamples && q != n {
+		sh.queued.Add(-n)
+		return false
+	}
+	w.sh = sh
+	return true
 }
 
 // muxAck is an acknowledgement on its way to the owning shard.
@@ -90,6 +113,9 @@ type shard struct {
 	acks chan muxAck
 	done chan struct{}
 	log  zerolog.Logger
+	// queued counts the samples of the reads in the queue and in hand,
+	// until they are released.
+	queued atomic.Int64
 
 	streams []*muxStream    // in order of first event
 	taken   []*work         // reads taken at once (see take)
@@ -319,7 +345,7 @@ func (sh *shard) started(st *muxStream) {
 	s := st.src
 	st.pl = pipeline.New(pipeline.Options{
 		Stream: st.id, Analysis: s.settings.Analysis, Detectors: s.settings.Detectors,
-		Alarms: s.settings.Alarms, Stats: s.src.Stats, Now: sh.wall,
+		Alarms: s.settings.Alarms, Stats: s.src.Stats, Now: sh.wall, Digest: s.digest,
 	})
 	st.activeIDs = map[string]struct{}{}
 	sh.streams = append(sh.streams, st)

@@ -99,3 +99,34 @@ func TestShardTakesQueuedReadsTogether(t *testing.T) {
 		}
 	}
 }
+
+// A shard's queue is bounded by samples as well as by reads: a reservation
+// that would pass maxQueuedSamples is refused until earlier reads are
+// released, except into an empty queue.
+func TestShardQueueBoundedBySamples(t *testing.T) {
+	sh := &shard{}
+	half := maxQueuedSamples/2 + 1
+	a, b := &work{samples: half}, &work{samples: half}
+	if !sh.reserve(a) {
+		t.Fatal("first half refused by an empty queue")
+	}
+	if sh.reserve(b) {
+		t.Fatal("reservation beyond maxQueuedSamples taken")
+	}
+	if got := sh.queued.Load(); got != int64(half) {
+		t.Fatalf("queued %d after a refused reservation, want %d", got, half)
+	}
+	a.release()
+	if !sh.reserve(b) {
+		t.Fatal("refused after the earlier read was released")
+	}
+	b.release()
+	if got := sh.queued.Load(); got != 0 {
+		t.Fatalf("queued %d after every read was released, want 0", got)
+	}
+	big := &work{samples: 2 * maxQueuedSamples}
+	if !sh.reserve(big) {
+		t.Fatal("a read larger than the bound refused by an empty queue")
+	}
+	big.release()
+}

@@ -62,6 +62,9 @@ func (d *Daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.
 	if err != nil {
 		return err
 	}
+	if d.cfg.HTTP.Pprof {
+		h.mountProfiles()
+	}
 	g.Go(func() error { return h.Run(ctx) })
 	return nil
 }

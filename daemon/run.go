@@ -169,6 +169,9 @@ func (d *Daemon) openHTTP(acks *bus.AckService) (*httpServer, error) {
 	if err != nil {
 		return nil, err
 	}
+	if d.cfg.HTTP.Pprof {
+		h.mountProfiles()
+	}
 	d.startLiveView(h, acks)
 	return h, nil
 }

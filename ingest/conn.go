@@ -389,7 +389,8 @@ func (h *holder) deadline(now time.Time) time.Time {
 }
 
 // add takes the n bytes just read into the buffer and decodes what is
-// held once it is due or the buffer has less than a readChunk of room.
+// held once it is due or the buffer has less than a readChunk of room;
+// otherwise it waits until the held bytes are due.
 func (h *holder) add(c *conn, n int) {
 	if h.hold <= 0 {
 		c.write(h.buf[:n])
@@ -404,7 +405,14 @@ func (h *holder) add(c *conn, n int) {
 		h.flush(c)
 		return
 	}
-	h.due(c, now)
+	if now.Sub(h.since) >= h.hold {
+		h.flush(c)
+		return
+	}
+	// Not due yet: rather than wake for every write of the sender, let
+	// its writes gather in the socket's buffer until they are, and take
+	// them in one read.
+	backoff.Sleep(c.ctx, nil, h.since.Add(h.hold).Sub(now))
 }
 
 // due decodes the held bytes if their time has come.

@@ -76,8 +76,10 @@ func getBatch() *[]Sample { return batchPool.Get().(*[]Sample) }
 
 // smallBatch is the starting capacity of the batches of a direct sink,
 // whose reads of a live link of many streams bring a sample or two per
-// stream: a batch that outgrows it is grown by append and pooled as large.
-const smallBatch = 8
+// stream, or up to a dozen with a batch window of 50 ms at 100 Hz (see
+// Options.Hold): a batch that outgrows it is grown by append and pooled
+// as large.
+const smallBatch = 16
 
 // smallPool recycles the small batches.
 var smallPool = sync.Pool{New: func() any {

@@ -12,7 +12,8 @@ package tests
 // TRAPLINE_SOAK_BATCH_WINDOW (the source's batch_window, e.g. 50ms) and
 // TRAPLINE_SOAK_MEMORY_LIMIT (the daemon's memory_limit, e.g. 900MiB) set
 // the two knobs of a large ward; TRAPLINE_SOAK_CPU_PROFILE=FILE writes the
-// daemon's CPU profile.
+// daemon's CPU profile, TRAPLINE_SOAK_HEAP_PROFILE=FILE its heap profile at
+// the end of the window.
 //
 // Senders replay a pre-encoded breath (defaultLung) with a per-stream phase,
 // paced on the wall clock every 10 ms. A NATS subscriber to the streams of
@@ -23,7 +24,9 @@ package tests
 import (
 	"encoding/json"
 	"fmt"
+	"io"
 	"net"
+	"net/http"
 	"os"
 	"path/filepath"
 	"slices"
@@ -69,6 +72,7 @@ shutdown_timeout: 10s
 memory_limit: %s
 http:
   listen: 127.0.0.1:%d
+  pprof: true
 log:
   level: warn
 nats:
@@ -172,6 +176,9 @@ sources:
 		t.Fatalf("daemon exited during the soak:\n%s", proc.out.String())
 	}
 	cpu := procCPUSeconds(t, pid) - cpu0
+	if path := os.Getenv("TRAPLINE_SOAK_HEAP_PROFILE"); path != "" {
+		saveURL(t, fmt.Sprintf("http://127.0.0.1:%d/debug/pprof/heap", httpPort), path)
+	}
 	wall := time.Since(start).Seconds()
 	rss, hwm := procMemory(t, pid)
 	m1 := metricsOf(httpPort)
@@ -261,6 +268,8 @@ func sendWard(t *testing.T, addr string, wc *wardConn, c int, suffix [][]byte, r
 					buf = append(buf, suffix[(n+phase[j])%len(suffix)]...)
 				}
 			}
+			// A daemon that stopped reading must not hold the test.
+			_ = conn.SetWriteDeadline(time.Now().Add(10 * time.Second))
 			if _, err := conn.Write(buf); err != nil {
 				return
 			}
@@ -290,4 +299,23 @@ func confirmingSample(tEndS float64, phase, period int, rateHz, holdS float64) i
 		n++
 	}
 	return n
+}
+
+// saveURL writes what url serves to path.
+func saveURL(t *testing.T, url, path string) {
+	t.Helper()
+	resp, err := http.Get(url)
+	if err != nil {
+		t.Errorf("GET %s: %v", url, err)
+		return
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	if err != nil {
+		t.Errorf("GET %s: %v", url, err)
+		return
+	}
+	if err := os.WriteFile(path, b, 0o644); err != nil {
+		t.Error(err)
+	}
 }

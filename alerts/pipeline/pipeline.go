@@ -63,6 +63,18 @@ type Options struct {
 	// KeepBreaths is how many recent breaths Checkpoint carries (see
 	// KeepBreaths); 0 keeps none.
 	KeepBreaths int
+	// Digest is config.AnalysisDigest of Analysis, Detectors and Alarms
+	// when the caller has it already (the streams of one source share it,
+	// and a ward admits thousands at once); empty means New computes it.
+	Digest string
+}
+
+// digest returns the configuration digest of o.
+func (o *Options) digest() string {
+	if o.Digest != "" {
+		return o.Digest
+	}
+	return config.AnalysisDigest(o.Analysis, o.Detectors, o.Alarms)
 }
 
 // Pipeline is the analysis of one stream. It owns the analyzer, the
@@ -133,7 +145,7 @@ func New(o Options) *Pipeline {
 		judge:      alerts.NewJudge(o.Stream, o.Detectors, o.Alarms),
 		alarms:     o.Alarms,
 		version:    o.Version,
-		digest:     config.AnalysisDigest(o.Analysis, o.Detectors, o.Alarms),
+		digest:     o.digest(),
 		now:        now,
 		stats:      o.Stats,
 		created:    now(),

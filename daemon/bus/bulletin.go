@@ -24,6 +24,7 @@ type bulletinMsg struct {
 	subject string
 	data    []byte
 	msgID   string // Nats-Msg-Id, or ""
+	pooled  bool   // data came from recordPool
 }
 
 // Bulletin publishes breath records and status heartbeats best effort: the
@@ -61,7 +62,20 @@ func NewBulletin(nc *nats.Conn, prefix string, queueLen int, log zerolog.Logger)
 // Breath queues the breath record (the breath record contract) for
 // <prefix>.breath.<stream>.
 func (b *Bulletin) Breath(br *analyze.Breath) {
-	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768))})
+	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(getRecordBuf()), pooled: true})
+}
+
+// recordPool recycles the buffers of breath records: the connection copies
+// a message into its own buffer when it is published, so the record's
+// buffer is free again once send returns.
+var recordPool = sync.Pool{New: func() any { b := make([]byte, 0, 1024); return &b }}
+
+func getRecordBuf() []byte { return (*recordPool.Get().(*[]byte))[:0] }
+
+func putRecordBuf(b []byte) {
+	if cap(b) <= 4096 {
+		recordPool.Put(&b)
+	}
 }
 
 // BreathWithID queues the breath record with a message id (Nats-Msg-Id),
@@ -82,7 +96,15 @@ func (b *Bulletin) offer(m bulletinMsg) {
 	select {
 	case b.q <- m:
 	default:
+		m.release()
 		b.drop("queue full: NATS is slow or away")
+	}
+}
+
+// release returns a pooled buffer.
+func (m *bulletinMsg) release() {
+	if m.pooled {
+		putRecordBuf(m.data)
 	}
 }
 
@@ -143,7 +165,9 @@ func (b *Bulletin) send(m bulletinMsg) {
 	if m.msgID != "" {
 		msg.Header = nats.Header{nats.MsgIdHdr: []string{m.msgID}}
 	}
-	if err := b.nc.PublishMsg(msg); err != nil {
+	err := b.nc.PublishMsg(msg)
+	m.release()
+	if err != nil {
 		b.drop(err.Error())
 		return
 	}

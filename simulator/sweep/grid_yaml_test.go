@@ -22,3 +22,27 @@ func TestGridErrorsNameTheKey(t *testing.T) {
 		}
 	}
 }
+
+// The grid files shipped in docs/ load, expand and have the size their
+// comments and docs/sweep.md give.
+func TestShippedGridsExpand(t *testing.T) {
+	for _, tc := range []struct {
+		file     string
+		patients int
+	}{
+		{"../../docs/sweep-acceptance.yaml", 4 * 4 * 6 * 5 * 3},      // models × R × settings × noise × rates
+		{"../../docs/sweep-specificity.yaml", 4 * 3 * 6 * 5 * 3 * 2}, // the same × 2 seeds, R 5–10
+	} {
+		g, err := LoadGrid(tc.file)
+		if err != nil {
+			t.Fatalf("%s: %v", tc.file, err)
+		}
+		p, err := g.Expand()
+		if err != nil {
+			t.Fatalf("%s: %v", tc.file, err)
+		}
+		if len(p.Cases) != tc.patients {
+			t.Errorf("%s: %d patients, want %d", tc.file, len(p.Cases), tc.patients)
+		}
+	}
+}
