@@ -91,7 +91,8 @@ func (a *Analyzer) finish() Breath {
 }
 
 // mechanicsOf fits the equation of motion over the breath, linear (Bates
-// JHT, Lung Mechanics, 2009) and, when the residuals grow with flow, with a
+// JHT, Lung Mechanics, 2009) and, when the residuals grow with flow or the
+// linear fit fails in a way a steep flow dependence explains, with a
 // Rohrer resistance; tests the inspiration for muscle effort; and applies
 // the occlusion method over an end-inspiratory pause.
 func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechanics {
@@ -100,6 +101,9 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	add := func(f string) { *flags = append(*flags, f) }
 	var m mechanics
 	fr := seg.fit()
+	// rescue: the linear model failed for a reason a flow-dependent
+	// resistance can cause (see rohrerRescue); its flag waits for the try.
+	rescue, implausible := false, false
 	switch {
 	case fr.singular:
 		add(FlagFitSingular)
@@ -110,9 +114,9 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 		// A negative elastance is what inspiratory muscle effort does to
 		// a passive model (structured residuals, negative C).
 		m.effort = true
-		add(FlagFitImplausible)
+		rescue, implausible = true, true
 	case fr.r < 0 || fr.r > c.MaxRCmH2OSPerL || 1000/fr.e > c.MaxCMLPerCmH2O || fr.r2 < c.MinFitR2:
-		add(FlagFitImplausible)
+		rescue, implausible = true, true
 	default:
 		m.fitOK = true
 		m.r, m.e, m.p0 = fr.r, fr.e, fr.p0
@@ -122,20 +126,30 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	if m.fitOK {
 		rScale = fr.r
 	}
-	if dev, noise := a.inspResidual(rScale); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
+	if dev, noise := a.inspResidual(rScale, 0); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
 		m.effort = true
+		rescue = rescue || m.fitOK
+	}
+	switch {
+	case rescue && a.rohrerRescue(&m, endT):
+		b.FitR2 = m.rohrer.r2()
+	case implausible:
+		add(FlagFitImplausible)
+	case m.fitOK && !m.effort:
+		// Rohrer's equation when it explains the residuals.
+		if rf := fitRohrer(a.buf.pts[:a.buf.n], endT); rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
+			m.rohrer = rf
+		}
+	}
+	if rf := &m.rohrer; rf.ok {
+		// R is reported at the mean inspiratory flow, E and P0 come from
+		// the same fit.
+		mean := b.VtiML / 1000 / math.Max(b.TiS-nanTo0(a.pauseLenOK()), 1e-3)
+		m.r, m.e, m.p0 = rf.k1+rf.k2*mean, rf.e, rf.p0
+		b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2 = rf.k1, rf.k2
+		add(FlagRohrer)
 	}
 	if m.fitOK && !m.effort {
-		// Rohrer's equation when it explains the residuals: R is reported
-		// at the mean inspiratory flow, E and P0 come from the same fit.
-		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
-		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
-			m.rohrer = rf
-			mean := b.VtiML / 1000 / math.Max(b.TiS-nanTo0(a.pauseLenOK()), 1e-3)
-			m.r, m.e, m.p0 = rf.k1+rf.k2*mean, rf.e, rf.p0
-			b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2 = rf.k1, rf.k2
-			add(FlagRohrer)
-		}
 		b.RCmH2OSPerL = m.r
 		b.CMLPerCmH2O = 1000 / m.e
 		b.PTot0CmH2O = m.p0
@@ -144,11 +158,17 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 		add(FlagEffort)
 	}
 
-	// Occlusion method over the end-inspiratory pause (Bates JHT, Rossi A,
-	// Milic-Emili J, J Appl Physiol 1985): R = (Ppeak − Pplat)/V' with the
-	// flow at the peak, Cstat = VT/(Pplat − total PEEP). Total PEEP is the
-	// fitted P0 when the fit holds, else the measured end-expiratory
-	// pressure.
+	a.occlusion(b, &m)
+	return m
+}
+
+// occlusion applies the occlusion method over the end-inspiratory pause
+// (Bates JHT, Rossi A, Milic-Emili J, J Appl Physiol 1985): R = (Ppeak −
+// Pplat)/V' with the flow at the peak, Cstat = VT/(Pplat − total PEEP).
+// Total PEEP is the fitted P0 when the fit holds, else the measured
+// end-expiratory pressure.
+func (a *Analyzer) occlusion(b *Breath, m *mechanics) {
+	seg := &a.cur
 	if !math.IsNaN(b.PlateauCmH2O) {
 		if seg.maxPFlow > a.trigLPS {
 			if r := (b.PeakCmH2O - b.PlateauCmH2O) / seg.maxPFlow; r >= 0 {
@@ -163,7 +183,37 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 			b.CStatMLPerCmH2O = b.VtiML / d
 		}
 	}
-	return m
+}
+
+// rohrerRescueGain is the share of the linear fit's residual sum of squares
+// that Rohrer's equation must remove to stand in for a linear fit that
+// failed (our choice: a strong flow dependence, not a subtle one; the
+// breaths that need it, at 100 cmH2O·s/L and more, show 0.97–0.99).
+const rohrerRescueGain = 0.5
+
+// rohrerRescue fits Rohrer's equation to a breath whose linear fit failed
+// (compliance out of range or negative, low r²) or whose inspiration
+// departed from the linear model. A resistance that grows steeply with flow
+// does both under a decelerating flow: the linear model bends the
+// elastance to follow K2·V'·|V'| (at 120 cmH2O·s/L, C above 400 mL/cmH2O
+// or negative) and its inspiratory residuals look like an effort. The
+// rescue holds when the Rohrer fit is significant and physical (see
+// fitRohrer), removes rohrerRescueGain of the linear residual, reaches
+// min_fit_r2 and a compliance within range, and the inspiration follows
+// it (the effort test against P − K2·V'·|V'|). It then sets m as a passive
+// Rohrer breath and returns true; otherwise it leaves m alone.
+func (a *Analyzer) rohrerRescue(m *mechanics, endT float64) bool {
+	c := &a.cfg
+	rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
+	if !rf.ok || 1000/rf.e > c.MaxCMLPerCmH2O || rf.k1+rf.k2 > c.MaxRCmH2OSPerL ||
+		rf.sseLin-rf.sse < rohrerRescueGain*rf.sseLin || !(rf.r2() >= c.MinFitR2) {
+		return false
+	}
+	if dev, noise := a.inspResidual(rf.k1, rf.k2); dev > math.Max(c.EffortDipCmH2O, 4*noise) {
+		return false
+	}
+	m.fitOK, m.effort, m.rohrer = true, false, rf
+	return true
 }
 
 // pauseLenOK is the length of the end-inspiratory pause when one was

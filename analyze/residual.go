@@ -40,7 +40,11 @@ const effortWindowS = 0.2
 // unknown). A regression whose regressors are collinear is reduced (constant
 // flow) or skipped (pressure and volume collinear, which is the square-flow
 // case the first test covers).
-func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
+//
+// k2, when not zero, is a Rohrer coefficient: K2·V'·|V'| is taken off the
+// pressure first, so that the test is against P = K1·V' + K2·V'·|V'| +
+// E·V + P0 (rScale is then K1).
+func (a *Analyzer) inspResidual(rScale, k2 float64) (dev, noise float64) {
 	n := 0
 	for n < a.buf.n && a.buf.pts[n].t < a.expStartT {
 		n++
@@ -61,6 +65,9 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	var sn, sF, sV, sP, sFF, sFV, sVV, sFP, sVP, sPP float64
 	for i := range pts {
 		f, v, p := pts[i].f, pts[i].v, pts[i].p
+		if k2 != 0 {
+			p -= k2 * f * math.Abs(f)
+		}
 		sn++
 		sF += f
 		sV += v
@@ -92,22 +99,52 @@ func (a *Analyzer) inspResidual(rScale float64) (dev, noise float64) {
 	// Each residual is computed once, into rs, by a plain loop (a function
 	// value per point costs an indirect call that cannot be inlined).
 	var rs [bufCap]float64
-	for i := range pts {
-		q := &pts[i]
-		rs[i] = q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
-	}
+	pressureResiduals(rs[:n], pts, fr, k2)
 	dev, noise = windowedResidual(rs[:n], k)
 	if ff := sf.fit(); !ff.singular && rScale > 0 {
-		for i := range pts {
-			q := &pts[i]
-			rs[i] = rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0))
-		}
+		flowResiduals(rs[:n], pts, ff, rScale, k2)
 		d, nz := windowedResidual(rs[:n], k)
 		if d-4*nz > dev-4*noise {
 			dev, noise = d, nz
 		}
 	}
 	return dev, noise
+}
+
+// pressureResiduals sets rs to the residuals of pressure (less the Rohrer
+// term k2·V'·|V'|) against the regression fr on flow and volume. A plain
+// loop, and one without the Rohrer term when k2 is zero, so that the
+// linear test pays nothing for it (a function value per point would cost
+// an indirect call that cannot be inlined).
+func pressureResiduals(rs []float64, pts []point, fr fitResult, k2 float64) {
+	if k2 == 0 {
+		for i := range pts {
+			q := &pts[i]
+			rs[i] = q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
+		}
+		return
+	}
+	for i := range pts {
+		q := &pts[i]
+		rs[i] = q.p - k2*q.f*math.Abs(q.f) - (fr.r*q.f + fr.e*q.v + fr.p0)
+	}
+}
+
+// flowResiduals sets rs to the residuals of flow against the regression ff
+// on pressure (less the Rohrer term k2·V'·|V'|) and volume, scaled to
+// pressure by rScale.
+func flowResiduals(rs []float64, pts []point, ff fitResult, rScale, k2 float64) {
+	if k2 == 0 {
+		for i := range pts {
+			q := &pts[i]
+			rs[i] = rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0))
+		}
+		return
+	}
+	for i := range pts {
+		q := &pts[i]
+		rs[i] = rScale * (q.f - (ff.r*(q.p-k2*q.f*math.Abs(q.f)) + ff.e*q.v + ff.p0))
+	}
 }
 
 // windowedResidual returns the largest |mean| of the residuals rs over k

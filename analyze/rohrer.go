@@ -8,6 +8,7 @@ import "math"
 type rohrerFit struct {
 	k1, k2, e, p0 float64
 	sse, sseLin   float64 // residual sums of squares of this fit and of the linear one
+	sst           float64 // sum of squares of pressure about its mean
 	n             int
 	ok            bool
 }
@@ -89,7 +90,8 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	}
 	sse := residualSS(s, []int{0, 1, 2, 3}, &full)
 	sseLin := residualSS(s, []int{0, 2, 3}, &lin)
-	f := rohrerFit{k1: full[0], k2: full[1], e: full[2], p0: full[3], sse: sse, sseLin: sseLin, n: n}
+	f := rohrerFit{k1: full[0], k2: full[1], e: full[2], p0: full[3], sse: sse, sseLin: sseLin, n: n,
+		sst: math.Max(0, s44-s34*s34/s33)}
 	gain := sseLin - sse
 	f.ok = f.k2 > 0 && f.k1 > 0 && f.e > 0 && sse > 0 &&
 		gain > rohrerMinGain*sseLin && gain/(sse/float64(n-4)) > rohrerMinF
@@ -151,4 +153,12 @@ func residualSS(s [5][5]float64, idx []int, beta *[4]float64) float64 {
 		}
 	}
 	return math.Max(0, ss)
+}
+
+// r2 is the coefficient of determination of the Rohrer fit.
+func (f *rohrerFit) r2() float64 {
+	if !(f.sst > 0) {
+		return math.NaN()
+	}
+	return 1 - f.sse/f.sst
 }
