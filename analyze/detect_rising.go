@@ -22,7 +22,15 @@ type RisingPeak struct {
 	ring    []rpBreath
 	next, n int
 	present bool
+	sev     Severity // of the last present verdict
 	xs, ys  []float64
+	// restarted holds the settings changes that restarted the window
+	// until it has filled again (see Breath); lastChange keeps the last
+	// changes inferred, and lastChangeS their time, for the attribution of
+	// a rise that follows.
+	restarted   []string
+	lastChange  []string
+	lastChangeS float64
 }
 
 type rpBreath struct {
@@ -52,7 +60,7 @@ func NewRisingPeak(cfg RisingPeakConfig) *RisingPeak {
 func (d *RisingPeak) Conditions() []string { return []string{CondRisingPeakPressure} }
 
 // Reset implements BreathDetector.
-func (d *RisingPeak) Reset() { d.next, d.n, d.present = 0, 0, false }
+func (d *RisingPeak) Reset() { d.next, d.n, d.present, d.restarted, d.lastChange = 0, 0, false, nil, nil }
 
 // Breath implements BreathDetector.
 func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
@@ -83,6 +91,21 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	d.ring[d.next] = e
 	d.next = (d.next + 1) % len(d.ring)
 	d.n = min(d.n+1, len(d.ring))
+	// A change of PEEP or of the inspiratory pressure moves the peak in
+	// one step, which a slope over a window across it reads as a rise. The
+	// window starts again at the change, and the verdict is held while it
+	// fills, so that a step is not an alarm and an alarm already raised
+	// does not clear because the settings changed. Other inferred changes
+	// (rate, tidal volume, flow, mode) only explain a rise: inferred from
+	// the waveform they also appear, now and then, on a patient whose
+	// mechanics change (a leak moves the measured volume), and a rise must
+	// not be missed for them.
+	if len(e.changes) > 0 {
+		d.lastChange, d.lastChangeS = e.changes, t
+	}
+	if slices.ContainsFunc(e.changes, stepsPeak) {
+		d.n, d.restarted = 1, e.changes
+	}
 
 	// The window: the most recent breaths within WindowS of this one.
 	first := d.n
@@ -97,10 +120,21 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	f.Evidence["window_breaths"] = float64(count)
 	detPut(f.Evidence, "window_s", spanS, 1)
 	if count < cfg.MinBreaths || spanS < 0.9*cfg.WindowS {
+		if d.restarted != nil {
+			f.Present = d.present
+			if d.present {
+				f.Severity = d.sev
+			}
+			f.Evidence["settings_changes"] = float64(len(d.restarted))
+			f.Message = fmt.Sprintf("peak pressure trend restarted: it follows %s %.0f s ago; verdict held until %.0f s of breaths",
+				describeChanges(d.restarted), spanS, 0.9*cfg.WindowS)
+			return append(dst, f)
+		}
 		d.present = false
 		f.Message = fmt.Sprintf("not enough history for a trend (%d breaths over %.0f s)", count, spanS)
 		return append(dst, f)
 	}
+	d.restarted = nil
 
 	slope := d.slope(first, func(e *rpBreath) float64 { return e.peak })
 	med := d.median(first, func(e *rpBreath) float64 { return e.peak })
@@ -124,6 +158,7 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	if pct >= cfg.HighSlopePctPerMin {
 		f.Severity = SeverityMedium
 	}
+	d.sev = f.Severity
 	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
 		slope, pct, spanS, kind)
 	return append(dst, f)
@@ -176,9 +211,13 @@ func (d *RisingPeak) attribute(f *Finding, first, count int) string {
 			kind = "of unclear cause (the resistance and compliance trends do not agree with the pressures)"
 		}
 	}
-	// A settings change inside the window explains a rise better than the
-	// patient does.
-	if ch := d.changesSince(first); len(ch) > 0 {
+	// A settings change inside the window, or one that restarted it less
+	// than two windows ago, explains a rise better than the patient does.
+	ch := d.changesSince(first)
+	if len(ch) == 0 && d.lastChange != nil && f.TimeS-d.lastChangeS <= 2*d.cfg.WindowS {
+		ch = d.lastChange
+	}
+	if len(ch) > 0 {
 		f.Evidence["settings_changes"] = float64(len(ch))
 		kind = "after a settings change: it follows " + describeChanges(ch)
 	}
@@ -197,6 +236,17 @@ func (d *RisingPeak) changesSince(first int) []string {
 		}
 	}
 	return out
+}
+
+// stepsPeak reports whether an inferred settings change moves the peak
+// pressure by itself, one for one: PEEP, or the inspiratory pressure of
+// pressure control.
+func stepsPeak(change string) bool {
+	switch change {
+	case "peep-up", "peep-down", "pinsp-up", "pinsp-down":
+		return true
+	}
+	return false
 }
 
 // changeWords names the inferred settings changes in plain words.

@@ -2,6 +2,7 @@ package analyze
 
 import (
 	"math"
+	"slices"
 	"strings"
 	"testing"
 )
@@ -151,15 +152,16 @@ func TestPredictWarnings(t *testing.T) {
 	}
 }
 
-// TestRisingPeakAfterSettingsChange: a peak rise whose window holds an
-// inferred rate increase says so instead of blaming the patient; without
-// it, a plateau rise with a compliance trend that is not falling is of
-// unclear cause (the signs of the evidence disagree).
+// TestRisingPeakAfterSettingsChange: a peak rise measured after an
+// inferred rate increase (the window starts at the change) says so instead
+// of blaming the patient; without it, a plateau rise with a compliance
+// trend that is not falling is of unclear cause (the signs of the evidence
+// disagree).
 func TestRisingPeakAfterSettingsChange(t *testing.T) {
 	run := func(change bool, cTrend float64) Finding {
 		d := NewRisingPeak(DefaultDetectorConfig().RisingPeak)
 		var f Finding
-		for i := range 80 {
+		for i := range 100 {
 			tS := 3 * float64(i)
 			b := NewBreath()
 			b.Seq, b.StartS, b.EndS = i, tS, tS+3
@@ -182,6 +184,55 @@ func TestRisingPeakAfterSettingsChange(t *testing.T) {
 	}
 	if f := run(false, -0.01); !f.Present || !strings.Contains(f.Message, "elastic") {
 		t.Errorf("compliance falling: %v %q", f.Present, f.Message)
+	}
+}
+
+// TestRisingPeakSettingsStep: a PEEP step moves the peak by the step
+// (Ppeak = PEEP + R·V' + VT/C under constant-flow volume control, derived
+// from the equation of motion), which is not a rising trend: no alarm on a
+// steady patient whose PEEP goes up, and an alarm already present is held,
+// not cleared, while the window fills again after the change.
+func TestRisingPeakSettingsStep(t *testing.T) {
+	run := func(peak func(float64) float64) (present []bool, last Finding) {
+		d := NewRisingPeak(DefaultDetectorConfig().RisingPeak)
+		for i := range 200 {
+			tS := 3 * float64(i)
+			b := NewBreath()
+			b.Seq, b.StartS, b.EndS = i, tS, tS+3
+			b.PeakCmH2O = peak(tS)
+			if i == 100 {
+				b.SettingsChanged = []string{"peep-up"}
+			}
+			last = d.Breath(&b, nil)[0]
+			present = append(present, last.Present)
+		}
+		return present, last
+	}
+	// Steady patient, PEEP 5 → 8 cmH2O at 300 s (the change is inferred on
+	// the first breath after it).
+	step := func(tS float64) float64 {
+		if tS >= 300 {
+			return 28
+		}
+		return 25
+	}
+	if present, _ := run(step); slices.Contains(present, true) {
+		t.Errorf("a PEEP step raised rising-peak-pressure at breath %d", slices.Index(present, true))
+	}
+	// A patient whose peak has been rising 3 cmH2O/min: present before the
+	// change, held through the refill, present after it.
+	rising := func(tS float64) float64 { return step(tS) + 0.05*tS }
+	present, last := run(rising)
+	if !present[99] {
+		t.Fatal("the rise was not present before the change")
+	}
+	for i := 100; i < 200; i++ {
+		if !present[i] {
+			t.Fatalf("rising-peak-pressure cleared at breath %d, after the settings change", i)
+		}
+	}
+	if !strings.Contains(last.Message, "follows a PEEP increase") {
+		t.Errorf("last message %q does not name the change", last.Message)
 	}
 }
 
