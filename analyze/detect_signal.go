@@ -103,8 +103,9 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 	}
 	s.started, s.lastS = true, nowS
 	if s.lost {
+		// They arrive again with the first of these samples.
 		s.lost = false
-		dst = append(dst, Finding{Condition: CondSignalLost, Class: Technical, TimeS: nowS, BreathSeq: -1,
+		dst = append(dst, Finding{Condition: CondSignalLost, Class: Technical, TimeS: samples[0].TimeS, BreathSeq: -1,
 			Evidence: map[string]float64{}, Message: "samples are arriving again"})
 	}
 	lim := &s.lim

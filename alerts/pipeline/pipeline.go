@@ -228,17 +228,35 @@ func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 		}
 		return
 	}
+	// The technical checks take the samples in runs, one call for the
+	// samples between two breaths rather than one per sample; a run is
+	// judged before the breath it ends, so the lifecycle sees the findings
+	// in the same order, all at the same wall time.
 	wall := p.now()
+	start := 0
 	for i := range ss {
 		s := ss[i]
 		if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
-			continue // no place on the time axis; the analyzer skips it too
+			// No place on the time axis; the analyzer skips it too.
+			p.judgeRun(ss[start:i], wall)
+			start = i + 1
+			continue
 		}
-		p.judge.Samples(ss[i:i+1], s.TimeS, wall, p.alertFn)
 		p.haveSample, p.lastS, p.lastWall = true, s.TimeS, wall
 		if b := p.an.Next(s); b != nil {
+			p.judgeRun(ss[start:i+1], wall)
+			start = i + 1
 			p.breathOut(b, wall, sink)
 		}
+	}
+	p.judgeRun(ss[start:], wall)
+}
+
+// judgeRun passes a run of samples with finite times, read at wall, to the
+// technical checks.
+func (p *Pipeline) judgeRun(run []ingest.Sample, wall time.Time) {
+	if len(run) > 0 {
+		p.judge.Samples(run, run[len(run)-1].TimeS, wall, p.alertFn)
 	}
 }
 
