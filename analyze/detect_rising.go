@@ -60,7 +60,9 @@ func NewRisingPeak(cfg RisingPeakConfig) *RisingPeak {
 func (d *RisingPeak) Conditions() []string { return []string{CondRisingPeakPressure} }
 
 // Reset implements BreathDetector.
-func (d *RisingPeak) Reset() { d.next, d.n, d.present, d.restarted, d.lastChange = 0, 0, false, nil, nil }
+func (d *RisingPeak) Reset() {
+	d.next, d.n, d.present, d.restarted, d.lastChange = 0, 0, false, nil, nil
+}
 
 // Breath implements BreathDetector.
 func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
