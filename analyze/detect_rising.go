@@ -79,44 +79,8 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 		f.Message = "breath without a usable peak pressure; verdict unchanged"
 		return append(dst, f)
 	}
-	if d.n > 0 && t < d.ring[(d.next+len(d.ring)-1)%len(d.ring)].tS {
-		d.Reset() // the stream clock went back: start a new window
-	}
-	e := rpBreath{tS: t, peak: b.PeakCmH2O, plat: b.PlateauCmH2O, r: b.RCmH2OSPerL, c: b.CMLPerCmH2O,
-		resist: math.NaN(), elastic: math.NaN(), changes: b.SettingsChanged}
-	if b.RCmH2OSPerL > 0 && b.PeakInspFlowLPM > 0 {
-		e.resist = b.RCmH2OSPerL * b.PeakInspFlowLPM / 60
-	}
-	if vt := detFirstFinite(b.VtiML, b.VteML); b.CMLPerCmH2O > 0 && vt > 0 {
-		e.elastic = vt / b.CMLPerCmH2O
-	}
-	d.ring[d.next] = e
-	d.next = (d.next + 1) % len(d.ring)
-	d.n = min(d.n+1, len(d.ring))
-	// A change of PEEP or of the inspiratory pressure moves the peak in
-	// one step, which a slope over a window across it reads as a rise. The
-	// window starts again at the change, and the verdict is held while it
-	// fills, so that a step is not an alarm and an alarm already raised
-	// does not clear because the settings changed. Other inferred changes
-	// (rate, tidal volume, flow, mode) only explain a rise: inferred from
-	// the waveform they also appear, now and then, on a patient whose
-	// mechanics change (a leak moves the measured volume), and a rise must
-	// not be missed for them.
-	if len(e.changes) > 0 {
-		d.lastChange, d.lastChangeS = e.changes, t
-	}
-	if slices.ContainsFunc(e.changes, stepsPeak) {
-		d.n, d.restarted = 1, e.changes
-	}
-
-	// The window: the most recent breaths within WindowS of this one.
-	first := d.n
-	for i := d.n - 1; i >= 0; i-- {
-		if t-d.at(i).tS > cfg.WindowS {
-			break
-		}
-		first = i
-	}
+	d.add(b, t)
+	first := d.windowStart(t)
 	count := d.n - first
 	spanS := t - d.at(first).tS
 	f.Evidence["window_breaths"] = float64(count)
@@ -164,6 +128,52 @@ func (d *RisingPeak) Breath(b *Breath, dst []Finding) []Finding {
 	f.Message = fmt.Sprintf("peak pressure rising %.2f cmH2O/min (%.1f %%/min) over the last %.0f s; the rise is %s",
 		slope, pct, spanS, kind)
 	return append(dst, f)
+}
+
+// add puts breath b, ending at t, into the window.
+func (d *RisingPeak) add(b *Breath, t float64) {
+	if d.n > 0 && t < d.ring[(d.next+len(d.ring)-1)%len(d.ring)].tS {
+		d.Reset() // the stream clock went back: start a new window
+	}
+	e := rpBreath{tS: t, peak: b.PeakCmH2O, plat: b.PlateauCmH2O, r: b.RCmH2OSPerL, c: b.CMLPerCmH2O,
+		resist: math.NaN(), elastic: math.NaN(), changes: b.SettingsChanged}
+	if b.RCmH2OSPerL > 0 && b.PeakInspFlowLPM > 0 {
+		e.resist = b.RCmH2OSPerL * b.PeakInspFlowLPM / 60
+	}
+	if vt := detFirstFinite(b.VtiML, b.VteML); b.CMLPerCmH2O > 0 && vt > 0 {
+		e.elastic = vt / b.CMLPerCmH2O
+	}
+	d.ring[d.next] = e
+	d.next = (d.next + 1) % len(d.ring)
+	d.n = min(d.n+1, len(d.ring))
+	// A change of PEEP or of the inspiratory pressure moves the peak in
+	// one step, which a slope over a window across it reads as a rise. The
+	// window starts again at the change, and the verdict is held while it
+	// fills, so that a step is not an alarm and an alarm already raised
+	// does not clear because the settings changed. Other inferred changes
+	// (rate, tidal volume, flow, mode) only explain a rise: inferred from
+	// the waveform they also appear, now and then, on a patient whose
+	// mechanics change (a leak moves the measured volume), and a rise must
+	// not be missed for them.
+	if len(e.changes) > 0 {
+		d.lastChange, d.lastChangeS = e.changes, t
+	}
+	if slices.ContainsFunc(e.changes, stepsPeak) {
+		d.n, d.restarted = 1, e.changes
+	}
+}
+
+// windowStart returns the oldest breath of the window: the most recent
+// breaths within WindowS of t.
+func (d *RisingPeak) windowStart(t float64) int {
+	first := d.n
+	for i := d.n - 1; i >= 0; i-- {
+		if t-d.at(i).tS > d.cfg.WindowS {
+			break
+		}
+		first = i
+	}
+	return first
 }
 
 // attribute says why the peak rises, filling the evidence of f: the
