@@ -405,8 +405,7 @@ func (h *holder) add(c *conn, n int) {
 		h.flush(c)
 		return
 	}
-	if now.Sub(h.since) >= h.hold {
-		h.flush(c)
+	if h.due(c, now) {
 		return
 	}
 	// Not due yet: rather than wake for every write of the sender, let
@@ -415,11 +414,13 @@ func (h *holder) add(c *conn, n int) {
 	backoff.Sleep(c.ctx, nil, h.since.Add(h.hold).Sub(now))
 }
 
-// due decodes the held bytes if their time has come.
-func (h *holder) due(c *conn, now time.Time) {
-	if len(h.buf) > 0 && now.Sub(h.since) >= h.hold {
-		h.flush(c)
+// due decodes the held bytes if their time has come, and says so.
+func (h *holder) due(c *conn, now time.Time) bool {
+	if len(h.buf) == 0 || now.Sub(h.since) < h.hold {
+		return false
 	}
+	h.flush(c)
+	return true
 }
 
 // flush decodes every held byte.

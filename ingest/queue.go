@@ -76,7 +76,7 @@ func getBatch() *[]Sample { return batchPool.Get().(*[]Sample) }
 
 // smallBatch is the starting capacity of the batches of a direct sink,
 // whose reads of a live link of many streams bring a sample or two per
-// stream, or up to a dozen with a batch window of 50 ms at 100 Hz (see
+// stream, or about ten with a batch window of 100 ms at 100 Hz (see
 // Options.Hold): a batch that outgrows it is grown by append and pooled
 // as large.
 const smallBatch = 16
