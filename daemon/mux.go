@@ -197,8 +197,7 @@ func (ms *muxSource) deliver(evs []ingest.Event) {
 // one warning per episode.
 func (ms *muxSource) send(sh *shard, w *work) {
 	if ms.block {
-		sh.queued.Add(int64(w.samples))
-		w.sh = sh
+		sh.count(w)
 		select {
 		case sh.in <- w:
 		case <-ms.ctx.Done():

@@ -71,6 +71,13 @@ func (sh *shard) reserve(w *work) bool {
 	return true
 }
 
+// count counts w's samples as queued on sh whatever the bound: a blocking
+// source waits on the queue itself instead.
+func (sh *shard) count(w *work) {
+	sh.queued.Add(int64(w.samples))
+	w.sh = sh
+}
+
 // muxAck is an acknowledgement on its way to the owning shard.
 type muxAck struct {
 	st     *muxStream
