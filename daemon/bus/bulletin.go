@@ -83,7 +83,7 @@ func putRecordBuf(b []byte) {
 // within its de-duplication window (a scale-out worker replaying a stretch
 // after a hand-over).
 func (b *Bulletin) BreathWithID(br *analyze.Breath, msgID string) {
-	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(make([]byte, 0, 768)), msgID: msgID})
+	b.offer(bulletinMsg{subject: b.subj.Breath(br.Stream), data: br.AppendJSON(getRecordBuf()), msgID: msgID, pooled: true})
 }
 
 // Status queues a status heartbeat (JSON built by the stream) for
