@@ -88,8 +88,9 @@ type httpServer struct {
 }
 
 // newHTTPServer listens at once, so that a port in use fails the start of
-// the daemon with a clear message instead of a log line later.
-func newHTTPServer(addr string, m *metrics, ready *readiness, log zerolog.Logger) (*httpServer, error) {
+// the daemon with a clear message instead of a log line later. profiles
+// also serves the runtime's profiles (http.pprof).
+func newHTTPServer(addr string, profiles bool, m *metrics, ready *readiness, log zerolog.Logger) (*httpServer, error) {
 	ln, err := listenTCP(addr, "http.listen")
 	if err != nil {
 		return nil, fmt.Errorf("http: %w", err)
@@ -104,6 +105,9 @@ func newHTTPServer(addr string, m *metrics, ready *readiness, log zerolog.Logger
 	mux.HandleFunc("GET /readyz", h.readyz)
 	mux.Handle("GET /metrics", promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{Registry: m.reg}))
 	h.mux = mux
+	if profiles {
+		h.mountProfiles()
+	}
 	h.srv = &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	return h, nil
 }

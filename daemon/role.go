@@ -58,12 +58,9 @@ func (d *Daemon) startRoleHTTP(ctx context.Context, g *errgroup.Group, nc *nats.
 	if d.cfg.HTTP.Listen == "" {
 		return nil
 	}
-	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
+	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.cfg.HTTP.Pprof, d.m, d.ready, d.log.With().Str("component", "http").Logger())
 	if err != nil {
 		return err
-	}
-	if d.cfg.HTTP.Pprof {
-		h.mountProfiles()
 	}
 	g.Go(func() error { return h.Run(ctx) })
 	return nil

@@ -165,12 +165,9 @@ func (d *Daemon) openHTTP(acks *bus.AckService) (*httpServer, error) {
 	if d.cfg.HTTP.Listen == "" {
 		return nil, nil
 	}
-	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.m, d.ready, d.log.With().Str("component", "http").Logger())
+	h, err := newHTTPServer(d.cfg.HTTP.Listen, d.cfg.HTTP.Pprof, d.m, d.ready, d.log.With().Str("component", "http").Logger())
 	if err != nil {
 		return nil, err
-	}
-	if d.cfg.HTTP.Pprof {
-		h.mountProfiles()
 	}
 	d.startLiveView(h, acks)
 	return h, nil

@@ -262,7 +262,7 @@ func TestHTTPHealthReadyMetrics(t *testing.T) {
 	m.addSource("bed-1", func() ingest.Stats { return ingest.Stats{Samples: 1234, BadLines: 3} })
 	m.breaths.WithLabelValues("bed-1").Add(7)
 	m.setDelivery(func() int { return 2 }, natsUp.Load, func() uint64 { return 0 })
-	h, err := newHTTPServer("127.0.0.1:0", m, ready, zerolog.Nop())
+	h, err := newHTTPServer("127.0.0.1:0", false, m, ready, zerolog.Nop())
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -305,7 +305,7 @@ func TestHTTPHealthReadyMetrics(t *testing.T) {
 	}
 
 	// A second server on the same port fails with a clear message.
-	_, err = newHTTPServer(h.Addr(), m, ready, zerolog.Nop())
+	_, err = newHTTPServer(h.Addr(), false, m, ready, zerolog.Nop())
 	if !errors.Is(err, ErrPortInUse) || !strings.Contains(err.Error(), "http.listen") {
 		t.Errorf("second listener: %v, want ErrPortInUse naming http.listen", err)
 	}
