@@ -46,16 +46,13 @@ type sigWindow struct {
 	outOfRange, clipped    int
 }
 
-// sigLimits are the thresholds Samples compares every sample with, worked
-// out from the configuration once rather than for each sample (the same
-// expressions, so the same float64 values).
+// sigLimits are the thresholds Samples compares every sample with that
+// derive from the configuration, worked out once rather than for each
+// sample (the same expressions, so the same float64 values).
 type sigLimits struct {
-	flowMaxLPS        float64 // FlowMaxLPM in L/s
-	clipPHi, clipPLo  float64 // pressures within the clipping margin of the range's ends
-	clipFlowLPS       float64 // |flow| within the clipping margin of the maximum
-	pressureMin, pMax float64
-	windowS           float64
-	clipRun           int
+	flowMaxLPS       float64 // FlowMaxLPM in L/s
+	clipPHi, clipPLo float64 // pressures within the clipping margin of the range's ends
+	clipFlowLPS      float64 // |flow| within the clipping margin of the maximum
 }
 
 func newSigLimits(c SignalConfig) sigLimits {
@@ -63,8 +60,7 @@ func newSigLimits(c SignalConfig) sigLimits {
 	pSpan := c.PressureMaxCmH2O - c.PressureMinCmH2O
 	return sigLimits{flowMaxLPS: flowMaxLPS,
 		clipPHi: c.PressureMaxCmH2O - c.ClipMarginFrac*pSpan, clipPLo: c.PressureMinCmH2O + c.ClipMarginFrac*pSpan,
-		clipFlowLPS: flowMaxLPS * (1 - c.ClipMarginFrac), pressureMin: c.PressureMinCmH2O, pMax: c.PressureMaxCmH2O,
-		windowS: c.WindowS, clipRun: c.ClipRun}
+		clipFlowLPS: flowMaxLPS * (1 - c.ClipMarginFrac)}
 }
 
 type gapEntry struct{ tS, lenS float64 }
@@ -108,8 +104,7 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 		dst = append(dst, Finding{Condition: CondSignalLost, Class: Technical, TimeS: samples[0].TimeS, BreathSeq: -1,
 			Evidence: map[string]float64{}, Message: "samples are arriving again"})
 	}
-	lim := &s.lim
-	w := &s.win
+	c, lim, w := &s.cfg, &s.lim, &s.win
 	for _, x := range samples {
 		p, f := x.PressureCmH2O, x.FlowLPS
 		if math.IsNaN(p) || math.IsNaN(f) || math.IsInf(p, 0) || math.IsInf(f, 0) {
@@ -118,7 +113,7 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 		if math.IsNaN(w.startS) || x.TimeS < w.startS {
 			w.reset(x.TimeS)
 		}
-		if x.TimeS-w.startS >= lim.windowS {
+		if x.TimeS-w.startS >= c.WindowS {
 			dst = append(dst, s.evalWindow(x.TimeS))
 			w.reset(x.TimeS)
 		}
@@ -144,7 +139,7 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 		w.sff += f * f
 		w.spf += p * f
 		af := math.Abs(f)
-		if p < lim.pressureMin || p > lim.pMax || af > lim.flowMaxLPS {
+		if p < c.PressureMinCmH2O || p > c.PressureMaxCmH2O || af > lim.flowMaxLPS {
 			w.outOfRange++
 		}
 		// Clipping: a run of identical values at the ends of the range.
@@ -158,7 +153,7 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 		} else {
 			s.runF = 1
 		}
-		if s.runP == lim.clipRun || s.runF == lim.clipRun {
+		if s.runP == c.ClipRun || s.runF == c.ClipRun {
 			w.clipped++
 		}
 		s.prevP, s.prevF = p, f
