@@ -112,18 +112,10 @@ func (a *Analyzer) inspResidual(rScale, k2 float64) (dev, noise float64) {
 }
 
 // pressureResiduals sets rs to the residuals of pressure (less the Rohrer
-// term k2·V'·|V'|) against the regression fr on flow and volume. A plain
-// loop, and one without the Rohrer term when k2 is zero, so that the
-// linear test pays nothing for it (a function value per point would cost
-// an indirect call that cannot be inlined).
+// term k2·V'·|V'|, nothing when k2 is zero) against the regression fr on
+// flow and volume: a plain loop, as a function value per point would cost
+// an indirect call that cannot be inlined.
 func pressureResiduals(rs []float64, pts []point, fr fitResult, k2 float64) {
-	if k2 == 0 {
-		for i := range pts {
-			q := &pts[i]
-			rs[i] = q.p - (fr.r*q.f + fr.e*q.v + fr.p0)
-		}
-		return
-	}
 	for i := range pts {
 		q := &pts[i]
 		rs[i] = q.p - k2*q.f*math.Abs(q.f) - (fr.r*q.f + fr.e*q.v + fr.p0)
@@ -134,13 +126,6 @@ func pressureResiduals(rs []float64, pts []point, fr fitResult, k2 float64) {
 // on pressure (less the Rohrer term k2·V'·|V'|) and volume, scaled to
 // pressure by rScale.
 func flowResiduals(rs []float64, pts []point, ff fitResult, rScale, k2 float64) {
-	if k2 == 0 {
-		for i := range pts {
-			q := &pts[i]
-			rs[i] = rScale * (q.f - (ff.r*q.p + ff.e*q.v + ff.p0))
-		}
-		return
-	}
 	for i := range pts {
 		q := &pts[i]
 		rs[i] = rScale * (q.f - (ff.r*(q.p-k2*q.f*math.Abs(q.f)) + ff.e*q.v + ff.p0))
