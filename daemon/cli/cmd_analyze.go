@@ -78,8 +78,9 @@ func (a *app) analyzeCommand() *cobra.Command {
 }
 
 // offline analyses a recording: one pipeline (analyzer, detectors, alarm
-// lifecycle) per stream, fed one sample at a time so that breath records
-// and alert events come out in the order they happen.
+// lifecycle) per stream, fed the samples in input order, in runs of one
+// stream, so that breath records and alert events come out in the order
+// they happen.
 type offline struct {
 	cfg       analyze.Config
 	dcfg      analyze.DetectorConfig
@@ -91,6 +92,10 @@ type offline struct {
 	// of samples of one stream does not look the map up for each.
 	lastStream string
 	lastPl     *pipeline.Pipeline
+	// pend holds the run of samples of pendPl not yet pushed: a pipeline
+	// takes a run in one call, and its checks one call a run.
+	pend   []ingest.Sample
+	pendPl *pipeline.Pipeline
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
 	timing     *ingest.Timelines
@@ -109,7 +114,8 @@ type offline struct {
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
 		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
-		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
+		pend: make([]ingest.Sample, 0, offlineRun),
+		out:  bufio.NewWriterSize(out, 64<<10), summary: summary}
 	return o
 }
 
@@ -132,10 +138,28 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 			return
 		}
 		if gap != nil {
+			o.flush()
 			pl.Status(*gap, time.Time{})
 		}
 	}
-	pl.PushOne(s, o)
+	if pl != o.pendPl {
+		o.flush()
+		o.pendPl = pl
+	}
+	if o.pend = append(o.pend, s); len(o.pend) == offlineRun {
+		o.flush()
+	}
+}
+
+// offlineRun is the longest run of samples handed to a pipeline at once.
+const offlineRun = 256
+
+// flush pushes the pending run to its pipeline.
+func (o *offline) flush() {
+	if len(o.pend) > 0 {
+		o.pendPl.Push(o.pend, o)
+		o.pend = o.pend[:0]
+	}
 }
 
 // Alert writes one alert event as a line of NDJSON.
@@ -182,6 +206,7 @@ func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offli
 	o.timing = ingest.NewTimelines(f.in.sampleRate)
 	defer in.Close()
 	st, err := in.Run(ctx, o.sample)
+	o.flush()
 	if err != nil {
 		return st, noSamplesHint(err, st, in.Size(), f.in)
 	}
