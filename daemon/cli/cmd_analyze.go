@@ -88,14 +88,13 @@ type offline struct {
 	start     time.Time
 	alerts    bool
 	pipelines map[string]*pipeline.Pipeline
-	// The stream of the previous sample and its pipeline, so that a run
-	// of samples of one stream does not look the map up for each.
-	lastStream string
-	lastPl     *pipeline.Pipeline
-	// pend holds the run of samples of pendPl not yet pushed: a pipeline
-	// takes a run in one call, and its checks one call a run.
-	pend   []ingest.Sample
-	pendPl *pipeline.Pipeline
+	// pend holds a run of samples of pendStream not yet analysed: the
+	// timing checks and the pipeline take a run in one call, and the
+	// stream's pipeline is looked up once a run (pendPl).
+	pend       []ingest.Sample
+	pendStream string
+	pendPl     *pipeline.Pipeline
+	onGap      func(before []ingest.Sample, ev *ingest.Event)
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
 	timing     *ingest.Timelines
@@ -116,50 +115,49 @@ func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
 		pend: make([]ingest.Sample, 0, offlineRun),
 		out:  bufio.NewWriterSize(out, 64<<10), summary: summary}
+	o.onGap = o.gap
 	return o
 }
 
-// sample feeds one decoded sample to its stream's pipeline.
+// sample takes one decoded sample into the pending run.
 func (o *offline) sample(stream string, s ingest.Sample) {
-	o.samples++
-	pl := o.lastPl
-	if pl == nil || stream != o.lastStream {
-		if pl = o.pipelines[stream]; pl == nil {
-			pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-			o.pipelines[stream] = pl
-		}
-		o.lastStream, o.lastPl = stream, pl
-	}
-	if o.timing != nil {
-		var gap *ingest.Event
-		var ok bool
-		if s, gap, ok = o.timing.Admit(stream, s); !ok {
-			o.outOfOrder++
-			return
-		}
-		if gap != nil {
-			o.flush()
-			pl.Status(*gap, time.Time{})
-		}
-	}
-	if pl != o.pendPl {
+	if len(o.pend) == offlineRun || stream != o.pendStream {
 		o.flush()
-		o.pendPl = pl
+		o.pendStream = stream
 	}
-	if o.pend = append(o.pend, s); len(o.pend) == offlineRun {
-		o.flush()
-	}
+	o.pend = append(o.pend, s)
 }
 
-// offlineRun is the longest run of samples handed to a pipeline at once.
+// offlineRun is the longest run of samples analysed at once.
 const offlineRun = 256
 
-// flush pushes the pending run to its pipeline.
+// flush passes the pending run through the timing checks to its stream's
+// pipeline.
 func (o *offline) flush() {
-	if len(o.pend) > 0 {
-		o.pendPl.Push(o.pend, o)
-		o.pend = o.pend[:0]
+	if len(o.pend) == 0 {
+		return
 	}
+	o.samples += uint64(len(o.pend))
+	pl := o.pipelines[o.pendStream]
+	if pl == nil {
+		pl = pipeline.NewOffline(pipeline.Options{Stream: o.pendStream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+		o.pipelines[o.pendStream] = pl
+	}
+	o.pendPl = pl
+	ss := o.pend
+	if o.timing != nil {
+		var dropped int
+		ss, dropped = o.timing.AdmitRun(o.pendStream, ss, o.onGap)
+		o.outOfOrder += uint64(dropped)
+	}
+	pl.Push(ss, o)
+	o.pend = o.pend[:0]
+}
+
+// gap hands on the samples before a gap, then the gap.
+func (o *offline) gap(before []ingest.Sample, ev *ingest.Event) {
+	o.pendPl.Push(before, o)
+	o.pendPl.Status(*ev, time.Time{})
 }
 
 // Alert writes one alert event as a line of NDJSON.
