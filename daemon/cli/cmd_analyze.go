@@ -90,7 +90,9 @@ type offline struct {
 	pipelines map[string]*pipeline.Pipeline
 	// pend holds a run of samples of pendStream not yet analysed: the
 	// timing checks and the pipeline take a run in one call, and the
-	// stream's pipeline is looked up once a run (pendPl).
+	// stream's pipeline is looked up once a run (pendPl, the pipeline of
+	// the run being analysed). Ordinary text lines come in runs already
+	// (run); pend gathers the others (sample).
 	pend       []ingest.Sample
 	pendStream string
 	pendPl     *pipeline.Pipeline
@@ -128,30 +130,40 @@ func (o *offline) sample(stream string, s ingest.Sample) {
 	o.pend = append(o.pend, s)
 }
 
+// run takes a run of decoded samples of one stream: it goes to the
+// pipeline as it is, after any pending samples.
+func (o *offline) run(stream string, ss []ingest.Sample) {
+	o.flush()
+	o.analyse(stream, ss)
+}
+
 // offlineRun is the longest run of samples analysed at once.
 const offlineRun = 256
 
-// flush passes the pending run through the timing checks to its stream's
-// pipeline.
+// flush passes the pending run to analyse.
 func (o *offline) flush() {
-	if len(o.pend) == 0 {
-		return
+	if len(o.pend) > 0 {
+		o.analyse(o.pendStream, o.pend)
+		o.pend = o.pend[:0]
 	}
-	o.samples += uint64(len(o.pend))
-	pl := o.pipelines[o.pendStream]
+}
+
+// analyse passes a run of samples of stream, which it may change, through
+// the timing checks to the stream's pipeline.
+func (o *offline) analyse(stream string, ss []ingest.Sample) {
+	o.samples += uint64(len(ss))
+	pl := o.pipelines[stream]
 	if pl == nil {
-		pl = pipeline.NewOffline(pipeline.Options{Stream: o.pendStream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-		o.pipelines[o.pendStream] = pl
+		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+		o.pipelines[stream] = pl
 	}
 	o.pendPl = pl
-	ss := o.pend
 	if o.timing != nil {
 		var dropped int
-		ss, dropped = o.timing.AdmitRun(o.pendStream, ss, o.onGap)
+		ss, dropped = o.timing.AdmitRun(stream, ss, o.onGap)
 		o.outOfOrder += uint64(dropped)
 	}
 	pl.Push(ss, o)
-	o.pend = o.pend[:0]
 }
 
 // gap hands on the samples before a gap, then the gap.
@@ -203,7 +215,7 @@ func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offli
 	}
 	o.timing = ingest.NewTimelines(f.in.sampleRate)
 	defer in.Close()
-	st, err := in.Run(ctx, o.sample)
+	st, err := in.RunBatched(ctx, o.sample, o.run)
 	o.flush()
 	if err != nil {
 		return st, noSamplesHint(err, st, in.Size(), f.in)
