@@ -197,22 +197,26 @@ func (t *Timelines) AdmitRun(stream string, ss []Sample, gap func(before []Sampl
 	tl := t.of(stream)
 	k := 0
 	for i := range ss {
-		smp := ss[i]
-		if out, ok := tl.steady(smp.TimeS); ok {
-			smp.TimeS = out
-		} else {
-			var ev *Event
-			var keep bool
-			if smp, ev, keep = tl.check(stream, smp); !keep {
-				dropped++
-				continue
+		if out, ok := tl.steady(ss[i].TimeS); ok {
+			// The common case writes the time alone, and moves the sample
+			// only once one was dropped or a gap handed on.
+			if k != i {
+				ss[k] = ss[i] // k < i: a sample already read
 			}
-			if ev != nil {
-				gap(ss[:k], ev)
-				k = 0
-			}
+			ss[k].TimeS = out
+			k++
+			continue
 		}
-		ss[k] = smp // k ≤ i: a sample already read
+		smp, ev, keep := tl.check(stream, ss[i])
+		if !keep {
+			dropped++
+			continue
+		}
+		if ev != nil {
+			gap(ss[:k], ev)
+			k = 0
+		}
+		ss[k] = smp
 		k++
 	}
 	return ss[:k], dropped
