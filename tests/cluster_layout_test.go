@@ -54,7 +54,7 @@ func TestClusterReplicasNeverLowered(t *testing.T) {
 	var wg sync.WaitGroup
 	defer wg.Wait()
 	defer cancel()
-	const base = "role: worker\ndata_dir: %s\nlog: {level: warn}\nnats: {url: \"%s\"}\nscaleout: {partitions: 4, worker_id: %s%s}\n"
+	const base = "role: worker\ndata_dir: %s\nhttp: {listen: \"\"}\nlog: {level: warn}\nnats: {url: \"%s\"}\nscaleout: {partitions: 4, worker_id: %s%s}\n"
 	first := writeConfig(t, fmt.Sprintf(base, t.TempDir(), c.urls(), "w1", ", replicas: 3"))
 	wg.Add(1)
 	go func() { defer wg.Done(); runDaemon(ctx, "run", "-c", first) }()
