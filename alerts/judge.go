@@ -44,8 +44,11 @@ func (j *Judge) Lifecycle() *Lifecycle { return j.life }
 func (j *Judge) SetLifecycle(l *Lifecycle) { j.life = l }
 
 // update passes the findings gathered in scratch to the lifecycle.
-func (j *Judge) update(wall time.Time, emit func(*Event)) {
-	for _, f := range j.scratch {
+func (j *Judge) update(wall time.Time, emit func(*Event)) { j.updateWith(j.scratch, wall, emit) }
+
+// updateWith passes findings to the lifecycle at wall.
+func (j *Judge) updateWith(findings []analyze.Finding, wall time.Time, emit func(*Event)) {
+	for _, f := range findings {
 		evs := j.life.Update(f, wall)
 		for i := range evs {
 			j.Stamp(&evs[i])
@@ -61,13 +64,26 @@ func (j *Judge) Samples(ss []ingest.Sample, nowS float64, wall time.Time, emit f
 	j.update(wall, emit)
 }
 
-// SamplesAt is Samples for a caller whose wall time is a function of the
-// stream time (offline, see OfflineClock.Wall): wallOf(nowS) is made only
-// when a finding is to be judged, not for every sample.
-func (j *Judge) SamplesAt(ss []ingest.Sample, nowS float64, wallOf func(float64) time.Time, emit func(*Event)) {
-	j.scratch = j.det.Samples(ss, nowS, j.scratch[:0])
-	if len(j.scratch) > 0 {
-		j.update(wallOf(nowS), emit)
+// SamplesRun is Samples for a caller whose wall time is a function of the
+// stream time (offline, see OfflineClock.Wall), for a run of samples with
+// finite times that nothing else is judged between (no breath, no tick).
+// Each finding reaches the lifecycle at the wall time of its own sample,
+// as if the samples had come one at a time, and wallOf is called only when
+// there is a finding, not for every sample.
+func (j *Judge) SamplesRun(ss []ingest.Sample, wallOf func(float64) time.Time, emit func(*Event)) {
+	if len(ss) == 0 {
+		return
+	}
+	j.scratch = j.det.Samples(ss, ss[len(ss)-1].TimeS, j.scratch[:0])
+	// The findings come in the order of their samples; those of one
+	// sample share its time.
+	for k := 0; k < len(j.scratch); {
+		n := k + 1
+		for n < len(j.scratch) && j.scratch[n].TimeS == j.scratch[k].TimeS {
+			n++
+		}
+		j.updateWith(j.scratch[k:n], wallOf(j.scratch[k].TimeS), emit)
+		k = n
 	}
 }
 

@@ -3,6 +3,8 @@ package analyze
 import (
 	"errors"
 	"math"
+	"math/rand/v2"
+	"reflect"
 	"testing"
 
 	"trapline/ingest"
@@ -153,5 +155,64 @@ func TestSampleGapsAndDecoderErrors(t *testing.T) {
 	}
 	if f, _ := findCond(s.Tick(150, nil), CondDecoderErrors); f.Present {
 		t.Errorf("after the window: still present %v", f.Evidence)
+	}
+}
+
+// TestSignalBatchesMatchSingles checks that the implausibility windows come
+// out the same whatever the batches the samples arrive in: every sample
+// alone, or batches of random length, on a signal with flat stretches,
+// values out of range, values and times that are not finite, and times
+// that go back, for windows shorter and longer than a batch.
+func TestSignalBatchesMatchSingles(t *testing.T) {
+	r := rand.New(rand.NewPCG(1, 2))
+	for round := range 40 {
+		cfg := DefaultDetectorConfig().Signal
+		cfg.WindowS = []float64{0.05, 0.3, 2, 20}[round%4]
+		var ss []ingest.Sample
+		tS := 0.0
+		for i := range 3000 {
+			tS += 0.01
+			x := ingest.Sample{TimeS: tS, PressureCmH2O: 10 + 5*math.Sin(float64(i)/30), FlowLPS: math.Cos(float64(i) / 30)}
+			switch r.IntN(60) {
+			case 0:
+				x.TimeS = math.NaN()
+			case 1:
+				x.TimeS -= 3
+			case 2:
+				x.PressureCmH2O = math.NaN()
+			case 3:
+				x.FlowLPS = math.Inf(1)
+			case 4:
+				x.PressureCmH2O = 200
+			case 5:
+				x.TimeS = math.Inf(1)
+			}
+			if i%500 < 60 {
+				x.PressureCmH2O, x.FlowLPS = 7, 0 // a flat line
+			}
+			ss = append(ss, x)
+		}
+		single, batched := NewSignal(cfg), NewSignal(cfg)
+		var want, got []Finding
+		for i := range ss {
+			want = single.Samples(ss[i:i+1], ss[i].TimeS, want)
+		}
+		for i := 0; i < len(ss); {
+			n := min(1+r.IntN(40), len(ss)-i)
+			got = batched.Samples(ss[i:i+n], ss[i+n-1].TimeS, got)
+			i += n
+		}
+		present := 0
+		for _, f := range want {
+			if f.Present {
+				present++
+			}
+		}
+		if present == 0 || present == len(want) {
+			t.Fatalf("round %d: %d of %d windows implausible: not a test of both verdicts", round, present, len(want))
+		}
+		if !reflect.DeepEqual(got, want) {
+			t.Fatalf("round %d: batches gave %d findings, single samples %d; they differ", round, len(got), len(want))
+		}
 	}
 }

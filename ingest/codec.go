@@ -39,6 +39,11 @@ const DefaultColumns = "time[s],pressure[cmH2O],flow[L/min]"
 // and may be kept; the call must not block for long.
 type EmitFunc func(stream string, s Sample)
 
+// RunFunc receives decoded samples of one stream, in input order. The
+// slice is the decoder's: valid only during the call, and the callee may
+// change it.
+type RunFunc func(stream string, ss []Sample)
+
 // DecoderOptions configure a decoder.
 type DecoderOptions struct {
 	// Columns is the text layout used until a header line arrives, such as
@@ -51,6 +56,13 @@ type DecoderOptions struct {
 	// Stream is the stream id of samples that name none (DefaultStream when
 	// empty).
 	Stream string
+	// Runs, when set, receives the samples of the text decoder's fast
+	// lane (ordinary sample lines without a stream column) in runs, one
+	// call for many samples, rather than one at a time through the
+	// EmitFunc, which still receives every other sample. Both together
+	// keep the input order. A reader that takes samples in runs (the
+	// analyze verb) saves a call and a copy per sample.
+	Runs RunFunc
 }
 
 // DecoderStats counts what a decoder accepted and rejected.

@@ -100,6 +100,8 @@ func splitColumn(f []byte) (name, unit string, ok bool) {
 // without a header.
 type TextDecoder struct {
 	emit     EmitFunc
+	runs     RunFunc  // DecoderOptions.Runs
+	run      []Sample // the fast lane's run for runs
 	rateHz   float64
 	layout   layout
 	fast     bool // the layout's lines may take the fast lane (fastLines)
@@ -136,15 +138,23 @@ func NewTextDecoder(opts DecoderOptions, emit EmitFunc) (*TextDecoder, error) {
 	if emit == nil {
 		emit = func(string, Sample) {}
 	}
-	return &TextDecoder{
+	d := &TextDecoder{
 		emit:    emit,
+		runs:    opts.Runs,
 		rateHz:  opts.RateHz,
 		layout:  l,
 		fast:    fastLayout(l),
 		streams: newStreamTable(stream),
 		carry:   make([]byte, 0, MaxLineBytes+1),
-	}, nil
+	}
+	if d.runs != nil {
+		d.run = make([]Sample, 0, fastRun)
+	}
+	return d, nil
 }
+
+// fastRun is the longest run the fast lane hands to DecoderOptions.Runs.
+const fastRun = 256
 
 // Stats returns the decoder's counters.
 func (d *TextDecoder) Stats() DecoderStats { return d.stats }

@@ -45,7 +45,8 @@ func sameSamples(a, b got) bool {
 // general path (blanks, an exponent, a long number, an empty or extra
 // field, a comment, "\r\n", a stray '\r', a header that changes the
 // layout), in random chunks, and compares it with the general path alone:
-// the same samples bit for bit and the same counters.
+// the same samples bit for bit, in the same order, and the same counters,
+// whether the fast lane hands its samples on one at a time or in runs.
 func TestTextFastLaneAgainstGeneral(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 17))
 	number := func() string {
@@ -64,6 +65,7 @@ func TestTextFastLaneAgainstGeneral(t *testing.T) {
 	headers := []string{"time[s],pressure[cmH2O],flow[L/min]", "pressure[hPa],flow[L/s],time[ms]",
 		"time[s],pressure[cmH2O],flow[L/min],volume[mL]", "stream,time[s],pressure[cmH2O],flow[L/min]",
 		"time[s],note,pressure[cmH2O],flow[L/min]", "time[s],pressure[cmH2O],flow[L/min],note"}
+	runs := 0
 	for round := range 200 {
 		var sb strings.Builder
 		cols := 3
@@ -88,21 +90,37 @@ func TestTextFastLaneAgainstGeneral(t *testing.T) {
 		input := []byte(sb.String())
 		opts := DecoderOptions{RateHz: 50}
 		want, wantStats := decodeBytewise(opts, input)
-		var g got
-		d, _ := NewTextDecoder(opts, g.emit)
-		for p := input; len(p) > 0; {
-			k := min(len(p), 1+r.IntN(4096))
-			_, _ = d.Write(p[:k])
-			p = p[k:]
-		}
-		d.Flush()
-		if d.Stats() != wantStats || !sameSamples(g, want) {
-			t.Fatalf("round %d: fast lane %+v (%d samples), general path %+v (%d samples)", round, d.Stats(),
-				len(g.samples), wantStats, len(want.samples))
+		// The fast lane handing on samples one at a time, then in runs
+		// (DecoderOptions.Runs) interleaved with the general path's.
+		for _, inRuns := range []bool{false, true} {
+			var g got
+			o := opts
+			if inRuns {
+				o.Runs = func(stream string, ss []Sample) {
+					runs++
+					for _, s := range ss {
+						g.emit(stream, s)
+					}
+				}
+			}
+			d, _ := NewTextDecoder(o, g.emit)
+			for p := input; len(p) > 0; {
+				k := min(len(p), 1+r.IntN(4096))
+				_, _ = d.Write(p[:k])
+				p = p[k:]
+			}
+			d.Flush()
+			if d.Stats() != wantStats || !sameSamples(g, want) {
+				t.Fatalf("round %d, runs %v: fast lane %+v (%d samples), general path %+v (%d samples)", round, inRuns,
+					d.Stats(), len(g.samples), wantStats, len(want.samples))
+			}
 		}
 		if round == 0 && wantStats.Samples < 150 {
 			t.Fatalf("only %d samples: the input is not mostly sample lines", wantStats.Samples)
 		}
+	}
+	if runs < 1000 {
+		t.Fatalf("the fast lane handed on only %d runs", runs)
 	}
 }
 

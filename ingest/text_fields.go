@@ -21,19 +21,34 @@ func (d *TextDecoder) fastLines(p []byte) int {
 	for {
 		s, n, ok := fastLine(p[done:], cols)
 		if !ok {
-			return done
+			break
 		}
+		// The fast lane's numbers are below 1e7 and no unit's factor
+		// takes them near overflow, so only a time made from a tiny
+		// declared rate can be infinite; the general path counts it.
 		if !d.layout.hasTime {
-			s.TimeS = float64(st.n) / d.rateHz
-		}
-		if math.IsInf(s.TimeS, 0) || math.IsInf(s.PressureCmH2O, 0) || math.IsInf(s.FlowLPS, 0) || math.IsInf(s.VolumeL, 0) {
-			return done // the general path counts it as bad
+			if s.TimeS = float64(st.n) / d.rateHz; math.IsInf(s.TimeS, 0) {
+				break
+			}
 		}
 		done += n
 		st.n++
 		d.stats.Samples++
-		d.emit(st.id, s)
+		if d.runs == nil {
+			d.emit(st.id, s)
+			continue
+		}
+		if d.run = append(d.run, s); len(d.run) == fastRun {
+			d.runs(st.id, d.run)
+			d.run = d.run[:0]
+		}
 	}
+	// The run goes on before any line of the general path.
+	if len(d.run) > 0 {
+		d.runs(st.id, d.run)
+		d.run = d.run[:0]
+	}
+	return done
 }
 
 // fastLine reads one line of the fast lane at the start of b and returns

@@ -117,12 +117,11 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 // check weighs, once it has seen that many.
 const driftWindow = 512
 
-// steady is admit's common case, small enough to be inlined into the
-// caller: an ordinary interval (more than a quarter and at most one and a
-// half periods) once the drift check's mean is running and stays well
-// within tolerance. It makes the same changes to t as admit and returns the
-// delivered time; for any other sample it changes nothing and reports
-// false, and admit takes the sample.
+// steady is admit's common case: an ordinary interval (more than a
+// quarter and at most one and a half periods) once the drift check's mean
+// is running and stays well within tolerance. It makes the same changes to
+// t as admit and returns the delivered time; for any other sample it
+// changes nothing and reports false, and admit takes the sample.
 func (t *timeline) steady(tS float64) (float64, bool) {
 	out := tS + t.offsetS
 	d, p := out-t.lastS, t.periodS
@@ -184,6 +183,47 @@ func NewTimelines(rateHz float64) *Timelines {
 // delivered time, a StatusGap event to hand on before it (nil when there
 // was no gap), and false when the sample is dropped.
 func (t *Timelines) Admit(stream string, smp Sample) (Sample, *Event, bool) {
+	return t.of(stream).check(stream, smp)
+}
+
+// AdmitRun checks a run of samples of stream in order, as Admit checks
+// one, in a single call. It moves the samples it keeps, with their
+// delivered times, to the front of ss and returns them, and the number it
+// dropped. Before a sample that follows a gap it calls gap with the samples
+// kept before that one, which the caller hands on first, and the gap's
+// event; those kept after it start again at the front of ss, so gap must
+// not keep its slice.
+func (t *Timelines) AdmitRun(stream string, ss []Sample, gap func(before []Sample, ev *Event)) (kept []Sample, dropped int) {
+	tl := t.of(stream)
+	k := 0
+	for i := range ss {
+		if out, ok := tl.steady(ss[i].TimeS); ok {
+			// The common case writes the time alone, and moves the sample
+			// only once one was dropped or a gap handed on.
+			if k != i {
+				ss[k] = ss[i] // k < i: a sample already read
+			}
+			ss[k].TimeS = out
+			k++
+			continue
+		}
+		smp, ev, keep := tl.check(stream, ss[i])
+		if !keep {
+			dropped++
+			continue
+		}
+		if ev != nil {
+			gap(ss[:k], ev)
+			k = 0
+		}
+		ss[k] = smp
+		k++
+	}
+	return ss[:k], dropped
+}
+
+// of returns the timeline of stream, made with its first sample.
+func (t *Timelines) of(stream string) *timeline {
 	tl := t.lastTL
 	if tl == nil || stream != t.lastStream {
 		if tl = t.tls[stream]; tl == nil {
@@ -192,6 +232,11 @@ func (t *Timelines) Admit(stream string, smp Sample) (Sample, *Event, bool) {
 		}
 		t.lastStream, t.lastTL = stream, tl
 	}
+	return tl
+}
+
+// check is Admit on stream's timeline.
+func (tl *timeline) check(stream string, smp Sample) (Sample, *Event, bool) {
 	if out, ok := tl.steady(smp.TimeS); ok {
 		smp.TimeS = out
 		return smp, nil, true

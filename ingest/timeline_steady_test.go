@@ -1,8 +1,10 @@
 package ingest
 
 import (
+	"math"
 	"math/rand/v2"
 	"reflect"
+	"slices"
 	"testing"
 )
 
@@ -46,4 +48,78 @@ func TestTimelineSteadyAgainstAdmit(t *testing.T) {
 			t.Fatalf("round %d: the steady case came up %d times", round, steadyTaken)
 		}
 	}
+}
+
+// TestAdmitRunMatchesAdmit checks that Timelines.AdmitRun, given runs of
+// samples, keeps, drops and times them exactly as Admit one at a time, and
+// hands each gap on between the samples before it and the one after it.
+func TestAdmitRunMatchesAdmit(t *testing.T) {
+	r := rand.New(rand.NewPCG(7, 3))
+	var in []Sample
+	tS := 0.0
+	for i := range 30000 {
+		switch k := r.IntN(400); {
+		case k == 0:
+			tS += 0.5 // a gap
+		case k == 1:
+			tS -= 0.002 // out of order
+		case k == 2:
+			tS -= 5 // a clock reset
+		case k == 3:
+			tS -= 0.005 // a duplicate
+		}
+		tS += 0.005 * (1 + (r.Float64()-0.5)*0.1)
+		in = append(in, Sample{TimeS: tS, PressureCmH2O: float64(i)})
+	}
+	// One at a time: the delivered samples, a gap marked by a sample with
+	// a NaN pressure before the sample it precedes.
+	var want []Sample
+	one := NewTimelines(0)
+	for _, s := range in {
+		got, gap, ok := one.Admit("s", s)
+		if gap != nil {
+			want = append(want, Sample{TimeS: gap.GapS, PressureCmH2O: math.NaN()})
+		}
+		if ok {
+			want = append(want, got)
+		}
+	}
+	gaps := 0
+	for _, s := range want {
+		gaps += b2i(math.IsNaN(s.PressureCmH2O))
+	}
+	if gaps < 50 || len(want) < 25000 {
+		t.Fatalf("%d gaps, %d samples delivered: not a test of the runs", gaps, len(want))
+	}
+	for _, run := range []int{1, 3, 256, len(in)} {
+		tls := NewTimelines(0)
+		var got []Sample
+		dropped := 0
+		onGap := func(before []Sample, ev *Event) {
+			got = append(got, before...)
+			got = append(got, Sample{TimeS: ev.GapS, PressureCmH2O: math.NaN()})
+		}
+		for i := 0; i < len(in); i += run {
+			ss := slices.Clone(in[i:min(i+run, len(in))])
+			kept, d := tls.AdmitRun("s", ss, onGap)
+			got, dropped = append(got, kept...), dropped+d
+		}
+		if len(got) != len(want) || dropped != len(in)-(len(want)-gaps) {
+			t.Fatalf("runs of %d: %d delivered (gaps included) and %d dropped, one at a time %d and %d",
+				run, len(got), dropped, len(want), len(in)-(len(want)-gaps))
+		}
+		for i := range got {
+			if math.Float64bits(got[i].TimeS) != math.Float64bits(want[i].TimeS) ||
+				math.Float64bits(got[i].PressureCmH2O) != math.Float64bits(want[i].PressureCmH2O) {
+				t.Fatalf("runs of %d: item %d is %+v, one at a time %+v", run, i, got[i], want[i])
+			}
+		}
+	}
+}
+
+func b2i(c bool) int {
+	if c {
+		return 1
+	}
+	return 0
 }

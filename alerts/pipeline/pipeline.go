@@ -209,11 +209,6 @@ func (p *Pipeline) takeOut() Output {
 
 // PushOne is Push for a single sample, without a slice from the caller.
 func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
-	if p.offline() {
-		p.sink = sink
-		p.pushOffline(s, sink)
-		return
-	}
 	p.one[0] = s
 	p.Push(p.one[:], sink)
 }
@@ -223,9 +218,7 @@ func (p *Pipeline) PushOne(s ingest.Sample, sink Sink) {
 func (p *Pipeline) Push(ss []ingest.Sample, sink Sink) {
 	p.sink = sink
 	if p.offline() {
-		for i := range ss {
-			p.pushOffline(ss[i], sink)
-		}
+		p.pushOffline(ss, sink)
 		return
 	}
 	// The technical checks take the samples in runs, one call for the
@@ -260,22 +253,34 @@ func (p *Pipeline) judgeRun(run []ingest.Sample, wall time.Time) {
 	}
 }
 
-// pushOffline is Push of one sample for an offline pipeline: the ticks due
-// first, on the stream's time axis, and the wall time of a sample made only
-// when something needs it (see streamNow).
-func (p *Pipeline) pushOffline(s ingest.Sample, sink Sink) {
-	if math.IsNaN(s.TimeS) || math.IsInf(s.TimeS, 0) {
-		return // no place on the time axis; the analyzer skips it too
+// pushOffline is Push for an offline pipeline: the ticks due before each
+// sample, on the stream's time axis, and wall times made only when
+// something needs them (see streamNow). The technical checks take the
+// samples in runs between breaths and ticks, one call a run, each finding
+// at its own sample's time (Judge.SamplesRun): the same events, at the
+// same times and in the same order, as one sample at a time.
+func (p *Pipeline) pushOffline(ss []ingest.Sample, sink Sink) {
+	start := 0
+	for i := range ss {
+		t := ss[i].TimeS
+		if t-t != 0 { // NaN or ±Inf: no place on the time axis; the analyzer skips it too
+			p.judge.SamplesRun(ss[start:i], p.wallOf, p.alertFn)
+			start = i + 1
+			continue
+		}
+		if p.clock.Due(t) {
+			p.judge.SamplesRun(ss[start:i], p.wallOf, p.alertFn)
+			start = i
+			p.clock.Until(t, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
+		}
+		p.haveSample, p.lastS = true, t
+		if b := p.an.Next(ss[i]); b != nil {
+			p.judge.SamplesRun(ss[start:i+1], p.wallOf, p.alertFn)
+			start = i + 1
+			p.breathOut(b, p.clock.Wall(t), sink)
+		}
 	}
-	if p.clock.Due(s.TimeS) {
-		p.clock.Until(s.TimeS, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
-	}
-	p.one[0] = s
-	p.judge.SamplesAt(p.one[:], s.TimeS, p.wallOf, p.alertFn)
-	p.haveSample, p.lastS = true, s.TimeS
-	if b := p.an.Next(s); b != nil {
-		p.breathOut(b, p.clock.Wall(s.TimeS), sink)
-	}
+	p.judge.SamplesRun(ss[start:], p.wallOf, p.alertFn)
 }
 
 // breathOut stamps a completed breath with the stream and provenance,

@@ -78,8 +78,9 @@ func (a *app) analyzeCommand() *cobra.Command {
 }
 
 // offline analyses a recording: one pipeline (analyzer, detectors, alarm
-// lifecycle) per stream, fed one sample at a time so that breath records
-// and alert events come out in the order they happen.
+// lifecycle) per stream, fed the samples in input order, in runs of one
+// stream, so that breath records and alert events come out in the order
+// they happen.
 type offline struct {
 	cfg       analyze.Config
 	dcfg      analyze.DetectorConfig
@@ -87,10 +88,15 @@ type offline struct {
 	start     time.Time
 	alerts    bool
 	pipelines map[string]*pipeline.Pipeline
-	// The stream of the previous sample and its pipeline, so that a run
-	// of samples of one stream does not look the map up for each.
-	lastStream string
-	lastPl     *pipeline.Pipeline
+	// pend holds a run of samples of pendStream not yet analysed: the
+	// timing checks and the pipeline take a run in one call, and the
+	// stream's pipeline is looked up once a run (pendPl, the pipeline of
+	// the run being analysed). Ordinary text lines come in runs already
+	// (run); pend gathers the others (sample).
+	pend       []ingest.Sample
+	pendStream string
+	pendPl     *pipeline.Pipeline
+	onGap      func(before []ingest.Sample, ev *ingest.Event)
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
 	timing     *ingest.Timelines
@@ -109,33 +115,61 @@ type offline struct {
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
 		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
-		out: bufio.NewWriterSize(out, 64<<10), summary: summary}
+		pend: make([]ingest.Sample, 0, offlineRun),
+		out:  bufio.NewWriterSize(out, 64<<10), summary: summary}
+	o.onGap = o.gap
 	return o
 }
 
-// sample feeds one decoded sample to its stream's pipeline.
+// sample takes one decoded sample into the pending run.
 func (o *offline) sample(stream string, s ingest.Sample) {
-	o.samples++
-	pl := o.lastPl
-	if pl == nil || stream != o.lastStream {
-		if pl = o.pipelines[stream]; pl == nil {
-			pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-			o.pipelines[stream] = pl
-		}
-		o.lastStream, o.lastPl = stream, pl
+	if len(o.pend) == offlineRun || stream != o.pendStream {
+		o.flush()
+		o.pendStream = stream
 	}
+	o.pend = append(o.pend, s)
+}
+
+// run takes a run of decoded samples of one stream: it goes to the
+// pipeline as it is, after any pending samples.
+func (o *offline) run(stream string, ss []ingest.Sample) {
+	o.flush()
+	o.analyse(stream, ss)
+}
+
+// offlineRun is the longest run of samples analysed at once.
+const offlineRun = 256
+
+// flush passes the pending run to analyse.
+func (o *offline) flush() {
+	if len(o.pend) > 0 {
+		o.analyse(o.pendStream, o.pend)
+		o.pend = o.pend[:0]
+	}
+}
+
+// analyse passes a run of samples of stream, which it may change, through
+// the timing checks to the stream's pipeline.
+func (o *offline) analyse(stream string, ss []ingest.Sample) {
+	o.samples += uint64(len(ss))
+	pl := o.pipelines[stream]
+	if pl == nil {
+		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
+		o.pipelines[stream] = pl
+	}
+	o.pendPl = pl
 	if o.timing != nil {
-		var gap *ingest.Event
-		var ok bool
-		if s, gap, ok = o.timing.Admit(stream, s); !ok {
-			o.outOfOrder++
-			return
-		}
-		if gap != nil {
-			pl.Status(*gap, time.Time{})
-		}
+		var dropped int
+		ss, dropped = o.timing.AdmitRun(stream, ss, o.onGap)
+		o.outOfOrder += uint64(dropped)
 	}
-	pl.PushOne(s, o)
+	pl.Push(ss, o)
+}
+
+// gap hands on the samples before a gap, then the gap.
+func (o *offline) gap(before []ingest.Sample, ev *ingest.Event) {
+	o.pendPl.Push(before, o)
+	o.pendPl.Status(*ev, time.Time{})
 }
 
 // Alert writes one alert event as a line of NDJSON.
@@ -181,7 +215,8 @@ func (a *app) readAll(ctx context.Context, path string, f analyzeFlags, o *offli
 	}
 	o.timing = ingest.NewTimelines(f.in.sampleRate)
 	defer in.Close()
-	st, err := in.Run(ctx, o.sample)
+	st, err := in.RunBatched(ctx, o.sample, o.run)
+	o.flush()
 	if err != nil {
 		return st, noSamplesHint(err, st, in.Size(), f.in)
 	}

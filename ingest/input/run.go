@@ -14,6 +14,13 @@ import (
 // cancelled. An input that yields no sample is an error that says what was
 // expected.
 func (in *Input) Run(ctx context.Context, emit ingest.EmitFunc) (Stats, error) {
+	return in.RunBatched(ctx, emit, nil)
+}
+
+// RunBatched is Run with the samples of ordinary text lines handed to runs
+// in runs of one stream (ingest.DecoderOptions.Runs), the others to emit,
+// in input order. runs may be nil.
+func (in *Input) RunBatched(ctx context.Context, emit ingest.EmitFunc, runs ingest.RunFunc) (Stats, error) {
 	st := Stats{Kind: in.kind}
 	var done int64
 	progress := func(n int64) {
@@ -33,7 +40,9 @@ func (in *Input) Run(ctx context.Context, emit ingest.EmitFunc) (Stats, error) {
 		}
 		return st, nil
 	}
-	d, err := ingest.NewDecoder(ingest.Format(in.kind), in.opts.Decoder, emit)
+	dopts := in.opts.Decoder
+	dopts.Runs = runs
+	d, err := ingest.NewDecoder(ingest.Format(in.kind), dopts, emit)
 	if err != nil {
 		return st, err
 	}
