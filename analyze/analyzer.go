@@ -145,6 +145,7 @@ type Analyzer struct {
 	meanP       float64 // mean airway pressure of the breath the correction was last set on
 	bal         balance
 	prevTrapML  float64
+	prevPEEP    float64 // end-expiratory pressure of the breath before, for the balance
 	settings    settingsTracker
 
 	ring ring
@@ -182,7 +183,7 @@ func (a *Analyzer) Reset() {
 	a.ring.reset()
 	a.resetBreath()
 	a.settings.reset()
-	a.prevTrapML = math.NaN()
+	a.prevTrapML, a.prevPEEP = math.NaN(), math.NaN()
 }
 
 func (a *Analyzer) resetBreath() {
