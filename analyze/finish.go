@@ -84,7 +84,7 @@ func (a *Analyzer) finish() Breath {
 	b.Mode = a.inferMode(b.PEEPCmH2O)
 	m := a.mechanicsOf(&b, &flags, endT)
 	a.trapping(&b, &flags, &m, eef, eefSE, endT)
-	a.settings.observe(&b, &flags, a.pauseLen, a.cur.maxF)
+	a.settings.observe(&b, &flags, a.pauseLen, a.cur.maxF, a.inspCorrection())
 	b.Flags = flags
 	a.updateBalance(&b)
 	return b
