@@ -23,14 +23,7 @@ func TestTimelineSteadyAgainstAdmit(t *testing.T) {
 			if i%4000 == 3999 {
 				period *= 1 + (r.Float64()-0.5)*0.06 // now and then a drift
 			}
-			switch k := r.IntN(500); {
-			case k == 0:
-				tS += 0.5 // a gap
-			case k == 1:
-				tS -= 0.002 // out of order
-			case k == 2:
-				tS -= 5 // a clock reset
-			}
+			tS = timingFault(r, tS, 500, false)
 			tS += period * (1 + (r.Float64()-0.5)*0.1)
 			want, v, _, _ := ref.admit(tS)
 			if tl := tls.lastTL; tl != nil && tl.nMean >= driftWindow-1 {
@@ -58,16 +51,7 @@ func TestAdmitRunMatchesAdmit(t *testing.T) {
 	var in []Sample
 	tS := 0.0
 	for i := range 30000 {
-		switch k := r.IntN(400); {
-		case k == 0:
-			tS += 0.5 // a gap
-		case k == 1:
-			tS -= 0.002 // out of order
-		case k == 2:
-			tS -= 5 // a clock reset
-		case k == 3:
-			tS -= 0.005 // a duplicate
-		}
+		tS = timingFault(r, tS, 400, true)
 		tS += 0.005 * (1 + (r.Float64()-0.5)*0.1)
 		in = append(in, Sample{TimeS: tS, PressureCmH2O: float64(i)})
 	}
@@ -122,4 +106,23 @@ func b2i(c bool) int {
 		return 1
 	}
 	return 0
+}
+
+// timingFault moves the time tS of the previous sample now and then, as a
+// faulty device does, before the next interval is added: one draw in n
+// adds a gap of 0.5 s, one steps back 2 ms (the next sample comes out of
+// order), one 5 s (a clock reset), and with dup one a whole 5 ms period
+// (a duplicate, at a 200 Hz rate).
+func timingFault(r *rand.Rand, tS float64, n int, dup bool) float64 {
+	switch k := r.IntN(n); {
+	case k == 0:
+		return tS + 0.5
+	case k == 1:
+		return tS - 0.002
+	case k == 2:
+		return tS - 5
+	case k == 3 && dup:
+		return tS - 0.005
+	}
+	return tS
 }
