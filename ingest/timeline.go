@@ -37,21 +37,27 @@ const (
 // device's (or the counter's over the declared rate), never the arrival
 // time.
 type timeline struct {
-	periodS  float64 // expected sample period; 0 until known
-	declared bool    // periodS comes from a declared rate
-	lastS    float64 // last delivered time, in delivered time
-	have     bool
-	offsetS  float64   // added to device time after clock resets
-	first    []float64 // first intervals, to estimate the period
-	meanS    float64   // running mean of ordinary intervals, for drift
-	nMean    int
-	drifting bool
+	periodS float64 // expected sample period; 0 until known
+	// steady's bounds, set with the period (setPeriod): an ordinary
+	// interval is in (lowS, highS], and the drift mean within tolS of it.
+	// lowS is +Inf, so that no interval is steady, until the drift mean
+	// runs (admit).
+	lowS, highS, tolS float64
+	declared          bool    // periodS comes from a declared rate
+	lastS             float64 // last delivered time, in delivered time
+	have              bool
+	offsetS           float64   // added to device time after clock resets
+	first             []float64 // first intervals, to estimate the period
+	meanS             float64   // running mean of ordinary intervals, for drift
+	nMean             int
+	drifting          bool
 }
 
 func newTimeline(rateHz float64) *timeline {
 	t := &timeline{}
 	if rateHz > 0 {
-		t.periodS, t.declared = 1/rateHz, true
+		t.setPeriod(1 / rateHz)
+		t.declared = true
 	}
 	return t
 }
@@ -92,7 +98,7 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 		if len(t.first) == 9 {
 			s := slices.Clone(t.first)
 			slices.Sort(s)
-			t.periodS = s[4]
+			t.setPeriod(s[4])
 			t.first = nil
 		}
 		return out, keep, 0, false
@@ -101,7 +107,9 @@ func (t *timeline) admit(tS float64) (out float64, v verdict, gapS float64, drif
 		return out, keepAfterGap, d - p, false
 	}
 	// Rate drift: compare the mean of ordinary intervals with the period.
-	t.nMean++
+	if t.nMean++; t.nMean == driftWindow-1 {
+		t.lowS = t.periodS / 4 // the drift mean runs: steady may take over
+	}
 	if t.nMean >= driftWindow {
 		// driftWindow is a power of two: multiplying by its reciprocal
 		// gives the same float64 as dividing, without a division per
@@ -121,19 +129,27 @@ const driftWindow = 512
 // quarter and at most one and a half periods) once the drift check's mean
 // is running and stays well within tolerance. It makes the same changes to
 // t as admit and returns the delivered time; for any other sample it
-// changes nothing and reports false, and admit takes the sample.
+// changes nothing and reports false, and admit takes the sample. Its
+// bounds are worked out with the period (setPeriod) and its test has no
+// call, so that it is small enough to be inlined into AdmitRun's loop.
 func (t *timeline) steady(tS float64) (float64, bool) {
 	out := tS + t.offsetS
-	d, p := out-t.lastS, t.periodS
+	d := out - t.lastS
 	mean := t.meanS + (d-t.meanS)*(1.0/driftWindow)
-	// A running mean implies a first sample and a period (p > 0, which
-	// p/4 < d ≤ 1.5·p also implies).
-	if t.nMean < driftWindow-1 || !(d > p/4 && d <= 1.5*p) || !(math.Abs(mean-p) <= 0.8*(DriftTolerance/2)*p) {
+	// A finite lowS implies a running mean, a first sample and a period.
+	if !(d > t.lowS && d <= t.highS && mean-t.periodS <= t.tolS && t.periodS-mean <= t.tolS) {
 		return 0, false
 	}
 	t.lastS, t.meanS, t.drifting = out, mean, false
 	t.nMean++
 	return out, true
+}
+
+// setPeriod sets the expected sample period and steady's bounds from it,
+// the same expressions admit and driftVerdict use, so the same float64
+// values.
+func (t *timeline) setPeriod(p float64) {
+	t.periodS, t.lowS, t.highS, t.tolS = p, math.Inf(1), 1.5*p, 0.8*(DriftTolerance/2)*p
 }
 
 // driftVerdict updates the drift episode from the running mean interval and
