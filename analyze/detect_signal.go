@@ -107,7 +107,8 @@ func (s *Signal) Samples(samples []ingest.Sample, nowS float64, dst []Finding) [
 	c, lim, w := &s.cfg, &s.lim, &s.win
 	for _, x := range samples {
 		p, f := x.PressureCmH2O, x.FlowLPS
-		if math.IsNaN(p) || math.IsNaN(f) || math.IsInf(p, 0) || math.IsInf(f, 0) {
+		// x−x is 0 for a finite x and NaN for NaN and ±Inf.
+		if p-p != 0 || f-f != 0 {
 			continue
 		}
 		if math.IsNaN(w.startS) || x.TimeS < w.startS {
