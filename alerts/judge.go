@@ -1,6 +1,7 @@
 package alerts
 
 import (
+	"math"
 	"time"
 
 	"trapline/analyze"
@@ -145,6 +146,15 @@ func (c *OfflineClock) Wall(tS float64) time.Time {
 // ticks.
 func (c *OfflineClock) Due(tS float64) bool {
 	return !c.started || tS < c.nextS-OfflineTickS || c.nextS <= tS
+}
+
+// Window returns the stream times [fromS, toS) at which no tick is due
+// (Due is false); before the first call of Until, none (NaN bounds).
+func (c *OfflineClock) Window() (fromS, toS float64) {
+	if !c.started {
+		return math.NaN(), math.NaN()
+	}
+	return c.nextS - OfflineTickS, c.nextS
 }
 
 // Until calls tick for every tick due up to stream time tS, in order. A

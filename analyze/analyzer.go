@@ -224,6 +224,23 @@ func (a *Analyzer) Next(s ingest.Sample) *Breath {
 	return nil
 }
 
+// NextIn is Next over the samples at the start of ss whose times lie in
+// [fromS, toS): it feeds them in order until one completes a breath or
+// the next one's time is outside the interval (a NaN time included), and
+// returns how many it fed and the breath, or nil. A caller that must act
+// at given times (an offline pipeline's ticks) feeds a run in one call.
+func (a *Analyzer) NextIn(ss []ingest.Sample, fromS, toS float64) (int, *Breath) {
+	for i := range ss {
+		if t := ss[i].TimeS; !(t >= fromS && t < toS) {
+			return i, nil
+		}
+		if a.push(ss[i]) {
+			return i + 1, &a.last
+		}
+	}
+	return len(ss), nil
+}
+
 // push is Push without the copy of the record (a Breath is a few hundred
 // bytes; copying one per sample would dominate the cost of analysis). It
 // reports whether a.last holds a newly completed breath.

@@ -261,11 +261,12 @@ func (p *Pipeline) judgeRun(run []ingest.Sample, wall time.Time) {
 // same times and in the same order, as one sample at a time.
 func (p *Pipeline) pushOffline(ss []ingest.Sample, sink Sink) {
 	start := 0
-	for i := range ss {
+	for i := 0; i < len(ss); {
 		t := ss[i].TimeS
 		if t-t != 0 { // NaN or ±Inf: no place on the time axis; the analyzer skips it too
 			p.judge.SamplesRun(ss[start:i], p.wallOf, p.alertFn)
-			start = i + 1
+			i++
+			start = i
 			continue
 		}
 		if p.clock.Due(t) {
@@ -273,11 +274,21 @@ func (p *Pipeline) pushOffline(ss []ingest.Sample, sink Sink) {
 			start = i
 			p.clock.Until(t, func(tickS float64) { p.TickTo(p.clock.Wall(tickS), sink) })
 		}
-		p.haveSample, p.lastS = true, t
-		if b := p.an.Next(ss[i]); b != nil {
-			p.judge.SamplesRun(ss[start:i+1], p.wallOf, p.alertFn)
-			start = i + 1
-			p.breathOut(b, p.clock.Wall(t), sink)
+		// The analyzer takes the samples up to the next tick, a time
+		// that is not finite or a breath, in one call. ss[i] goes to it
+		// in any case, as with one sample at a time: the clock's window
+		// can leave out by rounding the time it was just started at.
+		fromS, toS := p.clock.Window()
+		n, b := p.an.NextIn(ss[i:], fromS, toS)
+		if n == 0 {
+			n, b = 1, p.an.Next(ss[i])
+		}
+		i += n
+		p.haveSample, p.lastS = true, ss[i-1].TimeS
+		if b != nil {
+			p.judge.SamplesRun(ss[start:i], p.wallOf, p.alertFn)
+			start = i
+			p.breathOut(b, p.clock.Wall(p.lastS), sink)
 		}
 	}
 	p.judge.SamplesRun(ss[start:], p.wallOf, p.alertFn)
