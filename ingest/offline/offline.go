@@ -1,9 +1,7 @@
 // Package offline reads a whole recording (a file, stdin) and hands its
 // samples to per-stream handlers, on one core or several. `trapline
-// analyze` reads through ingest/input on one goroutine instead, which also
-// reads recording directories and costs less CPU per sample (the hand-over
-// between goroutines costs about 15 %, docs/operations.md); the offline
-// benchmarks measure both ways.
+// analyze --workers 1` reads through it (ingest/input's RunPipelined, one
+// worker, in input order); by default the verb reads on one goroutine.
 //
 // With Workers 0 the calling goroutine decodes and runs the handlers. With
 // Workers ≥ 1 it only decodes, and that many goroutines run the handlers:
