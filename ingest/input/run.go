@@ -44,9 +44,9 @@ func (in *Input) RunBatched(ctx context.Context, emit ingest.EmitFunc, runs inge
 // goroutines: the calling one reads and decodes, a second one calls runs,
 // one run of one stream at a time, in input order (ingest/offline with
 // one worker, InOrder). Decoding and analysis then overlap, which takes
-// less wall time when a second core is free and about 15 % more CPU
-// (docs/operations.md). A recording directory is read on one goroutine,
-// its samples handed to runs one at a time.
+// less wall time when a second core is free, for about the same CPU or a
+// little more (docs/operations.md). A recording directory is read on one
+// goroutine, its samples handed to runs one at a time.
 func (in *Input) RunPipelined(ctx context.Context, runs ingest.RunFunc) (Stats, error) {
 	if in.rec != nil {
 		var one [1]ingest.Sample
