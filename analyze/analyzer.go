@@ -144,7 +144,7 @@ type Analyzer struct {
 	offB, leakK float64
 	meanP       float64 // mean airway pressure of the breath the correction was last set on
 	bal         balance
-	prevTrapML  float64
+	prevTrapML  float64 // smoothed trapped-volume estimate up to the breath before, for the balance
 	prevPEEP    float64 // end-expiratory pressure of the breath before, for the balance
 	settings    settingsTracker
 
