@@ -52,6 +52,21 @@ func checkDecoder(t *testing.T, format Format, opts DecoderOptions, input []byte
 		if ref, st := decodeBytewise(opts, input); st != dw.Stats() || !sameSamples(ref, whole) {
 			t.Fatalf("whole %+v, byte by byte %+v", dw.Stats(), st)
 		}
+		// So does the fast lane handing its samples on in runs.
+		var inRuns got
+		ro := opts
+		ro.Runs = func(stream string, ss []Sample) {
+			for _, s := range ss {
+				inRuns.emit(stream, s)
+			}
+		}
+		dr, _ := NewDecoder(format, ro, inRuns.emit)
+		_, _ = dr.Write(input[:cut])
+		_, _ = dr.Write(input[cut:])
+		dr.Flush()
+		if dr.Stats() != dw.Stats() || !sameSamples(inRuns, whole) {
+			t.Fatalf("whole %+v, in runs %+v", dw.Stats(), dr.Stats())
+		}
 	}
 	st := dw.Stats()
 	if st.Samples != uint64(len(whole.samples)) {
