@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/creack/pty"
+	"golang.org/x/term"
 )
 
 // newPTY opens a pseudo-terminal pair and points link at its slave, the way
@@ -15,6 +16,14 @@ func newPTY(t *testing.T, link string) (master, tty *os.File) {
 	t.Helper()
 	master, tty, err := pty.Open()
 	if err != nil {
+		t.Fatal(err)
+	}
+	// Raw before the name appears, as a serial adapter has no line
+	// discipline (and as trapline's simulator makes its own): a source
+	// that opens the port the moment it appears could otherwise see the
+	// first bytes through the terminal's cooked mode, which takes
+	// control bytes of the binary framing for signals and end of file.
+	if _, err := term.MakeRaw(int(tty.Fd())); err != nil {
 		t.Fatal(err)
 	}
 	tmp := link + ".new"
