@@ -93,12 +93,12 @@ type offline struct {
 	pipelines map[string]*pipeline.Pipeline
 	// pend holds a run of samples of pendStream not yet analysed: the
 	// timing checks and the pipeline take a run in one call, and the
-	// stream's pipeline is looked up once a run (pendPl, the pipeline of
+	// stream's pipeline is looked up once a run (runPl, the pipeline of
 	// the run being analysed). Ordinary text lines come in runs already
 	// (run); pend gathers the others (sample).
 	pend       []ingest.Sample
 	pendStream string
-	pendPl     *pipeline.Pipeline
+	runPl      *pipeline.Pipeline
 	onGap      func(before []ingest.Sample, ev *ingest.Event)
 	// timing applies the live sources' timing checks (ingest.Timelines),
 	// so that re-analysis sees the samples the daemon saw.
@@ -160,7 +160,7 @@ func (o *offline) analyse(stream string, ss []ingest.Sample) {
 		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
 		o.pipelines[stream] = pl
 	}
-	o.pendPl = pl
+	o.runPl = pl
 	if o.timing != nil {
 		var dropped int
 		ss, dropped = o.timing.AdmitRun(stream, ss, o.onGap)
@@ -171,8 +171,8 @@ func (o *offline) analyse(stream string, ss []ingest.Sample) {
 
 // gap hands on the samples before a gap, then the gap.
 func (o *offline) gap(before []ingest.Sample, ev *ingest.Event) {
-	o.pendPl.Push(before, o)
-	o.pendPl.Status(*ev, time.Time{})
+	o.runPl.Push(before, o)
+	o.runPl.Status(*ev, time.Time{})
 }
 
 // Alert writes one alert event as a line of NDJSON.
