@@ -10,6 +10,8 @@ import (
 	"strings"
 	"sync"
 	"time"
+
+	"trapline/ingest/backoff"
 )
 
 // Output is where Stream writes the encoded samples. Open is called once
@@ -180,12 +182,38 @@ type tcpOutput struct {
 	lastDial time.Time
 }
 
-// dialTimeout bounds one connection attempt.
-const dialTimeout = 2 * time.Second
+// dialTimeout bounds one connection attempt; openWait bounds how long Open
+// waits for a reader that is not listening yet.
+const (
+	dialTimeout = 2 * time.Second
+	openWait    = 30 * time.Second
+)
 
+// Open connects before the first sample. A reader started at the same time
+// (a daemon and a simulator launched together by one script) may not be
+// listening yet: a refused connection is retried, 100 ms doubling to 1 s,
+// for up to openWait, so that a run at full speed loses nothing to the race.
 func (o *tcpOutput) Open(ctx context.Context, header []byte) error {
 	o.header = header
-	return o.dial(ctx)
+	parent := ctx
+	ctx, cancel := context.WithTimeout(ctx, openWait)
+	defer cancel()
+	wait := backoff.Backoff{Min: 100 * time.Millisecond, Max: time.Second}
+	for said := false; ; said = true {
+		err := o.dial(ctx)
+		if err == nil || errors.Is(err, net.ErrClosed) {
+			return err
+		}
+		if !said {
+			o.status(fmt.Sprintf("waiting for a reader on %s: %v", o.addr, err))
+		}
+		if !wait.Wait(ctx) {
+			if parent.Err() != nil {
+				return err
+			}
+			return fmt.Errorf("%w (gave up after %v)", err, openWait)
+		}
+	}
 }
 
 func (o *tcpOutput) dial(ctx context.Context) error {

@@ -274,6 +274,52 @@ func TestNetworkOutputs(t *testing.T) {
 		}
 		compareSamples(t, decodeAll(t, ingest.FormatText, <-data), want, 0)
 	})
+	// A reader that starts listening after the simulator (both launched by
+	// one script) still gets every sample: Open waits for it.
+	t.Run("tcp reader starts late", func(t *testing.T) {
+		ln, err := net.Listen("tcp", "127.0.0.1:0")
+		if err != nil {
+			t.Fatal(err)
+		}
+		addr := ln.Addr().String()
+		ln.Close()
+		waiting := make(chan struct{})
+		var once sync.Once
+		data := make(chan []byte, 1)
+		go func() {
+			<-waiting // the first attempt was refused
+			ln, err := net.Listen("tcp", addr)
+			if err != nil {
+				data <- nil
+				return
+			}
+			defer ln.Close()
+			c, err := ln.Accept()
+			if err != nil {
+				data <- nil
+				return
+			}
+			defer c.Close()
+			_ = c.SetReadDeadline(time.Now().Add(10 * time.Second))
+			var b bytes.Buffer
+			_, _ = b.ReadFrom(c)
+			data <- b.Bytes()
+		}()
+		err = run(t, "tcp://"+addr, func(s string) {
+			if strings.HasPrefix(s, "waiting for a reader") {
+				once.Do(func() { close(waiting) })
+			}
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		select {
+		case <-waiting:
+		default:
+			t.Fatal("the first connection was not refused; the test proves nothing")
+		}
+		compareSamples(t, decodeAll(t, ingest.FormatText, <-data), want, 0)
+	})
 	t.Run("tcp-listen", func(t *testing.T) {
 		addr := make(chan string, 1)
 		data := make(chan []byte, 1)
