@@ -53,6 +53,10 @@ const (
 	// resistance was fitted as K1 + K2·|V'| (Rohrer 1915) and intrinsic
 	// PEEP uses the resistance at the end-expiratory flow.
 	FlagRohrer = "rohrer"
+	// FlagRohrerPooled: with rohrer, K2 is the pooled estimate of the
+	// recent breaths, which this breath alone did not determine but does
+	// not contradict; K1, E and P0 are this breath's.
+	FlagRohrerPooled = "rohrer-pooled"
 	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
 	// flow offset and a pressure-proportional leak estimated over many
 	// breaths (flow_offset_lpm and leak_lpm_per_cmh2o of the record) of at
@@ -147,6 +151,7 @@ type Analyzer struct {
 	prevTrapML  float64 // smoothed trapped-volume estimate up to the breath before, for the balance
 	prevPEEP    float64 // end-expiratory pressure of the breath before, for the balance
 	settings    settingsTracker
+	k2Pool      rohrerPool // K2 of the recent breaths (see rohrerPool)
 
 	ring ring
 	last Breath // the breath completed by the latest push

@@ -136,9 +136,17 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	case implausible:
 		add(FlagFitImplausible)
 	case m.fitOK && !m.effort:
-		// Rohrer's equation when it explains the residuals.
-		if rf := fitRohrer(a.buf.pts[:a.buf.n], endT); rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
+		// Rohrer's equation when it explains the residuals, or when the
+		// recent breaths together show the flow dependence and this one
+		// does not contradict it.
+		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
+		a.k2Pool.add(&rf)
+		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
 			m.rohrer = rf
+		} else if k2, sig := a.k2Pool.k2(); sig {
+			if pf, ok := rf.withK2(k2); ok && 1000/pf.e <= c.MaxCMLPerCmH2O {
+				m.rohrer = pf
+			}
 		}
 	}
 	if rf := &m.rohrer; rf.ok {
@@ -148,6 +156,9 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 		m.r, m.e, m.p0 = rf.k1+rf.k2*mean, rf.e, rf.p0
 		b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2 = rf.k1, rf.k2
 		add(FlagRohrer)
+		if rf.pooled {
+			add(FlagRohrerPooled)
+		}
 	}
 	if m.fitOK && !m.effort {
 		b.RCmH2OSPerL = m.r

@@ -11,13 +11,22 @@ type rohrerFit struct {
 	sst           float64 // sum of squares of pressure about its mean
 	n             int
 	ok            bool
+	// k2Var is the variance of K2 (see k2Var); +Inf when unknown.
+	k2Var float64
+	// s holds the normal equations the fit solved (noise-corrected), for
+	// a refit with K2 given (withK2); maxF is the breath's largest |V'|.
+	s    [5][5]float64
+	maxF float64
+	// pooled is true when K2 came from the recent breaths (withK2).
+	pooled bool
 }
 
 // Significance of the flow dependence (our choice): the Rohrer term must
 // remove at least rohrerMinGain (at a high resistance most of the residual
 // is flow noise times R, so the share is small even when the term is real) of the linear fit's residual sum of
 // squares and pass an F test of one added parameter at rohrerMinF
-// (roughly p < 0.001 for the point counts of a breath).
+// (roughly p < 0.001 for the point counts of a breath), or with the flow
+// noise corrected for, a Wald test of K2 at the same value (see fitRohrer).
 const (
 	rohrerMinGain = 0.05
 	rohrerMinF    = 12
@@ -37,12 +46,53 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		}
 	}
 	lim := 0.15 * maxF
+	s, sg, n := rohrerSums(pts, endT, lim)
+	if n < 12 {
+		return rohrerFit{}
+	}
+	obs := s
+	v := flowNoiseVar(pts, endT, lim)
+	if v > 0 {
+		sg.correct(&s, n, v)
+	}
+	full, okFull := solveNormal(s, []int{0, 1, 2, 3})
+	lin, okLin := solveNormal(s, []int{0, 2, 3})
+	if !okFull || !okLin {
+		return rohrerFit{}
+	}
+	sse := residualSS(obs, []int{0, 1, 2, 3}, &full)
+	sseLin := residualSS(obs, []int{0, 2, 3}, &lin)
+	f := rohrerFit{k1: full[0], k2: full[1], e: full[2], p0: full[3], sse: sse, sseLin: sseLin, n: n,
+		sst: math.Max(0, obs[4][4]-obs[3][4]*obs[3][4]/obs[3][3])}
+	gain := sseLin - sse
+	// Significance of K2: the F statistic of the added column for ordinary
+	// least squares; with the noise correction, the Wald statistic with
+	// the sandwich variance of the corrected estimator (k2Var), which
+	// counts what the correction adds to the scatter.
+	f.k2Var, f.s, f.maxF = k2Var(pts, endT, lim, &s, &full, v), s, maxF
+	stat := gain / (sse / float64(n-4))
+	if v > 0 {
+		stat = f.k2 * f.k2 / f.k2Var
+	}
+	f.ok = f.k2 > 0 && f.k1 > 0 && f.e > 0 && sse > 0 &&
+		gain > rohrerMinGain*sseLin && stat > rohrerMinF
+	return f
+}
+
+// signSums are the sums the noise correction needs besides the normal
+// equations: Σ|V'|, Σsign(V'), Σsign(V')·V and Σsign(V')·P.
+type signSums struct{ abs, sign, signV, signP float64 }
+
+// rohrerSums returns the normal equations of [V', V'|V'|, V, 1] against P
+// (P in column 4) over the points before endT that are not beside a step
+// of flow larger than lim, the sums of signSums over the same points, and
+// their count.
+func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n int) {
 	// The sums are kept in locals (registers) rather than in the matrix: a
 	// Go array lives in memory, and a load and store per term and point
-	// cost more than the arithmetic. The order of the additions is the
-	// same, so the sums are the same.
+	// cost more than the arithmetic.
 	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s34, s44 float64
-	n := 0
+	var sa, sn, snv, snp float64
 	nextStep := false // whether the flow steps from point i to point i+1
 	for i := range pts {
 		q := &pts[i]
@@ -70,32 +120,194 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		s24 += v * p
 		s34 += p
 		s44 += p * p
+		g := math.Copysign(1, f)
+		sa += g * f
+		sn += g
+		snv += g * v
+		snp += g * p
 		n++
 	}
-	s33 := float64(n)   // the count, exact as a float64
-	s := [5][5]float64{ // normal equations of [f, f|f|, v, 1] against p in column 4
+	s33 := float64(n) // the count, exact as a float64
+	s = [5][5]float64{
 		{s00, s01, s02, s03, s04},
 		{s01, s11, s12, s13, s14},
 		{s02, s12, s22, s23, s24},
 		{s03, s13, s23, s33, s34},
 		{s04, s14, s24, s34, s44},
 	}
-	if n < 12 {
-		return rohrerFit{}
+	return s, signSums{sa, sn, snv, snp}, n
+}
+
+// correct takes the expected content of white flow noise of variance v out
+// of the normal equations s of n points.
+//
+// Flow noise in the regressors biases ordinary least squares (errors in
+// variables): in a passive expiration flow and volume are tied, the fit
+// shrinks the resistance there, and V'|V'| took that for a flow
+// dependence, on linear lungs too (12–55 % of the breaths at
+// R 50 with 1 L/min of white flow noise, TestFitRohrerFlowNoise). The
+// moments of the flow columns are corrected by their expected noise
+// content (adjusted least squares for polynomial regression with errors in
+// the variables: Cheng C-L, Schneeweiss H, J R Stat Soc B 1998;60:189),
+// with V'|V'| taken as sign·V'² and the sign as observed, which holds once
+// |V'| is a few noise deviations: E[x²] = f² + v, E[x³] = f³ + 3fv,
+// E[x⁴] = f⁴ + 6f²v + 3v² for x = f + noise. The residual sums of squares
+// stay those of the observed data.
+func (sg *signSums) correct(s *[5][5]float64, n int, v float64) {
+	nf := float64(n)
+	s[1][1] -= 6*v*s[0][0] - 3*nf*v*v // before s[0][0] is corrected
+	s[0][0] -= nf * v
+	s[0][1] -= 3 * v * sg.abs
+	s[1][2] -= v * sg.signV
+	s[1][3] -= v * sg.sign
+	s[1][4] -= v * sg.signP
+	s[1][0], s[2][1], s[3][1], s[4][1] = s[0][1], s[1][2], s[1][3], s[1][4]
+}
+
+// withK2 refits the breath of f with K2 given: K1·V' + E·V + P0 against
+// P − K2·V'|V'|, from the same (noise-corrected) normal equations. It
+// reports false when the fit fails or is not physical (K1 or E not
+// positive), when the breath's own K2 rejects the given one (a Wald
+// statistic of the difference at rohrerMinF), or when the flow-dependent
+// term is too small to matter (rohrerPoolMinShare).
+func (f *rohrerFit) withK2(k2 float64) (rohrerFit, bool) {
+	if !(f.k2Var > 0) || math.IsInf(f.k2Var, 0) {
+		return rohrerFit{}, false
 	}
-	full, okFull := solveNormal(s, []int{0, 1, 2, 3})
-	lin, okLin := solveNormal(s, []int{0, 2, 3})
-	if !okFull || !okLin {
-		return rohrerFit{}
+	s := &f.s
+	t := *s
+	for _, r := range []int{0, 2, 3} {
+		t[r][4] = s[r][4] - k2*s[r][1]
 	}
-	sse := residualSS(s, []int{0, 1, 2, 3}, &full)
-	sseLin := residualSS(s, []int{0, 2, 3}, &lin)
-	f := rohrerFit{k1: full[0], k2: full[1], e: full[2], p0: full[3], sse: sse, sseLin: sseLin, n: n,
-		sst: math.Max(0, s44-s34*s34/s33)}
-	gain := sseLin - sse
-	f.ok = f.k2 > 0 && f.k1 > 0 && f.e > 0 && sse > 0 &&
-		gain > rohrerMinGain*sseLin && gain/(sse/float64(n-4)) > rohrerMinF
-	return f
+	x, ok := solveNormal(t, []int{0, 2, 3})
+	if !ok {
+		return rohrerFit{}, false
+	}
+	g := *f
+	g.k1, g.k2, g.e, g.p0 = x[0], k2, x[1], x[2]
+	g.pooled = true
+	d := f.k2 - k2
+	g.ok = g.k1 > 0 && g.e > 0 && d*d/f.k2Var < rohrerMinF &&
+		k2*f.maxF >= rohrerPoolMinShare*(g.k1+k2*f.maxF)
+	return g, g.ok
+}
+
+// rohrerPool pools the K2 of recent breaths, each weighted by the inverse
+// of its variance and older breaths by rohrerPoolKeep per breath (the
+// fixed-effect, inverse-variance pooled estimate; Hedges LV, Olkin I,
+// Statistical Methods for Meta-Analysis, 1985). With 1 L/min of flow noise
+// at R 50 one breath seldom determines K2 on its own, a few breaths
+// together do; the noise-corrected K2 of each breath is unbiased, so that
+// pooling does not add up a bias.
+type rohrerPool struct {
+	w, w2, wk float64 // Σaᵢ, Σaᵢ²/wᵢ and Σaᵢkᵢ with aᵢ = keepⁱ·wᵢ
+}
+
+// Pooling constants (ours): the pool forgets a breath's weight by
+// rohrerPoolKeep per breath (about five breaths' worth); its K2 is used
+// from rohrerPoolMinZ standard errors above zero, and when the
+// flow-dependent term makes at least rohrerPoolMinShare of the resistance
+// at the breath's largest flow.
+const (
+	rohrerPoolKeep     = 0.9
+	rohrerPoolMinZ     = 3.3
+	rohrerPoolMinShare = 0.1
+)
+
+// add enters the K2 of one breath.
+func (p *rohrerPool) add(f *rohrerFit) {
+	if !(f.k2Var > 0) || math.IsInf(f.k2Var, 0) || math.IsNaN(f.k2) {
+		return
+	}
+	w := 1 / f.k2Var
+	p.w = rohrerPoolKeep*p.w + w
+	p.w2 = rohrerPoolKeep*rohrerPoolKeep*p.w2 + w
+	p.wk = rohrerPoolKeep*p.wk + w*f.k2
+}
+
+// k2 returns the pooled K2 and whether it is significantly positive; its
+// standard error is √(Σaᵢ²/wᵢ)/Σaᵢ.
+func (p *rohrerPool) k2() (float64, bool) {
+	if !(p.w > 0) || !(p.w2 > 0) {
+		return 0, false
+	}
+	k := p.wk / p.w
+	return k, k*p.w/math.Sqrt(p.w2) >= rohrerPoolMinZ
+}
+
+// k2Var is the sandwich variance of K2 from the noise-corrected normal
+// equations a (columns V', V'|V'|, V, 1; pressure in column 4) at their
+// solution beta, σ² the variance of the flow noise: A⁻¹BA⁻¹ with A the
+// corrected matrix and B the sum over the points of ψψᵀ, ψ the point's
+// term of the corrected estimating equation, x(p − xᵀβ) − d + Dβ, where D
+// and d are the point's expected noise content of xxᵀ and xp (the
+// corrected-score variance; Carroll RJ et al., Measurement Error in
+// Nonlinear Models, 2006, appendix on estimating equations). The points
+// are those the fit used. +Inf when it cannot be formed.
+func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v float64) float64 {
+	// Row K2 of A⁻¹ (A is symmetric): solve A·w = e₁.
+	t := *a
+	for r := range 4 {
+		t[r][4] = 0
+	}
+	t[1][4] = 1
+	w, ok := solveNormal(t, []int{0, 1, 2, 3})
+	if !ok {
+		return math.Inf(1)
+	}
+	b0, b1, b2, b3 := beta[0], beta[1], beta[2], beta[3]
+	var acc float64 // Σ (wᵀψ)², which is wᵀBw
+	nextStep := false
+	for i := range pts {
+		q := &pts[i]
+		if q.t >= endT {
+			break
+		}
+		prevStep := nextStep
+		nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
+		if prevStep || nextStep {
+			continue
+		}
+		f, vol, p := q.f, q.v, q.p
+		g := math.Copysign(1, f)
+		fa := f * math.Abs(f)
+		r := p - (b0*f + b1*fa + b2*vol + b3)
+		// ψ = x·r − d + D·β, D and d as in fitRohrer's correction.
+		psi0 := f*r + v*b0 + 3*v*g*f*b1
+		psi1 := fa*r - v*g*p + 3*v*g*f*b0 + (6*v*f*f-3*v*v)*b1 + v*g*vol*b2 + v*g*b3
+		psi2 := vol*r + v*g*vol*b1
+		psi3 := r + v*g*b1
+		u := w[0]*psi0 + w[1]*psi1 + w[2]*psi2 + w[3]*psi3
+		acc += u * u
+	}
+	if !(acc > 0) {
+		return math.Inf(1)
+	}
+	return acc
+}
+
+// flowNoiseVar estimates the variance of the white noise of the flow of
+// the points before endT from their second differences, leaving out those
+// that span a step of flow larger than lim: a second difference of white
+// noise has six times its variance, and the median of a squared normal
+// deviate is 0.4549 of its variance (χ² with one degree of freedom), so
+// that the smooth waveform and a few outliers do not count.
+func flowNoiseVar(pts []point, endT, lim float64) float64 {
+	var d2 [bufCap]float64
+	k := 0
+	for i := 1; i+1 < len(pts) && pts[i+1].t < endT && k < len(d2); i++ {
+		a, b, c := pts[i-1].f, pts[i].f, pts[i+1].f
+		if math.Abs(b-a) > lim || math.Abs(c-b) > lim {
+			continue
+		}
+		d := c - 2*b + a
+		d2[k] = d * d
+		k++
+	}
+	if k < 8 {
+		return 0
+	}
+	return detMedian(d2[:k]) / (6 * 0.4549)
 }
 
 // solveNormal solves the normal equations s restricted to the columns

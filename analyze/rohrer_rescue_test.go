@@ -21,6 +21,7 @@ type rohrerVC struct {
 	K1, K2, C, PEEP  float64 // cmH2O·s/L, cmH2O·s²/L², L/cmH2O, cmH2O
 	VT, Ti, Pause    float64 // L, s of flow, s
 	Rate, Fs         float64 // /min, Hz
+	Square           bool    // square inspiratory flow VT/Ti instead of the ramp
 	Breaths          int
 	samples          []ingest.Sample
 	peepiEnd, eefEnd []float64 // per breath: true intrinsic PEEP and EEF at its end
@@ -51,6 +52,9 @@ func (m *rohrerVC) generate() {
 			switch {
 			case s < m.Ti:
 				f = peak * (1 - s/m.Ti)
+				if m.Square {
+					f = m.VT / m.Ti
+				}
 				p = m.K1*f + m.K2*f*f + v/m.C
 			case s < m.Ti+m.Pause:
 				p = v / m.C
@@ -61,9 +65,13 @@ func (m *rohrerVC) generate() {
 				m.samples = append(m.samples, ingest.Sample{TimeS: t, PressureCmH2O: p, FlowLPS: f, VolumeL: ingest.NoVolume})
 			}
 			switch {
-			case s < m.Ti: // the set flow, exactly (a linear ramp)
+			case s < m.Ti: // the set flow, exactly (a linear ramp or a square)
 				s1 := math.Min(s+h, m.Ti)
-				v += peak*(s1-s) - peak/(2*m.Ti)*(s1*s1-s*s)
+				if m.Square {
+					v += m.VT / m.Ti * (s1 - s)
+				} else {
+					v += peak*(s1-s) - peak/(2*m.Ti)*(s1*s1-s*s)
+				}
 			case s >= m.Ti+m.Pause:
 				k1 := m.expFlow(v)
 				k2 := m.expFlow(v + h/2*k1)
