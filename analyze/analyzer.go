@@ -179,8 +179,10 @@ func (a *Analyzer) Stream() string { return a.stream }
 // was not finite or did not increase.
 func (a *Analyzer) Skipped() uint64 { return a.skipped }
 
-// Reset forgets the open breath and the sample history, so that no breath
-// spans a gap or a reconnection. Breath numbering continues.
+// Reset forgets the open breath, the sample history and the pooled
+// Rohrer K2, so that no breath spans a gap or a reconnection. Breath
+// numbering continues; the flow offset and leak estimates, which belong to
+// the sensor, are kept.
 func (a *Analyzer) Reset() {
 	a.ph = phaseWait
 	a.havePrev = false
@@ -189,6 +191,9 @@ func (a *Analyzer) Reset() {
 	a.resetBreath()
 	a.settings.reset()
 	a.prevTrapML, a.prevPEEP = math.NaN(), math.NaN()
+	// The pooled K2 describes the airways of the breaths before the gap;
+	// after a disconnection they may be another patient's.
+	a.k2Pool = rohrerPool{}
 }
 
 func (a *Analyzer) resetBreath() {

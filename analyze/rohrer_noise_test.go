@@ -197,3 +197,36 @@ func TestFlowNoiseVar(t *testing.T) {
 		}
 	}
 }
+
+// TestRohrerPoolForgottenOnReset: after a gap or a disconnection the
+// analyzer may see another patient, so the pooled K2 of the breaths before
+// must not carry over. A flow-dependent lung (as in
+// TestRohrerPooledNoisyFlow) is followed, after Reset, by a linear one
+// (closed form, linearVC), whose breaths must not be given the first
+// lung's K2.
+func TestRohrerPoolForgottenOnReset(t *testing.T) {
+	rng := rand.New(rand.NewPCG(41, 42))
+	m := &rohrerVC{K1: 25, K2: 31.25, C: 0.08, PEEP: 5, VT: 0.6, Ti: 0.75, Rate: 15, Fs: 50, Square: true, Breaths: 40}
+	m.generate()
+	a := NewAnalyzer("bed", DefaultConfig())
+	pooled := 0
+	for _, s := range m.samples {
+		s.FlowLPS += rng.NormFloat64() / 60
+		s.PressureCmH2O += 0.1 * rng.NormFloat64()
+		if b, ok := a.Push(s); ok && b.HasFlag(FlagRohrerPooled) {
+			pooled++
+		}
+	}
+	if pooled == 0 {
+		t.Fatal("the flow-dependent lung never used the pooled K2; the test proves nothing")
+	}
+	a.Reset()
+	lin := linearVC{R: 50, C: 0.08, Rate: 15, VT: 0.6, TFlow: 0.75, PEEP: 5, Fs: 50, NoiseP: 0.1, NoiseF: 1.0 / 60, Steady: true, Seed: 43}
+	t0 := m.samples[len(m.samples)-1].TimeS + 5
+	for _, s := range lin.samples(10) {
+		s.TimeS += t0
+		if b, ok := a.Push(s); ok && b.HasFlag(FlagRohrer) {
+			t.Errorf("breath at %.1f s of the linear lung: flags %v, K2 %.1f", b.StartS, b.Flags, b.RK2CmH2OS2PerL2)
+		}
+	}
+}
