@@ -1,6 +1,9 @@
 package analyze
 
-import "math"
+import (
+	"iter"
+	"math"
+)
 
 // rohrerFit is the equation of motion with a flow-dependent resistance,
 // P = K1·V' + K2·V'·|V'| + E·V + P0 (Rohrer F, 1915), fitted by ordinary
@@ -79,6 +82,30 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	return f
 }
 
+// fitPoints yields the index and point of each point of pts before endT
+// that is not beside a step of flow larger than lim (a point next to the
+// valves switching carries the sampling's timing error times the
+// resistance): the points of the Rohrer fit.
+func fitPoints(pts []point, endT, lim float64) iter.Seq2[int, *point] {
+	return func(yield func(int, *point) bool) {
+		nextStep := false // whether the flow steps from point i to point i+1
+		for i := range pts {
+			q := &pts[i]
+			if q.t >= endT {
+				return
+			}
+			prevStep := nextStep
+			nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
+			if prevStep || nextStep {
+				continue
+			}
+			if !yield(i, q) {
+				return
+			}
+		}
+	}
+}
+
 // signSums are the sums the noise correction needs besides the normal
 // equations: Σ|V'|, Σsign(V'), Σsign(V')·V and Σsign(V')·P, and the sum
 // and count of the squared second differences of flow (see flowNoiseVar).
@@ -99,17 +126,7 @@ func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n
 	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s34, s44 float64
 	var sa, sn, snv, snp, sd2 float64
 	nd2 := 0
-	nextStep := false // whether the flow steps from point i to point i+1
-	for i := range pts {
-		q := &pts[i]
-		if q.t >= endT {
-			break
-		}
-		prevStep := nextStep
-		nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
-		if prevStep || nextStep {
-			continue
-		}
+	for i, q := range fitPoints(pts, endT, lim) {
 		f, v, p := q.f, q.v, q.p
 		if i > 0 && i+1 < len(pts) && pts[i+1].t < endT {
 			d := pts[i+1].f - 2*f + pts[i-1].f
@@ -277,17 +294,7 @@ func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v
 	c4 := v * (w1*b2 + w2*b1)
 	c5 := v * (w1*b3 + w3*b1)
 	var acc float64 // Σ (wᵀψ)², which is wᵀBw
-	nextStep := false
-	for i := range pts {
-		q := &pts[i]
-		if q.t >= endT {
-			break
-		}
-		prevStep := nextStep
-		nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
-		if prevStep || nextStep {
-			continue
-		}
+	for _, q := range fitPoints(pts, endT, lim) {
 		f, vol, p := q.f, q.v, q.p
 		fa := f * math.Abs(f)
 		r := p - (b0*f + b1*fa + b2*vol + b3)
@@ -318,12 +325,11 @@ func flowNoiseVar(pts []point, endT, lim, mean1 float64, n int) float64 {
 	}
 	cut := 9 * mean1
 	sum, k := 0.0, 0
-	for i := 1; i+1 < len(pts) && pts[i+1].t < endT; i++ {
-		a, b, c := pts[i-1].f, pts[i].f, pts[i+1].f
-		if math.Abs(b-a) > lim || math.Abs(c-b) > lim {
+	for i, q := range fitPoints(pts, endT, lim) {
+		if i == 0 || i+1 >= len(pts) || pts[i+1].t >= endT {
 			continue
 		}
-		d := c - 2*b + a
+		d := pts[i+1].f - 2*q.f + pts[i-1].f
 		if d2 := d * d; d2 <= cut {
 			sum += d2
 			k++

@@ -228,6 +228,20 @@ func TestPTYRoundTrip(t *testing.T) {
 	}
 }
 
+// readFirstClient accepts one client of ln and returns all it sent until
+// it closed (at most 10 s); nil when none connected.
+func readFirstClient(ln net.Listener) []byte {
+	c, err := ln.Accept()
+	if err != nil {
+		return nil
+	}
+	defer c.Close()
+	_ = c.SetReadDeadline(time.Now().Add(10 * time.Second))
+	var b bytes.Buffer
+	_, _ = b.ReadFrom(c)
+	return b.Bytes()
+}
+
 // TestNetworkOutputs streams over real loopback sockets: to a TCP reader,
 // from a TCP listener, and as UDP datagrams of whole lines.
 func TestNetworkOutputs(t *testing.T) {
@@ -257,18 +271,7 @@ func TestNetworkOutputs(t *testing.T) {
 		}
 		defer ln.Close()
 		data := make(chan []byte, 1)
-		go func() {
-			c, err := ln.Accept()
-			if err != nil {
-				data <- nil
-				return
-			}
-			defer c.Close()
-			_ = c.SetReadDeadline(time.Now().Add(10 * time.Second))
-			var b bytes.Buffer
-			_, _ = b.ReadFrom(c)
-			data <- b.Bytes()
-		}()
+		go func() { data <- readFirstClient(ln) }()
 		if err := run(t, "tcp://"+ln.Addr().String(), nil); err != nil {
 			t.Fatal(err)
 		}
@@ -294,16 +297,7 @@ func TestNetworkOutputs(t *testing.T) {
 				return
 			}
 			defer ln.Close()
-			c, err := ln.Accept()
-			if err != nil {
-				data <- nil
-				return
-			}
-			defer c.Close()
-			_ = c.SetReadDeadline(time.Now().Add(10 * time.Second))
-			var b bytes.Buffer
-			_, _ = b.ReadFrom(c)
-			data <- b.Bytes()
+			data <- readFirstClient(ln)
 		}()
 		err = run(t, "tcp://"+addr, func(s string) {
 			if strings.HasPrefix(s, "waiting for a reader") {
