@@ -399,6 +399,23 @@ func TestLimits(t *testing.T) {
 			t.Errorf("driving %v, want 24", f.Evidence["driving_cmh2o"])
 		}
 	})
+	t.Run("no plateau on a bound", func(t *testing.T) {
+		// A slow end's intrinsic PEEP is only a bound, so is the total
+		// PEEP under an estimated plateau: the plateau is unknown and keeps
+		// its verdict; the driving pressure, VT/C = 10 cmH2O, does not
+		// depend on it (case 1 of docs/formulas.md, derived).
+		d := NewLimits(cfg)
+		b := case1.breath(0, 0)
+		b.PEEPiCmH2O = 17 // would put the estimated plateau at 5 + 17 + 10 = 32, over the limit
+		b.Flags = append(b.Flags, FlagPEEPiBound)
+		fs := d.Breath(&b, nil)
+		if f := find(fs, CondHighPlateauPressure); f.Present || !math.IsNaN(nanIfMissing(f.Evidence, "pplat_cmh2o")) {
+			t.Errorf("plateau from a bound: present %v, %s, %v", f.Present, f.Message, f.Evidence)
+		}
+		if got := find(fs, CondHighDrivingPressure).Evidence["driving_cmh2o"]; !detNear(got, 10, 0.01) {
+			t.Errorf("driving pressure %v, want VT/C = 10", got)
+		}
+	})
 	t.Run("no estimate when disabled", func(t *testing.T) {
 		c := cfg
 		c.EstimateWithoutPause = false
@@ -409,6 +426,14 @@ func TestLimits(t *testing.T) {
 			t.Errorf("plateau reported without a pause: %v", f.Evidence)
 		}
 	})
+}
+
+// nanIfMissing returns ev[key], NaN when the key is absent.
+func nanIfMissing(ev map[string]float64, key string) float64 {
+	if v, ok := ev[key]; ok {
+		return v
+	}
+	return math.NaN()
 }
 
 func TestDetMedianMatchesSort(t *testing.T) {
