@@ -6,8 +6,8 @@ import (
 )
 
 // rohrerFit is the equation of motion with a flow-dependent resistance,
-// P = K1·V' + K2·V'·|V'| + E·V + P0 (Rohrer F, 1915), fitted by ordinary
-// least squares.
+// P = K1·V' + K2·V'·|V'| + E·V + P0 (Rohrer F, 1915), fitted by least
+// squares with the moments corrected for flow noise (see fitRohrer).
 type rohrerFit struct {
 	k1, k2, e, p0 float64
 	sse, sseLin   float64 // residual sums of squares of this fit and of the linear one
@@ -36,8 +36,10 @@ const (
 )
 
 // fitRohrer fits the Rohrer equation of motion to the decimated points of
-// the breath before endT. It returns ok only when the flow-dependent term
-// is significant, positive, and leaves a positive K1 and elastance.
+// the breath before endT, with the moments of the flow columns corrected
+// for the flow sensor's noise (signSums.correct). It returns ok only when
+// the flow-dependent term is significant, positive, and leaves a positive
+// K1 and elastance.
 func fitRohrer(pts []point, endT float64) rohrerFit {
 	// Points beside a step of flow (the valves switching) carry the
 	// sampling's timing error times the resistance; they are left out so
