@@ -185,6 +185,36 @@ func offsetShare(b *Breath) float64 {
 	return math.Max(0, 1-60*lostL/tS/eef)
 }
 
+// inflowShare returns the factor that gives back to the end-expiratory
+// estimates of an unbounded breath what an inspiratory flow offset (or a
+// leak) not yet removed takes from them, 1 when there is none: the mirror
+// of offsetShare. Before the analyzer's offset and leak estimate is ready,
+// an offset c toward the patient makes a breath receive c·Ttot more than it
+// expires and takes c off the end-expiratory flow, so that intrinsic PEEP
+// by the end-expiratory-flow route reads (|EEF| − c)/|EEF| of the truth
+// (mass balance; derived). c is read from the breath's own balance, and
+// the estimates are scaled by (|EEF| + c)/|EEF|, only when |EEF| is at
+// least c: a flow that small cannot be told from the offset itself, and a
+// lung that does not trap air is not raised by it. A lung truly building
+// up volume in its first breaths reads higher, which the build-up rule
+// does anyway; a leak, whose loss is spread over the breath while only its
+// end-expiratory part lowers |EEF|, reads a little high while the estimate
+// is not ready.
+func inflowShare(b *Breath) float64 {
+	if b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
+		return 1
+	}
+	keptL, tS, eef := (b.VtiML-b.VteML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
+	if !(keptL > 0 && tS > 0 && eef > 0) {
+		return 1
+	}
+	c := 60 * keptL / tS
+	if eef < c {
+		return 1
+	}
+	return (eef + c) / eef
+}
+
 // positiveCount returns how many breaths of the window are positive.
 func (d *AirTrapping) positiveCount() int {
 	count := 0
@@ -314,7 +344,7 @@ func atBreathOf(b *Breath) atBreath {
 		dVolML:  b.VtiML - b.VteML,
 		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
 	}
-	if k := offsetShare(b); k < 1 {
+	if k := offsetShare(b) * inflowShare(b); k != 1 {
 		cur.peepi, cur.trapped = k*cur.peepi, k*cur.trapped
 	}
 	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
