@@ -31,13 +31,17 @@ type atBreath struct {
 	eefLPM   float64
 	peepi    float64
 	trapped  float64
-	teOvTau  float64
-	tauS     float64
-	teS      float64
-	tiS      float64
-	vtML     float64
-	dVolML   float64 // inspired − expired volume
-	flagged  bool    // estimates a single-compartment what-if cannot rely on
+	// trend is the trapped-volume estimate the build-up trend reads: the
+	// inflow share (inflowShare) is left out of it, because during a true
+	// build-up the balance it reads is the build-up itself.
+	trend   float64
+	teOvTau float64
+	tauS    float64
+	teS     float64
+	tiS     float64
+	vtML    float64
+	dVolML  float64 // inspired − expired volume
+	flagged bool    // estimates a single-compartment what-if cannot rely on
 }
 
 var _ BreathDetector = (*AirTrapping)(nil)
@@ -344,7 +348,11 @@ func atBreathOf(b *Breath) atBreath {
 		dVolML:  b.VtiML - b.VteML,
 		flagged: b.HasFlag(FlagPEEPiBound) || b.HasFlag(FlagEffort) || b.HasFlag(FlagTauNonlinear),
 	}
-	if k := offsetShare(b) * inflowShare(b); k != 1 {
+	if k := offsetShare(b); k != 1 {
+		cur.peepi, cur.trapped = k*cur.peepi, k*cur.trapped
+	}
+	cur.trend = cur.trapped
+	if k := inflowShare(b); k != 1 {
 		cur.peepi, cur.trapped = k*cur.peepi, k*cur.trapped
 	}
 	if math.IsNaN(cur.teOvTau) && cur.tauS > 0 {
@@ -368,9 +376,9 @@ func (d *AirTrapping) buildUp() (balanceML, slope float64) {
 		if !math.IsNaN(b.dVolML) {
 			balanceML += b.dVolML
 		}
-		if !math.IsNaN(b.trapped) {
+		if !math.IsNaN(b.trend) {
 			xs = append(xs, float64(i))
-			ys = append(ys, b.trapped)
+			ys = append(ys, b.trend)
 		}
 	}
 	slope, d.buf = detTheilSen(xs, ys, d.buf[:0])
