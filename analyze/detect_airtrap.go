@@ -166,59 +166,6 @@ func (d *AirTrapping) positive(b *Breath, cur *atBreath, building bool) bool {
 	return (mag(k) || (building && mag(0.5*k))) && tauOK && !b.HasFlag(FlagArtifact)
 }
 
-// offsetShare returns the factor that takes out of a slow-end bound
-// (flag peepi-bound) the part an expiratory flow offset not yet removed
-// would explain, 1 when there is none. Before the analyzer's offset and
-// leak estimate is ready (no correction applied to b), a constant
-// expiratory offset c makes a breath expire c·Ttot more than it received
-// and adds c to the end-expiratory flow, which is what a slow compartment
-// still emptying looks like; the end-expiratory-flow route scales with
-// that flow (trapped volume τ·|EEF|), so the bound is scaled by
-// (|EEF| − c)/|EEF|, c read from the breath's own volume balance (mass
-// balance; derived). A lung that truly loses volume in its first breaths
-// is read low for those breaths, the safer error while the flow is not
-// yet trustworthy.
-func offsetShare(b *Breath) float64 {
-	if !b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
-		return 1
-	}
-	lostL, tS, eef := (b.VteML-b.VtiML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
-	if !(lostL > 0 && tS > 0 && eef > 0) {
-		return 1
-	}
-	return math.Max(0, 1-60*lostL/tS/eef)
-}
-
-// inflowShare returns the factor that gives back to the end-expiratory
-// estimates of an unbounded breath what an inspiratory flow offset (or a
-// leak) not yet removed takes from them, 1 when there is none: the mirror
-// of offsetShare. Before the analyzer's offset and leak estimate is ready,
-// an offset c toward the patient makes a breath receive c·Ttot more than it
-// expires and takes c off the end-expiratory flow, so that intrinsic PEEP
-// by the end-expiratory-flow route reads (|EEF| − c)/|EEF| of the truth
-// (mass balance; derived). c is read from the breath's own balance, and
-// the estimates are scaled by (|EEF| + c)/|EEF|, only when |EEF| is at
-// least c: a flow that small cannot be told from the offset itself, and a
-// lung that does not trap air is not raised by it. A lung truly building
-// up volume in its first breaths reads higher, which the build-up rule
-// does anyway; a leak, whose loss is spread over the breath while only its
-// end-expiratory part lowers |EEF|, reads a little high while the estimate
-// is not ready.
-func inflowShare(b *Breath) float64 {
-	if b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
-		return 1
-	}
-	keptL, tS, eef := (b.VtiML-b.VteML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
-	if !(keptL > 0 && tS > 0 && eef > 0) {
-		return 1
-	}
-	c := 60 * keptL / tS
-	if eef < c {
-		return 1
-	}
-	return (eef + c) / eef
-}
-
 // positiveCount returns how many breaths of the window are positive.
 func (d *AirTrapping) positiveCount() int {
 	count := 0
