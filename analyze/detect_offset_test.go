@@ -69,24 +69,12 @@ func TestOffsetShareRemovesAConstantOffset(t *testing.T) {
 	b.PEEPiCmH2O = trueIntrinsic * (eefLPM + cLPM) / eefLPM
 	b.TrappedML, b.FlowOffsetLPM, b.LeakLPMPerCmH2O = 285*(eefLPM+cLPM)/eefLPM, 0, 0
 	b.TeOverTau = 3.5 // never positive: only the reported evidence is read
-	for _, tt := range []struct {
-		name   string
-		change func(*analyze.Breath)
-		want   float64
-	}{
+	for _, tt := range []evidenceCase{
 		{"uncorrected bound", func(*analyze.Breath) {}, trueIntrinsic},
 		{"offset already removed", func(b *analyze.Breath) { b.FlowOffsetLPM = -2 }, b.PEEPiCmH2O},
 		{"not a bound", func(b *analyze.Breath) { b.Flags = nil }, b.PEEPiCmH2O},
 	} {
-		t.Run(tt.name, func(t *testing.T) {
-			c := b
-			tt.change(&c)
-			d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
-			f := d.Breath(&c, nil)[0]
-			if got := f.Evidence["peepi_cmh2o"]; math.Abs(got-tt.want) > 0.01 {
-				t.Errorf("intrinsic PEEP evidence %.3f cmH2O, want %.3f", got, tt.want)
-			}
-		})
+		t.Run(tt.name, func(t *testing.T) { checkPEEPiEvidence(t, b, tt.change, tt.want) })
 	}
 }
 
@@ -109,25 +97,13 @@ func TestInflowShareRestoresAConstantOffset(t *testing.T) {
 	b.PEEPiCmH2O = trueIntrinsic * (eefLPM - cLPM) / eefLPM
 	b.TrappedML, b.FlowOffsetLPM, b.LeakLPMPerCmH2O = 285*(eefLPM-cLPM)/eefLPM, 0, 0
 	b.TeOverTau = 3.5 // never positive: only the reported evidence is read
-	for _, tt := range []struct {
-		name   string
-		change func(*analyze.Breath)
-		want   float64
-	}{
+	for _, tt := range []evidenceCase{
 		{"uncorrected", func(*analyze.Breath) {}, trueIntrinsic},
 		{"offset already removed", func(b *analyze.Breath) { b.FlowOffsetLPM = 2 }, b.PEEPiCmH2O},
 		{"a bound", func(b *analyze.Breath) { b.Flags = []string{analyze.FlagPEEPiBound} }, b.PEEPiCmH2O},
 		{"flow under the offset", func(b *analyze.Breath) { b.EndExpFlowLPM = 1.5 }, b.PEEPiCmH2O},
 	} {
-		t.Run(tt.name, func(t *testing.T) {
-			c := b
-			tt.change(&c)
-			d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
-			f := d.Breath(&c, nil)[0]
-			if got := f.Evidence["peepi_cmh2o"]; math.Abs(got-tt.want) > 0.01 {
-				t.Errorf("intrinsic PEEP evidence %.3f cmH2O, want %.3f", got, tt.want)
-			}
-		})
+		t.Run(tt.name, func(t *testing.T) { checkPEEPiEvidence(t, b, tt.change, tt.want) })
 	}
 }
 
@@ -185,5 +161,25 @@ func TestAirTrappingFromTheFirstBreathsUnderInflowOffset(t *testing.T) {
 				t.Errorf("%s, R %g: raised at breath %d with a true intrinsic PEEP under 1 cmH2O", s.name, r, raised)
 			}
 		}
+	}
+}
+
+// evidenceCase is a change to a breath record and the intrinsic PEEP the
+// air-trapping detector must then report as evidence.
+type evidenceCase struct {
+	name   string
+	change func(*analyze.Breath)
+	want   float64
+}
+
+// checkPEEPiEvidence runs a fresh air-trapping detector on b changed by
+// change and compares its intrinsic PEEP evidence with want (±0.01 cmH2O).
+func checkPEEPiEvidence(t *testing.T, b analyze.Breath, change func(*analyze.Breath), want float64) {
+	t.Helper()
+	change(&b)
+	d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
+	f := d.Breath(&b, nil)[0]
+	if got := f.Evidence["peepi_cmh2o"]; math.Abs(got-want) > 0.01 {
+		t.Errorf("intrinsic PEEP evidence %.3f cmH2O, want %.3f", got, want)
 	}
 }
