@@ -30,16 +30,16 @@ func offsetShare(b *Breath) float64 {
 // leak) not yet removed takes from them, 1 when there is none: the mirror
 // of offsetShare. Before the analyzer's offset and leak estimate is ready,
 // an offset c toward the patient makes a breath receive c·Ttot more than it
-// expires and takes c off the end-expiratory flow, so that intrinsic PEEP
-// by the end-expiratory-flow route reads (|EEF| − c)/|EEF| of the truth
-// (mass balance; derived). c is read from the breath's own balance, and
-// the estimates are scaled by (|EEF| + c)/|EEF|, only when |EEF| is at
-// least c: a flow that small cannot be told from the offset itself, and a
-// lung that does not trap air is not raised by it. A lung truly building
-// up volume in its first breaths reads higher, which the build-up rule
-// does anyway; a leak, whose loss is spread over the breath while only its
-// end-expiratory part lowers |EEF|, reads a little high while the estimate
-// is not ready.
+// expires and takes c off the end-expiratory flow e, so that intrinsic
+// PEEP by the end-expiratory-flow route reads (e − c)/e of the truth (mass
+// balance; derived). c is read from the breath's own balance, and with the
+// measured |EEF| = e − c the estimates are scaled by (|EEF| + c)/|EEF|,
+// only when |EEF| is at least c: a flow that small cannot be told from the
+// offset itself, and a lung that does not trap air is not raised by it. A
+// lung truly building up volume in its first breaths reads higher, which
+// the build-up rule does anyway; a leak, whose loss is spread over the
+// breath while only its end-expiratory part lowers |EEF|, reads a little
+// high while the estimate is not ready.
 func inflowShare(b *Breath) float64 {
 	if b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
 		return 1
