@@ -37,7 +37,7 @@ const (
 
 // fitRohrer fits the Rohrer equation of motion to the decimated points of
 // the breath before endT, with the moments of the flow columns corrected
-// for the flow sensor's noise (signSums.correct). It returns ok only when
+// for the flow sensor's noise (noiseSums.correct). It returns ok only when
 // the flow-dependent term is significant, positive, and leaves a positive
 // K1 and elastance.
 func fitRohrer(pts []point, endT float64) rohrerFit {
@@ -56,7 +56,7 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		return rohrerFit{}
 	}
 	obs := s
-	v := flowNoiseVar(pts, endT, lim, sg.d2/float64(max(sg.nd2, 1)), sg.nd2)
+	v := sg.noiseVar(pts, endT, lim)
 	if v > 0 {
 		sg.correct(&s, n, v)
 	}
@@ -108,10 +108,10 @@ func fitPoints(pts []point, endT, lim float64) iter.Seq2[int, *point] {
 	}
 }
 
-// signSums are the sums the noise correction needs besides the normal
-// equations: Σ|V'|, Σsign(V'), Σsign(V')·V and Σsign(V')·P, and the sum
-// and count of the squared second differences of flow (see flowNoiseVar).
-type signSums struct {
+// noiseSums are the sums the flow-noise correction needs besides the
+// normal equations: Σ|V'|, Σsign(V'), Σsign(V')·V and Σsign(V')·P, and the
+// sum and count of the squared second differences of flow (see noiseVar).
+type noiseSums struct {
 	abs, sign, signV, signP float64
 	d2                      float64
 	nd2                     int
@@ -119,9 +119,9 @@ type signSums struct {
 
 // rohrerSums returns the normal equations of [V', V'|V'|, V, 1] against P
 // (P in column 4) over the points before endT that are not beside a step
-// of flow larger than lim, the sums of signSums over the same points, and
+// of flow larger than lim, the sums of noiseSums over the same points, and
 // their count.
-func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n int) {
+func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg noiseSums, n int) {
 	// The sums are kept in locals (registers) rather than in the matrix: a
 	// Go array lives in memory, and a load and store per term and point
 	// cost more than the arithmetic.
@@ -130,8 +130,7 @@ func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n
 	nd2 := 0
 	for i, q := range fitPoints(pts, endT, lim) {
 		f, v, p := q.f, q.v, q.p
-		if i > 0 && i+1 < len(pts) && pts[i+1].t < endT {
-			d := pts[i+1].f - 2*f + pts[i-1].f
+		if d, ok := secondDiff(pts, i, endT); ok {
 			sd2 += d * d
 			nd2++
 		}
@@ -165,7 +164,7 @@ func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n
 		{s03, s13, s23, s33, s34},
 		{s04, s14, s24, s34, s44},
 	}
-	return s, signSums{sa, sn, snv, snp, sd2, nd2}, n
+	return s, noiseSums{sa, sn, snv, snp, sd2, nd2}, n
 }
 
 // correct takes the expected content of white flow noise of variance v out
@@ -183,7 +182,7 @@ func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg signSums, n
 // |V'| is a few noise deviations: E[x²] = f² + v, E[x³] = f³ + 3fv,
 // E[x⁴] = f⁴ + 6f²v + 3v² for x = f + noise. The residual sums of squares
 // stay those of the observed data.
-func (sg *signSums) correct(s *[5][5]float64, n int, v float64) {
+func (sg *noiseSums) correct(s *[5][5]float64, n int, v float64) {
 	nf := float64(n)
 	s[1][1] -= 6*v*s[0][0] - 3*nf*v*v // before s[0][0] is corrected
 	s[0][0] -= nf * v
@@ -234,7 +233,7 @@ type rohrerPool struct {
 }
 
 // Pooling constants (ours): the pool forgets a breath's weight by
-// rohrerPoolKeep per breath (about five breaths' worth); its K2 is used
+// rohrerPoolKeep per breath (about ten breaths' worth); its K2 is used
 // from rohrerPoolMinZ standard errors above zero, and when the
 // flow-dependent term makes at least rohrerPoolMinShare of the resistance
 // at the breath's largest flow.
@@ -287,7 +286,7 @@ func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v
 	}
 	b0, b1, b2, b3 := beta[0], beta[1], beta[2], beta[3]
 	w0, w1, w2, w3 := w[0], w[1], w[2], w[3]
-	// wᵀψ with ψ = x·r − d + D·β (D and d as in signSums.correct), written
+	// wᵀψ with ψ = x·r − d + D·β (D and d as in noiseSums.correct), written
 	// out: r·wᵀx + c0 + c2·V'² + sign(V')·(c1·V' − c3·P + c4·V + c5).
 	c0 := v * (w0*b0 - 3*v*w1*b1)
 	c1 := 3 * v * (w0*b1 + w1*b0)
@@ -309,31 +308,35 @@ func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v
 	return acc
 }
 
-// flowNoiseVar estimates the variance of the white noise of the flow of
-// the points before endT from their second differences, leaving out those
-// that span a step of flow larger than lim (as rohrerSums does, which
-// gives mean1, the mean of their squares, over n of them): a second
-// difference of white noise has six times its variance. The mean is taken
-// again without the squares above nine times mean1, so that the curvature
-// of a fast expiration and a few outliers count little; for normal noise
-// the squares kept (χ² with one degree of freedom up to 9) average 0.9733
-// of the variance: E[X; X ≤ 9]/P(X ≤ 9) = P(χ²₃ ≤ 9)/P(χ²₁ ≤ 9) =
+// secondDiff returns the second difference of flow at point i of pts,
+// false when i has no neighbour on either side before endT.
+func secondDiff(pts []point, i int, endT float64) (float64, bool) {
+	if i == 0 || i+1 >= len(pts) || pts[i+1].t >= endT {
+		return 0, false
+	}
+	return pts[i+1].f - 2*pts[i].f + pts[i-1].f, true
+}
+
+// noiseVar estimates the variance of the white noise of the flow of the
+// points of the fit (fitPoints) from their second differences, whose
+// squares rohrerSums summed into sg: a second difference of white noise
+// has six times its variance. The mean is taken again without the squares
+// above nine times the first mean, so that the curvature of a fast
+// expiration and a few outliers count little; for normal noise the
+// squares kept (χ² with one degree of freedom up to 9) average 0.9733 of
+// the variance: E[X; X ≤ 9]/P(X ≤ 9) = P(χ²₃ ≤ 9)/P(χ²₁ ≤ 9) =
 // 0.9707/0.9973, since x·f₁(x) = f₃(x) for the χ² densities (derived).
 // Two passes over the points cost less than a median. 0 when too few
 // points.
-func flowNoiseVar(pts []point, endT, lim, mean1 float64, n int) float64 {
-	if n < 8 {
+func (sg *noiseSums) noiseVar(pts []point, endT, lim float64) float64 {
+	if sg.nd2 < 8 {
 		return 0
 	}
-	cut := 9 * mean1
+	cut := 9 * sg.d2 / float64(sg.nd2)
 	sum, k := 0.0, 0
-	for i, q := range fitPoints(pts, endT, lim) {
-		if i == 0 || i+1 >= len(pts) || pts[i+1].t >= endT {
-			continue
-		}
-		d := pts[i+1].f - 2*q.f + pts[i-1].f
-		if d2 := d * d; d2 <= cut {
-			sum += d2
+	for i := range fitPoints(pts, endT, lim) {
+		if d, ok := secondDiff(pts, i, endT); ok && d*d <= cut {
+			sum += d * d
 			k++
 		}
 	}

@@ -190,7 +190,7 @@ func TestFlowNoiseVar(t *testing.T) {
 			}
 			const lim = 0.15 * 1.2
 			_, sg, _ := rohrerSums(pts, math.Inf(1), lim)
-			sum += flowNoiseVar(pts, math.Inf(1), lim, sg.d2/float64(sg.nd2), sg.nd2)
+			sum += sg.noiseVar(pts, math.Inf(1), lim)
 		}
 		if got := math.Sqrt(sum / n); math.Abs(got/sd-1) > 0.05 {
 			t.Errorf("noise %.2f L/min: estimated %.3f L/min", sd*60, got*60)
