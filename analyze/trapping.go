@@ -142,7 +142,7 @@ func (a *Analyzer) reportTrapping(b *Breath, flags *[]string, m *mechanics, slow
 		b.PEEPiCmH2O = math.Max(b.TrappedML/1000*m.e, nanTo0(b.PEEPiFitCmH2O))
 		*flags = append(*flags, FlagPEEPiBound)
 	case m.fitOK && !m.effort && !leak && !math.IsNaN(b.PEEPiEEFCmH2O):
-		b.PEEPiCmH2O = math.Max(0, peepiBlend(b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O))
+		b.PEEPiCmH2O = math.Max(0, (b.PEEPiEEFCmH2O+b.PEEPiFitCmH2O)/2)
 		b.TrappedML = b.PEEPiCmH2O / m.e * 1000
 	case m.fitOK && !m.effort && !leak:
 		b.PEEPiCmH2O = math.Max(0, b.PEEPiFitCmH2O)
@@ -151,19 +151,6 @@ func (a *Analyzer) reportTrapping(b *Breath, flags *[]string, m *mechanics, slow
 		b.PEEPiCmH2O = math.Max(0, b.PEEPiEEFCmH2O)
 		b.TrappedML = math.Max(0, b.TrappedEEFML)
 	}
-}
-
-// peepiRoute selects the blend of the two routes (experiment switch).
-var peepiRoute = 2
-
-func peepiBlend(eef, fit float64) float64 {
-	switch peepiRoute {
-	case 0:
-		return fit
-	case 1:
-		return eef
-	}
-	return (eef + fit) / 2
 }
 
 // volumeAt returns the volume of the open breath at time t, from the
