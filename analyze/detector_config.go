@@ -163,7 +163,9 @@ func DefaultDetectorConfig() DetectorConfig {
 			// sits lower (1.65) so that breaths at a true 2 cmH2O are caught
 			// despite estimation noise and despite lungs of unequal time
 			// constants, whose estimates read the fast units and come out
-			// 20–40 % low (docs/analysis.md). Measured on the sweep grids
+			// low (medians 8–25 % by lung and mode, about 35 % on the 10×
+			// lung at R 40 near the threshold; docs/analysis.md and
+			// docs/detectors.md). Measured on the sweep grids
 			// (docs/sweep.md): 0 raises below 1 cmH2O in 360 never-trapping
 			// patient-hours, where 1.6 raised once at a true 0.97 (our
 			// choice).
