@@ -146,12 +146,12 @@ func DefaultDetectorConfig() DetectorConfig {
 			// sits at the threshold does not make the alarm flicker (our
 			// choice).
 			ClearN: 2,
-			// Once present, count breaths from 0.7 × 1.8 = 1.26 cmH2O:
+			// Once present, count breaths from 0.7 × 1.65 = 1.16 cmH2O:
 			// the median of three estimates scatters by about ±0.3 cmH2O
 			// around a steady true value (measured on the simulated
 			// bronchospasm at a true 1.85 cmH2O: 1.3–2.0), so a patient held
 			// near the threshold stays alarmed instead of raising and
-			// clearing, while 1.26 stays above the 1 cmH2O under which
+			// clearing, while 1.16 stays above the 1 cmH2O under which
 			// trapping is taken as absent (docs/sweep.md; our choice).
 			ClearFraction: 0.7,
 			// Expiratory flow still present at the next breath is the

@@ -109,7 +109,7 @@ type ConditionScore struct {
 	// GreyAlerts counts, for air trapping, raises whose alarm overlapped
 	// no breath with the condition but a breath in the grey zone (true
 	// intrinsic PEEP from GreyZoneCmH2O up to the label's 2 cmH2O); they
-	// are not in FalseAlerts. A detector threshold just under the label's
+	// are not in FalseAlerts. A detector threshold under the label's
 	// threshold cannot separate 1.8 from 2.0 cmH2O under sensor noise, so
 	// such a raise is neither a miss of the definition nor a false alarm.
 	GreyAlerts         int     `json:"grey_alerts"`
