@@ -285,7 +285,7 @@ func atBreathOf(b *Breath) atBreath {
 	cur := atBreath{
 		seq:     b.Seq,
 		eefLPM:  b.EndExpFlowLPM,
-		peepi:   detFirstFinite(b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
+		peepi:   detFirstFinite(boundMagnitude(b), b.PEEPiCmH2O, b.PEEPiEEFCmH2O, b.PEEPiFitCmH2O),
 		trapped: detFirstFinite(b.TrappedML, b.TrappedEEFML),
 		teOvTau: b.TeOverTau,
 		tauS:    b.TauS,

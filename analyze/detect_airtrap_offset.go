@@ -54,3 +54,21 @@ func inflowShare(b *Breath) float64 {
 	}
 	return (eef + c) / eef
 }
+
+// boundMagnitude returns the intrinsic PEEP the detector reads for a breath
+// whose figures are a slow-end bound (flag peepi-bound): its trapped-volume
+// bound over the single-compartment compliance, or the fit route when that
+// is larger; NaN when it cannot be formed (the record's own figure is then
+// used). The record carries a lower bound that needs no compliance
+// (reportTrapping), honest but about a fifth lower in the median on
+// two-unit lungs; this figure, which the record gave before 2 December
+// 2026, is what the detector's threshold was set on (docs/detectors.md):
+// the dynamic compliance of a two-unit lung is low, which makes up in the
+// median for a trapped volume read from below, at the price of
+// overstating on some breaths.
+func boundMagnitude(b *Breath) float64 {
+	if !b.HasFlag(FlagPEEPiBound) || !(b.CMLPerCmH2O > 0) || math.IsNaN(b.TrappedML) {
+		return math.NaN()
+	}
+	return math.Max(b.TrappedML/b.CMLPerCmH2O, nanTo0(b.PEEPiFitCmH2O))
+}

@@ -130,7 +130,8 @@ func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, 
 // end-expiratory time constant estimates that volume from below (the
 // fast units have nearly emptied; by the Cauchy–Schwarz inequality the
 // flow-weighted slope never overstates the remaining volume of a sum of
-// exponentials), so the figure is flagged a bound and never printed as 0.
+// exponentials), so the figure is flagged a bound and never printed as 0;
+// its intrinsic PEEP is a bound that needs no compliance (staticBound).
 // Otherwise the end-expiratory-flow route is reported when the fit route
 // cannot be trusted (effort, leak, no fit), and the mean of the two when
 // both hold: they err in different ways (flow noise and offset against
@@ -139,7 +140,7 @@ func (a *Analyzer) reportTrapping(b *Breath, flags *[]string, m *mechanics, slow
 	switch {
 	case slow && m.fitOK:
 		b.TrappedML = math.Max(b.TrappedEEFML, nanTo0(b.TrappedExpFitML))
-		b.PEEPiCmH2O = math.Max(b.TrappedML/1000*m.e, nanTo0(b.PEEPiFitCmH2O))
+		b.PEEPiCmH2O = math.Max(a.staticBound(b, m), nanTo0(b.PEEPiFitCmH2O))
 		*flags = append(*flags, FlagPEEPiBound)
 	case m.fitOK && !m.effort && !leak && !math.IsNaN(b.PEEPiEEFCmH2O):
 		b.PEEPiCmH2O = math.Max(0, (b.PEEPiEEFCmH2O+b.PEEPiFitCmH2O)/2)
@@ -172,4 +173,47 @@ func (a *Analyzer) volumeAt(t float64) float64 {
 		}
 	}
 	return a.candV
+}
+
+// staticBound returns a lower bound of the static intrinsic PEEP (cmH2O)
+// of a breath whose trapped volume b.TrappedML is itself a lower bound, T,
+// without the fitted compliance, which a lung of unequal time constants
+// makes too low (a dynamic compliance below the static one; the trapped
+// volume times the fitted elastance overstated a two-unit lung by up to
+// half its static value, TestTwoUnitLungBoundIsHonest). In a passive steady
+// state each unit's cycle-mean pressure is the mean airway pressure, so
+// the static value is P = ΔPm − M/Cs (docs/analysis.md, "What a steady
+// breath cannot tell"), ΔPm the mean airway pressure above PEEP and M the
+// cycle-mean volume above the end-expiratory volume; Cs·P ≥ T then gives
+// Cs ≥ (T + M)/ΔPm and P ≥ ΔPm·T/(T + M) (derived). When expiration meets
+// more resistance than inspiration the cycle-mean alveolar pressure is
+// higher and the bound still holds. It falls back to the trapped volume
+// times the fitted elastance when the means cannot be formed.
+func (a *Analyzer) staticBound(b *Breath, m *mechanics) float64 {
+	mv := 1000 * a.meanVolumeAbove(b.EndS)
+	p := (b.MeanCmH2O - b.PEEPCmH2O) * b.TrappedML / (b.TrappedML + mv)
+	if !(p >= 0) || !(mv > 0) {
+		return b.TrappedML / 1000 * m.e
+	}
+	return p
+}
+
+// meanVolumeAbove is the mean, over the breath's decimated points before
+// endT (evenly spaced in time), of the volume above the volume at endT (L);
+// NaN when there is no point.
+func (a *Analyzer) meanVolumeAbove(endT float64) float64 {
+	vEnd := a.volumeAt(endT)
+	sum, n := 0.0, 0
+	for i := 0; i < a.buf.n; i++ {
+		q := &a.buf.pts[i]
+		if q.t >= endT {
+			break
+		}
+		sum += q.v - vEnd
+		n++
+	}
+	if n == 0 {
+		return math.NaN()
+	}
+	return sum / float64(n)
 }
