@@ -20,18 +20,9 @@ import (
 // raised: it must not be. The same lung without the offset is the control.
 func TestAirTrappingUncorrectedExpiratoryOffset(t *testing.T) {
 	for _, offsetLPM := range []float64{-1, 0} {
-		sc := simulator.NewScenario()
-		sc.DurationS, sc.SampleRateHz, sc.Seed, sc.StepS = 120, 50, 1, 0.004
 		const r, q = 5.0, 10.0
 		k := 0.6 * (1 + 1/q) // units k·R and q·k·R in parallel: 0.6·R
-		sc.Patient.Model = simulator.ModelTwoCompartment
-		sc.Patient.AirwayResistanceCmH2OSPerL = 0.4 * r
-		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.Resistance2CmH2OSPerL = k*r, q*k*r
-		sc.Patient.ExpResistanceCmH2OSPerL = k * r
-		sc.Patient.ComplianceMLPerCmH2O, sc.Patient.Compliance2MLPerCmH2O = 25, 25
-		sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
-			RateBPM: 20, PEEPCmH2O: 5}
-		sc.Sensor = simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3, FlowOffsetLPM: offsetLPM}
+		sc := twoUnitPC(120, 0.4*r, k*r, q*k*r, 25, 25, 20, offsetLPM)
 		pairs := simulate(t, sc)
 		d := analyze.NewAirTrapping(analyze.DefaultDetectorConfig().AirTrapping)
 		maxTrue := 0.0

@@ -26,6 +26,25 @@ func twoUnitStaticPEEPi(dP, tiS, teS float64, tauS, cML [2]float64) float64 {
 	return sum / c
 }
 
+// twoUnitPC is a lung of two parallel units (resistances r1 and r2, each
+// also its expiratory one, compliances c1 and c2 mL/cmH2O) behind a shared
+// airway resistance rAirway, ventilated for durS at 50 Hz on pressure
+// control with no rise (15 cmH2O above PEEP 5 for 1 s at rateBPM), seen by
+// a clean sensor (0.1 cmH2O, 0.3 L/min) with a flow offset of offsetLPM.
+func twoUnitPC(durS, rAirway, r1, r2, c1, c2, rateBPM, offsetLPM float64) simulator.Scenario {
+	sc := simulator.NewScenario()
+	sc.DurationS, sc.SampleRateHz, sc.Seed, sc.StepS = simulator.Seconds(durS), 50, 1, 0.004
+	sc.Patient.Model = simulator.ModelTwoCompartment
+	sc.Patient.AirwayResistanceCmH2OSPerL = rAirway
+	sc.Patient.ResistanceCmH2OSPerL, sc.Patient.Resistance2CmH2OSPerL = r1, r2
+	sc.Patient.ExpResistanceCmH2OSPerL = r1
+	sc.Patient.ComplianceMLPerCmH2O, sc.Patient.Compliance2MLPerCmH2O = c1, c2
+	sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
+		RateBPM: rateBPM, PEEPCmH2O: 5}
+	sc.Sensor = simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3, FlowOffsetLPM: offsetLPM}
+	return sc
+}
+
 // TestTwoUnitLungBoundIsHonest runs a lung whose units empty ten times
 // apart (τ 0.6 and 6 s, 25 mL/cmH2O each, no shared airway resistance) on
 // pressure control with no rise (15 cmH2O for 1 s), against the closed form
@@ -46,16 +65,7 @@ func TestTwoUnitLungBoundIsHonest(t *testing.T) {
 	for _, tt := range []struct {
 		rateBPM, want float64
 	}{{20, 2.315}, {10, 0.793}} {
-		sc := simulator.NewScenario()
-		sc.DurationS, sc.SampleRateHz, sc.Seed, sc.StepS = 180, 50, 1, 0.004
-		sc.Patient.Model = simulator.ModelTwoCompartment
-		sc.Patient.AirwayResistanceCmH2OSPerL = 0
-		sc.Patient.ResistanceCmH2OSPerL, sc.Patient.Resistance2CmH2OSPerL = r1, r2
-		sc.Patient.ExpResistanceCmH2OSPerL = r1
-		sc.Patient.ComplianceMLPerCmH2O, sc.Patient.Compliance2MLPerCmH2O = c1, c2
-		sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
-			RateBPM: tt.rateBPM, PEEPCmH2O: 5}
-		sc.Sensor = simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3}
+		sc := twoUnitPC(180, 0, r1, r2, c1, c2, tt.rateBPM, 0)
 		want := twoUnitStaticPEEPi(15, 1, 60/tt.rateBPM-1, [2]float64{r1 * c1 / 1000, r2 * c2 / 1000}, [2]float64{c1, c2})
 		if math.Abs(want-tt.want) > 0.001 {
 			t.Fatalf("rate %v: closed form %.4f cmH2O, want %.3f", tt.rateBPM, want, tt.want)
