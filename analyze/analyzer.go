@@ -57,6 +57,11 @@ const (
 	// recent breaths, which this breath alone did not determine but does
 	// not contradict; K1, E and P0 are this breath's.
 	FlagRohrerPooled = "rohrer-pooled"
+	// FlagPEEPiBoundPooled: with peepi-bound, the slow end shows on the
+	// recent breaths taken together (slowPool), not on this one alone; the
+	// figures are this breath's usual estimates, which units with unequal
+	// time constants make read low.
+	FlagPEEPiBoundPooled = "peepi-bound-pooled"
 	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
 	// flow offset and a pressure-proportional leak estimated over many
 	// breaths (flow_offset_lpm and leak_lpm_per_cmh2o of the record) of at
@@ -152,6 +157,7 @@ type Analyzer struct {
 	prevPEEP    float64 // end-expiratory pressure of the breath before, for the balance
 	settings    settingsTracker
 	k2Pool      rohrerPool // K2 of the recent breaths (see rohrerPool)
+	slowPool    slowPool   // marks of a slow end over the recent breaths
 
 	ring ring
 	last Breath // the breath completed by the latest push
@@ -179,8 +185,8 @@ func (a *Analyzer) Stream() string { return a.stream }
 // was not finite or did not increase.
 func (a *Analyzer) Skipped() uint64 { return a.skipped }
 
-// Reset forgets the open breath, the sample history and the pooled
-// Rohrer K2, so that no breath spans a gap or a reconnection. Breath
+// Reset forgets the open breath, the sample history, the pooled
+// Rohrer K2 and the pooled marks of a slow end, so that no breath spans a gap or a reconnection. Breath
 // numbering continues; the flow offset and leak estimates, which belong to
 // the sensor, are kept.
 func (a *Analyzer) Reset() {
@@ -194,6 +200,7 @@ func (a *Analyzer) Reset() {
 	// The pooled K2 describes the airways of the breaths before the gap;
 	// after a disconnection they may be another patient's.
 	a.k2Pool = rohrerPool{}
+	a.slowPool = slowPool{}
 }
 
 func (a *Analyzer) resetBreath() {

@@ -15,7 +15,7 @@ import "math"
 // is read low for those breaths, the safer error while the flow is not
 // yet trustworthy.
 func offsetShare(b *Breath) float64 {
-	if !b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
+	if !slowEndBound(b) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
 		return 1
 	}
 	lostL, tS, eef := (b.VteML-b.VtiML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
@@ -41,7 +41,7 @@ func offsetShare(b *Breath) float64 {
 // breath while only its end-expiratory part lowers |EEF|, reads a little
 // high while the estimate is not ready.
 func inflowShare(b *Breath) float64 {
-	if b.HasFlag(FlagPEEPiBound) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
+	if slowEndBound(b) || b.FlowOffsetLPM != 0 || b.LeakLPMPerCmH2O != 0 {
 		return 1
 	}
 	keptL, tS, eef := (b.VtiML-b.VteML)/1000, b.TiS+b.TeS, b.EndExpFlowLPM
@@ -67,8 +67,18 @@ func inflowShare(b *Breath) float64 {
 // median for a trapped volume read from below, at the price of
 // overstating on some breaths.
 func boundMagnitude(b *Breath) float64 {
-	if !b.HasFlag(FlagPEEPiBound) || !(b.CMLPerCmH2O > 0) || math.IsNaN(b.TrappedML) {
+	if !slowEndBound(b) || !(b.CMLPerCmH2O > 0) || math.IsNaN(b.TrappedML) {
 		return math.NaN()
 	}
 	return math.Max(b.TrappedML/b.CMLPerCmH2O, nanTo0(b.PEEPiFitCmH2O))
+}
+
+// slowEndBound reports whether the breath's own expiration made its
+// figures a slow-end bound (flag peepi-bound without peepi-bound-pooled).
+// A breath flagged from the recent breaths keeps the figures it would
+// have had unflagged, and the detectors read them as they did before the
+// pooled flag existed (3 December 2026), which is what their thresholds
+// were set on.
+func slowEndBound(b *Breath) bool {
+	return b.HasFlag(FlagPEEPiBound) && !b.HasFlag(FlagPEEPiBoundPooled)
 }

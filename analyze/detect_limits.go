@@ -78,7 +78,7 @@ func (d *Limits) Breath(b *Breath, dst []Finding) []Finding {
 		}
 	}
 	values := [3]float64{b.PeakCmH2O, plat, plat - peepTot}
-	if estimated && b.HasFlag(FlagPEEPiBound) {
+	if estimated && slowEndBound(b) {
 		// The intrinsic PEEP of a slow end is only a bound, and so is the
 		// total PEEP an estimated plateau stands on: no plateau from it.
 		// The estimated driving pressure, VT/C, does not depend on it.
