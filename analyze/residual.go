@@ -191,6 +191,23 @@ func (l *linreg) predict(x float64) (y, se float64) {
 	return my + b*(x-mx), math.Sqrt(ss/(l.n-2)) * math.Sqrt(1/l.n+(x-mx)*(x-mx)/cxx)
 }
 
+// slope returns the fitted slope and its standard error (ordinary least
+// squares: s/√Sxx); NaN below three points.
+func (l *linreg) slope() (b, se float64) {
+	if l.n < 3 {
+		return math.NaN(), math.NaN()
+	}
+	mx, my := l.sx/l.n, l.sy/l.n
+	cxx := l.sxx - l.n*mx*mx
+	cxy := l.sxy - l.n*mx*my
+	if !(cxx > 0) {
+		return math.NaN(), math.NaN()
+	}
+	b = cxy / cxx
+	ss := math.Max(0, l.syy-l.n*my*my-b*cxy)
+	return b, math.Sqrt(ss / (l.n - 2) / cxx)
+}
+
 // r2 returns the squared correlation of x and y, or NaN below three
 // points.
 func (l *linreg) r2() float64 {
@@ -301,6 +318,7 @@ func (a *Analyzer) tauLate(endT float64) float64 {
 		syy += y * y
 	}
 	l := linreg{n, sx, sy, sxx, sxy, syy}
+	a.lateSlope, a.lateSlopeSE = l.slope()
 	tau := l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
 		return math.NaN()

@@ -2,49 +2,57 @@ package analyze
 
 import "math"
 
-// slowPool keeps two marks of a slow end of expiration over the recent
-// breaths that were still emptying: the ratio of the end-expiratory to the
-// mid-expiratory time constant (TauEndS/TauS), and the departure of the
-// end-expiratory flow above the mid-expiration flow–volume line, relative
-// to that flow, with its standard error. Units with unequal time constants
-// make the ratio above 1 and the departure positive: the slow units empty
-// last, so the end of the flow–volume curve is flatter than its middle
-// (Lourens MS et al., "Expiratory time constants in mechanically
-// ventilated patients with and without COPD", Intensive Care Med
-// 2000;26:1612). On one breath of a lung whose time constants differ 3–10
-// times they are a few per cent, inside the noise of one breath, and the
-// breath's own test (slowEndRatio, tauDepartureLPS) seldom fires; over the
-// recent breaths they show. A single linear compartment gives a ratio of 1
-// and a departure of 0, a resistance that grows with flow a faster end
-// (ratio under 1, departure negative). docs/analysis.md, "Slow end over
-// many breaths".
+// slowMarks are the two marks of a slow end of expiration that one breath
+// gives the pool, each relative and with its standard error: flatten,
+// 1 − τ/τ_end, how much flatter the flow–volume curve is over the last
+// third of the expiration than over its middle (from the slope of the
+// last third, whatever its r²), and departure, how far the end-expiratory
+// flow lies above the mid-expiration flow–volume line, as a fraction of
+// that flow. NaN where they cannot be formed.
+type slowMarks struct {
+	flatten, flattenSE     float64
+	departure, departureSE float64
+}
+
+// slowPool keeps the marks of a slow end over the recent breaths that were
+// still emptying. Units with unequal time constants make both positive: the
+// slow units empty last, so the end of the flow–volume curve is flatter
+// than its middle (Lourens MS et al., "Expiratory time constants in
+// mechanically ventilated patients with and without COPD", Intensive Care
+// Med 2000;26:1612). On one breath of a lung whose time constants differ
+// 3–10 times they are a few per cent, inside the noise of one breath, and
+// the breath's own test (slowEndRatio, tauDepartureLPS) seldom fires; over
+// the recent breaths they show. A single linear compartment gives 0 for
+// both, a resistance that grows with flow a faster end (both negative).
+// docs/analysis.md, "Slow end over many breaths".
 type slowPool struct {
-	ratio, dep, depW [slowPoolN]float64
-	n, next          int
+	m       [slowPoolN]slowMarks
+	n, next int
 }
 
 // slowPoolN is how many breaths the pool keeps and slowPoolMin how many
-// it needs before it speaks. The end is slow when the median ratio is at
-// least slowPoolRatio, or when the inverse-variance mean of the departures
-// (Hedges LV, Olkin I, "Statistical Methods for Meta-Analysis", 1985) is at
-// least slowPoolDeparture and slowPoolZ of its standard errors. Breaths
-// under slowPoolMinPEEPiCmH2O neither enter the pool nor are flagged from
-// it: their end-expiratory flow is too small for the marks to mean
-// anything, and a bound under it is not worth stating. Our choices, set on
-// the acceptance grid (docs/sweep.md): they flag 2.4 % of the breaths of
-// single linear compartments and under 0.1 % of those of Rohrer lungs.
+// weighable marks of a kind it needs before that kind speaks. The end is
+// slow when the inverse-variance mean of either mark over the kept breaths
+// (Hedges LV, Olkin I, "Statistical Methods for Meta-Analysis", 1985) is
+// at least its floor (slowPoolFlatten, slowPoolDeparture) and slowPoolZ of
+// its standard errors. Breaths under slowPoolMinPEEPiCmH2O neither enter
+// the pool nor are flagged from it: their end-expiratory flow is too small
+// for the marks to mean anything, and a bound under it is not worth
+// stating. Our choices, set on the acceptance grid (docs/sweep.md): the
+// pooled flag falls there on 2.5 % of the breaths of single linear
+// compartments and 13 of 77 460 of Rohrer lungs.
 const (
 	slowPoolN             = 15
 	slowPoolMin           = 8
-	slowPoolRatio         = 1.045
+	slowPoolFlatten       = 0.03
 	slowPoolDeparture     = 0.02
 	slowPoolZ             = 3
 	slowPoolMinPEEPiCmH2O = 1.0
 )
 
-// add keeps the marks of one breath; a NaN mark is skipped by the pool.
-func (p *slowPool) add(tauRatio, departure, departureSE float64) {
-	p.ratio[p.next], p.dep[p.next], p.depW[p.next] = tauRatio, departure, 1/(departureSE*departureSE)
+// add keeps the marks of one breath.
+func (p *slowPool) add(m slowMarks) {
+	p.m[p.next] = m
 	p.next = (p.next + 1) % slowPoolN
 	if p.n < slowPoolN {
 		p.n++
@@ -54,49 +62,39 @@ func (p *slowPool) add(tauRatio, departure, departureSE float64) {
 // slow reports whether the kept breaths say the end of expiration is
 // slower than its middle.
 func (p *slowPool) slow() bool {
-	if poolMedian(p.ratio[:p.n]) >= slowPoolRatio {
-		return true
-	}
-	var sw, swd float64
-	k := 0
+	var fl, dep weighedMean
 	for i := range p.n {
-		d, w := p.dep[i], p.depW[i]
-		if math.IsNaN(d) || math.IsInf(d, 0) || !(w > 0) || math.IsInf(w, 0) {
-			continue
-		}
-		sw += w
-		swd += w * d
-		k++
+		m := &p.m[i]
+		fl.add(m.flatten, m.flattenSE)
+		dep.add(m.departure, m.departureSE)
 	}
-	if k < slowPoolMin {
-		return false
-	}
-	mean := swd / sw
-	return mean >= slowPoolDeparture && mean*math.Sqrt(sw) >= slowPoolZ
+	return fl.shows(slowPoolFlatten) || dep.shows(slowPoolDeparture)
 }
 
-// poolMedian returns the median of the finite values of v (at most
-// slowPoolN of them), NaN when fewer than slowPoolMin are finite. It sorts
-// a copy on the stack: no allocation.
-func poolMedian(v []float64) float64 {
-	var s [slowPoolN]float64
-	k := 0
-	for _, x := range v {
-		if math.IsNaN(x) || math.IsInf(x, 0) {
-			continue
-		}
-		j := k
-		for ; j > 0 && s[j-1] > x; j-- {
-			s[j] = s[j-1]
-		}
-		s[j] = x
-		k++
+// weighedMean accumulates an inverse-variance weighted mean.
+type weighedMean struct {
+	sw, swx float64
+	k       int
+}
+
+// add weighs x by 1/se²; a non-finite x or a standard error that is not
+// positive and finite is left out.
+func (w *weighedMean) add(x, se float64) {
+	v := 1 / (se * se)
+	if math.IsNaN(x) || math.IsInf(x, 0) || !(v > 0) || math.IsInf(v, 0) {
+		return
 	}
-	if k < slowPoolMin {
-		return math.NaN()
+	w.sw += v
+	w.swx += v * x
+	w.k++
+}
+
+// shows reports whether the mean of at least slowPoolMin values is at
+// least floor and slowPoolZ of its standard errors (1/√Σw).
+func (w *weighedMean) shows(floor float64) bool {
+	if w.k < slowPoolMin {
+		return false
 	}
-	if k%2 == 1 {
-		return s[k/2]
-	}
-	return (s[k/2-1] + s[k/2]) / 2
+	mean := w.swx / w.sw
+	return mean >= floor && mean*math.Sqrt(w.sw) >= slowPoolZ
 }

@@ -2,99 +2,96 @@ package analyze
 
 import (
 	"math"
-	"slices"
 	"testing"
+
+	"gonum.org/v1/gonum/stat"
 )
 
-// TestPoolMedian checks the pool's median against the definition computed
-// with the standard library's sort (slices.Sort): the middle value, or the
-// mean of the two middle ones; NaN and ±Inf skipped; NaN below slowPoolMin
-// finite values.
-func TestPoolMedian(t *testing.T) {
-	nan, inf := math.NaN(), math.Inf(1)
-	for _, tt := range []struct {
-		name string
-		v    []float64
-	}{
-		{"odd", []float64{1.2, 0.9, 1.1, 1.0, 1.3, 0.8, 1.05, 1.15, 0.95}},
-		{"even", []float64{3, 1, 4, 1, 5, 9, 2, 6}},
-		{"full", []float64{15, 14, 13, 12, 11, 10, 9, 8, 7, 6, 5, 4, 3, 2, 1}},
-		{"with NaN and Inf", []float64{nan, 1, 2, inf, 3, 4, -inf, 5, 6, 7, 8, nan}},
-		{"too few", []float64{1, 2, 3, nan, nan, nan, nan, nan}},
-	} {
-		t.Run(tt.name, func(t *testing.T) {
-			var finite []float64
-			for _, x := range tt.v {
-				if !math.IsNaN(x) && !math.IsInf(x, 0) {
-					finite = append(finite, x)
-				}
-			}
-			slices.Sort(finite)
-			want := math.NaN()
-			if k := len(finite); k >= slowPoolMin {
-				want = (finite[(k-1)/2] + finite[k/2]) / 2
-			}
-			got := poolMedian(tt.v)
-			if !(got == want || math.IsNaN(got) && math.IsNaN(want)) {
-				t.Errorf("median %v, want %v", got, want)
-			}
-		})
+// TestLinregSlope checks the slope and its standard error against gonum's
+// least-squares line (stat.LinearRegression) and the textbook two-pass
+// standard error of a slope, s/√Σ(x − x̄)² with s² the residual sum of
+// squares over n − 2 (Draper NR, Smith H, "Applied Regression Analysis",
+// 3rd ed., 1998).
+func TestLinregSlope(t *testing.T) {
+	xs := []float64{0.00, 0.05, 0.10, 0.15, 0.20, 0.25, 0.30, 0.35, 0.40}
+	ys := make([]float64, len(xs))
+	for i, x := range xs {
+		// Flow falling with exhaled volume, τ 0.8 s, and a wobble.
+		ys[i] = 0.4 - x/0.8 + 0.003*math.Sin(7*float64(i))
+	}
+	var l linreg
+	for i := range xs {
+		l.add(xs[i], ys[i])
+	}
+	b, se := l.slope()
+	alpha, beta := stat.LinearRegression(xs, ys, nil, false)
+	mx := stat.Mean(xs, nil)
+	var ss, sxx float64
+	for i, x := range xs {
+		r := ys[i] - alpha - beta*x
+		ss += r * r
+		sxx += (x - mx) * (x - mx)
+	}
+	wantSE := math.Sqrt(ss/float64(len(xs)-2)) / math.Sqrt(sxx)
+	if math.Abs(b-beta) > 1e-12 || math.Abs(se-wantSE) > 1e-9*wantSE {
+		t.Errorf("slope %.12g ± %.6g, want %.12g ± %.6g", b, se, beta, wantSE)
+	}
+	var short linreg
+	short.add(0, 1)
+	short.add(1, 0)
+	if b, se := short.slope(); !math.IsNaN(b) || !math.IsNaN(se) {
+		t.Errorf("two points: slope %v ± %v, want NaN", b, se)
 	}
 }
 
-// TestSlowPoolKeepsRecent checks that the pool speaks from slowPoolMin
-// breaths on and forgets the oldest after slowPoolN: a lung whose marks
-// turn from those of one compartment (ratio 1, departure 0) to a slow end
-// is said slow once enough of the kept breaths are. By the median ratio
-// alone (1.1; departures unknown) that is most of them, slowPoolN/2 + 1.
-// By the departures alone (0.1 with a standard error se; ratios unknown),
-// k slow breaths of slowPoolN give an inverse-variance mean of
-// 0.1·k/slowPoolN with a standard error se/√slowPoolN (equal weights), so
-// the first k that passes both slowPoolDeparture and slowPoolZ standard
-// errors (derived); with se = 0.5 the mean can never reach slowPoolZ
-// standard errors.
-func TestSlowPoolKeepsRecent(t *testing.T) {
+// TestSlowPoolTurns checks when the pool says slow. A lung whose marks
+// turn from those of one compartment (0) to a slow end (m, standard error
+// se) is said slow after k slow breaths, the first k for which the
+// inverse-variance mean m·k/slowPoolN (equal weights) is at least the
+// mark's floor and slowPoolZ of its standard errors se/√slowPoolN
+// (derived). Each mark alone (the other NaN) is checked; a mark too noisy
+// for slowPoolZ standard errors never says slow; nothing is said before
+// slowPoolMin breaths.
+func TestSlowPoolTurns(t *testing.T) {
 	nan := math.NaN()
-	var p slowPool
-	for i := range slowPoolMin - 1 {
-		p.add(1.2, 0.2, 0.05)
-		if p.slow() {
-			t.Fatalf("slow after %d breaths, before %d", i+1, slowPoolMin)
-		}
-	}
 	n := float64(slowPoolN)
-	firstK := func(se float64) int {
+	firstK := func(m, se, floor float64) int {
 		for k := 1; k <= slowPoolN; k++ {
-			mean := 0.1 * float64(k) / n
-			if mean >= slowPoolDeparture && mean/(se/math.Sqrt(n)) >= slowPoolZ {
+			mean := m * float64(k) / n
+			if mean >= floor && mean/(se/math.Sqrt(n)) >= slowPoolZ {
 				return k
 			}
 		}
-		return -1
+		return 2 * slowPoolN // never
+	}
+	var early slowPool
+	for i := range slowPoolMin - 1 {
+		early.add(slowMarks{0.2, 0.01, 0.2, 0.01})
+		if early.slow() {
+			t.Fatalf("slow after %d breaths, before %d", i+1, slowPoolMin)
+		}
 	}
 	for _, tt := range []struct {
-		name           string
-		ratio, dep, se float64
-		want           int
+		name       string
+		base, slow slowMarks
+		want       int
 	}{
-		{"ratio", 1.1, nan, 0.05, slowPoolN/2 + 1},
-		{"departure", nan, 0.1, 0.05, firstK(0.05)},
-		{"noisy departure", nan, 0.1, 0.5, firstK(0.5)},
+		{"flatten", slowMarks{0, 0.05, nan, nan}, slowMarks{0.1, 0.05, nan, nan}, firstK(0.1, 0.05, slowPoolFlatten)},
+		{"departure", slowMarks{nan, nan, 0, 0.05}, slowMarks{nan, nan, 0.1, 0.05}, firstK(0.1, 0.05, slowPoolDeparture)},
+		{"noisy flatten", slowMarks{0, 0.5, nan, nan}, slowMarks{0.1, 0.5, nan, nan}, 2 * slowPoolN},
+		{"faster end", slowMarks{0, 0.05, 0, 0.05}, slowMarks{-0.2, 0.05, -0.2, 0.05}, 2 * slowPoolN},
 	} {
 		t.Run(tt.name, func(t *testing.T) {
-			p := slowPool{}
+			var p slowPool
 			for range 3 * slowPoolN {
-				p.add(1, 0, tt.se)
+				p.add(tt.base)
 			}
 			if p.slow() {
 				t.Fatal("one compartment said slow")
 			}
 			turned := 0
 			for ; !p.slow() && turned < 2*slowPoolN; turned++ {
-				p.add(tt.ratio, tt.dep, tt.se)
-			}
-			if tt.want < 0 {
-				tt.want = 2 * slowPoolN // never
+				p.add(tt.slow)
 			}
 			if turned != tt.want {
 				t.Errorf("slow after %d slow breaths, want %d", turned, tt.want)

@@ -21,7 +21,7 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 	add := func(f string) { *flags = append(*flags, f) }
 	vteOnset := a.expStartV - a.volumeAt(endT)
 
-	tau, tauEnd, slowerEnd, departure, departureSE := a.timeConstants(b, flags, m, eef, eefSE, vteOnset, endT)
+	tau, tauEnd, slowerEnd, marks := a.timeConstants(b, flags, m, eef, eefSE, vteOnset, endT)
 	// A slow end: the last part empties with a longer time constant than
 	// the middle, and there is still measurable flow to empty.
 	// (or the end-expiratory flow lies above the mid-expiration line).
@@ -91,7 +91,7 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 		}
 	}
 	a.reportTrapping(b, flags, m, slow, leak)
-	a.poolSlowEnd(b, flags, m, slow, flowing, leak, tauEnd/b.TauS, departure, departureSE)
+	a.poolSlowEnd(b, flags, m, slow, flowing, leak, marks)
 }
 
 // poolSlowEnd keeps the marks of a slow end of a passive breath still
@@ -100,11 +100,11 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 // unequal time constants: its figures then read low, like those of a
 // breath flagged on its own (reportTrapping). The figures are left as
 // they are, and so are the detectors' readings (slowEndBound).
-func (a *Analyzer) poolSlowEnd(b *Breath, flags *[]string, m *mechanics, slow, flowing, leak bool, tauRatio, departure, departureSE float64) {
+func (a *Analyzer) poolSlowEnd(b *Breath, flags *[]string, m *mechanics, slow, flowing, leak bool, marks slowMarks) {
 	if !flowing || m.effort || !(b.PEEPiCmH2O >= slowPoolMinPEEPiCmH2O) {
 		return
 	}
-	a.slowPool.add(tauRatio, departure, departureSE)
+	a.slowPool.add(marks)
 	if !slow && !leak && a.slowPool.slow() {
 		*flags = append(*flags, FlagPEEPiBound, FlagPEEPiBoundPooled)
 	}
@@ -114,9 +114,8 @@ func (a *Analyzer) poolSlowEnd(b *Breath, flags *[]string, m *mechanics, slow, f
 // constants of b and flags a departure from a single one. It returns the
 // time constant to use (the fit's R/E when the slope fails), the
 // end-expiratory one, whether the end is slower than the middle, and the
-// departure of the end-expiratory flow from the mid-expiration line as a
-// fraction of that flow (NaN when either is missing).
-func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, eefSE, vteOnset, endT float64) (tau, tauEnd float64, slowerEnd bool, departure, departureSE float64) {
+// marks of a slow end for the pool (NaN where they cannot be formed).
+func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, eefSE, vteOnset, endT float64) (tau, tauEnd float64, slowerEnd bool, marks slowMarks) {
 	// Mid-expiration time constant from the flow–volume slope over 25–75 %
 	// of the exhaled volume (Lourens MS et al., Intensive Care Med
 	// 2000;26:1612: the slope of the expiratory flow–volume curve).
@@ -127,7 +126,13 @@ func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, 
 	// longer time constant empty last, so this slope is theirs.
 	tauEnd = a.tauLate(endT)
 	b.TauEndS = tauEnd
-	departure, departureSE = (eef-lineEEF)/eef, math.Hypot(eefSE, lineSE)/eef
+	// The marks of a slow end for the pool (slowPool): how much flatter the
+	// end of the flow–volume curve is than its middle, 1 − τ/τ_end from
+	// the slope of the last third (no r² gate: the pool weighs each breath
+	// by its standard error), and the departure of the end-expiratory flow
+	// from the mid-expiration line, both relative.
+	marks = slowMarks{flatten: 1 + a.lateSlope*b.TauS, flattenSE: a.lateSlopeSE * b.TauS,
+		departure: (eef - lineEEF) / eef, departureSE: math.Hypot(eefSE, lineSE) / eef}
 	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
 		*flags = append(*flags, FlagTauNonlinear)
 		slowerEnd = d > 0
@@ -139,7 +144,7 @@ func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, 
 			tau = m.r / m.e
 		}
 	}
-	return tau, tauEnd, slowerEnd, departure, departureSE
+	return tau, tauEnd, slowerEnd, marks
 }
 
 // reportTrapping chooses the reported intrinsic PEEP and trapped volume.
