@@ -32,7 +32,7 @@ func (a *Analyzer) finish() Breath {
 	b.Stream = a.stream
 	b.Seq = a.seq
 	a.seq++
-	endT := a.inspOnset(a.candT)
+	endT, eeT := a.inspOnset(a.candT)
 	a.nextStartT = endT
 
 	b.StartS = a.startT
@@ -53,11 +53,12 @@ func (a *Analyzer) finish() Breath {
 		b.PeakExpFlowLPM = 60 * math.Max(-seg.minF, 0)
 	}
 
-	// End of expiration, just before the onset: mean pressure, and flow
-	// extrapolated to the onset by a line fit so that a still-falling flow
-	// is read at the end, not at the middle of the window.
+	// End of expiration, just before the onset of the rise (eeT, within
+	// the sampling step before endT): mean pressure, and flow extrapolated
+	// to it by a line fit so that a still-falling flow is read at the end,
+	// not at the middle of the window.
 	eef, eefSE := math.NaN(), math.NaN()
-	if mp, fe, se, n := a.ring.window(endT-a.cfg.EndExpWindowS, endT); n > 0 {
+	if mp, fe, se, n := a.ring.window(eeT-a.cfg.EndExpWindowS, eeT); n > 0 {
 		b.PEEPCmH2O = mp
 		b.EndExpFlowLPM = 60 * math.Max(-fe, 0)
 		eef, eefSE = -fe, se

@@ -15,15 +15,21 @@ import (
 // V'ee = −V_trap/τ (derived from the equation of motion with the airway at
 // PEEP), so the end-expiratory flow read at the onset must equal the
 // simulator's trapped volume over τ = R·C whatever the rise time, and the
-// intrinsic PEEP must follow (R·|V'ee| = V_trap/C).
+// intrinsic PEEP must follow (R·|V'ee| = V_trap/C). At 25 and 50 Hz a
+// sample of a 0.4 s rise is 1.5 and 0.75 cmH2O apart, so the sample before
+// the onset may already be on the rise: the window must end where the rise
+// meets the baseline, not at that sample.
 func TestEndExpirationUnderPressureRise(t *testing.T) {
-	for _, rise := range []float64{0, 0.15, 0.3, 0.4} {
+	for _, tt := range []struct{ rise, fsHz float64 }{
+		{0, 100}, {0.15, 100}, {0.3, 100}, {0.4, 100}, {0.3, 25}, {0.4, 25}, {0.4, 50},
+	} {
+		rise := tt.rise
 		base := simulator.Steady{RCmH2OSPerL: 40, CMLPerCmH2O: 50, VtML: 500, FlowLPM: 50, RateBPM: 20, PEEPCmH2O: 5,
-			SampleRateHz: 100, DurationS: 60, PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3, Seed: 3}
+			SampleRateHz: tt.fsHz, DurationS: 60, PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3, Seed: 3}
 		sc := base.Scenario()
 		sc.Ventilator = simulator.Ventilator{Mode: simulator.ModePC, InspPressureCmH2O: 15, InspTimeS: 1,
 			RiseTimeS: rise, RateBPM: 20, PEEPCmH2O: 5}
-		var eefErr, peepiErr []float64
+		var eefErr, eefBias, peepiErr []float64
 		for _, p := range simulate(t, sc) {
 			if p.tr.Seq < 5 {
 				continue
@@ -31,16 +37,25 @@ func TestEndExpirationUnderPressureRise(t *testing.T) {
 			tau := 0.040 * 50
 			want := 60 * p.tr.TrappedML / 1000 / tau
 			eefErr = append(eefErr, math.Abs(p.b.EndExpFlowLPM-want))
+			eefBias = append(eefBias, p.b.EndExpFlowLPM-want)
 			peepiErr = append(peepiErr, math.Abs(p.b.PEEPiCmH2O-p.tr.PEEPiCmH2O))
 		}
 		if len(eefErr) < 10 {
-			t.Fatalf("rise %g: only %d breaths", rise, len(eefErr))
+			t.Fatalf("rise %g s, %g Hz: only %d breaths", rise, tt.fsHz, len(eefErr))
 		}
-		if m := median(eefErr); m > 0.5 {
-			t.Errorf("rise %g s: median |EEF − V_trap/τ| %.2f L/min, want ≤ 0.5", rise, m)
+		t.Logf("rise %g s, %g Hz: median |EEF − V_trap/τ| %.2f L/min (signed %.2f), intrinsic PEEP error %.2f cmH2O", rise, tt.fsHz, median(eefErr), median(eefBias), median(peepiErr))
+		// Measured 3 December 2026: at most 0.24 L/min, a signed median
+		// within ±0.05 and 0.11 cmH2O; with the window ending at the
+		// sample before the onset, 0.57 L/min (signed −0.21) and
+		// 0.18 cmH2O at 25 Hz, −0.27 L/min signed at 0.4 s and 100 Hz.
+		if m := median(eefErr); m > 0.3 {
+			t.Errorf("rise %g s, %g Hz: median |EEF − V_trap/τ| %.2f L/min, want ≤ 0.3", rise, tt.fsHz, m)
 		}
-		if m := median(peepiErr); m > 0.5 {
-			t.Errorf("rise %g s: median intrinsic PEEP error %.2f cmH2O, want ≤ 0.5", rise, m)
+		if m := median(eefBias); math.Abs(m) > 0.15 {
+			t.Errorf("rise %g s, %g Hz: median EEF − V_trap/τ %.2f L/min, want within ±0.15 (the rise read as expiration)", rise, tt.fsHz, m)
+		}
+		if m := median(peepiErr); m > 0.15 {
+			t.Errorf("rise %g s, %g Hz: median intrinsic PEEP error %.2f cmH2O, want ≤ 0.15", rise, tt.fsHz, m)
 		}
 	}
 }
