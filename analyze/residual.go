@@ -174,38 +174,42 @@ func (l *linreg) add(x, y float64) {
 	l.syy += y * y
 }
 
+// ols returns the means of x and y, the slope, the residual standard
+// deviation s (over n − 2) and Sxx of the ordinary least-squares line; ok
+// is false below three points or when x does not vary.
+func (l *linreg) ols() (mx, my, b, s, cxx float64, ok bool) {
+	if l.n < 3 {
+		return
+	}
+	mx, my = l.sx/l.n, l.sy/l.n
+	cxx = l.sxx - l.n*mx*mx
+	cxy := l.sxy - l.n*mx*my
+	if !(cxx > 0) {
+		return
+	}
+	b = cxy / cxx
+	s = math.Sqrt(math.Max(0, l.syy-l.n*my*my-b*cxy) / (l.n - 2))
+	return mx, my, b, s, cxx, true
+}
+
 // predict returns the fitted y at x and its standard error (ordinary least
 // squares: s·√(1/n + (x − x̄)²/Sxx)); NaN below three points.
 func (l *linreg) predict(x float64) (y, se float64) {
-	if l.n < 3 {
+	mx, my, b, s, cxx, ok := l.ols()
+	if !ok {
 		return math.NaN(), math.NaN()
 	}
-	mx, my := l.sx/l.n, l.sy/l.n
-	cxx := l.sxx - l.n*mx*mx
-	cxy := l.sxy - l.n*mx*my
-	if !(cxx > 0) {
-		return math.NaN(), math.NaN()
-	}
-	b := cxy / cxx
-	ss := math.Max(0, l.syy-l.n*my*my-b*cxy)
-	return my + b*(x-mx), math.Sqrt(ss/(l.n-2)) * math.Sqrt(1/l.n+(x-mx)*(x-mx)/cxx)
+	return my + b*(x-mx), s * math.Sqrt(1/l.n+(x-mx)*(x-mx)/cxx)
 }
 
 // slope returns the fitted slope and its standard error (ordinary least
 // squares: s/√Sxx); NaN below three points.
 func (l *linreg) slope() (b, se float64) {
-	if l.n < 3 {
+	_, _, b, s, cxx, ok := l.ols()
+	if !ok {
 		return math.NaN(), math.NaN()
 	}
-	mx, my := l.sx/l.n, l.sy/l.n
-	cxx := l.sxx - l.n*mx*mx
-	cxy := l.sxy - l.n*mx*my
-	if !(cxx > 0) {
-		return math.NaN(), math.NaN()
-	}
-	b = cxy / cxx
-	ss := math.Max(0, l.syy-l.n*my*my-b*cxy)
-	return b, math.Sqrt(ss / (l.n - 2) / cxx)
+	return b, s / math.Sqrt(cxx)
 }
 
 // r2 returns the squared correlation of x and y, or NaN below three
