@@ -56,7 +56,8 @@ func inflowShare(b *Breath) float64 {
 }
 
 // boundMagnitude returns the intrinsic PEEP the detector reads for a breath
-// whose figures are a slow-end bound (flag peepi-bound): its trapped-volume
+// whose figures are a slow-end bound (flag peepi-bound, from its own
+// expiration or from the recent breaths): its trapped-volume
 // bound over the single-compartment compliance, or the fit route when that
 // is larger; NaN when it cannot be formed (the record's own figure is then
 // used). The record carries a lower bound that needs no compliance
@@ -67,7 +68,7 @@ func inflowShare(b *Breath) float64 {
 // median for a trapped volume read from below, at the price of
 // overstating on some breaths.
 func boundMagnitude(b *Breath) float64 {
-	if !slowEndBound(b) || !(b.CMLPerCmH2O > 0) || math.IsNaN(b.TrappedML) {
+	if !b.HasFlag(FlagPEEPiBound) || !(b.CMLPerCmH2O > 0) || math.IsNaN(b.TrappedML) {
 		return math.NaN()
 	}
 	return math.Max(b.TrappedML/b.CMLPerCmH2O, nanTo0(b.PEEPiFitCmH2O))
@@ -75,10 +76,10 @@ func boundMagnitude(b *Breath) float64 {
 
 // slowEndBound reports whether the breath's own expiration made its
 // figures a slow-end bound (flag peepi-bound without peepi-bound-pooled).
-// A breath flagged from the recent breaths keeps the figures it would
-// have had unflagged, and the detectors read them as they did before the
-// pooled flag existed (3 December 2026), which is what their thresholds
-// were set on.
+// A breath flagged from the recent breaths keeps the intrinsic PEEP it
+// would have had unflagged, so the offset and inflow shares and the
+// plateau estimate treat it as unflagged, as before the pooled flag
+// existed (3 December 2026); only boundMagnitude reads it as a bound.
 func slowEndBound(b *Breath) bool {
 	return b.HasFlag(FlagPEEPiBound) && !b.HasFlag(FlagPEEPiBoundPooled)
 }

@@ -19,7 +19,7 @@ import (
 // 3 December 2026); the pooled marks must flag at least 90 % of the
 // steady breaths peepi-bound, and every flagged figure must be an honest
 // bound: not above the static value (within 0.25 cmH2O for the noise) and
-// not under half of it.
+// not under half of it, and the trapped volume not above the static one.
 //
 // Two equal units are one compartment (τ = RC, the closed form of a single
 // unit): the estimate must stay within 0.5 cmH2O of it and the pooled flag
@@ -69,6 +69,12 @@ func TestSlowEndPooled(t *testing.T) {
 				bound++
 				if b.PEEPiCmH2O > want+0.25 || b.PEEPiCmH2O < want/2 {
 					t.Errorf("breath %d: bound %.2f cmH2O, static %.2f", b.Seq, b.PEEPiCmH2O, want)
+				}
+				// The trapped volume, from the slope of the last third
+				// on a pooled breath, stays under the static one (its
+				// worth of 0.25 cmH2O for the noise).
+				if static := want * 2 * c; b.TrappedML > static+0.25*2*c {
+					t.Errorf("breath %d: trapped volume %.0f mL over the static %.0f mL", b.Seq, b.TrappedML, static)
 				}
 			}
 			t.Logf("%d steady breaths: %d flagged %s, %d from the pool", len(steady), bound, analyze.FlagPEEPiBound, pooled)

@@ -98,15 +98,27 @@ func (a *Analyzer) trapping(b *Breath, flags *[]string, m *mechanics, eef, eefSE
 // emptying (slowPool), and flags a breath whose own marks did not make it
 // a bound when those of the recent breaths say its lung has units with
 // unequal time constants: its figures then read low, like those of a
-// breath flagged on its own (reportTrapping). The figures are left as
-// they are, and so are the detectors' readings (slowEndBound).
+// breath flagged on its own (reportTrapping). Its intrinsic PEEP is left
+// as it is; its trapped volume becomes, as on a breath flagged on its own,
+// at least the end-expiratory flow times the time constant of the last
+// third of the expiration, when that slope is determined (three standard
+// errors) and slower than the middle: the slow units' share, still an
+// estimate from below (Cauchy–Schwarz, reportTrapping). The air-trapping
+// detector reads such a breath as it reads one flagged on its own
+// (boundMagnitude); the other detectors as an unflagged one (slowEndBound).
 func (a *Analyzer) poolSlowEnd(b *Breath, flags *[]string, m *mechanics, slow, flowing, leak bool, marks slowMarks) {
 	if !flowing || m.effort || !(b.PEEPiCmH2O >= slowPoolMinPEEPiCmH2O) {
 		return
 	}
 	a.slowPool.add(marks)
-	if !slow && !leak && a.slowPool.slow() {
-		*flags = append(*flags, FlagPEEPiBound, FlagPEEPiBoundPooled)
+	if slow || leak || !a.slowPool.slow() {
+		return
+	}
+	*flags = append(*flags, FlagPEEPiBound, FlagPEEPiBoundPooled)
+	if a.lateSlope < -slowPoolZ*a.lateSlopeSE {
+		if tl := -1 / a.lateSlope; tl > b.TauS && tl <= maxTauS {
+			b.TrappedML = math.Max(b.TrappedML, b.EndExpFlowLPM/60*tl*1000)
+		}
 	}
 }
 
