@@ -59,8 +59,9 @@ const (
 	FlagRohrerPooled = "rohrer-pooled"
 	// FlagPEEPiBoundPooled: with peepi-bound, the slow end shows on the
 	// recent breaths taken together (slowPool), not on this one alone; the
-	// figures are this breath's usual estimates, which units with unequal
-	// time constants make read low.
+	// intrinsic PEEP is this breath's usual estimate, which units with
+	// unequal time constants make read low, and the trapped volume at
+	// least the end-expiratory flow times the end-expiratory time constant.
 	FlagPEEPiBoundPooled = "peepi-bound-pooled"
 	// FlagOffsetCorrected: the volumes and mechanics were corrected for a
 	// flow offset and a pressure-proportional leak estimated over many
@@ -188,10 +189,10 @@ func (a *Analyzer) Stream() string { return a.stream }
 // was not finite or did not increase.
 func (a *Analyzer) Skipped() uint64 { return a.skipped }
 
-// Reset forgets the open breath, the sample history, the pooled
-// Rohrer K2 and the pooled marks of a slow end, so that no breath spans a gap or a reconnection. Breath
-// numbering continues; the flow offset and leak estimates, which belong to
-// the sensor, are kept.
+// Reset forgets the open breath, the sample history, the pooled Rohrer K2
+// and the pooled marks of a slow end, so that no breath spans a gap or a
+// reconnection. Breath numbering continues; the flow offset and leak
+// estimates, which belong to the sensor, are kept.
 func (a *Analyzer) Reset() {
 	a.ph = phaseWait
 	a.havePrev = false
