@@ -159,9 +159,6 @@ type Analyzer struct {
 	settings    settingsTracker
 	k2Pool      rohrerPool // K2 of the recent breaths (see rohrerPool)
 	slowPool    slowPool   // marks of a slow end over the recent breaths
-	// The slope of flow on exhaled volume over the last third of the
-	// latest expiration and its standard error (tauLate).
-	lateSlope, lateSlopeSE float64
 
 	ring ring
 	last Breath // the breath completed by the latest push

@@ -108,7 +108,7 @@ func TestTwoExpRemainingVolume(t *testing.T) {
 	}
 	// The end-expiratory slope is a lower bound of that volume
 	// (Cauchy–Schwarz on the flow-weighted time constants; derived).
-	tauEnd := a.tauLate(1 + te)
+	tauEnd, _, _ := a.tauLate(1 + te)
 	eef := a1*math.Exp(-te/tau1) + a2*math.Exp(-te/tau2)
 	if !(eef*tauEnd <= want*1.01) || !(eef*tauEnd > 0.5*want) {
 		t.Errorf("EEF × τ_end = %.4f L, want a lower bound of %.4f L and above half of it", eef*tauEnd, want)

@@ -302,7 +302,10 @@ func (a *Analyzer) tauFlowVolume(vte, lo, hi, endT float64) (tau, endFlow, endSE
 // part of the curve). The last third in time rather than in volume: units
 // with a long time constant hold little of the exhaled volume but most of
 // the late flow, so a volume window would still see the fast units.
-func (a *Analyzer) tauLate(endT float64) float64 {
+//
+// It also returns the slope itself and its standard error, whatever the
+// line's r² (the marks of a slow end, slowMarks, weigh it by its error).
+func (a *Analyzer) tauLate(endT float64) (tau, slope, slopeSE float64) {
 	from := a.expStartT + (endT-a.expStartT)*2/3
 	var n, sx, sy, sxx, sxy, syy float64 // linreg.add in registers
 	for i := 0; i < a.buf.n; i++ {
@@ -322,10 +325,10 @@ func (a *Analyzer) tauLate(endT float64) float64 {
 		syy += y * y
 	}
 	l := linreg{n, sx, sy, sxx, sxy, syy}
-	a.lateSlope, a.lateSlopeSE = l.slope()
-	tau := l.tau()
+	slope, slopeSE = l.slope()
+	tau = l.tau()
 	if math.IsNaN(tau) || !(l.r2() >= tauMinR2) {
-		return math.NaN()
+		tau = math.NaN()
 	}
-	return tau
+	return tau, slope, slopeSE
 }

@@ -115,8 +115,10 @@ func (a *Analyzer) poolSlowEnd(b *Breath, flags *[]string, m *mechanics, slow, f
 		return
 	}
 	*flags = append(*flags, FlagPEEPiBound, FlagPEEPiBoundPooled)
-	if a.lateSlope < -slowPoolZ*a.lateSlopeSE {
-		if tl := -1 / a.lateSlope; tl > b.TauS && tl <= maxTauS {
+	// 1 − flatten is τ/τ_end, and its standard error that of the slope
+	// times τ (slowMarks).
+	if k := 1 - marks.flatten; marks.flatten > 0 && k > slowPoolZ*marks.flattenSE {
+		if tl := b.TauS / k; tl <= maxTauS {
 			b.TrappedML = math.Max(b.TrappedML, b.EndExpFlowLPM/60*tl*1000)
 		}
 	}
@@ -136,16 +138,17 @@ func (a *Analyzer) timeConstants(b *Breath, flags *[]string, m *mechanics, eef, 
 	// End-expiratory time constant from the last third of the expiration
 	// (same source: the slope of the last part of the curve). Units with a
 	// longer time constant empty last, so this slope is theirs.
-	tauEnd = a.tauLate(endT)
+	tauEnd, lateSlope, lateSlopeSE := a.tauLate(endT)
 	b.TauEndS = tauEnd
 	// The marks of a slow end for the pool (slowPool): how much flatter the
 	// end of the flow–volume curve is than its middle, 1 − τ/τ_end from
 	// the slope of the last third (no r² gate: the pool weighs each breath
 	// by its standard error), and the departure of the end-expiratory flow
 	// from the mid-expiration line, both relative.
-	marks = slowMarks{flatten: 1 + a.lateSlope*b.TauS, flattenSE: a.lateSlopeSE * b.TauS,
-		departure: (eef - lineEEF) / eef, departureSE: math.Hypot(eefSE, lineSE) / eef}
-	if d := eef - lineEEF; math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*math.Hypot(eefSE, lineSE) {
+	d, dSE := eef-lineEEF, math.Hypot(eefSE, lineSE)
+	marks = slowMarks{flatten: 1 + lateSlope*b.TauS, flattenSE: lateSlopeSE * b.TauS,
+		departure: d / eef, departureSE: dSE / eef}
+	if math.Abs(d) > tauDepartureLPS && math.Abs(d) > 4*dSE {
 		*flags = append(*flags, FlagTauNonlinear)
 		slowerEnd = d > 0
 	}
