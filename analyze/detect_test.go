@@ -91,6 +91,62 @@ func TestTheilSenIgnoresOutliers(t *testing.T) {
 	}
 }
 
+// TestTheilSenBandIsExact checks that the slope selected within a band
+// equals the median of all pairwise slopes sorted by the standard library
+// (the estimator's definition: Sen PK, J Am Stat Assoc 1968;63:1379), on
+// windows with trends, outliers, ties of values and repeated times, and
+// that the band is what usually finds it.
+func TestTheilSenBandIsExact(t *testing.T) {
+	rng := rand.New(rand.NewPCG(5, 9))
+	banded := 0
+	const trials = 400
+	for trial := range trials {
+		n := 23 + rng.IntN(74) // 253 to 4,560 pairs
+		xs, ys := make([]float64, n), make([]float64, n)
+		x := 0.0
+		for i := range n {
+			x += (2 + rng.Float64()) / 60 // breath times, in minutes
+			xs[i] = x
+			ys[i] = 20 + 0.1*float64(trial%7-3)*float64(i) + rng.NormFloat64()
+			switch {
+			case trial%5 == 1:
+				ys[i] = math.Round(ys[i]) // ties of slopes
+			case trial%5 == 2 && rng.IntN(5) == 0:
+				ys[i] = 1000 // outliers
+			case trial%5 == 3 && i > 0 && rng.IntN(10) == 0:
+				xs[i] = xs[i-1] // a repeated time: the whole selection
+			}
+		}
+		var all []float64
+		for i := range n {
+			for j := i + 1; j < n; j++ {
+				if dx := xs[j] - xs[i]; dx != 0 {
+					all = append(all, (ys[j]-ys[i])/dx)
+				}
+			}
+		}
+		slices.Sort(all)
+		m := len(all)
+		want := (all[(m-1)/2] + all[m/2]) / 2
+		got, _ := detTheilSen(xs, ys, nil)
+		if got != want {
+			t.Fatalf("trial %d (n %d): slope %v, want %v", trial, n, got, want)
+		}
+		buf := make([]float64, n*(n-1)/2)
+		if s, ok := theilSenBand(xs, ys, buf); ok {
+			banded++
+			if s != want {
+				t.Fatalf("trial %d: band slope %v, want %v", trial, s, want)
+			}
+		}
+	}
+	// Four-fifths of the windows have increasing times; of those the band
+	// should miss only about one in ten thousand (four standard deviations).
+	if banded < trials*4/5-4 {
+		t.Errorf("the band found the median in %d of %d windows", banded, trials)
+	}
+}
+
 func TestAirTrappingOnReferenceCases(t *testing.T) {
 	cfg := DefaultDetectorConfig().AirTrapping
 	t.Run("case 1 traps", func(t *testing.T) {
@@ -453,6 +509,53 @@ func TestDetMedianMatchesSort(t *testing.T) {
 		}
 		if got := detMedian(vs); got != want {
 			t.Fatalf("n=%d: median %v, want %v", n, got, want)
+		}
+	}
+}
+
+// TestDetSelectMatchesSort checks the selection against the sorted slice
+// (sort from the standard library) at every rank, on lengths below and
+// well above the size where Floyd and Rivest's SELECT narrows by a sample
+// first, on inputs with ties, already sorted, reversed and constant, the
+// orders a trend and a flat window produce.
+func TestDetSelectMatchesSort(t *testing.T) {
+	rng := rand.New(rand.NewPCG(11, 3))
+	for _, n := range []int{1, 2, 3, 17, 600, 601, 602, 1500, 4560} {
+		for _, shape := range []string{"random", "ties", "sorted", "reversed", "constant"} {
+			vs := make([]float64, n)
+			for i := range vs {
+				switch shape {
+				case "random":
+					vs[i] = rng.NormFloat64()
+				case "ties":
+					vs[i] = math.Round(rng.NormFloat64() * 3)
+				case "sorted":
+					vs[i] = float64(i) * 0.5
+				case "reversed":
+					vs[i] = float64(n - i)
+				case "constant":
+					vs[i] = 2.5
+				}
+			}
+			ref := append([]float64(nil), vs...)
+			slices.Sort(ref)
+			step := max(1, n/97) // every rank on short slices, about a hundred on long ones
+			for k := 0; k < n; k += step {
+				w := append([]float64(nil), vs...)
+				if got := detSelect(w, k); got != ref[k] {
+					t.Fatalf("%s n=%d k=%d: %v, want %v", shape, n, k, got, ref[k])
+				}
+				for i := range k {
+					if w[i] > w[k] {
+						t.Fatalf("%s n=%d k=%d: w[%d]=%v above the k-th %v", shape, n, k, i, w[i], w[k])
+					}
+				}
+				for i := k + 1; i < n; i++ {
+					if w[i] < w[k] {
+						t.Fatalf("%s n=%d k=%d: w[%d]=%v below the k-th %v", shape, n, k, i, w[i], w[k])
+					}
+				}
+			}
 		}
 	}
 }
