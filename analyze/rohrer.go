@@ -1,9 +1,6 @@
 package analyze
 
-import (
-	"iter"
-	"math"
-)
+import "math"
 
 // rohrerFit is the equation of motion with a flow-dependent resistance,
 // P = K1·V' + K2·V'·|V'| + E·V + P0 (Rohrer F, 1915), fitted by least
@@ -51,12 +48,16 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 		}
 	}
 	lim := 0.15 * maxF
-	s, sg, n := rohrerSums(pts, endT, lim)
+	// The points are gathered once for the three passes (sums, noise,
+	// variance); an array on the stack, not a buffer kept per stream.
+	var buf [bufCap]fitPoint
+	fp := collectFitPoints(pts, endT, lim, buf[:0])
+	s, sg, n := rohrerSums(fp)
 	if n < 12 {
 		return rohrerFit{}
 	}
 	obs := s
-	v := sg.noiseVar(pts, endT, lim)
+	v := sg.noiseVar(fp)
 	if v > 0 {
 		sg.correct(&s, n, v)
 	}
@@ -74,7 +75,7 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	// least squares; with the noise correction, the Wald statistic with
 	// the sandwich variance of the corrected estimator (k2Var), which
 	// counts what the correction adds to the scatter.
-	f.k2Var, f.s, f.maxF = k2Var(pts, endT, lim, &s, &full, v), s, maxF
+	f.k2Var, f.s, f.maxF = k2Var(fp, &s, &full, v), s, maxF
 	stat := gain / (sse / float64(n-4))
 	if v > 0 {
 		stat = f.k2 * f.k2 / f.k2Var
@@ -84,28 +85,34 @@ func fitRohrer(pts []point, endT float64) rohrerFit {
 	return f
 }
 
-// fitPoints yields the index and point of each point of pts before endT
-// that is not beside a step of flow larger than lim (a point next to the
-// valves switching carries the sampling's timing error times the
-// resistance): the points of the Rohrer fit.
-func fitPoints(pts []point, endT, lim float64) iter.Seq2[int, *point] {
-	return func(yield func(int, *point) bool) {
-		nextStep := false // whether the flow steps from point i to point i+1
-		for i := range pts {
-			q := &pts[i]
-			if q.t >= endT {
-				return
-			}
-			prevStep := nextStep
-			nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
-			if prevStep || nextStep {
-				continue
-			}
-			if !yield(i, q) {
-				return
-			}
+// fitPoint is a point of the Rohrer fit: flow, volume and pressure, and
+// the second difference of flow at it (NaN when it has no neighbour on
+// either side before the end of the fit).
+type fitPoint struct{ f, v, p, d2f float64 }
+
+// collectFitPoints appends to dst each point of pts before endT that is
+// not beside a step of flow larger than lim (a point next to the valves
+// switching carries the sampling's timing error times the resistance):
+// the points of the Rohrer fit, in order.
+func collectFitPoints(pts []point, endT, lim float64, dst []fitPoint) []fitPoint {
+	nextStep := false // whether the flow steps from point i to point i+1
+	for i := range pts {
+		q := &pts[i]
+		if q.t >= endT {
+			break
 		}
+		prevStep := nextStep
+		nextStep = i+1 < len(pts) && math.Abs(pts[i+1].f-q.f) > lim
+		if prevStep || nextStep {
+			continue
+		}
+		d := math.NaN()
+		if dd, ok := secondDiff(pts, i, endT); ok {
+			d = dd
+		}
+		dst = append(dst, fitPoint{q.f, q.v, q.p, d})
 	}
+	return dst
 }
 
 // noiseSums are the sums the flow-noise correction needs besides the
@@ -118,19 +125,19 @@ type noiseSums struct {
 }
 
 // rohrerSums returns the normal equations of [V', V'|V'|, V, 1] against P
-// (P in column 4) over the points before endT that are not beside a step
-// of flow larger than lim, the sums of noiseSums over the same points, and
-// their count.
-func rohrerSums(pts []point, endT, lim float64) (s [5][5]float64, sg noiseSums, n int) {
+// (P in column 4) over the fit points, the sums of noiseSums over the same
+// points, and their count.
+func rohrerSums(fp []fitPoint) (s [5][5]float64, sg noiseSums, n int) {
 	// The sums are kept in locals (registers) rather than in the matrix: a
 	// Go array lives in memory, and a load and store per term and point
 	// cost more than the arithmetic.
 	var s00, s01, s02, s03, s04, s11, s12, s13, s14, s22, s23, s24, s34, s44 float64
 	var sa, sn, snv, snp, sd2 float64
 	nd2 := 0
-	for i, q := range fitPoints(pts, endT, lim) {
+	for i := range fp {
+		q := &fp[i]
 		f, v, p := q.f, q.v, q.p
-		if d, ok := secondDiff(pts, i, endT); ok {
+		if d := q.d2f; d == d {
 			sd2 += d * d
 			nd2++
 		}
@@ -273,7 +280,7 @@ func (p *rohrerPool) k2() (float64, bool) {
 // corrected-score variance; Carroll RJ et al., Measurement Error in
 // Nonlinear Models, 2006, appendix on estimating equations). The points
 // are those the fit used. +Inf when it cannot be formed.
-func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v float64) float64 {
+func k2Var(fp []fitPoint, a *[5][5]float64, beta *[4]float64, v float64) float64 {
 	// Row K2 of A⁻¹ (A is symmetric): solve A·w = e₁.
 	t := *a
 	for r := range 4 {
@@ -295,7 +302,8 @@ func k2Var(pts []point, endT, lim float64, a *[5][5]float64, beta *[4]float64, v
 	c4 := v * (w1*b2 + w2*b1)
 	c5 := v * (w1*b3 + w3*b1)
 	var acc float64 // Σ (wᵀψ)², which is wᵀBw
-	for _, q := range fitPoints(pts, endT, lim) {
+	for i := range fp {
+		q := &fp[i]
 		f, vol, p := q.f, q.v, q.p
 		fa := f * math.Abs(f)
 		r := p - (b0*f + b1*fa + b2*vol + b3)
@@ -318,7 +326,7 @@ func secondDiff(pts []point, i int, endT float64) (float64, bool) {
 }
 
 // noiseVar estimates the variance of the white noise of the flow of the
-// points of the fit (fitPoints) from their second differences, whose
+// points of the fit (collectFitPoints) from their second differences, whose
 // squares rohrerSums summed into sg: a second difference of white noise
 // has six times its variance. The mean is taken again without the squares
 // above nine times the first mean, so that the curvature of a fast
@@ -328,14 +336,15 @@ func secondDiff(pts []point, i int, endT float64) (float64, bool) {
 // 0.9707/0.9973, since x·f₁(x) = f₃(x) for the χ² densities (derived).
 // Two passes over the points cost less than a median. 0 when too few
 // points.
-func (sg *noiseSums) noiseVar(pts []point, endT, lim float64) float64 {
+func (sg *noiseSums) noiseVar(fp []fitPoint) float64 {
 	if sg.nd2 < 8 {
 		return 0
 	}
 	cut := 9 * sg.d2 / float64(sg.nd2)
 	sum, k := 0.0, 0
-	for i := range fitPoints(pts, endT, lim) {
-		if d, ok := secondDiff(pts, i, endT); ok && d*d <= cut {
+	for i := range fp {
+		// A NaN (no second difference) fails the test.
+		if d := fp[i].d2f; d*d <= cut {
 			sum += d * d
 			k++
 		}

@@ -189,8 +189,9 @@ func TestFlowNoiseVar(t *testing.T) {
 				pts = append(pts, point{t: tS, f: f + sd*rng.NormFloat64()})
 			}
 			const lim = 0.15 * 1.2
-			_, sg, _ := rohrerSums(pts, math.Inf(1), lim)
-			sum += sg.noiseVar(pts, math.Inf(1), lim)
+			fp := collectFitPoints(pts, math.Inf(1), lim, nil)
+			_, sg, _ := rohrerSums(fp)
+			sum += sg.noiseVar(fp)
 		}
 		if got := math.Sqrt(sum / n); math.Abs(got/sd-1) > 0.05 {
 			t.Errorf("noise %.2f L/min: estimated %.3f L/min", sd*60, got*60)
