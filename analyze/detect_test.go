@@ -514,10 +514,10 @@ func TestDetMedianMatchesSort(t *testing.T) {
 }
 
 // TestDetSelectMatchesSort checks the selection against the sorted slice
-// (sort from the standard library) at every rank, on lengths below and
-// well above the size where Floyd and Rivest's SELECT narrows by a sample
-// first, on inputs with ties, already sorted, reversed and constant, the
-// orders a trend and a flat window produce.
+// (sort from the standard library) at every rank, on short and long
+// slices (up to the 4,560 slopes of a full trend window), on inputs with
+// ties, already sorted, reversed and constant, the orders a trend and a
+// flat window produce.
 func TestDetSelectMatchesSort(t *testing.T) {
 	rng := rand.New(rand.NewPCG(11, 3))
 	for _, n := range []int{1, 2, 3, 17, 600, 601, 602, 1500, 4560} {
