@@ -157,7 +157,7 @@ type Analyzer struct {
 	prevTrapML  float64 // smoothed trapped-volume estimate up to the breath before, for the balance
 	prevPEEP    float64 // end-expiratory pressure of the breath before, for the balance
 	settings    settingsTracker
-	k2Pool      rohrerPool // K2 of the recent breaths (see rohrerPool)
+	k2Pool      rohrerPool // K2/R of the recent breaths (see rohrerPool)
 	slowPool    slowPool   // marks of a slow end over the recent breaths
 
 	ring ring

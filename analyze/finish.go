@@ -141,10 +141,10 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 		// recent breaths together show the flow dependence and this one
 		// does not contradict it.
 		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
-		a.k2Pool.add(&rf)
+		a.k2Pool.add(&rf, m.r)
 		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
 			m.rohrer = rf
-		} else if k2, sig := a.k2Pool.k2(); sig {
+		} else if k2, sig := a.k2Pool.k2(m.r); sig {
 			if pf, ok := rf.withK2(k2); ok && 1000/pf.e <= c.MaxCMLPerCmH2O {
 				m.rohrer = pf
 			}

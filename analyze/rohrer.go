@@ -228,19 +228,29 @@ func (f *rohrerFit) withK2(k2 float64) (rohrerFit, bool) {
 	return g, g.ok
 }
 
-// rohrerPool pools the K2 of recent breaths, each weighted by the inverse
-// of its variance and older breaths by rohrerPoolKeep per breath (the
-// fixed-effect, inverse-variance pooled estimate; Hedges LV, Olkin I,
-// Statistical Methods for Meta-Analysis, 1985). With 1 L/min of flow noise
-// at R 50 one breath seldom determines K2 on its own, a few breaths
-// together do; the noise-corrected K2 of each breath is unbiased, so that
-// pooling does not add up a bias.
+// rohrerPool pools the flow dependence of recent breaths as K2 over the
+// breath's linear resistance, K2/R, each breath weighted by the inverse of
+// its variance (that of K2 over R², R being far better determined than
+// K2) and older breaths by rohrerPoolKeep per breath (the fixed-effect,
+// inverse-variance pooled estimate; Hedges LV, Olkin I, Statistical
+// Methods for Meta-Analysis, 1985). With 1 L/min of flow noise at R 50 one
+// breath seldom determines K2 on its own, a few breaths together do; the
+// noise-corrected K2 of each breath is unbiased, so that pooling does not
+// add up a bias.
+//
+// Relative to R rather than K2 itself: when the airways narrow or open,
+// both of Rohrer's terms change (a resistance doubled doubles both on the
+// acceptance grid), and a K2 pooled from before the change held the
+// breaths after it at the old K2, with K1 making up the difference at the
+// inspiratory flow, so that the resistance at the end-expiratory flow,
+// and the intrinsic PEEP, read high (TestRohrerPoolFollowsResistance).
+// K2/R follows a change that scales both terms at once.
 type rohrerPool struct {
-	w, w2, wk float64 // Σaᵢ, Σaᵢ²/wᵢ and Σaᵢkᵢ with aᵢ = keepⁱ·wᵢ
+	w, w2, wk float64 // Σaᵢ, Σaᵢ²/wᵢ and Σaᵢqᵢ with aᵢ = keepⁱ·wᵢ, qᵢ = K2ᵢ/Rᵢ
 }
 
 // Pooling constants (ours): the pool forgets a breath's weight by
-// rohrerPoolKeep per breath (about ten breaths' worth); its K2 is used
+// rohrerPoolKeep per breath (about ten breaths' worth); its K2/R is used
 // from rohrerPoolMinZ standard errors above zero, and when the
 // flow-dependent term makes at least rohrerPoolMinShare of the resistance
 // at the breath's largest flow.
@@ -250,25 +260,26 @@ const (
 	rohrerPoolMinShare = 0.1
 )
 
-// add enters the K2 of one breath.
-func (p *rohrerPool) add(f *rohrerFit) {
-	if !(f.k2Var > 0) || math.IsInf(f.k2Var, 0) || math.IsNaN(f.k2) {
+// add enters the K2 of one breath whose linear resistance is r.
+func (p *rohrerPool) add(f *rohrerFit, r float64) {
+	if !(f.k2Var > 0) || math.IsInf(f.k2Var, 0) || math.IsNaN(f.k2) || !(r > 0) || math.IsInf(r, 0) {
 		return
 	}
-	w := 1 / f.k2Var
+	w := r * r / f.k2Var
 	p.w = rohrerPoolKeep*p.w + w
 	p.w2 = rohrerPoolKeep*rohrerPoolKeep*p.w2 + w
-	p.wk = rohrerPoolKeep*p.wk + w*f.k2
+	p.wk = rohrerPoolKeep*p.wk + w*f.k2/r
 }
 
-// k2 returns the pooled K2 and whether it is significantly positive; its
-// standard error is √(Σaᵢ²/wᵢ)/Σaᵢ.
-func (p *rohrerPool) k2() (float64, bool) {
-	if !(p.w > 0) || !(p.w2 > 0) {
+// k2 returns the pooled K2 for a breath whose linear resistance is r, and
+// whether it is significantly positive; the standard error of the pooled
+// K2/R is √(Σaᵢ²/wᵢ)/Σaᵢ.
+func (p *rohrerPool) k2(r float64) (float64, bool) {
+	if !(p.w > 0) || !(p.w2 > 0) || !(r > 0) {
 		return 0, false
 	}
-	k := p.wk / p.w
-	return k, k*p.w/math.Sqrt(p.w2) >= rohrerPoolMinZ
+	q := p.wk / p.w
+	return q * r, q*p.w/math.Sqrt(p.w2) >= rohrerPoolMinZ
 }
 
 // k2Var is the sandwich variance of K2 from the noise-corrected normal

@@ -23,6 +23,10 @@ type rohrerVC struct {
 	Rate, Fs         float64 // /min, Hz
 	Square           bool    // square inspiratory flow VT/Ti instead of the ramp
 	Breaths          int
+	// From breath ScaleAt on (when Scale is not zero), K1 and K2 are both
+	// multiplied by Scale: airways that narrow or open.
+	ScaleAt int
+	Scale   float64
 	samples          []ingest.Sample
 	peepiEnd, eefEnd []float64 // per breath: true intrinsic PEEP and EEF at its end
 }
@@ -45,6 +49,9 @@ func (m *rohrerVC) generate() {
 	peak := 2 * m.VT / m.Ti
 	v := m.C * m.PEEP
 	for k := range m.Breaths {
+		if m.Scale != 0 && k == m.ScaleAt {
+			m.K1, m.K2 = m.Scale*m.K1, m.Scale*m.K2
+		}
 		for i := range steps {
 			s := float64(i) * h
 			t := float64(k)*period + s
