@@ -18,15 +18,15 @@ import (
 // the tests below. Volumes in L above the relaxation volume at zero
 // pressure.
 type rohrerVC struct {
-	K1, K2, C, PEEP  float64 // cmH2O·s/L, cmH2O·s²/L², L/cmH2O, cmH2O
-	VT, Ti, Pause    float64 // L, s of flow, s
-	Rate, Fs         float64 // /min, Hz
-	Square           bool    // square inspiratory flow VT/Ti instead of the ramp
-	Breaths          int
+	K1, K2, C, PEEP float64 // cmH2O·s/L, cmH2O·s²/L², L/cmH2O, cmH2O
+	VT, Ti, Pause   float64 // L, s of flow, s
+	Rate, Fs        float64 // /min, Hz
+	Square          bool    // square inspiratory flow VT/Ti instead of the ramp
+	Breaths         int
 	// From breath ScaleAt on (when Scale is not zero), K1 and K2 are both
 	// multiplied by Scale: airways that narrow or open.
-	ScaleAt int
-	Scale   float64
+	ScaleAt          int
+	Scale            float64
 	samples          []ingest.Sample
 	peepiEnd, eefEnd []float64 // per breath: true intrinsic PEEP and EEF at its end
 }
