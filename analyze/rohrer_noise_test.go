@@ -131,23 +131,7 @@ func TestRohrerPooledNoisyFlow(t *testing.T) {
 		m.samples[i].PressureCmH2O += 0.1 * rng.NormFloat64()
 	}
 	bs := run(DefaultConfig(), m.samples)
-	period := 60 / m.Rate
-	var n, rohrer, within int
-	for _, b := range bs[20:] {
-		k := int(math.Round(b.StartS / period))
-		if k >= len(m.peepiEnd) {
-			continue
-		}
-		n++
-		if b.HasFlag(FlagRohrer) {
-			rohrer++
-		}
-		if want := m.peepiEnd[k]; math.Abs(b.PEEPiCmH2O-want) <= math.Max(1, 0.15*want) {
-			within++
-		} else {
-			t.Logf("breath %d: PEEPi %.2f want %.2f, k1 %.1f k2 %.1f flags %v", k, b.PEEPiCmH2O, want, b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2, b.Flags)
-		}
-	}
+	n, rohrer, _, within := scoreRohrer(t, bs[20:], m, 0)
 	t.Logf("Rohrer lung: %d breaths, %d flagged rohrer, intrinsic PEEP within max(1 cmH2O, 15 %%) on %d", n, rohrer, within)
 	if rohrer < n*8/10 || within < n*8/10 {
 		t.Errorf("Rohrer lung: rohrer on %d of %d breaths, intrinsic PEEP within tolerance on %d; want 80 %% of them each", rohrer, n, within)
@@ -223,14 +207,32 @@ func TestRohrerPoolFollowsResistance(t *testing.T) {
 		m.samples[i].PressureCmH2O += 0.1 * rng.NormFloat64()
 	}
 	bs := run(DefaultConfig(), m.samples)
+	n, _, pooled, within := scoreRohrer(t, bs, m, m.ScaleAt+10)
+	t.Logf("after the change: %d breaths, %d with the pooled K2, intrinsic PEEP within max(1 cmH2O, 15 %%) on %d", n, pooled, within)
+	if pooled < n/2 {
+		t.Fatalf("only %d of %d breaths used the pool; the test proves nothing", pooled, n)
+	}
+	if within < n*2/3 {
+		t.Errorf("intrinsic PEEP within tolerance on %d of %d breaths after the resistance doubled, want two thirds", within, n)
+	}
+}
+
+// scoreRohrer matches the breaths bs to the generated breaths of m from
+// breath index from on, and counts them, those flagged rohrer and
+// rohrer-pooled, and those whose intrinsic PEEP is within max(1 cmH2O,
+// 15 %) of the integration's; it logs the others.
+func scoreRohrer(t *testing.T, bs []Breath, m *rohrerVC, from int) (n, rohrer, pooled, within int) {
+	t.Helper()
 	period := 60 / m.Rate
-	var n, within, pooled int
 	for _, b := range bs {
 		k := int(math.Round(b.StartS / period))
-		if k < m.ScaleAt+10 || k >= len(m.peepiEnd) {
+		if k < from || k >= len(m.peepiEnd) {
 			continue
 		}
 		n++
+		if b.HasFlag(FlagRohrer) {
+			rohrer++
+		}
 		if b.HasFlag(FlagRohrerPooled) {
 			pooled++
 		}
@@ -240,13 +242,7 @@ func TestRohrerPoolFollowsResistance(t *testing.T) {
 			t.Logf("breath %d: PEEPi %.2f want %.2f, k1 %.1f k2 %.1f flags %v", k, b.PEEPiCmH2O, want, b.RK1CmH2OSPerL, b.RK2CmH2OS2PerL2, b.Flags)
 		}
 	}
-	t.Logf("after the change: %d breaths, %d with the pooled K2, intrinsic PEEP within max(1 cmH2O, 15 %%) on %d", n, pooled, within)
-	if pooled < n/2 {
-		t.Fatalf("only %d of %d breaths used the pool; the test proves nothing", pooled, n)
-	}
-	if within < n*2/3 {
-		t.Errorf("intrinsic PEEP within tolerance on %d of %d breaths after the resistance doubled, want two thirds", within, n)
-	}
+	return n, rohrer, pooled, within
 }
 
 // TestRohrerPoolForgottenOnReset: after a gap or a disconnection the
