@@ -104,15 +104,15 @@ const theilSenBandMin = 2500
 const theilSenBandSample = 256
 
 // theilSenBand is the median pairwise slope found in a band of slopes
-// around it, as Floyd and Rivest narrow a selection by a sample (Floyd
-// RW, Rivest RL, "Expected time bounds for selection", Commun ACM
-// 1975;18:165): the slopes of a sample of
-// pairs place a band that holds the median with a margin of four standard
-// deviations of the sample's rank, one pass over the pairs counts the
-// slopes below it and keeps those in it, and the median is selected among
-// those kept. It reports false, leaving the whole selection to the caller,
-// when the band missed the middle ranks or a slope is not a number; the
-// result is then the exact median either way. buf must hold every pair.
+// around it, as Floyd and Rivest narrow a selection by a sample (Floyd RW,
+// Rivest RL, "Expected time bounds for selection", Commun ACM
+// 1975;18:165): the slopes of a sample of pairs place a band that holds
+// the median with a margin of four standard deviations of the sample's
+// rank, one pass over the pairs counts the slopes below it and keeps those
+// in it, and the median is selected among those kept. It reports false,
+// leaving the whole selection to the caller, when the band missed the
+// middle ranks, a time repeats or a slope is not a number; the result is
+// then the exact median either way. buf must hold every pair.
 func theilSenBand(xs, ys, buf []float64) (float64, bool) {
 	n := len(xs)
 	// The sample: pairs drawn by a fixed linear congruential sequence
