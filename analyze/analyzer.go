@@ -53,9 +53,10 @@ const (
 	// resistance was fitted as K1 + K2·|V'| (Rohrer 1915) and intrinsic
 	// PEEP uses the resistance at the end-expiratory flow.
 	FlagRohrer = "rohrer"
-	// FlagRohrerPooled: with rohrer, K2 is the pooled estimate of the
-	// recent breaths, which this breath alone did not determine but does
-	// not contradict; K1, E and P0 are this breath's.
+	// FlagRohrerPooled: with rohrer, K2 comes from the recent breaths
+	// (their pooled K2 over their resistance, times this breath's), which
+	// this breath alone did not determine but does not contradict; K1, E
+	// and P0 are this breath's.
 	FlagRohrerPooled = "rohrer-pooled"
 	// FlagPEEPiBoundPooled: with peepi-bound, the slow end shows on the
 	// recent breaths taken together (slowPool), not on this one alone; the
