@@ -520,7 +520,7 @@ func TestDetMedianMatchesSort(t *testing.T) {
 // flat window produce.
 func TestDetSelectMatchesSort(t *testing.T) {
 	rng := rand.New(rand.NewPCG(11, 3))
-	for _, n := range []int{1, 2, 3, 17, 600, 601, 602, 1500, 4560} {
+	for _, n := range []int{1, 2, 3, 17, 256, 1500, 4560} {
 		for _, shape := range []string{"random", "ties", "sorted", "reversed", "constant"} {
 			vs := make([]float64, n)
 			for i := range vs {

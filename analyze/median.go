@@ -115,6 +115,14 @@ const theilSenBandSample = 256
 // then the exact median either way. buf must hold every pair.
 func theilSenBand(xs, ys, buf []float64) (float64, bool) {
 	n := len(xs)
+	// Breath times and indices increase, so no pair has dx = 0 and neither
+	// the sample nor the pass needs a test for it; other input takes the
+	// whole selection.
+	for i := 1; i < n; i++ {
+		if !(xs[i] > xs[i-1]) {
+			return 0, false
+		}
+	}
 	// The sample: pairs drawn by a fixed linear congruential sequence
 	// (Knuth's MMIX constants), so that the band and therefore the work
 	// never depend on anything but the input.
@@ -129,8 +137,8 @@ func theilSenBand(xs, ys, buf []float64) (float64, bool) {
 		if i > j {
 			i, j = j, i
 		}
-		if dx := xs[j] - xs[i]; i != j && dx != 0 {
-			sample[ns] = (ys[j] - ys[i]) / dx
+		if i != j {
+			sample[ns] = (ys[j] - ys[i]) / (xs[j] - xs[i])
 			ns++
 		}
 	}
@@ -146,13 +154,6 @@ func theilSenBand(xs, ys, buf []float64) (float64, bool) {
 	}
 	if rHi < ns-1 {
 		hi = detSelect(sample[:ns], rHi)
-	}
-	// Breath times and indices increase, so no pair has dx = 0 and the
-	// pass needs no test for it; other input takes the whole selection.
-	for i := 1; i < n; i++ {
-		if !(xs[i] > xs[i-1]) {
-			return 0, false
-		}
 	}
 	below, above, w := 0, 0, 0
 	for i := 0; i < n-1; i++ {
