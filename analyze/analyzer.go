@@ -112,12 +112,18 @@ type Analyzer struct {
 	prevT    float64
 	prevF    float64
 	fs       float64 // smoothed flow
-	alpha    float64 // smoothing weight for a step of alphaDt
-	alphaDt  float64
-	skipped  uint64
+	// alpha is the smoothing weight for steps in [alphaLo, alphaHi]: the
+	// step it was computed for, less and more a part in a million.
+	alpha            float64
+	alphaLo, alphaHi float64
+	skipped          uint64
 
 	// The open breath.
-	startT   float64
+	startT float64
+	// endByT is the time past which the open breath is dropped: startT +
+	// MaxBreathS, +Inf while waiting for a breath (one comparison a sample
+	// rather than a phase test, a subtraction and a comparison).
+	endByT   float64
 	vol      float64 // volume since the start of the breath (L)
 	cur      segment
 	artifact bool
@@ -193,6 +199,7 @@ func (a *Analyzer) Skipped() uint64 { return a.skipped }
 // estimates, which belong to the sensor, are kept.
 func (a *Analyzer) Reset() {
 	a.ph = phaseWait
+	a.endByT = math.Inf(1)
 	a.havePrev = false
 	a.inCand = false
 	a.ring.reset()
@@ -265,13 +272,12 @@ func (a *Analyzer) NextIn(ss []ingest.Sample, fromS, toS float64) (int, *Breath)
 // reports whether a.last holds a newly completed breath.
 func (a *Analyzer) push(s ingest.Sample) bool {
 	t, p, f := s.TimeS, s.PressureCmH2O, s.FlowLPS
-	// x−x is 0 for a finite x and NaN for NaN and ±Inf.
-	if t-t != 0 {
-		a.skipped++
-		return false
-	}
-	if p-p != 0 || f-f != 0 {
-		a.artifact = a.ph != phaseWait
+	// x−x is 0 for a finite x and NaN for NaN and ±Inf, and a NaN carries
+	// through the sum: one test a sample for all three.
+	if (t-t)+(p-p)+(f-f) != 0 {
+		if t-t == 0 {
+			a.artifact = a.ph != phaseWait
+		}
 		a.skipped++
 		return false
 	}
@@ -304,8 +310,9 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	// part in 10⁸ of a 5 ms step after a day of signal), and a division
 	// per sample is a measurable share of the cost. A step a part in a
 	// million off changes the weight by less than that.
-	if math.Abs(dt-a.alphaDt) > 1e-6*dt {
-		a.alphaDt, a.alpha = dt, dt/(flowSmoothS+dt)
+	if dt < a.alphaLo || dt > a.alphaHi {
+		a.alpha = dt / (flowSmoothS + dt)
+		a.alphaLo, a.alphaHi = dt*(1-1e-6), dt*(1+1e-6)
 	}
 	a.fs += (f - a.fs) * a.alpha
 
@@ -326,10 +333,11 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 		}
 		done = a.stepExp(t, f, p, dt)
 	}
-	if a.ph != phaseWait && t-a.startT > a.cfg.MaxBreathS {
+	if t > a.endByT {
 		// Apnea, a flat line or a stuck sensor: drop the open breath rather
 		// than report one that spans it.
 		a.ph = phaseWait
+		a.endByT = math.Inf(1)
 		a.inCand = false
 		a.resetBreath()
 	}
@@ -402,6 +410,7 @@ func (a *Analyzer) begin() {
 	a.resetBreath()
 	a.ph = phaseInsp
 	a.startT = a.candT
+	a.endByT = a.startT + a.cfg.MaxBreathS
 	a.crossStartT = a.candT
 	a.cur = a.pend
 	a.vol = a.pendVol
@@ -481,5 +490,6 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 	a.last = a.finish()
 	a.begin()
 	a.startT = a.nextStartT
+	a.endByT = a.startT + a.cfg.MaxBreathS
 	return true
 }
