@@ -99,3 +99,53 @@ func TestSlowPoolTurns(t *testing.T) {
 		})
 	}
 }
+
+// TestSlowPoolHolds checks the hysteresis of the verdict. With equal
+// standard errors se the pool's mean is the marks' mean m and its z is
+// m·√slowPoolN/se (derived). Weak marks (m 0.025, se 0.05: z 1.9, under
+// the flattening floor of 0.03) do not make a slow end, but keep one the
+// pool has shown (z at least slowPoolZKeep, m at least slowPoolKeepFloor
+// of the floor); a pool of marks that cannot be weighed (time constants
+// not measured) keeps the last verdict, whichever it was; marks of one
+// compartment (m 0) clear it, and weak marks then do not bring it back.
+func TestSlowPoolHolds(t *testing.T) {
+	nan := math.NaN()
+	strong := slowMarks{0.1, 0.05, nan, nan}
+	weak := slowMarks{0.025, 0.05, nan, nan}
+	none := slowMarks{nan, nan, nan, nan}
+	one := slowMarks{0, 0.05, nan, nan}
+	if z := weak.flatten * math.Sqrt(slowPoolN) / weak.flattenSE; z < slowPoolZKeep || z >= slowPoolZ ||
+		weak.flatten >= slowPoolFlatten || weak.flatten < slowPoolKeepFloor*slowPoolFlatten {
+		t.Fatalf("weak marks: z %.2f, mean %.3f: not between the two thresholds", z, weak.flatten)
+	}
+	fill := func(p *slowPool, m slowMarks) bool {
+		for range slowPoolN {
+			p.add(m)
+		}
+		return p.slow()
+	}
+	var fresh slowPool
+	if fill(&fresh, weak) {
+		t.Fatal("weak marks made a slow end")
+	}
+	if fill(&fresh, none) {
+		t.Fatal("marks that cannot be weighed made a slow end")
+	}
+	var p slowPool
+	for _, step := range []struct {
+		name  string
+		marks slowMarks
+		want  bool
+	}{
+		{"strong", strong, true},
+		{"weak after strong", weak, true},
+		{"none after weak", none, true},
+		{"one compartment", one, false},
+		{"weak after one compartment", weak, false},
+		{"none after that", none, false},
+	} {
+		if got := fill(&p, step.marks); got != step.want {
+			t.Errorf("%s: slow %v, want %v", step.name, got, step.want)
+		}
+	}
+}
