@@ -66,6 +66,30 @@ func (r *ring) grow() {
 // at returns the k-th newest sample (1: the newest); k <= r.n.
 func (r *ring) at(k int) *rawSample { return &r.s[(r.next-k)&r.mask] }
 
+// endWindow is window for the end of expiration: when [from, to) holds
+// fewer than three samples (at 25 Hz a 0.1 s window holds two or three),
+// the standard error of the extrapolated flow, which needs three, is that
+// of the same line fitted over the last three samples before to; the mean
+// pressure and the flow stay those of the window.
+func (r *ring) endWindow(from, to float64) (meanP, flowAtTo, seFlow float64, count int) {
+	meanP, flowAtTo, seFlow, count = r.window(from, to)
+	if count == 0 || count >= 3 {
+		return meanP, flowAtTo, seFlow, count
+	}
+	k := 0
+	for i := 1; i <= r.n; i++ {
+		if e := r.at(i); e.t < to {
+			if k++; k == 3 {
+				if _, _, se, n := r.window(e.t, to); n == 3 {
+					seFlow = se
+				}
+				break
+			}
+		}
+	}
+	return meanP, flowAtTo, seFlow, count
+}
+
 // window returns the mean pressure and the count of the samples with time in
 // [from, to), and, when at least two are present, the flow at time `to`
 // extrapolated by a straight-line fit over them (else the last flow), with

@@ -58,7 +58,7 @@ func (a *Analyzer) finish() Breath {
 	// to it by a line fit so that a still-falling flow is read at the end,
 	// not at the middle of the window.
 	eef, eefSE := math.NaN(), math.NaN()
-	if mp, fe, se, n := a.ring.window(eeT-a.cfg.EndExpWindowS, eeT); n > 0 {
+	if mp, fe, se, n := a.ring.endWindow(eeT-a.cfg.EndExpWindowS, eeT); n > 0 {
 		b.PEEPCmH2O = mp
 		b.EndExpFlowLPM = 60 * math.Max(-fe, 0)
 		eef, eefSE = -fe, se
