@@ -7,20 +7,28 @@ import (
 	"gonum.org/v1/gonum/stat"
 )
 
-// lineExtrapolation is the textbook least-squares line through (ts, fs)
-// evaluated at t0, with the standard error of that value,
-// s·√(1/n + (t0 − t̄)²/Σ(t − t̄)²), s² the residual sum of squares over
-// n − 2 (Draper NR, Smith H, "Applied Regression Analysis", 3rd ed.,
-// 1998), the line from gonum's stat.LinearRegression.
-func lineExtrapolation(ts, fs []float64, t0 float64) (f0, se float64) {
-	alpha, beta := stat.LinearRegression(ts, fs, nil, false)
-	mt := stat.Mean(ts, nil)
-	var ss, stt float64
-	for i, t := range ts {
-		r := fs[i] - alpha - beta*t
+// lsLine is the least-squares line through (xs, ys) from gonum's
+// stat.LinearRegression, y = alpha + beta·x, with the mean of xs, the
+// residual sum of squares and Σ(x − x̄)², the parts of the textbook
+// standard errors (Draper NR, Smith H, "Applied Regression Analysis", 3rd
+// ed., 1998).
+func lsLine(xs, ys []float64) (alpha, beta, mx, ss, sxx float64) {
+	alpha, beta = stat.LinearRegression(xs, ys, nil, false)
+	mx = stat.Mean(xs, nil)
+	for i, x := range xs {
+		r := ys[i] - alpha - beta*x
 		ss += r * r
-		stt += (t - mt) * (t - mt)
+		sxx += (x - mx) * (x - mx)
 	}
+	return alpha, beta, mx, ss, sxx
+}
+
+// lineExtrapolation is the least-squares line through (ts, fs) evaluated
+// at t0, with the textbook standard error of that value,
+// s·√(1/n + (t0 − t̄)²/Σ(t − t̄)²), s² the residual sum of squares over
+// n − 2 (lsLine).
+func lineExtrapolation(ts, fs []float64, t0 float64) (f0, se float64) {
+	alpha, beta, mt, ss, stt := lsLine(ts, fs)
 	n := float64(len(ts))
 	return alpha + beta*t0, math.Sqrt(ss/(n-2)) * math.Sqrt(1/n+(t0-mt)*(t0-mt)/stt)
 }
