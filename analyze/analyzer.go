@@ -409,8 +409,7 @@ func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
 func (a *Analyzer) begin() {
 	a.resetBreath()
 	a.ph = phaseInsp
-	a.startT = a.candT
-	a.endByT = a.startT + a.cfg.MaxBreathS
+	a.openAt(a.candT)
 	a.crossStartT = a.candT
 	a.cur = a.pend
 	a.vol = a.pendVol
@@ -489,7 +488,12 @@ func (a *Analyzer) stepExp(t, f, p, dt float64) bool {
 	}
 	a.last = a.finish()
 	a.begin()
-	a.startT = a.nextStartT
-	a.endByT = a.startT + a.cfg.MaxBreathS
+	a.openAt(a.nextStartT)
 	return true
+}
+
+// openAt starts the open breath at t, with the time past which it is
+// dropped.
+func (a *Analyzer) openAt(t float64) {
+	a.startT, a.endByT = t, t+a.cfg.MaxBreathS
 }
