@@ -55,7 +55,15 @@ const (
 	EventReconnect = "reconnect"
 	// EventArtifact adds a burst of large noise for Duration.
 	EventArtifact = "artifact"
+	// EventExpiratoryHold shuts both valves for Duration at the end of the
+	// first expiration that ends at or after At (an end-expiratory
+	// occlusion): no flow, the units equilibrate, and the airway pressure
+	// rises to the static total PEEP. The next breath follows the hold.
+	EventExpiratoryHold = "expiratory_hold"
 )
+
+// MaxExpiratoryHoldS is the longest expiratory hold a scenario may ask for.
+const MaxExpiratoryHoldS = 20.0
 
 // Step is one entry of a scenario's timeline: from At on, the listed
 // settings move to new values, at once or linearly over Ramp; or an event
@@ -70,9 +78,10 @@ type Step struct {
 	Patient    map[string]float64 `yaml:"patient"`
 	Ventilator map[string]float64 `yaml:"ventilator"`
 	Sensor     map[string]float64 `yaml:"sensor"`
-	// Event is EventDisconnect, EventReconnect or EventArtifact, or empty.
+	// Event is EventDisconnect, EventReconnect, EventArtifact or
+	// EventExpiratoryHold, or empty.
 	Event string `yaml:"event"`
-	// DurationS is the length of a disconnection or artifact burst.
+	// DurationS is the length of a disconnection, artifact burst or hold.
 	DurationS Seconds `yaml:"duration"`
 	// ArtifactPressureCmH2O and ArtifactFlowLPM are the noise standard
 	// deviations of an artifact burst; zero means 8 cmH2O and 40 L/min.
@@ -239,6 +248,10 @@ type timeline struct {
 	labeled    []window
 	// risingPeak are the ramps that raise the peak pressure.
 	risingPeak []window
+	// holds are the expiratory holds in time order: each starts at the end
+	// of the first expiration that ends at or after startS and lasts
+	// endS − startS.
+	holds []window
 }
 
 // compile validates a scenario and prepares its timeline.
@@ -382,8 +395,13 @@ func (tl *timeline) addEvent(key string, st Step, at, dur, openDisconnect float6
 			bad("%s: artifact pressure_cmh2o and flow_lpm must not be negative", key)
 		}
 		tl.artifacts = append(tl.artifacts, w)
+	case EventExpiratoryHold:
+		if !(dur > 0 && dur <= MaxExpiratoryHoldS) {
+			bad("%s: an expiratory hold needs a duration in (0, %gs]", key, MaxExpiratoryHoldS)
+		}
+		tl.holds = append(tl.holds, window{startS: at, endS: at + dur})
 	default:
-		bad("%s.event: unknown event %q (want %s, %s or %s)", key, st.Event, EventDisconnect, EventReconnect, EventArtifact)
+		bad("%s.event: unknown event %q (want %s, %s, %s or %s)", key, st.Event, EventDisconnect, EventReconnect, EventArtifact, EventExpiratoryHold)
 	}
 	return openDisconnect
 }

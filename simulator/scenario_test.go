@@ -88,6 +88,10 @@ func TestScenarioErrors(t *testing.T) {
 			s.Timeline = []Step{{AtS: 10, RampS: 20, Ventilator: map[string]float64{"rate_bpm": 80}}}
 		}, []string{"timeline[0]"}},
 		{"unknown event", func(s *Scenario) { s.Timeline = []Step{{AtS: 1, Event: "explode"}} }, []string{"unknown event"}},
+		{"hold without a duration", func(s *Scenario) { s.Timeline = []Step{{AtS: 1, Event: EventExpiratoryHold}} }, []string{"timeline[0]", "expiratory hold"}},
+		{"hold too long", func(s *Scenario) {
+			s.Timeline = []Step{{AtS: 1, Event: EventExpiratoryHold, DurationS: 21}}
+		}, []string{"timeline[0]", "expiratory hold"}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {

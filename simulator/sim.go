@@ -32,6 +32,9 @@ type Sim struct {
 	v       [2]float64 // compartment volumes above zero-pressure relaxation, L
 	acc     accum
 	trig    bool // the patient triggered the next breath
+	// nextHold is the index of the first expiratory hold of the timeline
+	// not yet performed.
+	nextHold int
 
 	sensor  sensor
 	linkUp  bool
@@ -316,10 +319,26 @@ func (s *Sim) endPhase() {
 		}
 		return
 	}
-	// End of expiration: the flow just before the next breath is the
-	// end-expiratory flow.
 	var dv [2]float64
+	if s.iph+1 < len(s.phases) {
+		// An expiratory hold follows: the flow as the valves shut is the
+		// end-expiratory flow. A patient trigger that ended the
+		// expiration early moves the hold with it.
+		_, s.acc.eefLPS = s.lung.eval(ph, s.t, &s.v, &dv)
+		s.t = ph.endS
+		s.iph++
+		h := &s.phases[s.iph]
+		h.endS += s.t - h.startS
+		h.startS = s.t
+		s.acc.holdS = h.endS - h.startS
+		return
+	}
+	// End of expiration: the flow just before the next breath is the
+	// end-expiratory flow (after a hold, the flow as it started).
 	_, eef := s.lung.eval(ph, s.t, &s.v, &dv)
+	if s.acc.holdS > 0 {
+		eef = s.acc.eefLPS
+	}
 	triggered := s.trig
 	s.trig = false
 	s.t = ph.endS
@@ -338,6 +357,15 @@ func (s *Sim) startBreath(t float64, triggered bool) {
 		s.breathStepS = math.Max(MinStepS, math.Min(DefaultStepS, s.lung.shortestTauS()/20))
 	}
 	s.phases = plan(s.set.Ventilator, t, s.phases)
+	if s.nextHold < len(s.tl.holds) {
+		// The first expiration that ends at or after a hold's time ends
+		// in the hold: both valves shut, no flow.
+		exp := s.phases[len(s.phases)-1]
+		if h := s.tl.holds[s.nextHold]; h.startS <= exp.endS {
+			s.phases = append(s.phases, phase{startS: exp.endS, endS: exp.endS + h.endS - h.startS, flowDriven: true})
+			s.nextHold++
+		}
+	}
 	s.iph = 0
 	s.t = t
 	s.acc = accum{

@@ -81,6 +81,10 @@ type Truth struct {
 	// PEEPCmH2O is the set PEEP.
 	PEEPCmH2O float64 `json:"peep_cmh2o"`
 
+	// ExpHoldS is the length of the expiratory hold that ended the
+	// breath (both valves shut, no flow; included in TeS), or zero.
+	ExpHoldS float64 `json:"exp_hold_s,omitempty"`
+
 	// Passive is false when a muscle effort overlapped the breath.
 	Passive bool `json:"passive"`
 	// Triggered is true when the patient triggered the breath.
@@ -102,6 +106,9 @@ type accum struct {
 	pip       float64
 	effort    bool
 	triggered bool
+	// holdS is the length of an expiratory hold that ended the breath,
+	// and eefLPS the flow as the valves shut for it.
+	holdS, eefLPS float64
 }
 
 // finish turns the accumulated breath into its ground truth. vEnd is the
@@ -127,6 +134,7 @@ func (a *accum) finish(tl *timeline, l *lung, stream string, endS, vEnd, eefLPS 
 		PeakCmH2O:     a.pip,
 		PEEPCmH2O:     peep,
 		EndExpFlowLPM: math.Max(0, -eefLPS) * 60,
+		ExpHoldS:      math.Round(a.holdS*1e9) / 1e9,
 		Passive:       !a.effort,
 		Triggered:     a.triggered,
 		Model:         a.set.Patient.Model,
