@@ -67,6 +67,10 @@ type Breath struct {
 	// (volume control) or pressure above PEEP (pressure control).
 	SetFlowLPM           float64
 	SetInspPressureCmH2O float64
+	// End-expiratory hold (flag exp-hold): its length and the static
+	// intrinsic PEEP read from it; NaN when the breath had none.
+	ExpHoldS       float64
+	PEEPiHoldCmH2O float64
 	// Mode is the inferred mode, ModeVolume or ModePressure; "" when it
 	// could not be told.
 	Mode string
@@ -95,7 +99,7 @@ func NewBreath() Breath {
 		ROccCmH2OSPerL: n, CStatMLPerCmH2O: n,
 		TrappedML: n, PEEPiCmH2O: n, TrappedEEFML: n, PEEPiEEFCmH2O: n, PEEPiFitCmH2O: n,
 		TauEndS: n, TrappedExpFitML: n, RK1CmH2OSPerL: n, RK2CmH2OS2PerL2: n, FlowOffsetLPM: n, LeakLPMPerCmH2O: n,
-		SetFlowLPM: n, SetInspPressureCmH2O: n,
+		SetFlowLPM: n, SetInspPressureCmH2O: n, ExpHoldS: n, PEEPiHoldCmH2O: n,
 	}
 }
 
@@ -154,6 +158,8 @@ var breathFields = []breathField{
 	{"leak_lpm_per_cmh2o", func(b *Breath) *float64 { return &b.LeakLPMPerCmH2O }, 4},
 	{"set_flow_lpm", func(b *Breath) *float64 { return &b.SetFlowLPM }, 1},
 	{"set_pinsp_cmh2o", func(b *Breath) *float64 { return &b.SetInspPressureCmH2O }, 1},
+	{"exp_hold_s", func(b *Breath) *float64 { return &b.ExpHoldS }, 2},
+	{"peepi_hold_cmh2o", func(b *Breath) *float64 { return &b.PEEPiHoldCmH2O }, 2},
 }
 
 // AppendJSON appends the breath as one JSON object (no newline) to dst. It is

@@ -60,6 +60,12 @@ type Config struct {
 	// before the breath is flagged "peepi-mismatch": the larger applies.
 	PEEPiToleranceCmH2O    float64 `mapstructure:"peepi_tolerance_cmh2o"`
 	PEEPiToleranceFraction float64 `mapstructure:"peepi_tolerance_fraction"`
+	// ExpHoldMinS and ExpHoldFlowLPM recognise an end-expiratory hold: an
+	// expiration ending in at least ExpHoldMinS of |flow| within
+	// ExpHoldFlowLPM, in a breath that much longer than the set cycle,
+	// with the airway pressure risen above the PEEP (see expHold).
+	ExpHoldMinS    float64 `mapstructure:"exp_hold_min_s"`
+	ExpHoldFlowLPM float64 `mapstructure:"exp_hold_flow_lpm"`
 }
 
 // DefaultConfig returns the thresholds documented in docs/analysis.md.
@@ -83,6 +89,8 @@ func DefaultConfig() Config {
 		LeakFraction:           0.2,
 		PEEPiToleranceCmH2O:    2,
 		PEEPiToleranceFraction: 0.3,
+		ExpHoldMinS:            1,
+		ExpHoldFlowLPM:         2,
 	}
 }
 
@@ -124,6 +132,8 @@ func (c Config) Validate(prefix string) []error {
 	check("leak_fraction", c.LeakFraction, 0, 1, true)
 	check("peepi_tolerance_cmh2o", c.PEEPiToleranceCmH2O, 0, 100, false)
 	check("peepi_tolerance_fraction", c.PEEPiToleranceFraction, 0, 10, false)
+	check("exp_hold_min_s", c.ExpHoldMinS, 0.2, 20, false)
+	check("exp_hold_flow_lpm", c.ExpHoldFlowLPM, 0, 30, true)
 	if len(errs) == 0 && c.PlateauWindowS > c.MinPauseS {
 		name := "plateau_window_s"
 		if prefix != "" {

@@ -63,6 +63,12 @@ func (a *Analyzer) finish() Breath {
 		b.EndExpFlowLPM = 60 * math.Max(-fe, 0)
 		eef, eefSE = -fe, se
 	}
+	// An end-expiratory hold: the window above lies in it, so the PEEP
+	// is the pressure before it (see expHold).
+	hold, isHold := a.expHold(eeT)
+	if isHold {
+		b.PEEPCmH2O = hold.peepCmH2O
+	}
 
 	// One allocation a breath (the record keeps its flags), sized for the
 	// usual count so that appending does not grow it.
@@ -85,6 +91,9 @@ func (a *Analyzer) finish() Breath {
 	b.Mode = a.inferMode(b.PEEPCmH2O)
 	m := a.mechanicsOf(&b, &flags, endT)
 	a.trapping(&b, &flags, &m, eef, eefSE, endT)
+	if isHold {
+		a.applyHold(&b, &flags, &m, hold)
+	}
 	a.settings.observe(&b, &flags, a.pauseLen, a.cur.maxF, a.inspCorrection())
 	b.Flags = flags
 	a.updateBalance(&b)

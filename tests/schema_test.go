@@ -14,6 +14,9 @@ import (
 	"testing"
 
 	"trapline/daemon/cli"
+	"trapline/simulator"
+
+	"go.yaml.in/yaml/v3"
 )
 
 // schemaNode is the part of JSON Schema (draft 2020-12) that the shipped
@@ -134,7 +137,8 @@ func (s *schemaNode) check(path string, v any) []string {
 	return bad
 }
 
-// TestRecordsMatchSchemas runs the shipped bronchospasm scenario through
+// TestRecordsMatchSchemas runs the shipped bronchospasm scenario, with an
+// end-expiratory hold added, through
 // `trapline sim` and `trapline analyze` and checks every breath record and
 // alert event against the JSON Schemas shipped in docs/schema, and every
 // property of the breath schema against what the records carry, so that the
@@ -143,9 +147,24 @@ func TestRecordsMatchSchemas(t *testing.T) {
 	breathSchema := loadSchema(t, "breath.schema.json")
 	alertSchema := loadSchema(t, "alert.schema.json")
 
+	// The shipped scenario with an end-expiratory hold at its worst
+	// trapping, so that the hold's properties carry values too.
+	scen, err := simulator.Shipped("bronchospasm")
+	if err != nil {
+		t.Fatal(err)
+	}
+	scen.Timeline = append(scen.Timeline, simulator.Step{AtS: 600, Event: simulator.EventExpiratoryHold, DurationS: 4})
+	data, err := yaml.Marshal(scen)
+	if err != nil {
+		t.Fatal(err)
+	}
+	scenario := filepath.Join(t.TempDir(), "bronchospasm-hold.yaml")
+	if err := os.WriteFile(scenario, data, 0o644); err != nil {
+		t.Fatal(err)
+	}
 	signal := filepath.Join(t.TempDir(), "bronchospasm.txt")
 	var stderr bytes.Buffer
-	if code := cli.Run(t.Context(), []string{"sim", "--scenario", "bronchospasm", "--speed", "max", "--out", signal},
+	if code := cli.Run(t.Context(), []string{"sim", "--scenario", scenario, "--speed", "max", "--out", signal},
 		strings.NewReader(""), io.Discard, &stderr); code != cli.ExitOK {
 		t.Fatalf("trapline sim exited %d: %s", code, stderr.String())
 	}
