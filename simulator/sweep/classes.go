@@ -19,6 +19,11 @@ const (
 	SettleBreaths = 6
 	// PEEPiTolCmH2O is the tolerance of PEEPiWithin.
 	PEEPiTolCmH2O = 1.0
+	// HoldVisibleCmH2O is the true intrinsic PEEP from which a hold must
+	// be recognised: below it the pressure hardly rises in the hold, and
+	// the analyzer takes it for an open valve (a lung that had emptied),
+	// which reads the same near-zero value.
+	HoldVisibleCmH2O = 0.5
 )
 
 // ClassScore holds the air-trapping figures of one class of patients: the
@@ -57,13 +62,24 @@ type ClassScore struct {
 	PEEPiWithin Num `json:"peepi_within_1cmh2o"`
 	PEEPiN      int `json:"peepi_n"`
 	PEEPiBound  int `json:"peepi_bound"`
+	// End-expiratory holds (grids with exp_holds): HoldN counts the
+	// passive breaths that truly ended in one, HoldMissed those with a true
+	// intrinsic PEEP of at least HoldVisibleCmH2O that the record did not
+	// flag exp-hold, HoldFalse the records that flagged one where
+	// there was none, HoldUnsettled those flagged hold-unsettled, and
+	// HoldWithin is PEEPiWithin over the HoldN breaths.
+	HoldN         int `json:"hold_n,omitempty"`
+	HoldWithin    Num `json:"hold_within_1cmh2o,omitempty"`
+	HoldMissed    int `json:"hold_missed,omitempty"`
+	HoldFalse     int `json:"hold_false,omitempty"`
+	HoldUnsettled int `json:"hold_unsettled,omitempty"`
 	// RMedianRelPct and CMedianRelPct are the medians of the relative
 	// errors of R and C.
 	RMedianRelPct Num `json:"r_median_rel_pct"`
 	CMedianRelPct Num `json:"c_median_rel_pct"`
 
 	settled, settledHit int
-	peepiOK             int
+	peepiOK, holdOK     int
 	rRel, cRel          []float64
 }
 
@@ -131,6 +147,9 @@ func classScores(r *Result, si int) []ClassScore {
 		cs.SensitivitySettled = ratio(cs.settledHit, cs.settled)
 		cs.SettledBreaths = cs.settled
 		cs.PEEPiWithin = ratio(cs.peepiOK, cs.PEEPiN)
+		if cs.HoldN > 0 {
+			cs.HoldWithin = ratio(cs.holdOK, cs.HoldN)
+		}
 		cs.RMedianRelPct, cs.CMedianRelPct = quantile(cs.rRel, 0.5), quantile(cs.cRel, 0.5)
 		out = append(out, *cs)
 	}
@@ -153,6 +172,21 @@ func (cs *ClassScore) addEstimates(c *CaseResult) {
 			if ok {
 				cs.peepiOK++
 			}
+			if t.Hold {
+				cs.HoldN++
+				if !e.Hold && t.PEEPiCmH2O >= HoldVisibleCmH2O {
+					cs.HoldMissed++
+				}
+				if e.HoldUnsettled {
+					cs.HoldUnsettled++
+				}
+				if ok {
+					cs.holdOK++
+				}
+			}
+		}
+		if e.Hold && !t.Hold {
+			cs.HoldFalse++
 		}
 		if v := float64(e.RCmH2OSPerL); !math.IsNaN(v) && t.RCmH2OSPerL > 0 {
 			cs.rRel = append(cs.rRel, 100*math.Abs(v-t.RCmH2OSPerL)/t.RCmH2OSPerL)

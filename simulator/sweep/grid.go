@@ -94,6 +94,14 @@ type CourseStep struct {
 	Ventilator map[string]float64 `yaml:"ventilator"`
 }
 
+// ExpHolds schedules end-expiratory holds on every grid patient: one of
+// DurationS every EveryS from EveryS on (zero EveryS: none), each at the
+// end of the first expiration that ends after its time.
+type ExpHolds struct {
+	EveryS    simulator.Seconds `yaml:"every"`
+	DurationS simulator.Seconds `yaml:"duration"`
+}
+
 // Episodes holds the rules that turn per-breath truth into episodes.
 type Episodes struct {
 	// MinBreaths is the shortest run of breaths that counts as an episode
@@ -130,6 +138,8 @@ type Grid struct {
 	Settings             []Setting    `yaml:"settings"`
 	Noise                []Noise      `yaml:"noise"`
 	Course               []CourseStep `yaml:"course"`
+	// ExpHolds adds end-expiratory holds to every grid patient.
+	ExpHolds ExpHolds `yaml:"exp_holds"`
 	// Scenarios are shipped scenario names or YAML paths; "all" expands to
 	// every shipped scenario.
 	Scenarios []string `yaml:"scenarios"`
@@ -144,64 +154,6 @@ type Grid struct {
 // tolerance (a few samples at 50 Hz plus the analyzer's 50 ms hold).
 func DefaultEpisodes() Episodes {
 	return Episodes{MinBreaths: 6, GraceBreaths: 0, MatchTolS: 0.3}
-}
-
-// defaultSettings are four adult volume-control settings from an easy
-// expiration to a short one (our choice): inspiratory flow and rate set the
-// expiratory time, and so how much of the grid traps air.
-func defaultSettings() []Setting {
-	vc := func(name string, vt, flow, rate, pause float64) Setting {
-		return Setting{Name: name, Ventilator: simulator.Ventilator{Mode: simulator.ModeVC, FlowPattern: simulator.FlowSquare,
-			TidalVolumeML: vt, FlowLPM: flow, RateBPM: rate, PauseS: pause, PEEPCmH2O: 5}}
-	}
-	return []Setting{
-		vc("vt450-rr14-pause", 450, 50, 14, 0.3),
-		vc("vt500-rr20", 500, 45, 20, 0),
-		vc("vt600-rr24", 600, 40, 24, 0),
-		vc("vt550-rr28", 550, 60, 28, 0),
-	}
-}
-
-// defaultNoise is a clean sensor and a noisy one (our choice: typical and
-// poor bench flow sensors).
-func defaultNoise() []Noise {
-	return []Noise{
-		{Name: "clean", Sensor: simulator.Sensor{PressureNoiseCmH2O: 0.1, FlowNoiseLPM: 0.3}},
-		{Name: "noisy", Sensor: simulator.Sensor{PressureNoiseCmH2O: 0.5, FlowNoiseLPM: 2, FlowOffsetLPM: 0.5}},
-	}
-}
-
-// defaultCourse worsens the airways for the middle third of the run and
-// then relieves them: a bronchospasm-like doubling of resistance over two
-// minutes at one third, back to nominal at two thirds.
-func defaultCourse() []CourseStep {
-	return []CourseStep{
-		{AtFraction: 1.0 / 3, RampS: 120, ResistanceFactor: 2},
-		{AtFraction: 2.0 / 3, RampS: 0, ResistanceFactor: 1},
-	}
-}
-
-// DefaultGrid is the grid `trapline sweep` runs without a grid file: 5
-// models × 4 resistances × 3 compliances × 4 settings × 2 noise levels = 480
-// patients of 65 minutes, plus every shipped scenario with two seeds: over
-// 500 simulated patient-hours at 50 Hz.
-func DefaultGrid() Grid {
-	return Grid{
-		DurationS:     65 * 60,
-		SampleRatesHz: []float64{50},
-		StepS:         0.004,
-		Seeds:         1,
-		// The 3× and 10× two-compartment models are left to grid files
-		// (docs/sweep-acceptance.yaml) to keep the default run's size.
-		Models:               []string{ModelLinear, ModelRohrer, ModelTwoCompartment, ModelFlowLimited, ModelEffort},
-		ResistanceCmH2OSPerL: []float64{8, 15, 25, 35},
-		ComplianceMLPerCmH2O: []float64{30, 50, 80},
-		Settings:             defaultSettings(),
-		Noise:                defaultNoise(),
-		Course:               defaultCourse(),
-		Scenarios:            []string{"all"},
-		Episodes:             DefaultEpisodes(),
-	}
 }
 
 // QuickGrid is a small grid that runs in well under a minute on two cores:
@@ -411,6 +363,9 @@ func (g Grid) checkFields(bad func(format string, args ...any)) {
 			bad("course[%d]: ramp must not be negative and factors must be in [0, 20]", i)
 		}
 	}
+	if h := g.ExpHolds; h.EveryS != 0 && !(h.EveryS >= 10 && h.DurationS > 0 && h.DurationS <= simulator.MaxExpiratoryHoldS && h.DurationS < h.EveryS/2) {
+		bad("exp_holds: every must be at least 10s and duration in (0, %gs] and under half of every", simulator.MaxExpiratoryHoldS)
+	}
 	for i, n := range g.Settings {
 		if n.Name == "" {
 			bad("settings[%d].name: empty", i)
@@ -495,6 +450,11 @@ func (g *Grid) scenario(model string, r, c float64, st Setting, n Noise, seed ui
 			st.Patient = patientKeys(patient(model, r, c, rf, cf))
 		}
 		sc.Timeline = append(sc.Timeline, st)
+	}
+	if h := g.ExpHolds; h.EveryS > 0 {
+		for at := h.EveryS; at < g.DurationS; at += h.EveryS {
+			sc.Timeline = append(sc.Timeline, simulator.Step{AtS: at, Event: simulator.EventExpiratoryHold, DurationS: h.DurationS})
+		}
 	}
 	return sc
 }

@@ -113,6 +113,8 @@ type reportData struct {
 	Est      []EstimatorError
 	Other    []string
 	Classes  []ClassScore
+	// Holds is true when the grid scheduled end-expiratory holds.
+	Holds bool
 }
 
 type headRow struct {
@@ -239,6 +241,9 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 // and the alerts of conditions that are not scored.
 func reportTables(s *Summary) reportData {
 	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators, Classes: s.Sets[0].Classes}
+	for _, c := range d.Classes {
+		d.Holds = d.Holds || c.HoldN > 0
+	}
 	for _, set := range s.Sets {
 		d.Sets = append(d.Sets, set.Name)
 	}
@@ -392,7 +397,13 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 <table><tr><th>class</th><th>patients</th><th>hours</th><th>settled sens.</th><th>settled breaths</th><th>episodes</th><th>unalarmed</th><th>max onset (breaths)</th><th>onsets &gt; 6</th><th>false raises</th><th>grey raises</th><th>non-trapping h</th><th>PEEPi ±1</th><th>bound</th><th>R err %</th><th>C err %</th></tr>
 {{range .Classes}}<tr><td>{{.Class}}</td><td>{{.Patients}}</td><td>{{num .PatientHours 1}}</td><td>{{num .SensitivitySettled 3}}</td><td>{{.SettledBreaths}}</td><td>{{.Episodes}}</td><td>{{.Unalarmed}}</td><td>{{num .OnsetMaxBreaths 0}}</td><td>{{.OnsetOver6}}</td><td>{{.FalseRaises}}</td><td>{{.GreyRaises}}</td><td>{{num .NonTrappingHours 1}}</td><td>{{num .PEEPiWithin 3}}</td><td>{{.PEEPiBound}}</td><td>{{num .RMedianRelPct 1}}</td><td>{{num .CMedianRelPct 1}}</td></tr>
 {{end}}</table>
-
+{{if .Holds}}
+<h2>End-expiratory holds by class ({{index .Sets 0}})</h2>
+<p class="note">Passive breaths that truly ended in a hold. PEEPi ±1 as above, over them. Missed: true intrinsic PEEP ≥ 0.5 cmH2O and not flagged exp-hold. False: flagged exp-hold without a hold. Still rising: flagged hold-unsettled (a lower bound).</p>
+<table><tr><th>class</th><th>holds</th><th>PEEPi ±1</th><th>missed</th><th>false</th><th>still rising</th></tr>
+{{range .Classes}}<tr><td>{{.Class}}</td><td>{{.HoldN}}</td><td>{{num .HoldWithin 3}}</td><td>{{.HoldMissed}}</td><td>{{.HoldFalse}}</td><td>{{.HoldUnsettled}}</td></tr>
+{{end}}</table>
+{{end}}
 <h2>Estimators</h2>
 <p class="note">Error = estimate − truth per analysed breath. For the non-linear models the truth is the equivalent R, C and τ of the simulator (see docs/sweep.md).</p>
 {{.Errors}}

@@ -44,6 +44,8 @@ type TruthBreath struct {
 	CMLPerCmH2O  float64 `json:"c_ml_per_cmh2o"`
 	TauS         float64 `json:"tau_s"`
 	Passive      bool    `json:"passive"`
+	// Hold is true when the breath's expiration ended in a hold.
+	Hold bool `json:"exp_hold,omitempty"`
 }
 
 // Has reports whether the breath truly has the scored condition with index i.
@@ -56,6 +58,7 @@ func truthBreath(tr *simulator.Truth) TruthBreath {
 		PEEPiCmH2O: tr.PEEPiCmH2O, TrappedML: tr.TrappedML, PlateauCmH2O: tr.PlateauCmH2O,
 		DrivingCmH2O: tr.DrivingCmH2O, PeakCmH2O: tr.PeakCmH2O,
 		RCmH2OSPerL: tr.RCmH2OSPerL, CMLPerCmH2O: tr.CMLPerCmH2O, TauS: tr.TauS, Passive: tr.Passive,
+		Hold: tr.ExpHoldS > 0,
 	}
 	for i, c := range Scored() {
 		has := tr.HasLabel(c)
@@ -93,6 +96,9 @@ type Estimate struct {
 	// PEEPiBound is true when the record flags its intrinsic PEEP as a
 	// lower bound.
 	PEEPiBound bool
+	// Hold is true when the record flags an end-expiratory hold, and
+	// HoldUnsettled when it flags the hold's pressure still rising.
+	Hold, HoldUnsettled bool
 }
 
 // CaseResult is everything one simulated patient produced.
@@ -322,6 +328,9 @@ func (r *CaseResult) match(b *analyze.Breath, ti int) int {
 		TrappedML:   float32(b.TrappedML),
 		PEEPiCmH2O:  float32(b.PEEPiCmH2O),
 		PEEPiBound:  b.HasFlag(analyze.FlagPEEPiBound),
+		Hold:        b.HasFlag(analyze.FlagExpHold),
+		// A flag the record carries only with exp-hold.
+		HoldUnsettled: b.HasFlag(analyze.FlagHoldUnsettled),
 	})
 	return best + 1
 }
