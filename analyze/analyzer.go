@@ -103,7 +103,9 @@ type Analyzer struct {
 	stream string
 	cfg    Config
 
-	trigLPS      float64
+	trigLPS      float64 // trigger flow of the next phase change (see scaledTrigger)
+	trigMinLPS   float64
+	trigMaxLPS   float64
 	pauseFlowLPS float64
 	seq          int
 
@@ -175,7 +177,10 @@ type Analyzer struct {
 // Validate; out-of-range values are not checked again here.
 func NewAnalyzer(stream string, cfg Config) *Analyzer {
 	a := &Analyzer{stream: stream, cfg: cfg}
-	a.trigLPS = cfg.TriggerFlowLPM / 60
+	a.trigLPS, a.trigMaxLPS, a.trigMinLPS = cfg.TriggerFlowLPM/60, cfg.TriggerFlowLPM/60, cfg.MinTriggerFlowLPM/60
+	if !(cfg.TriggerFraction > 0) {
+		a.trigMinLPS = a.trigMaxLPS // fixed
+	}
 	a.pauseFlowLPS = cfg.PauseFlowLPM / 60
 	// The ring must reach back past the longest window read from it: the
 	// onset search (onsetLookbackS, or onsetBaseS of baseline) and the end
@@ -208,8 +213,8 @@ func (a *Analyzer) Reset() {
 	a.prevTrapML, a.prevPEEP = math.NaN(), math.NaN()
 	// The pooled K2 describes the airways of the breaths before the gap;
 	// after a disconnection they may be another patient's.
-	a.k2Pool = rohrerPool{}
-	a.slowPool = slowPool{}
+	a.k2Pool, a.slowPool = rohrerPool{}, slowPool{}
+	a.trigLPS = a.cfg.TriggerFlowLPM / 60
 }
 
 func (a *Analyzer) resetBreath() {
@@ -345,65 +350,6 @@ func (a *Analyzer) push(s ingest.Sample) bool {
 	return done
 }
 
-// edge returns the start time of a flow reversal first seen between the
-// previous sample and (t, f), and the volume accrued from the previous sample
-// to it. When the previous flow was on the old side of zero the start is the
-// interpolated zero crossing; when it was already on the new side (noise
-// around zero flow), the start is the previous sample. Detecting the
-// reversal at the trigger flow rather than at zero, and then going back to
-// the zero crossing, keeps noise around zero flow from moving the start by
-// several samples.
-func (a *Analyzer) edge(t, f float64) (tc, dv float64) {
-	f0 := a.prevF
-	if f0 == 0 || (f0 > 0) == (f > 0) {
-		return a.prevT, 0
-	}
-	tc = a.prevT + (t-a.prevT)*f0/(f0-f)
-	return tc, 0.5 * f0 * (tc - a.prevT)
-}
-
-// track handles a tentative start of inspiration: flow rising above the
-// trigger. It returns true when the flow has stayed above the trigger for
-// HoldS. While tentative, samples accumulate apart in a.pend; if the flow
-// falls back they are merged into the open breath.
-func (a *Analyzer) track(t, f, p, dt float64) (confirmed bool) {
-	if !a.inCand {
-		if a.prevF <= a.trigLPS && f > a.trigLPS {
-			tc, dv := a.edge(t, f)
-			a.candT = tc
-			a.candV = a.vol + dv
-			a.pendVol = 0.5*(a.prevF+f)*dt - dv
-			a.pend.reset()
-			a.pend.add(f, a.pendVol, p)
-			a.inCand = true
-			a.inHoldT = t
-			return a.cfg.HoldS == 0
-		}
-		if a.ph != phaseWait {
-			a.vol += 0.5 * (a.prevF + f) * dt
-			a.cur.add(f, a.vol, p)
-			a.buf.add(t, f, a.vol, p)
-		}
-		return false
-	}
-	a.pendVol += 0.5 * (a.prevF + f) * dt
-	if f <= a.trigLPS {
-		a.inCand = false
-		if a.ph != phaseWait {
-			a.cur.merge(&a.pend, a.candV)
-			a.vol = a.candV + a.pendVol
-			a.cur.add(f, a.vol, p)
-			a.buf.add(t, f, a.vol, p)
-		}
-		return false
-	}
-	a.pend.add(f, a.pendVol, p)
-	if a.ph != phaseWait {
-		a.buf.add(t, f, a.candV+a.pendVol, p)
-	}
-	return t-a.inHoldT >= a.cfg.HoldS
-}
-
 // begin opens a breath at the confirmed crossing, taking over the samples
 // accumulated since it.
 func (a *Analyzer) begin() {
@@ -443,10 +389,12 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 		a.pauseStartT = math.NaN()
 	}
 
-	// Start of expiration: flow falling below −TriggerFlowLPM and staying
-	// there for HoldS; the phase starts at the zero crossing before it.
+	// Start of expiration: flow falling below the trigger (scaled to this
+	// inspiration's flow, see scaledTrigger) and staying there for HoldS;
+	// the phase starts at the zero crossing before it.
+	trig := a.scaledTrigger(a.cur.maxF)
 	if !a.expCand {
-		if !(a.prevF >= -a.trigLPS && f < -a.trigLPS) {
+		if !(a.prevF >= -trig && f < -trig) {
 			return
 		}
 		tc, dv := a.edge(t, f)
@@ -455,7 +403,7 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 		a.expCandV = a.vol - 0.5*(a.prevF+f)*dt + dv
 		a.expHoldT = t
 	}
-	if f >= -a.trigLPS {
+	if f >= -trig {
 		a.expCand = false
 		return
 	}
@@ -466,6 +414,7 @@ func (a *Analyzer) stepInsp(t, f, p, dt float64) {
 	a.expStartT = a.expCandT
 	a.expStartV = a.expCandV
 	a.expCand = false
+	a.trigLPS = trig // the next inspiration's, scaled to this one's flow
 	if !math.IsNaN(a.pauseStartT) {
 		a.pauseLen = a.expStartT - a.pauseStartT
 		if a.pauseLen >= a.cfg.MinPauseS {

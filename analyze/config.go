@@ -13,6 +13,13 @@ type Config struct {
 	// TriggerFlowLPM is the flow a phase change must exceed, in the new
 	// direction, before it counts (hysteresis against noise); L/min.
 	TriggerFlowLPM float64 `mapstructure:"trigger_flow_lpm"`
+	// TriggerFraction lowers the trigger flow for breaths whose own flows
+	// are small: a phase change then counts at this fraction of the smaller
+	// of the peak inspiratory and expiratory flows of the recent breaths,
+	// when that is below TriggerFlowLPM, and not below MinTriggerFlowLPM.
+	// Zero keeps TriggerFlowLPM fixed.
+	TriggerFraction   float64 `mapstructure:"trigger_fraction"`
+	MinTriggerFlowLPM float64 `mapstructure:"min_trigger_flow_lpm"`
 	// HoldS is how long the flow must stay beyond TriggerFlowLPM to confirm
 	// a phase change.
 	HoldS float64 `mapstructure:"hold_s"`
@@ -72,6 +79,8 @@ type Config struct {
 func DefaultConfig() Config {
 	return Config{
 		TriggerFlowLPM:         3,
+		TriggerFraction:        0.2,
+		MinTriggerFlowLPM:      1,
 		HoldS:                  0.05,
 		MinPhaseS:              0.15,
 		MinBreathVolumeML:      30,
@@ -115,6 +124,8 @@ func (c Config) Validate(prefix string) []error {
 		errs = append(errs, fmt.Errorf("%s: %g is out of range (allowed %s%g, %g])", name, v, open, lo, hi))
 	}
 	check("trigger_flow_lpm", c.TriggerFlowLPM, 0, 60, true)
+	check("trigger_fraction", c.TriggerFraction, 0, 0.5, false)
+	check("min_trigger_flow_lpm", c.MinTriggerFlowLPM, 0, 60, true)
 	check("hold_s", c.HoldS, 0, 0.5, false)
 	check("min_phase_s", c.MinPhaseS, 0, 3, false)
 	check("min_breath_volume_ml", c.MinBreathVolumeML, 0, 1000, false)
@@ -134,6 +145,13 @@ func (c Config) Validate(prefix string) []error {
 	check("peepi_tolerance_fraction", c.PEEPiToleranceFraction, 0, 10, false)
 	check("exp_hold_min_s", c.ExpHoldMinS, 0.2, 20, false)
 	check("exp_hold_flow_lpm", c.ExpHoldFlowLPM, 0, 30, true)
+	if len(errs) == 0 && c.MinTriggerFlowLPM > c.TriggerFlowLPM {
+		name := "min_trigger_flow_lpm"
+		if prefix != "" {
+			name = prefix + "." + name
+		}
+		errs = append(errs, fmt.Errorf("%s: %g is above trigger_flow_lpm %g (allowed (0, trigger_flow_lpm])", name, c.MinTriggerFlowLPM, c.TriggerFlowLPM))
+	}
 	if len(errs) == 0 && c.PlateauWindowS > c.MinPauseS {
 		name := "plateau_window_s"
 		if prefix != "" {

@@ -245,3 +245,19 @@ func (a *Analyzer) pauseLenOK() float64 {
 	}
 	return a.pauseLen
 }
+
+// scaledTrigger is the trigger flow (L/s) of a phase change after an
+// inspiration whose peak flow was peakLPS: trigger_fraction of it, between
+// min_trigger_flow_lpm and trigger_flow_lpm. A fixed 3 L/min missed the
+// expirations of breaths whose flows are a few L/min (a resistance of
+// 120 cmH2O·s/L under pressure control: about 5 L/min in, 3 out), which
+// then merged with the next; scaled to the inspiration, the expiration
+// that follows it and the next inspiration are seen.
+func (a *Analyzer) scaledTrigger(peakLPS float64) float64 {
+	c := &a.cfg
+	t := c.TriggerFraction * peakLPS
+	if t > a.trigMaxLPS {
+		return a.trigMaxLPS
+	}
+	return math.Max(t, a.trigMinLPS)
+}
