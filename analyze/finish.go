@@ -94,9 +94,10 @@ func (a *Analyzer) finish() Breath {
 	if isHold {
 		a.applyHold(&b, &flags, &m, hold)
 	}
-	a.settings.observe(&b, &flags, a.pauseLen, a.cur.maxF, a.inspCorrection())
+	corr := a.inspCorrection()
+	a.settings.observe(&b, &flags, a.pauseLen, a.cur.maxF, corr)
 	b.Flags = flags
-	a.updateBalance(&b)
+	a.updateBalance(&b, corr)
 	return b
 }
 
