@@ -255,10 +255,14 @@ func (a *Analyzer) pauseLenOK() float64 {
 // then merged with the next; scaled to the inspiration, the expiration
 // that follows it and the next inspiration are seen.
 func (a *Analyzer) scaledTrigger(peakLPS float64) float64 {
-	c := &a.cfg
-	t := c.TriggerFraction * peakLPS
+	// Plain comparisons, not math.Max: small enough to be inlined where
+	// it runs, for every inspiratory sample.
+	t := a.cfg.TriggerFraction * peakLPS
 	if t > a.trigMaxLPS {
 		return a.trigMaxLPS
 	}
-	return math.Max(t, a.trigMinLPS)
+	if t < a.trigMinLPS {
+		return a.trigMinLPS
+	}
+	return t
 }
