@@ -36,7 +36,15 @@ func tinyGrid() Grid {
 
 func runTiny(t *testing.T, sets ...DetectorSet) (*Result, *Summary) {
 	t.Helper()
-	plan, err := tinyGrid().Expand()
+	res := runGrid(t, tinyGrid(), sets...)
+	return res, Summarize(res)
+}
+
+// runGrid expands g and runs it with the detector sets (the default set
+// when none are given).
+func runGrid(t *testing.T, g Grid, sets ...DetectorSet) *Result {
+	t.Helper()
+	plan, err := g.Expand()
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -44,7 +52,7 @@ func runTiny(t *testing.T, sets ...DetectorSet) (*Result, *Summary) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	return res, Summarize(res)
+	return res
 }
 
 // independentCounts recomputes the headline figures of one condition from
@@ -659,14 +667,7 @@ func TestSampleRates(t *testing.T) {
 	g := tinyGrid()
 	g.Models, g.ResistanceCmH2OSPerL, g.Scenarios = []string{ModelLinear}, []float64{35}, nil
 	g.SampleRatesHz = []float64{50, 100}
-	plan, err := g.Expand()
-	if err != nil {
-		t.Fatal(err)
-	}
-	res, err := Run(t.Context(), plan, Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	res := runGrid(t, g)
 	sum := Summarize(res)
 	set := sum.Sets[0]
 	if len(set.BySampleRate) != 2 || set.BySampleRate[1].SampleRateHz != 100 {
@@ -683,7 +684,7 @@ func TestSampleRates(t *testing.T) {
 	}
 }
 
-// TestExpHoldsScored runs two linear patients that trap air (R 35 under the
+// TestExpHoldsScored runs a linear patient that traps air (R 35 under the
 // tiny grid's short expiration) and one that does not (R 10) with a 3 s
 // hold every 30 s, and checks the per-class hold figures against a count
 // made here from the raw truth and estimates: every passive hold breath
@@ -699,14 +700,7 @@ func TestExpHoldsScored(t *testing.T) {
 		t.Fatalf("a hold of 20 s every 30 s: %v, want an error naming exp_holds", err)
 	}
 	g.ExpHolds = ExpHolds{EveryS: 30, DurationS: 3}
-	plan, err := g.Expand()
-	if err != nil {
-		t.Fatal(err)
-	}
-	res, err := Run(t.Context(), plan, Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	res := runGrid(t, g)
 	var n, within, visible int
 	for _, c := range res.Cases {
 		for _, e := range c.Estimates {
