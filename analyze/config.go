@@ -14,10 +14,10 @@ type Config struct {
 	// direction, before it counts (hysteresis against noise); L/min.
 	TriggerFlowLPM float64 `mapstructure:"trigger_flow_lpm"`
 	// TriggerFraction lowers the trigger flow for breaths whose own flows
-	// are small: a phase change then counts at this fraction of the smaller
-	// of the peak inspiratory and expiratory flows of the recent breaths,
-	// when that is below TriggerFlowLPM, and not below MinTriggerFlowLPM.
-	// Zero keeps TriggerFlowLPM fixed.
+	// are small: after an inspiration, the expiration that follows it and
+	// the next inspiration count at this fraction of its peak flow, when
+	// that is below TriggerFlowLPM, and not below MinTriggerFlowLPM. Zero
+	// keeps TriggerFlowLPM fixed.
 	TriggerFraction   float64 `mapstructure:"trigger_fraction"`
 	MinTriggerFlowLPM float64 `mapstructure:"min_trigger_flow_lpm"`
 	// HoldS is how long the flow must stay beyond TriggerFlowLPM to confirm
@@ -108,11 +108,14 @@ func DefaultConfig() Config {
 // the config file, e.g. "analysis"; it may be empty.
 func (c Config) Validate(prefix string) []error {
 	var errs []error
-	check := func(key string, v, lo, hi float64, loOpen bool) {
-		name := key
-		if prefix != "" {
-			name = prefix + "." + key
+	full := func(key string) string {
+		if prefix == "" {
+			return key
 		}
+		return prefix + "." + key
+	}
+	check := func(key string, v, lo, hi float64, loOpen bool) {
+		name := full(key)
 		bad := math.IsNaN(v) || v > hi || v < lo || (loOpen && v == lo)
 		if !bad {
 			return
@@ -146,18 +149,12 @@ func (c Config) Validate(prefix string) []error {
 	check("exp_hold_min_s", c.ExpHoldMinS, 0.2, 20, false)
 	check("exp_hold_flow_lpm", c.ExpHoldFlowLPM, 0, 30, true)
 	if len(errs) == 0 && c.MinTriggerFlowLPM > c.TriggerFlowLPM {
-		name := "min_trigger_flow_lpm"
-		if prefix != "" {
-			name = prefix + "." + name
-		}
-		errs = append(errs, fmt.Errorf("%s: %g is above trigger_flow_lpm %g (allowed (0, trigger_flow_lpm])", name, c.MinTriggerFlowLPM, c.TriggerFlowLPM))
+		errs = append(errs, fmt.Errorf("%s: %g is above trigger_flow_lpm %g (allowed (0, trigger_flow_lpm])",
+			full("min_trigger_flow_lpm"), c.MinTriggerFlowLPM, c.TriggerFlowLPM))
 	}
 	if len(errs) == 0 && c.PlateauWindowS > c.MinPauseS {
-		name := "plateau_window_s"
-		if prefix != "" {
-			name = prefix + "." + name
-		}
-		errs = append(errs, fmt.Errorf("%s: %g is longer than min_pause_s %g (allowed (0, min_pause_s])", name, c.PlateauWindowS, c.MinPauseS))
+		errs = append(errs, fmt.Errorf("%s: %g is longer than min_pause_s %g (allowed (0, min_pause_s])",
+			full("plateau_window_s"), c.PlateauWindowS, c.MinPauseS))
 	}
 	return errs
 }

@@ -25,3 +25,22 @@ func TestConfigValidate(t *testing.T) {
 		}
 	}
 }
+
+// TestConfigValidateCrossKeys checks the keys bounded by another key: the
+// message names the key with its section and the key that bounds it.
+func TestConfigValidateCrossKeys(t *testing.T) {
+	for _, tc := range []struct {
+		edit       func(*Config)
+		key, other string
+	}{
+		{func(c *Config) { c.MinTriggerFlowLPM = 4 }, "min_trigger_flow_lpm", "trigger_flow_lpm"},
+		{func(c *Config) { c.PlateauWindowS = 0.3 }, "plateau_window_s", "min_pause_s"},
+	} {
+		c := DefaultConfig()
+		tc.edit(&c)
+		errs := c.Validate("analysis")
+		if len(errs) != 1 || !strings.HasPrefix(errs[0].Error(), "analysis."+tc.key+": ") || !strings.Contains(errs[0].Error(), tc.other) {
+			t.Errorf("%s: %v, want one error naming analysis.%s and %s", tc.key, errs, tc.key, tc.other)
+		}
+	}
+}
