@@ -62,25 +62,41 @@ type ClassScore struct {
 	PEEPiWithin Num `json:"peepi_within_1cmh2o"`
 	PEEPiN      int `json:"peepi_n"`
 	PEEPiBound  int `json:"peepi_bound"`
-	// End-expiratory holds (grids with exp_holds): HoldN counts the
-	// passive breaths that truly ended in one, HoldMissed those with a true
-	// intrinsic PEEP of at least HoldVisibleCmH2O that the record did not
-	// flag exp-hold, HoldFalse the records that flagged one where
-	// there was none, HoldUnsettled those flagged hold-unsettled, and
-	// HoldWithin is PEEPiWithin over the HoldN breaths.
-	HoldN         int `json:"hold_n,omitempty"`
-	HoldWithin    Num `json:"hold_within_1cmh2o,omitempty"`
-	HoldMissed    int `json:"hold_missed,omitempty"`
-	HoldFalse     int `json:"hold_false,omitempty"`
-	HoldUnsettled int `json:"hold_unsettled,omitempty"`
+	// Holds are the end-expiratory hold figures, nil when the class had
+	// neither a hold nor a breath taken for one.
+	Holds *HoldScore `json:"holds,omitempty"`
 	// RMedianRelPct and CMedianRelPct are the medians of the relative
 	// errors of R and C.
 	RMedianRelPct Num `json:"r_median_rel_pct"`
 	CMedianRelPct Num `json:"c_median_rel_pct"`
 
 	settled, settledHit int
-	peepiOK, holdOK     int
+	peepiOK             int
 	rRel, cRel          []float64
+}
+
+// HoldScore holds the end-expiratory hold figures of a class (grids with
+// exp_holds): N counts the passive breaths that truly ended in a hold,
+// Within is PEEPiWithin over them, Missed counts those with a true
+// intrinsic PEEP of at least HoldVisibleCmH2O whose record was not flagged
+// exp-hold, False the records flagged exp-hold whose breath had no hold,
+// and Unsettled those flagged hold-unsettled.
+type HoldScore struct {
+	N         int `json:"n"`
+	Within    Num `json:"within_1cmh2o"`
+	Missed    int `json:"missed"`
+	False     int `json:"false"`
+	Unsettled int `json:"unsettled"`
+
+	ok int
+}
+
+// holds returns the class's hold figures, made on first use.
+func (cs *ClassScore) holds() *HoldScore {
+	if cs.Holds == nil {
+		cs.Holds = &HoldScore{}
+	}
+	return cs.Holds
 }
 
 // caseClasses names the classes a case belongs to.
@@ -147,8 +163,8 @@ func classScores(r *Result, si int) []ClassScore {
 		cs.SensitivitySettled = ratio(cs.settledHit, cs.settled)
 		cs.SettledBreaths = cs.settled
 		cs.PEEPiWithin = ratio(cs.peepiOK, cs.PEEPiN)
-		if cs.HoldN > 0 {
-			cs.HoldWithin = ratio(cs.holdOK, cs.HoldN)
+		if h := cs.Holds; h != nil {
+			h.Within = ratio(h.ok, h.N)
 		}
 		cs.RMedianRelPct, cs.CMedianRelPct = quantile(cs.rRel, 0.5), quantile(cs.cRel, 0.5)
 		out = append(out, *cs)
@@ -173,20 +189,21 @@ func (cs *ClassScore) addEstimates(c *CaseResult) {
 				cs.peepiOK++
 			}
 			if t.Hold {
-				cs.HoldN++
+				h := cs.holds()
+				h.N++
 				if !e.Hold && t.PEEPiCmH2O >= HoldVisibleCmH2O {
-					cs.HoldMissed++
+					h.Missed++
 				}
 				if e.HoldUnsettled {
-					cs.HoldUnsettled++
+					h.Unsettled++
 				}
 				if ok {
-					cs.holdOK++
+					h.ok++
 				}
 			}
 		}
 		if e.Hold && !t.Hold {
-			cs.HoldFalse++
+			cs.holds().False++
 		}
 		if v := float64(e.RCmH2OSPerL); !math.IsNaN(v) && t.RCmH2OSPerL > 0 {
 			cs.rRel = append(cs.rRel, 100*math.Abs(v-t.RCmH2OSPerL)/t.RCmH2OSPerL)

@@ -242,7 +242,7 @@ func WriteReport(w io.Writer, r *Result, s *Summary, ex *Example) error {
 func reportTables(s *Summary) reportData {
 	d := reportData{S: s, Compare: len(s.Sets) > 1, Est: s.Estimators, Classes: s.Sets[0].Classes}
 	for _, c := range d.Classes {
-		d.Holds = d.Holds || c.HoldN > 0
+		d.Holds = d.Holds || c.Holds != nil
 	}
 	for _, set := range s.Sets {
 		d.Sets = append(d.Sets, set.Name)
@@ -401,7 +401,7 @@ svg{max-width:100%;height:auto;display:block;margin:0.5em 0}
 <h2>End-expiratory holds by class ({{index .Sets 0}})</h2>
 <p class="note">Passive breaths that truly ended in a hold. PEEPi ±1 as above, over them. Missed: true intrinsic PEEP ≥ 0.5 cmH2O and not flagged exp-hold. False: flagged exp-hold without a hold. Still rising: flagged hold-unsettled (a lower bound).</p>
 <table><tr><th>class</th><th>holds</th><th>PEEPi ±1</th><th>missed</th><th>false</th><th>still rising</th></tr>
-{{range .Classes}}<tr><td>{{.Class}}</td><td>{{.HoldN}}</td><td>{{num .HoldWithin 3}}</td><td>{{.HoldMissed}}</td><td>{{.HoldFalse}}</td><td>{{.HoldUnsettled}}</td></tr>
+{{range $c := .Classes}}{{with $c.Holds}}<tr><td>{{$c.Class}}</td><td>{{.N}}</td><td>{{num .Within 3}}</td><td>{{.Missed}}</td><td>{{.False}}</td><td>{{.Unsettled}}</td></tr>{{end}}
 {{end}}</table>
 {{end}}
 <h2>Estimators</h2>

@@ -1,6 +1,7 @@
 package sweep
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -724,11 +725,26 @@ func TestExpHoldsScored(t *testing.T) {
 		}
 	}
 	// 4 minutes, a hold every 30 s from 30 s: 7 per patient.
-	if all == nil || n < 12 || visible < 6 || all.HoldN != n {
+	if all == nil || all.Holds == nil || n < 12 || visible < 6 || all.Holds.N != n {
 		t.Fatalf("holds: class %+v, counted %d (%d with a visible intrinsic PEEP)", all, n, visible)
 	}
-	if all.HoldMissed != 0 || all.HoldFalse != 0 || all.HoldUnsettled != 0 || within != n || float64(all.HoldWithin) != 1 {
+	if h := all.Holds; h.Missed != 0 || h.False != 0 || h.Unsettled != 0 || within != n || float64(h.Within) != 1 {
 		t.Errorf("holds: %d, within ±1 cmH2O %d (class %.3f), missed %d, false %d, unsettled %d",
-			n, within, float64(all.HoldWithin), all.HoldMissed, all.HoldFalse, all.HoldUnsettled)
+			n, within, float64(h.Within), h.Missed, h.False, h.Unsettled)
+	}
+	// The report's hold table carries the class's row.
+	var page bytes.Buffer
+	if err := WriteReport(&page, res, Summarize(res), nil); err != nil {
+		t.Fatal(err)
+	}
+	if row := fmt.Sprintf("<tr><td>all</td><td>%d</td>", n); !strings.Contains(page.String(), "End-expiratory holds by class") || !strings.Contains(page.String(), row) {
+		t.Errorf("report: no hold table with the row %q", row)
+	}
+	// The same grid without holds has no hold figures.
+	g.ExpHolds = ExpHolds{}
+	for _, cs := range classScores(runGrid(t, g), 0) {
+		if cs.Holds != nil {
+			t.Errorf("class %s of a grid without holds: %+v", cs.Class, *cs.Holds)
+		}
 	}
 }
