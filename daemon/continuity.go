@@ -15,8 +15,10 @@ import (
 	"trapline/alerts/pipeline"
 )
 
-// checkpointEvery is how often a running stream writes its checkpoint: it
-// bounds what a kill -9 loses to about two seconds of alarm state.
+// checkpointEvery is how often a running stream writes its checkpoint
+// when no alarm changes: it bounds what a kill -9 loses to about two
+// seconds of the detectors' running state. A change of an alarm is written
+// before it goes out (checkpointAlarms).
 const checkpointEvery = 2 * time.Second
 
 // resumable is a pipeline that can be checkpointed and resumed; the live
@@ -142,6 +144,31 @@ func (s *stream) checkpoint(pl streamPipeline, now time.Time, stop bool) {
 	if c == nil || (!stop && !c.due(pl, now)) {
 		return
 	}
+	s.saveCheckpoint(pl, now, stop)
+}
+
+// checkpointAlarms writes the stream's checkpoint now when out carries
+// alarm events, before they are delivered, and reports whether it did.
+// An alarm raised, escalated, acknowledged or cleared in the two seconds
+// between periodic checkpoints was otherwise lost by a kill -9 in that
+// window: its events were in the spool and went out, but the restarted
+// daemon did not know the alarm, so nothing ever ended it (a ghost alarm
+// for every subscriber; tests/continuity_test.go). Written ahead, a kill
+// after the checkpoint and before the spool leaves at worst an alarm the
+// restart ends that no subscriber saw raised. Alarm events are rare (a
+// few an hour per stream), so the write costs little.
+func (s *stream) checkpointAlarms(pl streamPipeline, now time.Time, out stageOutput) bool {
+	if s.spec.Continuity == nil || len(out.Alerts) == 0 {
+		return false
+	}
+	s.saveCheckpoint(pl, now, false)
+	return true
+}
+
+// saveCheckpoint writes the checkpoint (clean at a stop); a failure is
+// logged and counted, never fatal.
+func (s *stream) saveCheckpoint(pl streamPipeline, now time.Time, stop bool) {
+	c := s.spec.Continuity
 	if err := c.save(pl, now, stop); err != nil {
 		s.m.checkpointErrors.WithLabelValues(s.spec.ID).Inc()
 		s.log.Warn().Err(err).Msg("checkpoint not written")

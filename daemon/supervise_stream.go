@@ -371,13 +371,19 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				if s.view != nil {
 					s.view.Status(s.spec.ID, ev.Status)
 				}
-				if err := s.emit(pubCtx, pl.Status(ev, arrived), time.Time{}); err != nil {
+				out := pl.Status(ev, arrived)
+				s.checkpointAlarms(pl, arrived, out)
+				if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 					return err
 				}
 			}
 			if len(ev.Samples) > 0 {
 				out := pl.Samples(ev.Samples)
-				s.checkpoint(pl, arrived, false) // before the breaths go out: their numbers are reserved
+				// Before the breaths go out (their numbers are reserved)
+				// and before the alarm events (see checkpointAlarms).
+				if !s.checkpointAlarms(pl, arrived, out) {
+					s.checkpoint(pl, arrived, false)
+				}
 				if err := s.emit(pubCtx, out, arrived); err != nil {
 					return err
 				}
@@ -387,11 +393,15 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				}
 			}
 		case now := <-tick.C:
-			if err := s.emit(pubCtx, pl.Tick(now), time.Time{}); err != nil {
+			out := pl.Tick(now)
+			s.checkpointAlarms(pl, now, out)
+			if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 				return err
 			}
 			if s.spec.Health != nil {
-				if err := s.emit(pubCtx, pl.Finding(s.spec.Health(), now), time.Time{}); err != nil {
+				out := pl.Finding(s.spec.Health(), now)
+				s.checkpointAlarms(pl, now, out)
+				if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 					return err
 				}
 			}
@@ -402,11 +412,13 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				s.heartbeat(now)
 			}
 		case req := <-acks:
-			out, err := pl.Ack(req.ID, req.By, time.Now())
+			now := time.Now()
+			out, err := pl.Ack(req.ID, req.By, now)
 			if err != nil {
 				req.Reply <- err
 				continue
 			}
+			s.checkpointAlarms(pl, now, out)
 			err = s.emit(pubCtx, out, time.Time{})
 			req.Reply <- err
 			if err != nil {
