@@ -32,6 +32,11 @@ const (
 // interrupted (a restart after too long a gap).
 const ReasonInterrupted = "monitoring interrupted"
 
+// ReasonStopped is the Reason of an alarm ended because its stream stopped
+// being monitored and keeps no state to resume it from (a stream of a
+// multiplexed source when the daemon stops).
+const ReasonStopped = "monitoring stopped"
+
 // Terminal reports whether s ends an alarm id: after it the id gets no
 // further events.
 func (s State) Terminal() bool { return s == Cleared || s == Ended }
@@ -80,7 +85,7 @@ type Event struct {
 	// the request named it, cleaned of control characters) and when.
 	AckedBy string     `json:"acked_by,omitempty"`
 	AckedAt *time.Time `json:"acked_at,omitempty"`
-	// Reason says why an alarm ended (ReasonInterrupted).
+	// Reason says why an alarm ended (ReasonInterrupted, ReasonStopped).
 	Reason string `json:"reason,omitempty"`
 	// GapFrom and GapTo, on the technical monitoring-gap event: the wall
 	// interval during which the stream was not analysed.

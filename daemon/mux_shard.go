@@ -198,7 +198,7 @@ func (sh *shard) run(stop, ctx context.Context) error {
 			}
 			for _, st := range sh.streams {
 				if !st.done {
-					sh.stopped(st)
+					sh.stopped(st, true)
 				}
 			}
 			return nil
@@ -212,7 +212,7 @@ func (sh *shard) work(w *work) {
 		for _, st := range sh.streams {
 			if st.src == w.finished && !st.done {
 				st.done = true
-				sh.stopped(st)
+				sh.stopped(st, false)
 			}
 		}
 	}
@@ -371,9 +371,19 @@ func (sh *shard) wall() time.Time {
 // ticked runs after each tick of a running stream.
 func (sh *shard) ticked(*muxStream, time.Time) {}
 
-// stopped runs once when a stream ends.
-func (sh *shard) stopped(st *muxStream) {
+// stopped runs once when a stream ends: its finite source ended, or the
+// daemon stops (shutdown). At a shutdown its open alarms end with
+// alerts.ReasonStopped: a stream of a multiplexed source keeps no
+// checkpoint, so the next start cannot resume them (a stream of its own
+// can, daemon/continuity.go), and without an end they stayed open for
+// every subscriber. A condition still present is raised again, under a new
+// id, once the next start has seen it for its delay. An alarm left open by
+// a finished recording stays as the recording left it.
+func (sh *shard) stopped(st *muxStream, shutdown bool) {
 	sh.cur = st
 	sh.emit(st.pl.Flush())
+	if shutdown {
+		sh.emit(st.pl.EndAlarms(time.Now(), alerts.ReasonStopped))
+	}
 	sh.cur = nil
 }

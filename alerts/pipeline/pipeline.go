@@ -378,3 +378,18 @@ func (p *Pipeline) Finding(f analyze.Finding, now time.Time) Output {
 // Flush ends the stream: an open breath is incomplete and is not reported,
 // and alarms keep their state (nothing is held back in the pipeline).
 func (p *Pipeline) Flush() Output { return Output{} }
+
+// EndAlarms ends every open alarm of the stream at wall time now with
+// reason (alerts.EndAll, at the stream's last time) and returns their
+// Ended events; an acknowledgement of one of them then answers what became
+// of it. For a stream that stops being monitored and keeps no checkpoint
+// to resume its alarms from: without it they stayed open for every
+// subscriber, and nothing would ever end them.
+func (p *Pipeline) EndAlarms(now time.Time, reason string) Output {
+	var out Output
+	for _, e := range p.judge.Lifecycle().EndAll(now, p.lastS, reason) {
+		p.note(&e)
+		out.Alerts = append(out.Alerts, e)
+	}
+	return out
+}

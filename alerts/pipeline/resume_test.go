@@ -165,3 +165,49 @@ func TestResumeLongGapEndsAlarms(t *testing.T) {
 		t.Errorf("ack of ended %s: %v, want it to say it ended: monitoring interrupted", id, err)
 	}
 }
+
+// TestEndAlarmsAtStop ends the open alarms of a trapping patient as a
+// stream that keeps no checkpoint does when it stops: one valid ended
+// event per open alarm with reason "monitoring stopped", not earlier in
+// stream time than the last sample, none left active, and an
+// acknowledgement of an ended id says what became of it.
+func TestEndAlarmsAtStop(t *testing.T) {
+	ss, _, err := simulator.Run(trappingPatient())
+	if err != nil {
+		t.Fatal(err)
+	}
+	var clock time.Time
+	p := livePipeline("bed-6", &clock)
+	var first Output
+	liveRun(p, &clock, ss[:len(ss)/2], &first)
+	open := map[string]bool{}
+	for _, e := range p.Active() {
+		open[e.ID] = true
+	}
+	if len(open) == 0 {
+		t.Fatal("no alarm open at the stop")
+	}
+	lastS := p.Snapshot().LastS
+	out := p.EndAlarms(clock, alerts.ReasonStopped)
+	for _, e := range out.Alerts {
+		if e.State != alerts.Ended || e.Reason != alerts.ReasonStopped || !open[e.ID] {
+			t.Errorf("event %s %s reason %q, want an open alarm ended: %s", e.ID, e.State, e.Reason, alerts.ReasonStopped)
+		}
+		if e.TS < lastS-1e-9 {
+			t.Errorf("%s ended at t_s %.3f, before the last sample %.3f", e.ID, e.TS, lastS)
+		}
+		if err := e.Validate(); err != nil {
+			t.Error(err)
+		}
+		delete(open, e.ID)
+	}
+	if len(open) != 0 || len(p.Active()) != 0 {
+		t.Errorf("alarms left open: %v, active %d", open, len(p.Active()))
+	}
+	if len(out.Alerts) > 0 {
+		id := out.Alerts[0].ID
+		if _, err := p.Ack(id, "nurse", clock); err == nil || !strings.Contains(err.Error(), alerts.ReasonStopped) {
+			t.Errorf("ack of ended %s: %v, want it to say it ended: %s", id, err, alerts.ReasonStopped)
+		}
+	}
+}
