@@ -12,30 +12,16 @@ import (
 
 	"trapline/alerts"
 	"trapline/alerts/pipeline"
-	"trapline/analyze"
 	"trapline/ingest"
 )
 
 // resumingCounter is a countingPipeline that can be checkpointed: its
-// checkpoint records how many batches it had analysed (as SeqReserved), and
-// it raises its alarm on batch raiseAt.
+// checkpoint records how many batches it had analysed (as SeqReserved).
 type resumingCounter struct {
 	countingPipeline
-	raiseAt int
 }
 
 var _ resumable = (*resumingCounter)(nil)
-
-func (p *resumingCounter) Samples(ss []ingest.Sample) stageOutput {
-	p.batches++
-	b := analyze.NewBreath()
-	b.Seq = p.batches
-	out := stageOutput{Breaths: []analyze.Breath{b}}
-	if p.batches == p.raiseAt {
-		out.Alerts = []alerts.Event{p.event(alerts.Raised)}
-	}
-	return out
-}
 
 func (p *resumingCounter) Checkpoint(now time.Time, clean bool) pipeline.Checkpoint {
 	return pipeline.Checkpoint{Version: 1, SavedAt: now, SeqReserved: p.batches, Clean: clean}
@@ -84,7 +70,7 @@ func TestAlarmCheckpointedBeforeDelivery(t *testing.T) {
 		ID:         "bed-9",
 		Continuity: cont,
 		Open: func() (ingest.Source, streamPipeline, error) {
-			return &fakeSource{period: 5 * time.Millisecond}, &resumingCounter{countingPipeline{stream: "bed-9"}, raiseAt}, nil
+			return &fakeSource{period: 5 * time.Millisecond}, &resumingCounter{countingPipeline{stream: "bed-9", raiseAt: raiseAt}}, nil
 		},
 		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
 	}, zerolog.Nop(), newMetrics(), sink, sink.memSink)

@@ -54,11 +54,13 @@ func (f *fakeSource) Run(ctx context.Context, sink ingest.Sink) error {
 func (f *fakeSource) Stats() ingest.Stats { return ingest.Stats{Samples: f.sent.Load()} }
 
 // countingPipeline turns every batch into one breath, raises one alert with
-// id "<stream>/test/1" on the first batch and acknowledges it on request.
+// id "<stream>/test/1" on batch raiseAt (0: the first) and acknowledges it
+// on request.
 type countingPipeline struct {
 	stream  string
 	batches int
 	flushed *atomic.Bool
+	raiseAt int
 }
 
 var _ streamPipeline = (*countingPipeline)(nil)
@@ -68,7 +70,7 @@ func (p *countingPipeline) Samples(ss []ingest.Sample) stageOutput {
 	b := analyze.NewBreath()
 	b.Seq = p.batches
 	out := stageOutput{Breaths: []analyze.Breath{b}}
-	if p.batches == 1 {
+	if p.batches == max(p.raiseAt, 1) {
 		out.Alerts = []alerts.Event{p.event(alerts.Raised)}
 	}
 	return out

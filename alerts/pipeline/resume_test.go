@@ -105,21 +105,7 @@ func TestResumeShortGapContinues(t *testing.T) {
 // alarm left open gets an "ended" event, the gap is reported with its
 // interval, and an acknowledgement of an ended id says what became of it.
 func TestResumeLongGapEndsAlarms(t *testing.T) {
-	ss, _, err := simulator.Run(trappingPatient())
-	if err != nil {
-		t.Fatal(err)
-	}
-	var clock time.Time
-	p := livePipeline("bed-4", &clock)
-	var first Output
-	liveRun(p, &clock, ss[:len(ss)/2], &first)
-	open := map[string]bool{}
-	for _, e := range p.judge.Lifecycle().Active() {
-		open[e.ID] = true
-	}
-	if len(open) == 0 {
-		t.Fatal("no alarm open at the checkpoint")
-	}
+	p, clock, ss, open := trappingHalf(t, "bed-4")
 	cp := checkpointJSON(t, p, clock, false)
 	later := clock.Add(2 * DefaultMaxGap)
 	q := livePipeline("bed-4", &later)
@@ -172,21 +158,7 @@ func TestResumeLongGapEndsAlarms(t *testing.T) {
 // stream time than the last sample, none left active, and an
 // acknowledgement of an ended id says what became of it.
 func TestEndAlarmsAtStop(t *testing.T) {
-	ss, _, err := simulator.Run(trappingPatient())
-	if err != nil {
-		t.Fatal(err)
-	}
-	var clock time.Time
-	p := livePipeline("bed-6", &clock)
-	var first Output
-	liveRun(p, &clock, ss[:len(ss)/2], &first)
-	open := map[string]bool{}
-	for _, e := range p.Active() {
-		open[e.ID] = true
-	}
-	if len(open) == 0 {
-		t.Fatal("no alarm open at the stop")
-	}
+	p, clock, _, open := trappingHalf(t, "bed-6")
 	lastS := p.Snapshot().LastS
 	out := p.EndAlarms(clock, alerts.ReasonStopped)
 	for _, e := range out.Alerts {
@@ -210,4 +182,27 @@ func TestEndAlarmsAtStop(t *testing.T) {
 			t.Errorf("ack of ended %s: %v, want it to say it ended: %s", id, err, alerts.ReasonStopped)
 		}
 	}
+}
+
+// trappingHalf runs the first half of the trapping patient through a live
+// pipeline of stream and returns it, its wall clock, all the patient's
+// samples and the ids of the alarms open at that point (at least one).
+func trappingHalf(t *testing.T, stream string) (*Pipeline, time.Time, []ingest.Sample, map[string]bool) {
+	t.Helper()
+	ss, _, err := simulator.Run(trappingPatient())
+	if err != nil {
+		t.Fatal(err)
+	}
+	var clock time.Time
+	p := livePipeline(stream, &clock)
+	var first Output
+	liveRun(p, &clock, ss[:len(ss)/2], &first)
+	open := map[string]bool{}
+	for _, e := range p.Active() {
+		open[e.ID] = true
+	}
+	if len(open) == 0 {
+		t.Fatal("no alarm open half way")
+	}
+	return p, clock, ss, open
 }
