@@ -65,8 +65,11 @@ func startCluster(t *testing.T) *cluster {
 		c.srv = append(c.srv, s)
 	}
 	for i, s := range c.srv {
-		if !s.ReadyForConnections(10 * time.Second) {
-			t.Fatalf("server %d not ready", i)
+		// 30 s, not 10: on a busy two-core machine, with the other tests
+		// of this package running beside it, the third node was once not
+		// ready within 10 s.
+		if !s.ReadyForConnections(clusterReadyWait) {
+			t.Fatalf("server %d not ready within %s", i, clusterReadyWait)
 		}
 		// Keep the port for a restart.
 		c.opts[i].Port = s.Addr().(*net.TCPAddr).Port
@@ -90,11 +93,15 @@ func (c *cluster) start(t *testing.T, o *server.Options) *server.Server {
 		t.Fatal(err)
 	}
 	s.Start()
-	if !s.ReadyForConnections(10 * time.Second) {
-		t.Fatalf("server %s not ready", o.ServerName)
+	if !s.ReadyForConnections(clusterReadyWait) {
+		t.Fatalf("server %s not ready within %s", o.ServerName, clusterReadyWait)
 	}
 	return s
 }
+
+// clusterReadyWait bounds the wait for a node of the test cluster to take
+// connections.
+const clusterReadyWait = 30 * time.Second
 
 // waitReady waits (at most 30 s) for a JetStream meta leader and every
 // live node current.
