@@ -53,10 +53,8 @@ func startTestCluster(t *testing.T) []*server.Server {
 		t.Cleanup(func() { s.Shutdown(); waitShutdown(t, s) })
 	}
 	for _, s := range srvs {
-		// 30 s: a node of a three-node cluster in a test package running
-		// beside others was once not ready within 10 s on a busy machine.
-		if !s.ReadyForConnections(30 * time.Second) {
-			t.Fatal("cluster node not ready within 30 s")
+		if !s.ReadyForConnections(10 * time.Second) {
+			t.Fatal("cluster node not ready")
 		}
 	}
 	waitFor(t, 30*time.Second, "a JetStream meta leader with every node current", func() bool {
