@@ -174,3 +174,24 @@ func (s *stream) saveCheckpoint(pl streamPipeline, now time.Time, stop bool) {
 		s.log.Warn().Err(err).Msg("checkpoint not written")
 	}
 }
+
+// alarmEnder is a pipeline that can end its open alarms; the live
+// pipeline can (pipeline.(*Pipeline).EndAlarms).
+type alarmEnder interface {
+	EndAlarms(now time.Time, reason string) pipeline.Output
+}
+
+// endUnresumable ends the open alarms of a stream that keeps no checkpoint
+// (one read from a file or stdin) when the daemon stops (ctx cancelled)
+// before its input ended, with alerts.ReasonStopped: nothing would resume
+// them, and they stayed open for every subscriber. A recording read to its
+// end keeps the alarms it left, as the patient's state at its end.
+func (s *stream) endUnresumable(pubCtx, ctx context.Context, pl streamPipeline) {
+	e, ok := pl.(alarmEnder)
+	if s.spec.Continuity != nil || ctx.Err() == nil || !ok {
+		return
+	}
+	if err := s.emit(pubCtx, e.EndAlarms(time.Now(), alerts.ReasonStopped), time.Time{}); err != nil {
+		s.log.Warn().Err(err).Msg("open alarms not ended at the stop")
+	}
+}

@@ -361,10 +361,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 		select {
 		case ev, ok := <-queue:
 			if !ok {
-				err := s.emit(pubCtx, pl.Flush(), time.Time{})
-				s.recovered(pubCtx, time.Now(), alerts.Ended, "stream stopped")
-				s.checkpoint(pl, time.Now(), true)
-				return err
+				return s.drained(pubCtx, ctx, pl)
 			}
 			arrived := time.Now()
 			if ev.Status != ingest.StatusNone {
@@ -426,6 +423,17 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			}
 		}
 	}
+}
+
+// drained ends the analysis once the queue is closed and empty: what the
+// pipeline holds goes out, the alarms of a stream that keeps no checkpoint
+// end at a shutdown (endUnresumable), and the last checkpoint is written.
+func (s *stream) drained(pubCtx, ctx context.Context, pl streamPipeline) error {
+	err := s.emit(pubCtx, pl.Flush(), time.Time{})
+	s.endUnresumable(pubCtx, ctx, pl)
+	s.recovered(pubCtx, time.Now(), alerts.Ended, "stream stopped")
+	s.checkpoint(pl, time.Now(), true)
+	return err
 }
 
 // emit delivers what a step produced: alerts through the durable publisher
