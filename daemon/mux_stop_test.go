@@ -4,7 +4,7 @@ import (
 	"bytes"
 	"encoding/json"
 	"net"
-	"strings"
+	"slices"
 	"sync"
 	"testing"
 	"time"
@@ -24,14 +24,7 @@ import (
 // with nothing to end it after the restart. The patient traps air from the
 // first breaths (R 30, C 50: τ 1.5 s against an expiratory time of 1.1 s).
 func TestMuxShutdownEndsOpenAlarms(t *testing.T) {
-	cfg := config.Default()
-	cfg.DataDir = t.TempDir()
-	cfg.HTTP.Listen = ""
-	cfg.NATS.Embedded.Port = 0
-	cfg.Sources = []config.Source{{Name: "ward", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"}}
-	if err := cfg.Validate(); err != nil {
-		t.Fatal(err)
-	}
+	cfg := muxConfig(t, config.Source{Name: "ward", URL: "tcp-listen://127.0.0.1:0?format=text", Pattern: "bed-*"})
 	r := startDaemonWith(t, cfg, Options{})
 	nc, err := nats.Connect(r.info.NATSURL)
 	if err != nil {
@@ -74,32 +67,24 @@ func TestMuxShutdownEndsOpenAlarms(t *testing.T) {
 		t.Fatal(err)
 	}
 
-	raised := map[string]bool{}
 	waitFor(t, 30*time.Second, "an air-trapping alarm", func() bool {
 		mu.Lock()
 		defer mu.Unlock()
-		for _, e := range events {
-			if e.State == alerts.Raised {
-				raised[e.ID] = true
-			}
-		}
-		for id := range raised {
-			if strings.HasPrefix(id, "bed-t/"+analyze.CondAirTrapping+"/") {
-				return true
-			}
-		}
-		return false
+		return slices.ContainsFunc(events, func(e alerts.Event) bool {
+			return e.State == alerts.Raised && e.Condition == analyze.CondAirTrapping
+		})
 	})
 	if err := r.stop(); err != nil {
 		t.Fatal(err)
 	}
 	mu.Lock()
 	defer mu.Unlock()
-	open := map[string]bool{}
+	open, raised := map[string]bool{}, 0
 	for _, e := range events {
 		switch {
 		case e.State == alerts.Raised:
 			open[e.ID] = true
+			raised++
 		case e.State.Terminal():
 			delete(open, e.ID)
 			if e.State == alerts.Ended && e.Reason != alerts.ReasonStopped {
@@ -110,5 +95,5 @@ func TestMuxShutdownEndsOpenAlarms(t *testing.T) {
 	for id := range open {
 		t.Errorf("alarm %s was still open when the daemon had stopped", id)
 	}
-	t.Logf("%d alert events, %d alarms raised", len(events), len(raised))
+	t.Logf("%d alert events, %d alarms raised", len(events), raised)
 }

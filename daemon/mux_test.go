@@ -213,6 +213,21 @@ func TestMuxFileSource(t *testing.T) {
 // with the multiplexed sources given, and connects a NATS client to it.
 func startMuxDaemon(t *testing.T, sources ...config.Source) (*Daemon, *config.Config, *nats.Conn) {
 	t.Helper()
+	cfg := muxConfig(t, sources...)
+	d, info := startDaemon(t, cfg)
+	nc, err := nats.Connect(info.NATSURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(nc.Close)
+	return d, cfg, nc
+}
+
+// muxConfig is the default configuration with sources, its data in a
+// temporary directory, no HTTP listener and the embedded NATS server on a
+// free port.
+func muxConfig(t *testing.T, sources ...config.Source) *config.Config {
+	t.Helper()
 	cfg := config.Default()
 	cfg.DataDir = t.TempDir()
 	cfg.HTTP.Listen = ""
@@ -221,13 +236,7 @@ func startMuxDaemon(t *testing.T, sources ...config.Source) (*Daemon, *config.Co
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)
 	}
-	d, info := startDaemon(t, cfg)
-	nc, err := nats.Connect(info.NATSURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(nc.Close)
-	return d, cfg, nc
+	return cfg
 }
 
 // startDaemon runs a daemon on cfg until the test ends and returns it once
