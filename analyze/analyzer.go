@@ -177,7 +177,7 @@ type Analyzer struct {
 // Validate; out-of-range values are not checked again here.
 func NewAnalyzer(stream string, cfg Config) *Analyzer {
 	a := &Analyzer{stream: stream, cfg: cfg}
-	a.trigLPS, a.trigMaxLPS, a.trigMinLPS = cfg.TriggerFlowLPM/60, cfg.TriggerFlowLPM/60, cfg.MinTriggerFlowLPM/60
+	a.trigMaxLPS, a.trigMinLPS = cfg.TriggerFlowLPM/60, cfg.MinTriggerFlowLPM/60
 	if !(cfg.TriggerFraction > 0) {
 		a.trigMinLPS = a.trigMaxLPS // fixed
 	}
@@ -214,7 +214,7 @@ func (a *Analyzer) Reset() {
 	// The pooled K2 describes the airways of the breaths before the gap;
 	// after a disconnection they may be another patient's.
 	a.k2Pool, a.slowPool = rohrerPool{}, slowPool{}
-	a.trigLPS = a.cfg.TriggerFlowLPM / 60
+	a.trigLPS = a.trigMaxLPS // until an inspiration scales it
 }
 
 func (a *Analyzer) resetBreath() {
