@@ -37,11 +37,3 @@ func digitsValue(w uint64, k int) uint64 {
 	v = ((v & 0x00FF00FF00FF00FF) * (100<<16 + 1)) >> 16
 	return ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
 }
-
-// mantissaLong returns the digits of an integer part (the first k1 bytes
-// of word) followed by those of a fraction (the first k2 bytes of frac) as
-// one integer, k1 and k2 at most 7: the fast lane's numbers of more than 8
-// digits in all.
-func mantissaLong(word uint64, k1 int, frac uint64, k2 int) uint64 {
-	return digitsValue(word, k1)*pow10u[k2] + digitsValue(frac, k2)
-}
