@@ -65,8 +65,14 @@ func (s *stream) impaired(ctx context.Context, now time.Time, why string) {
 	ms := max(now.UnixMilli(), s.imp.lastIDms+1)
 	id := s.spec.ID + "/" + CondDeliveryImpaired + "/" + strconv.FormatInt(ms, 10)
 	ev := s.impairedEvent(id, alerts.Raised, now, "alert delivery impaired ("+why+"); analysis continues, some alert events may not reach consumers")
+	// In the ledger before the spool: the checkpoint does not hold this
+	// alarm, and the next start must end it if a kill leaves it open.
+	s.recordAlarm(true, ev)
 	if err := s.alerts.Publish(ctx, ev); err != nil {
-		return // the spool takes nothing, not even this: the log and the counter say it
+		// The spool takes nothing, not even this: the log and the counter
+		// say it, and the ledger forgets an alarm that never went out.
+		s.recordAlarm(false, endedEvent(ev, now))
+		return
 	}
 	s.countHigh(&ev)
 	s.imp.id, s.imp.lastIDms = id, ms
@@ -85,9 +91,17 @@ func (s *stream) recovered(ctx context.Context, now time.Time, st alerts.State, 
 	if err := s.alerts.Publish(ctx, ev); err != nil {
 		return // try again at the next tick
 	}
+	s.recordAlarm(false, ev)
 	s.countHigh(&ev)
 	s.log.Warn().Int("refused", s.imp.refused).Msg("alert delivery no longer impaired")
 	s.imp.id, s.imp.refused = "", 0
+}
+
+// recordAlarm records ev in the daemon's alarm ledger, when there is one.
+func (s *stream) recordAlarm(sync bool, ev alerts.Event) {
+	if s.spec.Ledger != nil {
+		s.spec.Ledger(sync, ev)
+	}
 }
 
 func (s *stream) impairedEvent(id string, st alerts.State, now time.Time, msg string) alerts.Event {

@@ -303,15 +303,56 @@ func (sh *shard) Breath(b *analyze.Breath) {
 }
 
 // publish makes the shard's alert events durable in order, until the
-// queue is closed and drained. A spool that refuses one is logged.
+// queue is closed and drained. A spool that refuses one is logged. The
+// alarms' ledger (ledger.go) learns of an alarm's raise, escalation or
+// acknowledgement before the spool does, in one write and sync for the
+// events queued together, and of its end once the spool holds it: a kill
+// at any moment then leaves no alarm that a subscriber may have seen open
+// unknown to the next start.
 func (sh *shard) publish(ctx context.Context, done chan<- struct{}) {
 	defer close(done)
+	var batch []alertJob
+	var open []alerts.Event
 	for j := range sh.alerts {
-		if err := sh.r.d.del.Publish(ctx, j.ev); err != nil {
-			sh.log.Error().Err(err).Str("stream", j.stream).Str("alert", j.ev.DedupID()).Msg("alert not made durable")
-			continue
+		batch = append(batch[:0], j)
+	gather:
+		for len(batch) < ledgerBatch {
+			select {
+			case j, ok := <-sh.alerts:
+				if !ok {
+					break gather
+				}
+				batch = append(batch, j)
+			default:
+				break gather
+			}
 		}
-		sh.r.d.m.alerts.WithLabelValues(j.stream, j.ev.Condition, string(j.ev.State)).Inc()
+		open = open[:0]
+		for i := range batch {
+			if !batch[i].ev.State.Terminal() {
+				open = append(open, batch[i].ev)
+			}
+		}
+		sh.r.d.recordAlarms(true, open...)
+		for i := range batch {
+			sh.publishOne(ctx, &batch[i])
+		}
+	}
+}
+
+// ledgerBatch bounds the alert events a shard's publisher records in the
+// ledger with one write and sync.
+const ledgerBatch = 256
+
+// publishOne makes one alert event durable.
+func (sh *shard) publishOne(ctx context.Context, j *alertJob) {
+	if err := sh.r.d.del.Publish(ctx, j.ev); err != nil {
+		sh.log.Error().Err(err).Str("stream", j.stream).Str("alert", j.ev.DedupID()).Msg("alert not made durable")
+		return
+	}
+	sh.r.d.m.alerts.WithLabelValues(j.stream, j.ev.Condition, string(j.ev.State)).Inc()
+	if j.ev.State.Terminal() {
+		sh.r.d.recordAlarms(false, j.ev)
 	}
 }
 
@@ -378,7 +419,9 @@ func (sh *shard) ticked(*muxStream, time.Time) {}
 // can, daemon/continuity.go), and without an end they stayed open for
 // every subscriber. A condition still present is raised again, under a new
 // id, once the next start has seen it for its delay. An alarm left open by
-// a finished recording stays as the recording left it.
+// a finished recording stays as the recording left it. After a kill,
+// stopped does not run: the alarm ledger (ledger.go) ends them at the
+// next start.
 func (sh *shard) stopped(st *muxStream, shutdown bool) {
 	sh.cur = st
 	sh.emit(st.pl.Flush())

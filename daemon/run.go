@@ -59,6 +59,7 @@ type Daemon struct {
 	byToken map[string]*stream // ack subject token → stream
 	hub     *web.Hub           // the live view; nil without HTTP
 	mux     *muxRuntime        // the streams of multiplexed sources
+	ledger  *alarmLedger       // open alarms without a checkpoint (ledger.go)
 }
 
 // newDaemon checks what can be checked before anything starts.
@@ -106,7 +107,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 	defer b.Close()
 	d.nc = b.Conn
 
-	del, err := d.startDelivery(b)
+	del, err := d.startDelivery(ctx, b)
 	if err != nil {
 		return err
 	}
@@ -114,6 +115,7 @@ func (d *Daemon) Run(ctx context.Context) error {
 	// is sent at the next start.
 	defer del.pub.Close()
 	defer d.closeRecorder()
+	defer d.ledger.close()
 	if err := d.startStreams(ctx, del); err != nil {
 		return err
 	}
@@ -222,14 +224,19 @@ func (d *Daemon) SpoolDepth() int {
 	return d.del.pub.Depth()
 }
 
-// startDelivery opens the alert publisher and the bulletin on b and
-// registers their metrics and readiness checks.
-func (d *Daemon) startDelivery(b *bus.Bus) (*delivery, error) {
+// startDelivery opens the alert publisher and the bulletin on b, and the
+// alarm ledger (which ends, through the spool, the alarms a killed run
+// left open), and registers their metrics and readiness checks.
+func (d *Daemon) startDelivery(ctx context.Context, b *bus.Bus) (*delivery, error) {
 	del, err := openDelivery(d.cfg, b, d.log)
 	if err != nil {
 		return nil, err
 	}
 	d.del = del
+	if err := d.openLedger(ctx, del); err != nil {
+		del.pub.Close()
+		return nil, err
+	}
 	d.m.setDelivery(del.pub.Depth, b.Conn.IsConnected, del.bull.Dropped)
 	d.m.addPublisher(del.pub)
 	d.ready.set("nats", func() error {

@@ -85,6 +85,8 @@ type streamSpec struct {
 	// SourceStream is the default stream id the source's URL names
 	// (?stream=), also accepted as this stream's own.
 	SourceStream string
+	// Ledger, when set, records alarms no checkpoint holds (ledger.go).
+	Ledger func(sync bool, evs ...alerts.Event)
 }
 
 // errFinished ends the supervision of a stream whose finite source reached

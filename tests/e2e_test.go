@@ -58,6 +58,12 @@ func find(evs []alerts.Event, condition string, state alerts.State) int {
 // goroutines of its own, so it returns its errors rather than failing the
 // test.
 func streamScenario(ctx context.Context, name, stream, link string, speed float64) error {
+	return streamScenarioText(ctx, name, stream, link, speed, ingest.TextEncoderOptions{Decimals: 4})
+}
+
+// streamScenarioText is streamScenario with the text format's options (a
+// stream column for a multiplexed source).
+func streamScenarioText(ctx context.Context, name, stream, link string, speed float64, opts ingest.TextEncoderOptions) error {
 	sc, err := simulator.Shipped(name)
 	if err != nil {
 		return err
@@ -71,7 +77,7 @@ func streamScenario(ctx context.Context, name, stream, link string, speed float6
 	if err != nil {
 		return err
 	}
-	enc, err := ingest.NewTextEncoder(ingest.TextEncoderOptions{Decimals: 4})
+	enc, err := ingest.NewTextEncoder(opts)
 	if err != nil {
 		return err
 	}

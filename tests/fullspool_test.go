@@ -3,7 +3,9 @@ package tests
 import (
 	"context"
 	"fmt"
+	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 	"time"
 
@@ -95,5 +97,15 @@ streams:
 	}
 	if err := d.stop(30 * time.Second); err != nil {
 		t.Error(err)
+	}
+	// The checkpoint does not hold the delivery-impaired alarm; the alarm
+	// ledger does, so that a kill cannot leave it open for good
+	// (TestKilledMuxStreamLeavesNoGhost shows the ledger at work).
+	ledger, err := os.ReadFile(filepath.Join(dir, "state", "open-alarms.jsonl"))
+	if err != nil {
+		t.Fatalf("alarm ledger: %v", err)
+	}
+	if impaired && !strings.Contains(string(ledger), `"condition":"`+daemon.CondDeliveryImpaired+`","class":"technical","priority":"high","state":"raised"`) {
+		t.Errorf("the delivery-impaired raise is not in the alarm ledger:\n%s", ledger)
 	}
 }

@@ -1,0 +1,257 @@
+package daemon
+
+import (
+	"bufio"
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io/fs"
+	"os"
+	"path/filepath"
+	"sort"
+	"sync"
+	"time"
+
+	"trapline/alerts"
+)
+
+// The alarm ledger keeps the open alarms that no stream checkpoint holds:
+// those of the streams of multiplexed sources (which keep no checkpoint,
+// docs/operations.md) and each stream's alert-delivery-impaired alarm. It
+// is one file of JSON lines, <data_dir>/state/open-alarms.jsonl, each line
+// an alarm event as it went out. An event is written and synced before it
+// goes to the spool, so an alarm that any subscriber saw raised is in the
+// file; at the next start, the alarms the file leaves open (raised,
+// escalated or acknowledged, never cleared, ended or superseded) were left
+// by a daemon that did not stop cleanly, and each is ended with reason
+// "monitoring interrupted". A clean stop ends them itself (reason
+// "monitoring stopped"), so the file then leaves none.
+//
+// Only alarm changes write to it (a handful an hour per stream), not the
+// streams' running state, so it costs nothing per sample and one write
+// and sync per batch of alarm events rather than a file per stream.
+
+// ledgerFile is the ledger's name in the state directory; stream
+// checkpoints there all end in ".json".
+const ledgerFile = "open-alarms.jsonl"
+
+// ledgerCompactBytes is the size beyond which the ledger is rewritten with
+// only its open alarms.
+const ledgerCompactBytes = 1 << 20
+
+// alarmLedger is the ledger of one daemon; safe for concurrent use.
+type alarmLedger struct {
+	mu   sync.Mutex
+	path string
+	f    *os.File
+	size int64
+	open map[string]alerts.Event // by id, as last written
+	buf  []byte
+}
+
+// openLedger opens the ledger in the state directory under dataDir and
+// returns it with the alarms that the file left open, oldest first. Those
+// stay open in the ledger until endLeft ends them. Lines that cannot be
+// read (a write cut short by a kill) are skipped and counted in bad.
+func openLedger(dataDir string) (l *alarmLedger, left []alerts.Event, bad int, err error) {
+	dir := filepath.Join(dataDir, "state")
+	if err := os.MkdirAll(dir, 0o750); err != nil {
+		return nil, nil, 0, fmt.Errorf("alarm ledger: %w", err)
+	}
+	l = &alarmLedger{path: filepath.Join(dir, ledgerFile), open: map[string]alerts.Event{}}
+	data, err := os.ReadFile(l.path)
+	if err != nil && !errors.Is(err, fs.ErrNotExist) {
+		return nil, nil, 0, fmt.Errorf("alarm ledger: %w", err)
+	}
+	sc := bufio.NewScanner(bytes.NewReader(data))
+	sc.Buffer(make([]byte, 0, 64<<10), 4<<20)
+	for sc.Scan() {
+		var e alerts.Event
+		if json.Unmarshal(sc.Bytes(), &e) != nil || e.ID == "" {
+			bad++
+			continue
+		}
+		l.apply(&e)
+	}
+	for _, e := range l.open {
+		left = append(left, e)
+	}
+	sort.Slice(left, func(i, j int) bool { return left[i].Time.Before(left[j].Time) })
+	if err := l.compact(); err != nil {
+		return nil, nil, bad, err
+	}
+	return l, left, bad, nil
+}
+
+// apply updates the set of open alarms with event e.
+func (l *alarmLedger) apply(e *alerts.Event) {
+	if e.Supersedes != "" {
+		delete(l.open, e.Supersedes)
+	}
+	if e.State.Terminal() {
+		delete(l.open, e.ID)
+	} else {
+		l.open[e.ID] = *e
+	}
+}
+
+// record writes evs, and when sync is set syncs the file, before it
+// returns. An alarm's raise, escalation or acknowledgement is recorded
+// and synced before it goes to the spool; its end is recorded once the
+// spool holds it, without a sync (a kill does not lose what was written;
+// a crash that does leaves an alarm the next start ends a second time,
+// which is harmless, where the other order could leave one open). An event that cannot be encoded (it
+// carries a non-finite number) is not written; the others are. The set of
+// open alarms follows evs even when the write fails, so that a later
+// compaction writes them.
+func (l *alarmLedger) record(sync bool, evs ...alerts.Event) error {
+	if l == nil || len(evs) == 0 {
+		return nil
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	l.buf = l.buf[:0]
+	var errs []error
+	for i := range evs {
+		line, err := json.Marshal(&evs[i])
+		if err != nil {
+			errs = append(errs, fmt.Errorf("alarm ledger: encode %s: %w", evs[i].DedupID(), err))
+			continue
+		}
+		l.buf = append(append(l.buf, line...), '\n')
+		l.apply(&evs[i])
+	}
+	if len(l.buf) > 0 {
+		errs = append(errs, l.write(l.buf, sync))
+	}
+	if l.size > ledgerCompactBytes {
+		errs = append(errs, l.compact())
+	}
+	return errors.Join(errs...)
+}
+
+// write appends p, and syncs when sync is set.
+func (l *alarmLedger) write(p []byte, sync bool) error {
+	if l.f == nil {
+		return fmt.Errorf("alarm ledger %s: not open", l.path)
+	}
+	n, err := l.f.Write(p)
+	l.size += int64(n)
+	if err == nil && sync {
+		err = l.f.Sync()
+	}
+	if err != nil {
+		return fmt.Errorf("alarm ledger %s: %w", l.path, err)
+	}
+	return nil
+}
+
+// compact rewrites the ledger with only its open alarms (a temporary file
+// synced and renamed over it, so a kill leaves the old file or the new
+// one) and reopens it for appending.
+func (l *alarmLedger) compact() error {
+	var data []byte
+	for _, e := range l.open {
+		line, err := json.Marshal(&e)
+		if err != nil {
+			continue // not encodable: it could not have been written either
+		}
+		data = append(append(data, line...), '\n')
+	}
+	tmp := l.path + ".tmp"
+	f, err := os.OpenFile(tmp, os.O_CREATE|os.O_WRONLY|os.O_TRUNC, 0o600)
+	if err != nil {
+		return fmt.Errorf("alarm ledger: %w", err)
+	}
+	_, werr := f.Write(data)
+	serr := f.Sync()
+	cerr := f.Close()
+	if err := errors.Join(werr, serr, cerr); err != nil {
+		return fmt.Errorf("alarm ledger %s: %w", tmp, err)
+	}
+	if err := os.Rename(tmp, l.path); err != nil {
+		return fmt.Errorf("alarm ledger: %w", err)
+	}
+	if l.f != nil {
+		_ = l.f.Close()
+	}
+	if l.f, err = os.OpenFile(l.path, os.O_WRONLY|os.O_APPEND, 0o600); err != nil {
+		l.f = nil
+		return fmt.Errorf("alarm ledger: %w", err)
+	}
+	l.size = int64(len(data))
+	return nil
+}
+
+// close closes the file.
+func (l *alarmLedger) close() {
+	if l == nil {
+		return
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	if l.f != nil {
+		_ = l.f.Close()
+		l.f = nil
+	}
+}
+
+// endedEvent is the event that ends alarm e, which a daemon that did not
+// stop cleanly left open, at wall time now: state ended, reason
+// alerts.ReasonInterrupted, at the stream time of its last event (t_s
+// never goes back within a condition).
+func endedEvent(e alerts.Event, now time.Time) alerts.Event {
+	e.State = alerts.Ended
+	e.Time = now.UTC()
+	e.Reason = alerts.ReasonInterrupted
+	e.Message = alerts.ReasonInterrupted + ": " + e.Message
+	e.BreathSeq, e.Predict, e.Supersedes = nil, nil, ""
+	return e
+}
+
+// openLedger opens the daemon's alarm ledger and ends, through del's
+// spool, the alarms it left open: those of a daemon that was killed or
+// crashed. Each end is recorded once spooled; one the spool refuses stays
+// in the ledger for the next start.
+func (d *Daemon) openLedger(ctx context.Context, del *delivery) error {
+	l, left, bad, err := openLedger(d.cfg.DataDir)
+	if err != nil {
+		return err
+	}
+	d.ledger = l
+	if bad > 0 {
+		d.log.Warn().Int("lines", bad).Str("file", l.path).Msg("alarm ledger: unreadable lines skipped (a write cut short)")
+	}
+	now := time.Now()
+	ended := 0
+	for _, e := range left {
+		ev := endedEvent(e, now)
+		if err := del.Publish(ctx, ev); err != nil {
+			d.log.Error().Err(err).Str("alert", ev.DedupID()).Msg("alarm left open by the last run not ended")
+			continue
+		}
+		d.m.alerts.WithLabelValues(ev.Stream, ev.Condition, string(ev.State)).Inc()
+		d.recordAlarms(false, ev)
+		ended++
+	}
+	if len(left) > 0 {
+		d.log.Warn().Int("ended", ended).Int("left_open", len(left)).
+			Msg("alarms left open by a run that did not stop cleanly ended: monitoring interrupted")
+	}
+	return nil
+}
+
+// recordAlarms records evs in the ledger (see alarmLedger.record); a
+// failure is logged and counted with the checkpoint errors, and the
+// alarms go out all the same.
+func (d *Daemon) recordAlarms(sync bool, evs ...alerts.Event) {
+	if d.ledger == nil || len(evs) == 0 {
+		return
+	}
+	if err := d.ledger.record(sync, evs...); err != nil {
+		d.log.Error().Err(err).Msg("alarm ledger not written; after a kill these alarms may stay open")
+		d.m.checkpointErrors.WithLabelValues(evs[0].Stream).Inc()
+	}
+}

@@ -1,0 +1,160 @@
+package daemon
+
+import (
+	"os"
+	"path/filepath"
+	"strconv"
+	"testing"
+	"time"
+
+	"trapline/alerts"
+)
+
+// ledgerEvent is an alarm event of stream bed-9 for the ledger tests.
+func ledgerEvent(id string, st alerts.State, tS float64) alerts.Event {
+	return alerts.Event{
+		Type: "alert", Schema: alerts.EventSchema, ID: id, Stream: "bed-9", Condition: "air-trapping",
+		Class: "physiological", Priority: alerts.Medium, State: st, TS: tS,
+		Time:    time.Date(2026, 12, 3, 9, 0, 0, 0, time.UTC).Add(time.Duration(tS) * time.Second),
+		Message: "air trapping", Evidence: map[string]float64{"peepi_cmh2o": 4.2},
+	}
+}
+
+// TestLedgerLeavesOpenAlarms: what a run records, read back by the next
+// start, leaves open exactly the alarms that were raised, escalated or
+// acknowledged and neither ended nor superseded; a line cut short by a
+// kill is skipped and counted.
+func TestLedgerLeavesOpenAlarms(t *testing.T) {
+	dir := t.TempDir()
+	l, left, bad, err := openLedger(dir)
+	if err != nil || len(left) != 0 || bad != 0 {
+		t.Fatalf("fresh ledger: %v, %d left, %d bad", err, len(left), bad)
+	}
+	sup := ledgerEvent("bed-9/air-trapping/4", alerts.Raised, 40)
+	sup.Supersedes = "bed-9/air-trapping/3"
+	steps := []struct {
+		sync bool
+		ev   alerts.Event
+	}{
+		{true, ledgerEvent("bed-9/air-trapping/1", alerts.Raised, 10)},
+		{true, ledgerEvent("bed-9/air-trapping/2", alerts.Raised, 20)},
+		{false, ledgerEvent("bed-9/air-trapping/1", alerts.Cleared, 25)},
+		{true, ledgerEvent("bed-9/air-trapping/3", alerts.Raised, 30)},
+		{true, ledgerEvent("bed-9/air-trapping/3", alerts.Acknowledged, 31)},
+		{true, sup},
+		{true, ledgerEvent("bed-9/air-trapping/2", alerts.Escalated, 50)},
+		{true, ledgerEvent("bed-9/air-trapping/5", alerts.Raised, 60)},
+		{false, ledgerEvent("bed-9/air-trapping/5", alerts.Ended, 61)},
+	}
+	for _, s := range steps {
+		if err := l.record(s.sync, s.ev); err != nil {
+			t.Fatal(err)
+		}
+	}
+	l.close()
+	// A kill in the middle of a write leaves a partial last line.
+	f, err := os.OpenFile(filepath.Join(dir, "state", ledgerFile), os.O_WRONLY|os.O_APPEND, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := f.WriteString(`{"type":"alert","id":"bed-9/air-trapping/6","sta`); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
+
+	l2, left, bad, err := openLedger(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l2.close()
+	if bad != 1 {
+		t.Errorf("%d unreadable lines, want 1", bad)
+	}
+	// Open: 2 (escalated) and 4 (superseding the acknowledged 3), oldest
+	// event first.
+	if len(left) != 2 || left[0].ID != "bed-9/air-trapping/4" || left[1].ID != "bed-9/air-trapping/2" ||
+		left[1].State != alerts.Escalated {
+		t.Fatalf("left open: %+v", left)
+	}
+	// The file was rewritten with only those.
+	data, err := os.ReadFile(l2.path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n := countLines(data); n != 2 {
+		t.Errorf("compacted ledger has %d lines, want 2", n)
+	}
+}
+
+func countLines(b []byte) int {
+	n := 0
+	for _, c := range b {
+		if c == '\n' {
+			n++
+		}
+	}
+	return n
+}
+
+// TestLedgerCompacts: a ledger that grows past ledgerCompactBytes is
+// rewritten with its open alarms only, and still reads back right.
+func TestLedgerCompacts(t *testing.T) {
+	dir := t.TempDir()
+	l, _, _, err := openLedger(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Each raise and clear is about 0.6 kB; enough of them to pass the
+	// limit at least once.
+	n := ledgerCompactBytes/500 + 10
+	for i := range n {
+		id := "bed-9/air-trapping/" + strconv.Itoa(i)
+		if err := l.record(true, ledgerEvent(id, alerts.Raised, float64(i))); err != nil {
+			t.Fatal(err)
+		}
+		if i%100 != 7 { // every hundredth stays open
+			if err := l.record(false, ledgerEvent(id, alerts.Cleared, float64(i)+0.5)); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if l.size > ledgerCompactBytes {
+		t.Errorf("ledger at %d bytes, over the %d that compact it", l.size, ledgerCompactBytes)
+	}
+	l.close()
+	_, left, bad, err := openLedger(dir)
+	if err != nil || bad != 0 {
+		t.Fatal(err, bad)
+	}
+	want := (n + 92) / 100
+	if len(left) != want {
+		t.Fatalf("%d alarms left open, want %d", len(left), want)
+	}
+	for _, e := range left {
+		if i, _ := strconv.Atoi(e.ID[len("bed-9/air-trapping/"):]); i%100 != 7 {
+			t.Errorf("alarm %s left open, it was cleared", e.ID)
+		}
+	}
+}
+
+// TestEndedEventOfLeftAlarm: the end of an alarm left open keeps its id,
+// stream, condition, priority and stream time, and says why it ended.
+func TestEndedEventOfLeftAlarm(t *testing.T) {
+	e := ledgerEvent("bed-9/air-trapping/3", alerts.Acknowledged, 31)
+	e.Supersedes, e.Predict = "bed-9/air-trapping/2", map[string]float64{"rate_bpm": 14}
+	seq := 17
+	e.BreathSeq = &seq
+	now := time.Date(2026, 12, 3, 10, 0, 0, 0, time.UTC)
+	got := endedEvent(e, now)
+	if got.ID != e.ID || got.Stream != e.Stream || got.Condition != e.Condition || got.Priority != e.Priority ||
+		got.State != alerts.Ended || got.Reason != alerts.ReasonInterrupted || !got.Time.Equal(now) ||
+		got.TS != 31 || got.Supersedes != "" || got.BreathSeq != nil || got.Predict != nil {
+		t.Fatalf("ended event: %+v", got)
+	}
+	if err := got.Validate(); err != nil {
+		t.Fatal(err)
+	}
+	if got.DedupID() == e.DedupID() {
+		t.Fatal("the end has the dedup id of the event before it")
+	}
+}

@@ -1,0 +1,144 @@
+package tests
+
+import (
+	"context"
+	"fmt"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"trapline/alerts"
+	"trapline/ingest"
+)
+
+// TestKilledMuxStreamLeavesNoGhost: a stream of a multiplexed source keeps
+// no checkpoint. The daemon, a child process, is killed with SIGKILL while
+// such a stream has an alarm open (the bronchospasm scenario's air
+// trapping) and restarted on the same data directory: every alarm raised
+// before the kill gets a terminal event, those the kill left open an
+// `ended` with reason "monitoring interrupted", from the alarm ledger
+// (daemon/ledger.go). Before the ledger they stayed open for every
+// subscriber.
+func TestKilledMuxStreamLeavesNoGhost(t *testing.T) {
+	t.Parallel()
+	ns := startNATS(t)
+	dir := t.TempDir()
+	link := filepath.Join(dir, "ward-link")
+	httpPort := freePort(t)
+	cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
+shutdown_timeout: 5s
+http:
+  listen: 127.0.0.1:%d
+log:
+  level: warn
+nats:
+  url: %s
+  publish_timeout: 500ms
+  alerts_stream:
+    max_bytes: 16MiB
+  breaths_stream:
+    max_bytes: 64MiB
+detectors:
+  signal:
+    lost_after_s: 600
+sources:
+  - name: ward
+    source: serial://%s?baud=115200
+    pattern: "bed-*"
+`, dir, httpPort, ns.URL(), link))
+	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
+	defer cancel()
+	first := startDaemonProcess(t, "run", "--config", cfg)
+	waitFor(t, 30*time.Second, "the daemon's /metrics", func() bool { return metricsOf(httpPort) != nil })
+	simDone := make(chan error, 1)
+	go func() {
+		simDone <- streamScenarioText(ctx, "bronchospasm", "bed-7", link, 60,
+			ingest.TextEncoderOptions{Decimals: 4, Stream: true})
+	}()
+	js := jetStreamOf(t, ns.URL())
+	waitFor(t, 30*time.Second, "the alerts stream", func() bool {
+		_, err := js.Stream(ctx, "TRAPLINE_ALERTS")
+		return err == nil
+	})
+	openBefore := func() map[string]bool {
+		open := map[string]bool{}
+		for _, e := range storedAlerts(t, js, "TRAPLINE_ALERTS") {
+			if e.Supersedes != "" {
+				delete(open, e.Supersedes)
+			}
+			if e.State.Terminal() {
+				delete(open, e.ID)
+			} else {
+				open[e.ID] = true
+			}
+		}
+		return open
+	}
+	var before map[string]bool
+	waitFor(t, 90*time.Second, "an alarm of the multiplexed stream open in JetStream", func() bool {
+		before = openBefore()
+		return len(before) > 0
+	})
+	first.kill()
+	// The alarms open at the kill, as every subscriber saw them; events
+	// still in the spool go out at the restart and may close some.
+	before = openBefore()
+	raised := map[string]bool{}
+	for _, e := range storedAlerts(t, js, "TRAPLINE_ALERTS") {
+		raised[e.ID] = true
+	}
+	ledger, err := os.ReadFile(filepath.Join(dir, "state", "open-alarms.jsonl"))
+	if err != nil {
+		t.Fatalf("no alarm ledger after the kill: %v", err)
+	}
+	for id := range before {
+		if !strings.Contains(string(ledger), `"id":"`+id+`"`) {
+			t.Errorf("alarm %s, open in JetStream, is not in the ledger", id)
+		}
+	}
+
+	second := startDaemonProcess(t, "run", "--config", cfg)
+	if err := <-simDone; err != nil {
+		t.Fatalf("simulator: %v", err)
+	}
+	waitFor(t, 30*time.Second, "the spool to drain", func() bool {
+		m := metricsOf(httpPort)
+		return m != nil && m["trapline_spool_depth"] == 0
+	})
+	stable(t, 10*time.Second, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	if err := second.stop(30 * time.Second); err != nil {
+		t.Error(err)
+	}
+	stored := storedAlerts(t, js, "TRAPLINE_ALERTS")
+	t.Logf("%d alarms open at the kill; %d alert events:\n%s", len(before), len(stored), describe(stored))
+	open := map[string]bool{}
+	interrupted := map[string]bool{}
+	for _, e := range stored {
+		if e.Supersedes != "" {
+			delete(open, e.Supersedes)
+		}
+		if e.State.Terminal() {
+			delete(open, e.ID)
+			if e.Reason == alerts.ReasonInterrupted {
+				interrupted[e.ID] = true
+			}
+		} else {
+			open[e.ID] = true
+		}
+	}
+	for id := range raised {
+		if open[id] {
+			t.Errorf("alarm %s raised before the kill has no terminal state in JetStream", id)
+		}
+	}
+	for id := range before {
+		if !interrupted[id] && !open[id] {
+			t.Logf("alarm %s open at the kill ended otherwise (an event still in the spool)", id)
+		}
+	}
+	if len(interrupted) == 0 {
+		t.Error("no alarm ended as interrupted after the kill")
+	}
+}
