@@ -195,3 +195,58 @@ func (s *stream) endUnresumable(pubCtx, ctx context.Context, pl streamPipeline) 
 		s.log.Warn().Err(err).Msg("open alarms not ended at the stop")
 	}
 }
+
+// A stream that keeps no checkpoint (a file or stdin) records its alarms
+// in the daemon's alarm ledger (ledger.go) instead: each raise, escalation
+// and acknowledgement before it goes out, each end once the spool holds it.
+// A kill then cannot leave them open for good (the next start ends them),
+// and neither can a failure of the stream: its next run starts the
+// recording over with a new pipeline, and first ends what the last run
+// left open (endLeftAlarms).
+
+// ledgerOpen records the raises, escalations and acknowledgements among
+// evs, with one write and sync, for a stream without a checkpoint.
+func (s *stream) ledgerOpen(evs []alerts.Event) {
+	if s.spec.Continuity != nil || s.spec.Ledger == nil || len(evs) == 0 {
+		return
+	}
+	open := make([]alerts.Event, 0, len(evs))
+	for i := range evs {
+		if !evs[i].State.Terminal() {
+			open = append(open, evs[i])
+		}
+	}
+	s.recordAlarm(true, open...)
+}
+
+// deliverKept delivers ev (deliver) and records the end of an alarm of a
+// stream without a checkpoint once the spool holds it.
+func (s *stream) deliverKept(ctx context.Context, ev alerts.Event) {
+	if s.deliver(ctx, ev) && ev.State.Terminal() && s.spec.Continuity == nil {
+		s.recordAlarm(false, ev)
+	}
+}
+
+// endLeftAlarms ends, before a stream without a checkpoint starts a run,
+// the alarms its last run left open in the ledger (state ended, reason
+// "monitoring interrupted"): the new run analyses its input from the start
+// with a new pipeline that does not know them. The delivery-impaired alarm
+// outlives runs (degraded.go) and is left alone.
+func (s *stream) endLeftAlarms(ctx context.Context) {
+	if s.spec.Continuity != nil {
+		return
+	}
+	now := time.Now()
+	for _, e := range s.spec.Ledger.openOf(s.spec.ID) {
+		if e.Condition == CondDeliveryImpaired {
+			continue
+		}
+		ev := endedEvent(e, now)
+		if err := s.alerts.Publish(ctx, ev); err != nil {
+			s.log.Warn().Err(err).Str("alert", ev.DedupID()).Msg("alarm left open by the last run not ended")
+			continue
+		}
+		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
+		s.recordAlarm(false, ev)
+	}
+}

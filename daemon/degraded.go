@@ -97,11 +97,9 @@ func (s *stream) recovered(ctx context.Context, now time.Time, st alerts.State, 
 	s.imp.id, s.imp.refused = "", 0
 }
 
-// recordAlarm records ev in the daemon's alarm ledger, when there is one.
-func (s *stream) recordAlarm(sync bool, ev alerts.Event) {
-	if s.spec.Ledger != nil {
-		s.spec.Ledger(sync, ev)
-	}
+// recordAlarm records evs in the daemon's alarm ledger, when there is one.
+func (s *stream) recordAlarm(sync bool, evs ...alerts.Event) {
+	s.spec.Ledger.keep(s.log, s.m, sync, evs...)
 }
 
 func (s *stream) impairedEvent(id string, st alerts.State, now time.Time, msg string) alerts.Event {

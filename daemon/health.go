@@ -152,3 +152,19 @@ func (h *httpServer) Run(ctx context.Context) error {
 	<-errc
 	return nil
 }
+
+// ready reports why the stream is not ready, or nil.
+func (s *stream) ready() error {
+	switch {
+	case s.finished.Load():
+		return nil
+	case !s.up.Load():
+		if e := s.lastErr.Load(); e != nil {
+			return fmt.Errorf("pipeline restarting after: %s", *e)
+		}
+		return errors.New("pipeline not running")
+	case !s.connected.Load():
+		return errors.New("source not connected")
+	}
+	return nil
+}

@@ -14,6 +14,8 @@ import (
 	"sync"
 	"time"
 
+	"github.com/rs/zerolog"
+
 	"trapline/alerts"
 )
 
@@ -243,15 +245,37 @@ func (d *Daemon) openLedger(ctx context.Context, del *delivery) error {
 	return nil
 }
 
-// recordAlarms records evs in the ledger (see alarmLedger.record); a
-// failure is logged and counted with the checkpoint errors, and the
-// alarms go out all the same.
+// recordAlarms records evs in the daemon's ledger (see keep).
 func (d *Daemon) recordAlarms(sync bool, evs ...alerts.Event) {
-	if d.ledger == nil || len(evs) == 0 {
+	d.ledger.keep(d.log, d.m, sync, evs...)
+}
+
+// keep records evs (see record); a failure is logged and counted with the
+// checkpoint errors, and the alarms go out all the same. A nil ledger
+// keeps nothing.
+func (l *alarmLedger) keep(log zerolog.Logger, m *metrics, sync bool, evs ...alerts.Event) {
+	if l == nil || len(evs) == 0 {
 		return
 	}
-	if err := d.ledger.record(sync, evs...); err != nil {
-		d.log.Error().Err(err).Msg("alarm ledger not written; after a kill these alarms may stay open")
-		d.m.checkpointErrors.WithLabelValues(evs[0].Stream).Inc()
+	if err := l.record(sync, evs...); err != nil {
+		log.Error().Err(err).Msg("alarm ledger not written; after a kill these alarms may stay open")
+		m.checkpointErrors.WithLabelValues(evs[0].Stream).Inc()
 	}
+}
+
+// openOf returns the open alarms of stream, oldest first.
+func (l *alarmLedger) openOf(stream string) []alerts.Event {
+	if l == nil {
+		return nil
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	var out []alerts.Event
+	for _, e := range l.open {
+		if e.Stream == stream {
+			out = append(out, e)
+		}
+	}
+	sort.Slice(out, func(i, j int) bool { return out[i].Time.Before(out[j].Time) })
+	return out
 }

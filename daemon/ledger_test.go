@@ -1,13 +1,18 @@
 package daemon
 
 import (
+	"context"
 	"os"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"testing"
 	"time"
 
+	"github.com/rs/zerolog"
+
 	"trapline/alerts"
+	"trapline/ingest"
 )
 
 // ledgerEvent is an alarm event of stream bed-9 for the ledger tests.
@@ -156,5 +161,65 @@ func TestEndedEventOfLeftAlarm(t *testing.T) {
 	}
 	if got.DedupID() == e.DedupID() {
 		t.Fatal("the end has the dedup id of the event before it")
+	}
+}
+
+// ledgerReader is an alert sink that, as each raise arrives, reads the
+// alarm ledger as a kill at that moment would leave it.
+type ledgerReader struct {
+	*memSink
+	path     string
+	inLedger []bool // per raise: whether the ledger on disk held it
+}
+
+func (r *ledgerReader) Publish(ctx context.Context, ev alerts.Event) error {
+	if ev.State == alerts.Raised {
+		data, _ := os.ReadFile(r.path)
+		r.mu.Lock()
+		r.inLedger = append(r.inLedger, strings.Contains(string(data), `"id":"`+ev.ID+`"`))
+		r.mu.Unlock()
+	}
+	return r.memSink.Publish(ctx, ev)
+}
+
+// TestFailedRunEndsItsAlarms: a stream without a checkpoint (a file or
+// stdin) records its raise in the alarm ledger before delivering it, and
+// when its source fails and the supervisor starts a new run (a new
+// pipeline that reads the input from its start), the alarm the failed run
+// left open is ended first, reason "monitoring interrupted". Before the
+// ledger it stayed open for every subscriber.
+func TestFailedRunEndsItsAlarms(t *testing.T) {
+	l, _, _, err := openLedger(t.TempDir())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.close()
+	sink := &ledgerReader{memSink: newMemSink(), path: l.path}
+	s := newStream(streamSpec{
+		ID: "bed-12", Ledger: l,
+		Open: func() (ingest.Source, streamPipeline, error) {
+			return &fakeSource{period: 2 * time.Millisecond, failAfter: 8},
+				&countingPipeline{stream: "bed-12", raiseAt: 5}, nil
+		},
+		Backoff: restartPolicy{Min: 10 * time.Millisecond, Max: 20 * time.Millisecond, StableAfter: time.Minute},
+	}, zerolog.Nop(), newMetrics(), sink, sink.memSink)
+	runUntil(t, s, "a second run's raise", func() bool {
+		sink.mu.Lock()
+		defer sink.mu.Unlock()
+		return len(sink.inLedger) >= 2
+	})
+	sink.mu.Lock()
+	defer sink.mu.Unlock()
+	var states []string
+	for _, e := range sink.alerts {
+		states = append(states, string(e.State)+" "+e.Reason)
+	}
+	if len(states) < 3 || states[0] != "raised " || states[1] != "ended "+alerts.ReasonInterrupted || states[2] != "raised " {
+		t.Errorf("events %q, want a raise, its end as interrupted, and the next run's raise", states)
+	}
+	for i, ok := range sink.inLedger {
+		if !ok {
+			t.Errorf("raise %d was delivered before the ledger held it", i+1)
+		}
 	}
 }

@@ -86,7 +86,7 @@ type streamSpec struct {
 	// (?stream=), also accepted as this stream's own.
 	SourceStream string
 	// Ledger, when set, records alarms no checkpoint holds (ledger.go).
-	Ledger func(sync bool, evs ...alerts.Event)
+	Ledger *alarmLedger
 }
 
 // errFinished ends the supervision of a stream whose finite source reached
@@ -181,22 +181,6 @@ func (s *stream) Run(ctx context.Context) error {
 		})
 }
 
-// ready reports why the stream is not ready, or nil.
-func (s *stream) ready() error {
-	switch {
-	case s.finished.Load():
-		return nil
-	case !s.up.Load():
-		if e := s.lastErr.Load(); e != nil {
-			return fmt.Errorf("pipeline restarting after: %s", *e)
-		}
-		return errors.New("pipeline not running")
-	case !s.connected.Load():
-		return errors.New("source not connected")
-	}
-	return nil
-}
-
 // ack hands an acknowledgement to the running pipeline and waits for its
 // answer, at most until ctx ends.
 func (s *stream) ack(ctx context.Context, id, by string) error {
@@ -241,6 +225,7 @@ func (s *stream) runOnce(ctx context.Context) error {
 
 // runSource is one run of the stream's source and analysis.
 func (s *stream) runSource(ctx context.Context) error {
+	s.endLeftAlarms(ctx)
 	src, pl, err := s.spec.Open()
 	if err != nil {
 		return fmt.Errorf("open: %w", err)
@@ -442,9 +427,10 @@ func (s *stream) drained(pubCtx, ctx context.Context, pl streamPipeline) error {
 // (a refusal degrades delivery but never stops the stream: see deliver),
 // breaths through the non-blocking bulletin.
 func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) error {
+	s.ledgerOpen(out.Alerts)
 	for i := range out.Alerts {
 		ev := out.Alerts[i]
-		s.deliver(ctx, ev)
+		s.deliverKept(ctx, ev)
 		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
 		if s.view != nil {
 			s.view.Alert(ev)

@@ -158,7 +158,7 @@ func (d *Daemon) streamSpec(sc config.Stream) (streamSpec, error) {
 		Continuity:   cont,
 		SourceStream: u.Stream,
 		Finite:       finite,
-		Ledger:       d.recordAlarms,
+		Ledger:       d.ledger,
 		Overload:     opts.Overload.For(u.Scheme),
 		Open: func() (ingest.Source, streamPipeline, error) {
 			src, err := ingest.Open(sc.Source, opts)
