@@ -97,21 +97,28 @@ func (c *continuity) save(pl streamPipeline, now time.Time, clean bool) error {
 	if err := os.MkdirAll(filepath.Dir(c.path), 0o750); err != nil {
 		return fmt.Errorf("checkpoint dir: %w", err)
 	}
-	tmp := c.path + ".tmp"
+	if err := writeAtomic(c.path, data); err != nil {
+		return fmt.Errorf("write checkpoint: %w", err)
+	}
+	return nil
+}
+
+// writeAtomic writes data to path through a temporary file that is synced
+// and renamed over it, so that a kill at any moment leaves either the old
+// file or the new one.
+func writeAtomic(path string, data []byte) error {
+	tmp := path + ".tmp"
 	f, err := os.OpenFile(tmp, os.O_CREATE|os.O_WRONLY|os.O_TRUNC, 0o600)
 	if err != nil {
-		return fmt.Errorf("write checkpoint: %w", err)
+		return err
 	}
 	_, werr := f.Write(data)
 	serr := f.Sync()
 	cerr := f.Close()
 	if err := errors.Join(werr, serr, cerr); err != nil {
-		return fmt.Errorf("write checkpoint %s: %w", tmp, err)
+		return fmt.Errorf("%s: %w", tmp, err)
 	}
-	if err := os.Rename(tmp, c.path); err != nil {
-		return fmt.Errorf("checkpoint: %w", err)
-	}
-	return nil
+	return os.Rename(tmp, path)
 }
 
 // resume restores the stream's checkpoint into a fresh pipeline and

@@ -162,28 +162,18 @@ func (l *alarmLedger) compact() error {
 		}
 		data = append(append(data, line...), '\n')
 	}
-	tmp := l.path + ".tmp"
-	f, err := os.OpenFile(tmp, os.O_CREATE|os.O_WRONLY|os.O_TRUNC, 0o600)
-	if err != nil {
-		return fmt.Errorf("alarm ledger: %w", err)
-	}
-	_, werr := f.Write(data)
-	serr := f.Sync()
-	cerr := f.Close()
-	if err := errors.Join(werr, serr, cerr); err != nil {
-		return fmt.Errorf("alarm ledger %s: %w", tmp, err)
-	}
-	if err := os.Rename(tmp, l.path); err != nil {
+	if err := writeAtomic(l.path, data); err != nil {
 		return fmt.Errorf("alarm ledger: %w", err)
 	}
 	if l.f != nil {
 		_ = l.f.Close()
 	}
-	if l.f, err = os.OpenFile(l.path, os.O_WRONLY|os.O_APPEND, 0o600); err != nil {
+	f, err := os.OpenFile(l.path, os.O_WRONLY|os.O_APPEND, 0o600)
+	if err != nil {
 		l.f = nil
 		return fmt.Errorf("alarm ledger: %w", err)
 	}
-	l.size = int64(len(data))
+	l.f, l.size = f, int64(len(data))
 	return nil
 }
 

@@ -27,27 +27,11 @@ func TestKilledMuxStreamLeavesNoGhost(t *testing.T) {
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ward-link")
 	httpPort := freePort(t)
-	cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
-shutdown_timeout: 5s
-http:
-  listen: 127.0.0.1:%d
-log:
-  level: warn
-nats:
-  url: %s
-  publish_timeout: 500ms
-  alerts_stream:
-    max_bytes: 16MiB
-  breaths_stream:
-    max_bytes: 64MiB
-detectors:
-  signal:
-    lost_after_s: 600
-sources:
+	cfg := writeConfig(t, externalNATSConfig(dir, ns.URL(), httpPort, "", fmt.Sprintf(`sources:
   - name: ward
     source: serial://%s?baud=115200
     pattern: "bed-*"
-`, dir, httpPort, ns.URL(), link))
+`, link)))
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 	defer cancel()
 	first := startDaemonProcess(t, "run", "--config", cfg)
@@ -62,20 +46,7 @@ sources:
 		_, err := js.Stream(ctx, "TRAPLINE_ALERTS")
 		return err == nil
 	})
-	openBefore := func() map[string]bool {
-		open := map[string]bool{}
-		for _, e := range storedAlerts(t, js, "TRAPLINE_ALERTS") {
-			if e.Supersedes != "" {
-				delete(open, e.Supersedes)
-			}
-			if e.State.Terminal() {
-				delete(open, e.ID)
-			} else {
-				open[e.ID] = true
-			}
-		}
-		return open
-	}
+	openBefore := func() map[string]bool { return openAlarms(storedAlerts(t, js, "TRAPLINE_ALERTS")) }
 	var before map[string]bool
 	waitFor(t, 90*time.Second, "an alarm of the multiplexed stream open in JetStream", func() bool {
 		before = openBefore()
@@ -99,33 +70,14 @@ sources:
 		}
 	}
 
-	second := startDaemonProcess(t, "run", "--config", cfg)
-	if err := <-simDone; err != nil {
-		t.Fatalf("simulator: %v", err)
-	}
-	waitFor(t, 30*time.Second, "the spool to drain", func() bool {
-		m := metricsOf(httpPort)
-		return m != nil && m["trapline_spool_depth"] == 0
-	})
-	stable(t, 10*time.Second, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
-	if err := second.stop(30 * time.Second); err != nil {
-		t.Error(err)
-	}
+	runAfterRestart(t, cfg, httpPort, simDone, 10*time.Second)
 	stored := storedAlerts(t, js, "TRAPLINE_ALERTS")
 	t.Logf("%d alarms open at the kill; %d alert events:\n%s", len(before), len(stored), describe(stored))
-	open := map[string]bool{}
+	open := openAlarms(stored)
 	interrupted := map[string]bool{}
 	for _, e := range stored {
-		if e.Supersedes != "" {
-			delete(open, e.Supersedes)
-		}
-		if e.State.Terminal() {
-			delete(open, e.ID)
-			if e.Reason == alerts.ReasonInterrupted {
-				interrupted[e.ID] = true
-			}
-		} else {
-			open[e.ID] = true
+		if e.State == alerts.Ended && e.Reason == alerts.ReasonInterrupted {
+			interrupted[e.ID] = true
 		}
 	}
 	for id := range raised {

@@ -85,18 +85,7 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			} else if err := first.stop(20 * time.Second); err != nil {
 				t.Fatal(err)
 			}
-			second := startDaemonProcess(t, "run", "--config", cfg)
-			if err := <-simDone; err != nil {
-				t.Fatalf("simulator: %v", err)
-			}
-			waitFor(t, 30*time.Second, "the spool to drain", func() bool {
-				m := metricsOf(httpPort)
-				return m != nil && m["trapline_spool_depth"] == 0
-			})
-			stable(t, 20*time.Second, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
-			if err := second.stop(30 * time.Second); err != nil {
-				t.Error(err)
-			}
+			runAfterRestart(t, cfg, httpPort, simDone, 20*time.Second)
 			stored := storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS")
 			checkTerminal(t, stored, before)
 			t.Logf("%d alert events:\n%s", len(stored), describe(stored))
@@ -113,24 +102,31 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 	}
 }
 
-// checkTerminal checks that every alarm id of ids (those raised before the
-// restart) ends in stored in a terminal state or is superseded, that the
-// rising-peak alarm was raised, and that the restart was marked by a
-// monitoring-gap event. An alarm raised after the restart may still be
-// open when the scenario ends (the patient's state at its end); it is only
-// reported.
-func checkTerminal(t *testing.T, stored []alerts.Event, ids map[string]bool) {
+// runAfterRestart starts the daemon again on cfg, waits for the
+// simulator to finish, for the spool to drain and for the alert count to
+// stay put for settle, and stops the daemon.
+func runAfterRestart(t *testing.T, cfg string, httpPort int, simDone <-chan error, settle time.Duration) {
 	t.Helper()
+	second := startDaemonProcess(t, "run", "--config", cfg)
+	if err := <-simDone; err != nil {
+		t.Fatalf("simulator: %v", err)
+	}
+	waitFor(t, 30*time.Second, "the spool to drain", func() bool {
+		m := metricsOf(httpPort)
+		return m != nil && m["trapline_spool_depth"] == 0
+	})
+	stable(t, settle, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	if err := second.stop(30 * time.Second); err != nil {
+		t.Error(err)
+	}
+}
+
+// openAlarms returns the ids that evs leave open: raised, escalated or
+// acknowledged, and neither cleared, ended nor superseded. The
+// monitoring-gap event is born ended.
+func openAlarms(evs []alerts.Event) map[string]bool {
 	open := map[string]bool{}
-	rising, gap := false, false
-	for _, e := range stored {
-		switch {
-		case e.Condition == alerts.CondMonitoringGap:
-			gap = true
-			continue
-		case e.Condition == analyze.CondRisingPeakPressure && e.State == alerts.Raised:
-			rising = true
-		}
+	for _, e := range evs {
 		if e.Supersedes != "" {
 			delete(open, e.Supersedes)
 		}
@@ -140,7 +136,23 @@ func checkTerminal(t *testing.T, stored []alerts.Event, ids map[string]bool) {
 			open[e.ID] = true
 		}
 	}
-	for id := range open {
+	return open
+}
+
+// checkTerminal checks that every alarm id of ids (those raised before the
+// restart) ends in stored in a terminal state or is superseded, that the
+// rising-peak alarm was raised, and that the restart was marked by a
+// monitoring-gap event. An alarm raised after the restart may still be
+// open when the scenario ends (the patient's state at its end); it is only
+// reported.
+func checkTerminal(t *testing.T, stored []alerts.Event, ids map[string]bool) {
+	t.Helper()
+	rising, gap := false, false
+	for _, e := range stored {
+		gap = gap || e.Condition == alerts.CondMonitoringGap
+		rising = rising || (e.Condition == analyze.CondRisingPeakPressure && e.State == alerts.Raised)
+	}
+	for id := range openAlarms(stored) {
 		if ids[id] {
 			t.Errorf("alarm %s raised before the restart has no terminal state in JetStream", id)
 		} else {

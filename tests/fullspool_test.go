@@ -24,28 +24,10 @@ func TestFullSpoolDegradesNeverStops(t *testing.T) {
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")
 	httpPort := freePort(t)
-	cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
-shutdown_timeout: 5s
-http:
-  listen: 127.0.0.1:%d
-log:
-  level: warn
-spool:
-  max_events: 5
-nats:
-  url: %s
-  publish_timeout: 500ms
-  alerts_stream:
-    max_bytes: 16MiB
-  breaths_stream:
-    max_bytes: 64MiB
-detectors:
-  signal:
-    lost_after_s: 600
-streams:
+	cfg := writeConfig(t, externalNATSConfig(dir, ns.URL(), httpPort, "spool:\n  max_events: 5\n", fmt.Sprintf(`streams:
   - id: bed-5
     source: serial://%s?baud=115200
-`, dir, httpPort, ns.URL(), link))
+`, link)))
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 	defer cancel()
 	d, simDone := runBronchospasm(ctx, t, cfg, httpPort, link)

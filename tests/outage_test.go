@@ -35,28 +35,35 @@ func runBronchospasm(ctx context.Context, t *testing.T, cfg string, httpPort int
 // outageConfig is a daemon reading the pseudo-terminal link and publishing
 // to the external server at natsURL.
 func outageConfig(t *testing.T, dir, link, natsURL string, httpPort int) string {
-	return writeConfig(t, fmt.Sprintf(`data_dir: %s
+	return writeConfig(t, externalNATSConfig(dir, natsURL, httpPort, "", fmt.Sprintf(`streams:
+  - id: bed-5
+    source: serial://%s?baud=115200
+`, link)))
+}
+
+// externalNATSConfig is the configuration of a daemon that publishes to the
+// external server at natsURL and serves HTTP on httpPort, with extra keys
+// at the top level (spool:) and its inputs (streams: or sources:).
+func externalNATSConfig(dir, natsURL string, httpPort int, extra, inputs string) string {
+	return fmt.Sprintf(`data_dir: %s
 shutdown_timeout: 5s
 http:
   listen: 127.0.0.1:%d
 log:
   level: warn
-nats:
+%snats:
   url: %s
   publish_timeout: 500ms
   alerts_stream:
     max_bytes: 16MiB
   breaths_stream:
     max_bytes: 64MiB
-# The counts compared below must not race a signal-lost alert raised
-# when the patient's recording ends.
+# The counts compared in the tests must not race a signal-lost alert
+# raised when the patient's recording ends.
 detectors:
   signal:
     lost_after_s: 600
-streams:
-  - id: bed-5
-    source: serial://%s?baud=115200
-`, dir, httpPort, natsURL, link))
+%s`, dir, httpPort, extra, natsURL, inputs)
 }
 
 var seriesLine = regexp.MustCompile(`^([a-z_]+)(\{[^}]*\})? ([0-9.e+-]+)$`)
