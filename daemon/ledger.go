@@ -40,7 +40,9 @@ import (
 const ledgerFile = "open-alarms.jsonl"
 
 // ledgerCompactBytes is the size beyond which the ledger is rewritten with
-// only its open alarms.
+// only its open alarms; when those alone take more than half of it (ten
+// thousand streams with an alarm each), the next rewrite waits until the
+// file has doubled, so that rewrites stay rare.
 const ledgerCompactBytes = 1 << 20
 
 // alarmLedger is the ledger of one daemon; safe for concurrent use.
@@ -49,8 +51,12 @@ type alarmLedger struct {
 	path string
 	f    *os.File
 	size int64
-	open map[string]alerts.Event // by id, as last written
-	buf  []byte
+	// compactAt is the size that makes record rewrite the file; rewrites
+	// counts the rewrites.
+	compactAt int64
+	rewrites  int
+	open      map[string]alerts.Event // by id, as last written
+	buf       []byte
 }
 
 // openLedger opens the ledger in the state directory under dataDir and
@@ -128,7 +134,7 @@ func (l *alarmLedger) record(sync bool, evs ...alerts.Event) error {
 	if len(l.buf) > 0 {
 		errs = append(errs, l.write(l.buf, sync))
 	}
-	if l.size > ledgerCompactBytes {
+	if l.size > l.compactAt {
 		errs = append(errs, l.compact())
 	}
 	return errors.Join(errs...)
@@ -174,6 +180,8 @@ func (l *alarmLedger) compact() error {
 		return fmt.Errorf("alarm ledger: %w", err)
 	}
 	l.f, l.size = f, int64(len(data))
+	l.compactAt = max(ledgerCompactBytes, 2*l.size)
+	l.rewrites++
 	return nil
 }
 

@@ -223,3 +223,27 @@ func TestFailedRunEndsItsAlarms(t *testing.T) {
 		}
 	}
 }
+
+// TestLedgerRewritesStayRareWithManyOpen: when the open alarms alone
+// outgrow ledgerCompactBytes (thousands of streams with an alarm each),
+// the file is not rewritten on every event but each time it doubles.
+func TestLedgerRewritesStayRareWithManyOpen(t *testing.T) {
+	l, _, _, err := openLedger(t.TempDir())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.close()
+	const n = 8000 // about 4.5 MiB of open alarms
+	for i := range n {
+		if err := l.record(false, ledgerEvent("bed-9/air-trapping/"+strconv.Itoa(i), alerts.Raised, float64(i))); err != nil {
+			t.Fatal(err)
+		}
+	}
+	// 1 at the open, then at about 1, 2 and 4 MiB.
+	if l.rewrites > 5 {
+		t.Errorf("%d rewrites for %d events, want a handful", l.rewrites, n)
+	}
+	if len(l.open) != n {
+		t.Errorf("%d open, want %d", len(l.open), n)
+	}
+}
