@@ -233,13 +233,13 @@ func TestLedgerRewritesStayRareWithManyOpen(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer l.close()
-	const n = 8000 // about 4.5 MiB of open alarms
+	const n = 8000 // about 3.5 MiB of open alarms
 	for i := range n {
 		if err := l.record(false, ledgerEvent("bed-9/air-trapping/"+strconv.Itoa(i), alerts.Raised, float64(i))); err != nil {
 			t.Fatal(err)
 		}
 	}
-	// 1 at the open, then at about 1, 2 and 4 MiB.
+	// One at the open, then one each time the file doubles from 1 MiB.
 	if l.rewrites > 5 {
 		t.Errorf("%d rewrites for %d events, want a handful", l.rewrites, n)
 	}
