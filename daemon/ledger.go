@@ -57,7 +57,18 @@ type alarmLedger struct {
 	rewrites  int
 	open      map[string]alerts.Event // by id, as last written
 	buf       []byte
+	// ended remembers the last ledgerRemember alarms that the ledger
+	// ended (endedEvent), by id, so that an acknowledgement of one of them
+	// answers what became of it; endedOrder is their order and
+	// endedTokens counts them by stream subject token.
+	ended       map[string]alerts.Event
+	endedOrder  []string
+	endedTokens map[string]int
 }
+
+// ledgerRemember is how many alarms ended by the ledger an
+// acknowledgement can still be answered about.
+const ledgerRemember = 1024
 
 // openLedger opens the ledger in the state directory under dataDir and
 // returns it with the alarms that the file left open, oldest first. Those
@@ -68,7 +79,8 @@ func openLedger(dataDir string) (l *alarmLedger, left []alerts.Event, bad int, e
 	if err := os.MkdirAll(dir, 0o750); err != nil {
 		return nil, nil, 0, fmt.Errorf("alarm ledger: %w", err)
 	}
-	l = &alarmLedger{path: filepath.Join(dir, ledgerFile), open: map[string]alerts.Event{}}
+	l = &alarmLedger{path: filepath.Join(dir, ledgerFile), open: map[string]alerts.Event{},
+		ended: map[string]alerts.Event{}, endedTokens: map[string]int{}}
 	data, err := os.ReadFile(l.path)
 	if err != nil && !errors.Is(err, fs.ErrNotExist) {
 		return nil, nil, 0, fmt.Errorf("alarm ledger: %w", err)
@@ -103,6 +115,55 @@ func (l *alarmLedger) apply(e *alerts.Event) {
 	} else {
 		l.open[e.ID] = *e
 	}
+	if e.State == alerts.Ended && e.Reason == alerts.ReasonInterrupted {
+		l.rememberEnded(e)
+	}
+}
+
+// rememberEnded keeps e, an end the ledger made, for acknowledgements.
+func (l *alarmLedger) rememberEnded(e *alerts.Event) {
+	if _, ok := l.ended[e.ID]; ok {
+		return
+	}
+	if len(l.endedOrder) >= ledgerRemember {
+		old := l.endedOrder[0]
+		l.endedOrder = l.endedOrder[1:]
+		if tok := alerts.SubjectToken(l.ended[old].Stream); l.endedTokens[tok] <= 1 {
+			delete(l.endedTokens, tok)
+		} else {
+			l.endedTokens[tok]--
+		}
+		delete(l.ended, old)
+	}
+	l.ended[e.ID] = *e
+	l.endedOrder = append(l.endedOrder, e.ID)
+	l.endedTokens[alerts.SubjectToken(e.Stream)]++
+}
+
+// fate tells, for an alarm id the ledger ended, what became of it, as an
+// acknowledgement answers; false for any other id.
+func (l *alarmLedger) fate(id string) (string, bool) {
+	if l == nil {
+		return "", false
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	e, ok := l.ended[id]
+	if !ok {
+		return "", false
+	}
+	return fmt.Sprintf("alert %s ended at %s: %s", id, e.Time.UTC().Format(time.RFC3339), e.Reason), true
+}
+
+// endedOf reports whether the ledger ended an alarm of the stream with
+// subject token tok.
+func (l *alarmLedger) endedOf(tok string) bool {
+	if l == nil {
+		return false
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.endedTokens[tok] > 0
 }
 
 // record writes evs, and when sync is set syncs the file, before it

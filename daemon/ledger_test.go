@@ -247,3 +247,46 @@ func TestLedgerRewritesStayRareWithManyOpen(t *testing.T) {
 		t.Errorf("%d open, want %d", len(l.open), n)
 	}
 }
+
+// TestLedgerRemembersWhatItEnded: the ends the ledger made answer an
+// acknowledgement (fate, endedOf) for the last ledgerRemember of them;
+// an alarm cleared as usual is not among them.
+func TestLedgerRemembersWhatItEnded(t *testing.T) {
+	l, _, _, err := openLedger(t.TempDir())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.close()
+	now := time.Date(2026, 12, 3, 10, 0, 0, 0, time.UTC)
+	const n = ledgerRemember + 6
+	for i := range n {
+		e := ledgerEvent("bed-9/air-trapping/"+strconv.Itoa(i), alerts.Raised, float64(i))
+		if i == n-1 {
+			e.Stream, e.ID = "bed-10", "bed-10/air-trapping/1"
+		}
+		if err := l.record(true, e); err != nil {
+			t.Fatal(err)
+		}
+		if err := l.record(false, endedEvent(e, now)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := l.record(false, ledgerEvent("bed-9/air-trapping/x", alerts.Cleared, 1)); err != nil {
+		t.Fatal(err)
+	}
+	want := "alert bed-9/air-trapping/6 ended at 2026-12-03T10:00:00Z: monitoring interrupted"
+	if got, ok := l.fate("bed-9/air-trapping/6"); !ok || got != want {
+		t.Errorf("fate = %q, %v; want %q", got, ok, want)
+	}
+	for _, id := range []string{"bed-9/air-trapping/5", "bed-9/air-trapping/x"} {
+		if got, ok := l.fate(id); ok {
+			t.Errorf("fate of %s = %q, want none (forgotten, or not ended by the ledger)", id, got)
+		}
+	}
+	if !l.endedOf(alerts.SubjectToken("bed-10")) || !l.endedOf(alerts.SubjectToken("bed-9")) || l.endedOf(alerts.SubjectToken("bed-11")) {
+		t.Error("endedOf does not tell the streams with remembered ends")
+	}
+	if len(l.ended) != ledgerRemember || len(l.endedOrder) != ledgerRemember {
+		t.Errorf("%d ends remembered, want %d", len(l.ended), ledgerRemember)
+	}
+}

@@ -187,10 +187,15 @@ func (d *Daemon) finish(err error) error {
 // ackService serves the acknowledgements of the streams of this process.
 func (d *Daemon) ackService() *bus.AckService {
 	return &bus.AckService{
-		Here: func(tok string) bool { return d.byToken[tok] != nil || d.mux.has(tok) },
+		Here: func(tok string) bool { return d.byToken[tok] != nil || d.mux.has(tok) || d.ledger.endedOf(tok) },
 		Ack: func(ctx context.Context, tok string, req bus.AckRequest) error {
 			var id string
 			var err error
+			if fate, ok := d.ledger.fate(req.ID); ok {
+				// Ended by the alarm ledger: the stream's pipeline,
+				// started afresh, does not know the id.
+				return errors.New(fate)
+			}
 			if s := d.byToken[tok]; s != nil {
 				id, err = s.spec.ID, s.ack(ctx, req.ID, req.By)
 			} else {

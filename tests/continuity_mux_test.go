@@ -2,6 +2,7 @@ package tests
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -9,9 +10,35 @@ import (
 	"testing"
 	"time"
 
+	"github.com/nats-io/nats.go"
+
 	"trapline/alerts"
 	"trapline/ingest"
 )
+
+// ackOf acknowledges alarm id of stream over NATS and returns the error the
+// daemon answered ("" for ok).
+func ackOf(t *testing.T, url, stream, id string) string {
+	t.Helper()
+	nc, err := nats.Connect(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	m, err := nc.Request("trapline.ack."+alerts.SubjectToken(stream), []byte(`{"id":"`+id+`","by":"night shift"}`), 5*time.Second)
+	if err != nil {
+		t.Fatalf("ack %s: %v", id, err)
+	}
+	var rep struct {
+		OK    bool   `json:"ok"`
+		Error string `json:"error"`
+	}
+	if err := json.Unmarshal(m.Data, &rep); err != nil {
+		t.Fatalf("ack %s answered %s: %v", id, m.Data, err)
+	}
+	t.Logf("ack %s: ok %v, %s", id, rep.OK, rep.Error)
+	return rep.Error
+}
 
 // TestKilledMuxStreamLeavesNoGhost: a stream of a multiplexed source keeps
 // no checkpoint. The daemon, a child process, is killed with SIGKILL while
@@ -70,7 +97,21 @@ func TestKilledMuxStreamLeavesNoGhost(t *testing.T) {
 		}
 	}
 
-	runAfterRestart(t, cfg, httpPort, simDone, 10*time.Second)
+	// An acknowledgement of an alarm the ledger ended answers what became
+	// of it, as one of an alarm a checkpoint ended does.
+	var ackAnswer string
+	ackLeft := func() {
+		for _, e := range storedAlerts(t, js, "TRAPLINE_ALERTS") {
+			if e.State == alerts.Ended && e.Reason == alerts.ReasonInterrupted {
+				ackAnswer = ackOf(t, ns.URL(), e.Stream, e.ID)
+				return
+			}
+		}
+	}
+	runAfterRestart(t, cfg, httpPort, simDone, 10*time.Second, ackLeft)
+	if !strings.Contains(ackAnswer, "ended at") || !strings.Contains(ackAnswer, alerts.ReasonInterrupted) {
+		t.Errorf("acknowledging an alarm the ledger ended answered %q, want when and why it ended", ackAnswer)
+	}
 	stored := storedAlerts(t, js, "TRAPLINE_ALERTS")
 	t.Logf("%d alarms open at the kill; %d alert events:\n%s", len(before), len(stored), describe(stored))
 	open := openAlarms(stored)

@@ -85,7 +85,7 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			} else if err := first.stop(20 * time.Second); err != nil {
 				t.Fatal(err)
 			}
-			runAfterRestart(t, cfg, httpPort, simDone, 20*time.Second)
+			runAfterRestart(t, cfg, httpPort, simDone, 20*time.Second, nil)
 			stored := storedAlerts(t, jetStreamOf(t, ns.URL()), "TRAPLINE_ALERTS")
 			checkTerminal(t, stored, before)
 			t.Logf("%d alert events:\n%s", len(stored), describe(stored))
@@ -104,8 +104,8 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 
 // runAfterRestart starts the daemon again on cfg, waits for the
 // simulator to finish, for the spool to drain and for the alert count to
-// stay put for settle, and stops the daemon.
-func runAfterRestart(t *testing.T, cfg string, httpPort int, simDone <-chan error, settle time.Duration) {
+// stay put for settle, runs during (when set), and stops the daemon.
+func runAfterRestart(t *testing.T, cfg string, httpPort int, simDone <-chan error, settle time.Duration, during func()) {
 	t.Helper()
 	second := startDaemonProcess(t, "run", "--config", cfg)
 	if err := <-simDone; err != nil {
@@ -116,6 +116,9 @@ func runAfterRestart(t *testing.T, cfg string, httpPort int, simDone <-chan erro
 		return m != nil && m["trapline_spool_depth"] == 0
 	})
 	stable(t, settle, "the alert count to settle", func() float64 { return metricsOf(httpPort)["trapline_alerts_total"] })
+	if during != nil {
+		during()
+	}
 	if err := second.stop(30 * time.Second); err != nil {
 		t.Error(err)
 	}
