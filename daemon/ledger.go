@@ -20,16 +20,18 @@ import (
 )
 
 // The alarm ledger keeps the open alarms that no stream checkpoint holds:
-// those of the streams of multiplexed sources (which keep no checkpoint,
-// docs/operations.md) and each stream's alert-delivery-impaired alarm. It
-// is one file of JSON lines, <data_dir>/state/open-alarms.jsonl, each line
-// an alarm event as it went out. An event is written and synced before it
-// goes to the spool, so an alarm that any subscriber saw raised is in the
-// file; at the next start, the alarms the file leaves open (raised,
-// escalated or acknowledged, never cleared, ended or superseded) were left
-// by a daemon that did not stop cleanly, and each is ended with reason
-// "monitoring interrupted". A clean stop ends them itself (reason
-// "monitoring stopped"), so the file then leaves none.
+// those of the streams of multiplexed sources and of streams read from a
+// file or stdin (which keep no checkpoint, docs/operations.md), and each
+// stream's alert-delivery-impaired alarm. It is one file of JSON lines,
+// <data_dir>/state/open-alarms.jsonl, each line an alarm event as it went
+// out. A raise, escalation or acknowledgement is written and synced before
+// it goes to the spool, so an alarm that any subscriber saw open is in the
+// file; an end is written once the spool holds it. At the next start, the
+// alarms the file leaves open (raised, escalated or acknowledged, never
+// cleared, ended or superseded) were left by a daemon that was killed or
+// crashed, or by a recording read to its end that the new start reads
+// again; each is ended with reason "monitoring interrupted". A clean stop
+// ends the others itself (reason "monitoring stopped").
 //
 // Only alarm changes write to it (a handful an hour per stream), not the
 // streams' running state, so it costs nothing per sample and one write
@@ -72,8 +74,9 @@ const ledgerRemember = 1024
 
 // openLedger opens the ledger in the state directory under dataDir and
 // returns it with the alarms that the file left open, oldest first. Those
-// stay open in the ledger until endLeft ends them. Lines that cannot be
-// read (a write cut short by a kill) are skipped and counted in bad.
+// stay open in the ledger until their ends are recorded
+// (Daemon.startLedger). Lines that cannot be read (a write cut short by a
+// kill) are skipped and counted in bad.
 func openLedger(dataDir string) (l *alarmLedger, left []alerts.Event, bad int, err error) {
 	dir := filepath.Join(dataDir, "state")
 	if err := os.MkdirAll(dir, 0o750); err != nil {
@@ -272,11 +275,11 @@ func endedEvent(e alerts.Event, now time.Time) alerts.Event {
 	return e
 }
 
-// openLedger opens the daemon's alarm ledger and ends, through del's
+// startLedger opens the daemon's alarm ledger and ends, through del's
 // spool, the alarms it left open: those of a daemon that was killed or
 // crashed. Each end is recorded once spooled; one the spool refuses stays
 // in the ledger for the next start.
-func (d *Daemon) openLedger(ctx context.Context, del *delivery) error {
+func (d *Daemon) startLedger(ctx context.Context, del *delivery) error {
 	l, left, bad, err := openLedger(d.cfg.DataDir)
 	if err != nil {
 		return err

@@ -238,7 +238,7 @@ func (d *Daemon) startDelivery(ctx context.Context, b *bus.Bus) (*delivery, erro
 		return nil, err
 	}
 	d.del = del
-	if err := d.openLedger(ctx, del); err != nil {
+	if err := d.startLedger(ctx, del); err != nil {
 		del.pub.Close()
 		return nil, err
 	}
