@@ -1,7 +1,6 @@
 package daemon
 
 import (
-	"bufio"
 	"bytes"
 	"context"
 	"encoding/json"
@@ -88,11 +87,18 @@ func openLedger(dataDir string) (l *alarmLedger, left []alerts.Event, bad int, e
 	if err != nil && !errors.Is(err, fs.ErrNotExist) {
 		return nil, nil, 0, fmt.Errorf("alarm ledger: %w", err)
 	}
-	sc := bufio.NewScanner(bytes.NewReader(data))
-	sc.Buffer(make([]byte, 0, 64<<10), 4<<20)
-	for sc.Scan() {
+	for len(data) > 0 {
+		line := data
+		if i := bytes.IndexByte(data, '\n'); i >= 0 {
+			line, data = data[:i], data[i+1:]
+		} else {
+			data = nil
+		}
+		if len(bytes.TrimSpace(line)) == 0 {
+			continue
+		}
 		var e alerts.Event
-		if json.Unmarshal(sc.Bytes(), &e) != nil || e.ID == "" {
+		if json.Unmarshal(line, &e) != nil || e.ID == "" {
 			bad++
 			continue
 		}

@@ -2,6 +2,7 @@ package daemon
 
 import (
 	"context"
+	"encoding/json"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -289,4 +290,46 @@ func TestLedgerRemembersWhatItEnded(t *testing.T) {
 	if len(l.ended) != ledgerRemember || len(l.endedOrder) != ledgerRemember {
 		t.Errorf("%d ends remembered, want %d", len(l.ended), ledgerRemember)
 	}
+}
+
+// FuzzLedgerRead: whatever a ledger file holds (a torn write, a disk that
+// returned garbage), opening it neither fails nor panics, every alarm it
+// leaves open has an id and is not in a terminal state, and the rewritten
+// file reads back to the same alarms.
+func FuzzLedgerRead(f *testing.F) {
+	raise, _ := json.Marshal(ledgerEvent("bed-9/air-trapping/1", alerts.Raised, 10))
+	clear, _ := json.Marshal(ledgerEvent("bed-9/air-trapping/1", alerts.Cleared, 20))
+	f.Add(append(append(raise, '\n'), clear...))
+	f.Add(raise[:len(raise)/2])
+	f.Add([]byte("{}\n\n{\"id\":\"x\",\"state\":\"raised\"}\n\xff\xfe"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		dir := t.TempDir()
+		if err := os.MkdirAll(filepath.Join(dir, "state"), 0o750); err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(filepath.Join(dir, "state", ledgerFile), data, 0o600); err != nil {
+			t.Fatal(err)
+		}
+		l, left, _, err := openLedger(dir)
+		if err != nil {
+			t.Fatalf("open: %v", err)
+		}
+		ids := map[string]bool{}
+		for _, e := range left {
+			if e.ID == "" || e.State.Terminal() {
+				t.Fatalf("left open: %+v", e)
+			}
+			ids[e.ID] = true
+		}
+		l.close()
+		_, again, bad, err := openLedger(dir)
+		if err != nil || bad != 0 || len(again) != len(left) {
+			t.Fatalf("reopened: %d left (want %d), %d bad, %v", len(again), len(left), bad, err)
+		}
+		for _, e := range again {
+			if !ids[e.ID] {
+				t.Fatalf("reopened ledger leaves %s open, the first did not", e.ID)
+			}
+		}
+	})
 }
