@@ -41,9 +41,10 @@ func ackOf(t *testing.T, url, stream, id string) string {
 }
 
 // TestKilledMuxStreamLeavesNoGhost: a stream of a multiplexed source keeps
-// no checkpoint. The daemon, a child process, is killed with SIGKILL while
-// such a stream has an alarm open (the bronchospasm scenario's air
-// trapping) and restarted on the same data directory: every alarm raised
+// no checkpoint. The daemon, a child process, is killed with SIGKILL as
+// soon as such a stream has an alarm open in JetStream (the bronchospasm
+// scenario's first, its rising peak pressure) and restarted on the same
+// data directory: every alarm raised
 // before the kill gets a terminal event, those the kill left open an
 // `ended` with reason "monitoring interrupted", from the alarm ledger
 // (daemon/ledger.go). Before the ledger they stayed open for every
