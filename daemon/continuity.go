@@ -154,22 +154,30 @@ func (s *stream) checkpoint(pl streamPipeline, now time.Time, stop bool) {
 	s.saveCheckpoint(pl, now, stop)
 }
 
-// checkpointAlarms writes the stream's checkpoint now when out carries
-// alarm events, before they are delivered, and reports whether it did.
-// An alarm raised, escalated, acknowledged or cleared in the two seconds
-// between periodic checkpoints was otherwise lost by a kill -9 in that
-// window: its events were in the spool and went out, but the restarted
-// daemon did not know the alarm, so nothing ever ended it (a ghost alarm
-// for every subscriber; tests/continuity_test.go). Written ahead, a kill
-// after the checkpoint and before the spool leaves at worst an alarm the
-// restart ends that no subscriber saw raised. Alarm events are rare (a
-// few an hour per stream), so the write costs little.
-func (s *stream) checkpointAlarms(pl streamPipeline, now time.Time, out stageOutput) bool {
-	if s.spec.Continuity == nil || len(out.Alerts) == 0 {
+// keepAlarms makes the alarm events of out, if any, known to what will end
+// them after a kill, before they are delivered, and reports whether it
+// wrote the checkpoint. A stream with a checkpoint writes it now: an alarm
+// raised, escalated, acknowledged or cleared in the two seconds between
+// periodic checkpoints was otherwise lost by a kill -9 in that window (its
+// events were in the spool and went out, but the restarted daemon did not
+// know the alarm, so nothing ever ended it: a ghost alarm for every
+// subscriber; tests/continuity_test.go). Written ahead, a kill after the
+// checkpoint and before the spool leaves at worst an alarm the restart ends
+// that no subscriber saw raised. A stream without one (a file or stdin)
+// records the raises, escalations and acknowledgements in the daemon's
+// alarm ledger (ledger.go) with one write and sync; their ends are
+// recorded once the spool holds them (deliverKept). Alarm events are rare
+// (a few an hour per stream), so either write costs little.
+func (s *stream) keepAlarms(pl streamPipeline, now time.Time, out stageOutput) bool {
+	if len(out.Alerts) == 0 {
 		return false
 	}
-	s.saveCheckpoint(pl, now, false)
-	return true
+	if s.spec.Continuity != nil {
+		s.saveCheckpoint(pl, now, false)
+		return true
+	}
+	s.spec.Ledger.keepOpening(s.log, s.m, out.Alerts)
+	return false
 }
 
 // saveCheckpoint writes the checkpoint (clean at a stop); a failure is
@@ -203,28 +211,12 @@ func (s *stream) endUnresumable(pubCtx, ctx context.Context, pl streamPipeline) 
 	}
 }
 
-// A stream that keeps no checkpoint (a file or stdin) records its alarms
-// in the daemon's alarm ledger (ledger.go) instead: each raise, escalation
-// and acknowledgement before it goes out, each end once the spool holds it.
+// A stream that keeps no checkpoint (a file or stdin) keeps its alarms in
+// the daemon's alarm ledger (ledger.go) instead (keepAlarms, deliverKept).
 // A kill then cannot leave them open for good (the next start ends them),
 // and neither can a failure of the stream: its next run starts the
 // recording over with a new pipeline, and first ends what the last run
 // left open (endLeftAlarms).
-
-// ledgerOpen records the raises, escalations and acknowledgements among
-// evs, with one write and sync, for a stream without a checkpoint.
-func (s *stream) ledgerOpen(evs []alerts.Event) {
-	if s.spec.Continuity != nil || s.spec.Ledger == nil || len(evs) == 0 {
-		return
-	}
-	open := make([]alerts.Event, 0, len(evs))
-	for i := range evs {
-		if !evs[i].State.Terminal() {
-			open = append(open, evs[i])
-		}
-	}
-	s.recordAlarm(true, open...)
-}
 
 // deliverKept delivers ev (deliver) and records the end of an alarm of a
 // stream without a checkpoint once the spool holds it.
@@ -243,17 +235,8 @@ func (s *stream) endLeftAlarms(ctx context.Context) {
 	if s.spec.Continuity != nil {
 		return
 	}
-	now := time.Now()
-	for _, e := range s.spec.Ledger.openOf(s.spec.ID) {
-		if e.Condition == CondDeliveryImpaired {
-			continue
-		}
-		ev := endedEvent(e, now)
-		if err := s.alerts.Publish(ctx, ev); err != nil {
-			s.log.Warn().Err(err).Str("alert", ev.DedupID()).Msg("alarm left open by the last run not ended")
-			continue
-		}
-		s.m.alerts.WithLabelValues(s.spec.ID, ev.Condition, string(ev.State)).Inc()
-		s.recordAlarm(false, ev)
-	}
+	left := s.spec.Ledger.openOf(func(e *alerts.Event) bool {
+		return e.Stream == s.spec.ID && e.Condition != CondDeliveryImpaired
+	})
+	s.spec.Ledger.endLeft(ctx, left, s.alerts, s.log, s.m)
 }

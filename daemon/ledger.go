@@ -16,6 +16,7 @@ import (
 	"github.com/rs/zerolog"
 
 	"trapline/alerts"
+	"trapline/alerts/pipeline"
 )
 
 // The alarm ledger keeps the open alarms that no stream checkpoint holds:
@@ -104,10 +105,7 @@ func openLedger(dataDir string) (l *alarmLedger, left []alerts.Event, bad int, e
 		}
 		l.apply(&e)
 	}
-	for _, e := range l.open {
-		left = append(left, e)
-	}
-	sort.Slice(left, func(i, j int) bool { return left[i].Time.Before(left[j].Time) })
+	left = l.openOfLocked(func(*alerts.Event) bool { return true })
 	if err := l.compact(); err != nil {
 		return nil, nil, bad, err
 	}
@@ -150,7 +148,8 @@ func (l *alarmLedger) rememberEnded(e *alerts.Event) {
 }
 
 // fate tells, for an alarm id the ledger ended, what became of it, as an
-// acknowledgement answers; false for any other id.
+// acknowledgement answers (pipeline.Terminal, as for an alarm a checkpoint
+// ended); false for any other id.
 func (l *alarmLedger) fate(id string) (string, bool) {
 	if l == nil {
 		return "", false
@@ -161,7 +160,7 @@ func (l *alarmLedger) fate(id string) (string, bool) {
 	if !ok {
 		return "", false
 	}
-	return fmt.Sprintf("alert %s ended at %s: %s", id, e.Time.UTC().Format(time.RFC3339), e.Reason), true
+	return pipeline.Terminal{ID: id, State: e.State, Time: e.Time, Reason: e.Reason}.String(), true
 }
 
 // endedOf reports whether the ledger ended an alarm of the stream with
@@ -294,28 +293,31 @@ func (d *Daemon) startLedger(ctx context.Context, del *delivery) error {
 	if bad > 0 {
 		d.log.Warn().Int("lines", bad).Str("file", l.path).Msg("alarm ledger: unreadable lines skipped (a write cut short)")
 	}
-	now := time.Now()
-	ended := 0
-	for _, e := range left {
-		ev := endedEvent(e, now)
-		if err := del.Publish(ctx, ev); err != nil {
-			d.log.Error().Err(err).Str("alert", ev.DedupID()).Msg("alarm left open by the last run not ended")
-			continue
-		}
-		d.m.alerts.WithLabelValues(ev.Stream, ev.Condition, string(ev.State)).Inc()
-		d.recordAlarms(false, ev)
-		ended++
-	}
 	if len(left) > 0 {
+		ended := l.endLeft(ctx, left, del, d.log, d.m)
 		d.log.Warn().Int("ended", ended).Int("left_open", len(left)).
 			Msg("alarms left open by a run that did not stop cleanly ended: monitoring interrupted")
 	}
 	return nil
 }
 
-// recordAlarms records evs in the daemon's ledger (see keep).
-func (d *Daemon) recordAlarms(sync bool, evs ...alerts.Event) {
-	d.ledger.keep(d.log, d.m, sync, evs...)
+// endLeft ends, through pub, the alarms evs that a run left open (state
+// ended, reason "monitoring interrupted") and records each end once pub
+// holds it; one pub refuses stays open in the ledger for the next try. It
+// returns how many it ended.
+func (l *alarmLedger) endLeft(ctx context.Context, evs []alerts.Event, pub alertSink, log zerolog.Logger, m *metrics) int {
+	now, ended := time.Now(), 0
+	for _, e := range evs {
+		ev := endedEvent(e, now)
+		if err := pub.Publish(ctx, ev); err != nil {
+			log.Error().Err(err).Str("alert", ev.DedupID()).Msg("alarm left open by the last run not ended")
+			continue
+		}
+		m.alerts.WithLabelValues(ev.Stream, ev.Condition, string(ev.State)).Inc()
+		l.keep(log, m, false, ev)
+		ended++
+	}
+	return ended
 }
 
 // keep records evs (see record); a failure is logged and counted with the
@@ -331,16 +333,37 @@ func (l *alarmLedger) keep(log zerolog.Logger, m *metrics, sync bool, evs ...ale
 	}
 }
 
-// openOf returns the open alarms of stream, oldest first.
-func (l *alarmLedger) openOf(stream string) []alerts.Event {
+// keepOpening keeps, with one write and sync, the events among evs that
+// open or carry on an alarm (a raise, escalation or acknowledgement):
+// those go to the ledger before the spool, ends after it (see record).
+func (l *alarmLedger) keepOpening(log zerolog.Logger, m *metrics, evs []alerts.Event) {
+	if l == nil {
+		return
+	}
+	open := make([]alerts.Event, 0, len(evs))
+	for i := range evs {
+		if !evs[i].State.Terminal() {
+			open = append(open, evs[i])
+		}
+	}
+	l.keep(log, m, true, open...)
+}
+
+// openOf returns the open alarms for which keep holds, oldest first.
+func (l *alarmLedger) openOf(keep func(*alerts.Event) bool) []alerts.Event {
 	if l == nil {
 		return nil
 	}
 	l.mu.Lock()
 	defer l.mu.Unlock()
+	return l.openOfLocked(keep)
+}
+
+// openOfLocked is openOf with l.mu held (or before l is shared).
+func (l *alarmLedger) openOfLocked(keep func(*alerts.Event) bool) []alerts.Event {
 	var out []alerts.Event
 	for _, e := range l.open {
-		if e.Stream == stream {
+		if keep(&e) {
 			out = append(out, e)
 		}
 	}

@@ -312,7 +312,7 @@ func (sh *shard) Breath(b *analyze.Breath) {
 func (sh *shard) publish(ctx context.Context, done chan<- struct{}) {
 	defer close(done)
 	var batch []alertJob
-	var open []alerts.Event
+	var evs []alerts.Event
 	for j := range sh.alerts {
 		batch = append(batch[:0], j)
 	gather:
@@ -327,13 +327,11 @@ func (sh *shard) publish(ctx context.Context, done chan<- struct{}) {
 				break gather
 			}
 		}
-		open = open[:0]
+		evs = evs[:0]
 		for i := range batch {
-			if !batch[i].ev.State.Terminal() {
-				open = append(open, batch[i].ev)
-			}
+			evs = append(evs, batch[i].ev)
 		}
-		sh.r.d.recordAlarms(true, open...)
+		sh.r.d.ledger.keepOpening(sh.r.d.log, sh.r.d.m, evs)
 		for i := range batch {
 			sh.publishOne(ctx, &batch[i])
 		}
@@ -352,7 +350,7 @@ func (sh *shard) publishOne(ctx context.Context, j *alertJob) {
 	}
 	sh.r.d.m.alerts.WithLabelValues(j.stream, j.ev.Condition, string(j.ev.State)).Inc()
 	if j.ev.State.Terminal() {
-		sh.r.d.recordAlarms(false, j.ev)
+		sh.r.d.ledger.keep(sh.r.d.log, sh.r.d.m, false, j.ev)
 	}
 }
 

@@ -356,7 +356,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 					s.view.Status(s.spec.ID, ev.Status)
 				}
 				out := pl.Status(ev, arrived)
-				s.checkpointAlarms(pl, arrived, out)
+				s.keepAlarms(pl, arrived, out)
 				if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 					return err
 				}
@@ -364,8 +364,8 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			if len(ev.Samples) > 0 {
 				out := pl.Samples(ev.Samples)
 				// Before the breaths go out (their numbers are reserved)
-				// and before the alarm events (see checkpointAlarms).
-				if !s.checkpointAlarms(pl, arrived, out) {
+				// and before the alarm events (see keepAlarms).
+				if !s.keepAlarms(pl, arrived, out) {
 					s.checkpoint(pl, arrived, false)
 				}
 				if err := s.emit(pubCtx, out, arrived); err != nil {
@@ -378,13 +378,13 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 			}
 		case now := <-tick.C:
 			out := pl.Tick(now)
-			s.checkpointAlarms(pl, now, out)
+			s.keepAlarms(pl, now, out)
 			if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 				return err
 			}
 			if s.spec.Health != nil {
 				out := pl.Finding(s.spec.Health(), now)
-				s.checkpointAlarms(pl, now, out)
+				s.keepAlarms(pl, now, out)
 				if err := s.emit(pubCtx, out, time.Time{}); err != nil {
 					return err
 				}
@@ -402,7 +402,7 @@ func (s *stream) analyse(ctx context.Context, pl streamPipeline, queue <-chan in
 				req.Reply <- err
 				continue
 			}
-			s.checkpointAlarms(pl, now, out)
+			s.keepAlarms(pl, now, out)
 			err = s.emit(pubCtx, out, time.Time{})
 			req.Reply <- err
 			if err != nil {
@@ -427,7 +427,6 @@ func (s *stream) drained(pubCtx, ctx context.Context, pl streamPipeline) error {
 // (a refusal degrades delivery but never stops the stream: see deliver),
 // breaths through the non-blocking bulletin.
 func (s *stream) emit(ctx context.Context, out stageOutput, arrived time.Time) error {
-	s.ledgerOpen(out.Alerts)
 	for i := range out.Alerts {
 		ev := out.Alerts[i]
 		s.deliverKept(ctx, ev)
