@@ -59,7 +59,7 @@ func (r *recording) Breath(b analyze.Breath)              { r.breaths = append(r
 func (r *recording) Alert(ev alerts.Event)                { r.events = append(r.events, ev) }
 
 // record runs a scenario for seconds of stream time, as fast as it goes.
-func record(t *testing.T, scenario string, seconds float64) *recording {
+func record(t testing.TB, scenario string, seconds float64) *recording {
 	t.Helper()
 	rec := &recording{}
 	f := newFeeder(t, rec, scenario, 1)
@@ -86,7 +86,7 @@ type ackAnswer struct {
 	err error
 }
 
-func newFeeder(t *testing.T, hub sink, scenario string, speed float64) *feeder {
+func newFeeder(t testing.TB, hub sink, scenario string, speed float64) *feeder {
 	t.Helper()
 	sc, err := simulator.Shipped(scenario)
 	if err != nil {
