@@ -110,6 +110,7 @@ type TextDecoder struct {
 	carry    []byte
 	skipping bool // discarding the rest of an over-long line
 	stats    DecoderStats
+	shapes   shapeCache // the fast lane's recent line shapes (text_shape.go)
 }
 
 var _ Decoder = (*TextDecoder)(nil)
@@ -253,6 +254,7 @@ func (d *TextDecoder) line(b []byte) {
 			return
 		}
 		d.layout, d.fast, d.err = l, fastLayout(l), nil
+		d.shapes = shapeCache{} // shapes hold the columns' places
 		return
 	}
 	d.stats.BadLines++

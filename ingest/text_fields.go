@@ -18,10 +18,22 @@ func (d *TextDecoder) fastLines(p []byte) int {
 	cols := d.layout.cols[:d.layout.need]
 	st := d.streams.def
 	done := 0
+	sc := &d.shapes
 	for {
-		s, n, ok := fastLine(p[done:], cols)
+		var s Sample
+		n, ok := 0, false
+		ready := sc.ready(p[done:])
+		if ready && sc.n > 0 {
+			if s, n, ok = shapedLine(p[done:], &sc.shapes[sc.last]); !ok {
+				s, n, ok = sc.read(p[done:])
+			}
+		}
 		if !ok {
-			break
+			if s, n, ok = fastLine(p[done:], cols); !ok {
+				sc.rest(ready)
+				break
+			}
+			sc.learn(p[done:], n, cols, ready)
 		}
 		// The fast lane's numbers are below 1e7 and no unit's factor
 		// takes them near overflow, so only a time made from a tiny
