@@ -111,6 +111,9 @@ type TextDecoder struct {
 	skipping bool // discarding the rest of an over-long line
 	stats    DecoderStats
 	shapes   shapeCache // the fast lane's recent line shapes (text_shape.go)
+	// batch holds the fast lane's samples of shaped lines on their way
+	// when they go on one at a time (not in runs).
+	batch [shapedBatch]Sample
 }
 
 var _ Decoder = (*TextDecoder)(nil)

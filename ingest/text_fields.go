@@ -16,51 +16,82 @@ import (
 // blanks, comments, headers and empty fields, which it cannot have.
 func (d *TextDecoder) fastLines(p []byte) int {
 	cols := d.layout.cols[:d.layout.need]
-	st := d.streams.def
-	done := 0
 	sc := &d.shapes
+	done := 0
 	for {
-		var s Sample
-		n, ok := 0, false
+		dst := d.batch[:]
+		if d.runs != nil {
+			dst = d.run[len(d.run):fastRun] // the run is handed on when full
+		}
 		ready := sc.ready(p[done:])
 		if ready && sc.n > 0 {
-			if s, n, ok = shapedLine(p[done:], &sc.shapes[sc.last]); !ok {
-				s, n, ok = sc.read(p[done:])
+			// Lines of a shape held, as many as dst takes.
+			k := shapedRun(p[done:], &sc.shapes[sc.last], dst)
+			if k == 0 {
+				k = sc.read(p[done:], dst)
+			}
+			if k > 0 {
+				taken := d.took(dst[:k])
+				done += taken * sc.shapes[sc.last].n
+				if taken < k {
+					break
+				}
+				continue
 			}
 		}
+		s, n, ok := fastLine(p[done:], cols)
 		if !ok {
-			if s, n, ok = fastLine(p[done:], cols); !ok {
-				sc.rest(ready)
-				break
-			}
-			sc.learn(p[done:], n, cols, ready)
+			sc.rest(ready)
+			break
 		}
-		// The fast lane's numbers are below 1e7 and no unit's factor
-		// takes them near overflow, so only a time made from a tiny
-		// declared rate can be infinite; the general path counts it.
-		if !d.layout.hasTime {
-			if s.TimeS = float64(st.n) / d.rateHz; math.IsInf(s.TimeS, 0) {
-				break
-			}
+		sc.learn(p[done:], n, cols, ready)
+		dst[0] = s
+		if d.took(dst[:1]) == 0 {
+			break
 		}
 		done += n
-		st.n++
-		d.stats.Samples++
-		if d.runs == nil {
-			d.emit(st.id, s)
-			continue
-		}
-		if d.run = append(d.run, s); len(d.run) == fastRun {
-			d.runs(st.id, d.run)
-			d.run = d.run[:0]
-		}
 	}
 	// The run goes on before any line of the general path.
 	if len(d.run) > 0 {
-		d.runs(st.id, d.run)
+		d.runs(d.streams.def.id, d.run)
 		d.run = d.run[:0]
 	}
 	return done
+}
+
+// shapedBatch is how many samples of shaped lines the fast lane reads
+// before it hands them on one at a time.
+const shapedBatch = 16
+
+// took hands on the samples ss of the fast lane, which are d.run's next
+// ones when it goes on in runs, and returns how many it took. Without a
+// time column their time is made from the sample count; the fast lane's
+// numbers are below 1e7 and no unit's factor takes them near overflow, so
+// only a time made from a tiny declared rate can be infinite, and the
+// fast lane stops before that sample, which the general path counts.
+func (d *TextDecoder) took(ss []Sample) int {
+	st := d.streams.def
+	if !d.layout.hasTime {
+		for i := range ss {
+			if ss[i].TimeS = float64(st.n+int64(i)) / d.rateHz; math.IsInf(ss[i].TimeS, 0) {
+				ss = ss[:i]
+				break
+			}
+		}
+	}
+	st.n += int64(len(ss))
+	d.stats.Samples += uint64(len(ss))
+	if d.runs == nil {
+		for _, s := range ss {
+			d.emit(st.id, s)
+		}
+		return len(ss)
+	}
+	if d.run = d.run[:len(d.run)+len(ss)]; len(d.run) == fastRun {
+		d.runs(st.id, d.run)
+		d.run = d.run[:0]
+	}
+	return len(ss)
 }
 
 // fastLine reads one line of the fast lane at the start of b and returns

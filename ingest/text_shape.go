@@ -40,7 +40,7 @@ const shapeSlots = 4
 // and points exactly, the high half of every digit 0x3) and no digit's low
 // half is above 9 (digitLow marks the digits).
 type lineShape struct {
-	n, words             int // the line's length with its end, and its words
+	n                    int // the line's length with its end
 	mask, want, digitLow [maxShapeBytes / 8]uint64
 	fields               [maxShapeFields]shapeField
 	nf                   int
@@ -61,40 +61,50 @@ type shapeField struct {
 	col       column
 }
 
-// shapedLine reads the line at the start of b when it has shape s; b must
-// hold shapeReach bytes. It returns what fastLine would (the same digits
-// valued by the same operations), and false when the line has another
-// shape.
-func shapedLine(b []byte, s *lineShape) (Sample, int, bool) {
-	b = b[:shapeReach]
-	var bad uint64
-	for i := range s.words {
-		i &= maxShapeBytes/8 - 1 // words ≤ 4: no bounds checks
-		w := binary.LittleEndian.Uint64(b[8*i:])
+// shapedRun reads the lines of shape s at the start of b into dst, as
+// many as dst holds while b holds shapeReach bytes from the line's start,
+// and returns how many it read; each is s.n bytes long. Each sample is
+// what fastLine makes of its line: the same digits valued by the same
+// operations.
+func shapedRun(b []byte, s *lineShape, dst []Sample) int {
+	k, off := 0, 0
+	for ; k < len(dst) && len(b)-off >= shapeReach; k++ {
+		w := b[off : off+shapeReach]
+		// Every word of the four is checked, those past the line's end
+		// with empty masks: no loop, and no branch on the line's length.
 		// A digit's low half plus 6 stays under 0x10 up to 9; no carry
 		// leaves a byte (0x0F + 6 < 0x100).
-		bad |= (w&s.mask[i] ^ s.want[i]) | ((w&0x0F0F0F0F0F0F0F0F)+0x0606060606060606)&s.digitLow[i]
+		const low, six = 0x0F0F0F0F0F0F0F0F, 0x0606060606060606
+		x0, x1 := binary.LittleEndian.Uint64(w[0:]), binary.LittleEndian.Uint64(w[8:])
+		x2, x3 := binary.LittleEndian.Uint64(w[16:]), binary.LittleEndian.Uint64(w[24:])
+		bad := (x0&s.mask[0] ^ s.want[0]) | (x0&low+six)&s.digitLow[0] |
+			(x1&s.mask[1] ^ s.want[1]) | (x1&low+six)&s.digitLow[1] |
+			(x2&s.mask[2] ^ s.want[2]) | (x2&low+six)&s.digitLow[2] |
+			(x3&s.mask[3] ^ s.want[3]) | (x3&low+six)&s.digitLow[3]
+		if bad != 0 {
+			break
+		}
+		vals := [8]float64{colVolume: NoVolume} // by column kind, in internal units
+		for j := range s.nf & 7 {
+			f := &s.fields[j&(maxShapeFields-1)]
+			word := binary.LittleEndian.Uint64(w[f.at&(maxShapeBytes-1):])
+			frac := binary.LittleEndian.Uint64(w[f.frac&(maxShapeBytes-1):])
+			// The fraction's digits right after the integer's, at the top
+			// of the word, valued as digitsValue values them. (Shifts
+			// masked to 63: the compiler then needs no code for larger
+			// ones.)
+			v := (word&f.intMask | frac<<(f.fracShift&63)) & 0x0F0F0F0F0F0F0F0F << (f.topShift & 63)
+			v = (v * (10<<8 + 1)) >> 8
+			v = ((v & 0x00FF00FF00FF00FF) * (100<<16 + 1)) >> 16
+			v = ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
+			x := math.Float64frombits(math.Float64bits(float64(int64(v))/f.scale) ^ f.sign)
+			vals[f.col.kind&7] = f.col.unit.toInternal(x)
+		}
+		dst[k] = Sample{TimeS: vals[colTime], PressureCmH2O: vals[colPressure], FlowLPS: vals[colFlow],
+			VolumeL: vals[colVolume]}
+		off += s.n
 	}
-	if bad != 0 {
-		return Sample{}, 0, false
-	}
-	vals := [8]float64{colVolume: NoVolume} // by column kind, in internal units
-	for j := range s.nf & 7 {
-		f := &s.fields[j&(maxShapeFields-1)]
-		word := binary.LittleEndian.Uint64(b[f.at&(maxShapeBytes-1):])
-		frac := binary.LittleEndian.Uint64(b[f.frac&(maxShapeBytes-1):])
-		// The fraction's digits right after the integer's, at the top of
-		// the word, valued as digitsValue values them.
-		// (Shifts masked to 63: the compiler then needs no code for larger ones.)
-		v := (word&f.intMask | frac<<(f.fracShift&63)) & 0x0F0F0F0F0F0F0F0F << (f.topShift & 63)
-		v = (v * (10<<8 + 1)) >> 8
-		v = ((v & 0x00FF00FF00FF00FF) * (100<<16 + 1)) >> 16
-		v = ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
-		x := math.Float64frombits(math.Float64bits(float64(int64(v))/f.scale) ^ f.sign)
-		vals[f.col.kind&7] = f.col.unit.toInternal(x)
-	}
-	return Sample{TimeS: vals[colTime], PressureCmH2O: vals[colPressure], FlowLPS: vals[colFlow],
-		VolumeL: vals[colVolume]}, s.n, true
+	return k
 }
 
 // learnShape describes line, which fastLine read as numbers of the columns
@@ -106,7 +116,7 @@ func learnShape(line []byte, cols []column) (lineShape, bool) {
 	if len(line) > maxShapeBytes || len(cols) > maxShapeFields {
 		return s, false
 	}
-	s.n, s.words, s.nf = len(line), (len(line)+7)/8, len(cols)
+	s.n, s.nf = len(line), len(cols)
 	i := 0
 	for j, c := range cols {
 		f := &s.fields[j]
@@ -187,20 +197,20 @@ func (c *shapeCache) ready(b []byte) bool {
 	return c.idle == 0 && len(b) >= shapeReach
 }
 
-// read reads the line at the start of b, which holds shapeReach bytes,
-// when it has one of the shapes held (see shapedLine), the one that
-// matched last tried first.
-func (c *shapeCache) read(b []byte) (Sample, int, bool) {
+// read reads the lines at the start of b into dst (see shapedRun) with
+// the first shape held other than the one that matched last that reads
+// any, and makes it the last; it returns how many it read.
+func (c *shapeCache) read(b []byte, dst []Sample) int {
 	for k := range c.n {
 		if k == c.last {
 			continue
 		}
-		if s, n, ok := shapedLine(b, &c.shapes[k]); ok {
+		if m := shapedRun(b, &c.shapes[k], dst); m > 0 {
 			c.last = k
-			return s, n, true
+			return m
 		}
 	}
-	return Sample{}, 0, false
+	return 0
 }
 
 // rest is told of a line that neither a shape nor fastLine read; ready

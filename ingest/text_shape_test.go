@@ -19,6 +19,16 @@ func padded(line string) []byte {
 	return []byte(line + strings.Repeat("9", shapeReach))
 }
 
+// shapedOne reads one line of shape s at the start of b (shapedRun into
+// one sample).
+func shapedOne(b []byte, s *lineShape) (Sample, int, bool) {
+	var one [1]Sample
+	if shapedRun(b, s, one[:]) == 0 {
+		return Sample{}, 0, false
+	}
+	return one[0], s.n, true
+}
+
 // checkShaped reads candidate with the shape learned from teacher and
 // compares it with fastLine: a shaped read must give the same sample bit
 // for bit and the same length, and must happen whenever the candidate's
@@ -35,7 +45,7 @@ func checkShaped(t *testing.T, teacher, candidate string) {
 		return
 	}
 	cb := padded(candidate)
-	got, gn, gok := shapedLine(cb, &sh)
+	got, gn, gok := shapedOne(cb, &sh)
 	want, wn, wok := fastLine(cb, shapeCols)
 	if gok && (!wok || gn != wn || math.Float64bits(got.TimeS) != math.Float64bits(want.TimeS) ||
 		math.Float64bits(got.PressureCmH2O) != math.Float64bits(want.PressureCmH2O) ||
@@ -95,7 +105,7 @@ func TestShapedLineAgainstFastLine(t *testing.T) {
 		}
 		checkShaped(t, teacher, string(b))
 		if sh, ok := learnShape(padded(teacher)[:len(teacher)], shapeCols); ok {
-			if _, _, ok := shapedLine(padded(string(b)), &sh); ok {
+			if _, _, ok := shapedOne(padded(string(b)), &sh); ok {
 				shaped++
 			}
 		}
@@ -130,13 +140,31 @@ func TestTextDecoderReadsShapes(t *testing.T) {
 	// The last lines' shape is held: the next such line is read by it.
 	last := in[len(in)-26:]
 	last = last[strings.LastIndexByte(string(last[:len(last)-1]), '\n')+1:]
-	if _, _, ok := shapedLine(padded(string(last)), &d.shapes.shapes[d.shapes.last]); !ok {
+	if _, _, ok := shapedOne(padded(string(last)), &d.shapes.shapes[d.shapes.last]); !ok {
 		t.Fatalf("the last line %q is not of the shape the decoder used last", last)
 	}
 	// A header drops the shapes: they hold the columns' places.
 	_, _ = d.Write([]byte("pressure[hPa],flow[L/s],time[ms]\n"))
 	if d.shapes.n != 0 {
 		t.Fatalf("%d shapes held after a new header", d.shapes.n)
+	}
+}
+
+// TestShapedRunStopsAtAnotherShape reads a run of lines: those of the
+// shape, up to the first that is not, and no more than the room given.
+func TestShapedRunStopsAtAnotherShape(t *testing.T) {
+	in := padded("0.005,13.417,50.000\n0.010,13.500,49.875\n0.015,13.583,49.750\n0.020,9.999,49.625\n")
+	_, n, _ := fastLine(in, shapeCols)
+	sh, ok := learnShape(in[:n], shapeCols)
+	if !ok {
+		t.Fatal("no shape learned")
+	}
+	dst := make([]Sample, 8)
+	if k := shapedRun(in, &sh, dst); k != 3 || dst[2].PressureCmH2O != 13.583 || dst[2].FlowLPS != 49.75/60 {
+		t.Fatalf("read %d lines, the third %+v: want 3, the third at 13.583 cmH2O", k, dst[2])
+	}
+	if k := shapedRun(in, &sh, dst[:2]); k != 2 {
+		t.Fatalf("read %d lines into room for 2", k)
 	}
 }
 
