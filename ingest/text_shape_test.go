@@ -176,3 +176,34 @@ func FuzzShapedLine(f *testing.F) {
 	f.Add("12,0.5,-0.125\n", "12,0.5,-0.1\x00\n")
 	f.Fuzz(func(t *testing.T, teacher, candidate string) { checkShaped(t, teacher, candidate) })
 }
+
+// TestFastLaneStopsAtAnInfiniteTime decodes shaped lines without a time
+// column at a declared rate so small that the second sample's time is
+// infinite: the fast lane stops before it, and the decoder counts what
+// the general path alone counts.
+func TestFastLaneStopsAtAnInfiniteTime(t *testing.T) {
+	opts := DecoderOptions{Columns: "pressure,flow", RateHz: 5e-324}
+	in := []byte(strings.Repeat("13.417,50.000\n", 200))
+	want, wantStats := decodeBytewise(opts, in)
+	for _, inRuns := range []bool{false, true} {
+		var g got
+		o := opts
+		if inRuns {
+			o.Runs = func(stream string, ss []Sample) {
+				for _, s := range ss {
+					g.emit(stream, s)
+				}
+			}
+		}
+		d, _ := NewTextDecoder(o, g.emit)
+		_, _ = d.Write(in)
+		d.Flush()
+		if d.Stats() != wantStats || !sameSamples(g, want) {
+			t.Fatalf("runs %v: %+v (%d samples), general path %+v (%d samples)", inRuns, d.Stats(), len(g.samples),
+				wantStats, len(want.samples))
+		}
+	}
+	if wantStats.Samples != 1 || wantStats.BadLines != 199 {
+		t.Fatalf("general path %+v: want 1 sample and 199 bad lines", wantStats)
+	}
+}
