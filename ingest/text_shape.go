@@ -15,10 +15,10 @@ import (
 // changes when a value gains a digit or changes sign, a few times a
 // breath: over 10 min of simulated patients at 25 and 200 Hz, 4 shapes
 // held all but 0.01–0.08 % of the lines. A line of a known shape is read
-// without looking for where its numbers end: its bytes are classed
-// (digit or not) a word at a time, checked against the shape, and each
-// number is valued from the positions the shape gives. Every other line
-// takes fastLine, and teaches its shape when it has one.
+// without looking for where its numbers end: its four 8-byte words are
+// checked against the shape, and each number is valued from the places
+// the shape gives, in runs of lines. Every other line takes fastLine, and
+// teaches its shape when it has one.
 
 // maxShapeBytes is the longest line, with its end, that a shape describes:
 // four words.
