@@ -1,6 +1,7 @@
 package ingest
 
 import (
+	"bytes"
 	"encoding/binary"
 	"math"
 )
@@ -13,8 +14,12 @@ import (
 // a number of fastLine's form followed directly by a comma, the last one by
 // "\n" or "\r\n". Such a line decodes here to what line would make of it,
 // without finding its end first and without the general path's checks for
-// blanks, comments, headers and empty fields, which it cannot have.
+// blanks, comments, headers and empty fields, which it cannot have. A
+// layout that starts with a stream column takes fastStreamLines.
 func (d *TextDecoder) fastLines(p []byte) int {
+	if d.layout.cols[0].kind == colStream {
+		return d.fastStreamLines(p)
+	}
 	cols := d.layout.cols[:d.layout.need]
 	sc := &d.shapes
 	done := 0
@@ -24,13 +29,9 @@ func (d *TextDecoder) fastLines(p []byte) int {
 			dst = d.run[len(d.run):fastRun] // the run is handed on when full
 		}
 		ready := sc.ready(p[done:])
-		if ready && sc.n > 0 {
+		if ready {
 			// Lines of a shape held, as many as dst takes.
-			k := shapedRun(p[done:], &sc.shapes[sc.last], dst)
-			if k == 0 {
-				k = sc.read(p[done:], dst)
-			}
-			if k > 0 {
+			if k := sc.run(p[done:], dst); k > 0 {
 				taken := d.took(dst[:k])
 				done += taken * sc.shapes[sc.last].n
 				if taken < k {
@@ -166,14 +167,93 @@ func fastLine(b []byte, cols []column) (Sample, int, bool) {
 }
 
 // fastLayout reports whether lines of layout l may take the fast lane: its
-// needed columns are all numbers.
+// needed columns are all numbers, or a stream column and then numbers.
 func fastLayout(l layout) bool {
-	for _, c := range l.cols[:l.need] {
+	cols := l.cols[:l.need]
+	if len(cols) > 1 && cols[0].kind == colStream {
+		cols = cols[1:]
+	}
+	for _, c := range cols {
 		if c.kind == colIgnore || c.kind == colStream {
 			return false
 		}
 	}
-	return l.need > 0
+	return len(cols) > 0
+}
+
+// fastStreamLines is fastLines for a layout whose first column is the
+// stream: a line takes it when the stream table takes the bytes before its
+// first comma as an id (so none is a blank) and the rest of the line is
+// one of fastLine's. Such a line decodes here to what line
+// would make of it; samples in runs go on in runs of one stream, a run
+// ending where the stream changes.
+func (d *TextDecoder) fastStreamLines(p []byte) int {
+	cols := d.layout.cols[1:d.layout.need]
+	done := 0
+	var runOf *streamState // the stream of d.run
+	for {
+		b := p[done:]
+		// The id ends at the first comma. The table takes only valid ids,
+		// so an id with a blank, a line end or any other byte that is not
+		// an id's goes to the general path, as does an empty one.
+		k := bytes.IndexByte(b[:min(len(b), maxStreamID+1)], ',')
+		if k <= 0 {
+			break
+		}
+		st := d.streams.get(b[:k])
+		if st == nil {
+			break
+		}
+		s, n, ok := d.streamLine(b[k+1:], cols)
+		if !ok {
+			break
+		}
+		if !d.layout.hasTime {
+			if s.TimeS = float64(st.n) / d.rateHz; math.IsInf(s.TimeS, 0) {
+				break
+			}
+		}
+		done += k + 1 + n
+		st.n++
+		d.stats.Samples++
+		if d.runs == nil {
+			d.emit(st.id, s)
+			continue
+		}
+		if st != runOf && len(d.run) > 0 {
+			d.runs(runOf.id, d.run)
+			d.run = d.run[:0]
+		}
+		runOf = st
+		if d.run = append(d.run, s); len(d.run) == fastRun {
+			d.runs(st.id, d.run)
+			d.run = d.run[:0]
+		}
+	}
+	// The run goes on before any line of the general path.
+	if len(d.run) > 0 {
+		d.runs(runOf.id, d.run)
+		d.run = d.run[:0]
+	}
+	return done
+}
+
+// streamLine reads the rest of a line after its stream id, b, as fastLine
+// does: by a shape held when it has one, else by fastLine, which teaches
+// its shape. Lines of many streams each read one line at a time.
+func (d *TextDecoder) streamLine(b []byte, cols []column) (Sample, int, bool) {
+	sc := &d.shapes
+	ready := sc.ready(b)
+	if ready && sc.run(b, d.batch[:1]) == 1 {
+		return d.batch[0], sc.shapes[sc.last].n, true
+	}
+	s, n, ok := fastLine(b, cols)
+	if !ok {
+		sc.rest(ready)
+		return s, n, false
+	}
+	sc.learn(b, n, cols, ready)
+	return s, n, true
 }
 
 // numberField reads the number at the start of b and finds the end of its

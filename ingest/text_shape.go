@@ -173,19 +173,21 @@ type shapeCache struct {
 	last   int // the one that matched or was learned last
 	next   int // the slot the next shape learned takes
 	// misses counts the lines that neither a shape nor fastLine read since
-	// a shape was last learned.
-	misses int
-	// idle counts lines on which no shape is tried or learned, after a
-	// line that fastLine read but that had no shape (numbers too long, say)
-	// or after shapeMissRun lines that only the general path read: input
-	// whose lines seldom have a shape pays for the tries once in a while,
-	// not on every line.
+	// a shape was last learned, and fresh the shapes learned since a line
+	// was last read by one.
+	misses, fresh int
+	// idle counts lines on which no shape is tried or learned: the shapes
+	// rest after a line that fastLine read but that had no shape (numbers
+	// too long, say), after shapeMissRun lines that only the general path
+	// read, and after shapeMissRun shapes learned in a row that no line
+	// then had (lines of many streams whose layouts differ). Input whose
+	// lines seldom repeat a shape pays for the tries once in a while, not
+	// on every line.
 	idle int
 }
 
-// shapeMissRun is how many lines only the general path reads, since a
-// shape was last learned, before the shapes rest for shapeIdleLines
-// lines.
+// shapeMissRun is how many lines in a row may miss the shapes, as above,
+// before they rest for shapeIdleLines lines.
 const shapeMissRun = 8
 
 // shapeIdleLines is how many lines the shapes rest.
@@ -197,20 +199,26 @@ func (c *shapeCache) ready(b []byte) bool {
 	return c.idle == 0 && len(b) >= shapeReach
 }
 
-// read reads the lines at the start of b into dst (see shapedRun) with
-// the first shape held other than the one that matched last that reads
-// any, and makes it the last; it returns how many it read.
-func (c *shapeCache) read(b []byte, dst []Sample) int {
-	for k := range c.n {
-		if k == c.last {
-			continue
-		}
-		if m := shapedRun(b, &c.shapes[k], dst); m > 0 {
-			c.last = k
-			return m
+// run reads the lines at the start of b into dst (see shapedRun), with
+// the shape that matched last or else the first other that reads any,
+// which becomes the last; it returns how many it read. b holds
+// shapeReach bytes.
+func (c *shapeCache) run(b []byte, dst []Sample) int {
+	if c.n == 0 {
+		return 0
+	}
+	m := shapedRun(b, &c.shapes[c.last], dst)
+	for k := 0; m == 0 && k < c.n; k++ {
+		if k != c.last {
+			if m = shapedRun(b, &c.shapes[k], dst); m > 0 {
+				c.last = k
+			}
 		}
 	}
-	return 0
+	if m > 0 {
+		c.fresh = 0
+	}
+	return m
 }
 
 // rest is told of a line that neither a shape nor fastLine read; ready
@@ -220,7 +228,7 @@ func (c *shapeCache) rest(ready bool) {
 	case !ready:
 		c.idle = max(c.idle-1, 0)
 	case c.misses+1 >= shapeMissRun:
-		c.idle, c.misses = shapeIdleLines, 0
+		c.idle, c.misses, c.fresh = shapeIdleLines, 0, 0
 	default:
 		c.misses++
 	}
@@ -229,18 +237,19 @@ func (c *shapeCache) rest(ready bool) {
 // learn is told of a line of n bytes at the start of b that no shape held
 // read and fastLine read as numbers of the columns cols; ready says
 // whether it was one for the shapes. It keeps the line's shape in place
-// of the oldest shape learned; a line without a shape starts a rest.
+// of the oldest shape learned, or starts a rest (see shapeCache.idle).
 func (c *shapeCache) learn(b []byte, n int, cols []column, ready bool) {
 	if !ready {
 		c.idle = max(c.idle-1, 0)
 		return
 	}
 	s, ok := learnShape(b[:n], cols)
-	if !ok {
-		c.idle, c.misses = shapeIdleLines, 0
+	if !ok || c.fresh+1 >= shapeMissRun {
+		c.idle, c.misses, c.fresh = shapeIdleLines, 0, 0
 		return
 	}
 	c.shapes[c.next], c.last, c.misses = s, c.next, 0
+	c.fresh++
 	c.next = (c.next + 1) % shapeSlots
 	c.n = min(c.n+1, shapeSlots)
 }
