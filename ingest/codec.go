@@ -157,6 +157,9 @@ type streamState struct {
 	// counter of the next sample (binary).
 	n       int64
 	started bool
+	// shape is the line shape its last text line had (text_shape.go), the
+	// first one tried for its next.
+	shape uint8
 	// next is the stream whose sample followed this one's last time: a
 	// link of many streams repeats their order, so it is usually the next.
 	next *streamState

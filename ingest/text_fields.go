@@ -204,7 +204,7 @@ func (d *TextDecoder) fastStreamLines(p []byte) int {
 		if st == nil {
 			break
 		}
-		s, n, ok := d.streamLine(b[k+1:], cols)
+		s, n, ok := d.streamLine(b[k+1:], cols, st)
 		if !ok {
 			break
 		}
@@ -241,11 +241,19 @@ func (d *TextDecoder) fastStreamLines(p []byte) int {
 // streamLine reads the rest of a line after its stream id, b, as fastLine
 // does: by a shape held when it has one, else by fastLine, which teaches
 // its shape. Lines of many streams each read one line at a time.
-func (d *TextDecoder) streamLine(b []byte, cols []column) (Sample, int, bool) {
+func (d *TextDecoder) streamLine(b []byte, cols []column, st *streamState) (Sample, int, bool) {
 	sc := &d.shapes
 	ready := sc.ready(b)
-	if ready && sc.run(b, d.batch[:1]) == 1 {
-		return d.batch[0], sc.shapes[sc.last].n, true
+	if ready {
+		// Streams interleave, each keeping its own shape for a while:
+		// the shape of the stream's last line is tried first.
+		if h := int(st.shape); h < sc.n {
+			sc.last = h
+		}
+		if sc.run(b, d.batch[:1]) == 1 {
+			st.shape = uint8(sc.last)
+			return d.batch[0], sc.shapes[sc.last].n, true
+		}
 	}
 	s, n, ok := fastLine(b, cols)
 	if !ok {
@@ -253,6 +261,7 @@ func (d *TextDecoder) streamLine(b []byte, cols []column) (Sample, int, bool) {
 		return s, n, false
 	}
 	sc.learn(b, n, cols, ready)
+	st.shape = uint8(sc.last)
 	return s, n, true
 }
 
