@@ -182,17 +182,13 @@ func (t *timeline) driftVerdict(p float64) bool {
 // after a gap.
 type Timelines struct {
 	rateHz float64
-	tls    map[string]*timeline
-	// The stream of the previous sample and its timeline: most input is
-	// one stream, or runs of samples of one, so the map is rarely asked.
-	lastStream string
-	lastTL     *timeline
+	tls    StreamIndex[*timeline]
 }
 
 // NewTimelines returns the timelines of input with the declared sample
 // rate rateHz (0 = none), as ingest.Options.RateHz.
 func NewTimelines(rateHz float64) *Timelines {
-	return &Timelines{rateHz: rateHz, tls: map[string]*timeline{}}
+	return &Timelines{rateHz: rateHz}
 }
 
 // Admit checks one sample of stream. It returns the sample with its
@@ -240,13 +236,10 @@ func (t *Timelines) AdmitRun(stream string, ss []Sample, gap func(before []Sampl
 
 // of returns the timeline of stream, made with its first sample.
 func (t *Timelines) of(stream string) *timeline {
-	tl := t.lastTL
-	if tl == nil || stream != t.lastStream {
-		if tl = t.tls[stream]; tl == nil {
-			tl = newTimeline(t.rateHz)
-			t.tls[stream] = tl
-		}
-		t.lastStream, t.lastTL = stream, tl
+	tl, ok := t.tls.Get(stream)
+	if !ok {
+		tl = newTimeline(t.rateHz)
+		t.tls.Put(stream, tl)
 	}
 	return tl
 }

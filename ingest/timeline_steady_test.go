@@ -26,7 +26,7 @@ func TestTimelineSteadyAgainstAdmit(t *testing.T) {
 			tS = timingFault(r, tS, 500, false)
 			tS += period * (1 + (r.Float64()-0.5)*0.1)
 			want, v, _, _ := ref.admit(tS)
-			if tl := tls.lastTL; tl != nil && tl.nMean >= driftWindow-1 {
+			if tl, ok := tls.tls.Get("s"); ok && tl.nMean >= driftWindow-1 {
 				steadyTaken++
 			}
 			got, gap, ok := tls.Admit("s", Sample{TimeS: tS})
@@ -34,8 +34,8 @@ func TestTimelineSteadyAgainstAdmit(t *testing.T) {
 				t.Fatalf("round %d sample %d: Admit %v %v %v, admit %v %v", round, i, got.TimeS, gap, ok, want, v)
 			}
 		}
-		if !reflect.DeepEqual(*tls.lastTL, *ref) {
-			t.Fatalf("round %d: states differ: %+v and %+v", round, *tls.lastTL, *ref)
+		if tl, _ := tls.tls.Get("s"); !reflect.DeepEqual(*tl, *ref) {
+			t.Fatalf("round %d: states differ: %+v and %+v", round, *tl, *ref)
 		}
 		if steadyTaken < 10000 {
 			t.Fatalf("round %d: the steady case came up %d times", round, steadyTaken)

@@ -90,7 +90,7 @@ type offline struct {
 	lcfg      alerts.LifecycleConfig
 	start     time.Time
 	alerts    bool
-	pipelines map[string]*pipeline.Pipeline
+	pipelines ingest.StreamIndex[*pipeline.Pipeline]
 	// pend holds a run of samples of pendStream not yet analysed: the
 	// timing checks and the pipeline take a run in one call, and the
 	// stream's pipeline is looked up once a run (runPl, the pipeline of
@@ -117,7 +117,7 @@ type offline struct {
 
 func newOffline(cfg analyze.Config, out io.Writer, summary bool) *offline {
 	o := &offline{cfg: cfg, dcfg: analyze.DefaultDetectorConfig(), lcfg: alerts.DefaultLifecycleConfig(),
-		start: offlineEpoch, alerts: true, pipelines: map[string]*pipeline.Pipeline{},
+		start: offlineEpoch, alerts: true,
 		pend: make([]ingest.Sample, 0, offlineRun),
 		out:  bufio.NewWriterSize(out, 64<<10), summary: summary}
 	o.onGap = o.gap
@@ -155,10 +155,10 @@ func (o *offline) flush() {
 // the timing checks to the stream's pipeline.
 func (o *offline) analyse(stream string, ss []ingest.Sample) {
 	o.samples += uint64(len(ss))
-	pl := o.pipelines[stream]
-	if pl == nil {
+	pl, ok := o.pipelines.Get(stream)
+	if !ok {
 		pl = pipeline.NewOffline(pipeline.Options{Stream: stream, Analysis: o.cfg, Detectors: o.dcfg, Alarms: o.lcfg}, o.start)
-		o.pipelines[stream] = pl
+		o.pipelines.Put(stream, pl)
 	}
 	o.runPl = pl
 	if o.timing != nil {

@@ -1,0 +1,41 @@
+package ingest
+
+import (
+	"fmt"
+	"math/rand/v2"
+	"testing"
+)
+
+// TestStreamIndexAgainstMap asks a StreamIndex and a map for the same
+// streams, in a repeating order with now and then another stream and new
+// ones, and checks that both give the same value.
+func TestStreamIndexAgainstMap(t *testing.T) {
+	r := rand.New(rand.NewPCG(4, 4))
+	var x StreamIndex[int]
+	m := map[string]int{}
+	ids := make([]string, 30)
+	for i := range ids {
+		ids[i] = fmt.Sprintf("bed-%d", i)
+	}
+	for i := range 20000 {
+		id := ids[i%len(ids)]
+		if r.IntN(10) == 0 {
+			id = ids[r.IntN(len(ids))]
+		}
+		if r.IntN(500) == 0 {
+			id = fmt.Sprintf("new-%d", i)
+		}
+		got, ok := x.Get(id)
+		want, wantOK := m[id]
+		if ok != wantOK || got != want {
+			t.Fatalf("sample %d, %s: index %d %v, map %d %v", i, id, got, ok, want, wantOK)
+		}
+		if !ok {
+			x.Put(id, i)
+			m[id] = i
+		}
+	}
+	if x.Len() != len(m) {
+		t.Fatalf("index holds %d streams, map %d", x.Len(), len(m))
+	}
+}
