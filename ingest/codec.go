@@ -183,12 +183,13 @@ func (t *streamTable) get(b []byte) *streamState {
 	if len(b) == 0 {
 		return t.def
 	}
-	if string(b) == t.last.id {
-		return t.last
-	}
+	// The stream that followed the last one first (as in StreamIndex.Get).
 	if n := t.last.next; n != nil && string(b) == n.id {
 		t.last = n
 		return n
+	}
+	if string(b) == t.last.id {
+		return t.last
 	}
 	s, ok := t.m[string(b)]
 	if !ok {

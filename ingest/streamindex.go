@@ -20,12 +20,15 @@ type indexEntry[V any] struct {
 // Get returns the value of stream id, and false when it has none.
 func (x *StreamIndex[V]) Get(id string) (V, bool) {
 	if e := x.last; e != nil {
-		if e.id == id {
-			return e.v, true
-		}
+		// The stream that followed first: on input of many streams it is
+		// the one, and comparing it with the last one's id first would
+		// compare the bytes of two ids of the same length.
 		if n := e.next; n != nil && n.id == id {
 			x.last = n
 			return n.v, true
+		}
+		if e.id == id {
+			return e.v, true
 		}
 	}
 	e := x.m[id]
