@@ -36,17 +36,15 @@ func (b *Batch) add(x int32, s Sample) {
 // reader keeps per-stream state in a slice rather than a map. A
 // BatchDecoder is not safe for concurrent use.
 type BatchDecoder struct {
-	dec     Decoder
-	into    *Batch
-	ids     []string
-	index   map[string]int32
-	last    string
-	lastIdx int32
+	dec   Decoder
+	into  *Batch
+	ids   []string
+	index StreamIndex[int32]
 }
 
 // NewBatchDecoder returns a batch decoder of a format; see NewDecoder.
 func NewBatchDecoder(f Format, opts DecoderOptions) (*BatchDecoder, error) {
-	d := &BatchDecoder{index: map[string]int32{}, lastIdx: -1}
+	d := &BatchDecoder{}
 	dec, err := NewDecoder(f, opts, d.emit)
 	if err != nil {
 		return nil, err
@@ -56,19 +54,16 @@ func NewBatchDecoder(f Format, opts DecoderOptions) (*BatchDecoder, error) {
 }
 
 // emit is the decoder's callback. Stream ids come interned from the
-// decoder, so the comparison with the last id is usually a pointer check.
+// decoder, so the comparisons of StreamIndex are usually pointer checks.
 func (d *BatchDecoder) emit(stream string, s Sample) {
-	if d.lastIdx < 0 || stream != d.last {
-		x, ok := d.index[stream]
-		if !ok {
-			x = int32(len(d.ids))
-			d.ids = append(d.ids, stream)
-			d.index[stream] = x
-			d.into.IDs = d.ids
-		}
-		d.last, d.lastIdx = stream, x
+	x, ok := d.index.Get(stream)
+	if !ok {
+		x = int32(len(d.ids))
+		d.ids = append(d.ids, stream)
+		d.index.Put(stream, x)
+		d.into.IDs = d.ids
 	}
-	d.into.add(d.lastIdx, s)
+	d.into.add(x, s)
 }
 
 // Decode decodes p and appends its complete samples to into; a partial
