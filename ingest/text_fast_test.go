@@ -22,6 +22,30 @@ func decodeBytewise(opts DecoderOptions, input []byte) (got, DecoderStats) {
 	return g, d.Stats()
 }
 
+// decodeChunked decodes input in Writes of chunk() bytes, the fast lane
+// handing on its samples one at a time or, with inRuns, in runs; it
+// returns what was emitted, the counters and the number of runs.
+func decodeChunked(opts DecoderOptions, input []byte, inRuns bool, chunk func() int) (got, DecoderStats, int) {
+	var g got
+	runs := 0
+	if inRuns {
+		opts.Runs = func(stream string, ss []Sample) {
+			runs++
+			for _, s := range ss {
+				g.emit(stream, s)
+			}
+		}
+	}
+	d, _ := NewTextDecoder(opts, g.emit)
+	for p := input; len(p) > 0; {
+		k := min(len(p), chunk())
+		_, _ = d.Write(p[:k])
+		p = p[k:]
+	}
+	d.Flush()
+	return g, d.Stats(), runs
+}
+
 // sameSamples reports whether two decodings emitted the same samples, bit
 // for bit, on the same streams.
 func sameSamples(a, b got) bool {
@@ -115,26 +139,11 @@ func TestTextFastLaneAgainstGeneral(t *testing.T) {
 		// The fast lane handing on samples one at a time, then in runs
 		// (DecoderOptions.Runs) interleaved with the general path's.
 		for _, inRuns := range []bool{false, true} {
-			var g got
-			o := opts
-			if inRuns {
-				o.Runs = func(stream string, ss []Sample) {
-					runs++
-					for _, s := range ss {
-						g.emit(stream, s)
-					}
-				}
-			}
-			d, _ := NewTextDecoder(o, g.emit)
-			for p := input; len(p) > 0; {
-				k := min(len(p), 1+r.IntN(4096))
-				_, _ = d.Write(p[:k])
-				p = p[k:]
-			}
-			d.Flush()
-			if d.Stats() != wantStats || !sameSamples(g, want) {
+			g, st, n := decodeChunked(opts, input, inRuns, func() int { return 1 + r.IntN(4096) })
+			runs += n
+			if st != wantStats || !sameSamples(g, want) {
 				t.Fatalf("round %d, runs %v: fast lane %+v (%d samples), general path %+v (%d samples)", round, inRuns,
-					d.Stats(), len(g.samples), wantStats, len(want.samples))
+					st, len(g.samples), wantStats, len(want.samples))
 			}
 		}
 		if round == 0 && wantStats.Samples < 150 {

@@ -186,20 +186,9 @@ func TestFastLaneStopsAtAnInfiniteTime(t *testing.T) {
 	in := []byte(strings.Repeat("13.417,50.000\n", 200))
 	want, wantStats := decodeBytewise(opts, in)
 	for _, inRuns := range []bool{false, true} {
-		var g got
-		o := opts
-		if inRuns {
-			o.Runs = func(stream string, ss []Sample) {
-				for _, s := range ss {
-					g.emit(stream, s)
-				}
-			}
-		}
-		d, _ := NewTextDecoder(o, g.emit)
-		_, _ = d.Write(in)
-		d.Flush()
-		if d.Stats() != wantStats || !sameSamples(g, want) {
-			t.Fatalf("runs %v: %+v (%d samples), general path %+v (%d samples)", inRuns, d.Stats(), len(g.samples),
+		g, st, _ := decodeChunked(opts, in, inRuns, func() int { return len(in) })
+		if st != wantStats || !sameSamples(g, want) {
+			t.Fatalf("runs %v: %+v (%d samples), general path %+v (%d samples)", inRuns, st, len(g.samples),
 				wantStats, len(want.samples))
 		}
 	}
