@@ -100,8 +100,9 @@ func splitColumn(f []byte) (name, unit string, ok bool) {
 // without a header.
 type TextDecoder struct {
 	emit     EmitFunc
-	runs     RunFunc  // DecoderOptions.Runs
-	run      []Sample // the fast lane's run for runs
+	runs     RunFunc      // DecoderOptions.Runs
+	run      []Sample     // the fast lane's run for runs
+	runOf    *streamState // the stream of run
 	rateHz   float64
 	layout   layout
 	fast     bool // the layout's lines may take the fast lane (fastLines)

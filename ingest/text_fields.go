@@ -32,7 +32,7 @@ func (d *TextDecoder) fastLines(p []byte) int {
 		if ready {
 			// Lines of a shape held, as many as dst takes.
 			if k := sc.run(p[done:], dst); k > 0 {
-				taken := d.took(dst[:k])
+				taken := d.took(d.streams.def, dst[:k])
 				done += taken * sc.shapes[sc.last].n
 				if taken < k {
 					break
@@ -47,16 +47,12 @@ func (d *TextDecoder) fastLines(p []byte) int {
 		}
 		sc.learn(p[done:], n, cols, ready)
 		dst[0] = s
-		if d.took(dst[:1]) == 0 {
+		if d.took(d.streams.def, dst[:1]) == 0 {
 			break
 		}
 		done += n
 	}
-	// The run goes on before any line of the general path.
-	if len(d.run) > 0 {
-		d.runs(d.streams.def.id, d.run)
-		d.run = d.run[:0]
-	}
+	d.flushRun() // before any line of the general path
 	return done
 }
 
@@ -64,14 +60,14 @@ func (d *TextDecoder) fastLines(p []byte) int {
 // before it hands them on one at a time.
 const shapedBatch = 16
 
-// took hands on the samples ss of the fast lane, which are d.run's next
-// ones when it goes on in runs, and returns how many it took. Without a
-// time column their time is made from the sample count; the fast lane's
-// numbers are below 1e7 and no unit's factor takes them near overflow, so
-// only a time made from a tiny declared rate can be infinite, and the
-// fast lane stops before that sample, which the general path counts.
-func (d *TextDecoder) took(ss []Sample) int {
-	st := d.streams.def
+// took hands on the samples ss of stream st from the fast lane, which
+// are d.run's next ones when it goes on in runs, and returns how many it
+// took. Without a time column their time is made from the sample count;
+// the fast lane's numbers are below 1e7 and no unit's factor takes them
+// near overflow, so only a time made from a tiny declared rate can be
+// infinite, and the fast lane stops before that sample, which the general
+// path counts.
+func (d *TextDecoder) took(st *streamState, ss []Sample) int {
 	if !d.layout.hasTime {
 		for i := range ss {
 			if ss[i].TimeS = float64(st.n+int64(i)) / d.rateHz; math.IsInf(ss[i].TimeS, 0) {
@@ -88,11 +84,18 @@ func (d *TextDecoder) took(ss []Sample) int {
 		}
 		return len(ss)
 	}
-	if d.run = d.run[:len(d.run)+len(ss)]; len(d.run) == fastRun {
-		d.runs(st.id, d.run)
-		d.run = d.run[:0]
+	if d.runOf, d.run = st, d.run[:len(d.run)+len(ss)]; len(d.run) == fastRun {
+		d.flushRun()
 	}
 	return len(ss)
+}
+
+// flushRun hands on the fast lane's run, if any.
+func (d *TextDecoder) flushRun() {
+	if len(d.run) > 0 {
+		d.runs(d.runOf.id, d.run)
+		d.run = d.run[:0]
+	}
 }
 
 // fastLine reads one line of the fast lane at the start of b and returns
@@ -190,7 +193,6 @@ func fastLayout(l layout) bool {
 func (d *TextDecoder) fastStreamLines(p []byte) int {
 	cols := d.layout.cols[1:d.layout.need]
 	done := 0
-	var runOf *streamState // the stream of d.run
 	for {
 		b := p[done:]
 		// The id ends at the first comma. The table takes only valid ids,
@@ -208,33 +210,20 @@ func (d *TextDecoder) fastStreamLines(p []byte) int {
 		if !ok {
 			break
 		}
-		if !d.layout.hasTime {
-			if s.TimeS = float64(st.n) / d.rateHz; math.IsInf(s.TimeS, 0) {
-				break
+		dst := d.batch[:1]
+		if d.runs != nil {
+			if st != d.runOf {
+				d.flushRun() // a run is of one stream
 			}
+			dst = d.run[len(d.run) : len(d.run)+1]
+		}
+		dst[0] = s
+		if d.took(st, dst) == 0 {
+			break
 		}
 		done += k + 1 + n
-		st.n++
-		d.stats.Samples++
-		if d.runs == nil {
-			d.emit(st.id, s)
-			continue
-		}
-		if st != runOf && len(d.run) > 0 {
-			d.runs(runOf.id, d.run)
-			d.run = d.run[:0]
-		}
-		runOf = st
-		if d.run = append(d.run, s); len(d.run) == fastRun {
-			d.runs(st.id, d.run)
-			d.run = d.run[:0]
-		}
 	}
-	// The run goes on before any line of the general path.
-	if len(d.run) > 0 {
-		d.runs(runOf.id, d.run)
-		d.run = d.run[:0]
-	}
+	d.flushRun() // before any line of the general path
 	return done
 }
 
