@@ -51,9 +51,6 @@ func (x *StreamIndex[V]) Put(id string, v V) {
 	x.follow(e)
 }
 
-// Len returns the number of streams held.
-func (x *StreamIndex[V]) Len() int { return len(x.m) }
-
 // follow makes e the stream asked for last, after the one before it.
 func (x *StreamIndex[V]) follow(e *indexEntry[V]) {
 	if x.last != nil {

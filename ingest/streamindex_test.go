@@ -35,7 +35,9 @@ func TestStreamIndexAgainstMap(t *testing.T) {
 			m[id] = i
 		}
 	}
-	if x.Len() != len(m) {
-		t.Fatalf("index holds %d streams, map %d", x.Len(), len(m))
+	for id, want := range m {
+		if got, ok := x.Get(id); !ok || got != want {
+			t.Fatalf("%s: index %d %v at the end, map %d", id, got, ok, want)
+		}
 	}
 }
