@@ -121,7 +121,10 @@ func metricValue(body, name string) float64 {
 // child process) whose only NATS node hangs for 20 s (a proxy in front of
 // the node stops forwarding). Nothing is lost: every sample of every
 // stream is stored exactly once; the edge's peak resident memory stays
-// within 64 MiB + 0.25 MiB per stream.
+// within 64 MiB + 0.25 MiB per stream. The edge runs with a soft memory
+// limit of that budget less the program's own pages, as docs/scaleout.md
+// advises: left to its default the collector lets the heap reach twice
+// what is live, and the peak wanders over the budget.
 func TestClusterEdgeNodeHang(t *testing.T) {
 	if testing.Short() {
 		t.Skip("a 50 s cluster test")
@@ -133,7 +136,7 @@ func TestClusterEdgeNodeHang(t *testing.T) {
 	rec := simFile(t, t.TempDir(), "hyper", "hyperinflation", 36*time.Second)
 	httpAddr := fmt.Sprintf("127.0.0.1:%d", freePort(t))
 	var edge strings.Builder
-	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nhttp: {listen: \"%s\"}\nlog: {level: info}\nnats: {url: \"nats://%s\", replicas: 3}\nscaleout: {partitions: 8, replicas: 3}\nstreams:\n",
+	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nmemory_limit: 80MiB\nhttp: {listen: \"%s\"}\nlog: {level: info}\nnats: {url: \"nats://%s\", replicas: 3}\nscaleout: {partitions: 8, replicas: 3}\nstreams:\n",
 		t.TempDir(), httpAddr, proxy.addr())
 	for i := range streams {
 		id := fmt.Sprintf("bed-%03d", i)
