@@ -20,9 +20,12 @@ var pow10 = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10,
 // rounded multiplication or division of two exact float64 numbers, hence the
 // correctly rounded result (Clinger W.D., "How to read floating point numbers
 // accurately", PLDI 1990). Samples written with a few decimals always take
-// this path. Other inputs, whose syntax is known to be right by then, go
-// through strconv.ParseFloat, which is also correctly rounded: both paths
-// give the same float64.
+// this path. Up to 19 significant digits otherwise (the shortest form of a
+// computed float64 has 16 or 17) take the Eisel–Lemire algorithm
+// (eiselLemire), correctly rounded too. Other inputs, and the rare ones
+// Eisel–Lemire cannot decide, whose syntax is known to be right by then,
+// go through strconv.ParseFloat, which is also correctly rounded: every
+// path gives the same float64.
 func parseNumber(b []byte) (float64, bool) {
 	v, n, ok := scanNumber(b)
 	return v, ok && n == len(b)
@@ -90,13 +93,51 @@ func scanNumber(b []byte) (float64, int, bool) {
 		}
 		return f, i, true
 	}
-	// strconv copies the input into its error, so the conversion below does
-	// not make b escape.
-	f, err := strconv.ParseFloat(string(b[:i]), 64)
-	if err != nil || math.IsInf(f, 0) || math.IsNaN(f) {
+	f, ok := longNumber(b[:i], b[start:i], mant, nd, exp10, neg)
+	if !ok {
 		return 0, 0, false
 	}
 	return f, i, true
+}
+
+// longNumber is the value of the number b whose mantissa digits begin
+// digits (nd of them, gathered into mant when at most 19 are significant)
+// and whose decimal exponent is exp10, when the exact path of scanNumber
+// does not apply: Eisel–Lemire when it can decide, strconv.ParseFloat
+// otherwise. Kept apart so that scanNumber's common path stays small.
+func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64, bool) {
+	if nd > 19 {
+		// Leading zeros add nothing to the mantissa.
+		nd -= leadingZeros(digits)
+	}
+	if nd <= 19 {
+		if f, ok := eiselLemire(mant, exp10, neg); ok {
+			return f, true
+		}
+	}
+	// strconv copies the input into its error, so the conversion below does
+	// not make b escape.
+	f, err := strconv.ParseFloat(string(b), 64)
+	if err != nil || math.IsInf(f, 0) || math.IsNaN(f) {
+		return 0, false
+	}
+	return f, true
+}
+
+// leadingZeros counts the zero digits at the start of b, a number's
+// digits and point, before its first other character.
+func leadingZeros(b []byte) int {
+	n := 0
+	for _, c := range b {
+		switch c {
+		case '0':
+			n++
+		case '.':
+		default:
+			return n
+		}
+	}
+	return n
 }
 
 // endsNumber reports whether c may follow a number in a field: the field
