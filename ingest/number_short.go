@@ -1,6 +1,9 @@
 package ingest
 
-import "math/bits"
+import (
+	"encoding/binary"
+	"math/bits"
+)
 
 // fastReach is how many bytes from the start of a field the fast lane
 // reads: a sign, 7 digits, a '.', the 8 bytes of the fraction's word, and
@@ -36,4 +39,43 @@ func digitsValue(w uint64, k int) uint64 {
 	v = (v * (10<<8 + 1)) >> 8
 	v = ((v & 0x00FF00FF00FF00FF) * (100<<16 + 1)) >> 16
 	return ((v & 0x0000FFFF0000FFFF) * (10000<<32 + 1)) >> 32
+}
+
+// longFraction values a field of the fast lane whose fraction fills its
+// first word: f is the field's line from its start, at where the fraction
+// begins, word the integer part's k1 digits and frac the fraction's first
+// eight. The fraction may go on for up to two more words, 23 digits in
+// all (the shortest text of a computed value has up to 17 significant
+// digits, after any leading zeros); it returns the number's magnitude (the
+// caller applies the sign), where it ends in f, and false when it is
+// longer, when its digits make an integer of 2^64 or more, or when f
+// lacks the bytes of a word and of a line end after it. Up to 2^53 and 22
+// fraction digits the value is exact as in fastLine; otherwise it is the
+// Eisel–Lemire conversion (eiselLemire), and false where that cannot
+// decide.
+func longFraction(f []byte, at int, word, frac uint64, k1 int) (float64, int, bool) {
+	mant := digitsValue(word, k1)*1e8 + digitsValue(frac, 8) // below 10^15
+	end := at + 8
+	for words := 0; ; words++ {
+		if len(f)-end < 9 || words == 2 {
+			return 0, 0, false
+		}
+		next := binary.LittleEndian.Uint64(f[end:])
+		k := leadingDigits(next)
+		hi, lo := bits.Mul64(mant, pow10u[k])
+		lo, carry := bits.Add64(lo, digitsValue(next, k), 0)
+		if hi|carry != 0 {
+			return 0, 0, false
+		}
+		mant, end = lo, end+k
+		if k < 8 {
+			break
+		}
+	}
+	kf := end - at
+	if mant < 1<<53 && kf <= 22 {
+		return float64(mant) / pow10[kf], end, true
+	}
+	v, ok := eiselLemire(mant, -kf, false)
+	return v, end, ok
 }

@@ -75,9 +75,12 @@ func TestTextFastLaneAgainstGeneral(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 17))
 	fixed := false
 	number := func() string {
-		switch r.IntN(12) {
+		switch r.IntN(14) {
 		case 0:
 			return strconv.FormatFloat((r.Float64()-0.5)*1e9, 'f', r.IntN(9), 64) // long
+		case 12, 13:
+			// The shortest text of a computed value: long fractions.
+			return strconv.FormatFloat((r.Float64()-0.5)*math.Pow(10, float64(r.IntN(10)-4)), 'f', -1, 64)
 		case 1:
 			return strconv.FormatFloat(r.Float64(), 'e', 3, 64)
 		case 2:
@@ -198,7 +201,15 @@ func TestFastLineAgainstStrconv(t *testing.T) {
 	taken := 0
 	for _, s := range []string{"0", "-0", "+0", "0.0", "-0.0000", "5.", ".5", "-.5", "+.5", "-", "+", ".", "-.",
 		"9999999.9999999", "-9999999.9999999", "99999999.5", "0.99999999", "12345678", "1234567.12345678",
-		"0000000.0000001", "1e5", "1.5e", "1.2.3", "1..2", "--1", "1\xff", "\xb9", "1\x80", "0.1", "0.3", "3599.9950"} {
+		"0000000.0000001", "1e5", "1.5e", "1.2.3", "1..2", "--1", "1\xff", "\xb9", "1\x80", "0.1", "0.3", "3599.9950",
+		// Fractions that go on into a second word.
+		"0.123456789012345", "-0.1234567890123456", "15.041887779554038", "47.99957889749461",
+		"1234567.123456789012", "9999999.999999999999", "1234567.1234567890123", "9007199.254740993",
+		"9007199.2547409935", ".123456789", "-.0000000000000001", "0.00000000", "0.000000000000000", "12.12345678x",
+		// and into a third.
+		"1.0050000000000001", "0.0012345678901234567", "-0.00000000000000000000001", "0.000000000000000000000001",
+		"1234567.12345678901234567", "0.99999999999999999999999", "18.446744073709551615", "18.446744073709551616",
+		"0.18446744073709551616", "1.000000000000000000000", "0.0000000000000000000000"} {
 		checkFastNumber(t, s)
 	}
 	r := rand.New(rand.NewPCG(8, 13))
@@ -211,6 +222,20 @@ func TestFastLineAgainstStrconv(t *testing.T) {
 	}
 	if taken < 50000 {
 		t.Fatalf("the fast lane took only %d of 200000 ordinary numbers", taken)
+	}
+	// The shortest text of computed values of a signal's magnitudes: their
+	// fractions mostly go on into a second or third word.
+	long := 0
+	for range 200000 {
+		s := strconv.FormatFloat((r.Float64()-0.5)*math.Pow(10, float64(r.IntN(12)-5)), 'f', -1, 64)
+		line := []byte(s + ",1\n" + strings.Repeat("7", 24))
+		if _, _, ok := fastLine(line, []column{{kind: colPressure}, {kind: colFlow}}); ok && len(s) > 12 {
+			long++
+		}
+		checkFastNumber(t, s)
+	}
+	if long < 100000 {
+		t.Fatalf("the fast lane took only %d of 200000 shortest texts longer than 12 bytes", long)
 	}
 }
 

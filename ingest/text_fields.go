@@ -102,16 +102,18 @@ func (d *TextDecoder) flushRun() {
 // its sample (its time as read), its length with the line end, and false
 // when it is not such a line. Its numbers are those samples are written
 // with: an optional sign, at most 7 digits, and optionally a '.' and at
-// most 7 more. Each run of digits is read as one 64-bit word rather than a
-// byte at a time (leadingDigits, digitsValue), so no branch guesses where a
-// number ends; it reads only within b, and needs fastReach bytes from the
-// start of each field.
+// most 7 more, or up to 23 more in the shortest text of a computed value
+// (longFraction). Each run of digits is read as one 64-bit word rather
+// than a byte at a time (leadingDigits, digitsValue), so no branch guesses
+// where a number ends; it reads only within b, and needs fastReach bytes
+// from the start of each field (a long fraction checks for its own).
 //
 // The value: at most 14 digits make an integer below 2^53, exact as a
 // float64, and dividing it by an exact power of ten up to 1e7 is one
 // correctly rounded operation, hence the correctly rounded result (Clinger
 // W.D., "How to read floating point numbers accurately", PLDI 1990), the
-// same float64 as strconv.ParseFloat (FuzzFastLine checks it).
+// same float64 as strconv.ParseFloat (FuzzFastLine checks it). A long
+// fraction is exact the same way or by Eisel–Lemire (longFraction).
 func fastLine(b []byte, cols []column) (Sample, int, bool) {
 	vals := [8]float64{colVolume: NoVolume} // by column kind, in internal units
 	i := 0
@@ -134,22 +136,34 @@ func fastLine(b []byte, cols []column) (Sample, int, bool) {
 			k2 = leadingDigits(frac)
 			e += 1 + k2
 		}
+		var v float64
 		if k1 == 8 || k2 == 8 || k1+k2 == 0 {
-			return Sample{}, 0, false // perhaps more digits; a sign or a point alone
-		}
-		var mant uint64
-		if k1+k2 <= 8 {
-			// Both runs fit one word: the fraction's digits right after
-			// the integer's, read in one go.
-			mant = digitsValue(word&(1<<(8*uint(k1))-1)|frac<<(8*uint(k1)), k1+k2)
+			// A fraction that fills its word goes on in the next one (the
+			// shortest text of a computed value); anything else is perhaps
+			// more digits, or a sign or a point alone.
+			var ok bool
+			if k2 != 8 || k1 == 8 {
+				return Sample{}, 0, false
+			}
+			if v, e, ok = longFraction(b[i:], e-8, word, frac, k1); !ok {
+				return Sample{}, 0, false
+			}
+			w = b[i : i+e+2] // longFraction checked that the line end's bytes are there
 		} else {
-			// Longer numbers: the two runs' values, the integer part
-			// scaled by the fraction's digits. Written here rather than
-			// called, so that the loop keeps its values in registers
-			// (10 fewer instructions a line).
-			mant = digitsValue(word, k1)*pow10u[k2] + digitsValue(frac, k2)
+			var mant uint64
+			if k1+k2 <= 8 {
+				// Both runs fit one word: the fraction's digits right after
+				// the integer's, read in one go.
+				mant = digitsValue(word&(1<<(8*uint(k1))-1)|frac<<(8*uint(k1)), k1+k2)
+			} else {
+				// Longer numbers: the two runs' values, the integer part
+				// scaled by the fraction's digits. Written here rather than
+				// called, so that the loop keeps its values in registers
+				// (10 fewer instructions a line).
+				mant = digitsValue(word, k1)*pow10u[k2] + digitsValue(frac, k2)
+			}
+			v = float64(int64(mant)) / pow10[k2]
 		}
-		v := float64(int64(mant)) / pow10[k2]
 		if neg {
 			v = -v
 		}
