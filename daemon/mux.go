@@ -158,6 +158,14 @@ func (ms *muxSource) stream(id string) *muxStream {
 	return st
 }
 
+// slotValue is what s holds, nil for no slot.
+func slotValue(s *ingest.StreamSlot) any {
+	if s == nil {
+		return nil
+	}
+	return s.V
+}
+
 // deliver is the source's direct sink: it routes the events of one read to
 // the shards of their streams, one work batch per shard.
 func (ms *muxSource) deliver(evs []ingest.Event) {
@@ -165,7 +173,14 @@ func (ms *muxSource) deliver(evs []ingest.Event) {
 	arrived := time.Now()
 	refused := 0
 	for i := range evs {
-		st := ms.stream(evs[i].Stream)
+		// The stream's slot on its connection remembers it: a lookup by
+		// id only on its first event there (streams are never removed).
+		st, _ := slotValue(evs[i].Slot).(*muxStream)
+		if st == nil {
+			if st = ms.stream(evs[i].Stream); st != nil && evs[i].Slot != nil {
+				evs[i].Slot.V = st
+			}
+		}
 		if st == nil {
 			refused += len(evs[i].Samples)
 			evs[i].Release()

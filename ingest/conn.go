@@ -118,6 +118,7 @@ type connStream struct {
 	tl      *timeline
 	pending *[]Sample
 	next    *connStream // the stream that followed this one last time
+	slot    StreamSlot  // the BatchSink's, carried by this stream's events
 }
 
 // stream returns the state of a stream on this conn, making it on its
@@ -229,7 +230,7 @@ func (c *conn) flush(cs *connStream) {
 	if c.pace != nil {
 		c.pace.wait(c.ctx, (*b)[0].TimeS)
 	}
-	c.push(Event{Stream: stream, Samples: *b}, b)
+	c.push(Event{Stream: stream, Samples: *b, Slot: &cs.slot}, b)
 }
 
 func (c *conn) flushAll() {
@@ -248,6 +249,7 @@ func (c *conn) push(e Event, buf *[]Sample) {
 		c.out = append(c.out, e)
 		return
 	}
+	e.Slot = nil // a slot is the reading goroutine's, and queued events leave it
 	_ = c.s.q.push(c.ctx, queued{ev: e, buf: buf})
 }
 

@@ -1,0 +1,105 @@
+package ingest
+
+import (
+	"context"
+	"fmt"
+	"net"
+	"sync"
+	"testing"
+	"time"
+)
+
+// TestStreamSlotFollowsItsStream checks the slots a BatchSink gets: every
+// event of samples carries one, a slot belongs to one stream of one
+// connection, what the sink keeps there is there on the stream's next
+// events, and two connections of the same streams have slots of their own.
+func TestStreamSlotFollowsItsStream(t *testing.T) {
+	var mu sync.Mutex
+	slots := map[*StreamSlot]string{} // slot → the stream it carries
+	samples, kept := 0, 0
+	var bad []string
+	opts := Options{Silence: -1, Direct: func(evs []Event) {
+		mu.Lock()
+		defer mu.Unlock()
+		for i := range evs {
+			e := &evs[i]
+			if len(e.Samples) == 0 {
+				continue
+			}
+			samples += len(e.Samples)
+			switch id, seen := slots[e.Slot]; {
+			case e.Slot == nil:
+				bad = append(bad, "an event of "+e.Stream+" without a slot")
+			case seen && id != e.Stream:
+				bad = append(bad, fmt.Sprintf("the slot of %s carries %s", id, e.Stream))
+			case seen && e.Slot.V != e.Stream:
+				bad = append(bad, fmt.Sprintf("the slot of %s lost what the sink kept: %v", id, e.Slot.V))
+			case seen:
+				kept++
+			default:
+				if e.Slot.V != nil {
+					bad = append(bad, fmt.Sprintf("a new slot of %s holds %v", e.Stream, e.Slot.V))
+				}
+				slots[e.Slot] = e.Stream
+				e.Slot.V = e.Stream
+			}
+			e.Release()
+		}
+	}}
+	src, err := Open("tcp-listen://127.0.0.1:0", opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	go func() { done <- src.Run(ctx, nil) }()
+	defer func() { cancel(); <-done }()
+	for src.(Listener).Addr() == "" {
+		time.Sleep(time.Millisecond)
+	}
+	const writes, conns = 20, 2
+	ids := []string{"bed-a", "bed-b", "bed-c"}
+	for k := range conns {
+		c, err := net.Dial("tcp", src.(Listener).Addr())
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close()
+		_, _ = c.Write([]byte("stream,time[s],pressure[cmH2O],flow[L/min]\n"))
+		for n := range writes {
+			var b []byte
+			for _, id := range ids {
+				b = fmt.Appendf(b, "%s,%.2f,5,%d\n", id, float64(n+k*writes)/100, n)
+			}
+			if _, err := c.Write(b); err != nil {
+				t.Fatal(err)
+			}
+			time.Sleep(2 * time.Millisecond)
+		}
+	}
+	deadline := time.Now().Add(5 * time.Second)
+	for {
+		mu.Lock()
+		n := samples
+		mu.Unlock()
+		if n == conns*writes*len(ids) {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("%d of %d samples handed on", n, conns*writes*len(ids))
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+	mu.Lock()
+	defer mu.Unlock()
+	for _, b := range bad {
+		t.Error(b)
+	}
+	if len(slots) != conns*len(ids) {
+		t.Errorf("%d slots, want one per stream and connection (%d): %v", len(slots), conns*len(ids), slots)
+	}
+	if kept == 0 {
+		t.Error("no stream came back to its slot")
+	}
+	t.Logf("%d samples, %d slots, %d events found what the sink kept", samples, len(slots), kept)
+}
