@@ -100,11 +100,12 @@ func scanNumber(b []byte) (float64, int, bool) {
 	return f, i, true
 }
 
-// longNumber is the value of the number b whose mantissa digits begin
-// digits (nd of them, gathered into mant when at most 19 are significant)
-// and whose decimal exponent is exp10, when the exact path of scanNumber
-// does not apply: Eisel–Lemire when it can decide, strconv.ParseFloat
-// otherwise. Kept apart so that scanNumber's common path stays small.
+// longNumber is the value of the number b when scanNumber's exact path
+// does not apply: by Eisel–Lemire when it can decide, by
+// strconv.ParseFloat otherwise. digits is b from its first digit; nd
+// counts the digits, which scanNumber gathered into mant (exactly when at
+// most 19 of them are significant), and exp10 is the decimal exponent that
+// scales mant. Kept apart so that scanNumber's common path stays small.
 func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64, bool) {
 	if nd > 19 {
 		// Leading zeros add nothing to the mantissa.
