@@ -1,6 +1,7 @@
 package ingest
 
 import (
+	"encoding/binary"
 	"math"
 	"strconv"
 )
@@ -57,6 +58,18 @@ func scanNumber(b []byte) (float64, int, bool) {
 	if i < len(b) && b[i] == '.' {
 		i++
 		frac := i
+		// A long fraction is read eight digits at a time (leadingDigits,
+		// digitsValue) while eight bytes remain; past 19 digits mant
+		// wraps, and is then not used.
+		for len(b)-i >= 8 {
+			w := binary.LittleEndian.Uint64(b[i:])
+			k := leadingDigits(w)
+			mant = mant*pow10u[k] + digitsValue(w, k)
+			i += k
+			if k < 8 {
+				break
+			}
+		}
 		for ; i < len(b); i++ {
 			c := b[i] - '0'
 			if c > 9 {
@@ -82,16 +95,7 @@ func scanNumber(b []byte) (float64, int, bool) {
 		return 0, 0, false
 	}
 	if nd <= 19 && mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
-		f := float64(mant)
-		if exp10 < 0 {
-			f /= pow10[-exp10]
-		} else {
-			f *= pow10[exp10]
-		}
-		if neg {
-			f = -f
-		}
-		return f, i, true
+		return exactNumber(mant, exp10, neg), i, true
 	}
 	f, ok := longNumber(b[:i], b[start:i], mant, nd, exp10, neg)
 	if !ok {
@@ -112,6 +116,14 @@ func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64
 		nd -= leadingZeros(digits)
 	}
 	if nd <= 19 {
+		// Trailing zeros (a value with few digits written with many, as
+		// "%.18e" writes 50) leave an integer that an exact power of ten
+		// may scale exactly, which Eisel–Lemire, working from a truncated
+		// power, often cannot decide.
+		mant, exp10 := trimZeros(mant, exp10)
+		if mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
+			return exactNumber(mant, exp10, neg), true
+		}
 		if f, ok := eiselLemire(mant, exp10, neg); ok {
 			return f, true
 		}
@@ -123,6 +135,37 @@ func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64
 		return 0, false
 	}
 	return f, true
+}
+
+// trimZeros moves the trailing zero digits of mant into its decimal
+// exponent exp10.
+func trimZeros(mant uint64, exp10 int) (uint64, int) {
+	if mant == 0 {
+		return 0, exp10
+	}
+	for mant%1e8 == 0 {
+		mant, exp10 = mant/1e8, exp10+8
+	}
+	for mant%10 == 0 {
+		mant, exp10 = mant/10, exp10+1
+	}
+	return mant, exp10
+}
+
+// exactNumber is ±mant·10^exp10 for mant below 2^53 and exp10 within ±22:
+// both exact as float64 values, so one correctly rounded operation (Clinger,
+// see parseNumber).
+func exactNumber(mant uint64, exp10 int, neg bool) float64 {
+	f := float64(mant)
+	if exp10 < 0 {
+		f /= pow10[-exp10]
+	} else {
+		f *= pow10[exp10]
+	}
+	if neg {
+		f = -f
+	}
+	return f
 }
 
 // leadingZeros counts the zero digits at the start of b, a number's
