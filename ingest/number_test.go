@@ -42,6 +42,11 @@ func TestParseNumberAgainstStrconv(t *testing.T) {
 		"1.00000000000000011102230246251565404236316680908203125", "7.038531e-26", "2.2250738585072011e-308",
 		"", "-", "+", ".", "-.", "e5", ".e5", "1e", "1e+", "1e-", "1ee5", "1e5.5", "0x10", "0x1p3", "1_000",
 		"inf", "-Inf", "NaN", "infinity", "1,5", "1 5", " 1", "1 ", "--1", "+-1", "1.2.3", "1e5e5", "١",
+		// Short values written long, as NumPy's "%.18e" writes them: the
+		// trailing zeros go into the exponent.
+		"5.000000000000000000e+01", "1.350000000000000000e+01", "5.000000000000000104e-03",
+		"1.000000000000000000e+22", "1.000000000000000000e+23", "9.007199254740993000e+15",
+		"0.000000000000000000e+00", "-0.000000000000000000e+00", "1.0000000000000000000", "100000000000000000000e-20",
 	}
 	for _, s := range edges {
 		checkParse(t, s)
@@ -49,6 +54,14 @@ func TestParseNumberAgainstStrconv(t *testing.T) {
 	r := rand.New(rand.NewPCG(15, 53))
 	for range 200000 {
 		checkParse(t, randomNumber(r))
+	}
+	// "%.18e" of random values, and of values with few digits.
+	for i := range 100000 {
+		v := math.Ldexp(1+r.Float64(), r.IntN(120)-60)
+		if i%2 == 0 {
+			v = float64(r.IntN(100000)) / math.Pow(10, float64(r.IntN(8)))
+		}
+		checkParse(t, strconv.FormatFloat(v, 'e', 18, 64))
 	}
 }
 
