@@ -164,9 +164,9 @@ func TestTextFastLaneTakesOrdinaryLines(t *testing.T) {
 	var g got
 	d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
 	_, _ = d.Write([]byte("time[s],pressure[cmH2O],flow[L/min]\n"))
-	in := []byte("0.0050,15.1852,-50.0000\n0.0100,5.0000,0.5000\r\n0.0150,1234567.1234567,3\n")
+	in := []byte("0.0050,15.1852,-50.0000\n0.0100,5.0000,0.5000\r\n0.0150,1234567.1234567,3\n0.0175, 2.5000, -1.2500\n")
 	n := d.fastLines(append(in, "0.0200,1.0000,1.0000\n"...)) // the last line lacks room for its words
-	if n != len(in) || len(g.samples) != 3 || g.samples[2].PressureCmH2O != 1234567.1234567 {
+	if n != len(in) || len(g.samples) != 4 || g.samples[2].PressureCmH2O != 1234567.1234567 || g.samples[3].FlowLPS != -1.25/60 {
 		t.Fatalf("fast lane took %d of %d bytes, %d samples: %+v", n, len(in), len(g.samples), g.samples)
 	}
 }

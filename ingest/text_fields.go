@@ -11,11 +11,12 @@ import (
 // that does not, which the general path (line) then reads. A line takes the
 // fast lane when the layout's first columns are all numbers (no stream or
 // ignored column before the last one needed), each of its needed fields is
-// a number of fastLine's form followed directly by a comma, the last one by
-// "\n" or "\r\n". Such a line decodes here to what line would make of it,
-// without finding its end first and without the general path's checks for
-// blanks, comments, headers and empty fields, which it cannot have. A
-// layout that starts with a stream column takes fastStreamLines.
+// a number of fastLine's form, after at most one blank, followed directly
+// by a comma, the last one by "\n" or "\r\n". Such a line decodes here to
+// what line would make of it, without finding its end first and without
+// the general path's checks for other blanks, comments, headers and empty
+// fields, which it cannot have. A layout that starts with a stream column
+// takes fastStreamLines.
 func (d *TextDecoder) fastLines(p []byte) int {
 	if d.layout.cols[0].kind == colStream {
 		return d.fastStreamLines(p)
@@ -101,7 +102,7 @@ func (d *TextDecoder) flushRun() {
 // fastLine reads one line of the fast lane at the start of b and returns
 // its sample (its time as read), its length with the line end, and false
 // when it is not such a line. Its numbers are those samples are written
-// with: an optional sign, at most 7 digits, and optionally a '.' and at
+// with, each after at most one blank: an optional sign, at most 7 digits, and optionally a '.' and at
 // most 7 more, or up to 23 more in the shortest text of a computed value
 // (longFraction). Each run of digits is read as one 64-bit word rather
 // than a byte at a time (leadingDigits, digitsValue), so no branch guesses
@@ -120,6 +121,11 @@ func fastLine(b []byte, cols []column) (Sample, int, bool) {
 	for j, c := range cols {
 		if len(b)-i < fastReach {
 			return Sample{}, 0, false
+		}
+		if b[i] == ' ' { // one blank before a number, as in "0.005, 13.4, 50"
+			if i++; len(b)-i < fastReach {
+				return Sample{}, 0, false
+			}
 		}
 		w := b[i : i+fastReach]
 		neg := w[0] == '-'

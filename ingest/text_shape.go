@@ -121,6 +121,9 @@ func learnShape(line []byte, cols []column) (lineShape, bool) {
 	for j, c := range cols {
 		f := &s.fields[j]
 		f.col = c
+		if line[i] == ' ' {
+			i++ // the blank fastLine allows before a number
+		}
 		if line[i] == '-' || line[i] == '+' {
 			if line[i] == '-' {
 				f.sign = 1 << 63

@@ -119,34 +119,37 @@ func TestShapedLineAgainstFastLine(t *testing.T) {
 // read by their shapes, so that the shortcut cannot fall silently out of
 // use, and that the decoder keeps at most shapeSlots of them.
 func TestTextDecoderReadsShapes(t *testing.T) {
-	var g got
-	d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
-	var sb strings.Builder
-	sb.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
-	for i := range 2000 {
-		p := 5 + 20*math.Abs(math.Sin(float64(i)/40))
-		f := 60 * math.Sin(float64(i)/40)
-		sb.WriteString(strconv.FormatFloat(float64(i)*0.005, 'f', 4, 64) + "," +
-			strconv.FormatFloat(p, 'f', 4, 64) + "," + strconv.FormatFloat(f, 'f', 4, 64) + "\n")
-	}
-	in := []byte(sb.String())
-	_, _ = d.Write(in)
-	if len(g.samples) != 2000 || d.Stats().BadLines != 0 {
-		t.Fatalf("%d samples, %+v", len(g.samples), d.Stats())
-	}
-	if d.shapes.n < 2 || d.shapes.n > shapeSlots {
-		t.Fatalf("%d shapes held, want 2 to %d", d.shapes.n, shapeSlots)
-	}
-	// The last lines' shape is held: the next such line is read by it.
-	last := in[len(in)-26:]
-	last = last[strings.LastIndexByte(string(last[:len(last)-1]), '\n')+1:]
-	if _, _, ok := shapedOne(padded(string(last)), &d.shapes.shapes[d.shapes.last]); !ok {
-		t.Fatalf("the last line %q is not of the shape the decoder used last", last)
-	}
-	// A header drops the shapes: they hold the columns' places.
-	_, _ = d.Write([]byte("pressure[hPa],flow[L/s],time[ms]\n"))
-	if d.shapes.n != 0 {
-		t.Fatalf("%d shapes held after a new header", d.shapes.n)
+	// Bare commas, as trapline writes, and a blank after each, as many
+	// programs print.
+	for _, sep := range []string{",", ", "} {
+		var g got
+		d, _ := NewTextDecoder(DecoderOptions{}, g.emit)
+		var sb strings.Builder
+		sb.WriteString("time[s],pressure[cmH2O],flow[L/min]\n")
+		for i := range 2000 {
+			p := 5 + 20*math.Abs(math.Sin(float64(i)/40))
+			f := 60 * math.Sin(float64(i)/40)
+			sb.WriteString(strconv.FormatFloat(float64(i)*0.005, 'f', 4, 64) + sep +
+				strconv.FormatFloat(p, 'f', 4, 64) + sep + strconv.FormatFloat(f, 'f', 4, 64) + "\n")
+		}
+		in := []byte(sb.String())
+		_, _ = d.Write(in)
+		if len(g.samples) != 2000 || d.Stats().BadLines != 0 {
+			t.Fatalf("separator %q: %d samples, %+v", sep, len(g.samples), d.Stats())
+		}
+		if d.shapes.n < 2 || d.shapes.n > shapeSlots {
+			t.Fatalf("separator %q: %d shapes held, want 2 to %d", sep, d.shapes.n, shapeSlots)
+		}
+		// The last lines' shape is held: the next such line is read by it.
+		last := in[strings.LastIndexByte(string(in[:len(in)-1]), '\n')+1:]
+		if _, _, ok := shapedOne(padded(string(last)), &d.shapes.shapes[d.shapes.last]); !ok {
+			t.Fatalf("separator %q: the last line %q is not of the shape the decoder used last", sep, last)
+		}
+		// A header drops the shapes: they hold the columns' places.
+		_, _ = d.Write([]byte("pressure[hPa],flow[L/s],time[ms]\n"))
+		if d.shapes.n != 0 {
+			t.Fatalf("separator %q: %d shapes held after a new header", sep, d.shapes.n)
+		}
 	}
 }
 
