@@ -30,18 +30,7 @@ func holdRun(t *testing.T, hold time.Duration) (map[string][]float64, int) {
 			evs[i].Release()
 		}
 	}}
-	src, err := Open("tcp-listen://127.0.0.1:0", opts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- src.Run(ctx, nil) }()
-	defer func() { cancel(); <-done }()
-	for src.(Listener).Addr() == "" {
-		time.Sleep(time.Millisecond)
-	}
-	c, err := net.Dial("tcp", src.(Listener).Addr())
+	c, err := net.Dial("tcp", startListen(t, opts))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -60,19 +49,7 @@ func holdRun(t *testing.T, hold time.Duration) (map[string][]float64, int) {
 	}
 	// The link stays open and quiet: held samples must come out by
 	// themselves, long before anything else would flush them.
-	deadline := time.Now().Add(2 * time.Second)
-	for {
-		mu.Lock()
-		n := total
-		mu.Unlock()
-		if n == 3*writes {
-			break
-		}
-		if time.Now().After(deadline) {
-			t.Fatalf("hold %v: %d of %d samples handed on", hold, n, 3*writes)
-		}
-		time.Sleep(5 * time.Millisecond)
-	}
+	waitHandedOn(t, 2*time.Second, 3*writes, func() int { mu.Lock(); defer mu.Unlock(); return total })
 	mu.Lock()
 	defer mu.Unlock()
 	return got, largest
@@ -103,5 +80,39 @@ func TestHoldDecodesReadsTogether(t *testing.T) {
 		if largest < tc.minLargest || largest > tc.maxL {
 			t.Errorf("hold %v: largest event %d samples, want %d to %d", tc.hold, largest, tc.minLargest, tc.maxL)
 		}
+	}
+}
+
+// startListen opens a tcp-listen source on 127.0.0.1 with opts, runs it
+// until the test ends, and returns its address.
+func startListen(t *testing.T, opts Options) string {
+	t.Helper()
+	src, err := Open("tcp-listen://127.0.0.1:0", opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	go func() { done <- src.Run(ctx, nil) }()
+	t.Cleanup(func() { cancel(); <-done })
+	for src.(Listener).Addr() == "" {
+		time.Sleep(time.Millisecond)
+	}
+	return src.(Listener).Addr()
+}
+
+// waitHandedOn waits up to d for handed() to reach want samples.
+func waitHandedOn(t *testing.T, d time.Duration, want int, handed func() int) {
+	t.Helper()
+	deadline := time.Now().Add(d)
+	for {
+		n := handed()
+		if n == want {
+			return
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("%d of %d samples handed on", n, want)
+		}
+		time.Sleep(5 * time.Millisecond)
 	}
 }

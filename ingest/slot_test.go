@@ -1,7 +1,6 @@
 package ingest
 
 import (
-	"context"
 	"fmt"
 	"net"
 	"sync"
@@ -46,21 +45,11 @@ func TestStreamSlotFollowsItsStream(t *testing.T) {
 			e.Release()
 		}
 	}}
-	src, err := Open("tcp-listen://127.0.0.1:0", opts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- src.Run(ctx, nil) }()
-	defer func() { cancel(); <-done }()
-	for src.(Listener).Addr() == "" {
-		time.Sleep(time.Millisecond)
-	}
+	addr := startListen(t, opts)
 	const writes, conns = 20, 2
 	ids := []string{"bed-a", "bed-b", "bed-c"}
 	for k := range conns {
-		c, err := net.Dial("tcp", src.(Listener).Addr())
+		c, err := net.Dial("tcp", addr)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -77,19 +66,7 @@ func TestStreamSlotFollowsItsStream(t *testing.T) {
 			time.Sleep(2 * time.Millisecond)
 		}
 	}
-	deadline := time.Now().Add(5 * time.Second)
-	for {
-		mu.Lock()
-		n := samples
-		mu.Unlock()
-		if n == conns*writes*len(ids) {
-			break
-		}
-		if time.Now().After(deadline) {
-			t.Fatalf("%d of %d samples handed on", n, conns*writes*len(ids))
-		}
-		time.Sleep(5 * time.Millisecond)
-	}
+	waitHandedOn(t, 5*time.Second, conns*writes*len(ids), func() int { mu.Lock(); defer mu.Unlock(); return samples })
 	mu.Lock()
 	defer mu.Unlock()
 	for _, b := range bad {
