@@ -102,9 +102,9 @@ func (d *TextDecoder) flushRun() {
 // fastLine reads one line of the fast lane at the start of b and returns
 // its sample (its time as read), its length with the line end, and false
 // when it is not such a line. Its numbers are those samples are written
-// with, each after at most one blank: an optional sign, at most 7 digits, and optionally a '.' and at
-// most 7 more, or up to 23 more in the shortest text of a computed value
-// (longFraction). Each run of digits is read as one 64-bit word rather
+// with, each after at most one blank: an optional sign, at most 7 digits,
+// and optionally a '.' and at most 7 more, or up to 23 more in the
+// shortest text of a computed value (longFraction). Each run of digits is read as one 64-bit word rather
 // than a byte at a time (leadingDigits, digitsValue), so no branch guesses
 // where a number ends; it reads only within b, and needs fastReach bytes
 // from the start of each field (a long fraction checks for its own).
