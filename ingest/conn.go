@@ -21,10 +21,9 @@ type conn struct {
 	ctx       context.Context
 	dec       Decoder
 	defStream string
-	seen      []string               // streams read from this conn, for status events
-	streams   map[string]*connStream // per stream read from this conn
-	last      *connStream            // the stream of the last sample
-	order     []*connStream          // streams with pending samples, in order
+	seen      []string                 // streams read from this conn, for status events
+	streams   StreamIndex[*connStream] // per stream read from this conn
+	order     []*connStream            // streams with pending samples, in order
 	prev      DecoderStats
 	lastErr   error
 	pace      *pacer
@@ -34,7 +33,7 @@ type conn struct {
 }
 
 func (s *source) newConn(ctx context.Context, defStream string) *conn {
-	c := &conn{s: s, ctx: ctx, defStream: defStream, streams: map[string]*connStream{}, lastData: time.Now()}
+	c := &conn{s: s, ctx: ctx, defStream: defStream, lastData: time.Now()}
 	// Options were checked by OpenSpec; defStream is built from a valid id.
 	d, err := NewDecoder(s.opts.Format, s.decoderOptions(defStream), c.emit)
 	if err != nil {
@@ -111,41 +110,21 @@ func (c *conn) count() {
 }
 
 // connStream is what a conn keeps of one stream: its timeline (shared by
-// every conn of the source) and its samples waiting to be pushed. One map
-// lookup per sample finds both.
+// every conn of the source), its samples waiting to be pushed and the
+// BatchSink's slot. One lookup per sample (conn.stream) finds them all.
 type connStream struct {
 	id      string
 	tl      *timeline
 	pending *[]Sample
-	next    *connStream // the stream that followed this one last time
-	slot    StreamSlot  // the BatchSink's, carried by this stream's events
+	slot    StreamSlot // the BatchSink's, carried by this stream's events
 }
 
 // stream returns the state of a stream on this conn, making it on its
 // first sample.
 func (c *conn) stream(id string) *connStream {
-	// A link of many streams repeats their order: the stream after the
-	// last one is found without hashing its id.
-	if l := c.last; l != nil {
-		if l.id == id {
-			return l
-		}
-		if n := l.next; n != nil && n.id == id {
-			c.last = n
-			return n
-		}
-	}
-	cs := c.lookup(id)
-	if c.last != nil {
-		c.last.next = cs
-	}
-	c.last = cs
-	return cs
-}
-
-// lookup finds or makes the state of stream id on this conn.
-func (c *conn) lookup(id string) *connStream {
-	if cs := c.streams[id]; cs != nil {
+	// A link of many streams repeats their order: StreamIndex finds the
+	// stream after the last one without hashing its id.
+	if cs, ok := c.streams.Get(id); ok {
 		return cs
 	}
 	s := c.s
@@ -158,7 +137,7 @@ func (c *conn) lookup(id string) *connStream {
 		c.seen = append(c.seen, id)
 	}
 	cs := &connStream{id: id, tl: tl}
-	c.streams[id] = cs
+	c.streams.Put(id, cs)
 	return cs
 }
 
