@@ -104,10 +104,11 @@ func (d *TextDecoder) flushRun() {
 // when it is not such a line. Its numbers are those samples are written
 // with, each after at most one blank: an optional sign, at most 7 digits,
 // and optionally a '.' and at most 7 more, or up to 23 more in the
-// shortest text of a computed value (longFraction). Each run of digits is read as one 64-bit word rather
-// than a byte at a time (leadingDigits, digitsValue), so no branch guesses
-// where a number ends; it reads only within b, and needs fastReach bytes
-// from the start of each field (a long fraction checks for its own).
+// shortest text of a computed value (longFraction). Each run of digits is
+// read as one 64-bit word rather than a byte at a time (leadingDigits,
+// digitsValue), so no branch guesses where a number ends; it reads only
+// within b, and needs fastReach bytes from the start of each field (a long
+// fraction checks for its own).
 //
 // The value: at most 14 digits make an integer below 2^53, exact as a
 // float64, and dividing it by an exact power of ten up to 1e7 is one
