@@ -116,15 +116,7 @@ func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64
 		nd -= leadingZeros(digits)
 	}
 	if nd <= 19 {
-		// Trailing zeros (a value with few digits written with many, as
-		// "%.18e" writes 50) leave an integer that an exact power of ten
-		// may scale exactly, which Eisel–Lemire, working from a truncated
-		// power, often cannot decide.
-		mant, exp10 := trimZeros(mant, exp10)
-		if mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
-			return exactNumber(mant, exp10, neg), true
-		}
-		if f, ok := eiselLemire(mant, exp10, neg); ok {
+		if f, ok := decimalValue(mant, exp10, neg); ok {
 			return f, true
 		}
 	}
@@ -135,6 +127,27 @@ func longNumber(b, digits []byte, mant uint64, nd, exp10 int, neg bool) (float64
 		return 0, false
 	}
 	return f, true
+}
+
+// decimalValue is ±mant·10^exp10, mant exact, correctly rounded, or false
+// when none of the routes below can decide it: exactly (exactNumber), by
+// Eisel–Lemire, and with trailing zeros moved into the exponent (a value
+// with few digits written with many, as "%.18e" writes 50), exactly again:
+// Eisel–Lemire, working from a truncated power, often cannot decide such a
+// value. The zeros are looked for only then, since the shortest text of a
+// value, the common long number, has none.
+func decimalValue(mant uint64, exp10 int, neg bool) (float64, bool) {
+	if mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
+		return exactNumber(mant, exp10, neg), true
+	}
+	if f, ok := eiselLemire(mant, exp10, neg); ok {
+		return f, true
+	}
+	mant, exp10 = trimZeros(mant, exp10)
+	if mant < 1<<53 && exp10 >= -22 && exp10 <= 22 {
+		return exactNumber(mant, exp10, neg), true
+	}
+	return eiselLemire(mant, exp10, neg)
 }
 
 // trimZeros moves the trailing zero digits of mant into its decimal

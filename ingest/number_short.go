@@ -49,9 +49,8 @@ func digitsValue(w uint64, k int) uint64 {
 // digits, after any leading zeros); it returns the number's magnitude (the
 // caller applies the sign), where it ends in f, and false when it is
 // longer, when its digits make an integer of 2^64 or more, or when f
-// lacks the bytes of a word and of a line end after it. Up to 2^53 and 22
-// fraction digits the value is exact as in fastLine; otherwise it is the
-// Eisel–Lemire conversion (eiselLemire), and false where that cannot
+// lacks the bytes of a word and of a line end after it. The value is
+// decimalValue's, as the general path's, and false where that cannot
 // decide.
 func longFraction(f []byte, at int, word, frac uint64, k1 int) (float64, int, bool) {
 	mant := digitsValue(word, k1)*1e8 + digitsValue(frac, 8) // below 10^15
@@ -72,10 +71,6 @@ func longFraction(f []byte, at int, word, frac uint64, k1 int) (float64, int, bo
 			break
 		}
 	}
-	kf := end - at
-	if mant < 1<<53 && kf <= 22 {
-		return float64(mant) / pow10[kf], end, true
-	}
-	v, ok := eiselLemire(mant, -kf, false)
+	v, ok := decimalValue(mant, at-end, false)
 	return v, end, ok
 }
