@@ -67,10 +67,10 @@ func median(x []float64) float64 {
 
 // errTable accumulates per-breath errors of one patient model.
 type errTable struct {
-	name                                         string
-	r, c, vt, peepi, trapped, tau, rate, plat    []float64
-	n, matched, flagged, peepiOK, nullR, nullTau int
-	flags                                        map[string]int
+	name                                      string
+	r, c, vt, peepi, trapped, tau, rate, plat []float64
+	matched, flagged, peepiOK, nullR, nullTau int
+	flags                                     map[string]int
 }
 
 func newErrTable(name string) *errTable { return &errTable{name: name, flags: map[string]int{}} }

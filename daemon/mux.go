@@ -353,13 +353,6 @@ func (r *muxRuntime) has(tok string) bool {
 	return r.byToken[tok] != nil
 }
 
-// streams returns the number of admitted streams.
-func (r *muxRuntime) streams() int {
-	r.mu.RLock()
-	defer r.mu.RUnlock()
-	return len(r.byToken)
-}
-
 // pending returns the number of work batches waiting in the shards' queues.
 func (r *muxRuntime) pending() int {
 	n := 0

@@ -103,16 +103,6 @@ func (r *simRun) activeAt(cond string, tS float64) bool {
 	return false
 }
 
-// truthAt returns the truth breath that contains stream time tS.
-func (r *simRun) truthAt(tS float64) *simulator.Truth {
-	for i := range r.truth {
-		if tS >= r.truth[i].StartS && tS < r.truth[i].EndS {
-			return &r.truth[i]
-		}
-	}
-	return nil
-}
-
 // shipped loads a shipped scenario, with a different seed when seed > 0.
 func shipped(t *testing.T, name string, seed uint64) simulator.Scenario {
 	t.Helper()

@@ -95,9 +95,6 @@ func (l *lung) shortestTauS() float64 {
 // compliance is the total compliance (L/cmH2O).
 func (l *lung) compliance() float64 { return l.c[0] + l.c[1] }
 
-// volume is the total volume above zero-pressure relaxation (L).
-func (l *lung) volume(v *[2]float64) float64 { return v[0] + v[1] }
-
 // pmus is the muscle pressure at time t: a half-sine of amplitude
 // effortAmp and duration effortTS, repeating every effortPerS.
 func (l *lung) pmus(t float64) float64 {
