@@ -106,10 +106,7 @@ func ParseURL(raw string) (Spec, error) {
 			return Spec{}, badURL("stdin takes no address, got %q", a)
 		}
 	case "serial", "file":
-		p := addr
-		if strings.HasPrefix(p, "//") {
-			p = p[2:]
-		}
+		p := strings.TrimPrefix(addr, "//")
 		up, err := url.PathUnescape(p)
 		if err != nil || up == "" {
 			return Spec{}, badURL("%s needs a path, e.g. %s", scheme, map[string]string{

@@ -15,7 +15,7 @@ import (
 
 // The messages of yaml.TypeError that ExplainYAML rewrites.
 var (
-	yamlUnknownField = regexp.MustCompile("^line (\\d+): field (\\S+) not found in type (\\S+)$")
+	yamlUnknownField = regexp.MustCompile(`^line (\d+): field (\S+) not found in type (\S+)$`)
 	yamlBadValue     = regexp.MustCompile("^line (\\d+): cannot unmarshal !!(\\w+) `(.*)` into (\\S+)$")
 )
 

@@ -73,7 +73,7 @@ func (r *Running) Stop() error {
 	select {
 	case r.err = <-r.done:
 	case <-time.After(stopWithin):
-		r.err = errors.New("Run did not return within 20 s of cancellation")
+		r.err = errors.New("the daemon's run did not return within 20 s of cancellation")
 	}
 	r.ended = true
 	return r.err
