@@ -17,7 +17,7 @@ import (
 // timestamps for wall times. Rows are buffered by the library and written
 // in row groups; Close writes the footer.
 type ParquetWriter struct {
-	w     *parquet.Writer
+	w     *parquet.GenericWriter[any]
 	cols  []Column
 	index []int // leaf index of each column in the schema
 }
@@ -34,7 +34,7 @@ func NewParquetWriter(w io.Writer, k Kind) *ParquetWriter {
 	for i, path := range schema.Columns() {
 		leaf[path[0]] = i
 	}
-	p := &ParquetWriter{w: parquet.NewWriter(w, schema), cols: cols, index: make([]int, len(cols))}
+	p := &ParquetWriter{w: parquet.NewGenericWriter[any](w, schema), cols: cols, index: make([]int, len(cols))}
 	for i, c := range cols {
 		p.index[i] = leaf[c.Name]
 	}
