@@ -29,8 +29,10 @@ type Config struct {
 	// memory limit): near it the collector runs more often and returns
 	// freed pages sooner, so that a daemon of thousands of streams stays
 	// within its budget (docs/operations.md). 0 leaves the runtime's own
-	// default (none, or the GOMEMLIMIT environment variable).
-	MemoryLimit Size `mapstructure:"memory_limit"`
+	// default (none, or the GOMEMLIMIT environment variable); MemLimitAuto
+	// ("auto") takes 90 % of the memory limit of the process's control
+	// group (a container's limit) when it has one.
+	MemoryLimit MemLimit `mapstructure:"memory_limit"`
 	// NATS is where breath records and alerts go.
 	NATS NATS `mapstructure:"nats"`
 	// Spool keeps alerts on disk while NATS is unreachable.

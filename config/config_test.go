@@ -225,6 +225,16 @@ func TestBadConfigs(t *testing.T) {
 			},
 		},
 		{
+			name: "a memory limit that is neither a size nor auto",
+			yaml: "memory_limit: plenty\n",
+			want: []string{`memory_limit: size "plenty": want a number of bytes with a unit, like 64MiB or 1GiB, or auto`},
+		},
+		{
+			name: "a memory limit below the floor",
+			yaml: "memory_limit: 32MiB\n",
+			want: []string{`memory_limit: 32MiB is too small (want at least 64MiB)`},
+		},
+		{
 			name: "unknown keys at every depth",
 			yaml: "colour: red\nnats: {embeded: {port: 1}, embedded: {prot: 1}, tls: {cert: x}}\n" +
 				"streams: [{id: a, source: 'stdin:'}, {id: b, source: 'stdin:', rate: 5}]\n" +
@@ -492,6 +502,26 @@ func TestValidVariants(t *testing.T) {
 			check: func(c *Config) error {
 				if !c.EmbeddedNATS() || c.NATS.Embedded.Host != "0.0.0.0" {
 					return fmt.Errorf("got %+v", c.NATS)
+				}
+				return nil
+			},
+		},
+		{
+			name: "memory limit from the control group",
+			yaml: "memory_limit: auto\n",
+			check: func(c *Config) error {
+				if c.MemoryLimit != MemLimitAuto {
+					return fmt.Errorf("memory_limit %v", c.MemoryLimit)
+				}
+				return nil
+			},
+		},
+		{
+			name: "memory limit as a plain number of bytes",
+			yaml: "memory_limit: 1073741824\n",
+			check: func(c *Config) error {
+				if c.MemoryLimit != MemLimit(GiB) {
+					return fmt.Errorf("memory_limit %v", c.MemoryLimit)
 				}
 				return nil
 			},

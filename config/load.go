@@ -270,6 +270,17 @@ func durationHook(from, to reflect.Type, data any) (any, error) {
 // sizeHook decodes sizes from strings with a unit ("64MiB") or whole
 // numbers of bytes.
 func sizeHook(from, to reflect.Type, data any) (any, error) {
+	if to == reflect.TypeFor[MemLimit]() && from != to {
+		// memory_limit: "auto", or a size.
+		if d, ok := data.(string); ok {
+			return ParseMemLimit(d)
+		}
+		z, err := sizeHook(from, reflect.TypeFor[Size](), data)
+		if err != nil {
+			return nil, err
+		}
+		return MemLimit(z.(Size)), nil
+	}
 	if to != reflect.TypeFor[Size]() || from == to {
 		return data, nil
 	}

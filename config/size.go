@@ -113,3 +113,44 @@ func (s *Size) UnmarshalText(b []byte) error {
 	*s = v
 	return nil
 }
+
+// MemLimit is the value of memory_limit: a size, 0 for none, or
+// MemLimitAuto, written "auto", for a share of the memory limit of the
+// process's control group (the container's limit).
+type MemLimit int64
+
+// MemLimitAuto is memory_limit: auto.
+const MemLimitAuto MemLimit = -1
+
+// ParseMemLimit parses "auto" (any case) or a size as ParseSize does.
+func ParseMemLimit(s string) (MemLimit, error) {
+	if strings.EqualFold(strings.TrimSpace(s), "auto") {
+		return MemLimitAuto, nil
+	}
+	z, err := ParseSize(s)
+	if err != nil {
+		return 0, fmt.Errorf("%w, or auto", err)
+	}
+	return MemLimit(z), nil
+}
+
+// String writes "auto" or the size as Size.String does.
+func (m MemLimit) String() string {
+	if m == MemLimitAuto {
+		return "auto"
+	}
+	return Size(m).String()
+}
+
+// MarshalText writes the limit as String does.
+func (m MemLimit) MarshalText() ([]byte, error) { return []byte(m.String()), nil }
+
+// UnmarshalText parses the limit as ParseMemLimit does.
+func (m *MemLimit) UnmarshalText(b []byte) error {
+	v, err := ParseMemLimit(string(b))
+	if err != nil {
+		return err
+	}
+	*m = v
+	return nil
+}

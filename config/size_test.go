@@ -1,6 +1,9 @@
 package config
 
-import "testing"
+import (
+	"strings"
+	"testing"
+)
 
 func TestParseSize(t *testing.T) {
 	// Binary prefixes are powers of 1024 and decimal ones powers of 1000
@@ -41,6 +44,35 @@ func TestParseSize(t *testing.T) {
 	for _, bad := range []string{"", "GiB", "-1GiB", "1XB", "1.0000000001KiB", "9999999999999TiB", "1..2MiB"} {
 		if got, err := ParseSize(bad); err == nil {
 			t.Errorf("ParseSize(%q) = %d, want an error", bad, got)
+		}
+	}
+}
+
+func TestParseMemLimit(t *testing.T) {
+	for _, tc := range []struct {
+		in   string
+		want MemLimit
+		str  string
+	}{
+		{"auto", MemLimitAuto, "auto"},
+		{" AUTO ", MemLimitAuto, "auto"},
+		{"0", 0, "0B"},
+		{"900MiB", 900 << 20, "900MiB"},
+	} {
+		got, err := ParseMemLimit(tc.in)
+		if err != nil || got != tc.want || got.String() != tc.str {
+			t.Errorf("ParseMemLimit(%q) = %d (%q), %v; want %d (%q)", tc.in, got, got.String(), err, tc.want, tc.str)
+		}
+		var back MemLimit
+		if err := back.UnmarshalText([]byte(got.String())); err != nil || back != got {
+			t.Errorf("round trip %q -> %d, %v", got.String(), back, err)
+		}
+	}
+	for _, bad := range []string{"", "automatic", "-1", "lots"} {
+		if got, err := ParseMemLimit(bad); err == nil {
+			t.Errorf("ParseMemLimit(%q) = %d, want an error", bad, got)
+		} else if !strings.Contains(err.Error(), "or auto") {
+			t.Errorf("ParseMemLimit(%q): %v, want it to offer auto", bad, err)
 		}
 	}
 }

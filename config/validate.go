@@ -37,8 +37,8 @@ func (c *Config) validate(p *problems) {
 		}
 	}
 	durationIn(p, "shutdown_timeout", c.ShutdownTimeout, 100*time.Millisecond, 10*time.Minute)
-	if c.MemoryLimit != 0 {
-		sizeAtLeast(p, "memory_limit", c.MemoryLimit, 64*MiB)
+	if c.MemoryLimit > 0 {
+		sizeAtLeast(p, "memory_limit", Size(c.MemoryLimit), 64*MiB)
 	}
 	c.validateNATS(p)
 	if c.Spool.MaxEvents < 1 || c.Spool.MaxEvents > 10_000_000 {

@@ -3,8 +3,8 @@ package cli
 import (
 	"fmt"
 	"io"
-	"runtime/debug"
 
+	"github.com/KimMachineGun/automemlimit/memlimit"
 	"github.com/rs/zerolog"
 	"github.com/spf13/cobra"
 
@@ -41,10 +41,7 @@ func (a *app) runCommand() *cobra.Command {
 			if err != nil {
 				return &daemon.UsageError{Err: err}
 			}
-			if cfg.MemoryLimit > 0 {
-				debug.SetMemoryLimit(int64(cfg.MemoryLimit))
-				log.Info().Int64("memory_limit_bytes", int64(cfg.MemoryLimit)).Msg("soft memory limit set")
-			}
+			applyMemoryLimit(cfg.MemoryLimit, memlimit.FromCgroup, log)
 			d, err := daemon.New(cfg, log, daemon.Options{})
 			if err != nil {
 				return err
