@@ -185,7 +185,10 @@ func TestClusterEdgeNodeHang(t *testing.T) {
 		float64(rss)/(1<<20), float64(budget)/(1<<20), metricValue(m, "trapline_edge_messages_sent_total"),
 		metricValue(m, "trapline_edge_messages_acknowledged_total"), metricValue(m, "trapline_edge_messages_retried_total"),
 		metricValue(m, "trapline_edge_messages_failed_total"), metricValue(m, "trapline_edge_batches_dropped_total"))
-	if rss > budget {
+	switch {
+	case raceBuild:
+		t.Log("race detector build: the memory budget is not checked")
+	case rss > budget:
 		t.Errorf("edge peak RSS %d bytes exceeds the budget %d", rss, budget)
 	}
 	if f := metricValue(m, "trapline_edge_messages_failed_total"); f != 0 {
