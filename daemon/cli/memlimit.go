@@ -5,6 +5,7 @@ import (
 	"math"
 	"os"
 	"runtime/debug"
+	"strconv"
 
 	"github.com/KimMachineGun/automemlimit/memlimit"
 	"github.com/rs/zerolog"
@@ -25,9 +26,9 @@ const autoMemRatio = 0.9
 // in the environment wins over auto, as the runtime already applied it, and
 // the environment variable AUTOMEMLIMIT of the library that reads the
 // control group (KimMachineGun/automemlimit) turns auto off ("off") or
-// replaces the share (a number in (0, 1]). A
-// limit that cannot be read leaves the runtime's own and says why; it never
-// stops the daemon. It returns the soft limit in force afterwards.
+// replaces the share (a number in (0, 1]). A limit that cannot be read
+// leaves the runtime's own and says why; it never stops the daemon. It
+// returns the soft limit in force afterwards.
 func applyMemoryLimit(m config.MemLimit, from memlimit.Provider, log zerolog.Logger) int64 {
 	switch {
 	case m > 0:
@@ -50,7 +51,11 @@ func applyMemoryLimit(m config.MemLimit, from memlimit.Provider, log zerolog.Log
 		case err != nil:
 			log.Warn().Err(err).Msg("memory_limit auto: the control group's memory limit could not be read; no soft limit set")
 		default:
-			log.Info().Int64("memory_limit_bytes", lim).Float64("of_cgroup_limit", autoMemRatio).Msg("soft memory limit set from the control group's limit")
+			share := strconv.FormatFloat(autoMemRatio, 'g', -1, 64)
+			if v := os.Getenv("AUTOMEMLIMIT"); v != "" {
+				share = v // the library took it (it refuses one it cannot read)
+			}
+			log.Info().Int64("memory_limit_bytes", lim).Str("share_of_cgroup_limit", share).Msg("soft memory limit set from the control group's limit")
 		}
 	}
 	return debug.SetMemoryLimit(-1)
