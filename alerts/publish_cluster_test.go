@@ -25,37 +25,26 @@ func freeLoopbackPort(t testing.TB) int {
 
 // startTestCluster starts three JetStream servers in process, clustered over
 // loopback routes, and waits (bounded) for a meta leader with every node
-// current.
+// current. The route ports must be known before the servers start (each
+// names the others), so they are taken free a moment before; another
+// process may bind one in between, and a node that cannot listen never
+// becomes ready. The cluster is then started again on other ports, at most
+// three times.
 func startTestCluster(t *testing.T) []*server.Server {
 	t.Helper()
-	const n = 3
-	routePorts := make([]int, n)
-	var routes []string
-	for i := range routePorts {
-		routePorts[i] = freeLoopbackPort(t)
-		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", routePorts[i]))
-	}
-	srvs := make([]*server.Server, n)
-	for i := range srvs {
-		s, err := server.NewServer(&server.Options{
-			ServerName: fmt.Sprintf("node-%d", i), Host: "127.0.0.1", Port: -1,
-			JetStream: true, StoreDir: t.TempDir(), SyncAlways: true,
-			JetStreamMaxStore: 256 << 20, JetStreamMaxMemory: 16 << 20,
-			Cluster: server.ClusterOpts{Name: "trapline-test", Host: "127.0.0.1", Port: routePorts[i]},
-			Routes:  server.RoutesFromStr(strings.Join(routes, ",")),
-			NoSigs:  true, NoLog: true,
-		})
+	var srvs []*server.Server
+	for attempt := 1; srvs == nil; attempt++ {
+		var err error
+		srvs, err = tryTestCluster(t)
 		if err != nil {
-			t.Fatal(err)
+			if attempt == 3 {
+				t.Fatalf("cluster: %v (three attempts)", err)
+			}
+			t.Logf("cluster attempt %d: %v; again on other ports", attempt, err)
 		}
-		s.Start()
-		srvs[i] = s
-		t.Cleanup(func() { s.Shutdown(); waitShutdown(t, s) })
 	}
 	for _, s := range srvs {
-		if !s.ReadyForConnections(10 * time.Second) {
-			t.Fatal("cluster node not ready")
-		}
+		t.Cleanup(func() { s.Shutdown(); waitShutdown(t, s) })
 	}
 	waitFor(t, 30*time.Second, "a JetStream meta leader with every node current", func() bool {
 		leader := false
@@ -71,6 +60,49 @@ func startTestCluster(t *testing.T) []*server.Server {
 		return leader
 	})
 	return srvs
+}
+
+// tryTestCluster starts the three servers on route ports free a moment ago
+// and waits for each to be ready; when one is not, it shuts them all down
+// and says which.
+func tryTestCluster(t *testing.T) ([]*server.Server, error) {
+	const n = 3
+	routePorts := make([]int, n)
+	var routes []string
+	for i := range routePorts {
+		routePorts[i] = freeLoopbackPort(t)
+		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", routePorts[i]))
+	}
+	var srvs []*server.Server
+	stopAll := func() {
+		for _, s := range srvs {
+			s.Shutdown()
+			waitShutdown(t, s)
+		}
+	}
+	for i := range n {
+		s, err := server.NewServer(&server.Options{
+			ServerName: fmt.Sprintf("node-%d", i), Host: "127.0.0.1", Port: -1,
+			JetStream: true, StoreDir: t.TempDir(), SyncAlways: true,
+			JetStreamMaxStore: 256 << 20, JetStreamMaxMemory: 16 << 20,
+			Cluster: server.ClusterOpts{Name: "trapline-test", Host: "127.0.0.1", Port: routePorts[i]},
+			Routes:  server.RoutesFromStr(strings.Join(routes, ",")),
+			NoSigs:  true, NoLog: true,
+		})
+		if err != nil {
+			stopAll()
+			return nil, fmt.Errorf("node-%d: %w", i, err)
+		}
+		s.Start()
+		srvs = append(srvs, s)
+	}
+	for i, s := range srvs {
+		if !s.ReadyForConnections(10 * time.Second) {
+			stopAll()
+			return nil, fmt.Errorf("node-%d (route port %d) not ready in 10 s", i, routePorts[i])
+		}
+	}
+	return srvs, nil
 }
 
 func waitShutdown(t testing.TB, s *server.Server) {
