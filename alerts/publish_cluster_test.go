@@ -2,7 +2,6 @@ package alerts
 
 import (
 	"fmt"
-	"net"
 	"strings"
 	"testing"
 	"time"
@@ -10,17 +9,15 @@ import (
 	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/internal/freeport"
 )
 
-// freeLoopbackPort returns a port that was free a moment ago.
+// freeLoopbackPort returns a port that was free a moment ago, below the
+// kernel's ephemeral range (see freeport).
 func freeLoopbackPort(t testing.TB) int {
 	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer ln.Close()
-	return ln.Addr().(*net.TCPAddr).Port
+	return freeport.Take(t)
 }
 
 // startTestCluster starts three JetStream servers in process, clustered over

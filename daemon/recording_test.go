@@ -3,7 +3,6 @@ package daemon
 import (
 	"context"
 	"encoding/json"
-	"net"
 	"os"
 	"strconv"
 	"strings"
@@ -18,18 +17,15 @@ import (
 	"trapline/config"
 	"trapline/ingest"
 	"trapline/ingest/record"
+	"trapline/internal/freeport"
 	"trapline/simulator"
 )
 
-// freePort returns a TCP port of 127.0.0.1 that was free a moment ago.
+// freePort returns a TCP port of 127.0.0.1 that was free a moment ago,
+// below the kernel's ephemeral range (see freeport).
 func freePort(t *testing.T) int {
 	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer ln.Close()
-	return ln.Addr().(*net.TCPAddr).Port
+	return freeport.Take(t)
 }
 
 // fullDisk creates segment files whose every write fails with ENOSPC, as

@@ -1,12 +1,13 @@
 package tests
 
 import (
-	"net"
 	"strconv"
 	"testing"
 	"time"
 
 	"github.com/nats-io/nats-server/v2/server"
+
+	"trapline/internal/freeport"
 )
 
 // natsServer is an in-process nats-server with JetStream on a fixed loopback
@@ -68,15 +69,11 @@ func (s *natsServer) stop() {
 	s.ns = nil
 }
 
-// freePort returns a loopback TCP port that was free a moment ago.
+// freePort returns a loopback TCP port that was free a moment ago, below
+// the kernel's ephemeral range (see freeport).
 func freePort(t *testing.T) int {
 	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer ln.Close()
-	return ln.Addr().(*net.TCPAddr).Port
+	return freeport.Take(t)
 }
 
 // waitFor polls cond every 20 ms for at most d.
