@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"errors"
+	"fmt"
 	"net"
 	"path/filepath"
 	"runtime"
@@ -15,6 +16,7 @@ import (
 	"go.bug.st/serial"
 
 	"trapline/ingest"
+	"trapline/internal/freeport"
 )
 
 func textEncoder(t testing.TB) ingest.Encoder {
@@ -280,12 +282,7 @@ func TestNetworkOutputs(t *testing.T) {
 	// A reader that starts listening after the simulator (both launched by
 	// one script) still gets every sample: Open waits for it.
 	t.Run("tcp reader starts late", func(t *testing.T) {
-		ln, err := net.Listen("tcp", "127.0.0.1:0")
-		if err != nil {
-			t.Fatal(err)
-		}
-		addr := ln.Addr().String()
-		ln.Close()
+		addr := fmt.Sprintf("127.0.0.1:%d", freeport.Take(t))
 		waiting := make(chan struct{})
 		var once sync.Once
 		data := make(chan []byte, 1)

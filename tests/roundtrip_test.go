@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"encoding/json"
 	"fmt"
-	"net"
 	"slices"
 	"strconv"
 	"strings"
@@ -89,12 +88,7 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 	scenarios := []string{"hyperinflation", "bronchospasm", "noisy"}
 	ports := make([]string, len(scenarios))
 	for i := range scenarios {
-		ln, err := net.Listen("tcp", "127.0.0.1:0")
-		if err != nil {
-			t.Fatal(err)
-		}
-		ports[i] = strconv.Itoa(ln.Addr().(*net.TCPAddr).Port)
-		ln.Close()
+		ports[i] = strconv.Itoa(freePort(t))
 		cfg.Streams = append(cfg.Streams, config.Stream{ID: "bed-" + strconv.Itoa(i+1), Source: "tcp-listen://127.0.0.1:" + ports[i]})
 	}
 	if err := cfg.Validate(); err != nil {

@@ -2,7 +2,6 @@ package bus
 
 import (
 	"bytes"
-	"net"
 	"strconv"
 	"strings"
 	"sync"
@@ -12,6 +11,8 @@ import (
 	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 	"github.com/rs/zerolog"
+
+	"trapline/internal/freeport"
 )
 
 type syncBuf struct {
@@ -86,14 +87,11 @@ func TestConnectRetriesAuthorizationForEver(t *testing.T) {
 	t.Logf("connected %v after the server accepted the credentials", time.Since(fixed).Round(10*time.Millisecond))
 }
 
+// freeTestPort returns a loopback port that was free a moment ago, below
+// the kernel's ephemeral range (see freeport).
 func freeTestPort(t *testing.T) int {
 	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer ln.Close()
-	return ln.Addr().(*net.TCPAddr).Port
+	return freeport.Take(t)
 }
 
 func itoaPort(p int) string { return strconv.Itoa(p) }

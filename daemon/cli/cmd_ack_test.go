@@ -2,7 +2,6 @@ package cli
 
 import (
 	"encoding/json"
-	"net"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -17,6 +16,7 @@ import (
 	"trapline/config"
 	"trapline/daemon"
 	"trapline/daemon/daemontest"
+	"trapline/internal/freeport"
 )
 
 // TestAckVerb runs the daemon in-process (embedded NATS on a free port),
@@ -25,12 +25,7 @@ import (
 // unknown id is refused with exit 1. Then export reads the same daemon's
 // JetStream streams.
 func TestAckVerb(t *testing.T) {
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	port := strconv.Itoa(ln.Addr().(*net.TCPAddr).Port)
-	ln.Close()
+	port := strconv.Itoa(freeport.Take(t))
 	cfg := config.Default()
 	cfg.DataDir = t.TempDir()
 	cfg.NATS.Embedded.Port = 0
