@@ -149,7 +149,12 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	case m.fitOK && !m.effort:
 		// Rohrer's equation when it explains the residuals, or when the
 		// recent breaths together show the flow dependence and this one
-		// does not contradict it.
+		// does not contradict it. Only while flow dependence shows, or on
+		// every few breaths to keep the pool fed (see rohrerPool.wanted).
+		if !a.k2Pool.wanted() {
+			a.k2Pool.skip()
+			break
+		}
 		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
 		a.k2Pool.add(&rf, m.r)
 		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {

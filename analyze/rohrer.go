@@ -247,6 +247,48 @@ func (f *rohrerFit) withK2(k2 float64) (rohrerFit, bool) {
 // K2/R follows a change that scales both terms at once.
 type rohrerPool struct {
 	w, w2, wk float64 // Σaᵢ, Σaᵢ²/wᵢ and Σaᵢqᵢ with aᵢ = keepⁱ·wᵢ, qᵢ = K2ᵢ/Rᵢ
+	since     int     // breaths skipped since the last fit
+	hint      bool    // the last fitted breath's K2 was rohrerHintZ standard errors above 0
+	// fits and skips count the breaths fitted and skipped since the pool
+	// was last cleared.
+	fits, skips int
+}
+
+// When a breath's linear fit holds, Rohrer's equation is fitted to it only
+// while there is a sign of flow dependence: the pool's K2/R, or the last
+// fitted breath's K2, at least rohrerHintZ standard errors above zero;
+// otherwise every rohrerEvery-th breath, which keeps the pool fed (our
+// choice). The fit is a fifth of the analyzer's work at 200 Hz and more at
+// lower rates (five passes over the decimated breath, the same ~150 points
+// whatever the rate); a linear lung, whose K2 is noise around zero, is
+// fitted on about one breath in three or four. A lung with a flow-dependent
+// resistance is fitted on every breath once the pool sees it. On the
+// acceptance and specificity grids every alarm figure stayed the same, and
+// on the shipped scenarios (all linear lungs) half of the chance
+// single-breath rohrer flags went (docs/analysis.md).
+const (
+	rohrerHintZ = 1.0
+	rohrerEvery = 4
+)
+
+// wanted reports whether the next breath whose linear fit holds is fitted
+// with Rohrer's equation. The pool's K2/R over its standard error is
+// (Σaᵢqᵢ/Σaᵢ)/(√(Σaᵢ²/wᵢ)/Σaᵢ) = Σaᵢqᵢ/√(Σaᵢ²/wᵢ).
+func (p *rohrerPool) wanted() bool {
+	if p.hint || p.since >= rohrerEvery-1 || !(p.w2 > 0) {
+		return true
+	}
+	return p.wk/math.Sqrt(p.w2) >= rohrerHintZ
+}
+
+// skip ages the pool by a breath that was not fitted, as add does with a
+// breath of no weight, so that the pool still spans about ten breaths.
+func (p *rohrerPool) skip() {
+	p.since++
+	p.skips++
+	p.w *= rohrerPoolKeep
+	p.w2 *= rohrerPoolKeep * rohrerPoolKeep
+	p.wk *= rohrerPoolKeep
 }
 
 // Pooling constants (ours): the pool forgets a breath's weight by
@@ -262,6 +304,9 @@ const (
 
 // add enters the K2 of one breath whose linear resistance is r.
 func (p *rohrerPool) add(f *rohrerFit, r float64) {
+	p.since = 0
+	p.fits++
+	p.hint = f.k2Var > 0 && f.k2 > 0 && f.k2*f.k2 > rohrerHintZ*rohrerHintZ*f.k2Var
 	if !(f.k2Var > 0) || math.IsInf(f.k2Var, 0) || math.IsNaN(f.k2) || !(r > 0) || math.IsInf(r, 0) {
 		return
 	}
