@@ -147,23 +147,7 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 	case implausible:
 		add(FlagFitImplausible)
 	case m.fitOK && !m.effort:
-		// Rohrer's equation when it explains the residuals, or when the
-		// recent breaths together show the flow dependence and this one
-		// does not contradict it. Only while flow dependence shows, or on
-		// every few breaths to keep the pool fed (see rohrerPool.wanted).
-		if !a.k2Pool.wanted() {
-			a.k2Pool.skip()
-			break
-		}
-		rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
-		a.k2Pool.add(&rf, m.r)
-		if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
-			m.rohrer = rf
-		} else if k2, sig := a.k2Pool.k2(m.r); sig {
-			if pf, ok := rf.withK2(k2); ok && 1000/pf.e <= c.MaxCMLPerCmH2O {
-				m.rohrer = pf
-			}
-		}
+		a.rohrerPassive(&m, endT)
 	}
 	if rf := &m.rohrer; rf.ok {
 		// R is reported at the mean inspiratory flow, E and P0 come from
@@ -187,6 +171,28 @@ func (a *Analyzer) mechanicsOf(b *Breath, flags *[]string, endT float64) mechani
 
 	a.occlusion(b, &m)
 	return m
+}
+
+// rohrerPassive fits Rohrer's equation to a passive breath whose linear
+// fit holds, and sets m.rohrer when it explains the residuals, or when the
+// recent breaths together show the flow dependence and this one does not
+// contradict it. It fits only while flow dependence shows, or on every few
+// breaths to keep the pool fed (see rohrerPool.wanted).
+func (a *Analyzer) rohrerPassive(m *mechanics, endT float64) {
+	c := &a.cfg
+	if !a.k2Pool.wanted() {
+		a.k2Pool.skip()
+		return
+	}
+	rf := fitRohrer(a.buf.pts[:a.buf.n], endT)
+	a.k2Pool.add(&rf, m.r)
+	if rf.ok && 1000/rf.e <= c.MaxCMLPerCmH2O {
+		m.rohrer = rf
+	} else if k2, sig := a.k2Pool.k2(m.r); sig {
+		if pf, ok := rf.withK2(k2); ok && 1000/pf.e <= c.MaxCMLPerCmH2O {
+			m.rohrer = pf
+		}
+	}
 }
 
 // occlusion applies the occlusion method over the end-inspiratory pause
