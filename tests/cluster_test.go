@@ -480,11 +480,7 @@ func diffLists(a, b []string) (onlyA, onlyB []string) {
 // a feed may be incomplete on either side: within 1).
 func (s *scaleSetup) checkBreaths(t *testing.T, nb map[string]int) {
 	t.Helper()
-	var seen map[string]int
-	var err error
-	if !pollUntil(20*time.Second, func() bool { seen, err = readBreaths(t.Context(), s.js); return err == nil }) {
-		t.Fatalf("read the breaths stream: %v", err)
-	}
+	seen := s.storedBreaths(t)
 	per := map[string]int{}
 	var dups []string
 	for k, n := range seen {
@@ -504,6 +500,20 @@ func (s *scaleSetup) checkBreaths(t *testing.T, nb map[string]int) {
 }
 
 // readBreaths reads the whole breaths stream: "stream/seq" → copies.
+// storedBreaths reads the breaths stream (readBreaths), again for up to
+// 20 s while it fails: a JetStream API request can find no responder for
+// a moment in a cluster under load (seen as "no responders available for
+// request" after a worker was killed).
+func (s *scaleSetup) storedBreaths(t *testing.T) map[string]int {
+	t.Helper()
+	var seen map[string]int
+	var err error
+	if !pollUntil(20*time.Second, func() bool { seen, err = readBreaths(t.Context(), s.js); return err == nil }) {
+		t.Fatalf("read the breaths stream: %v", err)
+	}
+	return seen
+}
+
 func readBreaths(ctx context.Context, js jetstream.JetStream) (map[string]int, error) {
 	ctx, cancel := context.WithTimeout(ctx, 10*time.Second)
 	defer cancel()
@@ -682,10 +692,7 @@ func TestClusterWorkerKilled(t *testing.T) {
 	_, dups := s.breaths.counts()
 	t.Logf("%d clinical alert events, %d of them from samples stored after the kill; %d breath records published twice (the replayed stretch since the last checkpoint), each stored once",
 		len(wantEv), after, len(dups))
-	seen, err := readBreaths(t.Context(), s.js)
-	if err != nil {
-		t.Fatalf("read the breaths stream: %v", err)
-	}
+	seen := s.storedBreaths(t)
 	for k, n := range seen {
 		if n > 1 {
 			t.Errorf("breath %s stored %d times", k, n)
