@@ -281,11 +281,17 @@ func (p *rohrerPool) wanted() bool {
 	return p.wk/math.Sqrt(p.w2) >= rohrerHintZ
 }
 
-// skip ages the pool by a breath that was not fitted, as add does with a
-// breath of no weight, so that the pool still spans about ten breaths.
+// skip ages the pool by a breath that was not fitted, as add does before
+// it enters a fitted breath's weight, so that the pool still spans about
+// ten breaths.
 func (p *rohrerPool) skip() {
 	p.since++
 	p.skips++
+	p.age()
+}
+
+// age forgets a breath's worth of the pool's weights (rohrerPoolKeep).
+func (p *rohrerPool) age() {
 	p.w *= rohrerPoolKeep
 	p.w2 *= rohrerPoolKeep * rohrerPoolKeep
 	p.wk *= rohrerPoolKeep
@@ -311,9 +317,10 @@ func (p *rohrerPool) add(f *rohrerFit, r float64) {
 		return
 	}
 	w := r * r / f.k2Var
-	p.w = rohrerPoolKeep*p.w + w
-	p.w2 = rohrerPoolKeep*rohrerPoolKeep*p.w2 + w
-	p.wk = rohrerPoolKeep*p.wk + w*f.k2/r
+	p.age()
+	p.w += w
+	p.w2 += w
+	p.wk += w * f.k2 / r
 }
 
 // k2 returns the pooled K2 for a breath whose linear resistance is r, and
