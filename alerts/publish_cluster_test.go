@@ -13,13 +13,6 @@ import (
 	"trapline/internal/freeport"
 )
 
-// freeLoopbackPort returns a port that was free a moment ago, below the
-// kernel's ephemeral range (see freeport).
-func freeLoopbackPort(t testing.TB) int {
-	t.Helper()
-	return freeport.Take(t)
-}
-
 // startTestCluster starts three JetStream servers in process, clustered over
 // loopback routes, and waits (bounded) for a meta leader with every node
 // current. The route ports must be known before the servers start (each
@@ -67,7 +60,7 @@ func tryTestCluster(t *testing.T) ([]*server.Server, error) {
 	routePorts := make([]int, n)
 	var routes []string
 	for i := range routePorts {
-		routePorts[i] = freeLoopbackPort(t)
+		routePorts[i] = freeport.Take(t)
 		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", routePorts[i]))
 	}
 	var srvs []*server.Server

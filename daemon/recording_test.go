@@ -21,13 +21,6 @@ import (
 	"trapline/simulator"
 )
 
-// freePort returns a TCP port of 127.0.0.1 that was free a moment ago,
-// below the kernel's ephemeral range (see freeport).
-func freePort(t *testing.T) int {
-	t.Helper()
-	return freeport.Take(t)
-}
-
 // fullDisk creates segment files whose every write fails with ENOSPC, as
 // on a file system that filled up after the start (the index is written).
 func fullDisk(path string) (record.File, error) {
@@ -49,7 +42,7 @@ func (f noSpace) Write([]byte) (int, error) {
 // on NATS, keeps publishing breath records, and /metrics counts the
 // dropped reads.
 func TestRecordingFullDiskRaisesTechnicalAlert(t *testing.T) {
-	port := freePort(t)
+	port := freeport.Take(t)
 	cfg := config.Default()
 	cfg.DataDir = t.TempDir()
 	cfg.NATS.Embedded.Port = 0

@@ -12,6 +12,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/alerts"
+	"trapline/internal/freeport"
 )
 
 // agreeKeys keeps of each clinical alert event what does not depend on the
@@ -121,7 +122,7 @@ func TestThreePipelinesAgree(t *testing.T) {
 	case <-ctx.Done():
 		t.Fatal("the daemon did not finish its recording")
 	}
-	store := &natsServer{t: t, port: freePort(t), store: filepath.Join(allDir, "nats")}
+	store := &natsServer{t: t, port: freeport.Take(t), store: filepath.Join(allDir, "nats")}
 	store.start()
 	t.Cleanup(store.stop)
 	for name, js := range map[string]jetstream.JetStream{

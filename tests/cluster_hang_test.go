@@ -16,6 +16,8 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"trapline/internal/freeport"
 )
 
 // hangProxy forwards TCP connections on 127.0.0.1 to a NATS node and can
@@ -134,7 +136,7 @@ func TestClusterEdgeNodeHang(t *testing.T) {
 	s := &scaleSetup{c: startCluster(t), files: map[string]string{}}
 	proxy := startHangProxy(t, fmt.Sprintf("127.0.0.1:%d", s.c.opts[0].Port))
 	rec := simFile(t, t.TempDir(), "hyper", "hyperinflation", 36*time.Second)
-	httpAddr := fmt.Sprintf("127.0.0.1:%d", freePort(t))
+	httpAddr := fmt.Sprintf("127.0.0.1:%d", freeport.Take(t))
 	var edge strings.Builder
 	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nmemory_limit: 80MiB\nhttp: {listen: \"%s\"}\nlog: {level: info}\nnats: {url: \"nats://%s\", replicas: 3}\nscaleout: {partitions: 8, replicas: 3}\nstreams:\n",
 		t.TempDir(), httpAddr, proxy.addr())

@@ -22,6 +22,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/alerts"
+	"trapline/internal/freeport"
 )
 
 // procCPU returns the user+system CPU seconds and the peak resident memory
@@ -65,7 +66,7 @@ func TestClusterSoak(t *testing.T) {
 	// time. Every stream plays the same recording.
 	rec := simFile(t, dir, "hyper", "hyperinflation", time.Duration(secs+60)*time.Second)
 	var edge strings.Builder
-	edgeHTTP := fmt.Sprintf("127.0.0.1:%d", freePort(t))
+	edgeHTTP := fmt.Sprintf("127.0.0.1:%d", freeport.Take(t))
 	fmt.Fprintf(&edge, "role: edge\ndata_dir: %s\nhttp: {listen: \"%s\"}\nlog: {level: warn}\nnats: {url: \"%s\"}\nscaleout: {partitions: 16}\nstreams:\n",
 		filepath.Join(dir, "edge"), edgeHTTP, c.urls())
 	for i := range streams {

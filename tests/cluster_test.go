@@ -24,6 +24,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/daemon/cli"
+	"trapline/internal/freeport"
 )
 
 // clusterMaxStore is each node's JetStream file store limit. The breath
@@ -76,7 +77,7 @@ func tryCluster(t *testing.T) (*cluster, error) {
 			s.WaitForShutdown()
 		}
 	}
-	cports := []int{freePort(t), freePort(t), freePort(t)}
+	cports := []int{freeport.Take(t), freeport.Take(t), freeport.Take(t)}
 	var routes []string
 	for _, p := range cports {
 		routes = append(routes, fmt.Sprintf("nats-route://127.0.0.1:%d", p))
@@ -307,7 +308,7 @@ func newScaleSetup(t *testing.T, streams int, dur time.Duration, speed float64) 
 		fmt.Fprintf(&edge, "  - id: %s\n    source: file://%s?pace=realtime&speed=%g\n", id, f, speed)
 	}
 	s.edgeCfg = writeConfig(t, edge.String())
-	s.httpAddr = fmt.Sprintf("127.0.0.1:%d", freePort(t))
+	s.httpAddr = fmt.Sprintf("127.0.0.1:%d", freeport.Take(t))
 	for i, w := range []string{"w1", "w2"} {
 		listen := ""
 		if i == 0 {

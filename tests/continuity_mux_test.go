@@ -14,6 +14,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/ingest"
+	"trapline/internal/freeport"
 )
 
 // ackOf acknowledges alarm id of stream over NATS and returns the error the
@@ -54,7 +55,7 @@ func TestKilledMuxStreamLeavesNoGhost(t *testing.T) {
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ward-link")
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := writeConfig(t, externalNATSConfig(dir, ns.URL(), httpPort, "", fmt.Sprintf(`sources:
   - name: ward
     source: serial://%s?baud=115200

@@ -12,6 +12,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/analyze"
+	"trapline/internal/freeport"
 )
 
 // storedBreathSeqs returns the seq of every breath record of the stream
@@ -63,7 +64,7 @@ func TestRestartMidEpisodeLeavesNoGhost(t *testing.T) {
 			ns := startNATS(t)
 			dir := t.TempDir()
 			link := filepath.Join(dir, "ventilator")
-			httpPort := freePort(t)
+			httpPort := freeport.Take(t)
 			cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
 			ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
 			defer cancel()

@@ -17,6 +17,7 @@ import (
 	"trapline/alerts"
 	"trapline/daemon/cli"
 	"trapline/ingest"
+	"trapline/internal/freeport"
 	"trapline/simulator"
 )
 
@@ -104,7 +105,7 @@ func TestEndToEndOverPseudoTerminal(t *testing.T) {
 		t.Run(tc.scenario, func(t *testing.T) {
 			dir := t.TempDir()
 			link := filepath.Join(dir, "ventilator")
-			natsPort := freePort(t)
+			natsPort := freeport.Take(t)
 			cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
 http:
   listen: ""

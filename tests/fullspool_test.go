@@ -11,6 +11,7 @@ import (
 
 	"trapline/alerts"
 	"trapline/daemon"
+	"trapline/internal/freeport"
 )
 
 // TestFullSpoolDegradesNeverStops: NATS is away for 10 minutes of stream
@@ -23,7 +24,7 @@ func TestFullSpoolDegradesNeverStops(t *testing.T) {
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := writeConfig(t, externalNATSConfig(dir, ns.URL(), httpPort, "spool:\n  max_events: 5\n", fmt.Sprintf(`streams:
   - id: bed-5
     source: serial://%s?baud=115200

@@ -24,7 +24,7 @@ type natsServer struct {
 // fresh temporary directory; it is shut down at the end of the test.
 func startNATS(t *testing.T) *natsServer {
 	t.Helper()
-	s := &natsServer{t: t, port: freePort(t), store: t.TempDir()}
+	s := &natsServer{t: t, port: freeport.Take(t), store: t.TempDir()}
 	s.start()
 	t.Cleanup(s.stop)
 	return s
@@ -67,13 +67,6 @@ func (s *natsServer) stop() {
 	s.ns.Shutdown()
 	s.ns.WaitForShutdown()
 	s.ns = nil
-}
-
-// freePort returns a loopback TCP port that was free a moment ago, below
-// the kernel's ephemeral range (see freeport).
-func freePort(t *testing.T) int {
-	t.Helper()
-	return freeport.Take(t)
 }
 
 // waitFor polls cond every 20 ms for at most d.

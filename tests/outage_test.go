@@ -16,6 +16,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"trapline/daemon/cli"
+	"trapline/internal/freeport"
 )
 
 // runBronchospasm starts `trapline run --config cfg` as a child process,
@@ -134,7 +135,7 @@ func TestNATSOutageLosesNoAlert(t *testing.T) {
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
 
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
@@ -221,7 +222,7 @@ func TestKilledDuringOutageLosesNoAlert(t *testing.T) {
 	ns := startNATS(t)
 	dir := t.TempDir()
 	link := filepath.Join(dir, "ventilator")
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := outageConfig(t, dir, link, ns.URL(), httpPort)
 
 	ctx, cancel := context.WithTimeout(t.Context(), 3*time.Minute)
@@ -285,7 +286,7 @@ func TestStartsWhileNATSIsAway(t *testing.T) {
 	ns := startNATS(t)
 	ns.stop()
 	dir := t.TempDir()
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := outageConfig(t, dir, filepath.Join(dir, "no-port-yet"), ns.URL(), httpPort)
 	ctx, cancel := context.WithTimeout(t.Context(), time.Minute)
 	defer cancel()

@@ -17,6 +17,7 @@ import (
 	"trapline/daemon"
 	"trapline/daemon/cli"
 	"trapline/daemon/daemontest"
+	"trapline/internal/freeport"
 )
 
 // liveLog gathers what the daemon publishes, per stream, as received.
@@ -88,7 +89,7 @@ func TestRecordAnalyzeRoundTrip(t *testing.T) {
 	scenarios := []string{"hyperinflation", "bronchospasm", "noisy"}
 	ports := make([]string, len(scenarios))
 	for i := range scenarios {
-		ports[i] = strconv.Itoa(freePort(t))
+		ports[i] = strconv.Itoa(freeport.Take(t))
 		cfg.Streams = append(cfg.Streams, config.Stream{ID: "bed-" + strconv.Itoa(i+1), Source: "tcp-listen://127.0.0.1:" + ports[i]})
 	}
 	if err := cfg.Validate(); err != nil {

@@ -9,6 +9,8 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
+	"trapline/internal/freeport"
 )
 
 // TestSecondSignalExitsAtOnce: the first SIGTERM starts a graceful shutdown
@@ -23,7 +25,7 @@ func TestSecondSignalExitsAtOnce(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer feed.Close()
-	httpPort := freePort(t)
+	httpPort := freeport.Take(t)
 	cfg := writeConfig(t, fmt.Sprintf(`data_dir: %s
 shutdown_timeout: 60s
 http:

@@ -38,6 +38,8 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+
+	"trapline/internal/freeport"
 )
 
 // wardConn is one sending connection of 100 streams.
@@ -66,7 +68,7 @@ func TestSoakWard(t *testing.T) {
 	}
 
 	dir := t.TempDir()
-	natsPort, httpPort, srcPort := freePort(t), freePort(t), freePort(t)
+	natsPort, httpPort, srcPort := freeport.Take(t), freeport.Take(t), freeport.Take(t)
 	cfg := fmt.Sprintf(`data_dir: %s
 shutdown_timeout: 10s
 memory_limit: %s

@@ -28,6 +28,8 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+
+	"trapline/internal/freeport"
 )
 
 func envInt(name string, def int) int {
@@ -52,7 +54,7 @@ func TestSoak(t *testing.T) {
 	feeds := make([]*feed, nStreams)
 	var cfg strings.Builder
 	dir := t.TempDir()
-	natsPort, httpPort := freePort(t), freePort(t)
+	natsPort, httpPort := freeport.Take(t), freeport.Take(t)
 	fmt.Fprintf(&cfg, "data_dir: %s\nshutdown_timeout: 10s\nhttp:\n  listen: 127.0.0.1:%d\nlog:\n  level: warn\n", dir, httpPort)
 	fmt.Fprintf(&cfg, "nats:\n  embedded:\n    port: %d\nstreams:\n", natsPort)
 	for i := range feeds {

@@ -54,11 +54,11 @@ func startUserServer(t *testing.T, port int, user, password string) *server.Serv
 // "authorization" in its log, and connects within 5 s once the server is
 // restarted with its credentials.
 func TestConnectRetriesAuthorizationForEver(t *testing.T) {
-	port := freeTestPort(t)
+	port := freeport.Take(t)
 	srv := startUserServer(t, port, "trapline", "not-what-the-client-has")
 	var logBuf syncBuf
 	nc, err := Connect(ClientOptions{
-		URL: "nats://127.0.0.1:" + itoaPort(port), User: "trapline", Password: "s3cret",
+		URL: "nats://127.0.0.1:" + strconv.Itoa(port), User: "trapline", Password: "s3cret",
 		ReconnectWait: 200 * time.Millisecond,
 	}, zerolog.New(&logBuf))
 	if err != nil {
@@ -86,12 +86,3 @@ func TestConnectRetriesAuthorizationForEver(t *testing.T) {
 	}
 	t.Logf("connected %v after the server accepted the credentials", time.Since(fixed).Round(10*time.Millisecond))
 }
-
-// freeTestPort returns a loopback port that was free a moment ago, below
-// the kernel's ephemeral range (see freeport).
-func freeTestPort(t *testing.T) int {
-	t.Helper()
-	return freeport.Take(t)
-}
-
-func itoaPort(p int) string { return strconv.Itoa(p) }
