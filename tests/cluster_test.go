@@ -500,7 +500,6 @@ func (s *scaleSetup) checkBreaths(t *testing.T, nb map[string]int) {
 	}
 }
 
-// readBreaths reads the whole breaths stream: "stream/seq" → copies.
 // storedBreaths reads the breaths stream (readBreaths), again for up to
 // 20 s while it fails: a JetStream API request can find no responder for
 // a moment in a cluster under load (seen as "no responders available for
@@ -515,6 +514,7 @@ func (s *scaleSetup) storedBreaths(t *testing.T) map[string]int {
 	return seen
 }
 
+// readBreaths reads the whole breaths stream: "stream/seq" → copies.
 func readBreaths(ctx context.Context, js jetstream.JetStream) (map[string]int, error) {
 	ctx, cancel := context.WithTimeout(ctx, 10*time.Second)
 	defer cancel()
