@@ -62,11 +62,11 @@ func TestRohrerFitOnlyWhereFlowDependenceShows(t *testing.T) {
 	}
 }
 
-// TestRohrerPoolAgesOnSkippedBreaths: a skipped breath ages the pool as an
-// added breath of no weight would (each sum times rohrerPoolKeep, the sum of
-// squared weights times its square). K2/R and its standard error stay the
-// same (to rounding); the next fitted breath then weighs more against the
-// old ones, as it would after a fitted breath.
+// TestRohrerPoolAgesOnSkippedBreaths: a skipped breath ages the pool as a
+// fitted breath does before its weight enters (each sum times
+// rohrerPoolKeep, the sum of squared weights times its square). K2/R and
+// its standard error stay the same (to rounding); the next fitted breath
+// then weighs more against the old ones, as it would after a fitted breath.
 func TestRohrerPoolAgesOnSkippedBreaths(t *testing.T) {
 	p := rohrerPool{w: 10, w2: 4, wk: 3}
 	q0, _ := p.k2(1)
